@@ -1,0 +1,221 @@
+"""Engine tests on the exact linear test stage: study reading, sampling, runner, summary."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy import stats as sps
+
+from tolerance import distributions as dist
+from tolerance import sampling
+from tolerance.api import load_study, run
+from tolerance.study import StudyError
+
+LINEAR = """
+stage = "linear_test"
+title = "linear"
+[run]
+samples = 5000
+seed = 11
+sampler = "{sampler}"
+[inputs]
+x1 = {{min = "-1 V", max = "3 V"}}
+x2 = {{nominal = "1 V", tolerance = "30%", distribution = "normal"}}
+"""
+
+
+@pytest.fixture
+def linear(write_study):
+    def make(sampler="lhs", extra=""):
+        return load_study(write_study(LINEAR.format(sampler=sampler) + extra))
+
+    return make
+
+
+# --- distributions ---------------------------------------------------------------------------
+
+def test_uniform_moments():
+    d = dist.Uniform(2.0, 6.0)
+    u = np.random.default_rng(1).random(400_000)
+    x = d.ppf(u)
+    # exact moments of U(a, b): mean (a+b)/2, variance (b-a)^2/12 (any statistics text)
+    assert_allclose(x.mean(), 4.0, atol=0.01)
+    assert_allclose(x.var(), 16 / 12, rtol=0.01)
+
+
+def test_normal_tolerance_at_three_sigma():
+    d = dist.Normal(100.0, 5.0 / 3.0, 3.0)
+    assert (d.low, d.high) == (95.0, 105.0)
+    # scipy.stats.norm as reference for the inverse CDF
+    u = np.array([0.001, 0.1, 0.5, 0.9, 0.999])
+    assert_allclose(d.ppf(u), sps.norm(100.0, 5.0 / 3.0).ppf(u), rtol=1e-12)
+
+
+def test_truncated_normal_stays_inside():
+    d = dist.TruncatedNormal(10.0, 1.0, 8.0, 11.0)
+    x = d.ppf(np.random.default_rng(2).random(100_000))
+    assert x.min() >= 8.0 and x.max() <= 11.0
+    # scipy.stats.truncnorm as reference for the mean
+    assert_allclose(x.mean(), sps.truncnorm(-2, 1, loc=10, scale=1).mean(), atol=0.01)
+
+
+def test_lognormal_between_min_and_max():
+    d = dist.LogNormal(100.0, 400.0)
+    assert_allclose(d.nominal, 200.0)
+    # min and max sit at -/+3 sigma of ln(h_FE): 0.135 % below min (scipy.stats.norm.cdf(-3))
+    x = d.ppf(np.random.default_rng(3).random(2_000_000))
+    assert_allclose(np.mean(x < 100.0), sps.norm.cdf(-3), rtol=0.08)
+    assert_allclose(np.median(x), 200.0, rtol=0.005)
+
+
+def test_lognormal_with_typical_keeps_both_limits_at_or_beyond_k_sigma():
+    d = dist.LogNormal(100.0, 400.0, typical=150.0)
+    assert_allclose(d.nominal, 150.0)
+    z_hi = (np.log(400) - np.log(150)) / d.sigma_ln
+    z_lo = (np.log(150) - np.log(100)) / d.sigma_ln
+    assert_allclose(max(z_hi, z_lo), 3.0)
+    assert min(z_hi, z_lo) < 3.0
+
+
+def test_discrete_weights():
+    d = dist.Discrete((1.0, 2.0, 3.0), (1.0, 2.0, 1.0))
+    x = d.ppf(np.random.default_rng(4).random(200_000))
+    assert_allclose([np.mean(x == v) for v in (1, 2, 3)], [0.25, 0.5, 0.25], atol=0.005)
+
+
+# --- sampling --------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("sampler", ["random", "lhs", "sobol"])
+def test_uniforms_do_not_depend_on_chunking(sampler):
+    total, dim = 10_000, 4
+    whole = sampling.uniforms(sampler, 7, total, 0, total, dim)
+    cuts = [0, 1, 999, 4096, 4097, 8191, 10_000]
+    pieces = np.vstack([sampling.uniforms(sampler, 7, total, a, b, dim)
+                        for a, b in zip(cuts[:-1], cuts[1:])])
+    assert np.array_equal(whole, pieces)
+    assert whole.min() > 0 and whole.max() < 1
+
+
+def test_lhs_block_is_stratified():
+    total = 4096
+    u = sampling.uniforms("lhs", 3, total, 0, total, 3)
+    # a Latin hypercube puts exactly one point in each of n equal strata per dimension
+    # (McKay, Beckman & Conover, Technometrics 21 (1979) 239-245)
+    for j in range(3):
+        assert np.array_equal(np.sort(np.floor(u[:, j] * total)), np.arange(total))
+
+
+def test_seeds_differ():
+    a = sampling.uniforms("random", 1, 100, 0, 100, 2)
+    b = sampling.uniforms("random", 2, 100, 0, 100, 2)
+    assert not np.allclose(a, b)
+
+
+def test_copula_imposes_correlation_and_keeps_marginals():
+    u = sampling.uniforms("random", 5, 200_000, 0, 200_000, 2)
+    c = np.array([[1.0, 0.8], [0.8, 1.0]])
+    v = sampling.apply_copula(u, c)
+    z = sps.norm.ppf(v)
+    # the normal scores carry the requested correlation (definition of the Gaussian copula)
+    assert_allclose(np.corrcoef(z.T)[0, 1], 0.8, atol=0.005)
+    # marginals stay uniform: Kolmogorov-Smirnov against U(0,1) (scipy.stats.kstest)
+    assert sps.kstest(v[:, 1], "uniform").pvalue > 0.01
+
+
+# --- runner and summary -----------------------------------------------------------------------
+
+def test_summary_counts_are_exact(linear):
+    study = linear("random")
+    res = run(study)
+    df = res.samples
+    # y = x1 + 2 x2 exactly, evaluated per sample
+    assert_allclose(df["y"], df["x1"] + 2 * df["x2"], rtol=0, atol=0)
+    failures = int(np.sum(df["y"] < 0))
+    c = res.summary["criteria"]["y_positive"]
+    assert c["failures"] == failures and c["evaluated"] == 5000
+    # scipy.stats.binomtest exact interval as reference
+    ci = sps.binomtest(failures, 5000).proportion_ci(method="exact")
+    assert_allclose([c["ci_low"], c["ci_high"]], [ci.low, ci.high], rtol=1e-9)
+    assert res.summary["yield"]["passes"] == 5000 - failures
+    assert res.summary["verdict"] == ("fail" if failures else "pass")
+
+
+def test_not_converged_is_counted_never_passed(linear):
+    study = linear("random", '[solver]\ndiverge_above = "2.5 V"\n')
+    res = run(study)
+    df = res.samples
+    bad = df["x1"] > 2.5
+    assert res.summary["not_converged"] == int(bad.sum()) > 0
+    assert not df.loc[bad, "pass"].any()
+    assert df.loc[bad, "y"].isna().all()
+    assert res.summary["yield"]["passes"] == int((~bad & (df["y"] >= 0)).sum())
+    assert res.summary["verdict"] == "fail"
+
+
+@pytest.mark.parametrize("sampler", ["random", "lhs", "sobol"])
+def test_same_seed_same_summary_whatever_jobs_and_chunks(linear, tmp_path, sampler):
+    from tolerance.summary import comparable
+
+    study = linear(sampler)
+    a = run(study, jobs=1, chunk_size=5000, out=tmp_path / "a").summary
+    b = run(study, jobs=2, chunk_size=777, out=tmp_path / "b").summary
+    c = run(study, jobs=1, chunk_size=4096).summary
+    assert comparable(a) == comparable(b) == comparable(c)
+    on_disk = json.loads((tmp_path / "b" / "summary.json").read_text())
+    assert comparable(on_disk) == json.loads(json.dumps(comparable(b)))
+
+
+def test_overrides_pin_and_scale(linear):
+    from tolerance.runner import Override
+
+    study = linear("lhs")
+    base = run(study).samples
+    pinned = run(study, overrides={"x1": Override("pin", 0.5)}).samples
+    assert np.all(pinned["x1"] == 0.5)
+    # common random numbers: the other parameter keeps its values exactly
+    assert np.array_equal(pinned["x2"], base["x2"])
+    scaled = run(study, overrides={"x2": Override("scale", 2.0)}).samples
+    assert np.array_equal(scaled["x2"], 2.0 * base["x2"])
+
+
+def test_allowed_failure_rate_gives_three_verdicts(write_study):
+    from tolerance.limits import verdict
+
+    # exact interval of 3 failures in 1000: (0.00062, 0.00874) (scipy.stats.binomtest)
+    assert verdict(3, 0.00062, 0.00874, 0.0) == "fail"
+    assert verdict(3, 0.00062, 0.00874, 0.01) == "pass"
+    assert verdict(3, 0.00062, 0.00874, 0.005) == "undecided"
+    assert verdict(0, 0.0, 0.003, 0.0) == "pass"
+
+
+def test_study_limits_replace_stage_default(linear):
+    study = linear("random", '[limits]\ny = {min = "0.5 V"}\nz = {max = 2}\n')
+    names = {c.name: c for c in study.criteria}
+    assert names["y_positive"].minimum == 0.5
+    assert names["z"].maximum == 2.0
+    assert len(study.criteria) == 2
+
+
+def test_correlation_between_parameters(linear):
+    study = linear("random", '[[correlation]]\nparameters = ["x1", "x2"]\ncoefficient = 0.9\n')
+    df = run(study, samples=20_000).samples
+    # rank correlation of a Gaussian copula: rho_s = (6/pi) asin(r/2) (Kruskal 1958)
+    assert_allclose(sps.spearmanr(df["x1"], df["x2"]).statistic,
+                    6 / np.pi * np.arcsin(0.45), atol=0.01)
+
+
+def test_engine_errors_name_key(linear):
+    with pytest.raises(StudyError, match=r"run\.sampler.*did you mean 'sobol'"):
+        linear("sobel")
+    with pytest.raises(StudyError, match=r"limits\.w: is not a metric"):
+        linear("lhs", "[limits]\nw = {min = 1}\n")
+    with pytest.raises(StudyError, match=r"correlation\[0\]\.coefficient"):
+        linear("lhs", '[[correlation]]\nparameters = ["x1", "x2"]\ncoefficient = 1.5\n')
+    text = LINEAR.format(sampler="lhs").replace("[inputs]", "[inputs]\nx3 = 1")
+    from tolerance.study import load_study as load_text
+
+    with pytest.raises(StudyError, match=r"inputs\.x3: unknown key"):
+        load_text("s.toml", text=text)

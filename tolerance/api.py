@@ -1,0 +1,185 @@
+"""Python API for notebooks and scripts; the CLI is a thin layer over these functions.
+
+>>> import tolerance
+>>> study = tolerance.load_study("studies/lamp_panel_darlington.toml")   # doctest: +SKIP
+>>> result = study.run(samples=20_000, seed=3, jobs=2)                    # doctest: +SKIP
+>>> result.summary["yield"]["estimate"], result.samples.head()            # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+from dataclasses import dataclass, field
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from tolerance import runner
+from tolerance.runner import Override, RunSpec
+from tolerance.study import SAMPLERS, Study, StudyError
+from tolerance.study import load_study as _load_study_file
+from tolerance.summary import summarize
+
+SUMMARY_FILE = "summary.json"
+SAMPLES_DIR = "samples.parquet"
+
+
+class UsageError(ValueError):
+    """A bad command-line or API argument (exit status 2)."""
+
+
+def demo_text() -> str:
+    return resources.files("tolerance").joinpath("demo", "demo.toml").read_text("utf-8")
+
+
+DEMO_NAME = "demo.toml"
+
+
+def load_study(path=None) -> Study:
+    """Load a study file; with no path, the built-in demo study."""
+    if path is None:
+        return _load_study_file(f"(built-in) {DEMO_NAME}", text=demo_text())
+    return _load_study_file(path)
+
+
+@dataclass
+class RunResult:
+    """Outcome of a run: the summary dict and the per-sample table.
+
+    Attributes
+    ----------
+    study : Study
+    summary : dict
+        See README "Outputs" (also written as summary.json).
+    folder : Path or None
+        Output folder, when the run wrote one.
+    """
+
+    study: Study
+    summary: dict
+    folder: Path | None = None
+    _samples: pd.DataFrame | None = field(default=None, repr=False)
+
+    @property
+    def samples(self) -> pd.DataFrame:
+        """Inputs, metrics and pass flags per sample [SI units]."""
+        if self._samples is None and self.folder is not None:
+            self._samples = runner.read_samples(self.folder / SAMPLES_DIR)
+        return self._samples
+
+    @property
+    def criteria(self) -> pd.DataFrame:
+        """One row per criterion: metric, limits, failures, rate and interval, verdict."""
+        rows = []
+        for name, c in self.summary["criteria"].items():
+            rows.append({"criterion": name, "metric": c["metric"], "min": c["limit"]["min"],
+                         "max": c["limit"]["max"], "failures": c["failures"], "rate": c["rate"],
+                         "ci_low": c["ci_low"], "ci_high": c["ci_high"], "verdict": c["verdict"]})
+        return pd.DataFrame(rows).set_index("criterion")
+
+    @property
+    def metrics(self) -> pd.DataFrame:
+        """One row per metric: unit, mean, std, extremes and percentiles [SI units]."""
+        return pd.DataFrame(self.summary["metrics"]).T
+
+
+def _prepare_folder(out: Path, force: bool, resume: bool) -> None:
+    if out.exists() and not out.is_dir():
+        raise UsageError(f"{out}: exists and is not a folder")
+    if out.exists() and any(out.iterdir()) and not (force or resume):
+        raise UsageError(f"{out}: already holds results; choose another --out, add --resume to "
+                         "continue that run, or --force to replace it")
+    if out.exists() and force and not resume:
+        for child in out.iterdir():
+            if child.is_dir():
+                shutil.rmtree(child)
+            else:
+                child.unlink()
+    out.mkdir(parents=True, exist_ok=True)
+
+
+def write_json(path: Path, data: dict) -> None:
+    """Write JSON atomically (temporary name, then rename)."""
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(json.dumps(data, indent=2, sort_keys=False, default=_json_default) + "\n",
+                   encoding="utf-8")
+    os.replace(tmp, path)
+
+
+def _json_default(obj):
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    raise TypeError(f"not JSON serializable: {type(obj).__name__}")
+
+
+def make_spec(study: Study, samples: int | None = None, seed: int | None = None,
+              sampler: str | None = None, overrides: dict[str, Override] | None = None) -> RunSpec:
+    samples = study.settings.samples if samples is None else int(samples)
+    seed = study.settings.seed if seed is None else int(seed)
+    sampler = study.settings.sampler if sampler is None else sampler
+    if samples < 1:
+        raise UsageError(f"samples must be at least 1, got {samples}")
+    if seed < 0:
+        raise UsageError(f"seed must be zero or positive, got {seed}")
+    if sampler not in SAMPLERS:
+        raise UsageError(f"sampler must be one of {', '.join(SAMPLERS)}, got {sampler!r}")
+    overrides = overrides or {}
+    for name in overrides:
+        if name not in study.parameter_names:
+            raise UsageError(f"'{name}' is not a parameter of {study.path}; "
+                             f"parameters: {', '.join(study.parameter_names)}")
+    corr = study.correlation_matrix() if study.correlations else None
+    return RunSpec(study.stage, study.parameters, study.criteria, corr, sampler, seed, samples,
+                   study.study_hash, tuple(sorted(overrides.items())))
+
+
+def run(study: Study, samples: int | None = None, seed: int | None = None,
+        sampler: str | None = None, jobs: int = 1, chunk_size: int | None = None,
+        out=None, progress: bool = False, resume: bool = False, force: bool = False,
+        backend: str = "loky", scheduler: str | None = None,
+        overrides: dict[str, Override] | None = None, extra: dict | None = None) -> RunResult:
+    """Run a study's Monte Carlo analysis.
+
+    Parameters
+    ----------
+    study : Study
+    samples, seed, sampler : optional
+        Override the study's ``[run]`` settings.
+    jobs : int
+        Parallel workers (joblib); results do not depend on it.
+    chunk_size : int, optional
+        Samples per chunk; results do not depend on it.
+    out : path, optional
+        Output folder for summary.json and samples.parquet; without it the samples stay in
+        memory.
+    overrides : dict, optional
+        Parameter name -> :class:`~tolerance.runner.Override` (what-if pins, value choice).
+    """
+    spec = make_spec(study, samples, seed, sampler, overrides)
+    chunk = study.settings.chunk_size if chunk_size is None else int(chunk_size)
+    if chunk < 1:
+        raise UsageError(f"chunk size must be at least 1, got {chunk}")
+    if jobs < 1:
+        raise UsageError(f"jobs must be at least 1, got {jobs}")
+    if backend not in ("loky", "dask"):
+        raise UsageError(f"backend must be loky or dask, got {backend!r}")
+    meta = dict(study_path=study.path, title=study.title, stage_name=study.stage_name,
+                allowed_rate=study.settings.max_failure_rate, extra=extra)
+    if out is None:
+        df = runner.execute(spec, chunk, jobs, None, progress, backend=backend,
+                            scheduler=scheduler)
+        summary = summarize(spec, lambda name: df[name].to_numpy(), **meta)
+        return RunResult(study, summary, None, df)
+    out = Path(out)
+    _prepare_folder(out, force, resume)
+    folder = out / SAMPLES_DIR
+    runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler)
+    summary = summarize(spec, lambda name: runner.read_column(folder, name), **meta)
+    write_json(out / SUMMARY_FILE, summary)
+    return RunResult(study, summary, out)

@@ -1,0 +1,289 @@
+"""Distributions of toleranced quantities.
+
+Each distribution maps uniform numbers on (0, 1) to values through its inverse CDF (``ppf``), so
+every sampler (plain random, Latin hypercube, Sobol) and the Gaussian copula work on the same
+uniform design. Each also states a ``nominal`` value and the ``low``/``high`` bounds that worst-case
+analysis uses as the tolerance limits.
+
+Temperature coefficients are not applied here; the models apply them at each sample's temperature.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import special, stats
+
+#: smallest distance of a uniform number from 0 or 1 before an unbounded inverse CDF is taken
+UNIFORM_EPS = 1e-12
+
+
+def _clip(u: np.ndarray) -> np.ndarray:
+    return np.clip(u, UNIFORM_EPS, 1.0 - UNIFORM_EPS)
+
+
+@dataclass(frozen=True)
+class Distribution:
+    """Base class: a one-dimensional distribution with tolerance bounds."""
+
+    kind = "abstract"
+
+    @property
+    def nominal(self) -> float:  # pragma: no cover - overridden by every subclass
+        raise AttributeError("nominal")
+
+    @property
+    def low(self) -> float:  # pragma: no cover - overridden
+        raise AttributeError("low")
+
+    @property
+    def high(self) -> float:  # pragma: no cover - overridden
+        raise AttributeError("high")
+
+    @property
+    def varies(self) -> bool:
+        """True when the distribution has any spread."""
+        return self.high > self.low
+
+    def ppf(self, u: np.ndarray) -> np.ndarray:  # pragma: no cover - overridden
+        raise AttributeError("ppf")
+
+    def cdf(self, x: np.ndarray) -> np.ndarray:  # pragma: no cover - overridden
+        raise AttributeError("cdf")
+
+    def describe(self) -> str:  # pragma: no cover - overridden
+        raise AttributeError("describe")
+
+
+@dataclass(frozen=True)
+class Fixed(Distribution):
+    """No spread: every sample takes ``value``."""
+
+    value: float
+    kind = "fixed"
+
+    @property
+    def nominal(self) -> float:
+        return self.value
+
+    @property
+    def low(self) -> float:
+        return self.value
+
+    @property
+    def high(self) -> float:
+        return self.value
+
+    def ppf(self, u):
+        return np.full(np.shape(u), self.value, dtype=float)
+
+    def cdf(self, x):
+        return (np.asarray(x, dtype=float) >= self.value).astype(float)
+
+    def describe(self) -> str:
+        return "fixed"
+
+
+@dataclass(frozen=True)
+class Uniform(Distribution):
+    """Uniform between ``lower`` and ``upper``; the nominal is the given centre value."""
+
+    lower: float
+    upper: float
+    center: float | None = None
+    kind = "uniform"
+
+    @property
+    def nominal(self) -> float:
+        return 0.5 * (self.lower + self.upper) if self.center is None else self.center
+
+    @property
+    def low(self) -> float:
+        return self.lower
+
+    @property
+    def high(self) -> float:
+        return self.upper
+
+    def ppf(self, u):
+        return self.lower + (self.upper - self.lower) * np.asarray(u, dtype=float)
+
+    def cdf(self, x):
+        span = self.upper - self.lower
+        return np.clip((np.asarray(x, dtype=float) - self.lower) / span, 0.0, 1.0)
+
+    def describe(self) -> str:
+        return "uniform"
+
+
+@dataclass(frozen=True)
+class Normal(Distribution):
+    """Normal with the tolerance at ``sigmas`` standard deviations (default 3).
+
+    ``low``/``high`` are mean -/+ sigmas * sigma: the tolerance limits, used by worst-case analysis.
+    Samples are not truncated; about 0.27 % of them fall outside +-3 sigma.
+    """
+
+    mean: float
+    sigma: float
+    sigmas: float = 3.0
+    kind = "normal"
+
+    @property
+    def nominal(self) -> float:
+        return self.mean
+
+    @property
+    def low(self) -> float:
+        return self.mean - self.sigmas * self.sigma
+
+    @property
+    def high(self) -> float:
+        return self.mean + self.sigmas * self.sigma
+
+    def ppf(self, u):
+        return self.mean + self.sigma * special.ndtri(_clip(np.asarray(u, dtype=float)))
+
+    def cdf(self, x):
+        return special.ndtr((np.asarray(x, dtype=float) - self.mean) / self.sigma)
+
+    def describe(self) -> str:
+        return f"normal, tolerance at {self.sigmas:g} sigma"
+
+
+@dataclass(frozen=True)
+class TruncatedNormal(Distribution):
+    """Normal with the tolerance at ``sigmas`` sigma, truncated to ``[lower, upper]``.
+
+    Models parts screened at production test: nothing outside the tolerance is shipped.
+    """
+
+    mean: float
+    sigma: float
+    lower: float
+    upper: float
+    sigmas: float = 3.0
+    kind = "truncnormal"
+    _frozen: object = field(default=None, init=False, repr=False, compare=False)
+
+    def __post_init__(self):
+        a = (self.lower - self.mean) / self.sigma
+        b = (self.upper - self.mean) / self.sigma
+        object.__setattr__(
+            self, "_frozen", stats.truncnorm(a, b, loc=self.mean, scale=self.sigma)
+        )
+
+    @property
+    def nominal(self) -> float:
+        return self.mean
+
+    @property
+    def low(self) -> float:
+        return self.lower
+
+    @property
+    def high(self) -> float:
+        return self.upper
+
+    def ppf(self, u):
+        return self._frozen.ppf(np.asarray(u, dtype=float))
+
+    def cdf(self, x):
+        return self._frozen.cdf(np.asarray(x, dtype=float))
+
+    def describe(self) -> str:
+        return f"normal at {self.sigmas:g} sigma, truncated at the tolerance"
+
+
+@dataclass(frozen=True)
+class LogNormal(Distribution):
+    """Lognormal between a minimum and a maximum placed at -/+ ``sigmas`` sigma of ln(x).
+
+    The usual description of current gain between a datasheet's minimum and maximum: the
+    median is the geometric mean sqrt(min * max) unless a typical value is given, in which case
+    the median is the typical value and the wider side sets sigma (so both limits stay at or
+    beyond ``sigmas`` sigma).
+    """
+
+    lower: float
+    upper: float
+    typical: float | None = None
+    sigmas: float = 3.0
+    kind = "lognormal"
+
+    @property
+    def median(self) -> float:
+        if self.typical is not None:
+            return self.typical
+        return float(np.sqrt(self.lower * self.upper))
+
+    @property
+    def sigma_ln(self) -> float:
+        m = np.log(self.median)
+        return float(max(m - np.log(self.lower), np.log(self.upper) - m) / self.sigmas)
+
+    @property
+    def nominal(self) -> float:
+        return self.median
+
+    @property
+    def low(self) -> float:
+        return self.lower
+
+    @property
+    def high(self) -> float:
+        return self.upper
+
+    def ppf(self, u):
+        z = special.ndtri(_clip(np.asarray(u, dtype=float)))
+        return np.exp(np.log(self.median) + self.sigma_ln * z)
+
+    def cdf(self, x):
+        x = np.asarray(x, dtype=float)
+        with np.errstate(divide="ignore"):
+            z = (np.log(np.maximum(x, 0.0)) - np.log(self.median)) / self.sigma_ln
+        return special.ndtr(z)
+
+    def describe(self) -> str:
+        return f"lognormal, min/max at {self.sigmas:g} sigma"
+
+
+@dataclass(frozen=True)
+class Discrete(Distribution):
+    """A finite set of values with weights (corners, temperature profiles, bins)."""
+
+    values: tuple[float, ...]
+    weights: tuple[float, ...]
+    kind = "discrete"
+
+    @property
+    def nominal(self) -> float:
+        w = np.asarray(self.weights) / np.sum(self.weights)
+        return float(self.values[int(np.argmax(w))])
+
+    @property
+    def low(self) -> float:
+        return float(min(self.values))
+
+    @property
+    def high(self) -> float:
+        return float(max(self.values))
+
+    def ppf(self, u):
+        w = np.asarray(self.weights, dtype=float)
+        edges = np.cumsum(w) / np.sum(w)
+        idx = np.searchsorted(edges, np.asarray(u, dtype=float), side="right")
+        return np.asarray(self.values, dtype=float)[np.minimum(idx, len(self.values) - 1)]
+
+    def cdf(self, x):
+        x = np.asarray(x, dtype=float)
+        w = np.asarray(self.weights, dtype=float) / np.sum(self.weights)
+        v = np.asarray(self.values, dtype=float)
+        return np.sum(w * (x[..., None] >= v), axis=-1)
+
+    def describe(self) -> str:
+        return f"discrete set of {len(self.values)}"
+
+
+DISTRIBUTION_KINDS = ("fixed", "uniform", "normal", "truncnormal", "lognormal", "discrete")

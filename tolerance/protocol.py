@@ -1,0 +1,157 @@
+"""The small contract between the engine and the physics.
+
+The engine samples :class:`Parameter` objects and hands a chunk of samples (a dict of 1-D arrays,
+SI units) to a configured stage's ``evaluate``; the stage returns a dict of metric arrays plus a
+boolean ``converged`` array. The engine never imports a concrete model: stages register
+themselves with :func:`register_stage`, and :func:`get_stage` imports ``tolerance.models`` on
+first use so that the registry is filled.
+
+A stage class is built from the study by ``configure(reader)``: it reads its sections through
+the :class:`tolerance.study.Reader`, which records every parameter it creates and every key it
+consumes (so unknown keys are reported with a did-you-mean).
+"""
+
+from __future__ import annotations
+
+import importlib
+from dataclasses import dataclass, field
+from typing import Callable, Protocol
+
+import numpy as np
+
+from tolerance.distributions import Distribution
+
+
+@dataclass(frozen=True)
+class Parameter:
+    """A named, sampled input of a stage.
+
+    Parameters
+    ----------
+    name : str
+        Dotted name used everywhere (samples, reports, ``--pin``), e.g. ``RB``, ``Q1.hfe``,
+        ``supply.voltage``, ``ambient.temperature``.
+    unit : str
+        Unit of the SI value, as understood by :mod:`tolerance.units` (``ohm``, ``V``,
+        ``temperature`` for kelvin values, ``1`` for dimensionless).
+    distribution : Distribution
+        How the value spreads between units.
+    description : str
+        One line for the parameter table.
+    key : str
+        Key path in the study file the parameter came from (for messages).
+    """
+
+    name: str
+    unit: str
+    distribution: Distribution
+    description: str = ""
+    key: str = ""
+
+    @property
+    def nominal(self) -> float:
+        return self.distribution.nominal
+
+    @property
+    def low(self) -> float:
+        return self.distribution.low
+
+    @property
+    def high(self) -> float:
+        return self.distribution.high
+
+    @property
+    def varies(self) -> bool:
+        return self.distribution.varies
+
+
+@dataclass(frozen=True)
+class MetricInfo:
+    """Unit and meaning of a metric; the nomenclature table of every report reads these."""
+
+    unit: str
+    description: str
+
+
+@dataclass(frozen=True)
+class Criterion:
+    """A pass/fail test of one metric: pass when ``minimum <= value <= maximum``.
+
+    ``source`` says where it came from: ``study`` (the [limits] table), ``stage`` (a default the
+    stage always applies, e.g. the saturation criterion) or ``rating`` (a part's rating).
+    """
+
+    name: str
+    metric: str
+    minimum: float | None = None
+    maximum: float | None = None
+    source: str = "study"
+    description: str = ""
+
+    def passes(self, values: np.ndarray) -> np.ndarray:
+        ok = np.isfinite(values)
+        if self.minimum is not None:
+            ok &= values >= self.minimum
+        if self.maximum is not None:
+            ok &= values <= self.maximum
+        return ok
+
+    def limit_text(self, fmt: Callable[[float], str] = lambda x: f"{x:.4g}") -> str:
+        parts = []
+        if self.minimum is not None:
+            parts.append(f">= {fmt(self.minimum)}")
+        if self.maximum is not None:
+            parts.append(f"<= {fmt(self.maximum)}")
+        return " and ".join(parts)
+
+
+class ConfiguredStage(Protocol):
+    """A stage bound to one study: its parameters, metrics and default criteria."""
+
+    name: str
+    parameters: list[Parameter]
+    metrics: dict[str, MetricInfo]
+    criteria: list[Criterion]
+
+    def evaluate(self, samples: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+        """Evaluate every metric for a chunk of samples (vectorized).
+
+        Returns a dict with one float array per metric named in ``metrics`` (NaN where the
+        solver failed) and a boolean array ``converged``.
+        """
+        ...
+
+
+@dataclass
+class StageEntry:
+    name: str
+    configure: Callable  # (reader) -> ConfiguredStage
+    description: str
+    parts: tuple[str, ...] = field(default_factory=tuple)
+
+
+_REGISTRY: dict[str, StageEntry] = {}
+
+
+def register_stage(name: str, description: str, parts: tuple[str, ...] = ()):
+    """Class or function decorator: register ``configure(reader)`` under ``name``."""
+
+    def wrap(configure):
+        _REGISTRY[name] = StageEntry(name, configure, description, tuple(parts))
+        return configure
+
+    return wrap
+
+
+def _load_models() -> None:
+    importlib.import_module("tolerance.models")
+
+
+def stage_names() -> list[str]:
+    _load_models()
+    return sorted(_REGISTRY)
+
+
+def get_stage(name: str) -> StageEntry | None:
+    _load_models()
+    return _REGISTRY.get(name)

@@ -1,0 +1,262 @@
+"""Chunked, parallel evaluation of a study.
+
+A run is cut into chunks of consecutive samples. Each chunk draws its own samples (see
+:mod:`tolerance.sampling`: the numbers depend only on the seed and the sample index), evaluates
+the stage on the whole chunk at once, applies the criteria and, when an output folder is given,
+writes one Parquet file per chunk (to a temporary name, then renamed, so a killed run never
+leaves a half-written chunk). Chunks run through ``joblib.Parallel``; the results come back in
+submission order, and every figure of the summary is computed afterwards from the full columns
+in sample order, so the summary does not depend on the number of workers or the chunk size.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from tolerance.protocol import Criterion, Parameter
+from tolerance.sampling import draw
+
+CHUNK_PREFIX = "part-"
+
+
+@dataclass(frozen=True)
+class Override:
+    """Change of one parameter for what-if and value-choice runs.
+
+    ``kind`` is ``"pin"`` (every sample takes ``value``) or ``"scale"`` (every sample is
+    multiplied by ``value``: a part moved to another nominal keeps its relative deviation, so the
+    candidates share their random numbers).
+    """
+
+    kind: str
+    value: float
+
+
+@dataclass(frozen=True)
+class RunSpec:
+    """Everything a worker needs to evaluate a chunk (picklable)."""
+
+    stage: object
+    parameters: tuple[Parameter, ...]
+    criteria: tuple[Criterion, ...]
+    correlation: np.ndarray | None
+    sampler: str
+    seed: int
+    samples: int
+    study_hash: str
+    overrides: tuple[tuple[str, Override], ...] = ()
+
+    @property
+    def signature(self) -> dict:
+        return {
+            "study_hash": self.study_hash,
+            "seed": self.seed,
+            "samples": self.samples,
+            "sampler": self.sampler,
+            "overrides": [[n, o.kind, o.value] for n, o in self.overrides],
+        }
+
+
+def chunk_ranges(total: int, chunk_size: int) -> list[tuple[int, int, int]]:
+    """(index, start, stop) of every chunk."""
+    return [(i, s, min(s + chunk_size, total)) for i, s in enumerate(range(0, total, chunk_size))]
+
+
+def criterion_column(name: str) -> str:
+    return f"pass.{name}"
+
+
+def evaluate_chunk(spec: RunSpec, start: int, stop: int) -> pd.DataFrame:
+    """Draw, evaluate and judge samples ``start:stop``; one row per sample."""
+    _, values = draw(spec.parameters, spec.correlation, spec.sampler, spec.seed, spec.samples,
+                     start, stop)
+    for name, override in spec.overrides:
+        if override.kind == "pin":
+            values[name] = np.full(stop - start, override.value)
+        else:
+            values[name] = values[name] * override.value
+    with np.errstate(all="ignore"):
+        result = spec.stage.evaluate(values)
+    converged = np.asarray(result.pop("converged"), dtype=bool)
+    columns: dict[str, np.ndarray] = {"sample": np.arange(start, stop, dtype=np.int64)}
+    columns.update(values)
+    for name in spec.stage.metrics:
+        col = np.asarray(result[name], dtype=float)
+        columns[name] = np.where(converged, col, np.nan)
+    columns["converged"] = converged
+    all_pass = converged.copy()
+    for c in spec.criteria:
+        ok = converged & c.passes(columns[c.metric])
+        columns[criterion_column(c.name)] = ok
+        all_pass &= ok
+    columns["pass"] = all_pass
+    return pd.DataFrame(columns)
+
+
+def _chunk_path(folder: Path, index: int) -> Path:
+    return folder / f"{CHUNK_PREFIX}{index:06d}.parquet"
+
+
+def _write_chunk(df: pd.DataFrame, path: Path, signature: dict, start: int, stop: int) -> None:
+    table = pa.Table.from_pandas(df, preserve_index=False)
+    meta = dict(table.schema.metadata or {})
+    meta[b"tolerance"] = json.dumps({**signature, "start": start, "stop": stop}).encode()
+    table = table.replace_schema_metadata(meta)
+    tmp = path.with_suffix(".parquet.tmp")
+    pq.write_table(table, tmp)
+    os.replace(tmp, path)
+
+
+def chunk_is_complete(path: Path, signature: dict, start: int, stop: int) -> bool:
+    """True when ``path`` holds this chunk of this very run (same study, seed, plan)."""
+    if not path.is_file():
+        return False
+    try:
+        meta = pq.read_schema(path).metadata or {}
+        stored = json.loads(meta.get(b"tolerance", b"{}"))
+    except (OSError, ValueError, pa.ArrowException):
+        return False
+    return stored == {**signature, "start": start, "stop": stop}
+
+
+def run_chunk_to_file(spec: RunSpec, index: int, start: int, stop: int, folder: str) -> int:
+    """Worker task: evaluate a chunk and write it; returns the number of samples."""
+    df = evaluate_chunk(spec, start, stop)
+    _write_chunk(df, _chunk_path(Path(folder), index), spec.signature, start, stop)
+    return stop - start
+
+
+@dataclass
+class Progress:
+    total: int
+    enabled: bool
+    done: int = 0
+    started: float = field(default_factory=time.perf_counter)
+
+    def advance(self, n: int) -> None:
+        self.done += n
+        if not self.enabled:
+            return
+        frac = self.done / self.total
+        width = 30
+        bar = "#" * int(width * frac) + "-" * (width - int(width * frac))
+        rate = self.done / max(time.perf_counter() - self.started, 1e-9)
+        sys.stderr.write(f"\r[{bar}] {100 * frac:5.1f} %  {self.done}/{self.total} samples"
+                         f"  {rate:,.0f}/s")
+        if self.done >= self.total:
+            sys.stderr.write("\n")
+        sys.stderr.flush()
+
+
+def execute(spec: RunSpec, chunk_size: int, jobs: int = 1, folder: Path | None = None,
+            progress: bool = False, resume: bool = False, backend: str = "loky",
+            scheduler: str | None = None) -> pd.DataFrame | None:
+    """Evaluate every chunk; return the samples (``folder`` None) or write them to ``folder``.
+
+    With ``resume`` the chunks already in ``folder`` that belong to this very run are kept.
+    """
+    from joblib import Parallel, delayed, parallel_config
+
+    ranges = chunk_ranges(spec.samples, chunk_size)
+    bar = Progress(spec.samples, progress)
+    if folder is None:
+        if jobs == 1:
+            frames = []
+            for _, s, e in ranges:
+                frames.append(evaluate_chunk(spec, s, e))
+                bar.advance(e - s)
+        else:
+            with _backend(backend, scheduler, jobs):
+                gen = Parallel(n_jobs=jobs, return_as="generator")(
+                    delayed(evaluate_chunk)(spec, s, e) for _, s, e in ranges)
+                frames = []
+                for f in gen:
+                    frames.append(f)
+                    bar.advance(len(f))
+        return pd.concat(frames, ignore_index=True)
+
+    folder.mkdir(parents=True, exist_ok=True)
+    for stale in folder.glob("*.tmp"):
+        stale.unlink()  # a chunk interrupted while being written
+    for path in chunk_files(folder):
+        if int(path.stem[len(CHUNK_PREFIX):]) >= len(ranges):
+            path.unlink()  # left from a run with another chunk plan
+    todo = []
+    for i, s, e in ranges:
+        if resume and chunk_is_complete(_chunk_path(folder, i), spec.signature, s, e):
+            bar.advance(e - s)
+        else:
+            todo.append((i, s, e))
+    if jobs == 1 and backend == "loky":
+        for i, s, e in todo:
+            bar.advance(run_chunk_to_file(spec, i, s, e, str(folder)))
+    else:
+        with _backend(backend, scheduler, jobs):
+            gen = Parallel(n_jobs=jobs, return_as="generator")(
+                delayed(run_chunk_to_file)(spec, i, s, e, str(folder)) for i, s, e in todo)
+            for n in gen:
+                bar.advance(n)
+    return None
+
+
+class _backend:
+    """Context selecting the joblib backend (loky locally, dask.distributed on a cluster)."""
+
+    def __init__(self, backend: str, scheduler: str | None, jobs: int):
+        self.backend, self.scheduler, self.jobs = backend, scheduler, jobs
+        self._stack = []
+
+    def __enter__(self):
+        from joblib import parallel_config
+
+        if self.backend == "dask":
+            from distributed import Client, LocalCluster
+
+            if self.scheduler:
+                client = Client(self.scheduler)
+            else:
+                cluster = LocalCluster(n_workers=max(self.jobs, 1), threads_per_worker=1,
+                                       processes=True, host="127.0.0.1", dashboard_address=None)
+                self._stack.append(cluster)
+                client = Client(cluster)
+            self._stack.append(client)
+            cfg = parallel_config(backend="dask")
+        else:
+            cfg = parallel_config(backend="loky")
+        cfg.__enter__()
+        self._stack.append(cfg)
+        return self
+
+    def __exit__(self, *exc):
+        while self._stack:
+            obj = self._stack.pop()
+            if hasattr(obj, "__exit__") and not hasattr(obj, "close"):
+                obj.__exit__(*exc)
+            else:
+                obj.close()
+        return False
+
+
+def chunk_files(folder: Path) -> list[Path]:
+    return sorted(Path(folder).glob(f"{CHUNK_PREFIX}*.parquet"))
+
+
+def read_column(folder: Path, name: str) -> np.ndarray:
+    """One column of a chunked result, in sample order."""
+    parts = [pq.read_table(p, columns=[name]).column(name).to_numpy() for p in chunk_files(folder)]
+    return np.concatenate(parts) if parts else np.empty(0)
+
+
+def read_samples(folder: Path) -> pd.DataFrame:
+    files = chunk_files(folder)
+    return pd.concat([pq.read_table(p).to_pandas() for p in files], ignore_index=True)

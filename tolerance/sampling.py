@@ -1,0 +1,112 @@
+"""Sampling designs: plain random, Latin hypercube and scrambled Sobol.
+
+Every design produces uniform numbers on (0, 1), one column per parameter of the study (fixed
+ones included, so a column always belongs to the same parameter: what-if pins and value sweeps
+change values, never the random numbers of the other parameters). The uniform numbers go through
+an optional Gaussian copula (correlated parameters) and then each parameter's inverse CDF.
+
+Reproducibility does not depend on how the run is cut into chunks or spread over workers: the
+random numbers are defined per fixed block of :data:`BLOCK` samples, each block with its own
+stream ``SeedSequence(seed, spawn_key=(block,))``, and a chunk regenerates the blocks it
+overlaps. The Latin hypercube is stratified within each block (a blocked design, so memory stays
+flat at any sample count). Sobol points come from one scrambled sequence, reached at any offset
+with ``fast_forward``.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+from scipy import special
+from scipy.stats import qmc
+
+from tolerance.protocol import Parameter
+
+#: samples per random block; part of the definition of a seed's results, never change lightly
+BLOCK = 4096
+
+
+def _block_uniforms(kind: str, seed: int, block: int, size: int, dim: int) -> np.ndarray:
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block,)))
+    if kind == "random":
+        return rng.random((size, dim))
+    if kind == "lhs":
+        return qmc.LatinHypercube(d=dim, rng=rng).random(size)
+    raise ValueError(f"unknown block design {kind!r}")
+
+
+def uniforms(sampler: str, seed: int, total: int, start: int, stop: int, dim: int) -> np.ndarray:
+    """Uniform design rows ``start:stop`` of a run of ``total`` samples.
+
+    Parameters
+    ----------
+    sampler : {'random', 'lhs', 'sobol'}
+    seed : int
+        The run's seed.
+    total : int
+        Total samples of the run (the Latin hypercube's last block is sized by it).
+    start, stop : int
+        Row range wanted.
+    dim : int
+        Number of parameters.
+
+    Returns
+    -------
+    ndarray, shape (stop - start, dim)
+        Values in (0, 1).
+    """
+    n = stop - start
+    if dim == 0:
+        return np.empty((n, 0))
+    if sampler == "sobol":
+        engine = qmc.Sobol(d=dim, scramble=True,
+                           rng=np.random.default_rng(np.random.SeedSequence(seed)))
+        if start:
+            engine.fast_forward(start)
+        with warnings.catch_warnings():
+            # the balance warning concerns sample counts that are not powers of two; a chunk
+            # of a longer sequence is still the same sequence
+            warnings.simplefilter("ignore", UserWarning)
+            u = engine.random(n)
+        return u
+    out = np.empty((n, dim))
+    first, last = start // BLOCK, (stop - 1) // BLOCK
+    for block in range(first, last + 1):
+        b0 = block * BLOCK
+        size = min(BLOCK, total - b0)
+        u = _block_uniforms(sampler, seed, block, size, dim)
+        lo, hi = max(start, b0), min(stop, b0 + size)
+        out[lo - start:hi - start] = u[lo - b0:hi - b0]
+    return out
+
+
+def apply_copula(u: np.ndarray, correlation: np.ndarray | None) -> np.ndarray:
+    """Impose a correlation of the normal scores (Gaussian copula) on uniform columns.
+
+    ``correlation`` is the matrix of the normal scores (identity: nothing to do). Marginals stay
+    uniform: z = Phi^-1(u), z' = z L^T with L the Cholesky factor, u' = Phi(z').
+    """
+    if correlation is None or np.allclose(correlation, np.eye(len(correlation))):
+        return u
+    active = np.flatnonzero(np.any(correlation - np.eye(len(correlation)) != 0, axis=0))
+    sub = correlation[np.ix_(active, active)]
+    chol = np.linalg.cholesky(sub)
+    z = special.ndtri(np.clip(u[:, active], 1e-15, 1 - 1e-15))
+    out = u.copy()
+    out[:, active] = special.ndtr(z @ chol.T)
+    return out
+
+
+def values(parameters: list[Parameter] | tuple[Parameter, ...], u: np.ndarray) -> dict[str, np.ndarray]:
+    """Map uniform columns to parameter values through each inverse CDF."""
+    return {p.name: np.asarray(p.distribution.ppf(u[:, i]), dtype=float)
+            for i, p in enumerate(parameters)}
+
+
+def draw(parameters, correlation, sampler: str, seed: int, total: int, start: int,
+         stop: int) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+    """Uniform design rows and parameter values for samples ``start:stop``."""
+    u = uniforms(sampler, seed, total, start, stop, len(parameters))
+    u = apply_copula(u, correlation)
+    return u, values(parameters, u)

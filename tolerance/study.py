@@ -1,0 +1,596 @@
+"""Study files: TOML to a validated, immutable :class:`Study`.
+
+A study file is data only (stdlib ``tomllib``; nothing is evaluated). The engine reads the
+top-level keys it owns (``stage``, ``title``, ``description``, ``[run]``, ``[limits]``,
+``[[correlation]]``); the stage reads everything else through a :class:`Reader`, which turns
+toleranced quantities into :class:`~tolerance.protocol.Parameter` objects and remembers every key
+it consumed, so that any key nobody read is reported as unknown, with a did-you-mean.
+
+Every error is a :class:`StudyError` naming the file, the key path and what was expected.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from tolerance import distributions as dist
+from tolerance.protocol import ConfiguredStage, Criterion, Parameter, get_stage, stage_names
+from tolerance.units import UnitError, parse_quantity
+
+SAMPLERS = ("random", "lhs", "sobol")
+_MISSING = object()
+
+
+class StudyError(ValueError):
+    """Bad input: the message names the file, the key path and what was expected."""
+
+    def __init__(self, file: str, key: str, message: str):
+        self.file = file
+        self.key = key
+        self.message = message
+        super().__init__(f"{file}: {key}: {message}" if key else f"{file}: {message}")
+
+
+def _did_you_mean(word: str, candidates) -> str:
+    close = difflib.get_close_matches(word, list(candidates), n=1, cutoff=0.6)
+    return f"; did you mean '{close[0]}'?" if close else ""
+
+
+def _type_name(value: Any) -> str:
+    if isinstance(value, bool):
+        return "a true/false value"
+    if isinstance(value, dict):
+        return "a table"
+    if isinstance(value, list):
+        return "a list"
+    if isinstance(value, (int, float)):
+        return "a number"
+    return "a string"
+
+
+@dataclass
+class _Context:
+    file: str
+    parameters: dict[str, Parameter] = field(default_factory=dict)
+    readers: list["Reader"] = field(default_factory=list)
+
+
+class Reader:
+    """Reads one table of a study file, recording what it consumed.
+
+    Parameters
+    ----------
+    data : dict
+        The table.
+    path : str
+        Its key path ('' for the top level).
+    context : _Context
+        Shared state: the file name and the parameters created so far.
+    """
+
+    def __init__(self, data: dict, path: str, context: _Context, exists: bool = True):
+        self._data = data
+        self.path = path
+        self._ctx = context
+        self._used: set[str] = set()
+        self.exists = exists
+        context.readers.append(self)
+
+    # -- helpers ---------------------------------------------------------------------------
+    @property
+    def file(self) -> str:
+        return self._ctx.file
+
+    def key(self, name: str) -> str:
+        return f"{self.path}.{name}" if self.path else name
+
+    def error(self, name: str | None, message: str) -> StudyError:
+        return StudyError(self.file, self.key(name) if name else self.path, message)
+
+    def has(self, name: str) -> bool:
+        return name in self._data
+
+    def keys(self) -> list[str]:
+        return list(self._data)
+
+    def _get(self, name: str, default):
+        if name in self._data:
+            self._used.add(name)
+            return self._data[name]
+        if default is _MISSING:
+            raise self.error(name, "is required but missing")
+        return default
+
+    def ignore(self, name: str) -> None:
+        """Mark a key as consumed without reading it (it is read elsewhere)."""
+        self._used.add(name)
+
+    # -- plain values ----------------------------------------------------------------------
+    def table(self, name: str, required: bool = False) -> "Reader":
+        if name not in self._data:
+            if required:
+                raise self.error(name, "is required but missing; expected a table")
+            return Reader({}, self.key(name), self._ctx, exists=False)
+        value = self._get(name, _MISSING)
+        if not isinstance(value, dict):
+            raise self.error(name, f"expected a table, got {_type_name(value)}")
+        return Reader(value, self.key(name), self._ctx)
+
+    def string(self, name: str, default=_MISSING, choices=None) -> str:
+        value = self._get(name, default)
+        if value is default and default is not _MISSING:
+            return value
+        if not isinstance(value, str):
+            raise self.error(name, f"expected a string, got {_type_name(value)}")
+        if choices is not None and value not in choices:
+            raise self.error(
+                name,
+                f"'{value}' is not one of {', '.join(map(str, choices))}"
+                + _did_you_mean(value, choices),
+            )
+        return value
+
+    def boolean(self, name: str, default=_MISSING) -> bool:
+        value = self._get(name, default)
+        if not isinstance(value, bool):
+            raise self.error(name, f"expected true or false, got {_type_name(value)}")
+        return value
+
+    def integer(self, name: str, default=_MISSING, minimum: int | None = None,
+                maximum: int | None = None) -> int:
+        value = self._get(name, default)
+        if isinstance(value, bool) or not isinstance(value, int):
+            if isinstance(value, float) and value.is_integer():
+                value = int(value)
+            else:
+                raise self.error(name, f"expected a whole number, got {value!r}")
+        if minimum is not None and value < minimum:
+            raise self.error(name, f"must be at least {minimum}, got {value}")
+        if maximum is not None and value > maximum:
+            raise self.error(name, f"must be at most {maximum}, got {value}")
+        return value
+
+    def _convert(self, name: str, raw, unit: str) -> float:
+        if isinstance(raw, (dict, list)):
+            raise self.error(name, f"expected a single quantity, got {_type_name(raw)}")
+        try:
+            return parse_quantity(raw, unit)
+        except UnitError as exc:
+            raise self.error(name, str(exc)) from None
+
+    def _check_range(self, name: str, value: float, unit: str, positive: bool,
+                     minimum: float | None, maximum: float | None) -> None:
+        if positive and not value > 0:
+            raise self.error(name, f"must be positive, got {value:g} ({unit})")
+        if minimum is not None and value < minimum:
+            raise self.error(name, f"must be at least {minimum:g} ({unit}), got {value:g}")
+        if maximum is not None and value > maximum:
+            raise self.error(name, f"must be at most {maximum:g} ({unit}), got {value:g}")
+
+    def quantity(self, name: str, unit: str, default=_MISSING, positive: bool = False,
+                 minimum: float | None = None, maximum: float | None = None) -> float:
+        """A fixed quantity (no spread) in SI units."""
+        raw = self._get(name, default)
+        if raw is default and default is not _MISSING:
+            return raw
+        value = self._convert(name, raw, unit)
+        self._check_range(name, value, unit, positive, minimum, maximum)
+        return value
+
+    def optional_quantity(self, name: str, unit: str, **kw) -> float | None:
+        return self.quantity(name, unit, default=None, **kw) if self.has(name) else None
+
+    # -- toleranced values -----------------------------------------------------------------
+    def parameter(self, name: str, unit: str, parameter_name: str, description: str = "",
+                  default=_MISSING, positive: bool = False, minimum: float | None = None,
+                  maximum: float | None = None, default_distribution: str = "normal",
+                  allow_tolerance_key: bool = False) -> Parameter:
+        """A toleranced quantity, registered as a sampled parameter.
+
+        Accepted forms of the value at ``name``:
+
+        - a single quantity: fixed (``"4k7"``, ``12``, ``"3.3 V"``);
+        - ``{nominal = ..., tolerance = "5%" | "0.2 V", distribution = ..., sigmas = 3}``;
+        - ``{min = ..., max = ..., typ = ..., distribution = ...}`` (default uniform;
+          ``lognormal`` places min and max at -/+ ``sigmas`` sigma of the logarithm);
+        - ``{values = [...], weights = [...]}``: a discrete set.
+
+        With ``allow_tolerance_key`` the sibling keys ``tolerance``, ``distribution`` and
+        ``sigmas`` of the enclosing table apply to a single quantity (the parts form
+        ``[parts.RB] value = "4k7"  tolerance = "1%"``).
+        """
+        key = self.key(name)
+        if name not in self._data and default is not _MISSING:
+            raw = default
+        else:
+            raw = self._get(name, _MISSING)
+        if allow_tolerance_key and not isinstance(raw, dict) and (
+            self.has("tolerance") or self.has("distribution") or self.has("sigmas")
+        ):
+            spec = {"nominal": raw}
+            for extra in ("tolerance", "distribution", "sigmas"):
+                if self.has(extra):
+                    spec[extra] = self._get(extra, _MISSING)
+            sub = Reader(spec, self.path, self._ctx)
+            distribution = sub._distribution(unit, positive, minimum, maximum,
+                                             default_distribution, name)
+        elif isinstance(raw, dict):
+            sub = Reader(raw, key, self._ctx)
+            distribution = sub._distribution(unit, positive, minimum, maximum,
+                                             default_distribution, None)
+        else:
+            value = self._convert(name, raw, unit)
+            self._check_range(name, value, unit, positive, minimum, maximum)
+            distribution = dist.Fixed(value)
+        if parameter_name in self._ctx.parameters:
+            raise self.error(name, f"defines parameter '{parameter_name}' a second time")
+        param = Parameter(parameter_name, unit, distribution, description, key)
+        self._ctx.parameters[parameter_name] = param
+        return param
+
+    def _distribution(self, unit, positive, minimum, maximum, default_distribution,
+                      nominal_key) -> dist.Distribution:
+        """Build a distribution from this (inline) table."""
+        nkey = nominal_key or "nominal"
+        kinds = dist.DISTRIBUTION_KINDS
+        if self.has("values"):
+            raw = self._get("values", _MISSING)
+            if not isinstance(raw, list) or not raw:
+                raise self.error("values", "expected a non-empty list of quantities")
+            values = tuple(self._convert(f"values[{i}]", v, unit) for i, v in enumerate(raw))
+            for i, v in enumerate(values):
+                self._check_range(f"values[{i}]", v, unit, positive, minimum, maximum)
+            if self.has("weights"):
+                wraw = self._get("weights", _MISSING)
+                if not isinstance(wraw, list) or len(wraw) != len(values):
+                    raise self.error("weights", f"expected a list of {len(values)} numbers")
+                weights = []
+                for i, w in enumerate(wraw):
+                    if isinstance(w, bool) or not isinstance(w, (int, float)) or not (
+                        math.isfinite(w) and w > 0
+                    ):
+                        raise self.error(f"weights[{i}]", f"expected a positive number, got {w!r}")
+                    weights.append(float(w))
+            else:
+                weights = [1.0] * len(values)
+            self.string("distribution", default="discrete", choices=("discrete",))
+            return dist.Discrete(values, tuple(weights))
+
+        kind = self.string("distribution", default=None, choices=kinds)
+        sigmas = 3.0
+        if self.has("sigmas"):
+            raw = self._get("sigmas", _MISSING)
+            if isinstance(raw, bool) or not isinstance(raw, (int, float)) or not (
+                math.isfinite(raw) and 0.5 <= raw <= 10
+            ):
+                raise self.error("sigmas", f"expected a number between 0.5 and 10, got {raw!r}")
+            sigmas = float(raw)
+
+        has_range = self.has("min") or self.has("max")
+        has_nominal = self.has(nkey)
+        if has_range and (has_nominal and self.has("tolerance")):
+            raise self.error(None, "give either min/max or nominal with tolerance, not both")
+        if has_range:
+            if not (self.has("min") and self.has("max")):
+                missing = "max" if self.has("min") else "min"
+                raise self.error(missing, "is required with the other bound")
+            lo = self.quantity("min", unit)
+            hi = self.quantity("max", unit)
+            self._check_range("min", lo, unit, positive, minimum, maximum)
+            self._check_range("max", hi, unit, positive, minimum, maximum)
+            if lo > hi:
+                raise self.error("min", f"min ({lo:g}) is above max ({hi:g})")
+            typ = None
+            for tkey in ("typ", "nominal"):
+                if self.has(tkey):
+                    typ = self.quantity(tkey, unit)
+                    if not lo <= typ <= hi:
+                        raise self.error(tkey, f"{typ:g} lies outside min..max ({lo:g}..{hi:g})")
+            kind = kind or "uniform"
+            if lo == hi or kind == "fixed":
+                return dist.Fixed(typ if typ is not None else 0.5 * (lo + hi))
+            if kind == "uniform":
+                return dist.Uniform(lo, hi, typ)
+            if kind == "lognormal":
+                if lo <= 0:
+                    raise self.error("min", "a lognormal needs a positive minimum")
+                return dist.LogNormal(lo, hi, typ, sigmas)
+            centre = typ if typ is not None else 0.5 * (lo + hi)
+            sigma = max(centre - lo, hi - centre) / sigmas
+            if kind == "normal":
+                return dist.Normal(centre, sigma, sigmas)
+            if kind == "truncnormal":
+                return dist.TruncatedNormal(centre, sigma, lo, hi, sigmas)
+            raise self.error("distribution", f"'{kind}' needs a list of values")
+
+        if not has_nominal:
+            raise self.error(None, f"expected '{nkey}' (with 'tolerance'), 'min' and 'max', "
+                                   "or 'values'")
+        nominal = self.quantity(nkey, unit)
+        self._check_range(nkey, nominal, unit, positive, minimum, maximum)
+        if not self.has("tolerance"):
+            if kind not in (None, "fixed"):
+                raise self.error("tolerance", f"is required for a {kind} distribution")
+            return dist.Fixed(nominal)
+        half = self._tolerance(nominal, unit)
+        kind = kind or default_distribution
+        lo, hi = nominal - half, nominal + half
+        if half == 0 or kind == "fixed":
+            return dist.Fixed(nominal)
+        if positive and lo <= 0:
+            raise self.error("tolerance", f"takes the value to {lo:g} or below; it must stay positive")
+        if minimum is not None and lo < minimum:
+            raise self.error("tolerance", f"takes the value below {minimum:g} ({unit})")
+        if kind == "uniform":
+            return dist.Uniform(lo, hi, nominal)
+        if kind == "normal":
+            return dist.Normal(nominal, half / sigmas, sigmas)
+        if kind == "truncnormal":
+            return dist.TruncatedNormal(nominal, half / sigmas, lo, hi, sigmas)
+        if kind == "lognormal":
+            if lo <= 0:
+                raise self.error("tolerance", "a lognormal needs the value to stay positive")
+            return dist.LogNormal(lo, hi, nominal, sigmas)
+        raise self.error("distribution", f"'{kind}' needs a list of values")
+
+    def _tolerance(self, nominal: float, unit: str) -> float:
+        """Half-width of a tolerance: relative ('5%', 0.05) or absolute ('0.2 V')."""
+        raw = self._get("tolerance", _MISSING)
+        if isinstance(raw, bool) or isinstance(raw, (dict, list)):
+            raise self.error("tolerance", f"expected a tolerance like 5% or 0.05, got {_type_name(raw)}")
+        absolute = None
+        if isinstance(raw, str) and "%" not in raw and "ppm" not in raw:
+            try:
+                absolute = parse_quantity(raw, unit if unit != "temperature" else "K")
+            except UnitError:
+                absolute = None
+        if absolute is not None and not _is_plain_number(raw):
+            half = abs(absolute)
+        else:
+            try:
+                rel = parse_quantity(raw, "1")
+            except UnitError:
+                raise self.error(
+                    "tolerance",
+                    f"{raw!r} is not a tolerance; write 5% or 0.05, or an absolute value with "
+                    "its unit",
+                ) from None
+            if not 0 <= rel < 1:
+                raise self.error("tolerance", f"must be at least 0 and below 100 %, got {rel:g}")
+            half = abs(nominal) * rel
+        return half
+
+
+def _is_plain_number(raw) -> bool:
+    try:
+        float(raw)
+        return True
+    except (TypeError, ValueError):
+        return False
+
+
+@dataclass(frozen=True)
+class RunSettings:
+    samples: int = 10_000
+    seed: int = 1
+    sampler: str = "lhs"
+    chunk_size: int = 16_384
+    max_failure_rate: float = 0.0
+
+
+@dataclass(frozen=True)
+class Correlation:
+    parameters: tuple[str, ...]
+    coefficient: float
+
+
+@dataclass(frozen=True)
+class Study:
+    """A validated study: immutable once built."""
+
+    path: str
+    study_hash: str
+    title: str
+    description: str
+    stage_name: str
+    stage: ConfiguredStage
+    parameters: tuple[Parameter, ...]
+    criteria: tuple[Criterion, ...]
+    settings: RunSettings
+    correlations: tuple[Correlation, ...]
+    text: str
+
+    @property
+    def parameter_names(self) -> list[str]:
+        return [p.name for p in self.parameters]
+
+    def parameter(self, name: str) -> Parameter:
+        for p in self.parameters:
+            if p.name == name:
+                return p
+        raise KeyError(name)
+
+    def run(self, **kwargs):
+        """Run the Monte Carlo analysis; see :func:`tolerance.api.run` for the arguments."""
+        from tolerance.api import run
+
+        return run(self, **kwargs)
+
+    def correlation_matrix(self) -> np.ndarray:
+        """Correlation matrix of the normal scores of all parameters (identity if none)."""
+        names = self.parameter_names
+        c = np.eye(len(names))
+        for corr in self.correlations:
+            idx = [names.index(n) for n in corr.parameters]
+            for i in idx:
+                for j in idx:
+                    if i != j:
+                        c[i, j] = corr.coefficient
+        return c
+
+
+ENGINE_KEYS = ("stage", "title", "description", "run", "limits", "correlation")
+
+
+def load_study(path, text: str | None = None) -> Study:
+    """Read, validate and configure a study file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The study file (TOML).
+    text : str, optional
+        The file contents, when already read (used for the built-in demo).
+
+    Raises
+    ------
+    StudyError
+        For anything wrong with the file, naming the file, the key and what was expected.
+    """
+    path = Path(path)
+    file = str(path)
+    if text is None:
+        try:
+            raw_bytes = path.read_bytes()
+        except FileNotFoundError:
+            raise StudyError(file, "", "no such study file") from None
+        except OSError as exc:
+            raise StudyError(file, "", f"cannot be read ({exc.strerror})") from None
+        try:
+            text = raw_bytes.decode("utf-8")
+        except UnicodeDecodeError:
+            raise StudyError(file, "", "is not UTF-8 text") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise StudyError(file, "", f"is not valid TOML ({exc})") from None
+    return build_study(data, file, text)
+
+
+def build_study(data: dict, file: str, text: str) -> Study:
+    ctx = _Context(file)
+    top = Reader(data, "", ctx)
+    names = stage_names()
+    stage_name = top.string("stage", choices=names)
+    title = top.string("title", default=Path(file).stem)
+    description = top.string("description", default="")
+    run = _read_run(top.table("run"))
+
+    entry = get_stage(stage_name)
+    stage = entry.configure(top)
+
+    parameters = tuple(ctx.parameters.values())
+    criteria = _read_limits(top.table("limits"), stage)
+    correlations = _read_correlations(top, ctx)
+
+    for reader in ctx.readers:
+        if not reader.exists:
+            continue
+        for k in reader._data:
+            if k not in reader._used:
+                known = set(reader._used)
+                if reader.path == "":
+                    known |= set(ENGINE_KEYS)
+                raise StudyError(file, reader.key(k), "unknown key" + _did_you_mean(k, known))
+
+    study_hash = hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
+    return Study(file, study_hash, title, description, stage_name, stage, parameters,
+                 criteria, run, correlations, text)
+
+
+def _read_run(r: Reader) -> RunSettings:
+    d = RunSettings()
+    return RunSettings(
+        samples=r.integer("samples", default=d.samples, minimum=1, maximum=10**9),
+        seed=r.integer("seed", default=d.seed, minimum=0, maximum=2**63 - 1),
+        sampler=r.string("sampler", default=d.sampler, choices=SAMPLERS),
+        chunk_size=r.integer("chunk_size", default=d.chunk_size, minimum=1, maximum=10**7),
+        max_failure_rate=r.quantity("max_failure_rate", "1", default=d.max_failure_rate,
+                                    minimum=0.0, maximum=0.5),
+    )
+
+
+def _read_limits(r: Reader, stage: ConfiguredStage) -> tuple[Criterion, ...]:
+    """Study limits replace the stage's defaults for the same metric; ratings stay."""
+    study_criteria = []
+    for metric in r.keys():
+        if metric not in stage.metrics:
+            raise r.error(metric, "is not a metric of this stage" +
+                          _did_you_mean(metric, stage.metrics))
+        spec = r.table(metric)
+        if not spec.exists or not (spec.has("min") or spec.has("max")):
+            raise r.error(metric, "expected a table with min and/or max, e.g. {min = 1.5}")
+        unit = stage.metrics[metric].unit
+        lo = spec.optional_quantity("min", unit)
+        hi = spec.optional_quantity("max", unit)
+        if lo is not None and hi is not None and lo > hi:
+            raise spec.error("min", f"min ({lo:g}) is above max ({hi:g})")
+        desc = spec.string("description", default="")
+        study_criteria.append(Criterion(metric, metric, lo, hi, "study", desc))
+    overridden = {c.metric for c in study_criteria}
+    defaults = [c for c in stage.criteria if c.metric not in overridden or c.source == "rating"]
+    # study criteria keep the default's name when they replace one (e.g. saturation)
+    names = {c.metric: c.name for c in stage.criteria if c.source == "stage"}
+    study_criteria = [
+        Criterion(names.get(c.metric, c.name), c.metric, c.minimum, c.maximum, c.source,
+                  c.description or next((d.description for d in stage.criteria
+                                         if d.metric == c.metric), ""))
+        for c in study_criteria
+    ]
+    seen = set()
+    out = []
+    for c in defaults + study_criteria:
+        if c.name in seen:
+            continue
+        seen.add(c.name)
+        out.append(c)
+    return tuple(out)
+
+
+def _read_correlations(top: Reader, ctx: _Context) -> tuple[Correlation, ...]:
+    if not top.has("correlation"):
+        return ()
+    raw = top._get("correlation", _MISSING)
+    if not isinstance(raw, list):
+        raise top.error("correlation", "expected an array of tables [[correlation]]")
+    out = []
+    for i, item in enumerate(raw):
+        key = f"correlation[{i}]"
+        if not isinstance(item, dict):
+            raise StudyError(ctx.file, key, "expected a table with parameters and coefficient")
+        r = Reader(item, key, ctx)
+        plist = r._get("parameters", _MISSING)
+        if not isinstance(plist, list) or len(plist) < 2 or not all(isinstance(p, str) for p in plist):
+            raise r.error("parameters", "expected a list of at least two parameter names")
+        for p in plist:
+            if p not in ctx.parameters:
+                raise r.error("parameters", f"'{p}' is not a parameter of this study" +
+                              _did_you_mean(p, ctx.parameters))
+            if not ctx.parameters[p].varies:
+                raise r.error("parameters", f"'{p}' has no spread, so it cannot be correlated")
+        coef = r._get("coefficient", _MISSING)
+        if isinstance(coef, bool) or not isinstance(coef, (int, float)) or not (
+            math.isfinite(coef) and -1 < coef < 1
+        ):
+            raise r.error("coefficient", f"expected a number strictly between -1 and 1, got {coef!r}")
+        out.append(Correlation(tuple(plist), float(coef)))
+    names = list(ctx.parameters)
+    c = np.eye(len(names))
+    for corr in out:
+        idx = [names.index(n) for n in corr.parameters]
+        for a in idx:
+            for b in idx:
+                if a != b:
+                    c[a, b] = corr.coefficient
+    if np.min(np.linalg.eigvalsh(c)) <= 0:
+        raise StudyError(ctx.file, "correlation", "the coefficients together do not form a "
+                                                  "valid (positive definite) correlation matrix")
+    return tuple(out)

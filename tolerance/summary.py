@@ -1,0 +1,107 @@
+"""The run summary: counted rates with exact intervals, percentiles, verdicts.
+
+Every figure is computed from whole columns in sample order (never from per-chunk partial sums),
+so the same seed gives the same summary whatever the number of workers or the chunk size.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+from typing import Callable
+
+import numpy as np
+
+from tolerance import __version__, limits, stats
+from tolerance.runner import RunSpec, criterion_column
+
+CONFIDENCE = 0.95
+
+
+def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path: str,
+              title: str, stage_name: str, allowed_rate: float,
+              extra: dict | None = None) -> dict:
+    """Build the summary dict of a finished run.
+
+    Parameters
+    ----------
+    spec : RunSpec
+        What was run.
+    column : callable
+        ``column(name) -> ndarray`` returns one column of the samples, in sample order.
+    """
+    n = spec.samples
+    converged = column("converged").astype(bool)
+    n_conv = int(converged.sum())
+    not_converged = n - n_conv
+    all_pass = column("pass").astype(bool)
+    passes = int(all_pass.sum())
+    y_low, y_high = stats.clopper_pearson(n - passes, n, CONFIDENCE)
+    fail_rate_low, fail_rate_high = y_low, y_high
+
+    criteria = {}
+    verdicts = []
+    for c in spec.criteria:
+        ok = column(criterion_column(c.name)).astype(bool)
+        failures = int(np.count_nonzero(converged & ~ok))
+        denom = max(n_conv, 1)
+        lo, hi = stats.clopper_pearson(failures, denom, CONFIDENCE)
+        v = limits.verdict(failures, float(lo), float(hi), allowed_rate)
+        verdicts.append(v)
+        criteria[c.name] = {
+            "metric": c.metric,
+            "limit": {"min": c.minimum, "max": c.maximum},
+            "source": c.source,
+            "description": c.description,
+            "failures": failures,
+            "evaluated": n_conv,
+            "rate": failures / denom if n_conv else float("nan"),
+            "ci_low": float(lo),
+            "ci_high": float(hi),
+            "zero_failure_upper": float(stats.zero_failure_upper(denom, CONFIDENCE))
+            if failures == 0 else None,
+            "verdict": v,
+        }
+
+    metrics = {}
+    for name, info in spec.stage.metrics.items():
+        entry = {"unit": info.unit, "description": info.description}
+        entry.update(stats.percentile_summary(column(name)))
+        metrics[name] = entry
+
+    overall = limits.overall(verdicts, not_converged)
+    saturation = criteria.get("saturation")
+    summary = {
+        "tool_version": __version__,
+        "title": title,
+        "study": study_path,
+        "study_hash": spec.study_hash,
+        "stage": stage_name,
+        "seed": spec.seed,
+        "samples": n,
+        "sampler": spec.sampler,
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "confidence": CONFIDENCE,
+        "max_failure_rate": allowed_rate,
+        "verdict": overall,
+        "yield": {
+            "estimate": passes / n,
+            "ci_low": float(1 - fail_rate_high),
+            "ci_high": float(1 - fail_rate_low),
+            "confidence": CONFIDENCE,
+            "passes": passes,
+        },
+        "saturation_failure_rate": saturation["rate"] if saturation else None,
+        "zero_failure_upper": float(stats.zero_failure_upper(n, CONFIDENCE)),
+        "not_converged": not_converged,
+        "criteria": criteria,
+        "metrics": metrics,
+        "overrides": {name: {"kind": o.kind, "value": o.value} for name, o in spec.overrides},
+    }
+    if extra:
+        summary.update(extra)
+    return summary
+
+
+def comparable(summary: dict) -> dict:
+    """The summary without its creation date (for reproducibility comparisons)."""
+    return {k: v for k, v in summary.items() if k != "created"}
