@@ -1,0 +1,353 @@
+"""Tests for tolerance.stats: binomial intervals, summaries, capability and tail estimates."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from tolerance.stats import (
+    capability,
+    clopper_pearson,
+    half_width,
+    percentile_summary,
+    tail_estimate,
+    zero_failure_upper,
+)
+
+# ---------------------------------------------------------------------------------------------
+# clopper_pearson / half_width / zero_failure_upper
+# ---------------------------------------------------------------------------------------------
+
+_KN = [(0, 1), (1, 1), (0, 10), (3, 10), (10, 10), (1, 29), (15, 148), (81, 263), (0, 20),
+       (7, 1000), (0, 100000), (50, 100), (999, 1000), (12, 50000)]  # fmt: skip
+
+
+@pytest.mark.parametrize(("k", "n"), _KN)
+@pytest.mark.parametrize("confidence", [0.9, 0.95, 0.99])
+def test_clopper_pearson_matches_scipy(k, n, confidence):
+    # scipy.stats.binomtest(...).proportion_ci(method="exact") as reference
+    ref = stats.binomtest(k, n).proportion_ci(confidence_level=confidence, method="exact")
+    low, high = clopper_pearson(k, n, confidence)
+    assert isinstance(low, float) and isinstance(high, float)
+    # binomtest finds the bounds by root finding, accurate to about 1e-9 relative
+    assert low == pytest.approx(ref.low, rel=1e-7, abs=1e-15)
+    assert high == pytest.approx(ref.high, rel=1e-7, abs=1e-15)
+
+
+@pytest.mark.parametrize(("k", "n"), [(kn[0], kn[1]) for kn in _KN if 0 < kn[0] < kn[1]])
+def test_clopper_pearson_defining_equations(k, n):
+    # Clopper & Pearson, Biometrika 26:404-413 (1934): P(X >= k | low) = P(X <= k | high) =
+    # alpha/2; scipy.stats.binom as reference
+    low, high = clopper_pearson(k, n, 0.95)
+    assert stats.binom.sf(k - 1, n, low) == pytest.approx(0.025, rel=1e-9)
+    assert stats.binom.cdf(k, n, high) == pytest.approx(0.025, rel=1e-9)
+
+
+def test_clopper_pearson_vectorized_matches_scipy():
+    # scipy.stats.binomtest(...).proportion_ci(method="exact") as reference
+    k = np.array([k for k, _ in _KN])
+    n = np.array([n for _, n in _KN])
+    low, high = clopper_pearson(k, n)
+    assert low.shape == high.shape == k.shape
+    for i, (kk, nn) in enumerate(_KN):
+        ref = stats.binomtest(kk, nn).proportion_ci(method="exact")
+        assert low[i] == pytest.approx(ref.low, rel=1e-7, abs=1e-15)
+        assert high[i] == pytest.approx(ref.high, rel=1e-7, abs=1e-15)
+
+
+@pytest.mark.parametrize(
+    ("k", "n", "low", "high"),
+    [(81, 263, 0.2527, 0.3676), (15, 148, 0.0578, 0.1617), (0, 20, 0.0, 0.1684),
+     (1, 29, 0.0009, 0.1776)],  # fmt: skip
+)
+def test_clopper_pearson_newcombe_table(k, n, low, high):
+    # Newcombe 1998, Stat. Med. 17:857-872, Table I, exact method (figures from memory;
+    # they agree with scipy.stats.binomtest to the 4 decimals quoted)
+    got_low, got_high = clopper_pearson(k, n)
+    assert got_low == pytest.approx(low, abs=5e-5)
+    assert got_high == pytest.approx(high, abs=5e-5)
+
+
+def test_clopper_pearson_ends_and_broadcast():
+    # Clopper & Pearson 1934 construction: the bound at an observed extreme is the extreme
+    low, high = clopper_pearson([0, 4], 4)
+    assert low[0] == 0.0 and high[1] == 1.0
+    assert 0.0 < low[1] < high[0] < 1.0
+    # symmetry p <-> 1 - p of the beta quantiles (Clopper & Pearson 1934)
+    lo3, hi3 = clopper_pearson(3, 17)
+    lo14, hi14 = clopper_pearson(14, 17)
+    assert lo3 == pytest.approx(1.0 - hi14, rel=1e-12)
+    assert hi3 == pytest.approx(1.0 - lo14, rel=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("k", "n", "confidence"),
+    [(-1, 10, 0.95), (11, 10, 0.95), (1.5, 10, 0.95), (0, 0, 0.95), (1, 10, 1.0),
+     (1, 10, 0.0), (np.nan, 10, 0.95)],  # fmt: skip
+)
+def test_clopper_pearson_rejects_bad_input(k, n, confidence):
+    # common practice, no source: counts must be whole, 0 <= k <= n, n >= 1
+    with pytest.raises(ValueError):
+        clopper_pearson(k, n, confidence)
+
+
+def test_half_width():
+    # scipy.stats.binomtest(...).proportion_ci(method="exact") as reference
+    ref = stats.binomtest(7, 1000).proportion_ci(method="exact")
+    assert half_width(7, 1000) == pytest.approx((ref.high - ref.low) / 2, rel=1e-7)
+    widths = half_width(np.array([0, 0, 0]), np.array([100, 1000, 10000]))
+    assert widths.shape == (3,)
+    # common practice, no source: the interval narrows as samples accumulate
+    assert np.all(np.diff(widths) < 0)
+
+
+def test_zero_failure_upper_matches_one_sided_beta_bound():
+    # scipy.stats.beta.ppf as reference: one-sided Clopper-Pearson bound for k = 0
+    n = np.array([1, 5, 30, 1000, 10**6])
+    for conf in (0.9, 0.95, 0.99):
+        np.testing.assert_allclose(zero_failure_upper(n, conf), stats.beta.ppf(conf, 1, n),
+                                   rtol=1e-9)  # fmt: skip
+    assert isinstance(zero_failure_upper(10), float)
+    # scipy.stats.binomtest as reference: at the bound, P(0 failures) equals 1 - confidence
+    p = zero_failure_upper(40, 0.95)
+    assert stats.binom.pmf(0, 40, p) == pytest.approx(0.05, rel=1e-12)
+
+
+@pytest.mark.parametrize("n", [100, 300, 1000, 3000, 100000])
+def test_zero_failure_upper_rule_of_three(n):
+    # Hanley & Lippman-Hand, JAMA 249(13):1743-1745 (1983): upper 95 % bound about 3/n
+    assert zero_failure_upper(n, 0.95) == pytest.approx(3.0 / n, rel=0.02)
+
+
+def test_zero_failure_upper_rejects_bad_n():
+    # common practice, no source
+    with pytest.raises(ValueError):
+        zero_failure_upper(0)
+    with pytest.raises(ValueError):
+        zero_failure_upper(2.5)
+
+
+# ---------------------------------------------------------------------------------------------
+# percentile_summary
+# ---------------------------------------------------------------------------------------------
+
+
+def test_percentile_summary_values():
+    # numpy.percentile (linear interpolation) and numpy.std(ddof=1) as reference
+    rng = np.random.default_rng(20240601)
+    x = rng.normal(5.0, 2.0, 5001)
+    x_nan = np.concatenate([x, [np.nan, np.nan]])
+    out = percentile_summary(x_nan)
+    assert set(out) == {"mean", "std", "min", "max", "p001", "p01", "p50", "p99", "p999"}
+    assert all(type(v) is float for v in out.values())
+    assert out["mean"] == pytest.approx(np.mean(x), rel=1e-12)
+    assert out["std"] == pytest.approx(np.std(x, ddof=1), rel=1e-12)
+    assert out["min"] == np.min(x) and out["max"] == np.max(x)
+    for key, q in [("p001", 0.1), ("p01", 1), ("p50", 50), ("p99", 99), ("p999", 99.9)]:
+        assert out[key] == pytest.approx(np.percentile(x, q), rel=1e-12)
+
+
+def test_percentile_summary_small_example():
+    # hand calculation, linear interpolation between order statistics (common practice)
+    out = percentile_summary([1.0, 2.0, 3.0, 4.0, 5.0])
+    assert out["mean"] == 3.0
+    assert out["std"] == pytest.approx(math.sqrt(2.5), rel=1e-15)
+    assert out["p50"] == 3.0
+    assert out["p01"] == pytest.approx(1.04, rel=1e-12)
+    assert out["p999"] == pytest.approx(4.996, rel=1e-12)
+
+
+def test_percentile_summary_degenerate():
+    # project brief: one sample has std 0; all-NaN and empty give NaN everywhere
+    one = percentile_summary([7.5])
+    assert one["std"] == 0.0 and one["mean"] == 7.5 and one["p999"] == 7.5
+    for empty in ([np.nan, np.nan], []):
+        out = percentile_summary(empty)
+        assert len(out) == 9 and all(math.isnan(v) for v in out.values())
+
+
+# ---------------------------------------------------------------------------------------------
+# capability
+# ---------------------------------------------------------------------------------------------
+
+
+def _exact_sample(mean: float, std: float, n: int) -> np.ndarray:
+    """A sample whose mean and ddof=1 standard deviation are exactly ``mean`` and ``std``."""
+    z = np.linspace(-1.0, 1.0, n)
+    z = (z - z.mean()) / z.std(ddof=1)
+    return mean + std * z
+
+
+def test_capability_on_constructed_data():
+    # Montgomery, Introduction to Statistical Quality Control, definitions of Cp and Cpk
+    # (from memory): Cp = (U - L)/(6 s), Cpk = min(U - mean, mean - L)/(3 s)
+    x = _exact_sample(10.2, 0.5, 101)
+    out = capability(x, lower=8.0, upper=12.0)
+    assert out["n"] == 101 and isinstance(out["n"], int)
+    assert out["cp"] == pytest.approx(4.0 / 3.0, rel=1e-12)
+    assert out["cpk"] == pytest.approx(1.8 / 1.5, rel=1e-12)
+    upper_only = capability(x, upper=12.0)
+    assert math.isnan(upper_only["cp"])
+    assert upper_only["cpk"] == pytest.approx(1.2, rel=1e-12)
+    lower_only = capability(x, lower=8.0)
+    assert lower_only["cpk"] == pytest.approx(2.2 / 1.5, rel=1e-12)
+
+
+def test_capability_bissell_interval_formula():
+    # Bissell 1990, Applied Statistics 39(3):331-340: Cpk +- z sqrt(1/(9n) + Cpk^2/(2(n-1)))
+    x = _exact_sample(10.2, 0.5, 101)
+    out = capability(x, lower=8.0, upper=12.0, confidence=0.95)
+    cpk, n = 1.2, 101
+    half = stats.norm.ppf(0.975) * math.sqrt(1 / (9 * n) + cpk**2 / (2 * (n - 1)))
+    assert out["cpk_low"] == pytest.approx(cpk - half, rel=1e-12)
+    assert out["cpk_high"] == pytest.approx(cpk + half, rel=1e-12)
+    wider = capability(x, lower=8.0, upper=12.0, confidence=0.99)
+    assert wider["cpk_low"] < out["cpk_low"] < out["cpk_high"] < wider["cpk_high"]
+
+
+def test_capability_bissell_interval_coverage():
+    # coverage check by simulation, common practice, no source; Bissell 1990 presents the
+    # interval as a large-sample normal approximation, so 95 % nominal should hold to ~1 %
+    rng = np.random.default_rng(7)
+    reps, n, true_cpk = 4000, 200, 1.0
+    samples = rng.normal(0.0, 1.0, size=(reps, n))
+    covered = 0
+    for row in samples:
+        out = capability(row, lower=-3.0 * true_cpk, upper=5.0)
+        covered += out["cpk_low"] <= true_cpk <= out["cpk_high"]
+    # Clopper-Pearson 99.9 % interval of the observed coverage must contain 0.95 (+- 0.01)
+    low, high = clopper_pearson(covered, reps, 0.999)
+    assert low - 0.01 <= 0.95 <= high + 0.01
+
+
+def test_capability_degenerate_and_errors():
+    # common practice, no source
+    assert math.isnan(capability([1.0], lower=0.0)["cpk"])
+    flat = capability([2.0, 2.0, 2.0], lower=1.0, upper=3.0)
+    assert flat["cp"] == math.inf and flat["cpk"] == math.inf and math.isnan(flat["cpk_low"])
+    assert capability([2.0, 2.0], lower=3.0)["cpk"] == -math.inf
+    nan_dropped = capability([1.0, 2.0, 3.0, np.nan], lower=0.0, upper=4.0)
+    assert nan_dropped["n"] == 3 and nan_dropped["cp"] == pytest.approx(4.0 / 6.0)
+    with pytest.raises(ValueError, match="at least one"):
+        capability([1.0, 2.0])
+    with pytest.raises(ValueError, match="must exceed"):
+        capability([1.0, 2.0], lower=3.0, upper=1.0)
+
+
+# ---------------------------------------------------------------------------------------------
+# tail_estimate
+# ---------------------------------------------------------------------------------------------
+
+
+def test_tail_estimate_normal_fit():
+    # scipy.stats.norm.sf as reference; sampling tolerance from the delta method (from memory):
+    # sd(mean/s) ~ sqrt((1 + k^2/2)/n) = 0.017 for k = 3, n = 20000, so 3 sd moves k by 0.05,
+    # i.e. a factor exp(0.05 * 3.3) ~ 1.18 on Phi(-3)
+    rng = np.random.default_rng(12345)
+    x = rng.normal(3.0, 1.0, 20000)
+    out = tail_estimate(x)
+    assert out["n"] == 20000
+    assert out["normal_ppm"] == pytest.approx(1e6 * stats.norm.sf(3.0), rel=0.2)
+    assert out["normal_ppm"] == pytest.approx(
+        1e6 * stats.norm.sf(np.mean(x) / np.std(x, ddof=1)), rel=1e-12
+    )
+    assert out["normal_ppm"] < out["normal_ppm_upper"]
+    assert "Extrapolation" in out["assumption"]
+    # the GPD fit on a normal tail is also reasonable at 3 sigma (common practice, no source)
+    assert out["tail_ppm"] == pytest.approx(1e6 * stats.norm.sf(3.0), rel=0.5)
+    assert out["method"].startswith("generalized Pareto fit")
+
+
+def test_tail_estimate_normal_upper_bound_matches_tolerance_factor():
+    # one-sided normal tolerance factor for n = 10, 99 % coverage, 95 % confidence is 3.981
+    # (published one-sided tolerance factor tables, from memory; scipy.stats.nct as reference):
+    # a sample whose mean/s equals that factor has an upper 95 % bound of 1 % failing
+    n = 10
+    factor = stats.nct.ppf(0.95, n - 1, stats.norm.ppf(0.99) * math.sqrt(n)) / math.sqrt(n)
+    assert factor == pytest.approx(3.981, abs=5e-4)
+    x = _exact_sample(factor, 1.0, n)
+    out = tail_estimate(x, confidence=0.95)
+    assert out["normal_ppm_upper"] == pytest.approx(1e4, rel=1e-6)
+    assert out["normal_ppm"] == pytest.approx(1e6 * stats.norm.sf(factor), rel=1e-9)
+    assert math.isnan(out["tail_ppm"])
+
+
+def test_tail_estimate_normal_upper_bound_coverage():
+    # coverage check by simulation, common practice, no source: the exact one-sided bound
+    # should exceed the true failure probability in ~95 % of repeated experiments
+    rng = np.random.default_rng(99)
+    true_ppm = 1e6 * stats.norm.sf(2.5)
+    reps = 400
+    hits = sum(
+        tail_estimate(rng.normal(2.5, 1.0, 30))["normal_ppm_upper"] >= true_ppm
+        for _ in range(reps)
+    )
+    low, high = clopper_pearson(hits, reps, 0.999)
+    assert low <= 0.95 <= high
+
+
+def test_tail_estimate_gpd_on_exponential_tail():
+    # exact answer: margin = 8 - E with E ~ Exp(1) fails with P(E > 8) = exp(-8) = 335.5 ppm;
+    # the excess of an exponential over any threshold is exponential (GPD shape 0), so the
+    # model is right and only sampling error remains. With ~1000 exceedances the shape
+    # estimate has sd ~ 1/sqrt(1000) = 0.032 (Smith 1987 asymptotics, from memory);
+    # extrapolating 5 scale units, 2 sd of shape changes the answer by about a factor 2,
+    # hence the loose tolerance of a factor 2.5 either way.
+    exact_ppm = 1e6 * math.exp(-8.0)
+    rng = np.random.default_rng(2024)
+    margin = 8.0 - rng.exponential(1.0, 20000)
+    out = tail_estimate(margin)
+    assert out["method"].startswith("generalized Pareto fit")
+    assert exact_ppm / 2.5 < out["tail_ppm"] < exact_ppm * 2.5
+    # a normal fit to this skewed margin misses by orders of magnitude (common practice)
+    assert out["normal_ppm"] < exact_ppm / 1000
+
+
+def test_tail_estimate_gpd_bounded_tail_gives_zero():
+    # uniform margin on [1, 2]: the excess below a threshold is uniform, which is the GPD with
+    # shape -1 (bounded; from memory), and 0 lies beyond its end point, so the estimate must be
+    # (near) zero
+    rng = np.random.default_rng(3)
+    out = tail_estimate(rng.uniform(1.0, 2.0, 5000))
+    assert out["tail_ppm"] < 1e-3
+
+
+def test_tail_estimate_empirical_when_failures_common():
+    # project brief: if 0 is above the 5 % quantile, report the observed fraction
+    rng = np.random.default_rng(5)
+    margin = rng.normal(0.5, 1.0, 4000)
+    out = tail_estimate(margin)
+    assert out["tail_ppm"] == pytest.approx(1e6 * np.mean(margin < 0), rel=1e-12)
+    assert out["method"].startswith("empirical fraction")
+
+
+def test_tail_estimate_degenerate_inputs():
+    # project brief: zero spread and fewer than 50 samples are handled without a fit
+    flat = tail_estimate(np.full(100, 2.0))
+    assert flat["normal_ppm"] == 0.0 and flat["tail_ppm"] == 0.0
+    assert "zero spread" in flat["method"]
+    failing = tail_estimate(np.full(100, -1.0))
+    assert failing["normal_ppm"] == 1e6 and failing["tail_ppm"] == 1e6
+    rng = np.random.default_rng(11)
+    few = tail_estimate(rng.normal(3.0, 1.0, 49))
+    assert math.isnan(few["tail_ppm"]) and "at least 50" in few["method"]
+    assert math.isfinite(few["normal_ppm"]) and few["n"] == 49
+    empty = tail_estimate([np.nan, np.nan])
+    assert empty["n"] == 0 and math.isnan(empty["normal_ppm"]) and math.isnan(empty["tail_ppm"])
+    single = tail_estimate([1.0])
+    assert single["normal_ppm"] == 0.0 and math.isnan(single["tail_ppm"])
+    with pytest.raises(ValueError):
+        tail_estimate(rng.normal(size=100), confidence=1.5)
+
+
+def test_tail_estimate_keys_and_types():
+    # project brief: documented keys
+    rng = np.random.default_rng(8)
+    out = tail_estimate(rng.normal(4.0, 1.0, 500))
+    assert {"normal_ppm", "tail_ppm", "method", "assumption", "n"} <= set(out)
+    assert isinstance(out["method"], str) and isinstance(out["assumption"], str)
+    assert out["assumption"].count(". ") == 0 and out["assumption"].endswith(".")
+    assert isinstance(out["n"], int)

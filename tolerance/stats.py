@@ -1,0 +1,380 @@
+"""Statistics for Monte Carlo yield and margin results.
+
+Exact binomial confidence intervals for observed failure counts, summary percentiles,
+process capability indices, and model-based (extrapolated) tail probabilities for a margin
+metric. Sample-based functions drop NaN entries; count-based functions reject invalid counts.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+
+import numpy as np
+from scipy import optimize, stats
+
+__all__ = [
+    "capability",
+    "clopper_pearson",
+    "half_width",
+    "percentile_summary",
+    "tail_estimate",
+    "zero_failure_upper",
+]
+
+
+def _check_confidence(confidence: float) -> float:
+    confidence = float(confidence)
+    if not 0.0 < confidence < 1.0:
+        raise ValueError(f"confidence must lie strictly between 0 and 1, got {confidence!r}")
+    return confidence
+
+
+def _counts(failures, n) -> tuple[np.ndarray, np.ndarray, bool]:
+    k = np.asarray(failures)
+    m = np.asarray(n)
+    scalar = k.ndim == 0 and m.ndim == 0
+    kf = np.asarray(k, dtype=float)
+    mf = np.asarray(m, dtype=float)
+    if not (np.all(np.isfinite(kf)) and np.all(np.isfinite(mf))):
+        raise ValueError("failures and n must be finite counts")
+    if np.any(kf != np.round(kf)) or np.any(mf != np.round(mf)):
+        raise ValueError("failures and n must be whole numbers")
+    if np.any(mf < 1):
+        raise ValueError("n must be at least 1")
+    if np.any(kf < 0) or np.any(kf > mf):
+        raise ValueError("failures must lie between 0 and n")
+    kf, mf = np.broadcast_arrays(kf, mf)
+    return kf, mf, scalar
+
+
+def clopper_pearson(failures, n, confidence: float = 0.95):
+    """Exact (Clopper-Pearson) two-sided confidence interval for a failure probability.
+
+    Parameters
+    ----------
+    failures : int or array_like of int
+        Observed failures ``k`` [count], ``0 <= k <= n``.
+    n : int or array_like of int
+        Trials [count], at least 1; broadcast against ``failures``.
+    confidence : float, optional
+        Two-sided confidence level [1], default 0.95.
+
+    Returns
+    -------
+    low, high : float or numpy.ndarray
+        Interval bounds on the failure probability [1]; ``low = 0`` when ``k = 0`` and
+        ``high = 1`` when ``k = n``. Floats for scalar inputs.
+
+    Notes
+    -----
+    ``low = B(alpha/2; k, n - k + 1)`` and ``high = B(1 - alpha/2; k + 1, n - k)`` with ``B``
+    the beta quantile function and ``alpha = 1 - confidence``.
+    """
+    confidence = _check_confidence(confidence)
+    k, m, scalar = _counts(failures, n)
+    alpha = 1.0 - confidence
+    # Safe shape parameters where the closed-form ends apply, to keep beta.ppf in its domain.
+    low = stats.beta.ppf(alpha / 2.0, np.maximum(k, 1.0), m - k + 1.0)
+    high = stats.beta.ppf(1.0 - alpha / 2.0, k + 1.0, np.maximum(m - k, 1.0))
+    low = np.where(k == 0, 0.0, low)
+    high = np.where(k == m, 1.0, high)
+    if scalar:
+        return float(low), float(high)
+    return low, high
+
+
+def half_width(failures, n, confidence: float = 0.95):
+    """Half the width of the Clopper-Pearson interval.
+
+    Parameters
+    ----------
+    failures : int or array_like of int
+        Observed failures [count].
+    n : int or array_like of int
+        Trials [count].
+    confidence : float, optional
+        Two-sided confidence level [1], default 0.95.
+
+    Returns
+    -------
+    float or numpy.ndarray
+        ``(high - low) / 2`` [1], used to decide when enough samples were drawn.
+    """
+    low, high = clopper_pearson(failures, n, confidence)
+    result = (np.asarray(high) - np.asarray(low)) / 2.0
+    if np.ndim(result) == 0:
+        return float(result)
+    return result
+
+
+def zero_failure_upper(n, confidence: float = 0.95):
+    """Exact one-sided upper bound on the failure probability after zero failures.
+
+    Parameters
+    ----------
+    n : int or array_like of int
+        Trials without a failure [count], at least 1.
+    confidence : float, optional
+        One-sided confidence level [1], default 0.95.
+
+    Returns
+    -------
+    float or numpy.ndarray
+        ``1 - (1 - confidence)**(1/n)`` [1]; about ``3/n`` at 95 % for large ``n``.
+    """
+    confidence = _check_confidence(confidence)
+    m = np.asarray(n, dtype=float)
+    if np.any(~np.isfinite(m)) or np.any(m < 1) or np.any(m != np.round(m)):
+        raise ValueError("n must be a whole number of at least 1")
+    result = -np.expm1(np.log1p(-confidence) / m)
+    if result.ndim == 0:
+        return float(result)
+    return result
+
+
+def _clean(x) -> np.ndarray:
+    arr = np.asarray(x, dtype=float).ravel()
+    return arr[~np.isnan(arr)]
+
+
+_SUMMARY_PERCENTILES = {"p001": 0.1, "p01": 1.0, "p50": 50.0, "p99": 99.0, "p999": 99.9}
+
+
+def percentile_summary(x) -> dict[str, float]:
+    """Mean, spread, extremes and tail percentiles of a sample, ignoring NaN.
+
+    Parameters
+    ----------
+    x : array_like
+        Sample values [any unit]; NaN entries are dropped.
+
+    Returns
+    -------
+    dict of str to float
+        ``mean``, ``std`` (ddof = 1; 0 for a single sample), ``min``, ``max``, and the
+        percentiles ``p001`` (0.1 %), ``p01`` (1 %), ``p50`` (median), ``p99`` (99 %),
+        ``p999`` (99.9 %), linearly interpolated [same unit as ``x``]. All NaN when no finite
+        sample remains.
+    """
+    data = _clean(x)
+    keys = ["mean", "std", "min", "max", *_SUMMARY_PERCENTILES]
+    if data.size == 0:
+        return {key: math.nan for key in keys}
+    out = {
+        "mean": float(np.mean(data)),
+        "std": float(np.std(data, ddof=1)) if data.size > 1 else 0.0,
+        "min": float(np.min(data)),
+        "max": float(np.max(data)),
+    }
+    values = np.percentile(data, list(_SUMMARY_PERCENTILES.values()))
+    out.update({key: float(v) for key, v in zip(_SUMMARY_PERCENTILES, values)})
+    return out
+
+
+def capability(x, lower=None, upper=None, confidence: float = 0.95) -> dict[str, float]:
+    """Process capability indices of a sample against specification limits.
+
+    Parameters
+    ----------
+    x : array_like
+        Sample values [any unit]; NaN entries are dropped.
+    lower, upper : float, optional
+        Specification limits [same unit as ``x``]; at least one is required.
+    confidence : float, optional
+        Two-sided confidence level for the Cpk interval [1], default 0.95.
+
+    Returns
+    -------
+    dict
+        ``cp`` = (U - L) / (6 s) [1], NaN unless both limits are given; ``cpk`` =
+        min((U - mean) / (3 s), (mean - L) / (3 s)) over the given limits [1];
+        ``cpk_low``, ``cpk_high`` [1], the normal-approximation interval of Bissell (1990),
+        Cpk +- z * sqrt(1 / (9 n) + Cpk**2 / (2 (n - 1))); ``n`` [count] as an int. With
+        fewer than two samples every index is NaN; with zero spread the indices are +-inf
+        and the interval NaN.
+
+    Notes
+    -----
+    Monte Carlo samples have no rational subgroups, so ``s`` is the overall sample standard
+    deviation (ddof = 1); the indices are therefore what is often called Pp and Ppk. The
+    interval assumes normally distributed data.
+
+    References
+    ----------
+    A. F. Bissell, "How reliable is your capability index?", Applied Statistics 39(3),
+    331-340 (1990).
+    """
+    confidence = _check_confidence(confidence)
+    if lower is None and upper is None:
+        raise ValueError("capability needs at least one specification limit")
+    if lower is not None and upper is not None and not float(upper) > float(lower):
+        raise ValueError(f"upper limit {upper!r} must exceed lower limit {lower!r}")
+    data = _clean(x)
+    n = int(data.size)
+    nan = math.nan
+    if n < 2:
+        return {"cp": nan, "cpk": nan, "cpk_low": nan, "cpk_high": nan, "n": n}
+    mean = float(np.mean(data))
+    s = float(np.std(data, ddof=1))
+    sides = []
+    if upper is not None:
+        sides.append(float(upper) - mean)
+    if lower is not None:
+        sides.append(mean - float(lower))
+    if s == 0.0:
+        cp = math.inf if (lower is not None and upper is not None) else nan
+        worst = min(sides)
+        cpk = math.inf if worst > 0 else (-math.inf if worst < 0 else 0.0)
+        return {"cp": cp, "cpk": cpk, "cpk_low": nan, "cpk_high": nan, "n": n}
+    cp = (float(upper) - float(lower)) / (6.0 * s) if len(sides) == 2 else nan
+    cpk = min(sides) / (3.0 * s)
+    z = float(stats.norm.ppf(0.5 + confidence / 2.0))
+    se = math.sqrt(1.0 / (9.0 * n) + cpk**2 / (2.0 * (n - 1)))
+    return {"cp": cp, "cpk": cpk, "cpk_low": cpk - z * se, "cpk_high": cpk + z * se, "n": n}
+
+
+_TAIL_FRACTION = 0.05
+_TAIL_MIN_SAMPLES = 50
+
+
+def _normal_upper_ppm(mean: float, s: float, n: int, confidence: float) -> float:
+    """One-sided upper confidence bound [ppm] on Phi(-mu/sigma) for a normal sample.
+
+    ``sqrt(n) * mean / s`` follows a noncentral t distribution with ``n - 1`` degrees of
+    freedom and noncentrality ``sqrt(n) * mu / sigma``; the bound inverts it for the lowest
+    noncentrality still compatible with the observation at the given confidence (the
+    construction behind one-sided normal tolerance factors).
+    """
+    df = n - 1
+    t_obs = math.sqrt(n) * mean / s
+
+    def excess(delta: float) -> float:
+        return float(stats.nct.cdf(t_obs, df, delta)) - confidence
+
+    # excess() decreases with delta; widen a bracket around the observation until it holds.
+    width = 5.0 + abs(t_obs)
+    lo, hi = t_obs - width, t_obs + width
+    for _ in range(60):
+        if excess(lo) > 0 > excess(hi):
+            break
+        width *= 2.0
+        lo, hi = t_obs - width, t_obs + width
+    else:
+        return math.nan
+    delta_low = optimize.brentq(excess, lo, hi, xtol=1e-10, rtol=1e-12)
+    return 1e6 * float(stats.norm.sf(delta_low / math.sqrt(n)))
+
+
+_ASSUMPTION_GPD = (
+    "Extrapolation: assumes the lower tail of the margin beyond its 5 % quantile follows a "
+    "generalized Pareto distribution and the bulk follows a normal distribution for "
+    "normal_ppm; neither is checked against the circuit physics."
+)
+
+
+def tail_estimate(margin, confidence: float = 0.95) -> dict:
+    """Model-based failure probability of a margin metric, for rare failures.
+
+    Parameters
+    ----------
+    margin : array_like
+        Margin samples [any unit]: negative means failure (e.g. metric minus lower limit,
+        scaled). NaN entries are dropped.
+    confidence : float, optional
+        One-sided confidence level [1] of ``normal_ppm_upper``, default 0.95.
+
+    Returns
+    -------
+    dict
+        ``normal_ppm`` [ppm]
+            ``1e6 * Phi(-mean / std)`` from a normal fit (std with ddof = 1).
+        ``normal_ppm_upper`` [ppm]
+            Upper confidence bound on ``normal_ppm`` allowing for the sampling error of mean
+            and std (noncentral t), at ``confidence``.
+        ``tail_ppm`` [ppm]
+            From a generalized Pareto fit (location fixed at the threshold) to the samples
+            below the 5 % quantile ``u`` of the margin: ``1e6 * 0.05 * sf(u)`` of the fitted
+            distribution of the distance below ``u``. When ``u <= 0`` the observed failure
+            fraction is returned instead (no extrapolation needed). NaN with fewer than 50
+            samples.
+        ``method`` : str
+            How ``tail_ppm`` was obtained, or why it could not be.
+        ``assumption`` : str
+            One sentence stating the model assumption.
+        ``n`` : int
+            Samples used [count].
+
+    Notes
+    -----
+    Both figures are extrapolations beyond the data and are only as good as the assumed
+    distribution; an observed count with :func:`clopper_pearson` is the model-free answer.
+    """
+    confidence = _check_confidence(confidence)
+    data = _clean(margin)
+    n = int(data.size)
+    nan = math.nan
+    out = {
+        "normal_ppm": nan,
+        "normal_ppm_upper": nan,
+        "tail_ppm": nan,
+        "method": "",
+        "assumption": _ASSUMPTION_GPD,
+        "n": n,
+    }
+    if n == 0:
+        out["method"] = "no samples: nothing to estimate"
+        return out
+    mean = float(np.mean(data))
+    s = float(np.std(data, ddof=1)) if n > 1 else 0.0
+    if s == 0.0 or not math.isfinite(s):
+        fail = 1e6 if mean < 0 else 0.0
+        out.update(
+            normal_ppm=fail,
+            normal_ppm_upper=nan,
+            tail_ppm=fail if n >= _TAIL_MIN_SAMPLES else nan,
+            method=(
+                "zero spread: every sample equals the mean, so the probability is 0 or 1 "
+                "by inspection and no distribution can be fitted"
+            ),
+            assumption="No model: all samples are identical, so the fraction failing is "
+            "read off directly.",
+        )
+        return out
+    out["normal_ppm"] = 1e6 * float(stats.norm.sf(mean / s))
+    out["normal_ppm_upper"] = _normal_upper_ppm(mean, s, n, confidence)
+
+    if n < _TAIL_MIN_SAMPLES:
+        out["method"] = (
+            f"not fitted: {n} samples, a tail fit needs at least {_TAIL_MIN_SAMPLES}"
+        )
+        return out
+    threshold = float(np.quantile(data, _TAIL_FRACTION))
+    if threshold <= 0.0:
+        out["tail_ppm"] = 1e6 * float(np.mean(data < 0.0))
+        out["method"] = (
+            "empirical fraction: 0 lies at or above the 5 % quantile, so failures are "
+            "observed directly and no extrapolation is needed"
+        )
+        return out
+    excess = threshold - data[data < threshold]
+    if excess.size < 2 or float(np.ptp(excess)) == 0.0:
+        out["method"] = (
+            "not fitted: too few distinct samples below the 5 % quantile for a tail fit"
+        )
+        return out
+    with warnings.catch_warnings():
+        # The optimizer may probe parameters outside the support on its way; those interim
+        # evaluations are not results.
+        warnings.simplefilter("ignore", RuntimeWarning)
+        shape, _, scale = stats.genpareto.fit(excess, floc=0.0)
+    if not (math.isfinite(shape) and math.isfinite(scale) and scale > 0):
+        out["method"] = "not fitted: the generalized Pareto fit did not converge"
+        return out
+    sf = float(stats.genpareto.sf(threshold, shape, loc=0.0, scale=scale))
+    out["tail_ppm"] = 1e6 * _TAIL_FRACTION * sf
+    out["method"] = (
+        f"generalized Pareto fit to the {excess.size} samples below the 5 % quantile "
+        f"{threshold:.4g} (shape {shape:.3g}, scale {scale:.3g}), extrapolated to 0"
+    )
+    return out
