@@ -1,0 +1,324 @@
+"""Tests of tolerance.sensitivity: rank measures, Sobol indices and failure drivers."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import integrate, stats
+
+from tolerance.sensitivity import (
+    as_array_function,
+    failure_drivers,
+    rank_sensitivity,
+    sobol_analysis,
+)
+
+# ---------------------------------------------------------------------------------------------
+# rank_sensitivity
+# ---------------------------------------------------------------------------------------------
+
+
+def _row(table: pd.DataFrame, inp: str, metric: str) -> pd.Series:
+    sel = table[(table["input"] == inp) & (table["metric"] == metric)]
+    assert len(sel) == 1
+    return sel.iloc[0]
+
+
+def test_spearman_matches_scipy_with_ties_and_several_metrics():
+    rng = np.random.default_rng(11)
+    n = 300
+    x = pd.DataFrame(
+        {
+            "a": rng.normal(size=n),
+            "b": rng.integers(0, 5, size=n).astype(float),  # heavy ties
+            "c": rng.uniform(size=n),
+        }
+    )
+    y = pd.DataFrame(
+        {
+            "y1": x["a"] ** 3 + 0.5 * x["b"] + rng.normal(size=n),
+            "y2": np.round(np.exp(x["c"]) - x["a"], 1),  # ties in the output too
+        }
+    )
+    table = rank_sensitivity(x, y)
+    assert list(table.columns[:6]) == ["input", "metric", "spearman", "srrc", "prcc", "n"]
+    assert len(table) == 6
+    for inp in x.columns:
+        for met in y.columns:
+            # scipy.stats.spearmanr as reference
+            ref = stats.spearmanr(x[inp], y[met]).statistic
+            assert _row(table, inp, met)["spearman"] == pytest.approx(ref, abs=1e-12)
+            assert _row(table, inp, met)["n"] == n
+
+
+def test_prcc_and_srrc_hand_computed():
+    # Values are already ranks (permutations of 1..5), so rank correlations are plain
+    # correlations: r(x1,x2) = r(x1,y) = 0.8 and r(x2,y) = 0.3 (1 - 6 sum d^2 / 120 with
+    # sum d^2 = 4, 4, 14).
+    x = pd.DataFrame({"x1": [1, 2, 3, 4, 5], "x2": [2, 1, 4, 3, 5]}, dtype=float)
+    y = pd.DataFrame({"y": [1, 3, 2, 5, 4]}, dtype=float)
+    table = rank_sensitivity(x, y)
+    # exact derivation: partial correlation r_1y.2 = (r1y - r12 r2y) / sqrt((1-r12^2)(1-r2y^2))
+    # = (0.8 - 0.24) / sqrt(0.36 * 0.91) = 0.56 / (0.6 sqrt(0.91))
+    assert _row(table, "x1", "y")["prcc"] == pytest.approx(0.56 / (0.6 * np.sqrt(0.91)), abs=1e-12)
+    # exact derivation: r_2y.1 = (0.3 - 0.8 * 0.8) / sqrt(0.36 * 0.36) = -0.34 / 0.36 = -17/18
+    assert _row(table, "x2", "y")["prcc"] == pytest.approx(-17 / 18, abs=1e-12)
+    # exact derivation: SRRC b = R^-1 r with R = [[1, .8], [.8, 1]], r = [.8, .3], det 0.36:
+    # b1 = (0.8 - 0.8*0.3)/0.36 = 14/9, b2 = (0.3 - 0.8*0.8)/0.36 = -17/18
+    assert _row(table, "x1", "y")["srrc"] == pytest.approx(14 / 9, abs=1e-12)
+    assert _row(table, "x2", "y")["srrc"] == pytest.approx(-17 / 18, abs=1e-12)
+    # exact derivation: Spearman = 1 - 6 * 4 / 120 = 0.8 and 1 - 6 * 14 / 120 = 0.3
+    assert _row(table, "x1", "y")["spearman"] == pytest.approx(0.8, abs=1e-12)
+    assert _row(table, "x2", "y")["spearman"] == pytest.approx(0.3, abs=1e-12)
+
+
+def test_prcc_equals_residual_correlation_definition():
+    rng = np.random.default_rng(5)
+    n = 400
+    x = pd.DataFrame(rng.uniform(size=(n, 3)), columns=["p", "q", "r"])
+    y = pd.DataFrame({"y": x["p"] - 2 * x["q"] ** 2 + 0.3 * rng.normal(size=n)})
+    table = rank_sensitivity(x, y)
+    rx = stats.rankdata(x.to_numpy(), axis=0)
+    ry = stats.rankdata(y["y"].to_numpy())
+    for i, name in enumerate(x.columns):
+        others = np.column_stack([np.ones(n), np.delete(rx, i, axis=1)])
+        res_x = rx[:, i] - others @ np.linalg.lstsq(others, rx[:, i], rcond=None)[0]
+        res_y = ry - others @ np.linalg.lstsq(others, ry, rcond=None)[0]
+        # Marino et al., J. Theor. Biol. 254 (2008) 178-196: PRCC is the correlation of the
+        # rank residuals; numpy.corrcoef as reference
+        ref = np.corrcoef(res_x, res_y)[0, 1]
+        assert _row(table, name, "y")["prcc"] == pytest.approx(ref, abs=1e-10)
+
+
+def test_srrc_squared_matches_variance_shares_of_linear_model():
+    # y = 2 x1 + x2 with x1, x2, x3 independent U(0,1).
+    rng = np.random.default_rng(2024)
+    n = 200_000
+    x = pd.DataFrame(rng.uniform(size=(n, 3)), columns=["x1", "x2", "x3"])
+    y = pd.DataFrame({"y": 2.0 * x["x1"] + x["x2"]})
+    table = rank_sensitivity(x, y)
+
+    # Population SRRC. Uniform inputs are their own ranks (rank/n -> x), and with independent
+    # inputs R = I, so SRRC_i -> rho_S(x_i, y) = 12 E[U_i F_Y(Y)] - 3 with F_Y the
+    # trapezoidal CDF of 2 U1 + U2. Integrating the piecewise polynomial exactly gives
+    # 9/10 and 17/40; the test recomputes both by quadrature.
+    def cdf(v):
+        return np.where(v < 1, v * v / 4, np.where(v < 2, 0.25 + (v - 1) / 2, 1 - (3 - v) ** 2 / 4))
+
+    exact = {
+        "x1": 12 * integrate.dblquad(lambda u2, u1: u1 * cdf(2 * u1 + u2), 0, 1, 0, 1)[0] - 3,
+        "x2": 12 * integrate.dblquad(lambda u2, u1: u2 * cdf(2 * u1 + u2), 0, 1, 0, 1)[0] - 3,
+        "x3": 0.0,
+    }
+    # exact derivation (above): 9/10 and 17/40
+    assert exact["x1"] == pytest.approx(0.9, abs=1e-7)
+    assert exact["x2"] == pytest.approx(17 / 40, abs=1e-7)
+    for name, value in exact.items():
+        # exact derivation above; tolerance 0.006 is about 3 standard errors of a rank
+        # correlation at n = 2e5 ((1 - rho^2)/sqrt(n) <= 1/447 ~ 0.0022) -- common practice
+        assert _row(table, name, "y")["srrc"] == pytest.approx(value, abs=0.006)
+
+    # Variance shares of the linear model: a_i^2 Var(U) / sum = 4/5, 1/5, 0 (exact).
+    shares = {"x1": 0.8, "x2": 0.2, "x3": 0.0}
+    for name, share in shares.items():
+        # exact derivation: SRRC^2 -> 0.81 and 0.180625 vs shares 0.8 and 0.2, i.e. the rank
+        # transform of y shifts them by 0.010 and 0.019; tolerance 0.025 covers that
+        # deterministic offset plus sampling error (<= 0.004 here)
+        assert _row(table, name, "y")["srrc"] ** 2 == pytest.approx(share, abs=0.025)
+
+
+def test_constant_inputs_and_outputs_give_nan_and_nan_rows_are_dropped():
+    rng = np.random.default_rng(3)
+    n = 200
+    x = pd.DataFrame({"a": rng.uniform(size=n), "fixed": np.full(n, 4.7), "b": rng.uniform(size=n)})
+    y1 = (x["a"] + x["b"]).to_numpy().copy()
+    y1[:17] = np.nan
+    y = pd.DataFrame({"y1": y1, "const": np.full(n, 1.0)})
+    table = rank_sensitivity(x, y)
+    assert np.isnan(_row(table, "fixed", "y1")[["spearman", "srrc", "prcc"]].astype(float)).all()
+    for name in x.columns:
+        assert np.isnan(_row(table, name, "const")[["spearman", "srrc", "prcc"]].astype(float)).all()
+    assert _row(table, "a", "y1")["n"] == n - 17
+    assert _row(table, "a", "y1")["dropped"] == 17
+    assert _row(table, "a", "const")["n"] == n
+    keep = np.isfinite(y1)
+    # scipy.stats.spearmanr as reference, on the rows that remain after dropping NaN
+    ref = stats.spearmanr(x["a"][keep], y1[keep]).statistic
+    assert _row(table, "a", "y1")["spearman"] == pytest.approx(ref, abs=1e-12)
+    assert np.isfinite(_row(table, "a", "y1")["prcc"])
+
+
+def test_rank_sensitivity_rejects_misaligned_frames():
+    with pytest.raises(ValueError, match="rows"):
+        rank_sensitivity(pd.DataFrame({"a": [1.0, 2.0]}), pd.DataFrame({"y": [1.0]}))
+
+
+# ---------------------------------------------------------------------------------------------
+# Sobol indices
+# ---------------------------------------------------------------------------------------------
+
+ISHIGAMI_A, ISHIGAMI_B = 7.0, 0.1
+
+
+def _ishigami(samples):
+    x1, x2, x3 = samples["x1"], samples["x2"], samples["x3"]
+    y = np.sin(x1) + ISHIGAMI_A * np.sin(x2) ** 2 + ISHIGAMI_B * x3**4 * np.sin(x1)
+    return {"y": y, "twice": 2.0 * y}
+
+
+def _uniform_pi(u):
+    return np.pi * (2.0 * u - 1.0)
+
+
+ISHIGAMI_PPF = {"x1": _uniform_pi, "x2": _uniform_pi, "x3": _uniform_pi}
+
+
+def test_sobol_ishigami_against_analytic_values():
+    a, b = ISHIGAMI_A, ISHIGAMI_B
+    # Ishigami & Homma (1990) analytic variance decomposition, inputs U(-pi, pi):
+    v = 0.5 + a**2 / 8 + b**2 * np.pi**8 / 18 + b * np.pi**4 / 5
+    v1 = (1 + b * np.pi**4 / 5) ** 2 / 2
+    v2 = a**2 / 8
+    v13 = 8 * b**2 * np.pi**8 / 225
+    first = {"x1": v1 / v, "x2": v2 / v, "x3": 0.0}
+    total = {"x1": (v1 + v13) / v, "x2": v2 / v, "x3": v13 / v}
+    # Ishigami & Homma (1990), commonly quoted values S1 ~ 0.314, S2 ~ 0.442, ST3 ~ 0.244
+    assert first["x1"] == pytest.approx(0.314, abs=1e-3)
+    assert total["x3"] == pytest.approx(0.244, abs=1e-3)
+
+    n = 2**12
+    res = sobol_analysis(_ishigami, ISHIGAMI_PPF, ["y"], n=n, seed=7, bootstrap=200)
+    assert res["evaluations"] == n * (3 + 2)
+    assert res["nan_replaced"] == {"y": 0}
+    for name in ISHIGAMI_PPF:
+        r = res["y"][name]
+        # Ishigami & Homma (1990) analytic values; tolerance 0.03: over 20 seeds at n = 2^12
+        # the Saltelli-2010 estimates on a scrambled Sobol design scattered with standard
+        # deviation <= 0.0036 (max error 0.013), so 0.03 is > 8 of those standard deviations
+        # and about the bootstrap 95 % half-width -- measured, no published source
+        assert r["first"] == pytest.approx(first[name], abs=0.03)
+        assert r["total"] == pytest.approx(total[name], abs=0.03)
+        # Ishigami & Homma (1990) analytic values inside the percentile-bootstrap 95 %
+        # intervals; the i.i.d. bootstrap overstates the error of a QMC design, so coverage
+        # is conservative -- common practice, no source
+        assert r["first_low"] <= first[name] <= r["first_high"]
+        assert r["total_low"] <= total[name] <= r["total_high"]
+
+
+def test_sobol_all_metrics_nan_replacement_and_reproducibility():
+    calls = []
+
+    def model(samples):
+        calls.append(len(samples["x1"]))
+        out = _ishigami(samples)
+        bad = out["y"].copy()
+        bad[::50] = np.nan
+        return {"y": out["y"], "bad": bad, "flat": np.full_like(bad, 3.0)}
+
+    n = 2**9
+    r1 = sobol_analysis(model, ISHIGAMI_PPF, None, n=n, seed=123, bootstrap=50)
+    assert calls == [n * 5]  # one model call for the whole design, all metrics at once
+    assert set(r1) >= {"y", "bad", "flat", "evaluations", "nan_replaced", "notes"}
+    assert r1["nan_replaced"]["bad"] == len(range(0, n * 5, 50))
+    assert r1["nan_replaced"]["y"] == 0
+    assert any("bad" in note and "replaced" in note for note in r1["notes"])
+    assert np.isnan(r1["flat"]["x1"]["first"])
+    assert np.isfinite(r1["bad"]["x2"]["first"])
+    r2 = sobol_analysis(model, ISHIGAMI_PPF, None, n=n, seed=123, bootstrap=50)
+    assert r1["y"] == r2["y"]
+    assert r1["bad"] == r2["bad"]
+
+
+def test_sobol_requires_power_of_two():
+    with pytest.raises(ValueError, match="power of two"):
+        sobol_analysis(_ishigami, ISHIGAMI_PPF, ["y"], n=1000, seed=0)
+
+
+def test_sobol_without_bootstrap_gives_nan_intervals():
+    res = sobol_analysis(_ishigami, ISHIGAMI_PPF, ["twice"], n=2**8, seed=1, bootstrap=0)
+    assert np.isnan(res["twice"]["x1"]["first_low"])
+    assert np.isfinite(res["twice"]["x1"]["first"])
+
+
+def test_as_array_function_shapes():
+    func = as_array_function(_ishigami, ["x1", "x2", "x3"], ["y", "twice"])
+    x = np.zeros((3, 7))
+    y = func(x)
+    assert y.shape == (2, 7)
+    # exact derivation: Ishigami at the origin is sin(0) + 7 sin(0)^2 + 0 = 0
+    assert np.all(y == 0.0)
+
+
+# ---------------------------------------------------------------------------------------------
+# failure drivers
+# ---------------------------------------------------------------------------------------------
+
+
+def _failure_data(n=20_000, seed=8):
+    rng = np.random.default_rng(seed)
+    x = pd.DataFrame(rng.uniform(size=(n, 4)), columns=["x1", "x2", "x3", "x4"])
+    failed = ((x["x1"] < 0.2) & (x["x2"] > 0.5)).to_numpy()
+    return x, failed
+
+
+def test_failure_drivers_recovers_constructed_region():
+    x, failed = _failure_data()
+    res = failure_drivers(x, failed, formatter=lambda v, u: f"{v:.2f}")
+    names = [r["input"] for r in res["ranking"]]
+    assert names[:2] == ["x1", "x2"]
+    assert res["ranking"][0]["direction"] == "low"
+    assert res["ranking"][1]["direction"] == "high"
+    # exact derivation: with P(fail) = 0.1, KS(x1) = F_fail(0.2) - F_pass(0.2) = 1 - 0.1/0.9
+    # = 0.889 and KS(x2) = F_pass(0.5) - F_fail(0.5) = 0.5/0.9 = 0.556; tolerance 0.03 is
+    # well above the KS sampling error at 2000 vs 18000 samples (~0.01) -- common practice
+    assert res["ranking"][0]["ks"] == pytest.approx(8 / 9, abs=0.03)
+    assert res["ranking"][1]["ks"] == pytest.approx(5 / 9, abs=0.03)
+    assert [c["input"] for c in res["region"]] == ["x1", "x2"]
+    assert [c["side"] for c in res["region"]] == ["below", "above"]
+    # exact derivation: the failure region is x1 < 0.2 and x2 > 0.5
+    assert res["region"][0]["threshold"] == pytest.approx(0.2, abs=0.03)
+    assert res["region"][1]["threshold"] == pytest.approx(0.5, abs=0.03)
+    # exact derivation: the true region holds all failures and nothing else, so share = 1,
+    # rate inside = 1, rate outside = 0; tolerances allow thresholds 0.03 off (at most
+    # ~0.03/0.5 of failures lost) -- common practice, no source
+    assert res["share_of_failures"] == pytest.approx(1.0, abs=0.05)
+    assert res["rate_inside"] == pytest.approx(1.0, abs=0.1)
+    assert res["rate_outside"] == pytest.approx(0.0, abs=0.01)
+    assert res["text"].startswith("x1 below 0.2")
+    assert " and x2 above 0.5" in res["text"]
+    assert "% of failures" in res["text"] and "outside)" in res["text"]
+    assert res["failures"] == int(failed.sum())
+
+
+def test_failure_drivers_single_input_when_second_does_not_help():
+    rng = np.random.default_rng(4)
+    n = 5000
+    x = pd.DataFrame({"hfe": rng.uniform(100, 600, n), "noise": rng.uniform(size=n)})
+    failed = (x["hfe"] > 450).to_numpy()
+    units = {"hfe": "1"}
+    res = failure_drivers(x, failed, units=units, formatter=lambda v, u: f"{v:.0f} [{u}]")
+    assert len(res["region"]) == 1
+    assert res["region"][0]["side"] == "above"
+    assert res["region"][0]["threshold"] == pytest.approx(450, abs=5)
+    assert res["text"].startswith("hfe above 450 [1]: 100 % of failures, failure rate 100 % inside")
+
+
+def test_failure_drivers_no_failures():
+    x, _ = _failure_data(n=100)
+    res = failure_drivers(x, np.zeros(100, dtype=bool))
+    assert res["ranking"] == []
+    assert res["text"] == "no failures"
+
+
+def test_failure_drivers_default_formatter_and_top():
+    x, failed = _failure_data(n=3000, seed=9)
+    res = failure_drivers(x, failed, top=2)
+    assert len(res["ranking"]) == 2
+    assert isinstance(res["text"], str) and res["text"].startswith("x1 below ")
+
+
+def test_failure_drivers_length_mismatch():
+    x, failed = _failure_data(n=50)
+    with pytest.raises(ValueError, match="entries"):
+        failure_drivers(x, failed[:-1])

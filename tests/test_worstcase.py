@@ -1,0 +1,253 @@
+"""Tests of tolerance.worstcase: EVA, RSS, bounded optimisation and tolerance budgets."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+
+from tolerance.worstcase import (
+    Bound,
+    combine_tolerances,
+    extreme_value,
+    optimize_extreme,
+    root_sum_square,
+    worst_case_table,
+)
+
+A0 = 1.5
+COEFS = {"r1": 2.0, "r2": -3.0, "r3": 0.5, "r4": -0.25}
+# Centred nominals so that the linear band and the vertex extremes coincide.
+LINEAR_BOUNDS = [
+    Bound("r1", 1.0, 0.9, 1.1),
+    Bound("r2", 2.0, 1.5, 2.5),
+    Bound("r3", -1.0, -3.0, 1.0),
+    Bound("r4", 10.0, 9.0, 11.0),
+]
+
+
+def linear_model(samples):
+    y = A0 + sum(c * samples[k] for k, c in COEFS.items())
+    return {"y": y, "neg": -y}
+
+
+def _analytic_linear(bounds):
+    nominal = A0 + sum(COEFS[b.name] * b.nominal for b in bounds)
+    hi = A0 + sum(max(COEFS[b.name] * b.low, COEFS[b.name] * b.high) for b in bounds)
+    lo = A0 + sum(min(COEFS[b.name] * b.low, COEFS[b.name] * b.high) for b in bounds)
+    half = [0.5 * (b.high - b.low) for b in bounds]
+    rss = np.sqrt(sum((COEFS[b.name] * h) ** 2 for b, h in zip(bounds, half)))
+    lin = sum(abs(COEFS[b.name]) * h for b, h in zip(bounds, half))
+    return nominal, lo, hi, rss, lin
+
+
+def test_bound_validation_and_properties():
+    b = Bound("r", 1.0, 0.5, 2.0)
+    assert b.half_range == 0.75 and not b.fixed
+    assert Bound("t", 3.0, 3.0, 3.0).fixed
+    with pytest.raises(ValueError):
+        Bound("bad", 3.0, 3.5, 4.0)
+    with pytest.raises(ValueError):
+        Bound("bad", float("nan"), 0.0, 1.0)
+
+
+def test_linear_model_eva_linear_band_and_rss_are_exact():
+    nominal, lo, hi, rss, lin = _analytic_linear(LINEAR_BOUNDS)
+    eva = extreme_value(linear_model, LINEAR_BOUNDS)
+    band = root_sum_square(linear_model, LINEAR_BOUNDS)
+    # exact derivation: for y = a0 + sum a_i x_i the extremes sit at the vertex choosing
+    # high for a_i > 0 and low for a_i < 0
+    assert eva["y"]["max"] == pytest.approx(hi, abs=1e-12)
+    assert eva["y"]["min"] == pytest.approx(lo, abs=1e-12)
+    assert eva["y"]["nominal"] == pytest.approx(nominal, abs=1e-12)
+    assert eva["y"]["method"] == "full factorial"
+    assert eva["y"]["evaluations"] == 2**4 + 1
+    # exact derivation: linear model, centred nominals: nominal +- sum |a_i| h_i = EVA extremes
+    assert band["y"]["linear_high"] == pytest.approx(hi, abs=1e-9)
+    assert band["y"]["linear_low"] == pytest.approx(lo, abs=1e-9)
+    # exact derivation: RSS = sqrt(sum (a_i h_i)^2) = sqrt(0.04 + 2.25 + 1 + 0.0625)
+    assert rss == pytest.approx(np.sqrt(0.04 + 2.25 + 1.0 + 0.0625), abs=1e-12)
+    assert band["y"]["rss_high"] - nominal == pytest.approx(rss, abs=1e-9)
+    assert nominal - band["y"]["rss_low"] == pytest.approx(rss, abs=1e-9)
+    assert lin == pytest.approx(hi - nominal, abs=1e-12)
+    for name, coef in COEFS.items():
+        # exact derivation: central differences are exact on a linear function (up to
+        # rounding, ~1e-12 relative at step 1e-3 of the half-range)
+        assert band["y"]["sensitivities"][name] == pytest.approx(coef, abs=1e-8)
+    assert band["y"]["evaluations"] == 2 * 4 + 1
+
+
+def test_linear_band_with_off_centre_nominal():
+    bounds = [Bound("r1", 1.05, 0.9, 1.1), Bound("r2", 1.5, 1.5, 2.5)]
+    model = lambda s: {"y": 2.0 * s["r1"] - 3.0 * s["r2"]}  # noqa: E731
+    band = root_sum_square(model, bounds)["y"]
+    y0 = 2.0 * 1.05 - 3.0 * 1.5
+    # exact derivation: nominal +- (|2| * 0.1 + |-3| * 0.5) and sqrt(0.2^2 + 1.5^2)
+    assert band["linear_high"] == pytest.approx(y0 + 1.7, abs=1e-9)
+    assert band["linear_low"] == pytest.approx(y0 - 1.7, abs=1e-9)
+    assert band["rss_high"] == pytest.approx(y0 + np.hypot(0.2, 1.5), abs=1e-9)
+
+
+def test_full_factorial_finds_exact_corners_d3():
+    bounds = [Bound("a", 1.0, 0.5, 2.0), Bound("b", 1.0, 0.8, 1.2), Bound("c", 0.0, -1.0, 1.0)]
+
+    def model(s):
+        return {"g": s["a"] * s["b"] + s["c"] ** 3 * s["a"]}
+
+    res = extreme_value(model, bounds)["g"]
+    # exact derivation: brute force over the 8 corners with itertools as the reference
+    corners = list(itertools.product(*[(b.low, b.high) for b in bounds]))
+    values = [a * b + c**3 * a for a, b, c in corners]
+    assert res["max"] == pytest.approx(max(values), abs=1e-12)
+    assert res["min"] == pytest.approx(min(values), abs=1e-12)
+    best = corners[int(np.argmax(values))]
+    worst = corners[int(np.argmin(values))]
+    assert tuple(res["argmax"][k] for k in "abc") == best
+    assert tuple(res["argmin"][k] for k in "abc") == worst
+    assert res["evaluations"] == 9
+
+
+def test_non_monotonic_extreme_missed_by_corners_found_by_optimizer():
+    bounds = [Bound("x", 0.8, 0.0, 1.0)]
+    model = lambda s: {"y": -((s["x"] - 0.3) ** 2)}  # noqa: E731
+    eva = extreme_value(model, bounds)["y"]
+    # exact derivation: corners give -(0.3)^2 = -0.09 and -(0.7)^2 = -0.49; the true maximum
+    # 0 at x = 0.3 is interior
+    assert eva["max"] == pytest.approx(-0.09, abs=1e-12)
+    res = optimize_extreme(model, bounds, "y", "max", starts=4, seed=1)
+    # exact derivation: maximum of -(x - 0.3)^2 is 0 at x = 0.3
+    assert res["value"] == pytest.approx(0.0, abs=1e-8)
+    assert res["at"]["x"] == pytest.approx(0.3, abs=1e-4)
+    assert res["value"] > eva["max"]
+    assert res["starts"] == 4
+    assert res["evaluations"] > eva["evaluations"]
+
+
+def test_two_parameter_interior_maximum_and_fixed_parameter():
+    seen = []
+
+    def model(s):
+        seen.append(np.asarray(s["k"]).copy())
+        y = s["k"] * np.sin(np.pi * s["x"]) * np.sin(np.pi * s["z"] / 2.0)
+        return {"y": y}
+
+    bounds = [Bound("x", 0.1, 0.0, 1.0), Bound("z", 1.9, 0.0, 2.0), Bound("k", 2.0, 2.0, 2.0)]
+    eva = extreme_value(model, bounds)["y"]
+    # exact derivation: every corner has sin(0) or sin(pi) = 0 in a factor, so y = 0
+    assert eva["max"] == pytest.approx(0.0, abs=1e-12)
+    res = optimize_extreme(model, bounds, "y", "max", starts=6, seed=3)
+    # exact derivation: maximum 2 * 1 * 1 = 2 at x = 0.5, z = 1
+    assert res["value"] == pytest.approx(2.0, abs=1e-8)
+    assert res["at"]["x"] == pytest.approx(0.5, abs=1e-4)
+    assert res["at"]["z"] == pytest.approx(1.0, abs=1e-4)
+    assert res["at"]["k"] == 2.0
+    root_sum_square(model, bounds)
+    # The RSS batch perturbs even fixed parameters to report their sensitivity, so only
+    # EVA/optimizer batches (all but the last) must keep k exactly at nominal.
+    assert all(np.all(batch == 2.0) for batch in seen[:-1])
+
+
+def test_fixed_parameters_stay_at_nominal_in_eva_and_contribute_nothing_to_rss():
+    seen = []
+
+    def model(s):
+        seen.append(s["fixed"].copy())
+        return {"y": 3.0 * s["a"] + 100.0 * s["fixed"]}
+
+    bounds = [Bound("a", 1.0, 0.0, 2.0), Bound("fixed", 0.7, 0.7, 0.7)]
+    eva = extreme_value(model, bounds)["y"]
+    assert np.all(seen[0] == 0.7)
+    assert eva["evaluations"] == 3  # nominal + 2 vertices of the single varying parameter
+    assert eva["argmax"] == {"a": 2.0, "fixed": 0.7}
+    band = root_sum_square(model, bounds)["y"]
+    # exact derivation: only a varies, h = 1, dy/da = 3, so both bands are nominal +- 3
+    assert band["rss_high"] - band["nominal"] == pytest.approx(3.0, abs=1e-9)
+    assert band["linear_low"] == pytest.approx(band["nominal"] - 3.0, abs=1e-9)
+    # exact derivation: dy/dfixed = 100 (step relative to |nominal|)
+    assert band["sensitivities"]["fixed"] == pytest.approx(100.0, abs=1e-6)
+
+
+def test_sensitivity_directed_path_is_exact_on_linear_model():
+    d = 14
+    rng = np.random.default_rng(0)
+    coefs = rng.normal(size=d)
+    coefs[3] = 0.0  # a parameter without influence
+    bounds = [Bound(f"p{i}", 0.0, -1.0 - i * 0.1, 1.0 + i * 0.05) for i in range(d)]
+
+    def model(s):
+        y = sum(c * s[f"p{i}"] for i, c in enumerate(coefs))
+        return {"y": y, "w": -2.0 * y}
+
+    res = extreme_value(model, bounds, max_factorial=12)
+    hi = sum(max(c * b.low, c * b.high) for c, b in zip(coefs, bounds))
+    lo = sum(min(c * b.low, c * b.high) for c, b in zip(coefs, bounds))
+    assert res["y"]["method"] == "sensitivity-directed"
+    # exact derivation: linear model, extremes at the sign-selected vertices
+    assert res["y"]["max"] == pytest.approx(hi, abs=1e-10)
+    assert res["y"]["min"] == pytest.approx(lo, abs=1e-10)
+    # exact derivation: w = -2 y, so max w = -2 min y
+    assert res["w"]["max"] == pytest.approx(-2.0 * lo, abs=1e-10)
+    # 2d + 1 finite-difference points, then nominal plus 2 vertices shared by both metrics
+    assert res["y"]["evaluations"] == 2 * d + 1 + 3
+    # Fixing four parameters leaves d = 10 <= 12 varying: back to the full factorial.
+    fewer = bounds[:10] + [Bound(b.name, 0.0, 0.0, 0.0) for b in bounds[10:]]
+    full = extreme_value(model, fewer, max_factorial=12)
+    assert full["y"]["method"] == "full factorial"
+
+
+def test_nan_vertices_are_dropped_and_counted():
+    def model(s):
+        y = s["a"] + s["b"]
+        return {"y": np.where((s["a"] == 1.0) & (s["b"] == 1.0), np.nan, y)}
+
+    bounds = [Bound("a", 0.5, 0.0, 1.0), Bound("b", 0.5, 0.0, 1.0)]
+    res = extreme_value(model, bounds)["y"]
+    assert res["dropped"] == 1
+    # exact derivation: remaining corners give 0, 1, 1
+    assert res["max"] == 1.0 and res["min"] == 0.0
+
+
+def test_optimizer_survives_nan_region():
+    def model(s):
+        return {"y": np.where(s["x"] > 0.9, np.nan, s["x"] * (1.0 - s["z"]))}
+
+    bounds = [Bound("x", 0.5, 0.0, 1.0), Bound("z", 0.5, 0.0, 1.0)]
+    res = optimize_extreme(model, bounds, "y", "max", starts=5, seed=2)
+    assert np.isfinite(res["value"])
+    assert res["at"]["x"] <= 0.9
+    # exact derivation: feasible values are x (1 - z) <= 0.9 for x <= 0.9; nominal gives 0.25
+    assert 0.25 <= res["value"] <= 0.9
+
+
+def test_worst_case_table_combines_methods():
+    mc = {"y": {"min": -1.0, "max": 2.0, "p001": -0.9, "p999": 1.9}}
+    table = worst_case_table(linear_model, LINEAR_BOUNDS, ["y"], mc_extremes=mc, seed=5)
+    row = table["y"]
+    nominal, lo, hi, rss, _ = _analytic_linear(LINEAR_BOUNDS)
+    # exact derivation: linear model, see _analytic_linear
+    assert row["eva_max"] == pytest.approx(hi, abs=1e-12)
+    assert row["rss_low"] == pytest.approx(nominal - rss, abs=1e-9)
+    # exact derivation: on a linear model the bounded optimum is the EVA vertex
+    assert row["opt_max"] == pytest.approx(hi, abs=1e-9)
+    assert row["opt_min"] == pytest.approx(lo, abs=1e-9)
+    assert row["opt_argmin"] == row["eva_argmin"]
+    assert row["mc_p999"] == 1.9 and row["mc_min"] == -1.0
+    assert table["evaluations"] > (2**4 + 1) + (2 * 4 + 1)
+    again = worst_case_table(linear_model, LINEAR_BOUNDS, ["y"], mc_extremes=mc, seed=5)
+    assert again == table
+
+
+def test_combine_tolerances_arithmetic():
+    # exact derivation: 1 % + 0.5 % + 0.2 % = 1.7 %
+    assert combine_tolerances(0.01, 0.005, 0.002) == pytest.approx(0.017, abs=1e-15)
+    # exact derivation: sqrt(1e-4 + 2.5e-5 + 4e-6) = sqrt(1.29e-4)
+    assert combine_tolerances(0.01, 0.005, 0.002, method="rss") == pytest.approx(
+        np.sqrt(1.29e-4), abs=1e-15
+    )
+    # exact derivation: signs of drifts do not reduce a worst-case budget
+    assert combine_tolerances(0.01, -0.005, method="linear") == pytest.approx(0.015, abs=1e-15)
+    # exact derivation: 3-4-5 triangle
+    assert combine_tolerances(0.03, 0.04, method="rss") == pytest.approx(0.05, abs=1e-15)
+    with pytest.raises(ValueError):
+        combine_tolerances(0.01, method="sum")

@@ -1,0 +1,701 @@
+"""Global sensitivity measures for tolerance studies.
+
+Three families of measures are provided, all working on batches of samples:
+
+* :func:`rank_sensitivity` -- rank-based measures computed from an existing Monte Carlo
+  sample: Spearman rank correlation, standardized rank regression coefficients (SRRC) and
+  partial rank correlation coefficients (PRCC).
+* :func:`sobol_analysis` -- variance-based first-order and total Sobol indices estimated
+  with :func:`scipy.stats.sobol_indices` on a dedicated quasi-random design.
+* :func:`failure_drivers` -- which inputs separate failing from passing samples, and a
+  plain-language description of the failure region.
+
+A *model* is a callable ``model(samples: dict[str, ndarray]) -> dict[str, ndarray]`` that
+takes whole batches (one 1-D array per input, all the same length) and returns one 1-D array
+per metric. Metric arrays may contain NaN for samples whose solver did not converge; every
+analysis here drops (or, for Sobol indices, replaces) such values per metric and reports how
+many were affected.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+__all__ = [
+    "as_array_function",
+    "failure_drivers",
+    "rank_sensitivity",
+    "sobol_analysis",
+]
+
+
+# ---------------------------------------------------------------------------------------------
+# rank-based measures
+# ---------------------------------------------------------------------------------------------
+
+
+def _standardized_ranks(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Column-wise average ranks, centred and scaled to unit (population) variance.
+
+    Parameters
+    ----------
+    values : ndarray, shape (n, k)
+        Data, one variable per column.
+
+    Returns
+    -------
+    z : ndarray, shape (n, k)
+        Standardized ranks; columns with zero rank variance are left at zero.
+    constant : ndarray of bool, shape (k,)
+        True for columns whose values are all equal.
+    """
+    ranks = stats.rankdata(values, axis=0)
+    ranks = ranks - ranks.mean(axis=0)
+    scale = np.sqrt(np.mean(ranks**2, axis=0))
+    constant = scale == 0.0
+    z = np.zeros_like(ranks)
+    z[:, ~constant] = ranks[:, ~constant] / scale[~constant]
+    return z, constant
+
+
+def _rank_measures(x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Spearman, SRRC and PRCC for every input column against every output column.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n, p)
+        Finite input samples.
+    y : ndarray, shape (n, m)
+        Finite output samples (rows already filtered to be complete).
+
+    Returns
+    -------
+    spearman, srrc, prcc : ndarray, shape (p, m)
+        NaN where the input or the output is constant, or where the rank regression is
+        singular (collinear inputs).
+
+    Notes
+    -----
+    With ``R`` the correlation matrix of the standardized ranks of the non-constant inputs
+    and ``r`` the vector of their rank correlations with the output, the SRRC vector is the
+    least-squares solution ``b = R^-1 r``. The PRCC follows from the inverse of the augmented
+    correlation matrix ``[[R, r], [r', 1]]`` (the partial correlation of ``x_i`` and ``y``
+    given all other inputs equals ``-P_iy / sqrt(P_ii P_yy)`` for its inverse ``P``). By the
+    block-inverse formula, with ``s = 1 - r' b`` (the unexplained rank variance of ``y``),
+    ``PRCC_i = b_i / sqrt(s (R^-1)_ii + b_i^2)``. This equals the correlation of the
+    residuals of ``rank(x_i)`` and ``rank(y)`` each regressed on the other ranks, but is
+    computed for all inputs and all metrics with one matrix inverse.
+    """
+    n, p = x.shape
+    m = y.shape[1]
+    spearman = np.full((p, m), np.nan)
+    srrc = np.full((p, m), np.nan)
+    prcc = np.full((p, m), np.nan)
+    if n < 3:
+        return spearman, srrc, prcc
+    zx, const_x = _standardized_ranks(x)
+    zy, const_y = _standardized_ranks(y)
+    rho = zx.T @ zy / n  # (p, m) rank correlations
+    rho[const_x, :] = np.nan
+    rho[:, const_y] = np.nan
+    spearman[:] = rho
+
+    keep = np.flatnonzero(~const_x)
+    if keep.size == 0 or n <= keep.size + 1:
+        return spearman, srrc, prcc
+    zk = zx[:, keep]
+    corr = zk.T @ zk / n
+    try:
+        inv = np.linalg.inv(corr)
+    except np.linalg.LinAlgError:
+        return spearman, srrc, prcc
+    # Collinear inputs make the rank regression meaningless even when inversion "succeeds".
+    if not np.all(np.isfinite(inv)) or np.linalg.cond(corr) > 1e12:
+        return spearman, srrc, prcc
+    good_y = ~const_y
+    r = rho[np.ix_(keep, np.flatnonzero(good_y))]  # (k, m_good)
+    b = inv @ r
+    s = 1.0 - np.sum(r * b, axis=0)  # unexplained share of the output rank variance
+    s = np.clip(s, 0.0, None)
+    denom = np.sqrt(s[None, :] * np.diag(inv)[:, None] + b**2)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pr = np.where(denom > 0, b / denom, np.nan)
+    srrc[np.ix_(keep, np.flatnonzero(good_y))] = b
+    prcc[np.ix_(keep, np.flatnonzero(good_y))] = np.clip(pr, -1.0, 1.0)
+    return spearman, srrc, prcc
+
+
+def rank_sensitivity(inputs: pd.DataFrame, outputs: pd.DataFrame) -> pd.DataFrame:
+    """Rank-based sensitivity measures of every metric to every input.
+
+    Parameters
+    ----------
+    inputs : pandas.DataFrame
+        Monte Carlo input samples, one column per parameter, one row per sample.
+    outputs : pandas.DataFrame
+        Model outputs for the same samples (same number of rows, aligned by position), one
+        column per metric. NaN marks samples that did not converge.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per (input, metric) pair with columns
+
+        ``input``, ``metric``
+            Names.
+        ``spearman``
+            Spearman rank correlation between the input and the metric.
+        ``srrc``
+            Standardized rank regression coefficient: the least-squares coefficient of the
+            standardized ranks of the metric regressed on the standardized ranks of all
+            non-constant inputs together.
+        ``prcc``
+            Partial rank correlation coefficient: the correlation between the residuals of
+            ``rank(x_i)`` and ``rank(y)`` after each is linearly regressed on the ranks of
+            all other inputs (Marino et al., J. Theor. Biol. 254 (2008) 178-196).
+        ``n``
+            Number of samples used for this metric.
+        ``dropped``
+            Number of samples dropped for this metric (NaN output or NaN input).
+
+        Constant inputs (fixed parameters) and constant metrics yield NaN measures rather
+        than errors; so do collinear inputs for ``srrc`` and ``prcc``.
+
+    Notes
+    -----
+    Ties receive average ranks (:func:`scipy.stats.rankdata`). Rows are dropped per metric,
+    so metrics with different convergence patterns use different sample sets; metrics that
+    share the same set of complete rows are processed together in one matrix computation.
+    """
+    if len(inputs) != len(outputs):
+        raise ValueError(
+            f"inputs has {len(inputs)} rows but outputs has {len(outputs)}; they must match"
+        )
+    in_names = [str(c) for c in inputs.columns]
+    out_names = [str(c) for c in outputs.columns]
+    x_all = inputs.to_numpy(dtype=float)
+    y_all = outputs.to_numpy(dtype=float)
+    x_ok = np.all(np.isfinite(x_all), axis=1)
+    y_ok = np.isfinite(y_all)
+    rows_ok = y_ok & x_ok[:, None]
+
+    p, m = len(in_names), len(out_names)
+    spearman = np.full((p, m), np.nan)
+    srrc = np.full((p, m), np.nan)
+    prcc = np.full((p, m), np.nan)
+    counts = rows_ok.sum(axis=0)
+
+    # Group metrics that share the same set of complete rows.
+    groups: dict[bytes, list[int]] = {}
+    for j in range(m):
+        groups.setdefault(np.packbits(rows_ok[:, j]).tobytes(), []).append(j)
+    for cols in groups.values():
+        mask = rows_ok[:, cols[0]]
+        sp, sr, pr = _rank_measures(x_all[mask], y_all[np.ix_(mask, cols)])
+        spearman[:, cols] = sp
+        srrc[:, cols] = sr
+        prcc[:, cols] = pr
+
+    total = len(inputs)
+    return pd.DataFrame(
+        {
+            "input": np.repeat(in_names, m),
+            "metric": np.tile(out_names, p),
+            "spearman": spearman.ravel(),
+            "srrc": srrc.ravel(),
+            "prcc": prcc.ravel(),
+            "n": np.tile(counts, p).astype(int),
+            "dropped": np.tile(total - counts, p).astype(int),
+        }
+    )
+
+
+# ---------------------------------------------------------------------------------------------
+# Sobol indices
+# ---------------------------------------------------------------------------------------------
+
+
+def as_array_function(
+    model: Callable[[dict[str, np.ndarray]], dict[str, np.ndarray]],
+    names: list[str],
+    metrics: list[str],
+) -> Callable[[np.ndarray], np.ndarray]:
+    """Adapt a dict-based batch model to the array convention of :mod:`scipy.stats`.
+
+    Parameters
+    ----------
+    model : callable
+        ``model(samples: dict[str, ndarray]) -> dict[str, ndarray]``.
+    names : list of str
+        Input names, in the row order of the array the adapted function receives.
+    metrics : list of str
+        Metric names, in the row order of the array the adapted function returns.
+
+    Returns
+    -------
+    callable
+        ``func(x)`` with ``x`` of shape ``(d, n)`` returning an array of shape ``(s, n)``
+        (``s = len(metrics)``), computed with one call of ``model`` for all metrics.
+    """
+
+    def func(x: np.ndarray) -> np.ndarray:
+        x = np.atleast_2d(np.asarray(x, dtype=float))
+        if x.shape[0] != len(names):
+            raise ValueError(f"expected {len(names)} input rows, got {x.shape[0]}")
+        out = model({name: x[i] for i, name in enumerate(names)})
+        missing = [k for k in metrics if k not in out]
+        if missing:
+            raise KeyError(f"model did not return metric(s) {missing}")
+        y = np.vstack([np.asarray(out[k], dtype=float).reshape(-1) for k in metrics])
+        if y.shape[1] != x.shape[1]:
+            raise ValueError(
+                f"model returned {y.shape[1]} values per metric for {x.shape[1]} samples"
+            )
+        return y
+
+    return func
+
+
+def _is_power_of_two(n: int) -> bool:
+    return n >= 1 and (n & (n - 1)) == 0
+
+
+def sobol_analysis(
+    model: Callable[[dict[str, np.ndarray]], dict[str, np.ndarray]],
+    ppf: Mapping[str, Callable[[np.ndarray], np.ndarray]],
+    metrics: list[str] | None,
+    n: int,
+    seed,
+    bootstrap: int = 200,
+    confidence: float = 0.95,
+) -> dict:
+    """First-order and total Sobol indices with bootstrap confidence intervals.
+
+    Parameters
+    ----------
+    model : callable
+        Batch model ``model(samples: dict[str, ndarray]) -> dict[str, ndarray]``.
+    ppf : dict of str to callable
+        Independent inputs: name -> vectorized inverse CDF on (0, 1).
+    metrics : list of str or None
+        Metrics to analyse; None analyses every metric the model returns.
+    n : int
+        Base sample size; must be a power of two (balance of the Sobol sequence).
+    seed : int, SeedSequence, Generator or None
+        Seed for the scrambled Sobol design and for the bootstrap resampling, passed to
+        :func:`numpy.random.default_rng`.
+    bootstrap : int, default 200
+        Number of bootstrap resamples for the confidence intervals; 0 skips them (the
+        interval bounds are then NaN).
+    confidence : float, default 0.95
+        Confidence level of the intervals.
+
+    Returns
+    -------
+    dict
+        ``result[metric][input]`` is a dict with float entries ``first``, ``total``,
+        ``first_low``, ``first_high``, ``total_low``, ``total_high``. In addition:
+
+        ``"evaluations"`` : int
+            Model samples used, ``n * (d + 2)``.
+        ``"nan_replaced"`` : dict of str to int
+            Per metric, how many outputs were NaN/inf and were replaced by the mean of the
+            finite outputs of that metric.
+        ``"notes"`` : list of str
+            Human-readable remarks (replacements, constant metrics).
+
+    Raises
+    ------
+    ValueError
+        If ``n`` is not a power of two, or no inputs are given.
+
+    Notes
+    -----
+    The design follows the usual Saltelli scheme: a scrambled Sobol sequence with ``2 d``
+    dimensions gives the two base matrices ``A`` and ``B``; the ``d`` matrices ``AB_i`` take
+    ``A`` with column ``i`` from ``B``. All ``n (d + 2)`` points are evaluated in a single
+    model call (through :func:`as_array_function`, i.e. scipy's ``(d, n) -> (s, n)``
+    convention) so that non-converged samples can be replaced with the metric's overall mean
+    before the indices are formed; the evaluations are then handed to
+    :func:`scipy.stats.sobol_indices` in its dictionary form (estimator of Saltelli et al.,
+    Comput. Phys. Commun. 181 (2010) 259-270). Replacing NaN by the mean biases the indices
+    toward zero in proportion to the replaced fraction; keep it small.
+
+    Confidence intervals are percentile bootstrap intervals over the ``n`` rows of the
+    design (each resample keeps the A/B/AB structure), drawn from the seeded generator so
+    that results are reproducible.
+
+    Constant metrics have undefined indices and are reported as NaN.
+    """
+    n_int = int(n)
+    if n_int != n or not _is_power_of_two(n_int):
+        raise ValueError(
+            f"n must be a power of two for the Sobol design (got {n!r}); "
+            f"try {2 ** max(1, round(math.log2(max(float(n), 2.0))))}"
+        )
+    n = n_int
+    names = list(ppf)
+    d = len(names)
+    if d == 0:
+        raise ValueError("ppf must describe at least one input")
+    rng = np.random.default_rng(seed)
+
+    sampler = stats.qmc.Sobol(d=2 * d, scramble=True, bits=64, rng=rng)
+    u = sampler.random(n).T  # (2d, n)
+    # Keep the unit-cube points strictly inside (0, 1) so unbounded inverse CDFs stay finite.
+    u = np.clip(u, np.finfo(float).tiny, 1.0 - np.finfo(float).epsneg)
+    a_mat = np.empty((d, n))
+    b_mat = np.empty((d, n))
+    for i, name in enumerate(names):
+        a_mat[i] = np.asarray(ppf[name](u[i]), dtype=float)
+        b_mat[i] = np.asarray(ppf[name](u[d + i]), dtype=float)
+    ab = np.repeat(a_mat[None, :, :], d, axis=0)  # (d, d, n): page i = A with row i from B
+    idx = np.arange(d)
+    ab[idx, idx] = b_mat[idx]
+    design = np.concatenate([a_mat, b_mat, ab.transpose(1, 0, 2).reshape(d, d * n)], axis=1)
+
+    if metrics is None:
+        probe = model({name: design[i] for i, name in enumerate(names)})
+        metrics = list(probe)
+        y = as_array_function(lambda s: probe, names, metrics)(design)
+    else:
+        metrics = list(metrics)
+        y = as_array_function(model, names, metrics)(design)
+    s = len(metrics)
+
+    notes: list[str] = []
+    nan_replaced: dict[str, int] = {}
+    constant = np.zeros(s, dtype=bool)
+    for j, metric in enumerate(metrics):
+        bad = ~np.isfinite(y[j])
+        nan_replaced[metric] = int(bad.sum())
+        if bad.all():
+            constant[j] = True
+            notes.append(f"{metric}: no finite output; indices undefined")
+            y[j] = 0.0
+            continue
+        if bad.any():
+            mean = float(np.mean(y[j, ~bad]))
+            y[j, bad] = mean
+            notes.append(
+                f"{metric}: {int(bad.sum())} of {y.shape[1]} outputs not finite, "
+                f"replaced by the mean {mean:.6g}"
+            )
+        if np.ptp(y[j]) == 0.0:
+            constant[j] = True
+            notes.append(f"{metric}: constant output; indices undefined")
+
+    f_a = y[:, :n]
+    f_b = y[:, n : 2 * n]
+    f_ab = y[:, 2 * n :].reshape(s, d, n).transpose(1, 0, 2)  # (d, s, n)
+
+    result: dict = {}
+    live = np.flatnonzero(~constant)
+    first = np.full((s, d), np.nan)
+    total = np.full((s, d), np.nan)
+    lo_f = np.full((s, d), np.nan)
+    hi_f = np.full((s, d), np.nan)
+    lo_t = np.full((s, d), np.nan)
+    hi_t = np.full((s, d), np.nan)
+    if live.size:
+        fa, fb, fab = f_a[live], f_b[live], f_ab[:, live]
+
+        def indices(cols) -> tuple[np.ndarray, np.ndarray]:
+            res = stats.sobol_indices(
+                func={"f_A": fa[:, cols], "f_B": fb[:, cols], "f_AB": fab[..., cols]}, n=n
+            )
+            return (
+                np.asarray(res.first_order).reshape(live.size, d),
+                np.asarray(res.total_order).reshape(live.size, d),
+            )
+
+        fo, to = indices(slice(None))
+        first[live], total[live] = fo, to
+        if bootstrap and bootstrap > 0:
+
+            def statistic(rows: np.ndarray) -> np.ndarray:
+                f1, ft = indices(rows)
+                return np.concatenate([f1.ravel(), ft.ravel()])
+
+            boot = stats.bootstrap(
+                (np.arange(n),),
+                statistic,
+                n_resamples=int(bootstrap),
+                vectorized=False,
+                confidence_level=confidence,
+                method="percentile",
+                rng=rng,
+            )
+            low = np.asarray(boot.confidence_interval.low).reshape(2, live.size, d)
+            high = np.asarray(boot.confidence_interval.high).reshape(2, live.size, d)
+            lo_f[live], lo_t[live] = low[0], low[1]
+            hi_f[live], hi_t[live] = high[0], high[1]
+
+    for j, metric in enumerate(metrics):
+        result[metric] = {
+            name: {
+                "first": float(first[j, i]),
+                "total": float(total[j, i]),
+                "first_low": float(lo_f[j, i]),
+                "first_high": float(hi_f[j, i]),
+                "total_low": float(lo_t[j, i]),
+                "total_high": float(hi_t[j, i]),
+            }
+            for i, name in enumerate(names)
+        }
+    result["evaluations"] = int(n * (d + 2))
+    result["nan_replaced"] = nan_replaced
+    result["notes"] = notes
+    return result
+
+
+# ---------------------------------------------------------------------------------------------
+# failure drivers
+# ---------------------------------------------------------------------------------------------
+
+
+def _best_threshold(x: np.ndarray, failed: np.ndarray, side: str) -> tuple[float, float]:
+    """One-sided threshold on ``x`` maximising Youden's J for the failure label.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n,)
+        Input values.
+    failed : ndarray of bool, shape (n,)
+        Failure label; must contain at least one failure.
+    side : {"below", "above"}
+        ``"below"``: region is ``x < threshold``; ``"above"``: ``x > threshold``.
+
+    Returns
+    -------
+    threshold : float
+        Midpoint between the two neighbouring distinct values at the optimal cut (or just
+        beyond the data range when the region holds every sample).
+    j : float
+        Youden's J = (share of failures inside) - (share of passes inside).
+    """
+    order = np.argsort(x, kind="stable")
+    xs = x[order]
+    fs = failed[order]
+    n_fail = fs.sum()
+    n_pass = fs.size - n_fail
+    cum_f = np.concatenate([[0], np.cumsum(fs)])  # failures among the k smallest
+    cum_p = np.concatenate([[0], np.cumsum(~fs)])
+    # Admissible cut positions k (region = the k smallest) lie between distinct values.
+    k = np.concatenate([[0], np.flatnonzero(np.diff(xs) > 0) + 1, [xs.size]])
+    if side == "below":
+        tpr = cum_f[k] / n_fail
+        fpr = cum_p[k] / n_pass if n_pass else np.zeros(k.size)
+    else:
+        tpr = (n_fail - cum_f[k]) / n_fail
+        fpr = (n_pass - cum_p[k]) / n_pass if n_pass else np.zeros(k.size)
+    j = tpr - fpr
+    best = int(np.argmax(j))
+    kb = int(k[best])
+    span = float(xs[-1] - xs[0]) or 1.0
+    if kb == 0:
+        thr = float(xs[0]) - 0.5 * span / xs.size
+    elif kb == xs.size:
+        thr = float(xs[-1]) + 0.5 * span / xs.size
+    else:
+        thr = 0.5 * float(xs[kb - 1] + xs[kb])
+    return thr, float(j[best])
+
+
+def _default_formatter() -> Callable[[float, str], str]:
+    try:
+        from tolerance.units import format_quantity
+    except ImportError:
+        return lambda value, unit: f"{value:.3g}"
+    return lambda value, unit: format_quantity(value, unit)
+
+
+def _percent(fraction: float) -> str:
+    v = 100.0 * fraction
+    if v == 0.0:
+        return "0"
+    if v >= 10.0:
+        return f"{v:.0f}"
+    if v >= 1.0:
+        return f"{v:.1f}".rstrip("0").rstrip(".")
+    return f"{v:.2g}"
+
+
+def failure_drivers(
+    inputs: pd.DataFrame,
+    failed: np.ndarray,
+    units: dict[str, str] | None = None,
+    formatter: Callable[[float, str], str] | None = None,
+    top: int = 5,
+) -> dict:
+    """Rank the inputs that drive failures and describe the failure region.
+
+    Parameters
+    ----------
+    inputs : pandas.DataFrame
+        Monte Carlo input samples, one column per parameter.
+    failed : ndarray of bool, shape (n,)
+        True for samples that failed a requirement.
+    units : dict of str to str, optional
+        Unit name per input (default ``"1"``, dimensionless), passed to ``formatter``.
+    formatter : callable, optional
+        ``formatter(value, unit) -> str`` used for thresholds in the text. Defaults to
+        ``tolerance.units.format_quantity`` when that module is importable, else ``"%.3g"``.
+    top : int, default 5
+        Number of inputs kept in the ranking.
+
+    Returns
+    -------
+    dict
+        ``ranking`` : list of dict
+            Top inputs by two-sample Kolmogorov-Smirnov statistic between the failed and
+            the passed samples, each ``{"input", "ks", "direction", "p_value"}``;
+            ``direction`` is ``"low"`` when failures sit at lower values than passes,
+            ``"high"`` for higher values, ``"none"`` when the statistic is zero.
+        ``region`` : list of dict
+            One or two conditions ``{"input", "side": "below" | "above", "threshold"}``
+            combined with "and".
+        ``share_of_failures`` : float
+            Fraction of all failures inside the region.
+        ``rate_inside``, ``rate_outside`` : float
+            Failure rate among samples inside / outside the region.
+        ``text`` : str
+            Plain-language summary, e.g. ``"Q2.hfe below 410 and ambient below -10 degC:
+            92 % of failures, failure rate 31 % inside (0.4 % outside)"``.
+        ``failures``, ``samples``, ``dropped`` : int
+            Failure count, samples used, and rows dropped for non-finite inputs.
+
+    Notes
+    -----
+    Each condition is a one-sided threshold on one input, on the side given by the KS
+    direction. The threshold maximises Youden's J statistic, the share of failures inside
+    minus the share of passes inside (equivalently, the vertical distance between the two
+    empirical CDFs), and is placed midway between neighbouring sample values.
+
+    The second-ranked input is then thresholded the same way *within* the first region, and
+    the "and" combination is kept only if it raises the failure rate inside while keeping at
+    least 90 % of the failures the first condition captured.
+
+    With no failures the ranking is empty and the text reads ``"no failures"``; when every
+    sample failed the text reads ``"all samples failed"``.
+    """
+    units = units or {}
+    fmt = formatter if formatter is not None else _default_formatter()
+    failed_all = np.asarray(failed, dtype=bool).reshape(-1)
+    if failed_all.size != len(inputs):
+        raise ValueError(
+            f"failed has {failed_all.size} entries but inputs has {len(inputs)} rows"
+        )
+    names = [str(c) for c in inputs.columns]
+    x_all = inputs.to_numpy(dtype=float)
+    ok = np.all(np.isfinite(x_all), axis=1)
+    x = x_all[ok]
+    fail = failed_all[ok]
+    n_fail = int(fail.sum())
+    n = int(fail.size)
+    base = {
+        "failures": n_fail,
+        "samples": n,
+        "dropped": int((~ok).sum()),
+    }
+    empty = {
+        "ranking": [],
+        "region": [],
+        "share_of_failures": float("nan"),
+        "rate_inside": float("nan"),
+        "rate_outside": float("nan"),
+    }
+    if n_fail == 0:
+        return {**empty, "share_of_failures": 0.0, "text": "no failures", **base}
+    if n_fail == n:
+        return {
+            **empty,
+            "share_of_failures": 1.0,
+            "rate_inside": 1.0,
+            "text": "all samples failed",
+            **base,
+        }
+
+    n_pass = n - n_fail
+    method = "exact" if n <= 200 else "asymp"
+    ranking = []
+    for i, name in enumerate(names):
+        res = stats.ks_2samp(x[fail, i], x[~fail, i], method=method)
+        ks = float(res.statistic)
+        if ks == 0.0:
+            direction = "none"
+        else:
+            # statistic_sign > 0: the CDF of the failures lies above that of the passes,
+            # i.e. failures concentrate at lower values.
+            direction = "low" if res.statistic_sign > 0 else "high"
+        ranking.append(
+            {"input": name, "ks": ks, "direction": direction, "p_value": float(res.pvalue)}
+        )
+    ranking.sort(key=lambda r: -r["ks"])
+    ranking = ranking[: max(int(top), 0)] if top is not None else ranking
+
+    drivers = [r for r in ranking if r["direction"] != "none"]
+    if not drivers:
+        return {
+            **empty,
+            "ranking": ranking,
+            "text": "no input separates failures from passes",
+            **base,
+        }
+
+    col = {name: i for i, name in enumerate(names)}
+
+    def condition(rank_entry, mask):
+        i = col[rank_entry["input"]]
+        side = "below" if rank_entry["direction"] == "low" else "above"
+        thr, _ = _best_threshold(x[mask, i], fail[mask], side)
+        inside = x[:, i] < thr if side == "below" else x[:, i] > thr
+        return {"input": rank_entry["input"], "side": side, "threshold": thr}, inside
+
+    everything = np.ones(n, dtype=bool)
+    cond1, inside = condition(drivers[0], everything)
+    region = [cond1]
+
+    def rates(mask):
+        k_in = int(mask.sum())
+        f_in = int((fail & mask).sum())
+        share = f_in / n_fail
+        r_in = f_in / k_in if k_in else float("nan")
+        k_out = n - k_in
+        r_out = (n_fail - f_in) / k_out if k_out else float("nan")
+        return share, r_in, r_out
+
+    share, r_in, r_out = rates(inside)
+    if len(drivers) > 1 and (fail & inside).any() and (~fail & inside).any():
+        cond2, inside2 = condition(drivers[1], inside)
+        both = inside & inside2
+        share2, r_in2, r_out2 = rates(both)
+        if r_in2 > r_in and share2 >= 0.9 * share:
+            region.append(cond2)
+            inside, share, r_in, r_out = both, share2, r_in2, r_out2
+
+    parts = [
+        f"{c['input']} {c['side']} {fmt(c['threshold'], units.get(c['input'], '1'))}"
+        for c in region
+    ]
+    text = (
+        " and ".join(parts)
+        + f": {_percent(share)} % of failures, failure rate {_percent(r_in)} % inside"
+    )
+    if math.isfinite(r_out):
+        text += f" ({_percent(r_out)} % outside)"
+    return {
+        "ranking": ranking,
+        "region": region,
+        "share_of_failures": float(share),
+        "rate_inside": float(r_in),
+        "rate_outside": float(r_out),
+        "text": text,
+        **base,
+        "passes": int(n_pass),
+    }

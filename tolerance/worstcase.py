@@ -1,0 +1,627 @@
+"""Worst-case tolerance analysis: extreme-value, root-sum-square and bounded optimisation.
+
+Every parameter is described by a :class:`Bound` (nominal value and a closed interval).
+Three complementary methods estimate the spread of each metric:
+
+* :func:`extreme_value` -- extreme value analysis (EVA): every varying parameter at one of
+  its bounds, either all ``2^d`` vertices (full factorial) or, for many parameters, the two
+  vertices selected by the signs of the local sensitivities.
+* :func:`root_sum_square` -- linearised analysis at nominal: the root-sum-square (RSS)
+  statistical band and the linear worst-case band.
+* :func:`optimize_extreme` -- bounded numerical search for the true extreme of metrics that
+  are not monotonic in their parameters (where every vertex can miss the extreme).
+
+:func:`worst_case_table` runs all three per metric and lines them up, optionally beside Monte
+Carlo extremes. :func:`combine_tolerances` builds a relative tolerance budget from initial,
+temperature and ageing contributions.
+
+A *model* is ``model(samples: dict[str, ndarray]) -> dict[str, ndarray]`` evaluated on whole
+batches. Metric arrays may contain NaN where a solver did not converge; such points are
+ignored (and counted) when searching for extremes.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import optimize
+
+__all__ = [
+    "Bound",
+    "combine_tolerances",
+    "extreme_value",
+    "optimize_extreme",
+    "root_sum_square",
+    "worst_case_table",
+]
+
+Model = Callable[[dict[str, np.ndarray]], dict[str, np.ndarray]]
+
+
+@dataclass(frozen=True)
+class Bound:
+    """Nominal value and closed interval of one parameter.
+
+    Parameters
+    ----------
+    name : str
+        Parameter name as the model expects it.
+    nominal : float
+        Nominal (design-centre) value.
+    low, high : float
+        Interval limits, ``low <= nominal <= high``. ``low == high`` marks a fixed
+        parameter, which every method keeps at its nominal value.
+    """
+
+    name: str
+    nominal: float
+    low: float
+    high: float
+
+    def __post_init__(self) -> None:
+        values = (self.nominal, self.low, self.high)
+        if not all(math.isfinite(float(v)) for v in values):
+            raise ValueError(f"{self.name}: nominal and bounds must be finite, got {values}")
+        if not (self.low <= self.nominal <= self.high):
+            raise ValueError(
+                f"{self.name}: need low <= nominal <= high, got "
+                f"{self.low} <= {self.nominal} <= {self.high}"
+            )
+
+    @property
+    def fixed(self) -> bool:
+        """True when the parameter does not vary (``low == high``)."""
+        return self.low == self.high
+
+    @property
+    def half_range(self) -> float:
+        """Half the interval width, ``(high - low) / 2``."""
+        return 0.5 * (self.high - self.low)
+
+
+# ---------------------------------------------------------------------------------------------
+# helpers
+# ---------------------------------------------------------------------------------------------
+
+
+def _check_bounds(bounds: Sequence[Bound]) -> list[Bound]:
+    bounds = list(bounds)
+    names = [b.name for b in bounds]
+    if len(set(names)) != len(names):
+        raise ValueError(f"duplicate parameter names in bounds: {names}")
+    return bounds
+
+
+def _evaluate(
+    model: Model, bounds: list[Bound], x: np.ndarray, metrics: list[str] | None
+) -> tuple[dict[str, np.ndarray], list[str]]:
+    """Evaluate ``model`` on the rows of ``x`` (shape (k, len(bounds))) in one batch."""
+    x = np.atleast_2d(np.asarray(x, dtype=float))
+    out = model({b.name: x[:, i].copy() for i, b in enumerate(bounds)})
+    if metrics is None:
+        metrics = list(out)
+    missing = [m for m in metrics if m not in out]
+    if missing:
+        raise KeyError(f"model did not return metric(s) {missing}")
+    result = {}
+    for m in metrics:
+        y = np.asarray(out[m], dtype=float).reshape(-1)
+        if y.size != x.shape[0]:
+            raise ValueError(
+                f"model returned {y.size} values of {m!r} for a batch of {x.shape[0]}"
+            )
+        result[m] = y
+    return result, list(metrics)
+
+
+def _nominal(bounds: list[Bound]) -> np.ndarray:
+    return np.array([b.nominal for b in bounds], dtype=float)
+
+
+def _point(bounds: list[Bound], row: np.ndarray) -> dict[str, float]:
+    return {b.name: float(v) for b, v in zip(bounds, row)}
+
+
+def _fd_steps(bounds: list[Bound], rel_step: float) -> np.ndarray:
+    """Central-difference step per parameter: relative to the half-range, else |nominal|."""
+    steps = np.empty(len(bounds))
+    for i, b in enumerate(bounds):
+        scale = b.half_range if b.half_range > 0 else abs(b.nominal)
+        steps[i] = rel_step * (scale if scale > 0 else 1.0)
+    return steps
+
+
+def _central_differences(
+    model: Model, bounds: list[Bound], metrics: list[str] | None, rel_step: float
+) -> tuple[dict[str, np.ndarray], dict[str, float], list[str], int]:
+    """Sensitivities dy/dx_i at nominal from one batch of 2d + 1 points.
+
+    Returns the sensitivities per metric (array over all bounds), the nominal value per
+    metric, the metric list and the number of evaluations.
+    """
+    d = len(bounds)
+    x0 = _nominal(bounds)
+    steps = _fd_steps(bounds, rel_step)
+    batch = np.repeat(x0[None, :], 2 * d + 1, axis=0)
+    idx = np.arange(d)
+    batch[1 + idx, idx] += steps
+    batch[1 + d + idx, idx] -= steps
+    y, metrics = _evaluate(model, bounds, batch, metrics)
+    sens = {m: (y[m][1 : 1 + d] - y[m][1 + d :]) / (2.0 * steps) for m in metrics}
+    nominal = {m: float(y[m][0]) for m in metrics}
+    return sens, nominal, metrics, 2 * d + 1
+
+
+# ---------------------------------------------------------------------------------------------
+# extreme value analysis
+# ---------------------------------------------------------------------------------------------
+
+
+def extreme_value(
+    model: Model,
+    bounds: list[Bound],
+    metrics: list[str] | None = None,
+    max_factorial: int = 12,
+) -> dict:
+    """Extreme value analysis with every varying parameter at one of its bounds.
+
+    Parameters
+    ----------
+    model : callable
+        Batch model ``model(samples) -> dict[str, ndarray]``.
+    bounds : list of Bound
+        Parameters; fixed ones (``low == high``) stay at nominal.
+    metrics : list of str, optional
+        Metrics to analyse; default every metric the model returns.
+    max_factorial : int, default 12
+        Largest number of varying parameters for which all ``2^d`` vertices are evaluated.
+
+    Returns
+    -------
+    dict
+        Per metric a dict with ``nominal``, ``min``, ``max`` (floats), ``argmin`` and
+        ``argmax`` (dict name -> value, all parameters; empty when every vertex is NaN),
+        ``method`` (``"full factorial"`` or
+        ``"sensitivity-directed"``), ``evaluations`` (model samples used, shared by all
+        metrics of the call) and ``dropped`` (evaluated points whose value was NaN).
+
+    Notes
+    -----
+    *Full factorial* (``d <= max_factorial``): the nominal point and all ``2^d`` vertices are
+    evaluated in one batch (``2^d + 1`` evaluations). This is exact for metrics that are
+    monotonic in each parameter over the box.
+
+    *Sensitivity-directed* (``d > max_factorial``): central finite differences at nominal
+    (step ``1e-3`` of the half-range; ``2 d + 1`` evaluations) give the sign of each
+    sensitivity; per metric, the vertex with every parameter on the side that increases the
+    metric and its mirror image are evaluated (at most ``2`` per metric, duplicates shared).
+    A parameter with zero sensitivity is put at its low bound in both vertices. The result
+    is exact for metrics that are monotonic in every parameter with the sign seen at
+    nominal; interactions that flip a sign across the box are not detected.
+
+    ``min`` and ``max`` are taken over the evaluated vertices only (every vertex of the
+    batch, also those selected for other metrics), ignoring NaN; the nominal value is
+    reported separately and is not a candidate, so for a non-monotonic metric ``max`` can
+    lie below ``nominal``. ``dropped`` counts NaN vertices.
+    """
+    bounds = _check_bounds(bounds)
+    varying = np.array([not b.fixed for b in bounds], dtype=bool)
+    vidx = np.flatnonzero(varying)
+    d = int(vidx.size)
+    x0 = _nominal(bounds)
+    lows = np.array([b.low for b in bounds])
+    highs = np.array([b.high for b in bounds])
+
+    if d <= max_factorial:
+        method = "full factorial"
+        bits = (np.arange(2**d)[:, None] >> np.arange(d)[None, :]) & 1
+        batch = np.repeat(x0[None, :], 2**d + 1, axis=0)
+        batch[1:, vidx] = np.where(bits == 1, highs[vidx], lows[vidx])
+        y, metrics = _evaluate(model, bounds, batch, metrics)
+        evaluations = int(batch.shape[0])
+        y_nom = {m: float(y[m][0]) for m in metrics}
+        candidates = {m: (batch[1:], y[m][1:]) for m in metrics}
+    else:
+        method = "sensitivity-directed"
+        sens, _, metrics, n_fd = _central_differences(model, bounds, metrics, 1e-3)
+        rows = []
+        for m in metrics:
+            up = sens[m][vidx] > 0
+            v_max = x0.copy()
+            v_max[vidx] = np.where(up, highs[vidx], lows[vidx])
+            down = sens[m][vidx] < 0
+            v_min = x0.copy()
+            v_min[vidx] = np.where(down, highs[vidx], lows[vidx])
+            rows.extend([v_max, v_min])
+        batch = np.unique(np.vstack([x0[None, :], *rows]), axis=0)
+        y, _ = _evaluate(model, bounds, batch, metrics)
+        evaluations = int(n_fd + batch.shape[0])
+        is_nominal = np.all(batch == x0[None, :], axis=1)
+        on_vertex = np.all(
+            (batch[:, vidx] == lows[vidx]) | (batch[:, vidx] == highs[vidx]), axis=1
+        )
+        y_nom = {m: float(y[m][is_nominal][0]) for m in metrics}
+        candidates = {m: (batch[on_vertex], y[m][on_vertex]) for m in metrics}
+
+    result: dict = {}
+    for m in metrics:
+        pts, vals = candidates[m]
+        finite = np.isfinite(vals)
+        entry = {
+            "nominal": y_nom[m],
+            "method": method,
+            "evaluations": evaluations,
+            "dropped": int((~finite).sum()),
+        }
+        if finite.any():
+            masked_lo = np.where(finite, vals, np.inf)
+            masked_hi = np.where(finite, vals, -np.inf)
+            i_min = int(np.argmin(masked_lo))
+            i_max = int(np.argmax(masked_hi))
+            entry.update(
+                min=float(vals[i_min]),
+                max=float(vals[i_max]),
+                argmin=_point(bounds, pts[i_min]),
+                argmax=_point(bounds, pts[i_max]),
+            )
+        else:
+            entry.update(min=float("nan"), max=float("nan"), argmin={}, argmax={})
+        result[m] = entry
+    return result
+
+
+# ---------------------------------------------------------------------------------------------
+# root-sum-square and linear bands
+# ---------------------------------------------------------------------------------------------
+
+
+def root_sum_square(
+    model: Model,
+    bounds: list[Bound],
+    metrics: list[str] | None = None,
+    rel_step: float = 1e-3,
+) -> dict:
+    """Linearised worst-case and root-sum-square bands from sensitivities at nominal.
+
+    Parameters
+    ----------
+    model : callable
+        Batch model ``model(samples) -> dict[str, ndarray]``.
+    bounds : list of Bound
+        Parameters. Fixed parameters get a sensitivity (step relative to ``|nominal|``, or
+        absolute ``rel_step`` at zero) but contribute nothing to the bands.
+    metrics : list of str, optional
+        Metrics to analyse; default every metric the model returns.
+    rel_step : float, default 1e-3
+        Central-difference step as a fraction of each parameter's half-range.
+
+    Returns
+    -------
+    dict
+        Per metric a dict with ``nominal``, ``rss_low``, ``rss_high``, ``linear_low``,
+        ``linear_high`` (floats), ``sensitivities`` (dict name -> dy/dx) and
+        ``evaluations`` (``2 d + 1``, all in one batch, ``d`` = number of parameters).
+
+    Notes
+    -----
+    With sensitivities ``s_i = dy/dx_i`` and half-ranges ``h_i``:
+
+    * linear extreme-value band: ``nominal +- sum_i |s_i| h_i`` -- the worst case of the
+      linearised model, exact for a model that is linear over the box;
+    * RSS band: ``nominal +- sqrt(sum_i (s_i h_i)^2)``.
+
+    The RSS band treats every half-range as the same multiple of the parameter's standard
+    deviation (for example 3 sigma) and the parameters as independent, so it estimates the
+    output spread at that same multiple of sigma. It is a statistical estimate, not a
+    guarantee: a fraction of real units lies outside it, more so when the distributions are
+    not normal, the model is not linear, or the half-ranges correspond to different sigma
+    multiples.
+
+    Central differences have truncation error of order ``rel_step^2`` times the curvature;
+    the step lies inside the box unless the nominal sits on a bound.
+    """
+    bounds = _check_bounds(bounds)
+    sens, nominal, metrics, evaluations = _central_differences(
+        model, bounds, metrics, rel_step
+    )
+    h = np.array([b.half_range for b in bounds])
+    result = {}
+    for m in metrics:
+        s = sens[m]
+        contrib = s * h
+        # Fixed parameters have h = 0 and contribute nothing, even if their slope is NaN.
+        contrib = np.where(h > 0, contrib, 0.0)
+        rss = float(np.sqrt(np.sum(contrib**2)))
+        lin = float(np.sum(np.abs(contrib)))
+        y0 = nominal[m]
+        result[m] = {
+            "nominal": y0,
+            "rss_low": y0 - rss,
+            "rss_high": y0 + rss,
+            "linear_low": y0 - lin,
+            "linear_high": y0 + lin,
+            "sensitivities": {b.name: float(v) for b, v in zip(bounds, s)},
+            "evaluations": int(evaluations),
+        }
+    return result
+
+
+# ---------------------------------------------------------------------------------------------
+# bounded optimisation
+# ---------------------------------------------------------------------------------------------
+
+
+def _optimize(
+    model: Model,
+    bounds: list[Bound],
+    metric: str,
+    sense: str,
+    starts: int,
+    rng: np.random.Generator,
+    maxiter: int,
+    vertex: dict[str, float] | None,
+) -> dict:
+    """Multi-start L-BFGS-B search in normalised coordinates; see :func:`optimize_extreme`."""
+    if sense not in ("min", "max"):
+        raise ValueError(f"sense must be 'min' or 'max', got {sense!r}")
+    sign = 1.0 if sense == "min" else -1.0
+    x0 = _nominal(bounds)
+    vidx = np.array([i for i, b in enumerate(bounds) if not b.fixed], dtype=int)
+    lows = np.array([b.low for b in bounds])[vidx]
+    span = np.array([b.high - b.low for b in bounds])[vidx]
+    d = int(vidx.size)
+
+    counter = {"n": 0}
+    best = {"f": math.inf, "x": x0.copy(), "y": float("nan")}
+
+    def full_point(u: np.ndarray) -> np.ndarray:
+        x = x0.copy()
+        x[vidx] = lows + np.clip(u, 0.0, 1.0) * span
+        return x
+
+    def objective(u: np.ndarray) -> float:
+        x = full_point(np.asarray(u, dtype=float))
+        y, _ = _evaluate(model, bounds, x[None, :], [metric])
+        counter["n"] += 1
+        val = float(y[metric][0])
+        if not math.isfinite(val):
+            return math.inf
+        f = sign * val
+        if f < best["f"]:
+            best.update(f=f, x=x, y=val)
+        return f
+
+    if d == 0:
+        objective(np.zeros(0))
+        return {
+            "value": best["y"],
+            "at": _point(bounds, best["x"]),
+            "evaluations": counter["n"],
+            "starts": 1,
+        }
+
+    start_points = [(x0[vidx] - lows) / span]
+    if vertex is not None:
+        v = np.array([vertex[b.name] for b in bounds])[vidx]
+        start_points.append((v - lows) / span)
+    n_random = max(int(starts) - len(start_points), 0)
+    if n_random:
+        start_points.extend(rng.random((n_random, d)))
+    start_points = start_points[: max(int(starts), 1)]
+
+    box = [(0.0, 1.0)] * d
+    # Non-finite objective values (solver failures) are returned as +inf; the optimiser's
+    # finite-difference gradients then contain inf/nan. Those steps are simply rejected by
+    # the line search, so the floating-point warnings they raise carry no information.
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        for u0 in start_points:
+            optimize.minimize(
+                objective,
+                np.clip(u0, 0.0, 1.0),
+                method="L-BFGS-B",
+                bounds=box,
+                options={"maxiter": int(maxiter), "ftol": 1e-15, "gtol": 1e-10},
+            )
+    return {
+        "value": best["y"],
+        "at": _point(bounds, best["x"]),
+        "evaluations": counter["n"],
+        "starts": len(start_points),
+    }
+
+
+def optimize_extreme(
+    model: Model,
+    bounds: list[Bound],
+    metric: str,
+    sense: str,
+    starts: int = 8,
+    seed=0,
+    maxiter: int = 200,
+) -> dict:
+    """Bounded multi-start search for the true minimum or maximum of one metric.
+
+    Parameters
+    ----------
+    model : callable
+        Batch model ``model(samples) -> dict[str, ndarray]``.
+    bounds : list of Bound
+        Search box; fixed parameters stay at nominal.
+    metric : str
+        Metric to extremise.
+    sense : {"min", "max"}
+        Direction of the search.
+    starts : int, default 8
+        Number of starting points: the nominal point, the best extreme-value vertex for
+        this metric and sense, then random points in the box.
+    seed : int, SeedSequence, Generator or None, default 0
+        Seed for the random starting points (:func:`numpy.random.default_rng`).
+    maxiter : int, default 200
+        Iteration limit per start.
+
+    Returns
+    -------
+    dict
+        ``value`` : float
+            Best metric value found (NaN if every evaluation failed).
+        ``at`` : dict
+            Parameter values (all parameters) at the best point.
+        ``evaluations`` : int
+            Model samples used, including the extreme-value analysis that supplies the
+            vertex start.
+        ``starts`` : int
+            Number of starts actually run.
+
+    Notes
+    -----
+    Each start runs :func:`scipy.optimize.minimize` with method ``"L-BFGS-B"`` in normalised
+    coordinates ``u in [0, 1]^d`` (``x = low + u (high - low)``), so all parameters are on a
+    common scale and the box is the unit cube. Gradients come from finite differences.
+    The optimiser is inherently sequential, so every objective call evaluates the model on
+    a batch of one point; this is the one place in the package where the model is not fed
+    large batches. NaN results (non-converged solver) count as ``+inf`` for the search and
+    the best finite value seen across all starts is returned.
+
+    Multi-start search finds local extrema; it cannot prove that the global one was found.
+    Compare its result with the vertices and with Monte Carlo extremes.
+    """
+    bounds = _check_bounds(bounds)
+    rng = np.random.default_rng(seed)
+    eva = extreme_value(model, bounds, [metric])[metric]
+    key = "argmin" if sense == "min" else "argmax"
+    vertex = eva[key] or None
+    res = _optimize(model, bounds, metric, sense, starts, rng, maxiter, vertex)
+    res["evaluations"] += int(eva["evaluations"])
+    return res
+
+
+# ---------------------------------------------------------------------------------------------
+# combined table
+# ---------------------------------------------------------------------------------------------
+
+
+def worst_case_table(
+    model: Model,
+    bounds: list[Bound],
+    metrics: list[str] | None = None,
+    mc_extremes: dict | None = None,
+    seed=0,
+) -> dict:
+    """Extreme-value, RSS and optimised extremes of every metric, side by side.
+
+    Parameters
+    ----------
+    model : callable
+        Batch model ``model(samples) -> dict[str, ndarray]``.
+    bounds : list of Bound
+        Parameters.
+    metrics : list of str, optional
+        Metrics to analyse; default every metric the model returns.
+    mc_extremes : dict, optional
+        Monte Carlo results per metric, ``{metric: {"min", "max", "p001", "p999"}}``, placed
+        beside the worst-case figures as ``mc_min``, ``mc_max``, ``mc_p001``, ``mc_p999``.
+    seed : int, SeedSequence or None, default 0
+        Root seed; independent child seeds are spawned for each metric and sense.
+
+    Returns
+    -------
+    dict
+        ``result[metric]`` is a flat, table-ready dict with ``nominal``, ``eva_min``,
+        ``eva_max``, ``eva_argmin``, ``eva_argmax``, ``eva_method``, ``rss_low``,
+        ``rss_high``, ``linear_low``, ``linear_high``, ``opt_min``, ``opt_max``,
+        ``opt_argmin``, ``opt_argmax`` and, with ``mc_extremes``, the ``mc_*`` entries.
+        ``result["evaluations"]`` is the total number of model samples used by all methods
+        (the extreme-value and RSS batches are shared by all metrics).
+    """
+    bounds = _check_bounds(bounds)
+    eva = extreme_value(model, bounds, metrics)
+    metrics = list(eva)
+    rss = root_sum_square(model, bounds, metrics)
+    total = int(eva[metrics[0]]["evaluations"]) if metrics else 0
+    total += int(rss[metrics[0]]["evaluations"]) if metrics else 0
+    children = np.random.SeedSequence(seed).spawn(2 * len(metrics))
+    table: dict = {}
+    for k, m in enumerate(metrics):
+        e, r = eva[m], rss[m]
+        opt = {}
+        for j, sense in enumerate(("min", "max")):
+            rng = np.random.default_rng(children[2 * k + j])
+            vertex = e["arg" + sense] or None
+            opt[sense] = _optimize(model, bounds, m, sense, 8, rng, 200, vertex)
+            total += int(opt[sense]["evaluations"])
+        row = {
+            "nominal": e["nominal"],
+            "eva_min": e["min"],
+            "eva_max": e["max"],
+            "eva_argmin": e["argmin"],
+            "eva_argmax": e["argmax"],
+            "eva_method": e["method"],
+            "rss_low": r["rss_low"],
+            "rss_high": r["rss_high"],
+            "linear_low": r["linear_low"],
+            "linear_high": r["linear_high"],
+            "opt_min": opt["min"]["value"],
+            "opt_max": opt["max"]["value"],
+            "opt_argmin": opt["min"]["at"],
+            "opt_argmax": opt["max"]["at"],
+        }
+        if mc_extremes is not None and m in mc_extremes:
+            for key in ("min", "max", "p001", "p999"):
+                row["mc_" + key] = float(mc_extremes[m].get(key, float("nan")))
+        table[m] = row
+    table["evaluations"] = total
+    return table
+
+
+# ---------------------------------------------------------------------------------------------
+# tolerance budgets
+# ---------------------------------------------------------------------------------------------
+
+
+def combine_tolerances(
+    initial: float,
+    temperature: float = 0.0,
+    ageing: float = 0.0,
+    method: str = "linear",
+) -> float:
+    """Relative tolerance budget of a part parameter from its drift contributions.
+
+    Parameters
+    ----------
+    initial : float
+        Initial (purchase) tolerance, relative, e.g. ``0.01`` for 1 %.
+    temperature : float, default 0
+        Relative drift over the operating temperature range.
+    ageing : float, default 0
+        Relative end-of-life drift (ageing, and where relevant radiation).
+    method : {"linear", "rss"}, default "linear"
+        ``"linear"``: ``|initial| + |temperature| + |ageing|``, the worst-case budget in
+        which every contribution is at its limit simultaneously. ``"rss"``:
+        ``sqrt(initial^2 + temperature^2 + ageing^2)``, a statistical budget for
+        independent contributions quoted at the same confidence level.
+
+    Returns
+    -------
+    float
+        Combined relative tolerance.
+
+    Notes
+    -----
+    Worst-case analysis practice in space-grade electronics (ECSS-Q-HB-30-01A, 2011, on
+    worst case circuit performance analysis) builds each part parameter's end-of-life
+    tolerance from the initial tolerance plus the drifts due to temperature and ageing.
+    Contributions that are bias-like (always in the same direction) belong in a linear
+    sum; random, independent contributions may be combined by root-sum-square. Use
+    ``"linear"`` for a guaranteed worst case and ``"rss"`` for a statistical estimate.
+    """
+    parts = np.array([initial, temperature, ageing], dtype=float)
+    if not np.all(np.isfinite(parts)):
+        raise ValueError(f"tolerances must be finite, got {parts.tolist()}")
+    if method == "linear":
+        return float(np.sum(np.abs(parts)))
+    if method == "rss":
+        return float(np.sqrt(np.sum(parts**2)))
+    raise ValueError(f"method must be 'linear' or 'rss', got {method!r}")
