@@ -143,7 +143,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         sampler: str | None = None, jobs: int = 1, chunk_size: int | None = None,
         out=None, progress: bool = False, resume: bool = False, force: bool = False,
         backend: str = "loky", scheduler: str | None = None,
-        overrides: dict[str, Override] | None = None, extra: dict | None = None) -> RunResult:
+        overrides: dict[str, Override] | None = None, target_ci: float | None = None,
+        insights: bool = True) -> RunResult:
     """Run a study's Monte Carlo analysis.
 
     Parameters
@@ -160,6 +161,12 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         memory.
     overrides : dict, optional
         Parameter name -> :class:`~tolerance.runner.Override` (what-if pins, value choice).
+    target_ci : float, optional
+        Keep sampling (up to ``samples``, the cap) until every criterion's 95 % interval has a
+        half-width below this failure rate [1].
+    insights : bool
+        Add the parameter table, rank sensitivities, failure drivers, capability and tail
+        estimates to the summary.
     """
     spec = make_spec(study, samples, seed, sampler, overrides)
     chunk = study.settings.chunk_size if chunk_size is None else int(chunk_size)
@@ -169,17 +176,52 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         raise UsageError(f"jobs must be at least 1, got {jobs}")
     if backend not in ("loky", "dask"):
         raise UsageError(f"backend must be loky or dask, got {backend!r}")
+    stop_rule = None
+    if target_ci is not None:
+        if not 0 < target_ci < 0.5:
+            raise UsageError(f"target interval half-width must lie between 0 and 0.5, got "
+                             f"{target_ci}")
+        stop_rule = _half_width_rule(spec, target_ci)
     meta = dict(study_path=study.path, title=study.title, stage_name=study.stage_name,
-                allowed_rate=study.settings.max_failure_rate, extra=extra)
+                allowed_rate=study.settings.max_failure_rate)
     if out is None:
         df = runner.execute(spec, chunk, jobs, None, progress, backend=backend,
-                            scheduler=scheduler)
-        summary = summarize(spec, lambda name: df[name].to_numpy(), **meta)
+                            scheduler=scheduler, stop_rule=stop_rule)
+        column = lambda name: df[name].to_numpy()  # noqa: E731
+        summary = summarize(spec, column, **meta, extra=_extra(study, column, insights,
+                                                               target_ci))
         return RunResult(study, summary, None, df)
     out = Path(out)
     _prepare_folder(out, force, resume)
     folder = out / SAMPLES_DIR
-    runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler)
-    summary = summarize(spec, lambda name: runner.read_column(folder, name), **meta)
+    runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler,
+                   stop_rule=stop_rule)
+    column = lambda name: runner.read_column(folder, name)  # noqa: E731
+    summary = summarize(spec, column, **meta, extra=_extra(study, column, insights, target_ci))
     write_json(out / SUMMARY_FILE, summary)
     return RunResult(study, summary, out)
+
+
+def _extra(study: Study, column, insights: bool, target_ci: float | None) -> dict:
+    from tolerance.analysis import insights as _insights
+
+    extra = _insights(study, column) if insights else {}
+    if target_ci is not None:
+        extra["target_ci"] = target_ci
+    return extra
+
+
+def _half_width_rule(spec: RunSpec, width: float):
+    from tolerance import stats
+    from tolerance.runner import criterion_column
+
+    def rule(column) -> bool:
+        converged = column("converged").astype(bool)
+        n = max(int(converged.sum()), 1)
+        for c in spec.criteria:
+            failures = int(np.count_nonzero(converged & ~column(criterion_column(c.name))))
+            if stats.half_width(failures, n) >= width:
+                return False
+        return True
+
+    return rule

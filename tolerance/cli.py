@@ -58,6 +58,22 @@ def _add_run_options(p: argparse.ArgumentParser, out_help: str) -> None:
     p.add_argument("--quiet", action="store_true", help="no progress bar, no summary table")
 
 
+def _fraction(text: str) -> float:
+    from tolerance.units import UnitError, parse_quantity
+
+    try:
+        return parse_quantity(text, "1")
+    except UnitError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _power_of_two(text: str) -> int:
+    n = _positive_int(text)
+    if n & (n - 1):
+        raise argparse.ArgumentTypeError(f"expected a power of two (e.g. 1024), got {n}")
+    return n
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="tolerance", description="Monte Carlo and worst-case tolerance "
                      "analysis of transistor switching stages.")
@@ -73,6 +89,38 @@ def build_parser() -> argparse.ArgumentParser:
                         "cluster)")
     p.add_argument("--scheduler", help="dask scheduler address (with --backend dask); none: a "
                    "local cluster")
+    p.add_argument("--target-ci", type=_fraction, metavar="W",
+                   help="keep sampling (up to --samples) until every criterion's 95 %% interval "
+                        "half-width is below W (e.g. 0.001 or 100ppm)")
+
+    p = sub.add_parser("whatif", help="pin parameters and compare with the baseline (common "
+                       "random numbers)")
+    _add_run_options(p, "output folder (default: results/<study>-whatif)")
+    p.add_argument("--pin", action="append", default=[], metavar="NAME=VALUE",
+                   help="NAME=VALUE|min|max|nominal|pNN; repeat for several parameters")
+
+    p = sub.add_parser("worstcase", help="extreme-value, RSS and optimizer worst case beside "
+                       "the Monte Carlo extremes")
+    _add_run_options(p, "output folder (default: results/<study>-worstcase)")
+
+    p = sub.add_parser("sensitivity", help="rank sensitivities and Sobol indices")
+    _add_run_options(p, "output folder (default: results/<study>-sensitivity)")
+    p.add_argument("--sobol-samples", type=_power_of_two, default=1024, metavar="N",
+                   help="base size of the Sobol design (a power of two; costs N*(d+2) "
+                        "evaluations)")
+
+    p = sub.add_parser("choose", help="sweep preferred values of one or two parts")
+    _add_run_options(p, "output folder (default: results/<study>-choose)")
+    p.add_argument("--vary", action="append", default=[], metavar="NAME=SERIES:LOW..HIGH",
+                   help="e.g. RBE2=E24:47..1k; once or twice")
+    p.add_argument("--tradeoff", metavar="METRIC,METRIC",
+                   help="two metrics for the trade-off frontier (default: the first two "
+                        "limited metrics)")
+
+    p = sub.add_parser("report", help="rebuild the reports of a result folder from its saved "
+                       "results")
+    p.add_argument("folder", help="a result folder written by run, whatif, worstcase, "
+                   "sensitivity or choose")
 
     p = sub.add_parser("check", help="validate a study and print its parameter table")
     p.add_argument("study", nargs="?", help="study file (TOML); none: the built-in demo")
@@ -85,8 +133,8 @@ def _load(path):
     return load_study(path)
 
 
-def _default_out(study) -> Path:
-    stem = Path(study.path.split()[-1]).stem
+def _default_out(study, suffix: str = "") -> Path:
+    stem = Path(study.path.split()[-1]).stem + suffix
     base = Path("results") / stem
     candidate, k = base, 2
     while candidate.exists() and any(candidate.iterdir()):
@@ -142,10 +190,187 @@ def cmd_run(args) -> int:
     result = run(study, samples=args.samples, seed=args.seed, sampler=args.sampler,
                  jobs=args.jobs, chunk_size=args.chunk_size, out=out, progress=progress,
                  resume=args.resume, force=args.force, backend=args.backend,
-                 scheduler=args.scheduler)
+                 scheduler=args.scheduler, target_ci=args.target_ci)
+    _write_report(out)
     if not args.quiet:
         print_summary(result.summary, study, out)
     return exit_status(result.summary["verdict"])
+
+
+def _analysis_out(args, study, suffix: str) -> Path:
+    from tolerance.api import _prepare_folder
+
+    out = Path(args.out) if args.out else _default_out(study, suffix)
+    _prepare_folder(out, args.force, False)
+    return out
+
+
+def _write_report(out: Path) -> None:
+    from tolerance import report
+
+    report.write_reports(out)
+
+
+def _samples(args, study) -> int:
+    return args.samples if args.samples is not None else study.settings.samples
+
+
+def cmd_whatif(args) -> int:
+    from tolerance.api import write_json
+    from tolerance.whatif import whatif
+
+    study = _load(args.study)
+    if not args.pin:
+        raise UsageError("whatif needs at least one --pin NAME=VALUE|min|max|nominal|pNN")
+    from tolerance.whatif import parse_pins
+
+    parse_pins(study, args.pin)  # validate before creating the output folder
+    out = _analysis_out(args, study, "-whatif")
+    result, base, pinned = whatif(study, args.pin, args.samples, args.seed, args.sampler,
+                                  args.jobs)
+    write_json(out / "whatif.json", result)
+    _save_pair(out, study, base.samples, pinned.samples)
+    _write_report(out)
+    if not args.quiet:
+        w = sys.stdout.write
+        w(f"\nwhat if {', '.join(args.pin)}  ({result['samples']:,} samples, common random "
+          "numbers)\n")
+        yb, yp = result["yield"]["baseline"], result["yield"]["pinned"]
+        w(f"yield  baseline {100 * yb['estimate']:.4f} %   pinned {100 * yp['estimate']:.4f} %\n\n")
+        w("{:<22} {:>14} {:>14} {:>10} {:>10}\n".format("criterion", "baseline ppm",
+                                                       "pinned ppm", "baseline", "pinned"))
+        for name, c in result["criteria"].items():
+            w("{:<22} {:>14.1f} {:>14.1f} {:>10} {:>10}\n".format(
+                name, 1e6 * c["baseline"]["rate"], 1e6 * c["pinned"]["rate"],
+                c["baseline"]["verdict"], c["pinned"]["verdict"]))
+        w("\n{:<20} {:>26} {:>26}\n".format("metric", "baseline p0.1 / p99.9",
+                                             "pinned p0.1 / p99.9"))
+        for name, m in result["metrics"].items():
+            u = m["unit"]
+            w("{:<20} {:>26} {:>26}\n".format(
+                name, f"{_fmt(m['baseline']['p001'], u)} / {_fmt(m['baseline']['p999'], u)}",
+                f"{_fmt(m['pinned']['p001'], u)} / {_fmt(m['pinned']['p999'], u)}"))
+        w(f"\nresults in {out}\n\nCaution: {SAFETY}\n")
+    return exit_status(result["verdict"]["pinned"])
+
+
+def _save_pair(out: Path, study, base, pinned) -> None:
+    import pandas as pd
+
+    cols = list(study.stage.metrics)
+    frame = pd.concat([base[cols].add_prefix("baseline."), pinned[cols].add_prefix("pinned.")],
+                      axis=1)
+    frame.to_parquet(out / "whatif_samples.parquet", index=False)
+
+
+def cmd_worstcase(args) -> int:
+    from tolerance.analysis import study_worst_case
+    from tolerance.api import write_json
+
+    study = _load(args.study)
+    out = _analysis_out(args, study, "-worstcase")
+    result = study_worst_case(study, _samples(args, study), args.seed if args.seed is not None
+                              else study.settings.seed)
+    write_json(out / "worstcase.json", result)
+    _write_report(out)
+    if not args.quiet:
+        w = sys.stdout.write
+        w(f"\nworst case of {study.title}  ({result['evaluations']:,} evaluations)\n\n")
+        w("{:<18} {:>11} {:>23} {:>23} {:>23} {:>23}\n".format(
+            "metric", "nominal", "EVA min .. max", "RSS band", "optimizer min .. max",
+            "Monte Carlo min .. max"))
+        for name, m in result["metrics"].items():
+            u = result["units"][name]
+            w("{:<18} {:>11} {:>23} {:>23} {:>23} {:>23}\n".format(
+                name, _fmt(m["nominal"], u), f"{_fmt(m['eva_min'], u)} .. {_fmt(m['eva_max'], u)}",
+                f"{_fmt(m['rss_low'], u)} .. {_fmt(m['rss_high'], u)}",
+                f"{_fmt(m['opt_min'], u)} .. {_fmt(m['opt_max'], u)}",
+                f"{_fmt(m.get('mc_min'), u)} .. {_fmt(m.get('mc_max'), u)}"))
+        w(f"\nresults in {out}\n\nCaution: {SAFETY}\n")
+    return 0
+
+
+def cmd_sensitivity(args) -> int:
+    from tolerance.analysis import study_sensitivity
+    from tolerance.api import write_json
+
+    study = _load(args.study)
+    out = _analysis_out(args, study, "-sensitivity")
+    result = study_sensitivity(study, _samples(args, study), args.seed if args.seed is not None
+                               else study.settings.seed, args.sobol_samples)
+    write_json(out / "sensitivity.json", result)
+    _write_report(out)
+    if not args.quiet:
+        w = sys.stdout.write
+        w(f"\nsensitivity of {study.title}  ({result['evaluations']:,} evaluations)\n")
+        for metric in [c.metric for c in study.criteria]:
+            rows = sorted((r for r in result["rank"] if r["metric"] == metric),
+                          key=lambda r: -abs(r["spearman"] or 0))[:6]
+            sob = result["sobol"].get(metric, {})
+            w(f"\n{metric}\n  {'input':<24} {'spearman':>9} {'srrc':>8} {'prcc':>8} "
+              f"{'sobol S1':>9} {'sobol ST':>9}\n")
+            for r in rows:
+                s = sob.get(r["input"], {})
+                w("  {:<24} {:>9} {:>8} {:>8} {:>9} {:>9}\n".format(
+                    r["input"], *(f"{v:.3f}" if isinstance(v, float) else "-" for v in
+                                  (r["spearman"], r["srrc"], r["prcc"], s.get("first"),
+                                   s.get("total")))))
+        w(f"\nresults in {out}\n")
+    return 0
+
+
+def cmd_choose(args) -> int:
+    from tolerance.api import write_json
+    from tolerance.choose import choose, parse_vary
+
+    study = _load(args.study)
+    if not args.vary:
+        raise UsageError("choose needs --vary NAME=SERIES:LOW..HIGH (once or twice)")
+    for v in args.vary:
+        parse_vary(study, v)
+    tradeoff = None
+    if args.tradeoff:
+        tradeoff = tuple(t.strip() for t in args.tradeoff.split(","))
+        if len(tradeoff) != 2:
+            raise UsageError("--tradeoff takes two metrics separated by a comma")
+    out = _analysis_out(args, study, "-choose")
+    result = choose(study, args.vary, args.samples, args.seed, args.sampler, args.jobs, tradeoff)
+    write_json(out / "choose.json", result)
+    _write_report(out)
+    if not args.quiet:
+        w = sys.stdout.write
+        names = list(result["vary"])
+        w(f"\nvalue choice for {', '.join(names)}  ({result['samples']:,} samples per "
+          "candidate, common random numbers)\n\n")
+        tm = list(result["tradeoff"])
+        w("  ".join(f"{n:>12}" for n in names) + f" {'yield %':>10} {'95 % interval':>22} "
+          + " ".join(f"{m + ' ' + result['tradeoff'][m]['statistic']:>24}" for m in tm) + "\n")
+        for i, c in enumerate(result["candidates"]):
+            mark = " *" if c is result["best"] or c == result["best"] else ""
+            front = " frontier" if i in result["frontier"] else ""
+            w("  ".join(f"{_fmt(c['values'][n], result['units'][n]):>12}" for n in names)
+              + f" {100 * c['yield']:>10.3f} {100 * c['ci_low']:>10.3f} .. {100 * c['ci_high']:<9.3f}"
+              + " ".join(f"{_fmt(c[m], result['tradeoff'][m]['unit']):>24}" for m in tm)
+              + mark + front + "\n")
+        best = result["best"]
+        w("\nbest: " + ", ".join(f"{n} = {_fmt(best['values'][n], result['units'][n])}"
+                                  for n in names)
+          + f" (yield {100 * best['yield']:.3f} %)\nresults in {out}\n")
+    return 0
+
+
+def cmd_report(args) -> int:
+    from tolerance import report
+
+    folder = Path(args.folder)
+    if not (folder / "summary.json").is_file() and not any(
+        (folder / f).is_file() for f in ("whatif.json", "worstcase.json", "sensitivity.json",
+                                         "choose.json")
+    ):
+        raise UsageError(f"{folder}: holds no saved results (summary.json or an analysis file)")
+    paths = report.write_reports(folder)
+    sys.stdout.write(f"wrote {paths['html']} and {paths['md']}\n")
+    return 0
 
 
 def cmd_check(args) -> int:
@@ -182,7 +407,9 @@ def cmd_parts(args) -> int:
     return 0
 
 
-COMMANDS = {"run": cmd_run, "check": cmd_check, "parts": cmd_parts}
+COMMANDS = {"run": cmd_run, "check": cmd_check, "parts": cmd_parts, "whatif": cmd_whatif,
+            "worstcase": cmd_worstcase, "sensitivity": cmd_sensitivity, "choose": cmd_choose,
+            "report": cmd_report}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -67,9 +67,19 @@ class RunSpec:
         }
 
 
-def chunk_ranges(total: int, chunk_size: int) -> list[tuple[int, int, int]]:
-    """(index, start, stop) of every chunk."""
-    return [(i, s, min(s + chunk_size, total)) for i, s in enumerate(range(0, total, chunk_size))]
+#: with a stop rule, the rule is checked at every multiple of this many samples
+CHECK_EVERY = 32_768
+
+
+def chunk_ranges(total: int, chunk_size: int, align: int | None = None
+                 ) -> list[tuple[int, int, int]]:
+    """(index, start, stop) of every chunk; with ``align`` no chunk crosses a multiple of it."""
+    edges = set(range(0, total, chunk_size))
+    if align:
+        edges |= set(range(0, total, align))
+    starts = sorted(edges)
+    stops = starts[1:] + [total]
+    return [(i, s, e) for i, (s, e) in enumerate(zip(starts, stops))]
 
 
 def criterion_column(name: str) -> str:
@@ -160,53 +170,84 @@ class Progress:
 
 def execute(spec: RunSpec, chunk_size: int, jobs: int = 1, folder: Path | None = None,
             progress: bool = False, resume: bool = False, backend: str = "loky",
-            scheduler: str | None = None) -> pd.DataFrame | None:
+            scheduler: str | None = None, stop_rule=None) -> pd.DataFrame | None:
     """Evaluate every chunk; return the samples (``folder`` None) or write them to ``folder``.
 
     With ``resume`` the chunks already in ``folder`` that belong to this very run are kept.
+    With ``stop_rule`` the chunks run in rounds (two per worker) and the run stops after the
+    first round for which ``stop_rule(column)`` is true, ``column(name)`` giving the samples
+    evaluated so far; the chunks kept are always a prefix of the plan, so the result depends
+    only on the seed and the rule.
     """
-    from joblib import Parallel, delayed, parallel_config
+    from joblib import Parallel, delayed
 
-    ranges = chunk_ranges(spec.samples, chunk_size)
+    ranges = chunk_ranges(spec.samples, chunk_size, CHECK_EVERY if stop_rule else None)
     bar = Progress(spec.samples, progress)
-    if folder is None:
-        if jobs == 1:
-            frames = []
-            for _, s, e in ranges:
-                frames.append(evaluate_chunk(spec, s, e))
-                bar.advance(e - s)
-        else:
-            with _backend(backend, scheduler, jobs):
-                gen = Parallel(n_jobs=jobs, return_as="generator")(
-                    delayed(evaluate_chunk)(spec, s, e) for _, s, e in ranges)
-                frames = []
-                for f in gen:
-                    frames.append(f)
-                    bar.advance(len(f))
-        return pd.concat(frames, ignore_index=True)
-
-    folder.mkdir(parents=True, exist_ok=True)
-    for stale in folder.glob("*.tmp"):
-        stale.unlink()  # a chunk interrupted while being written
-    for path in chunk_files(folder):
-        if int(path.stem[len(CHUNK_PREFIX):]) >= len(ranges):
-            path.unlink()  # left from a run with another chunk plan
-    todo = []
-    for i, s, e in ranges:
-        if resume and chunk_is_complete(_chunk_path(folder, i), spec.signature, s, e):
-            bar.advance(e - s)
-        else:
-            todo.append((i, s, e))
-    if jobs == 1 and backend == "loky":
-        for i, s, e in todo:
-            bar.advance(run_chunk_to_file(spec, i, s, e, str(folder)))
+    if folder is not None:
+        folder.mkdir(parents=True, exist_ok=True)
+        for stale in folder.glob("*.tmp"):
+            stale.unlink()  # a chunk interrupted while being written
+        for path in chunk_files(folder):
+            if int(path.stem[len(CHUNK_PREFIX):]) >= len(ranges):
+                path.unlink()  # left from a run with another chunk plan
+    # rounds end at multiples of CHECK_EVERY samples, whatever the workers or chunk size
+    if stop_rule is None:
+        rounds = [ranges]
     else:
-        with _backend(backend, scheduler, jobs):
-            gen = Parallel(n_jobs=jobs, return_as="generator")(
-                delayed(run_chunk_to_file)(spec, i, s, e, str(folder)) for i, s, e in todo)
-            for n in gen:
-                bar.advance(n)
+        rounds = {}
+        for r in ranges:
+            rounds.setdefault(r[1] // CHECK_EVERY, []).append(r)
+        rounds = list(rounds.values())
+    frames: list[pd.DataFrame] = []
+    finished = 0
+    for batch in rounds:
+        finished += len(batch)
+        if folder is None:
+            tasks = [delayed(evaluate_chunk)(spec, s, e) for _, s, e in batch]
+        else:
+            tasks = []
+            for i, s, e in batch:
+                if resume and chunk_is_complete(_chunk_path(folder, i), spec.signature, s, e):
+                    bar.advance(e - s)
+                else:
+                    tasks.append(delayed(run_chunk_to_file)(spec, i, s, e, str(folder)))
+        for item in _run_tasks(tasks, jobs, backend, scheduler):
+            n = len(item) if isinstance(item, pd.DataFrame) else item
+            if isinstance(item, pd.DataFrame):
+                frames.append(item)
+            bar.advance(n)
+        if stop_rule is not None and finished < len(ranges):
+            if folder is None:
+                done = pd.concat(frames, ignore_index=True)
+                column = lambda name, d=done: d[name].to_numpy()  # noqa: E731
+            else:
+                kept = [_chunk_path(folder, i) for i, _, _ in ranges[:finished]]
+                column = lambda name, k=kept: np.concatenate(  # noqa: E731
+                    [pq.read_table(p, columns=[name]).column(name).to_numpy() for p in k])
+            if stop_rule(column):
+                if folder is not None:
+                    for i, _, _ in ranges[finished:]:
+                        _chunk_path(folder, i).unlink(missing_ok=True)
+                break
+    if progress and bar.done < bar.total:
+        sys.stderr.write("\n")
+    if folder is None:
+        return pd.concat(frames, ignore_index=True)
     return None
+
+
+def _run_tasks(tasks, jobs: int, backend: str, scheduler: str | None):
+    """Run joblib tasks in submission order, in-process when one local worker suffices."""
+    from joblib import Parallel
+
+    if not tasks:
+        return
+    if jobs == 1 and backend == "loky":
+        for fn, args, kwargs in tasks:
+            yield fn(*args, **kwargs)
+        return
+    with _backend(backend, scheduler, jobs):
+        yield from Parallel(n_jobs=jobs, return_as="generator")(tasks)
 
 
 class _backend:

@@ -29,8 +29,8 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
     column : callable
         ``column(name) -> ndarray`` returns one column of the samples, in sample order.
     """
-    n = spec.samples
     converged = column("converged").astype(bool)
+    n = len(converged)
     n_conv = int(converged.sum())
     not_converged = n - n_conv
     all_pass = column("pass").astype(bool)
@@ -78,6 +78,7 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
         "stage": stage_name,
         "seed": spec.seed,
         "samples": n,
+        "planned_samples": spec.samples,
         "sampler": spec.sampler,
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "confidence": CONFIDENCE,

@@ -1,0 +1,159 @@
+"""Study-level analyses on the exact linear test stage: what-if, value choice, worst case,
+sensitivity, target interval, run insights."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+from tolerance.api import UsageError, load_study, run
+from tolerance.runner import Override
+
+LINEAR = """
+stage = "linear_test"
+title = "linear"
+[run]
+samples = 4000
+seed = 5
+sampler = "lhs"
+[inputs]
+x1 = {x1}
+x2 = {{nominal = "1 V", tolerance = "30%", distribution = "normal"}}
+"""
+SPREAD = '{min = "-1 V", max = "3 V"}'
+
+
+@pytest.fixture
+def study(write_study):
+    return load_study(write_study(LINEAR.format(x1=SPREAD)))
+
+
+def test_whatif_pin_equals_fixed_parameter(study, write_study):
+    from tolerance.whatif import whatif
+
+    result, base, pinned = whatif(study, ["x1=0.25 V"])
+    fixed = run(load_study(write_study(LINEAR.format(x1='"0.25 V"'), "fixed.toml")))
+    # common random numbers: pinning x1 gives exactly the samples of a study where x1 is fixed
+    assert np.array_equal(pinned.samples["y"], fixed.samples["y"])
+    assert np.array_equal(pinned.samples["x2"], base.samples["x2"])
+    assert result["pins"] == {"x1": 0.25}
+    assert result["yield"]["baseline"]["estimate"] == base.summary["yield"]["estimate"]
+
+
+def test_whatif_pin_forms(study):
+    from tolerance.whatif import pin_value
+
+    assert pin_value(study, "x1", "min") == -1.0
+    assert pin_value(study, "x1", "max") == 3.0
+    assert pin_value(study, "x1", "nominal") == 1.0
+    # percentile of U(-1, 3): -1 + 4 q (inverse CDF of the uniform)
+    assert_allclose(pin_value(study, "x1", "p10"), -0.6)
+    # normal with the 30 % tolerance at 3 sigma: p50 is the nominal
+    assert_allclose(pin_value(study, "x2", "p50"), 1.0)
+    with pytest.raises(UsageError, match="not a parameter"):
+        pin_value(study, "x9", "min")
+    with pytest.raises(UsageError, match="x1=3 ohm"):
+        pin_value(study, "x1", "3 ohm")
+
+
+def test_whatif_at_minimum_raises_failures(study):
+    from tolerance.whatif import whatif
+
+    result, _, _ = whatif(study, ["x1=min"])
+    c = result["criteria"]["y_positive"]
+    # y = x1 + 2 x2 < 0 needs x2 < 0.5 when x1 = -1: more failures than the baseline
+    assert c["pinned"]["failures"] >= c["baseline"]["failures"]
+
+
+def test_choose_scales_with_common_random_numbers(study):
+    from tolerance.choose import choose
+
+    result = choose(study, ["x2=E12:0.47..2.2"], tradeoff=("y", "z"))
+    values = [c["values"]["x2"] for c in result["candidates"]]
+    # IEC 60063 E12 values between 0.47 and 2.2
+    assert_allclose(values, [0.47, 0.56, 0.68, 0.82, 1.0, 1.2, 1.5, 1.8, 2.2])
+    ylds = [c["yield"] for c in result["candidates"]]
+    # a larger x2 moves y = x1 + 2 x2 up for every sample (same random numbers), so the yield
+    # cannot fall along the sweep
+    assert all(b >= a for a, b in zip(ylds, ylds[1:]))
+    # best: the highest yield; among equal yields the value nearest the study's nominal (1.0)
+    top = [v for v, y in zip(values, ylds) if y == max(ylds)]
+    assert result["best"]["values"]["x2"] == min(top, key=lambda v: abs(np.log(v)))
+    assert result["evaluations"] == 9 * 4000
+    assert result["frontier"]
+
+
+def test_choose_rejects_bad_sweeps(study):
+    from tolerance.choose import choose
+
+    with pytest.raises(UsageError, match="E25"):
+        choose(study, ["x2=E25:1..2"])
+    with pytest.raises(UsageError, match="positive nominal|not a parameter"):
+        choose(study, ["x9=E12:1..2"])
+
+
+def test_frontier_non_dominated():
+    from tolerance.choose import frontier
+
+    pts = [{"a": 1, "b": 5}, {"a": 2, "b": 4}, {"a": 1.5, "b": 3}, {"a": 3, "b": 1}]
+    # the third point is beaten on both by the second (larger is better on both)
+    assert frontier(pts, "a", "b", 1, 1) == [0, 1, 3]
+
+
+def test_worst_case_of_linear_stage_is_exact(study):
+    from tolerance.analysis import study_worst_case
+
+    result = study_worst_case(study, 2000, 1)
+    y = result["metrics"]["y"]
+    # y = x1 + 2 x2 with x1 in [-1, 3], x2 in [0.7, 1.3]: corners -1 + 1.4 and 3 + 2.6 (exact)
+    assert_allclose([y["eva_min"], y["eva_max"]], [0.4, 5.6], rtol=1e-12)
+    # RSS of half-ranges 2 and 2*0.3 = 0.6 around the nominal 3: sqrt(4 + 0.36)
+    assert_allclose([y["rss_low"], y["rss_high"]], [3 - np.sqrt(4.36), 3 + np.sqrt(4.36)],
+                    rtol=1e-6)
+    assert y["mc_min"] >= y["eva_min"] - 0.8  # normal x2 may exceed its 3-sigma bound
+    assert result["evaluations"] > 2000
+
+
+def test_sensitivity_of_linear_stage(study):
+    from tolerance.analysis import study_sensitivity
+
+    result = study_sensitivity(study, 4000, 2, 256, bootstrap=20)
+    s1 = result["sobol"]["y"]
+    # variance shares of y = x1 + 2 x2: Var(x1) = 16/12, Var(2 x2) = 4 (0.1)^2 (exact)
+    v1, v2 = 16 / 12, 4 * 0.01
+    assert_allclose(s1["x1"]["first"], v1 / (v1 + v2), atol=0.05)
+    assert_allclose(s1["x2"]["first"], v2 / (v1 + v2), atol=0.05)
+    assert result["sobol_evaluations"] == 256 * 4
+
+
+def test_target_ci_stops_early_and_deterministically(study):
+    a = run(study, samples=400_000, chunk_size=10_000, target_ci=0.002)
+    b = run(study, samples=400_000, chunk_size=7_000, target_ci=0.002, jobs=2)
+    assert a.summary["samples"] < 400_000
+    assert a.summary["samples"] == b.summary["samples"]
+    c = a.summary["criteria"]["y_positive"]
+    assert (c["ci_high"] - c["ci_low"]) / 2 < 0.002
+    assert a.summary["criteria"] == b.summary["criteria"]
+
+
+def test_run_summary_carries_insights(write_study):
+    study = load_study(write_study(LINEAR.format(x1=SPREAD) + '[limits]\ny = {min = "1 V"}\n'))
+    res = run(study)
+    s = res.summary
+    names = {p["name"] for p in s["parameters"]}
+    assert names == {"x1", "x2"}
+    rows = {(r["input"], r["metric"]): r for r in s["sensitivity"]}
+    # x1 dominates y (variance share 0.97 from the exact shares above)
+    assert abs(rows[("x1", "y")]["spearman"]) > abs(rows[("x2", "y")]["spearman"])
+    drivers = s["failure_drivers"]["y_positive"]
+    assert drivers["ranking"][0]["input"] == "x1"
+    assert drivers["ranking"][0]["direction"] == "low"
+    assert "y_positive" in s["capability"] and "y_positive" in s["tail"]
+
+
+def test_pin_override_reproduces_baseline_columns(study):
+    base = run(study)
+    same = run(study, overrides={"x2": Override("scale", 1.0)})
+    # scaling by one is the identity: every metric identical (common random numbers)
+    assert np.array_equal(base.samples["y"], same.samples["y"])

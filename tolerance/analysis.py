@@ -1,0 +1,180 @@
+"""Study-level analyses: the generic methods of :mod:`sensitivity`, :mod:`worstcase` and
+:mod:`stats` applied to a study's stage, parameters and criteria.
+
+The run summary carries a parameter table, rank sensitivities, failure drivers, capability and
+tail estimates per criterion (:func:`insights`); ``tolerance sensitivity`` adds Sobol indices on a
+dedicated design (:func:`study_sensitivity`); ``tolerance worstcase`` lines up extreme-value,
+root-sum-square and optimizer extremes beside the Monte Carlo extremes
+(:func:`study_worst_case`).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+
+from tolerance import sensitivity, stats, worstcase
+from tolerance.study import Study
+
+#: rows used for rank sensitivities in a run summary (ranks of very long runs add nothing)
+SENSITIVITY_ROWS = 200_000
+
+
+def model_for(study: Study):
+    """The stage as a batch model: dict of parameter arrays -> dict of metric arrays.
+
+    Metrics of samples that did not converge are NaN (the generic analyses drop them).
+    """
+    stage = study.stage
+    fixed = {p.name: p.nominal for p in study.parameters}
+
+    def model(samples: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+        n = len(next(iter(samples.values())))
+        full = {name: np.full(n, value) for name, value in fixed.items()}
+        full.update({k: np.asarray(v, dtype=float) for k, v in samples.items()})
+        with np.errstate(all="ignore"):
+            out = stage.evaluate(full)
+        ok = np.asarray(out.pop("converged"), dtype=bool)
+        return {m: np.where(ok, np.asarray(out[m], dtype=float), np.nan) for m in stage.metrics}
+
+    return model
+
+
+def bounds_for(study: Study) -> list[worstcase.Bound]:
+    """Worst-case bounds of every parameter: its tolerance limits, widened by any drift.
+
+    A normal distribution's limits are its tolerance (``sigmas`` sigma); a lognormal gain's are
+    the datasheet minimum and maximum. End-of-life drift (``drift`` of a part) is added
+    linearly, as extreme-value practice does (ECSS-Q-HB-30-01A).
+    """
+    out = []
+    for p in study.parameters:
+        lo, hi, nom = p.low, p.high, p.nominal
+        drift = getattr(p, "drift", 0.0) or 0.0
+        if drift:
+            lo, hi = lo - abs(nom) * drift, hi + abs(nom) * drift
+        out.append(worstcase.Bound(p.name, nom, min(lo, nom), max(hi, nom)))
+    return out
+
+
+def parameters_table(study: Study) -> list[dict]:
+    return [{"name": p.name, "unit": p.unit, "nominal": p.nominal, "low": p.low,
+             "high": p.high, "distribution": p.distribution.describe(),
+             "varies": bool(p.varies), "key": p.key, "description": p.description}
+            for p in study.parameters]
+
+
+def _margin(values: np.ndarray, lo, hi) -> np.ndarray:
+    """Signed distance to the nearest limit, scaled by the spread: negative fails."""
+    scale = np.nanstd(values) if np.isfinite(values).sum() > 1 else 1.0
+    scale = scale if scale > 0 else 1.0
+    parts = []
+    if lo is not None:
+        parts.append((values - lo) / scale)
+    if hi is not None:
+        parts.append((hi - values) / scale)
+    return np.minimum.reduce(parts) if len(parts) > 1 else parts[0]
+
+
+def insights(study: Study, column) -> dict:
+    """Parameter table, rank sensitivities, failure drivers, capability, tail estimates.
+
+    ``column(name)`` returns one column of the run in sample order.
+    """
+    varying = [p for p in study.parameters if p.varies]
+    metrics = list(study.stage.metrics)
+    n = len(column("converged"))
+    rows = slice(0, min(n, SENSITIVITY_ROWS))
+    inputs = pd.DataFrame({p.name: column(p.name)[rows] for p in varying})
+    outputs = pd.DataFrame({m: column(m)[rows] for m in metrics})
+    result: dict = {"parameters": parameters_table(study)}
+    if varying and len(inputs) > 2:
+        table = sensitivity.rank_sensitivity(inputs, outputs)
+        result["sensitivity"] = _records(table)
+        result["sensitivity_rows"] = len(inputs)
+    else:
+        result["sensitivity"] = []
+
+    units = {p.name: p.unit for p in study.parameters}
+    drivers, capability, tail = {}, {}, {}
+    converged = column("converged").astype(bool)
+    all_inputs = None
+    for c in study.criteria:
+        values = column(c.metric)
+        cap = stats.capability(values[converged], c.minimum, c.maximum)
+        capability[c.name] = cap
+        tail[c.name] = stats.tail_estimate(_margin(values[converged], c.minimum, c.maximum))
+        failed = converged & ~column(f"pass.{c.name}").astype(bool)
+        if failed.any() and varying:
+            if all_inputs is None:
+                all_inputs = pd.DataFrame({p.name: column(p.name)[converged] for p in varying})
+            drivers[c.name] = sensitivity.failure_drivers(all_inputs, failed[converged], units)
+    result["failure_drivers"] = drivers
+    result["capability"] = capability
+    result["tail"] = tail
+    return result
+
+
+def _records(df: pd.DataFrame) -> list[dict]:
+    out = []
+    for rec in df.to_dict(orient="records"):
+        out.append({k: (None if isinstance(v, float) and math.isnan(v) else
+                        (v.item() if isinstance(v, np.generic) else v)) for k, v in rec.items()})
+    return out
+
+
+def study_sensitivity(study: Study, samples: int, seed: int, sobol_n: int,
+                      bootstrap: int = 200) -> dict:
+    """Rank sensitivities on a Monte Carlo run and Sobol indices on a dedicated design.
+
+    Sobol indices assume independent inputs: correlations of the study are not applied to the
+    Sobol design (the result says so when the study has any).
+    """
+    from tolerance.api import run
+
+    res = run(study, samples=samples, seed=seed)
+    df = res.samples
+    varying = [p for p in study.parameters if p.varies]
+    rank = sensitivity.rank_sensitivity(df[[p.name for p in varying]],
+                                        df[list(study.stage.metrics)])
+    ppf = {p.name: p.distribution.ppf for p in varying}
+    sob = sensitivity.sobol_analysis(model_for(study), ppf, list(study.stage.metrics), sobol_n,
+                                     seed, bootstrap=bootstrap)
+    notes = list(sob.pop("notes", []))
+    if study.correlations:
+        notes.append("the Sobol design treats the inputs as independent; the study's "
+                     "correlations are used only in the rank measures")
+    return {
+        "study": study.path, "study_hash": study.study_hash, "seed": seed,
+        "samples": samples, "rank": _records(rank),
+        "sobol": {k: v for k, v in sob.items() if k not in ("evaluations", "nan_replaced")},
+        "sobol_n": sobol_n, "sobol_evaluations": sob.get("evaluations"),
+        "nan_replaced": sob.get("nan_replaced", {}), "notes": notes,
+        "evaluations": samples + int(sob.get("evaluations", 0)),
+    }
+
+
+def study_worst_case(study: Study, samples: int, seed: int) -> dict:
+    """Extreme-value, RSS and optimizer extremes per metric beside the Monte Carlo extremes."""
+    from tolerance.api import run
+
+    res = run(study, samples=samples, seed=seed)
+    mc = {m: {k: res.summary["metrics"][m][k] for k in ("min", "max", "p001", "p999")}
+          for m in study.stage.metrics}
+    bounds = bounds_for(study)
+    table = worstcase.worst_case_table(model_for(study), bounds, list(study.stage.metrics),
+                                       mc_extremes=mc, seed=seed)
+    evaluations = table.pop("evaluations")
+    return {
+        "study": study.path, "study_hash": study.study_hash, "seed": seed,
+        "monte_carlo_samples": samples,
+        "bounds": [{"name": b.name, "nominal": b.nominal, "low": b.low, "high": b.high}
+                   for b in bounds],
+        "units": {m: i.unit for m, i in study.stage.metrics.items()},
+        "metrics": table,
+        "evaluations": int(evaluations) + samples,
+        "criteria": [{"name": c.name, "metric": c.metric, "min": c.minimum, "max": c.maximum}
+                     for c in study.criteria],
+    }

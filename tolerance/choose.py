@@ -1,0 +1,130 @@
+"""Value choice: sweep preferred values of one or two parts with common random numbers.
+
+Each candidate moves the part's nominal to a preferred value of an IEC 60063 series while every
+sample keeps its relative deviation from nominal (and every other parameter its values), so the
+candidates differ only by the choice itself. For each candidate: yield with its exact interval,
+each criterion's rate, percentiles of every metric. The best candidate has the highest yield
+(ties: the higher lower bound of the interval, then the value nearest the study's own nominal);
+a trade-off frontier between two metrics lists the candidates no other candidate beats on both.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+
+import numpy as np
+
+from tolerance.api import UsageError, run
+from tolerance.runner import Override
+from tolerance.study import Study
+from tolerance.units import UnitError, parse_series_range, preferred_values
+
+
+def parse_vary(study: Study, text: str) -> tuple[str, np.ndarray]:
+    """``NAME=SERIES:LOW..HIGH`` -> (name, candidate values)."""
+    if "=" not in text:
+        raise UsageError(f"--vary {text}: expected NAME=SERIES:LOW..HIGH, e.g. RBE2=E24:47..1k")
+    name, spec = (s.strip() for s in text.split("=", 1))
+    try:
+        p = study.parameter(name)
+    except KeyError:
+        raise UsageError(f"--vary {name}: not a parameter of {study.path}; parameters: "
+                         f"{', '.join(study.parameter_names)}") from None
+    if not p.nominal > 0:
+        raise UsageError(f"--vary {name}: only parameters with a positive nominal can be swept")
+    try:
+        series, lo, hi = parse_series_range(spec, p.unit)
+        values = preferred_values(series, lo, hi)
+    except UnitError as exc:
+        raise UsageError(f"--vary {name}={spec}: {exc}") from None
+    if values.size == 0:
+        raise UsageError(f"--vary {name}={spec}: no {series} value lies in that range")
+    if values.size > 200:
+        raise UsageError(f"--vary {name}={spec}: {values.size} candidates; narrow the range")
+    return name, values
+
+
+def _direction(study: Study, metric: str) -> int:
+    """+1 when larger is better for ``metric`` (it has a lower limit), -1 for an upper limit."""
+    for c in study.criteria:
+        if c.metric == metric:
+            return 1 if c.minimum is not None else -1
+    return 1
+
+
+def frontier(points: list[dict], x: str, y: str, dx: int, dy: int) -> list[int]:
+    """Indices of the non-dominated points (better = larger after applying the directions)."""
+    keep = []
+    for i, a in enumerate(points):
+        ax, ay = dx * a[x], dy * a[y]
+        if not (math.isfinite(ax) and math.isfinite(ay)):
+            continue
+        dominated = any(
+            (dx * b[x] >= ax and dy * b[y] >= ay) and (dx * b[x] > ax or dy * b[y] > ay)
+            for j, b in enumerate(points) if j != i
+        )
+        if not dominated:
+            keep.append(i)
+    return keep
+
+
+def choose(study: Study, varies: list[str], samples: int | None = None, seed: int | None = None,
+           sampler: str | None = None, jobs: int = 1, tradeoff: tuple[str, str] | None = None
+           ) -> dict:
+    """Sweep candidate values; see the module docstring."""
+    if not 1 <= len(varies) <= 2:
+        raise UsageError("choose takes one or two --vary NAME=SERIES:LOW..HIGH")
+    sweeps = [parse_vary(study, v) for v in varies]
+    names = [n for n, _ in sweeps]
+    if len(set(names)) != len(names):
+        raise UsageError("choose: the same part is varied twice")
+    metrics = study.stage.metrics
+    if tradeoff is None:
+        limited = list(dict.fromkeys(c.metric for c in study.criteria))
+        tradeoff = tuple((limited + [m for m in metrics if m not in limited])[:2])
+    for m in tradeoff:
+        if m not in metrics:
+            raise UsageError(f"--tradeoff {m}: not a metric of this stage")
+    # robust end of each trade-off metric: the low tail when larger is better, else the high
+    ends = {m: ("p001" if _direction(study, m) > 0 else "p999") for m in tradeoff}
+
+    candidates = []
+    for combo in itertools.product(*[vals for _, vals in sweeps]):
+        overrides = {n: Override("scale", float(v) / study.parameter(n).nominal)
+                     for n, v in zip(names, combo)}
+        res = run(study, samples=samples, seed=seed, sampler=sampler, jobs=jobs,
+                  overrides=overrides)
+        s = res.summary
+        row = {"values": {n: float(v) for n, v in zip(names, combo)},
+               "yield": s["yield"]["estimate"], "ci_low": s["yield"]["ci_low"],
+               "ci_high": s["yield"]["ci_high"], "verdict": s["verdict"],
+               "not_converged": s["not_converged"],
+               "criteria": {k: c["rate"] for k, c in s["criteria"].items()}}
+        for m in tradeoff:
+            row[m] = s["metrics"][m][ends[m]]
+        candidates.append(row)
+
+    def rank_key(row):
+        dist = sum(abs(math.log(row["values"][n] / study.parameter(n).nominal)) for n in names)
+        return (row["yield"], row["ci_low"], -dist)
+
+    best = max(range(len(candidates)), key=lambda i: rank_key(candidates[i]))
+    front = []
+    if len(tradeoff) == 2:
+        front = frontier(candidates, tradeoff[0], tradeoff[1], _direction(study, tradeoff[0]),
+                         _direction(study, tradeoff[1]))
+    first = candidates[0]
+    n_samples = run_samples = samples if samples is not None else study.settings.samples
+    return {
+        "study": study.path, "study_hash": study.study_hash,
+        "seed": study.settings.seed if seed is None else seed, "samples": n_samples,
+        "vary": {n: [float(v) for v in vals] for n, vals in sweeps},
+        "units": {n: study.parameter(n).unit for n in names},
+        "tradeoff": {m: {"statistic": ends[m], "unit": metrics[m].unit} for m in tradeoff},
+        "candidates": candidates,
+        "best": candidates[best],
+        "frontier": front,
+        "evaluations": len(candidates) * run_samples,
+        "criteria": list(first["criteria"]),
+    }

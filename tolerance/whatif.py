@@ -1,0 +1,111 @@
+"""What-if: pin parameters and rerun with common random numbers.
+
+Every parameter keeps its own column of random numbers (see :mod:`tolerance.sampling`), so the
+pinned run sees exactly the same values of every other parameter as the baseline: the difference
+between the two comes from the pin alone.
+"""
+
+from __future__ import annotations
+
+import re
+
+import numpy as np
+
+from tolerance.api import UsageError, run
+from tolerance.runner import Override
+from tolerance.study import Study
+from tolerance.units import UnitError, parse_quantity
+
+_PERCENTILE = re.compile(r"^p(\d+(?:\.\d+)?)$")
+
+
+def pin_value(study: Study, name: str, spec: str) -> float:
+    """Value of a pin: ``min``, ``max``, ``nominal``, ``pNN`` (a percentile of the parameter's
+    distribution) or a quantity in the parameter's unit."""
+    try:
+        p = study.parameter(name)
+    except KeyError:
+        raise UsageError(f"--pin {name}: not a parameter of {study.path}; parameters: "
+                         f"{', '.join(study.parameter_names)}") from None
+    spec = spec.strip()
+    if spec == "min":
+        return p.low
+    if spec == "max":
+        return p.high
+    if spec in ("nominal", "nom", "typ"):
+        return p.nominal
+    m = _PERCENTILE.match(spec)
+    if m:
+        q = float(m.group(1))
+        if not 0 < q < 100:
+            raise UsageError(f"--pin {name}={spec}: a percentile lies between p0 and p100")
+        return float(p.distribution.ppf(np.array([q / 100.0]))[0])
+    try:
+        return parse_quantity(spec, p.unit)
+    except UnitError as exc:
+        raise UsageError(f"--pin {name}={spec}: {exc}; or write min, max, nominal or pNN") from None
+
+
+def parse_pins(study: Study, pins: list[str]) -> dict[str, Override]:
+    out = {}
+    for text in pins:
+        if "=" not in text:
+            raise UsageError(f"--pin {text}: expected NAME=VALUE, NAME=min, NAME=max or NAME=pNN")
+        name, spec = text.split("=", 1)
+        name = name.strip()
+        if name in out:
+            raise UsageError(f"--pin {name}: pinned twice")
+        out[name] = Override("pin", pin_value(study, name, spec))
+    return out
+
+
+def compare(base: dict, pinned: dict) -> dict:
+    """Side-by-side figures of two summaries."""
+    crit = {}
+    for name, c in base["criteria"].items():
+        p = pinned["criteria"][name]
+        crit[name] = {"metric": c["metric"],
+                      "baseline": {k: c[k] for k in ("failures", "rate", "ci_low", "ci_high",
+                                                     "verdict")},
+                      "pinned": {k: p[k] for k in ("failures", "rate", "ci_low", "ci_high",
+                                                   "verdict")}}
+    metrics = {}
+    for name, m in base["metrics"].items():
+        q = pinned["metrics"][name]
+        metrics[name] = {"unit": m["unit"],
+                         "baseline": {k: m[k] for k in ("p001", "p50", "p999", "min", "max")},
+                         "pinned": {k: q[k] for k in ("p001", "p50", "p999", "min", "max")}}
+    return {
+        "yield": {"baseline": base["yield"], "pinned": pinned["yield"]},
+        "verdict": {"baseline": base["verdict"], "pinned": pinned["verdict"]},
+        "not_converged": {"baseline": base["not_converged"], "pinned": pinned["not_converged"]},
+        "criteria": crit,
+        "metrics": metrics,
+    }
+
+
+def whatif(study: Study, pins: list[str], samples: int | None = None, seed: int | None = None,
+           sampler: str | None = None, jobs: int = 1):
+    """Baseline and pinned runs with common random numbers.
+
+    Returns
+    -------
+    (dict, RunResult, RunResult)
+        The comparison (written as whatif.json), the baseline and the pinned run.
+    """
+    if not pins:
+        raise UsageError("whatif needs at least one --pin NAME=VALUE|min|max|pNN")
+    overrides = parse_pins(study, pins)
+    base = run(study, samples=samples, seed=seed, sampler=sampler, jobs=jobs)
+    pinned = run(study, samples=samples, seed=seed, sampler=sampler, jobs=jobs,
+                 overrides=overrides)
+    result = {
+        "study": study.path, "study_hash": study.study_hash,
+        "seed": base.summary["seed"], "samples": base.summary["samples"],
+        "sampler": base.summary["sampler"],
+        "pins": {n: o.value for n, o in overrides.items()},
+        "pin_text": pins,
+        **compare(base.summary, pinned.summary),
+        "evaluations": 2 * base.summary["samples"],
+    }
+    return result, base, pinned
