@@ -104,18 +104,11 @@ def _prepare_folder(out: Path, force: bool, resume: bool) -> None:
 
 def write_json(path: Path, data: dict) -> None:
     """Write JSON atomically (temporary name, then rename)."""
+    from tolerance.summary import clean
+
     tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(json.dumps(data, indent=2, sort_keys=False, default=_json_default) + "\n",
-                   encoding="utf-8")
+    tmp.write_text(json.dumps(clean(data), indent=2, allow_nan=False) + "\n", encoding="utf-8")
     os.replace(tmp, path)
-
-
-def _json_default(obj):
-    if isinstance(obj, np.generic):
-        return obj.item()
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
-    raise TypeError(f"not JSON serializable: {type(obj).__name__}")
 
 
 def make_spec(study: Study, samples: int | None = None, seed: int | None = None,

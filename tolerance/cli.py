@@ -143,6 +143,10 @@ def _default_out(study, suffix: str = "") -> Path:
     return candidate
 
 
+def _ppm(rate) -> str:
+    return "-" if rate is None else f"{1e6 * rate:.1f}"
+
+
 def _fmt(value, unit):
     if value is None:
         return "-"
@@ -157,7 +161,7 @@ def print_summary(summary: dict, study, out) -> None:
     w(f"yield {100 * y['estimate']:.4f} %  (95 % interval {100 * y['ci_low']:.4f} .. "
       f"{100 * y['ci_high']:.4f} %)   not converged: {summary['not_converged']}\n")
     if summary.get("saturation_failure_rate") is not None:
-        w(f"saturation-failure rate {1e6 * summary['saturation_failure_rate']:.1f} ppm\n")
+        w(f"saturation-failure rate {_ppm(summary['saturation_failure_rate'])} ppm\n")
     w("\n{:<22} {:<18} {:<26} {:>9} {:>12} {:>22}  {}\n".format(
         "criterion", "metric", "limit", "failures", "rate ppm", "95 % interval ppm", "verdict"))
     for name, c in summary["criteria"].items():
@@ -165,9 +169,9 @@ def print_summary(summary: dict, study, out) -> None:
         lim = " and ".join(
             f"{op} {_fmt(v, unit)}" for op, v in ((">=", c["limit"]["min"]),
                                                   ("<=", c["limit"]["max"])) if v is not None)
-        w("{:<22} {:<18} {:<26} {:>9} {:>12.1f} {:>22}  {}\n".format(
-            name, c["metric"], lim, c["failures"], 1e6 * c["rate"],
-            f"{1e6 * c['ci_low']:.1f} .. {1e6 * c['ci_high']:.1f}", c["verdict"].upper()))
+        w("{:<22} {:<18} {:<26} {:>9} {:>12} {:>22}  {}\n".format(
+            name, c["metric"], lim, c["failures"], _ppm(c["rate"]),
+            f"{_ppm(c['ci_low'])} .. {_ppm(c['ci_high'])}", c["verdict"].upper()))
     w("\n{:<20} {:>12} {:>12} {:>12} {:>12} {:>12}\n".format(
         "metric", "min", "p0.1", "median", "p99.9", "max"))
     for name, m in summary["metrics"].items():
@@ -240,8 +244,8 @@ def cmd_whatif(args) -> int:
         w("{:<22} {:>14} {:>14} {:>10} {:>10}\n".format("criterion", "baseline ppm",
                                                        "pinned ppm", "baseline", "pinned"))
         for name, c in result["criteria"].items():
-            w("{:<22} {:>14.1f} {:>14.1f} {:>10} {:>10}\n".format(
-                name, 1e6 * c["baseline"]["rate"], 1e6 * c["pinned"]["rate"],
+            w("{:<22} {:>14} {:>14} {:>10} {:>10}\n".format(
+                name, _ppm(c["baseline"]["rate"]), _ppm(c["pinned"]["rate"]),
                 c["baseline"]["verdict"], c["pinned"]["verdict"]))
         w("\n{:<20} {:>26} {:>26}\n".format("metric", "baseline p0.1 / p99.9",
                                              "pinned p0.1 / p99.9"))

@@ -100,7 +100,22 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
     }
     if extra:
         summary.update(extra)
-    return summary
+    return clean(summary)
+
+
+def clean(obj):
+    """JSON-ready copy: numpy scalars to Python, NaN and infinities to None (null)."""
+    if isinstance(obj, dict):
+        return {str(k): clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [clean(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return [clean(v) for v in obj.tolist()]
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not np.isfinite(obj):
+        return None
+    return obj
 
 
 def comparable(summary: dict) -> dict:

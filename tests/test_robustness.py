@@ -1,0 +1,183 @@
+"""Robustness: interrupted runs resume to the identical result, the dask backend matches the
+local one, output folders are never overwritten without --force, malformed studies never crash."""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from tolerance.api import UsageError, load_study, run
+from tolerance.study import StudyError
+from tolerance.study import load_study as load_text
+from tolerance.summary import comparable
+
+TESTS = Path(__file__).parent
+ROOT = TESTS.parent
+
+LINEAR = """
+stage = "linear_test"
+[run]
+samples = {samples}
+seed = 21
+sampler = "random"
+chunk_size = {chunk}
+[inputs]
+x1 = {{min = "-1 V", max = "3 V"}}
+x2 = {{nominal = "1 V", tolerance = "30%", distribution = "normal"}}
+"""
+
+# runs the CLI with the linear test stage registered
+CLI = ("import sys; sys.path.insert(0, sys.argv.pop(1)); import linear_stage; "
+       "from tolerance.cli import main; sys.exit(main(sys.argv[1:]))")
+
+
+def _cli(*args, **kw):
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    return subprocess.Popen([sys.executable, "-c", CLI, str(TESTS), *map(str, args)], env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, **kw)
+
+
+def _wait_for_chunks(folder: Path, count: int, proc, timeout=60.0):
+    t0 = time.time()
+    while time.time() - t0 < timeout:
+        if len(list(folder.glob("part-*.parquet"))) >= count:
+            return
+        if proc.poll() is not None:
+            pytest.fail("the run finished before it could be interrupted; make it longer")
+        time.sleep(0.01)
+    pytest.fail("no chunk appeared")
+
+
+@pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGINT])
+def test_interrupted_run_resumes_to_identical_result(write_study, tmp_path, sig):
+    study = write_study(LINEAR.format(samples=600_000, chunk=4_000))
+    whole = tmp_path / "whole"
+    ref = _cli("run", study, "--out", whole, "--quiet")
+    ref.communicate(timeout=300)
+    assert ref.returncode in (0, 1)
+
+    cut = tmp_path / "cut"
+    proc = _cli("run", study, "--out", cut, "--quiet")
+    _wait_for_chunks(cut / "samples.parquet", 3, proc)
+    proc.send_signal(sig)
+    _, err = proc.communicate(timeout=60)
+    if sig == signal.SIGINT:
+        assert proc.returncode == 130 and "--resume" in err and "Traceback" not in err
+    kept = sorted((cut / "samples.parquet").glob("part-*.parquet"))
+    assert kept and not (cut / "summary.json").exists()
+    first_mtime = kept[0].stat().st_mtime_ns
+
+    again = _cli("run", study, "--out", cut, "--resume", "--quiet")
+    again.communicate(timeout=300)
+    assert again.returncode in (0, 1)
+    # finished chunks were kept, not recomputed
+    assert kept[0].stat().st_mtime_ns == first_mtime
+    a = json.loads((whole / "summary.json").read_text())
+    b = json.loads((cut / "summary.json").read_text())
+    assert comparable(a) == comparable(b)
+
+
+def test_existing_result_folder_needs_force(write_study, tmp_path):
+    study = load_study(write_study(LINEAR.format(samples=1000, chunk=500)))
+    run(study, out=tmp_path / "r")
+    with pytest.raises(UsageError, match="already holds results"):
+        run(study, out=tmp_path / "r")
+    again = run(study, out=tmp_path / "r", force=True)
+    assert comparable(again.summary) == comparable(json.loads(
+        (tmp_path / "r" / "summary.json").read_text()))
+
+
+def test_resume_discards_chunks_of_another_plan(write_study, tmp_path):
+    study = load_study(write_study(LINEAR.format(samples=3000, chunk=500)))
+    first = run(study, out=tmp_path / "r")
+    other = load_study(write_study(LINEAR.format(samples=3000, chunk=500).replace("seed = 21",
+                                                                                  "seed = 22")))
+    resumed = run(other, out=tmp_path / "r", resume=True)
+    fresh = run(other)
+    # chunks of another seed do not belong to this run: all were recomputed
+    assert comparable(resumed.summary) == comparable(fresh.summary)
+    assert comparable(resumed.summary) != comparable(first.summary)
+
+
+def test_dask_backend_matches_local(write_study, tmp_path):
+    pytest.importorskip("distributed")
+    study = load_study(write_study(LINEAR.format(samples=20_000, chunk=3_000)))
+    local = run(study, jobs=1, out=tmp_path / "local")
+    on_dask = run(study, jobs=2, backend="dask", out=tmp_path / "dask")
+    assert comparable(local.summary) == comparable(on_dask.summary)
+    a = (tmp_path / "local" / "summary.json").read_text()
+    b = (tmp_path / "dask" / "summary.json").read_text()
+    strip = lambda t: [ln for ln in t.splitlines() if '"created"' not in ln]  # noqa: E731
+    assert strip(a) == strip(b)
+
+
+def test_single_sample_and_zero_tolerance(write_study):
+    text = LINEAR.format(samples=1, chunk=10).replace(
+        'x2 = {nominal = "1 V", tolerance = "30%", distribution = "normal"}',
+        'x2 = {nominal = "1 V", tolerance = "0%"}')
+    res = run(load_study(write_study(text)))
+    assert res.summary["samples"] == 1
+    assert res.samples["x2"].iloc[0] == 1.0
+
+
+# --- fuzzing ----------------------------------------------------------------------------------
+
+VALUES = st.one_of(
+    st.integers(-10**12, 10**12), st.floats(allow_nan=True, allow_infinity=True), st.booleans(),
+    st.text(max_size=12), st.sampled_from(["4k7", "5%", "-40 degC", "3.3 V", "1e400", "nan",
+                                           "5 %%", "100%", "lhs", "sobol", ""]),
+    st.lists(st.integers(0, 5), max_size=3), st.dictionaries(st.sampled_from(
+        ["min", "max", "nominal", "tolerance", "distribution", "values", "typ"]),
+        st.one_of(st.floats(allow_nan=True), st.text(max_size=6), st.integers(-5, 5)),
+        max_size=4),
+)
+KEYS = ["stage", "run", "samples", "seed", "sampler", "inputs", "x1", "x2", "limits", "y",
+        "min", "max", "correlation", "chunk_size", "title", "solver", "diverge_above"]
+
+
+def _toml_value(v):
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, float):
+        if v != v:
+            return "nan"
+        if v in (float("inf"), float("-inf")):
+            return "inf" if v > 0 else "-inf"
+        return repr(v)
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, str):
+        return json.dumps(v)
+    if isinstance(v, list):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    return "{" + ", ".join(f"{k} = {_toml_value(x)}" for k, x in v.items()) + "}"
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(table=st.sampled_from(["", "run", "inputs", "limits", "solver"]),
+       key=st.sampled_from(KEYS), value=VALUES)
+def test_mutated_studies_never_crash(table, key, value):
+    # common practice, no source: a malformed input must give a clean error, never a crash
+    base = LINEAR.format(samples=100, chunk=50)
+    line = f"{key} = {_toml_value(value)}\n"
+    if table:
+        text = base.replace(f"[{table}]\n", f"[{table}]\n{line}") if f"[{table}]" in base \
+            else base + f"\n[{table}]\n{line}"
+    else:
+        text = line + base
+    try:
+        study = load_text("fuzz.toml", text=text)
+    except StudyError as exc:
+        assert str(exc).startswith("fuzz.toml")
+        return
+    res = run(study, samples=20)
+    assert res.summary["samples"] == 20

@@ -1,0 +1,7 @@
+"""``python -m tolerance`` runs the command line."""
+
+import sys
+
+from tolerance.cli import main
+
+sys.exit(main())
