@@ -256,13 +256,19 @@ def _normal_upper_ppm(mean: float, s: float, n: int, confidence: float) -> float
     width = 5.0 + abs(t_obs)
     lo, hi = t_obs - width, t_obs + width
     for _ in range(60):
-        if excess(lo) > 0 > excess(hi):
+        e_lo, e_hi = excess(lo), excess(hi)
+        if not (math.isfinite(e_lo) and math.isfinite(e_hi)):
+            return math.nan  # the noncentral t CDF is not resolvable this far out
+        if e_lo > 0 > e_hi:
             break
         width *= 2.0
         lo, hi = t_obs - width, t_obs + width
     else:
         return math.nan
-    delta_low = optimize.brentq(excess, lo, hi, xtol=1e-10, rtol=1e-12)
+    try:
+        delta_low = optimize.brentq(excess, lo, hi, xtol=1e-10, rtol=1e-12)
+    except ValueError:  # NaN met inside the bracket
+        return math.nan
     return 1e6 * float(stats.norm.sf(delta_low / math.sqrt(n)))
 
 

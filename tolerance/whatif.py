@@ -64,7 +64,7 @@ def compare(base: dict, pinned: dict) -> dict:
     crit = {}
     for name, c in base["criteria"].items():
         p = pinned["criteria"][name]
-        crit[name] = {"metric": c["metric"],
+        crit[name] = {"metric": c["metric"], "limit": c["limit"],
                       "baseline": {k: c[k] for k in ("failures", "rate", "ci_low", "ci_high",
                                                      "verdict")},
                       "pinned": {k: p[k] for k in ("failures", "rate", "ci_low", "ci_high",

@@ -1,0 +1,362 @@
+"""Report tests: HTML and Markdown agree, are self-contained, reproducible and open in a browser."""
+
+from __future__ import annotations
+
+import base64
+import io
+import json
+import re
+import shutil
+import subprocess
+import textwrap
+from html.parser import HTMLParser
+
+import pytest
+from matplotlib import image as mpl_image
+
+from tolerance import report
+from tolerance.api import load_study, run
+from tolerance.cli import SAFETY
+
+STUDY = """
+stage = "linear_test"
+title = "report check"
+[run]
+samples = 3000
+seed = 21
+sampler = "lhs"
+max_failure_rate = {rate}
+[inputs]
+x1 = {{min = "-1 V", max = "3 V"}}
+x2 = {{nominal = "1 V", tolerance = "30%", distribution = "normal"}}
+[limits]
+y = {{min = "0.5 V", max = "6 V"}}
+z = {{max = 2}}
+"""
+
+PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
+
+
+class Page(HTMLParser):
+    """Collects tables (by id), image sources, scripts, links and the visible text."""
+
+    def __init__(self):
+        super().__init__(convert_charrefs=True)
+        self.tables: dict[str, list[list[str]]] = {}
+        self.images: list[str] = []
+        self.scripts = 0
+        self.links: list[str] = []
+        self.text: list[str] = []
+        self._table = None
+        self._row = None
+        self._cell = None
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if tag == "table":
+            self._table = a.get("id") or f"table-{len(self.tables)}"
+            self.tables[self._table] = []
+        elif tag == "tr" and self._table:
+            self._row = []
+        elif tag in ("td", "th") and self._row is not None:
+            self._cell = []
+        elif tag == "img":
+            self.images.append(a.get("src", ""))
+        elif tag == "script":
+            self.scripts += 1
+        elif tag == "link":
+            self.links.append(a.get("href", ""))
+
+    def handle_endtag(self, tag):
+        if tag in ("td", "th") and self._cell is not None:
+            self._row.append("".join(self._cell))
+            self._cell = None
+        elif tag == "tr" and self._row is not None:
+            self.tables[self._table].append(self._row)
+            self._row = None
+        elif tag == "table":
+            self._table = None
+
+    def handle_data(self, data):
+        self.text.append(data)
+        if self._cell is not None:
+            self._cell.append(data)
+
+
+def parse_html(text: str) -> Page:
+    page = Page()
+    page.feed(text)
+    page.close()
+    return page
+
+
+def md_table_after(text: str, heading: str) -> list[list[str]]:
+    """First pipe table after a Markdown heading, cells unescaped."""
+    lines = text.splitlines()
+    start = lines.index(heading)
+    rows = []
+    for line in lines[start + 1:]:
+        if line.startswith("## ") and rows:
+            break
+        if line.startswith("|"):
+            if re.fullmatch(r"\|(---\|)+", line):
+                continue
+            cells = re.split(r"(?<!\\)\|", line.strip())[1:-1]
+            rows.append([re.sub(r"\\(.)", r"\1", c.strip()) for c in cells])
+        elif rows:
+            break
+    return rows
+
+
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory):
+    base = tmp_path_factory.mktemp("report")
+    path = base / "study.toml"
+    path.write_text(textwrap.dedent(STUDY.format(rate=0.0)), encoding="utf-8")
+    res = run(load_study(path), out=base / "r")
+    report.write_reports(res.folder)
+    return res.folder
+
+
+def test_verdict_table_numbers_agree_between_html_and_markdown(folder):
+    summary = json.loads((folder / "summary.json").read_text())
+    page = parse_html((folder / "report.html").read_text(encoding="utf-8"))
+    md = (folder / "report.md").read_text(encoding="utf-8")
+    html_rows = page.tables["verdict-table"]
+    md_rows = md_table_after(md, "## Verdict")
+    assert html_rows == md_rows
+    assert html_rows[0][0] == "Criterion" and len(html_rows) == 1 + len(summary["criteria"])
+    by_name = {row[0]: row for row in html_rows[1:]}
+    for name, c in summary["criteria"].items():
+        row = by_name[name]
+        assert row[3] == str(c["failures"]) and row[4] == str(c["evaluated"])
+        assert row[5] == report.format_rate(c["rate"])
+        assert row[6] == report.format_interval(c["ci_low"], c["ci_high"])
+        zfu = c["zero_failure_upper"]
+        assert row[7] == (report.format_rate(zfu) if zfu is not None else "-")
+        assert row[8] == c["verdict"].upper()
+    # every number of every shared table is the same string in both files
+    for table_id in ("metrics-table", "stamp"):
+        assert page.tables[table_id][1:] == [r for r in md_rows_of(md, page.tables[table_id][0])]
+
+
+def md_rows_of(md: str, header: list[str]) -> list[list[str]]:
+    lines = md.splitlines()
+    head = "| " + " | ".join(header) + " |"
+    i = lines.index(head)
+    return md_table_after("\n".join(["## x"] + lines[i:]), "## x")[1:]
+
+
+def test_zero_failures_show_the_upper_bound_and_rates_from_the_summary(folder):
+    summary = json.loads((folder / "summary.json").read_text())
+    c = summary["criteria"]["y_positive"]
+    assert c["failures"] == 0
+    page = parse_html((folder / "report.html").read_text(encoding="utf-8"))
+    row = {r[0]: r for r in page.tables["verdict-table"][1:]}["y_positive"]
+    # one-sided 95 % zero-failure bound 1 - 0.05**(1/n), about 3/n ("rule of three",
+    # Hanley and Lippman-Hand, JAMA 1983); formatted to 3 digits, so compared as text
+    assert row[7] == report.format_rate(1 - 0.05 ** (1 / c["evaluated"]))
+    assert row[2] == "500 mV .. 6 V"
+
+
+def test_report_is_self_contained_and_images_decode(folder):
+    text = (folder / "report.html").read_text(encoding="utf-8")
+    page = parse_html(text)
+    assert page.scripts == 0 and not page.links
+    assert not re.search(r"(src|href)=\"(https?:)?//", text)
+    assert "@import" not in text and "url(" not in text and "@font-face" not in text
+    assert "@media print" in text
+    limited = {c["metric"] for c in json.loads((folder / "summary.json").read_text())
+               ["criteria"].values()}
+    assert len(page.images) >= len(limited)
+    for src in page.images:
+        assert src.startswith("data:image/png;base64,")
+        data = base64.b64decode(src.split(",", 1)[1], validate=True)
+        assert data[:8] == PNG_MAGIC
+        img = mpl_image.imread(io.BytesIO(data), format="png")
+        assert img.shape[0] > 100 and img.shape[1] > 100
+
+
+def test_sections_caution_and_stamp(folder):
+    summary = json.loads((folder / "summary.json").read_text())
+    html_text = (folder / "report.html").read_text(encoding="utf-8")
+    page = parse_html(html_text)
+    md = (folder / "report.md").read_text(encoding="utf-8")
+    visible = " ".join(page.text)
+    for needle in ("Overall verdict: FAIL", SAFETY, "Metrics", "Plots", "Reproducibility"):
+        assert needle in visible and needle in md
+    stamp = dict(page.tables["stamp"][1:])
+    for key in ("tool_version", "study_hash", "seed", "samples", "sampler", "created"):
+        assert stamp[key] == report.format_number(summary[key])
+    if summary.get("tail"):
+        assert "model-based extrapolation, not counted" in visible
+    if summary.get("parameters"):
+        names = [r[0] for r in page.tables["parameter-table"][1:]]
+        assert names == [p["name"] for p in summary["parameters"]]
+    for line in md.splitlines():
+        if line.startswith("![") and "](plots/" in line:
+            assert (folder / line.split("](", 1)[1].rstrip(")")).is_file()
+
+
+def test_reports_are_reproducible(folder, tmp_path):
+    before_md = (folder / "report.md").read_bytes()
+    before_html = (folder / "report.html").read_bytes()
+    paths = report.write_reports(folder)
+    assert paths["md"].read_bytes() == before_md
+    assert paths["html"].read_bytes() == before_html
+    # the command line rebuilds the same report in a copy of the folder
+    from tolerance.cli import main
+
+    copy = tmp_path / "copy"
+    shutil.copytree(folder, copy)
+    (copy / "report.md").unlink()
+    shutil.rmtree(copy / "plots")
+    assert main(["report", str(copy)]) == 0
+    assert (copy / "report.md").read_bytes() == before_md
+    assert (copy / "report.html").read_bytes() == before_html
+
+
+def test_undecided_verdict_is_explained(write_study, tmp_path):
+    # 3000 samples cannot settle a 24 % failure rate against an allowed 24.5 % either way
+    study = load_study(write_study(STUDY.format(rate=0.245)))
+    res = run(study, out=tmp_path / "u")
+    v = res.summary["criteria"]["z"]["verdict"]
+    report.write_reports(res.folder)
+    md = (res.folder / "report.md").read_text(encoding="utf-8")
+    row = {r[0]: r for r in md_table_after(md, "## Verdict")[1:]}["z"]
+    assert row[8] == v.upper()
+    if res.summary["verdict"] == "undecided":
+        assert "UNDECIDED (not enough samples to tell)" in md
+
+
+def test_text_is_escaped(folder, tmp_path):
+    copy = tmp_path / "esc"
+    shutil.copytree(folder, copy)
+    summary = json.loads((copy / "summary.json").read_text())
+    summary["title"] = '<script>alert("x")</script> & | pipe'
+    (copy / "summary.json").write_text(json.dumps(summary))
+    (copy / "worstcase.json").write_text(json.dumps(
+        {"metrics": {"<b>y</b>": {"nominal": 3.0, "eva_min": 0.5}},
+         "bounds": [{"name": "x|1", "low": -1.0}]}))
+    report.write_reports(copy)
+    text = (copy / "report.html").read_text(encoding="utf-8")
+    assert "<script>" not in text and "<b>y</b>" not in text
+    page = parse_html(text)
+    assert page.scripts == 0
+    assert '<script>alert("x")</script> & | pipe' in " ".join(page.text)
+    md = (copy / "report.md").read_text(encoding="utf-8")
+    rows = md_table_after(md, "## Worst case (worstcase.json)")
+    assert ["name", "nominal", "eva_min"] == rows[0] and rows[1] == ["<b>y</b>", "3", "0.5"]
+
+
+def test_extra_files_render_generically_as_tables(folder, tmp_path):
+    copy = tmp_path / "extra"
+    shutil.copytree(folder, copy)
+    (copy / "sensitivity.json").write_text(json.dumps({
+        "seed": 3,
+        "rank": [{"input": "x1", "metric": "y", "spearman": 0.9, "srrc": 0.8, "prcc": 0.95},
+                 {"input": "x2", "metric": "y", "spearman": -0.1, "srrc": -0.2, "prcc": -0.3}],
+        "sobol": {"y": {"x1": {"first": 0.7, "total": 0.8}, "x2": {"first": 0.1,
+                                                                  "total": 0.12}}},
+        "notes": ["one", "two"]}))
+    report.write_reports(copy)
+    page = parse_html((copy / "report.html").read_text(encoding="utf-8"))
+    tables = list(page.tables.values())
+    assert [["input", "metric", "spearman", "srrc", "prcc"],
+            ["x1", "y", "0.9", "0.8", "0.95"],
+            ["x2", "y", "-0.1", "-0.2", "-0.3"]] in tables
+    assert [["name", "first", "total"], ["x1", "0.7", "0.8"], ["x2", "0.1", "0.12"]] in tables
+    assert "one, two" in " ".join(page.text)
+
+
+def test_analysis_only_folders(write_study, tmp_path):
+    from tolerance.cli import main
+
+    path = write_study(STUDY.format(rate=0.0))
+    w = tmp_path / "w"
+    assert main(["whatif", str(path), "--pin", "x1=0.5", "--out", str(w), "--quiet",
+                 "--samples", "500"]) in (0, 1)
+    page = parse_html((w / "report.html").read_text(encoding="utf-8"))
+    assert any(p.name.startswith("whatif-") for p in (w / "plots").iterdir())
+    assert "What-if runs (whatif.json)" in " ".join(page.text)
+    assert len(page.images) >= 1
+    c = tmp_path / "c"
+    assert main(["choose", str(path), "--vary", "x2=E12:0.8..1.2", "--out", str(c), "--quiet",
+                 "--samples", "300", "--tradeoff", "y,z"]) == 0
+    assert {"choose-yield.png", "choose-frontier.png"} <= {p.name for p in (c / "plots").iterdir()}
+    md = (c / "report.md").read_text(encoding="utf-8")
+    assert "## Value choice (choose.json)" in md and SAFETY in md
+
+
+def test_missing_results_are_reported(tmp_path):
+    with pytest.raises(FileNotFoundError, match="run the study first"):
+        report.write_reports(tmp_path)
+
+
+def test_number_helpers():
+    assert report.format_rate(0.0) == "0 %" and report.format_rate(0.000599) == "0.0599 %"
+    assert report.format_interval(0.0, 0.5) == "0 % .. 50 %"
+    assert report.format_number(None) == "-" and report.format_number(True) == "yes"
+    assert report.format_number(3) == "3" and report.format_number(242800.0) == "2.428e+05"
+    assert report.format_value(4700.0, "ohm") == "4.7 kOhm"
+    assert report.format_value("uniform", "V") == "uniform"
+
+
+# --- headless browser -----------------------------------------------------------------------------
+
+CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+                  "--disable-component-update", "--disable-sync", "--no-first-run",
+                  "--disable-dev-shm-usage"]
+PROBE = ("<script>window.addEventListener('load', function () {"
+         "var o = document.createElement('pre'); o.id = 'probe-widths';"
+         "o.textContent = Array.from(document.images).map(function (i) {"
+         "return i.complete ? i.naturalWidth : -1; }).join(',');"
+         "document.body.appendChild(o); });</script>")
+
+
+def _chromium(exe, tmp_path, *args):
+    profile = tmp_path / "profile"
+    profile.mkdir(exist_ok=True)
+    return subprocess.run([exe, *CHROMIUM_FLAGS, f"--user-data-dir={profile}", *args],
+                          capture_output=True, text=True, timeout=180)
+
+
+def test_report_opens_in_headless_chromium(folder, tmp_path):
+    exe = shutil.which("chromium")
+    if exe is None:
+        pytest.skip("chromium is not installed (CI installs Debian's chromium package)")
+    page_path = folder / "report.html"
+    dom = _chromium(exe, tmp_path, "--virtual-time-budget=5000", "--dump-dom",
+                    page_path.as_uri())
+    assert dom.returncode == 0, dom.stderr[-2000:]
+    assert 'id="verdict-table"' in dom.stdout
+
+    shot = tmp_path / "shot.png"
+    res = _chromium(exe, tmp_path, f"--screenshot={shot}", "--window-size=1280,2000",
+                    "--virtual-time-budget=5000", page_path.as_uri())
+    assert res.returncode == 0, res.stderr[-2000:]
+    assert shot.read_bytes()[:8] == PNG_MAGIC
+    assert mpl_image.imread(shot).shape[:2] == (2000, 1280)
+
+    # a test copy with a probe script reports every image's natural width into the DOM
+    probe = tmp_path / "probe.html"
+    probe.write_text(page_path.read_text(encoding="utf-8").replace("</body>", PROBE + "</body>"),
+                     encoding="utf-8")
+    res = _chromium(exe, tmp_path, "--enable-logging=stderr", "--v=0",
+                    "--virtual-time-budget=5000", "--dump-dom", probe.as_uri())
+    assert res.returncode == 0, res.stderr[-2000:]
+    found = re.search(r'<pre id="probe-widths">([^<]*)</pre>', res.stdout)
+    assert found, "the probe did not run"
+    widths = [int(w) for w in found.group(1).split(",")]
+    n_images = len(parse_html(page_path.read_text(encoding="utf-8")).images)
+    assert len(widths) == n_images and all(w > 0 for w in widths)
+    console = [line for line in res.stderr.splitlines() if ":CONSOLE" in line]
+    assert not console, console
+
+    # the console check itself works: a copy that logs an error is caught
+    bad = tmp_path / "bad.html"
+    bad.write_text(probe.read_text(encoding="utf-8").replace(
+        "</body>", "<script>console.error('probe error')</script></body>"), encoding="utf-8")
+    res = _chromium(exe, tmp_path, "--enable-logging=stderr", "--v=0",
+                    "--virtual-time-budget=5000", "--dump-dom", bad.as_uri())
+    assert any(":CONSOLE" in line and "probe error" in line for line in res.stderr.splitlines())

@@ -1,0 +1,642 @@
+"""Figures for tolerance reports: histograms with limits, tornado charts, drivers, what-ifs.
+
+Every function returns a :class:`matplotlib.figure.Figure` built without pyplot, so no display
+and no global figure state are involved: the figures work the same in a script, a notebook or
+a headless CI job. Seaborn draws on the figure's axes; its style is applied only inside the
+functions (``seaborn.axes_style`` as a context), never globally.
+
+The figures are meant to stay readable when printed in greyscale: pass and fail differ in
+marker shape as well as colour, limit lines differ in line style, failing regions are hatched,
+and bars of opposite sign carry different hatch patterns.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+import seaborn as sns
+from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.patches import Patch
+from matplotlib.ticker import FuncFormatter
+
+from tolerance.units import format_quantity
+
+__all__ = [
+    "DPI",
+    "driver_scatter",
+    "frontier",
+    "histogram",
+    "pareto_mask",
+    "save",
+    "tornado",
+    "waveforms",
+    "whatif_overlay",
+    "yield_map",
+]
+
+#: Resolution of saved figures [dots per inch].
+DPI = 110
+
+#: Colour-blind safe palette (seaborn "colorblind"), as RGB tuples.
+PALETTE = tuple(sns.color_palette("colorblind", 10))
+PASS_COLOR, FAIL_COLOR = PALETTE[0], PALETTE[3]
+PASS_MARKER, FAIL_MARKER = "o", "X"
+LINESTYLES = ("-", "--", "-.", ":", (0, (5, 1, 1, 1, 1, 1)), (0, (1, 3)))
+LIMIT_STYLES = {"min": "--", "max": "-."}
+FAIL_HATCH = "///"
+POSITIVE_HATCH, NEGATIVE_HATCH = "//", ".."
+_STYLE = "whitegrid"
+# Above this many points a scatter keeps every failure and an evenly spaced subset of passes,
+# so a report of a million samples stays small; the choice depends only on the sample order.
+MAX_SCATTER_POINTS = 20_000
+
+
+def _figure(width: float = 7.0, height: float = 4.5, **kwargs) -> Figure:
+    return Figure(figsize=(width, height), layout="constrained", **kwargs)
+
+
+def _unit_formatter(unit: str | None, digits: int = 3) -> FuncFormatter:
+    """Axis tick labels in engineering notation via :func:`format_quantity`."""
+
+    def fmt(value, _pos=None):
+        if unit is None:
+            return f"{value:.{digits}g}"
+        return format_quantity(value, unit, digits)
+
+    return FuncFormatter(fmt)
+
+
+def _spread_unit(unit: str | None) -> str | None:
+    """Unit of a difference of two values (absolute temperatures differ in kelvin)."""
+    return "K" if unit == "temperature" else unit
+
+
+def _finite(values) -> np.ndarray:
+    x = np.asarray(values, dtype=float).ravel()
+    return x[np.isfinite(x)]
+
+
+def _limits_of(limits) -> list[dict]:
+    """Normalise ``{"min", "max"}`` or a list of such dicts to a list."""
+    if limits is None:
+        return []
+    if isinstance(limits, dict):
+        return [limits]
+    return list(limits)
+
+
+def _bin_edges(x: np.ndarray, max_bins: int = 80) -> np.ndarray:
+    if x.size == 0:
+        return np.array([0.0, 1.0])
+    lo, hi = float(x.min()), float(x.max())
+    if hi <= lo:
+        half = abs(lo) * 1e-6 if lo != 0 else 1e-12
+        return np.array([lo - half, lo + half])
+    edges = np.histogram_bin_edges(x, bins="auto")
+    if edges.size - 1 > max_bins:
+        edges = np.linspace(lo, hi, max_bins + 1)
+    return edges
+
+
+def _x_range(x: np.ndarray, marks: Sequence[float]) -> tuple[float, float]:
+    """Axis range covering the data and every limit, padded by 5 %."""
+    values = [float(v) for v in marks if v is not None and math.isfinite(v)]
+    if x.size:
+        values += [float(x.min()), float(x.max())]
+    if not values:
+        return 0.0, 1.0
+    lo, hi = min(values), max(values)
+    span = hi - lo
+    if span <= 0:
+        span = abs(lo) * 0.1 if lo != 0 else 1.0
+    return lo - 0.05 * span, hi + 0.05 * span
+
+
+def _metric_criteria(summary: dict, metric: str) -> list[tuple[str, dict]]:
+    return [(name, c) for name, c in summary.get("criteria", {}).items()
+            if c.get("metric") == metric]
+
+
+def _draw_limits(axes, criteria: list[tuple[str, dict]], lo_edge: float, hi_edge: float,
+                 unit: str | None, shade: bool = True) -> list:
+    """Limit lines (dashed min, dash-dot max) and hatched failing regions on every axis."""
+    handles = []
+    labelled = set()
+    for name, c in criteria:
+        limit = c.get("limit", c)
+        for side in ("min", "max"):
+            value = limit.get(side)
+            if value is None or not math.isfinite(value):
+                continue
+            for ax in axes:
+                line = ax.axvline(value, color="black", linewidth=1.4,
+                                  linestyle=LIMIT_STYLES[side], zorder=4)
+                line.set_gid(f"limit:{name}:{side}")
+            label = f"{name} {side} {format_quantity(value, unit) if unit else value}"
+            handles.append(Line2D([], [], color="black", linestyle=LIMIT_STYLES[side],
+                                  label=label))
+            if shade:
+                start, stop = (lo_edge, value) if side == "min" else (value, hi_edge)
+                if stop > start:
+                    for ax in axes:
+                        span = ax.axvspan(start, stop, facecolor=FAIL_COLOR, alpha=0.18,
+                                          hatch=FAIL_HATCH, edgecolor=FAIL_COLOR,
+                                          linewidth=0, zorder=0)
+                        span.set_gid(f"fail-region:{name}:{side}")
+                    if "fail" not in labelled:
+                        labelled.add("fail")
+                        handles.append(Patch(facecolor=FAIL_COLOR, alpha=0.18,
+                                             hatch=FAIL_HATCH, edgecolor=FAIL_COLOR,
+                                             label="failing region"))
+    return handles
+
+
+def histogram(samples: pd.DataFrame, metric: str, summary: dict) -> Figure:
+    """Histogram and empirical CDF of a metric with its limits and counted failure rate.
+
+    Parameters
+    ----------
+    samples : pandas.DataFrame
+        Per-sample results; column ``metric`` [SI unit of the metric], NaN where the solver
+        did not converge (those samples are left out and their number is stated).
+    metric : str
+        Metric name, a key of ``summary["metrics"]``.
+    summary : dict
+        Run summary (summary.json). The limits come from every criterion whose ``metric`` is
+        this one; the failure counts, rates and 95 % intervals annotated are the summary's
+        own figures, not recomputed from ``samples``.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Two panels sharing the x axis [metric unit, engineering notation]: counts on top, the
+        ECDF [1] below. Limit lines carry the gid ``limit:<criterion>:<min|max>`` and the
+        hatched failing regions ``fail-region:<criterion>:<min|max>``.
+    """
+    from tolerance.report import format_interval, format_rate
+
+    info = summary.get("metrics", {}).get(metric, {})
+    unit = info.get("unit")
+    raw = np.asarray(samples[metric], dtype=float)
+    x = _finite(raw)
+    missing = raw.size - x.size
+    criteria = _metric_criteria(summary, metric)
+    marks = [c["limit"].get(s) for _, c in criteria for s in ("min", "max")]
+    lo_edge, hi_edge = _x_range(x, marks)
+
+    with sns.axes_style(_STYLE):
+        fig = _figure(7.0, 5.6)
+        ax, ax_cdf = fig.subplots(2, 1, sharex=True, height_ratios=[2.2, 1.0])
+        if x.size:
+            sns.histplot(x=x, bins=_bin_edges(x), ax=ax, color=PALETTE[0], edgecolor="white",
+                         linewidth=0.4, alpha=0.85, zorder=2)
+            sns.ecdfplot(x=x, ax=ax_cdf, color=PALETTE[0], linewidth=1.6, zorder=3)
+        handles = _draw_limits([ax, ax_cdf], criteria, lo_edge, hi_edge, unit)
+        ax.set_xlim(lo_edge, hi_edge)
+        ax.set_ylabel("samples")
+        ax_cdf.set_ylabel("cumulative fraction")
+        ax_cdf.set_ylim(0.0, 1.02)
+        description = info.get("description")
+        ax_cdf.set_xlabel(metric + (f" ({description})" if description else ""))
+        ax_cdf.xaxis.set_major_formatter(_unit_formatter(unit))
+        lines = []
+        for name, c in criteria:
+            text = (f"{name}: {c['failures']} of {c['evaluated']} failed, "
+                    f"counted rate {format_rate(c['rate'])}, 95 % interval "
+                    f"{format_interval(c['ci_low'], c['ci_high'])}")
+            if c.get("zero_failure_upper") is not None:
+                text += f", zero-failure upper bound {format_rate(c['zero_failure_upper'])}"
+            lines.append(text)
+        if missing:
+            lines.append(f"{missing} samples not converged (left out)")
+        ax.set_title("\n".join(lines), fontsize=8, loc="left", gid="rates")
+        if handles:
+            fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 3),
+                       fontsize=8, frameon=False)
+        title = summary.get("title") or ""
+        fig.suptitle(f"{metric}" + (f" - {title}" if title else ""), fontsize=11)
+    return fig
+
+
+def _rows_frame(rows) -> pd.DataFrame:
+    if isinstance(rows, pd.DataFrame):
+        return rows.reset_index(drop=True)
+    return pd.DataFrame(list(rows))
+
+
+def tornado(sensitivity_rows, metric: str, top: int = 10, measure: str = "srrc") -> Figure:
+    """Tornado chart: one horizontal bar per input, largest magnitude on top.
+
+    Parameters
+    ----------
+    sensitivity_rows : list of dict or pandas.DataFrame
+        Rows with ``input``, ``metric`` and the measures ``spearman``, ``srrc``, ``prcc`` [1].
+    metric : str
+        Which metric's rows to draw.
+    top : int, default 10
+        Number of inputs kept.
+    measure : str, default "srrc"
+        Column drawn; rows where it is NaN are left out.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Bars in decreasing order of ``abs(measure)`` from top to bottom; positive bars are
+        hatched ``//``, negative ones ``..``, in different colours.
+    """
+    df = _rows_frame(sensitivity_rows)
+    if df.empty or "metric" not in df or measure not in df:
+        df = pd.DataFrame({"input": [], "metric": [], measure: []})
+    df = df[df["metric"] == metric]
+    values = pd.to_numeric(df[measure], errors="coerce").to_numpy(dtype=float)
+    names = df["input"].astype(str).to_numpy()
+    keep = np.isfinite(values)
+    values, names = values[keep], names[keep]
+    # stable sort: equal magnitudes keep the input order of the rows
+    order = np.argsort(-np.abs(values), kind="stable")[: max(int(top), 0)]
+    values, names = values[order], names[order]
+    n = values.size
+    with sns.axes_style(_STYLE):
+        fig = _figure(7.0, max(2.2, 0.42 * n + 1.3))
+        ax = fig.subplots()
+        y = np.arange(n)[::-1]  # first (largest) at the top
+        for yi, v, name in zip(y, values, names):
+            pos = v >= 0
+            ax.barh(yi, v, color=PALETTE[0] if pos else PALETTE[1],
+                    hatch=POSITIVE_HATCH if pos else NEGATIVE_HATCH, edgecolor="black",
+                    linewidth=0.6, height=0.7, gid=f"bar:{name}")
+            ax.text(v, yi, f" {v:+.2f} ", va="center",
+                    ha="left" if pos else "right", fontsize=8)
+        ax.set_yticks(y, labels=list(names))
+        ax.axvline(0.0, color="black", linewidth=0.8)
+        ax.set_xlim(-1.15, 1.15)
+        ax.set_xlabel(f"{measure} [1]")
+        ax.set_title(f"Sensitivity of {metric} ({measure})", fontsize=10)
+        ax.legend(handles=[Patch(facecolor=PALETTE[0], hatch=POSITIVE_HATCH, edgecolor="black",
+                                 label="raises the metric"),
+                           Patch(facecolor=PALETTE[1], hatch=NEGATIVE_HATCH, edgecolor="black",
+                                 label="lowers the metric")],
+                  loc="lower right", fontsize=8)
+        if n == 0:
+            ax.text(0.5, 0.5, "no finite sensitivity values", transform=ax.transAxes,
+                    ha="center", va="center")
+    return fig
+
+
+def margin(values, criteria: list[dict]) -> np.ndarray:
+    """Distance of a metric to its nearest limit, positive inside the limits.
+
+    Parameters
+    ----------
+    values : array_like
+        Metric values [metric unit].
+    criteria : list of dict
+        Limit dicts ``{"min", "max"}`` (either may be None).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``min(x - min, max - x)`` over the given limits [metric unit]; NaN where ``x`` is NaN
+        or no limit is given.
+    """
+    x = np.asarray(values, dtype=float)
+    out = np.full(x.shape, np.inf)
+    for limit in criteria:
+        if limit.get("min") is not None:
+            out = np.minimum(out, x - limit["min"])
+        if limit.get("max") is not None:
+            out = np.minimum(out, limit["max"] - x)
+    out = np.where(np.isfinite(x) & np.isfinite(out), out, np.nan)
+    return out
+
+
+def _thin(n: int, keep: np.ndarray, limit: int) -> np.ndarray:
+    """Indices to plot: all of ``keep`` plus evenly spaced others, at most ``limit`` total."""
+    idx = np.arange(n)
+    forced = idx[keep]
+    others = idx[~keep]
+    room = max(limit - forced.size, 0)
+    if others.size > room:
+        others = others[np.linspace(0, others.size - 1, room).astype(int)] if room else others[:0]
+    return np.sort(np.concatenate([forced, others]))
+
+
+def driver_scatter(samples: pd.DataFrame, input_name: str, metric: str, summary: dict,
+                   units: dict[str, str] | None = None) -> Figure:
+    """Scatter of an input against the metric's margin to its nearest limit.
+
+    Parameters
+    ----------
+    samples : pandas.DataFrame
+        Columns ``input_name`` [input unit], ``metric`` [metric unit] and, when present,
+        ``pass.<criterion>`` for the criteria on this metric (else pass/fail follows from
+        the margin's sign).
+    input_name : str
+        Input on the x axis, typically the top failure driver.
+    metric : str
+        Metric whose margin is drawn.
+    summary : dict
+        Run summary; gives the limits and the metric unit.
+    units : dict of str to str, optional
+        Unit per input name, for the x axis (default: plain numbers).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Passing samples as blue circles, failing ones as orange-red crosses ("X"); the
+        margin axis [metric unit] is 0 at the limit and positive inside. Non-converged
+        samples (NaN metric) are left out and counted in the title. With more than
+        ``MAX_SCATTER_POINTS`` samples every failure and an even subset of passes is drawn.
+    """
+    units = units or {}
+    criteria = _metric_criteria(summary, metric)
+    unit = summary.get("metrics", {}).get(metric, {}).get("unit")
+    x = np.asarray(samples[input_name], dtype=float)
+    m = margin(samples[metric], [c["limit"] for _, c in criteria])
+    cols = [f"pass.{name}" for name, _ in criteria if f"pass.{name}" in samples]
+    if cols and len(cols) == len(criteria):
+        ok = np.logical_and.reduce([samples[c].to_numpy(dtype=bool) for c in cols])
+    else:
+        ok = m >= 0
+    valid = np.isfinite(m) & np.isfinite(x)
+    fail = valid & ~ok
+    passing = valid & ok
+    idx = _thin(x.size, fail, MAX_SCATTER_POINTS)
+    sel_pass = idx[passing[idx]]
+    sel_fail = idx[fail[idx]]
+    with sns.axes_style(_STYLE):
+        fig = _figure(7.0, 4.6)
+        ax = fig.subplots()
+        ax.plot(x[sel_pass], m[sel_pass], linestyle="none", marker=PASS_MARKER, markersize=3,
+                color=PASS_COLOR, alpha=0.5, label=f"pass ({int(passing.sum())})", gid="pass")
+        ax.plot(x[sel_fail], m[sel_fail], linestyle="none", marker=FAIL_MARKER, markersize=5,
+                color=FAIL_COLOR, alpha=0.9, label=f"fail ({int(fail.sum())})", gid="fail")
+        ax.axhline(0.0, color="black", linestyle="--", linewidth=1.2, label="nearest limit")
+        ax.xaxis.set_major_formatter(_unit_formatter(units.get(input_name)))
+        ax.yaxis.set_major_formatter(_unit_formatter(_spread_unit(unit)))
+        ax.set_xlabel(input_name)
+        ax.set_ylabel(f"margin of {metric} (inside > 0)")
+        skipped = int((~valid).sum())
+        ax.set_title(f"{metric} margin vs {input_name}"
+                     + (f" ({skipped} not converged, left out)" if skipped else ""),
+                     fontsize=10)
+        ax.legend(loc="best", fontsize=8)
+    return fig
+
+
+def _ecdf(values) -> tuple[np.ndarray, np.ndarray]:
+    x = np.sort(_finite(values))
+    return x, np.arange(1, x.size + 1) / max(x.size, 1)
+
+
+def whatif_overlay(baseline: np.ndarray, pinned: np.ndarray, metric: str, unit: str | None,
+                   limits=None, labels: tuple[str, str] = ("baseline", "pinned")) -> Figure:
+    """ECDFs of a metric before and after a what-if change, with its limits.
+
+    Parameters
+    ----------
+    baseline, pinned : ndarray
+        Metric values of the two runs [metric unit]; NaN values are left out.
+    metric : str
+        Metric name (axis label).
+    unit : str or None
+        Unit for the engineering-notation x axis.
+    limits : dict or list of dict, optional
+        ``{"min", "max"}`` limit dicts drawn as lines with hatched failing regions.
+    labels : tuple of str
+        Legend labels of the two curves.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Baseline as a solid step line, the what-if run dashed, in different colours.
+    """
+    b, fb = _ecdf(baseline)
+    p, fp = _ecdf(pinned)
+    lims = _limits_of(limits)
+    marks = [lim.get(s) for lim in lims for s in ("min", "max")]
+    lo_edge, hi_edge = _x_range(np.concatenate([b, p]), marks)
+    with sns.axes_style(_STYLE):
+        fig = _figure(7.0, 4.4)
+        ax = fig.subplots()
+        ax.step(b, fb, where="post", linestyle=LINESTYLES[0], color=PALETTE[0], linewidth=1.8,
+                label=f"{labels[0]} ({b.size})", gid="ecdf:baseline")
+        ax.step(p, fp, where="post", linestyle=LINESTYLES[1], color=PALETTE[1], linewidth=1.8,
+                label=f"{labels[1]} ({p.size})", gid="ecdf:pinned")
+        handles = _draw_limits([ax], [(f"limit {i + 1}", lim) for i, lim in enumerate(lims)],
+                               lo_edge, hi_edge, unit)
+        ax.set_xlim(lo_edge, hi_edge)
+        ax.set_ylim(0.0, 1.02)
+        ax.xaxis.set_major_formatter(_unit_formatter(unit))
+        ax.set_xlabel(metric)
+        ax.set_ylabel("cumulative fraction")
+        ax.set_title(f"What-if: {metric}", fontsize=10)
+        curve_handles, _ = ax.get_legend_handles_labels()
+        fig.legend(handles=curve_handles + handles, loc="outside lower center",
+                   ncol=min(len(curve_handles + handles), 3), fontsize=8, frameon=False)
+    return fig
+
+
+def yield_map(candidates: pd.DataFrame, x: str, y: str | None = None, *,
+              yield_col: str = "yield", low_col: str = "ci_low", high_col: str = "ci_high",
+              x_unit: str | None = None, y_unit: str | None = None) -> Figure:
+    """Yield against candidate part values.
+
+    Parameters
+    ----------
+    candidates : pandas.DataFrame
+        One row per candidate: the value column(s) ``x`` (and ``y``) [part unit] and the yield
+        with its interval (``yield_col``, ``low_col``, ``high_col`` [1]).
+    x, y : str
+        Value columns; with ``y`` None a single part is drawn.
+    x_unit, y_unit : str, optional
+        Units for engineering-notation labels.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        One part: yield [%] against value with the interval as error bars and a connecting
+        dotted line. Two parts: a heat map (greyscale-safe "cividis" map) with each cell's
+        yield written into it.
+    """
+    df = candidates.reset_index(drop=True)
+    with sns.axes_style(_STYLE if y is None else "white"):
+        if y is None:
+            d = df.sort_values(x, kind="stable")
+            xv = d[x].to_numpy(dtype=float)
+            yv = 100 * d[yield_col].to_numpy(dtype=float)
+            err = None
+            if low_col in d and high_col in d:
+                lo = 100 * d[low_col].to_numpy(dtype=float)
+                hi = 100 * d[high_col].to_numpy(dtype=float)
+                err = np.vstack([np.clip(yv - lo, 0, None), np.clip(hi - yv, 0, None)])
+            fig = _figure(7.0, 4.4)
+            ax = fig.subplots()
+            ax.errorbar(xv, yv, yerr=err, fmt="o", linestyle=":", color=PALETTE[0],
+                        ecolor="black", elinewidth=1.0, capsize=4, markersize=6, gid="yield")
+            ax.xaxis.set_major_formatter(_unit_formatter(x_unit))
+            if x_unit is None:
+                ax.set_xticks(xv)
+            ax.set_xlabel(x)
+            ax.set_ylabel("yield [%] (95 % interval)")
+            ax.set_title(f"Yield vs {x}", fontsize=10)
+            return fig
+        table = df.pivot_table(index=y, columns=x, values=yield_col, aggfunc="first",
+                               sort=True) * 100
+        fig = _figure(max(5.0, 0.9 * table.shape[1] + 2.5), max(3.2, 0.6 * table.shape[0] + 1.8))
+        ax = fig.subplots()
+        sns.heatmap(table, ax=ax, annot=True, fmt=".1f", cmap="cividis", vmin=0, vmax=100,
+                    linewidths=0.5, linecolor="white", cbar_kws={"label": "yield [%]"},
+                    annot_kws={"fontsize": 8})
+        xf, yf = _unit_formatter(x_unit), _unit_formatter(y_unit)
+        ax.set_xticks(np.arange(table.shape[1]) + 0.5, labels=[xf(v) for v in table.columns])
+        ax.set_yticks(np.arange(table.shape[0]) + 0.5, labels=[yf(v) for v in table.index],
+                      rotation=0)
+        ax.set_xlabel(x)
+        ax.set_ylabel(y)
+        ax.set_title(f"Yield [%] over {x} and {y}", fontsize=10)
+    return fig
+
+
+def pareto_mask(x, y, minimize_x: bool = True, minimize_y: bool = True) -> np.ndarray:
+    """Non-dominated points of a two-objective trade-off.
+
+    Parameters
+    ----------
+    x, y : array_like
+        Objective values per candidate [any units]; NaN candidates are never on the front.
+    minimize_x, minimize_y : bool
+        Direction of each objective.
+
+    Returns
+    -------
+    numpy.ndarray of bool
+        True where no other candidate is at least as good in both objectives and strictly
+        better in one.
+    """
+    a = np.asarray(x, dtype=float) * (1 if minimize_x else -1)
+    b = np.asarray(y, dtype=float) * (1 if minimize_y else -1)
+    ok = np.isfinite(a) & np.isfinite(b)
+    le = (a[None, :] <= a[:, None]) & (b[None, :] <= b[:, None])
+    lt = (a[None, :] < a[:, None]) | (b[None, :] < b[:, None])
+    dominated = np.any(le & lt & ok[None, :], axis=1)
+    return ok & ~dominated
+
+
+def frontier(candidates: pd.DataFrame, metric_x: str, metric_y: str, *,
+             minimize_x: bool = True, minimize_y: bool = True, label: str | None = None,
+             x_unit: str | None = None, y_unit: str | None = None) -> Figure:
+    """Trade-off scatter of candidates with the non-dominated frontier drawn.
+
+    Parameters
+    ----------
+    candidates : pandas.DataFrame
+        One row per candidate with columns ``metric_x`` and ``metric_y``.
+    metric_x, metric_y : str
+        Objectives on the axes.
+    minimize_x, minimize_y : bool
+        Direction of each objective (for the frontier).
+    label : str, optional
+        Column whose text labels the frontier points.
+    x_unit, y_unit : str, optional
+        Units for engineering-notation axes.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Dominated candidates as grey circles, frontier candidates as squares joined by a
+        dashed step line (gid ``frontier``).
+    """
+    df = candidates.reset_index(drop=True)
+    xv = df[metric_x].to_numpy(dtype=float)
+    yv = df[metric_y].to_numpy(dtype=float)
+    front = pareto_mask(xv, yv, minimize_x, minimize_y)
+    order = np.argsort(xv[front], kind="stable")
+    fx, fy = xv[front][order], yv[front][order]
+    with sns.axes_style(_STYLE):
+        fig = _figure(7.0, 4.6)
+        ax = fig.subplots()
+        ax.plot(xv[~front], yv[~front], linestyle="none", marker="o", color="0.55",
+                markersize=5, label="dominated", gid="dominated")
+        ax.plot(fx, fy, linestyle="none", marker="s", color=PALETTE[0], markersize=7,
+                markeredgecolor="black", label="non-dominated", gid="front-points")
+        where = "post" if minimize_x == minimize_y else "pre"
+        ax.step(fx, fy, where=where, linestyle="--", color="black", linewidth=1.2,
+                label="frontier", gid="frontier")
+        if label is not None and label in df:
+            names = df[label].astype(str).to_numpy()[front][order]
+            for a, b, t in zip(fx, fy, names):
+                ax.annotate(t, (a, b), textcoords="offset points", xytext=(4, 4), fontsize=7)
+        ax.xaxis.set_major_formatter(_unit_formatter(x_unit))
+        ax.yaxis.set_major_formatter(_unit_formatter(y_unit))
+        ax.set_xlabel(metric_x + (" (lower is better)" if minimize_x else " (higher is better)"))
+        ax.set_ylabel(metric_y + (" (lower is better)" if minimize_y else " (higher is better)"))
+        ax.set_title(f"Trade-off: {metric_x} vs {metric_y}", fontsize=10)
+        ax.legend(loc="best", fontsize=8)
+    return fig
+
+
+def waveforms(times: list[np.ndarray], traces: list[np.ndarray], labels: Sequence[str],
+              unit: str | None, time_unit: str = "s") -> Figure:
+    """Several time traces on one axis, each in its own line style and colour.
+
+    Parameters
+    ----------
+    times : list of ndarray
+        Time points of each trace [s].
+    traces : list of ndarray
+        Values of each trace [``unit``].
+    labels : sequence of str
+        Legend label per trace.
+    unit : str or None
+        Unit of the traces, for the engineering-notation y axis.
+    time_unit : str, default "s"
+        Unit of the time axis.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    if not (len(times) == len(traces) == len(labels)):
+        raise ValueError(f"got {len(times)} time arrays, {len(traces)} traces and "
+                         f"{len(labels)} labels; expected the same number of each")
+    with sns.axes_style(_STYLE):
+        fig = _figure(7.0, 4.2)
+        ax = fig.subplots()
+        for i, (t, v, name) in enumerate(zip(times, traces, labels)):
+            ax.plot(np.asarray(t, dtype=float), np.asarray(v, dtype=float),
+                    linestyle=LINESTYLES[i % len(LINESTYLES)], color=PALETTE[i % len(PALETTE)],
+                    linewidth=1.6, label=str(name), gid=f"trace:{i}")
+        ax.xaxis.set_major_formatter(_unit_formatter(time_unit))
+        ax.yaxis.set_major_formatter(_unit_formatter(unit))
+        ax.set_xlabel("time")
+        ax.set_ylabel("value")
+        if len(labels):
+            ax.legend(loc="best", fontsize=8)
+    return fig
+
+
+def save(fig: Figure, path) -> Path:
+    """Write a figure as PNG at :data:`DPI` dots per inch.
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+    path : path-like
+        Target file; parent folders are created.
+
+    Returns
+    -------
+    pathlib.Path
+        The path written. The file carries no software stamp, so the same figure gives the
+        same bytes.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path, dpi=DPI, format="png", metadata={"Software": None})
+    return path

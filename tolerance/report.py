@@ -1,0 +1,781 @@
+"""Reports a reviewer can sign: a self-contained HTML page and a Markdown twin of a run.
+
+:func:`write_reports` reads a run folder (summary.json, samples.parquet and, when present, the
+JSON files of the sensitivity, worst-case, what-if and value-choice analyses), draws the plots
+into ``plots/`` and writes ``report.html`` and ``report.md``. Both reports are rendered from one
+document model (headings, paragraphs, tables of already formatted strings, figures), so every
+figure they share is the very same string. Nothing depends on the clock or on the machine: the
+same saved files give byte-identical reports.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from tolerance import plots, runner
+from tolerance.cli import SAFETY
+from tolerance.units import UnitError, format_quantity
+
+__all__ = [
+    "EXTRA_FILES",
+    "format_interval",
+    "format_number",
+    "format_rate",
+    "format_value",
+    "render_html",
+    "render_markdown",
+    "write_reports",
+]
+
+SUMMARY_FILE = "summary.json"
+SAMPLES_DIR = "samples.parquet"
+PLOTS_DIR = "plots"
+HTML_FILE = "report.html"
+MD_FILE = "report.md"
+#: Optional analysis files rendered when present, with their section titles.
+EXTRA_FILES = {
+    "sensitivity.json": "Sensitivity analysis",
+    "worstcase.json": "Worst case",
+    "whatif.json": "What-if runs",
+    "choose.json": "Value choice",
+}
+PLOT_PREFIXES = ("hist-", "tornado-", "driver-", "whatif-", "choose-")
+WHATIF_SAMPLES = "whatif_samples.parquet"
+VERDICT_WORDS = {"pass": "PASS", "fail": "FAIL", "undecided": "UNDECIDED"}
+VERDICT_MEANING = {
+    "pass": "every limit met",
+    "fail": "a limit is not met",
+    "undecided": "not enough samples to tell",
+}
+_MAX_DEPTH = 3
+
+
+# --- number formatting (the one place both reports take their figures from) --------------------
+
+def format_number(x) -> str:
+    """Plain number for tables: integers as such, floats to 4 significant digits.
+
+    Parameters
+    ----------
+    x : object
+        ``None`` gives ``"-"``, booleans ``"yes"``/``"no"``, NaN ``"nan"``.
+
+    Returns
+    -------
+    str
+    """
+    if x is None:
+        return "-"
+    if isinstance(x, (bool, np.bool_)):
+        return "yes" if x else "no"
+    if isinstance(x, (int, np.integer)):
+        return str(int(x))
+    if isinstance(x, (float, np.floating)):
+        x = float(x)
+        if math.isnan(x):
+            return "nan"
+        if math.isinf(x):
+            return "inf" if x > 0 else "-inf"
+        return f"{x:.4g}"
+    return str(x)
+
+
+def format_rate(p) -> str:
+    """A probability as a percentage with 3 significant digits, e.g. ``"0.0599 %"``.
+
+    Parameters
+    ----------
+    p : float or None
+        Probability [1].
+
+    Returns
+    -------
+    str
+    """
+    if p is None:
+        return "-"
+    p = float(p)
+    if math.isnan(p):
+        return "nan"
+    if p == 0:
+        return "0 %"
+    return f"{100.0 * p:.3g} %"
+
+
+def format_interval(low, high) -> str:
+    """An interval of probabilities, e.g. ``"0.0123 % .. 0.456 %"``."""
+    return f"{format_rate(low)} .. {format_rate(high)}"
+
+
+def format_value(x, unit: str | None) -> str:
+    """A value in engineering notation with its unit when it is a number of a known unit."""
+    if x is None:
+        return "-"
+    if isinstance(x, (bool, np.bool_)) or not isinstance(x, (int, float, np.integer,
+                                                              np.floating)):
+        return str(x)
+    if unit:
+        try:
+            return format_quantity(float(x), unit)
+        except UnitError:
+            return f"{format_number(x)} {unit}"
+    return format_number(x)
+
+
+# --- document model -------------------------------------------------------------------------------
+
+@dataclass
+class Table:
+    """A table of already formatted cells."""
+
+    header: list[str]
+    rows: list[list[str]]
+    table_id: str | None = None
+    caption: str | None = None
+    classes: list[list[str]] = field(default_factory=list)  # optional CSS class per cell
+
+
+@dataclass
+class Block:
+    kind: str  # "h1", "h2", "h3", "p", "note", "verdict", "table", "figure", "stamp", "pre"
+    text: str = ""
+    table: Table | None = None
+    path: str | None = None  # figures: relative path of the PNG
+    data: bytes | None = None  # figures: the PNG bytes
+    extra: dict = field(default_factory=dict)
+
+
+def _limits_text(limit: dict, unit: str | None) -> str:
+    lo, hi = limit.get("min"), limit.get("max")
+    if lo is not None and hi is not None:
+        return f"{format_value(lo, unit)} .. {format_value(hi, unit)}"
+    if lo is not None:
+        return f">= {format_value(lo, unit)}"
+    if hi is not None:
+        return f"<= {format_value(hi, unit)}"
+    return "none"
+
+
+def verdict_table(summary: dict) -> Table:
+    """The per-criterion verdict table (id ``verdict-table``)."""
+    header = ["Criterion", "Metric", "Limits", "Failures", "Evaluated", "Counted rate",
+              "95 % exact interval", "Zero-failure upper bound", "Verdict"]
+    rows, classes = [], []
+    metrics = summary.get("metrics", {})
+    for name, c in summary.get("criteria", {}).items():
+        unit = metrics.get(c["metric"], {}).get("unit")
+        zfu = c.get("zero_failure_upper")
+        v = c.get("verdict", "")
+        rows.append([name, c["metric"], _limits_text(c.get("limit", {}), unit),
+                     format_number(c["failures"]), format_number(c["evaluated"]),
+                     format_rate(c["rate"]), format_interval(c["ci_low"], c["ci_high"]),
+                     format_rate(zfu) if zfu is not None else "-",
+                     VERDICT_WORDS.get(v, str(v).upper())])
+        classes.append([""] * 8 + [f"v-{v}"])
+    return Table(header, rows, "verdict-table", "Counted failures per criterion", classes)
+
+
+_PERCENTILES = [("mean", "mean"), ("std", "std"), ("min", "min"), ("p001", "0.1 %"),
+                ("p01", "1 %"), ("p50", "median"), ("p99", "99 %"), ("p999", "99.9 %"),
+                ("max", "max")]
+
+
+def metrics_table(summary: dict) -> Table:
+    header = ["Metric", "Description"] + [label for _, label in _PERCENTILES]
+    rows = []
+    for name, m in summary.get("metrics", {}).items():
+        unit = m.get("unit")
+        row = [name, str(m.get("description", ""))]
+        for key, _ in _PERCENTILES:
+            u = plots._spread_unit(unit) if key == "std" else unit
+            row.append(format_value(m.get(key), u))
+        rows.append(row)
+    return Table(header, rows, "metrics-table", "Metric percentiles (not converged left out)")
+
+
+def parameter_table(parameters: list[dict]) -> Table:
+    header = ["Parameter", "Nominal", "Low", "High", "Distribution", "Unit"]
+    rows = []
+    for p in parameters:
+        unit = p.get("unit")
+        rows.append([str(p.get("name", "")), format_value(p.get("nominal"), unit),
+                     format_value(p.get("low"), unit), format_value(p.get("high"), unit),
+                     _cell(p.get("distribution")), str(unit) if unit is not None else "-"])
+    return Table(header, rows, "parameter-table", "Toleranced parameters")
+
+
+def _cell(value) -> str:
+    """One table cell from any JSON value."""
+    if isinstance(value, (dict, list)):
+        return json.dumps(value, sort_keys=False, default=str, allow_nan=True)
+    return format_number(value)
+
+
+def _is_scalar(v) -> bool:
+    return not isinstance(v, (dict, list))
+
+
+def _flatten(record: dict) -> dict:
+    """Inline one level of nested dicts of scalars as ``outer.inner`` columns."""
+    flat = {}
+    for k, v in record.items():
+        if isinstance(v, dict) and v and all(_is_scalar(x) for x in v.values()):
+            for k2, v2 in v.items():
+                flat[f"{k}.{k2}"] = v2
+        else:
+            flat[k] = v
+    return flat
+
+
+def _records_table(records: list[dict], caption: str | None = None) -> Table:
+    records = [_flatten(r) for r in records]
+    keys: list[str] = []
+    for r in records:
+        for k in r:
+            if k not in keys:
+                keys.append(k)
+    rows = [[_cell(r.get(k)) for k in keys] for r in records]
+    return Table([str(k) for k in keys], rows, None, caption)
+
+
+def _keyed_table(data: dict, first: str, caption: str | None = None) -> Table:
+    """A dict of dicts as a table: one row per key, one column per inner key."""
+    keys: list[str] = []
+    for v in data.values():
+        for k in (v if isinstance(v, dict) else {"value": v}):
+            if k not in keys:
+                keys.append(k)
+    rows = []
+    for name, v in data.items():
+        v = v if isinstance(v, dict) else {"value": v}
+        rows.append([str(name)] + [_cell(v.get(k)) for k in keys])
+    return Table([first] + [str(k) for k in keys], rows, None, caption)
+
+
+def generic_blocks(data, title: str | None = None, depth: int = 0) -> list[Block]:
+    """Render any JSON value as tables: lists of dicts and dicts of dicts become tables.
+
+    Parameters
+    ----------
+    data : object
+        Parsed JSON.
+    title : str, optional
+        Sub-heading for this value.
+    depth : int
+        Nesting level; beyond three levels values are shown as JSON text in cells.
+
+    Returns
+    -------
+    list of Block
+    """
+    out: list[Block] = []
+    if title:
+        out.append(Block("h3", title))
+    if isinstance(data, list):
+        if data and all(isinstance(r, dict) for r in data):
+            out.append(Block("table", table=_records_table(data)))
+        elif data:
+            out.append(Block("p", ", ".join(_cell(v) for v in data)))
+        else:
+            out.append(Block("p", "(empty)"))
+        return out
+    if not isinstance(data, dict):
+        out.append(Block("p", _cell(data)))
+        return out
+    if data and all(isinstance(v, dict) for v in data.values()) and all(
+            all(_is_scalar(x) for x in v.values()) for v in data.values()):
+        out.append(Block("table", table=_keyed_table(data, "name")))
+        return out
+    scalars = {k: v for k, v in data.items() if _is_scalar(v)}
+    if scalars:
+        out.append(Block("table", table=Table(["key", "value"],
+                                              [[str(k), _cell(v)] for k, v in scalars.items()])))
+    for k, v in data.items():
+        if _is_scalar(v):
+            continue
+        if depth >= _MAX_DEPTH:
+            out.append(Block("table", table=Table(["key", "value"], [[str(k), _cell(v)]])))
+        else:
+            out.extend(generic_blocks(v, str(k), depth + 1))
+    return out
+
+
+# --- reading the run ----------------------------------------------------------------------------
+
+def _read_json(path: Path):
+    return json.loads(path.read_text(encoding="utf-8"))
+
+
+def _safe_name(text: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", text).strip("_") or "x"
+
+
+def _limited_metrics(summary: dict) -> list[str]:
+    seen: list[str] = []
+    for c in summary.get("criteria", {}).values():
+        if c["metric"] not in seen:
+            seen.append(c["metric"])
+    return seen
+
+
+def _sensitivity_rows(summary: dict, extras: dict) -> list[dict]:
+    rows = summary.get("sensitivity")
+    if not rows:
+        data = extras.get("sensitivity.json")
+        if isinstance(data, dict):
+            data = data.get("rows", data.get("rank", data.get("sensitivity")))
+        rows = data
+    if isinstance(rows, list) and rows and all(
+            isinstance(r, dict) and "input" in r and "metric" in r for r in rows):
+        return rows
+    return []
+
+
+def _remove_stale_plots(plot_dir: Path) -> None:
+    for stale in sorted(plot_dir.glob("*.png")):
+        if stale.name.startswith(PLOT_PREFIXES):
+            stale.unlink()
+
+
+def _run_plots(folder: Path, summary: dict, extras: dict,
+               plot_dir: Path) -> list[tuple[Path, str]]:
+    """Histograms, tornado charts and driver scatters of a Monte Carlo run."""
+    samples_dir = folder / SAMPLES_DIR
+    made: list[tuple[Path, str]] = []
+    columns: dict[str, np.ndarray] = {}
+
+    def col(name):
+        if name not in columns:
+            columns[name] = runner.read_column(samples_dir, name)
+        return columns[name]
+
+    criteria = summary.get("criteria", {})
+    for metric in _limited_metrics(summary):
+        fig = plots.histogram(pd.DataFrame({metric: col(metric)}), metric, summary)
+        path = plots.save(fig, plot_dir / f"hist-{_safe_name(metric)}.png")
+        made.append((path, f"Distribution of {metric} with its limits and counted failure rate"))
+
+    rows = _sensitivity_rows(summary, extras)
+    for metric in _limited_metrics(summary):
+        if any(r["metric"] == metric for r in rows):
+            fig = plots.tornado(rows, metric)
+            path = plots.save(fig, plot_dir / f"tornado-{_safe_name(metric)}.png")
+            made.append((path, f"Rank sensitivity of {metric} (SRRC)"))
+
+    units = {p["name"]: p.get("unit") for p in summary.get("parameters", []) or []
+             if isinstance(p, dict) and "name" in p}
+    drivers = summary.get("failure_drivers") or {}
+    for name, info in drivers.items():
+        ranking = (info or {}).get("ranking") or []
+        if name not in criteria or not ranking or ranking[0].get("input") is None:
+            continue
+        top = ranking[0]["input"]
+        metric = criteria[name]["metric"]
+        related = [f"pass.{n}" for n, c in criteria.items() if c["metric"] == metric]
+        frame = pd.DataFrame({top: col(top), metric: col(metric),
+                              **{r: col(r) for r in related}})
+        fig = plots.driver_scatter(frame, top, metric, summary, units)
+        path = plots.save(fig, plot_dir / f"driver-{_safe_name(name)}.png")
+        made.append((path, f"Top failure driver of {name}: {top} against the margin of {metric}"))
+    return made
+
+
+def _whatif_plots(folder: Path, whatif: dict, summary: dict | None,
+                  plot_dir: Path) -> list[tuple[Path, str]]:
+    """ECDF overlays from whatif_samples.parquet (columns baseline.<metric>, pinned.<metric>)."""
+    path = folder / WHATIF_SAMPLES
+    if not path.is_file() or not isinstance(whatif, dict):
+        return []
+    frame = pd.read_parquet(path)
+    metrics = whatif.get("metrics") if isinstance(whatif.get("metrics"), dict) else {}
+    wanted = []
+    for c in (whatif.get("criteria") or {}).values():
+        if isinstance(c, dict) and c.get("metric") not in wanted:
+            wanted.append(c.get("metric"))
+    limits = {}
+    if summary:
+        for c in summary.get("criteria", {}).values():
+            limits.setdefault(c["metric"], []).append(c["limit"])
+    made = []
+    pins = ", ".join(f"{k} = {format_number(v)}" for k, v in (whatif.get("pins") or {}).items())
+    for metric in wanted:
+        b, q = f"baseline.{metric}", f"pinned.{metric}"
+        if b not in frame or q not in frame:
+            continue
+        unit = (metrics.get(metric) or {}).get("unit")
+        fig = plots.whatif_overlay(frame[b].to_numpy(dtype=float), frame[q].to_numpy(dtype=float),
+                                   metric, unit, limits.get(metric),
+                                   labels=("baseline", f"pinned {pins}" if pins else "pinned"))
+        out = plots.save(fig, plot_dir / f"whatif-{_safe_name(metric)}.png")
+        made.append((out, f"What-if {pins or ''}: distribution of {metric}, baseline vs pinned"))
+    return made
+
+
+def _choose_plots(choose: dict, plot_dir: Path) -> list[tuple[Path, str]]:
+    """Yield map over the candidate values and the trade-off frontier, from choose.json."""
+    if not isinstance(choose, dict) or not isinstance(choose.get("candidates"), list):
+        return []
+    cands = [c for c in choose["candidates"] if isinstance(c, dict)
+             and isinstance(c.get("values"), dict) and "yield" in c]
+    names = list(choose.get("vary") or (cands[0]["values"] if cands else {}))
+    if not cands or not 1 <= len(names) <= 2:
+        return []
+    units = choose.get("units") or {}
+    rows = []
+    for c in cands:
+        row = {n: c["values"].get(n) for n in names}
+        row.update({k: c.get(k) for k in ("yield", "ci_low", "ci_high")})
+        for m in choose.get("tradeoff") or {}:
+            row[m] = c.get(m)
+        rows.append(row)
+    df = pd.DataFrame(rows)
+    made = []
+    y = names[1] if len(names) == 2 else None
+    fig = plots.yield_map(df, names[0], y, x_unit=units.get(names[0]),
+                          y_unit=units.get(y) if y else None)
+    made.append((plots.save(fig, plot_dir / "choose-yield.png"),
+                 f"Yield over the candidate values of {', '.join(names)}"))
+    trade = choose.get("tradeoff") or {}
+    if len(trade) == 2:
+        (mx, ix), (my, iy) = trade.items()
+        # a metric judged at its low percentile has a lower limit: larger is better
+        fig = plots.frontier(df, mx, my, minimize_x=ix.get("statistic") != "p001",
+                             minimize_y=iy.get("statistic") != "p001",
+                             x_unit=ix.get("unit"), y_unit=iy.get("unit"))
+        made.append((plots.save(fig, plot_dir / "choose-frontier.png"),
+                     f"Trade-off between {mx} and {my} with the non-dominated frontier"))
+    return made
+
+
+# --- the document ---------------------------------------------------------------------------------
+
+STAMP_KEYS = ("tool_version", "study_hash", "seed", "samples", "sampler", "created")
+
+
+def _stamp(summary: dict | None, extras: dict) -> Table:
+    """Reproducibility stamp from the summary, completed from the analysis files."""
+    sources = ([summary] if summary else []) + [v for v in extras.values() if isinstance(v, dict)]
+    rows = []
+    for k in STAMP_KEYS:
+        value = next((src[k] for src in sources if k in src), None)
+        rows.append([k, format_number(value)])
+    return Table(["item", "value"], rows, "stamp", "Reproducibility stamp")
+
+
+def _per_criterion_table(data: dict, caption: str) -> Table:
+    return _keyed_table(data, "criterion", caption)
+
+
+def _summary_blocks(summary: dict) -> list[Block]:
+    doc: list[Block] = []
+    doc.append(Block("h2", "Verdict"))
+    v = summary.get("verdict", "")
+    word = VERDICT_WORDS.get(v, str(v).upper())
+    doc.append(Block("verdict", f"Overall verdict: {word} ({VERDICT_MEANING.get(v, v)})",
+                     extra={"verdict": v}))
+    y = summary.get("yield", {})
+    if y:
+        doc.append(Block("p", f"Yield {format_rate(y.get('estimate'))} "
+                              f"({format_number(y.get('passes'))} of "
+                              f"{format_number(summary.get('samples'))} samples pass every "
+                              f"criterion; 95 % exact interval "
+                              f"{format_interval(y.get('ci_low'), y.get('ci_high'))})."))
+    allowed = summary.get("max_failure_rate")
+    rule = (" (a criterion passes only with no failure)." if not allowed else
+            "; a criterion passes when its interval lies at or below it, fails when it lies "
+            "above it, and is undecided otherwise.")
+    doc.append(Block("p", f"Allowed failure rate per criterion: {format_rate(allowed)}{rule}"
+                          f" Samples not converged: {format_number(summary.get('not_converged'))}"
+                          " (they count against the yield, never as passes)."))
+    doc.append(Block("table", table=verdict_table(summary)))
+    if summary.get("overrides"):
+        doc.append(Block("table", table=Table(
+            ["parameter", "change", "value"],
+            [[k, str(o.get("kind")), format_number(o.get("value"))]
+             for k, o in summary["overrides"].items()], None, "Parameter overrides in this run")))
+
+    doc.append(Block("h2", "Metrics"))
+    doc.append(Block("table", table=metrics_table(summary)))
+
+    if summary.get("parameters"):
+        doc.append(Block("h2", "Parameters"))
+        doc.append(Block("table", table=parameter_table(summary["parameters"])))
+
+    if summary.get("capability"):
+        doc.append(Block("h2", "Capability"))
+        doc.append(Block("p", "Capability indices from the overall sample standard deviation "
+                              "(Pp/Ppk in SPC terms); the interval assumes normal data."))
+        doc.append(Block("table", table=_per_criterion_table(summary["capability"],
+                                                             "Capability per criterion")))
+    if summary.get("tail"):
+        doc.append(Block("h2", "Tail estimates (model-based extrapolation, not counted)"))
+        doc.append(Block("note", "These figures extrapolate fitted distributions beyond the "
+                                 "samples drawn. They are not counted failures and do not enter "
+                                 "the verdict."))
+        doc.append(Block("table", table=_per_criterion_table(
+            summary["tail"], "Model-based tail estimates (extrapolated, not counted)")))
+
+    rows = summary.get("sensitivity")
+    drivers = summary.get("failure_drivers")
+    if rows or drivers:
+        doc.append(Block("h2", "Sensitivity and failure drivers"))
+        for name, info in (drivers or {}).items():
+            info = info or {}
+            doc.append(Block("p", f"{name}: {info.get('text', '-')}"))
+            if info.get("ranking"):
+                doc.append(Block("table", table=_records_table(
+                    info["ranking"], f"Failure drivers of {name}")))
+        if rows:
+            doc.extend(generic_blocks(rows))
+    return doc
+
+
+def build_document(summary: dict | None, extras: dict,
+                   figures: list[tuple[str, bytes, str]]) -> list[Block]:
+    """The report as a list of blocks, shared by the HTML and the Markdown renderer.
+
+    Parameters
+    ----------
+    summary : dict or None
+        Parsed summary.json of a Monte Carlo run (None for an analysis-only folder).
+    extras : dict
+        File name -> parsed JSON of the analysis files present.
+    figures : list of (str, bytes, str)
+        Relative PNG path, PNG bytes and caption of every plot.
+
+    Returns
+    -------
+    list of Block
+    """
+    doc: list[Block] = []
+    info = summary or next((v for v in extras.values() if isinstance(v, dict)), {})
+    title = info.get("title") or info.get("study") or "Tolerance analysis"
+    doc.append(Block("h1", f"Tolerance report: {title}"))
+    if summary:
+        doc.append(Block("p", f"Study {summary.get('study', '-')}, stage "
+                              f"{summary.get('stage', '-')}, "
+                              f"{format_number(summary.get('samples'))} samples "
+                              f"({summary.get('sampler', '-')} sampler, seed "
+                              f"{format_number(summary.get('seed'))})."))
+        doc.extend(_summary_blocks(summary))
+    else:
+        doc.append(Block("p", f"Study {info.get('study', '-')}; analysis files: "
+                              f"{', '.join(extras)}."))
+
+    for fname, section in EXTRA_FILES.items():
+        if fname in extras:
+            doc.append(Block("h2", f"{section} ({fname})"))
+            doc.extend(generic_blocks(extras[fname]))
+
+    if figures:
+        doc.append(Block("h2", "Plots"))
+        for rel, data, caption in figures:
+            doc.append(Block("figure", caption, path=rel, data=data))
+
+    doc.append(Block("h2", "Caution"))
+    doc.append(Block("note", SAFETY))
+    doc.append(Block("h2", "Reproducibility"))
+    doc.append(Block("p", "Re-running the study file with this seed, sample count and sampler "
+                          "reproduces every counted figure; the command \"tolerance report\" on "
+                          "this folder reproduces this report."))
+    doc.append(Block("table", table=_stamp(summary, extras)))
+    return doc
+
+
+# --- renderers ------------------------------------------------------------------------------------
+
+_CSS = """
+:root { --ink: #1a1a1a; --rule: #8a8a8a; --soft: #f2f2f2; }
+* { box-sizing: border-box; }
+body { margin: 0; color: var(--ink); background: #fff;
+       font: 15px/1.45 system-ui, -apple-system, "Segoe UI", Roboto, Helvetica, Arial, sans-serif; }
+main { max-width: 1100px; margin: 0 auto; padding: 1.5rem 1.25rem 3rem; }
+h1 { font-size: 1.6rem; margin: 0 0 .4rem; }
+h2 { font-size: 1.2rem; margin: 2rem 0 .6rem; padding-bottom: .2rem;
+     border-bottom: 2px solid var(--ink); }
+h3 { font-size: 1.02rem; margin: 1.2rem 0 .4rem; }
+.table-wrap { overflow-x: auto; margin: .5rem 0 1rem; }
+table { border-collapse: collapse; font-size: .88rem; font-variant-numeric: tabular-nums; }
+caption { text-align: left; font-weight: 600; padding: .2rem 0; }
+th, td { border: 1px solid var(--rule); padding: .25rem .5rem; text-align: left;
+         vertical-align: top; }
+th { background: var(--soft); }
+td.v-pass { font-weight: 700; }
+td.v-fail { font-weight: 700; text-decoration: underline; background: #fde2dd; }
+td.v-undecided { font-weight: 700; font-style: italic; background: #fff3cd; }
+.verdict { font-size: 1.35rem; font-weight: 800; padding: .5rem .8rem; border: 3px solid var(--ink);
+           display: inline-block; margin: .3rem 0 .6rem; }
+.verdict.v-fail { border-style: double; background: #fde2dd; }
+.verdict.v-undecided { border-style: dashed; background: #fff3cd; }
+.verdict.v-pass { background: #e3f1e3; }
+.note { border-left: 5px solid var(--ink); background: var(--soft); padding: .5rem .8rem; }
+figure { margin: 1rem 0; }
+figure img { max-width: 100%; height: auto; border: 1px solid var(--rule); }
+figcaption { font-size: .85rem; }
+@media print {
+  body { font-size: 10pt; }
+  main { max-width: none; padding: 0; }
+  h2 { break-after: avoid; page-break-after: avoid; }
+  table, figure, .verdict, .note { break-inside: avoid; page-break-inside: avoid; }
+  thead { display: table-header-group; }
+  .table-wrap { overflow: visible; }
+  td.v-fail, td.v-undecided, .verdict, .note { -webkit-print-color-adjust: exact;
+                                                print-color-adjust: exact; }
+  figure img { max-width: 16cm; }
+}
+""".strip()
+
+
+def _e(text) -> str:
+    return html.escape(str(text), quote=True)
+
+
+def _html_table(t: Table) -> str:
+    attr = f' id="{_e(t.table_id)}"' if t.table_id else ""
+    parts = [f'<div class="table-wrap"><table{attr}>']
+    if t.caption:
+        parts.append(f"<caption>{_e(t.caption)}</caption>")
+    parts.append("<thead><tr>" + "".join(f'<th scope="col">{_e(h)}</th>' for h in t.header)
+                 + "</tr></thead><tbody>")
+    for i, row in enumerate(t.rows):
+        cls = t.classes[i] if i < len(t.classes) else []
+        cells = []
+        for j, cell in enumerate(row):
+            c = cls[j] if j < len(cls) and cls[j] else ""
+            cells.append(f'<td class="{_e(c)}">{_e(cell)}</td>' if c else f"<td>{_e(cell)}</td>")
+        parts.append("<tr>" + "".join(cells) + "</tr>")
+    parts.append("</tbody></table></div>")
+    return "".join(parts)
+
+
+def render_html(doc: list[Block], title: str) -> str:
+    """Self-contained HTML page: inline CSS, images as data URIs, no scripts, no fonts."""
+    out = ["<!DOCTYPE html>", '<html lang="en">', "<head>", '<meta charset="utf-8">',
+           '<meta name="viewport" content="width=device-width, initial-scale=1">',
+           f"<title>{_e(title)}</title>", f"<style>\n{_CSS}\n</style>", "</head>", "<body>",
+           "<main>"]
+    for b in doc:
+        if b.kind in ("h1", "h2", "h3"):
+            out.append(f"<{b.kind}>{_e(b.text)}</{b.kind}>")
+        elif b.kind == "p":
+            out.append(f"<p>{_e(b.text)}</p>")
+        elif b.kind == "note":
+            out.append(f'<p class="note">{_e(b.text)}</p>')
+        elif b.kind == "verdict":
+            out.append(f'<p id="overall-verdict" class="verdict v-{_e(b.extra.get("verdict"))}">'
+                       f"{_e(b.text)}</p>")
+        elif b.kind == "table":
+            out.append(_html_table(b.table))
+        elif b.kind == "figure":
+            uri = "data:image/png;base64," + base64.b64encode(b.data).decode("ascii")
+            out.append(f'<figure><img src="{uri}" alt="{_e(b.text)}">'
+                       f"<figcaption>{_e(b.text)} ({_e(b.path)})</figcaption></figure>")
+    out += ["</main>", "</body>", "</html>", ""]
+    return "\n".join(out)
+
+
+_MD_SPECIAL = re.compile(r"([\\`*|<>\[\]])")
+
+
+def _md_escape(text: str) -> str:
+    """Backslash-escape Markdown's active characters (and the table pipe); one line."""
+    return _MD_SPECIAL.sub(r"\\\1", str(text)).replace("\n", " ")
+
+
+def _md_table(t: Table) -> str:
+    lines = []
+    if t.caption:
+        lines.append(f"*{_md_escape(t.caption)}*")
+        lines.append("")
+    lines.append("| " + " | ".join(_md_escape(h) for h in t.header) + " |")
+    lines.append("|" + "|".join("---" for _ in t.header) + "|")
+    for row in t.rows:
+        lines.append("| " + " | ".join(_md_escape(c) for c in row) + " |")
+    return "\n".join(lines)
+
+
+def render_markdown(doc: list[Block]) -> str:
+    """Markdown twin of the HTML page; figures are linked from ``plots/``."""
+    out: list[str] = []
+    for b in doc:
+        text = _md_escape(b.text)
+        if b.kind == "h1":
+            out.append(f"# {text}")
+        elif b.kind == "h2":
+            out.append(f"## {text}")
+        elif b.kind == "h3":
+            out.append(f"### {text}")
+        elif b.kind == "p":
+            out.append(text)
+        elif b.kind == "note":
+            out.append(f"> {text}")
+        elif b.kind == "verdict":
+            out.append(f"**{text}**")
+        elif b.kind == "table":
+            out.append(_md_table(b.table))
+        elif b.kind == "figure":
+            out.append(f"![{text}]({b.path})")
+        out.append("")
+    return "\n".join(out).rstrip("\n") + "\n"
+
+
+def write_reports(folder) -> dict:
+    """Write plots, report.html and report.md for a finished run or analysis folder.
+
+    Parameters
+    ----------
+    folder : path-like
+        Result folder. A Monte Carlo run holds summary.json and samples.parquet (chunk
+        files); any of sensitivity.json, worstcase.json, whatif.json (with
+        whatif_samples.parquet) and choose.json present is rendered as tables, plus ECDF
+        overlays for a what-if and a yield map / trade-off frontier for a value choice.
+
+    Returns
+    -------
+    dict
+        ``{"html": Path, "md": Path, "plots": [Path, ...]}``; the plots lie in
+        ``folder/plots``.
+
+    Raises
+    ------
+    FileNotFoundError
+        When the folder holds neither summary.json nor an analysis file, or summary.json
+        without its samples.
+    """
+    folder = Path(folder)
+    summary_path = folder / SUMMARY_FILE
+    extras = {name: _read_json(folder / name) for name in EXTRA_FILES
+              if (folder / name).is_file()}
+    summary = _read_json(summary_path) if summary_path.is_file() else None
+    if summary is None and not extras:
+        raise FileNotFoundError(f"{folder}: holds neither {SUMMARY_FILE} nor an analysis file "
+                                f"({', '.join(EXTRA_FILES)}); run the study first")
+    if summary is not None and not runner.chunk_files(folder / SAMPLES_DIR):
+        raise FileNotFoundError(f"{folder / SAMPLES_DIR}: no sample files next to "
+                                f"{SUMMARY_FILE}; run the study again")
+    plot_dir = folder / PLOTS_DIR
+    plot_dir.mkdir(exist_ok=True)
+    _remove_stale_plots(plot_dir)
+    made: list[tuple[Path, str]] = []
+    if summary is not None:
+        made += _run_plots(folder, summary, extras, plot_dir)
+    if "whatif.json" in extras:
+        made += _whatif_plots(folder, extras["whatif.json"], summary, plot_dir)
+    if "choose.json" in extras:
+        made += _choose_plots(extras["choose.json"], plot_dir)
+    figures = [(f"{PLOTS_DIR}/{p.name}", p.read_bytes(), caption) for p, caption in made]
+    doc = build_document(summary, extras, figures)
+    title = doc[0].text
+    html_path, md_path = folder / HTML_FILE, folder / MD_FILE
+    html_path.write_text(render_html(doc, title), encoding="utf-8", newline="\n")
+    md_path.write_text(render_markdown(doc), encoding="utf-8", newline="\n")
+    return {"html": html_path, "md": md_path, "plots": [p for p, _ in made]}
