@@ -215,7 +215,7 @@ class Reader:
         if allow_tolerance_key and not isinstance(raw, dict) and (
             self.has("tolerance") or self.has("distribution") or self.has("sigmas")
         ):
-            spec = {"nominal": raw}
+            spec = {name: raw}
             for extra in ("tolerance", "distribution", "sigmas"):
                 if self.has(extra):
                     spec[extra] = self._get(extra, _MISSING)
