@@ -401,13 +401,19 @@ def cmd_parts(args) -> int:
     from tolerance.models import parts
 
     w = sys.stdout.write
-    for kind, entries in parts.library_table().items():
-        w(f"{kind}\n")
-        for name, figures in entries.items():
-            w(f"  {name}: {figures.pop('description', '')}\n")
-            for key, value in figures.items():
-                w(f"      {key:<24} {value}\n")
-        w("\n")
+    w("Part library (typical class values, from memory: enter your part's own datasheet "
+      "figures before relying on a result)\n")
+    for name, entry in parts.library().items():
+        w(f"\n{name}  [{entry.kind}, {entry.package}]  {entry.description}\n")
+        for key, value in entry.text.items():
+            if key in ("kind", "description", "package"):
+                continue
+            if isinstance(value, dict):
+                w(f"    {key}:\n")
+                for k2, v2 in value.items():
+                    w(f"        {k2:<22} {v2}\n")
+            else:
+                w(f"    {key:<26} {value}\n")
     return 0
 
 

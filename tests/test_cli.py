@@ -1,0 +1,165 @@
+"""Command line: the demo, exit statuses, --jobs invariance, and malformed studies refused
+clearly (exit 2, the key path in the message, no traceback, nothing written)."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from tolerance.api import demo_text
+from tolerance.cli import main
+from tolerance.summary import comparable
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMO = demo_text()
+
+
+def _study(tmp_path, text, name="bad.toml"):
+    path = tmp_path / name
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def _replace(old: str, new: str) -> str:
+    assert old in DEMO, old
+    return DEMO.replace(old, new, 1)
+
+
+# (description, study text, key path expected in the message, extra text expected)
+MALFORMED = [
+    ("unknown top-level key", "stagee = 1\n" + DEMO, "stagee", "unknown key"),
+    ("misspelt stage", _replace('stage = "single"', 'stage = "singel"'), "stage",
+     "did you mean 'single'"),
+    ("resistance in volts", _replace('value = "150R"', 'value = "150 V"'), "parts.RB.value",
+     "resistance"),
+    ("negative resistance", _replace('value = "150R"', 'value = "-150R"'), "parts.RB.value",
+     ""),
+    ("double percent tolerance", _replace('tolerance = "5%"\ntempco', 'tolerance = "5 %%"\ntempco'),
+     "parts.RB.tolerance", "not a tolerance"),
+    ("tolerance of 100 %", _replace('tolerance = "5%"\ntempco', 'tolerance = "100%"\ntempco'),
+     "parts.RB.tolerance", "100 %"),
+    ("min above max", _replace('{min = "-20 degC", max = "55 degC"}',
+                               '{min = "85 degC", max = "-20 degC"}'),
+     "ambient.temperature.min", "above max"),
+    ("NaN value", _replace('value = "150R"', "value = nan"), "parts.RB.value", ""),
+    ("infinite supply", _replace('voltage = {nominal = "12 V", tolerance = "10%", '
+                                 'distribution = "uniform"}', "voltage = inf"),
+     "supply.voltage", ""),
+    ("zero samples", _replace("samples = 20000", "samples = 0"), "run.samples", "at least 1"),
+    ("misspelt sampler", _replace('sampler = "lhs"', 'sampler = "sobel"'), "run.sampler",
+     "did you mean 'sobol'"),
+    ("misspelt limit metric", _replace("drive_margin = {min = 1.2", "drive_margn = {min = 1.2"),
+     "limits.drive_margn", "did you mean 'drive_margin'"),
+    ("limit in wrong unit", _replace('vce_on = {max = "0.4 V"}', 'vce_on = {max = "0.4 ohm"}'),
+     "limits.vce_on.max", "voltage"),
+    ("misspelt load kind", _replace('kind = "resistor"', 'kind = "resistr"'), "load.kind",
+     "did you mean 'resistor'"),
+    ("unknown key in a part", _replace('device = "medium_power_npn"',
+                                       'device = "medium_power_npn"\nhfe_mn = 30'),
+     "parts.Q1.hfe_mn", "unknown key"),
+    ("unknown device class", _replace('device = "medium_power_npn"', 'device = "mega_npn"'),
+     "parts.Q1.device", "mega_npn"),
+    ("gain minimum above maximum", _replace('device = "medium_power_npn"',
+                                            'device = "medium_power_npn"\nhfe_min = 300\n'
+                                            'hfe_max = 100'), "parts.Q1", "hfe"),
+    ("missing load", DEMO[:DEMO.index("[load]")] + DEMO[DEMO.index("[limits]"):], "load",
+     "required"),
+    ("correlation coefficient out of range", DEMO + '\n[[correlation]]\nparameters = ["RB", '
+     '"RPD"]\ncoefficient = 1.2\n', "correlation[0].coefficient", "between -1 and 1"),
+    ("string where a table is needed", 'ambient = "hot"\n' + _replace(
+        '[ambient]\ntemperature = {min = "-20 degC", max = "55 degC"}', ""), "ambient", "table"),
+    ("invalid TOML", DEMO + "\nthis is not toml\n", "", "not valid TOML"),
+    ("negative leakage", _replace('device = "medium_power_npn"',
+                                  'device = "medium_power_npn"\nicbo_max = "-1 nA"'),
+     "parts.Q1", "icbo"),
+]
+
+
+@pytest.mark.parametrize("name,text,key,extra", MALFORMED, ids=[m[0] for m in MALFORMED])
+def test_malformed_study_is_refused(tmp_path, capsys, name, text, key, extra):
+    path = _study(tmp_path, text)
+    out = tmp_path / "out"
+    code = main(["run", str(path), "--out", str(out), "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 2, err
+    assert str(path) in err
+    assert key in err
+    assert extra.lower() in err.lower()
+    assert "Traceback" not in err
+    assert not out.exists()
+
+
+def test_malformed_study_through_a_real_process(tmp_path):
+    path = _study(tmp_path, _replace('value = "150R"', 'value = "150 V"'))
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    proc = subprocess.run([sys.executable, "-m", "tolerance", "run", str(path), "--out",
+                           str(tmp_path / "o")], capture_output=True, text=True, env=env,
+                          timeout=120)
+    assert proc.returncode == 2
+    assert "parts.RB.value" in proc.stderr and "Traceback" not in proc.stderr
+    assert not (tmp_path / "o").exists()
+
+
+def test_bad_option_values_exit_2(tmp_path, capsys):
+    for argv in (["run", "--samples", "0"], ["run", "--sampler", "grid"],
+                 ["run", "--jobs", "-1"], ["whatif", "--pin", "Q9.hfe=min"],
+                 ["choose", "--vary", "RB=E25:100..1k"], ["report", str(tmp_path)]):
+        with pytest.raises(SystemExit) as exc:
+            code = main(argv + ["--out", str(tmp_path / "o")] if argv[0] != "report" else argv)
+            raise SystemExit(code)
+        assert exc.value.code == 2, argv
+        assert "Traceback" not in capsys.readouterr().err
+
+
+def test_demo_runs_and_jobs_do_not_change_the_summary(tmp_path, capsys):
+    a, b = tmp_path / "a", tmp_path / "b"
+    assert main(["run", "--samples", "3000", "--out", str(a), "--jobs", "1"]) == 0
+    assert "verdict: PASS" in capsys.readouterr().out
+    assert main(["run", "--samples", "3000", "--out", str(b), "--jobs", "2",
+                 "--chunk-size", "700", "--quiet"]) == 0
+    out = capsys.readouterr().out
+    sa = json.loads((a / "summary.json").read_text())
+    sb = json.loads((b / "summary.json").read_text())
+    assert comparable(sa) == comparable(sb)
+    for key in ("tool_version", "study", "study_hash", "seed", "samples", "sampler", "yield",
+                "criteria", "metrics", "not_converged", "saturation_failure_rate"):
+        assert key in sa
+    assert {"estimate", "ci_low", "ci_high", "confidence"} <= set(sa["yield"])
+    assert {"unit", "mean", "std", "min", "max", "p001", "p50", "p999"} <= set(
+        sa["metrics"]["drive_margin"])
+    assert (a / "samples.parquet").is_dir() and (a / "report.html").is_file()
+    assert out == ""  # --quiet printed nothing
+
+
+def test_failing_limit_exits_1(tmp_path, capsys):
+    path = _study(tmp_path, _replace("drive_margin = {min = 1.2", "drive_margin = {min = 4"))
+    assert main(["run", str(path), "--samples", "500", "--out", str(tmp_path / "o"),
+                 "--quiet"]) == 1
+
+
+def test_check_prints_parameter_table(capsys):
+    assert main(["check"]) == 0
+    out = capsys.readouterr().out
+    for name in ("RB", "Q1.hfe", "supply.voltage", "ambient.temperature", "saturation"):
+        assert name in out
+
+
+def test_parts_lists_the_library(capsys):
+    assert main(["parts"]) == 0
+    out = capsys.readouterr().out
+    for name in ("small_signal_npn", "small_signal_pnp", "medium_power_npn", "power_npn",
+                 "monolithic_darlington"):
+        assert name in out
+
+
+def test_default_output_folder_is_never_overwritten(tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    assert main(["run", "--samples", "200", "--quiet"]) == 0
+    assert main(["run", "--samples", "200", "--quiet"]) == 0
+    assert (tmp_path / "results" / "demo" / "summary.json").is_file()
+    assert (tmp_path / "results" / "demo-2" / "summary.json").is_file()
