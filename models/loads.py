@@ -34,7 +34,11 @@ from __future__ import annotations
 
 import abc
 import copy
+import difflib
+import functools
 import math
+import tomllib
+from importlib import resources
 
 import numpy as np
 from scipy import special
@@ -625,6 +629,7 @@ def read_load(reader: Reader) -> LoadSpec:
       typical class value, from memory], forward_voltage_tempco [V/K per LED, default
       -2 mV/K, from memory], series_resistance*.
     """
+    reader = _with_library_part(reader)
     kind = reader.string("kind", choices=KINDS)
     if kind == "resistor":
         names = [_param(reader, "resistance", "ohm", "load resistance at 25 degC")]
@@ -672,3 +677,48 @@ def read_load(reader: Reader) -> LoadSpec:
     tempco = _voltage_tempco(reader, "forward_voltage_tempco", -2e-3)
     names.append(_param(reader, "series_resistance", "ohm", "LED string series resistor"))
     return LedLoad(names, count, test_current, ideality, tempco)
+
+
+# --- load library -----------------------------------------------------------------------------
+
+LIBRARY_KEYS = ("description",)
+
+
+@functools.lru_cache(maxsize=1)
+def load_library() -> dict[str, dict]:
+    """Load classes of the part library (``models/parts/loads/*.toml``), by name.
+
+    Each entry is the data file's table: ``kind``, ``description`` and the kind's keys in the
+    same forms a study uses (typical class values, from memory).
+    """
+    folder = resources.files("tolerance.models").joinpath("parts", "loads")
+    out = {}
+    for item in sorted(folder.iterdir(), key=lambda p: p.name):
+        if item.name.endswith(".toml"):
+            out[item.name[: -len(".toml")]] = tomllib.loads(item.read_text(encoding="utf-8"))
+    return out
+
+
+def _with_library_part(reader: Reader) -> Reader:
+    """``[load] part = "<name>"``: the library class's keys, overridden by the study's own.
+
+    Returns a reader over the merged table (same key path), so unknown keys are still reported
+    and every error names the study's key.
+    """
+    if not reader.has("part"):
+        return reader
+    name = reader.string("part")
+    lib = load_library()
+    if name not in lib:
+        close = difflib.get_close_matches(name, list(lib), n=1, cutoff=0.5)
+        hint = f"; did you mean '{close[0]}'?" if close else ""
+        raise reader.error("part", f"'{name}' is not a load of the part library (see "
+                                   f"'tolerance parts'){hint}")
+    entry = {k: v for k, v in lib[name].items() if k not in LIBRARY_KEYS}
+    own = {k: reader._data[k] for k in reader.keys() if k != "part"}  # noqa: SLF001
+    if "kind" in own and own["kind"] != entry["kind"]:
+        raise reader.error("kind", f"'{own['kind']}' contradicts the part '{name}', a "
+                                   f"{entry['kind']}")
+    for k in own:
+        reader.ignore(k)
+    return Reader({**entry, **own}, reader.path, reader._ctx)  # noqa: SLF001

@@ -414,6 +414,14 @@ def cmd_parts(args) -> int:
                     w(f"        {k2:<22} {v2}\n")
             else:
                 w(f"    {key:<26} {value}\n")
+    from tolerance.models.loads import load_library
+
+    w("\nLoads (use as [load] part = \"NAME\"; any key can be overridden)\n")
+    for name, entry in load_library().items():
+        w(f"\n{name}  [{entry['kind']}]  {entry.get('description', '')}\n")
+        for key, value in entry.items():
+            if key not in ("kind", "description"):
+                w(f"    {key:<26} {value}\n")
     return 0
 
 

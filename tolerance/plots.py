@@ -201,7 +201,9 @@ def histogram(samples: pd.DataFrame, metric: str, summary: dict) -> Figure:
         ax.set_ylabel("samples")
         ax_cdf.set_ylabel("cumulative fraction")
         ax_cdf.set_ylim(0.0, 1.02)
-        description = info.get("description")
+        description = info.get("description") or ""
+        if len(description) > 60:  # long meanings live in the report's metrics table
+            description = description[:57].rstrip() + "..."
         ax_cdf.set_xlabel(metric + (f" ({description})" if description else ""))
         ax_cdf.xaxis.set_major_formatter(_unit_formatter(unit))
         lines = []
