@@ -20,6 +20,9 @@ from tolerance.study import Study
 
 #: rows used for rank sensitivities in a run summary (ranks of very long runs add nothing)
 SENSITIVITY_ROWS = 200_000
+#: rows used for capability, tail estimates and failure drivers: the first million samples
+#: (counted rates and percentiles always use every sample; this keeps memory flat)
+INSIGHT_ROWS = 1_000_000
 
 
 def model_for(study: Study):
@@ -99,19 +102,22 @@ def insights(study: Study, column) -> dict:
 
     units = {p.name: p.unit for p in study.parameters}
     drivers, capability, tail = {}, {}, {}
-    converged = column("converged").astype(bool)
+    head = slice(0, min(n, INSIGHT_ROWS))
+    converged = column("converged")[head].astype(bool)
     all_inputs = None
     for c in study.criteria:
-        values = column(c.metric)
-        cap = stats.capability(values[converged], c.minimum, c.maximum)
-        capability[c.name] = cap
-        tail[c.name] = stats.tail_estimate(_margin(values[converged], c.minimum, c.maximum))
-        failed = converged & ~column(f"pass.{c.name}").astype(bool)
+        values = column(c.metric)[head][converged]
+        capability[c.name] = stats.capability(values, c.minimum, c.maximum)
+        tail[c.name] = stats.tail_estimate(_margin(values, c.minimum, c.maximum))
+        del values
+        failed = converged & ~column(f"pass.{c.name}")[head].astype(bool)
         if failed.any() and varying:
             if all_inputs is None:
-                all_inputs = pd.DataFrame({p.name: column(p.name)[converged] for p in varying})
+                all_inputs = pd.DataFrame({p.name: column(p.name)[head][converged]
+                                           for p in varying})
             drivers[c.name] = sensitivity.failure_drivers(all_inputs, failed[converged], units)
     result["failure_drivers"] = drivers
+    result["insight_rows"] = min(n, INSIGHT_ROWS)
     result["capability"] = capability
     result["tail"] = tail
     return result
@@ -164,8 +170,10 @@ def study_worst_case(study: Study, samples: int, seed: int) -> dict:
     mc = {m: {k: res.summary["metrics"][m][k] for k in ("min", "max", "p001", "p999")}
           for m in study.stage.metrics}
     bounds = bounds_for(study)
+    limited = list(dict.fromkeys(c.metric for c in study.criteria))
     table = worstcase.worst_case_table(model_for(study), bounds, list(study.stage.metrics),
-                                       mc_extremes=mc, seed=seed)
+                                       mc_extremes=mc, seed=seed, optimize_metrics=limited,
+                                       starts=4, maxiter=100)
     evaluations = table.pop("evaluations")
     return {
         "study": study.path, "study_hash": study.study_hash, "seed": seed,
@@ -175,6 +183,7 @@ def study_worst_case(study: Study, samples: int, seed: int) -> dict:
         "units": {m: i.unit for m, i in study.stage.metrics.items()},
         "metrics": table,
         "evaluations": int(evaluations) + samples,
+        "optimized_metrics": limited,
         "criteria": [{"name": c.name, "metric": c.metric, "min": c.minimum, "max": c.maximum}
                      for c in study.criteria],
     }

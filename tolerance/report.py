@@ -346,6 +346,10 @@ def _remove_stale_plots(plot_dir: Path) -> None:
             stale.unlink()
 
 
+#: most samples a plot draws (memory stays flat for long runs)
+PLOT_ROWS = 500_000
+
+
 def _run_plots(folder: Path, summary: dict, extras: dict,
                plot_dir: Path) -> list[tuple[Path, str]]:
     """Histograms, tornado charts and driver scatters of a Monte Carlo run."""
@@ -354,8 +358,12 @@ def _run_plots(folder: Path, summary: dict, extras: dict,
     columns: dict[str, np.ndarray] = {}
 
     def col(name):
+        # plots draw at most PLOT_ROWS evenly spaced samples (every k-th); the counted rates
+        # in their titles come from the summary, which used every sample
         if name not in columns:
-            columns[name] = runner.read_column(samples_dir, name)
+            full = runner.read_column(samples_dir, name)
+            step = max(1, -(-len(full) // PLOT_ROWS))
+            columns[name] = full[::step].copy() if step > 1 else full
         return columns[name]
 
     criteria = summary.get("criteria", {})

@@ -1,0 +1,252 @@
+"""Benchmark: samples per second per stage and analysis, peak memory, the ratio against the
+per-sample scipy reference, and the speed-up from one to two workers.
+
+Not part of the pytest run (timings on shared machines are noisy; no test asserts a speed).
+
+    python tests/benchmarks/run.py [--json FILE] [--quick]
+
+Prints one table with the targets beside the figures and writes the figures as JSON.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "tests"))
+
+from tolerance.api import load_study, run  # noqa: E402
+from tolerance.sampling import draw  # noqa: E402
+
+#: one study per stage (the first study in studies/ of that stage is used)
+TARGETS = {
+    "dc_darlington": 300_000,       # samples/s of the Darlington DC evaluation
+    "full": 10_000,                 # samples/s of the full evaluation (DC + transient + thermal)
+    "reference_ratio": 500,         # vectorized / per-sample reference, at equal accuracy
+    "two_workers": 1.7,             # speed-up from 1 to 2 workers
+    "peak_memory_mb": 1500,         # 10-million-sample DC run
+}
+
+
+def studies_by_stage() -> dict[str, Path]:
+    out: dict[str, Path] = {}
+    for path in sorted((ROOT / "studies").glob("*.toml")):
+        study = load_study(path)
+        out.setdefault(study.stage_name, path)
+    return out
+
+
+def best_of(fn, repeat: int = 3) -> float:
+    best = float("inf")
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t0)
+    return best
+
+
+def stage_figures(study, n: int) -> dict:
+    """DC (and full, when the stage has more than DC) samples/s of stage.evaluate."""
+    _, values = draw(study.parameters, None, "random", 3, n, 0, n)
+    dt = best_of(lambda: study.stage.evaluate(values))
+    out = study.stage.evaluate(values)
+    conv = float(np.mean(out["converged"]))
+    figures = {"dc_samples_per_s": n / dt, "converged_fraction": conv, "samples": n}
+    evaluate_full = getattr(study.stage, "evaluate_full", None)
+    if evaluate_full is not None:
+        m = max(n // 10, 1000)
+        _, v2 = draw(study.parameters, None, "random", 3, m, 0, m)
+        dt_full = best_of(lambda: evaluate_full(v2), repeat=1)
+        figures["full_samples_per_s"] = m / dt_full
+    return figures
+
+
+def reference_figures(study, stage_name: str, k: int = 100) -> dict | None:
+    """Per-sample scipy reference on the same samples; rate ratio and agreement."""
+    try:
+        import test_stages  # the per-sample references live beside the stage tests
+    except ImportError:
+        return None
+    ref = getattr(test_stages, f"reference_{stage_name}", None)
+    if ref is None:
+        return None
+    _, values = draw(study.parameters, None, "random", 5, k, 0, k)
+    vec = study.stage.evaluate(values)
+    def one(i):
+        try:
+            return ref(study.stage, values, i)
+        except (TypeError, ValueError):  # the reference's root finder found no solution
+            return None
+
+    t0 = time.perf_counter()
+    refs = [one(i) for i in range(k)]
+    dt_ref = time.perf_counter() - t0
+    n = 100_000
+    _, big = draw(study.parameters, None, "random", 5, n, 0, n)
+    dt_vec = best_of(lambda: study.stage.evaluate(big))
+    worst = 0.0
+    for i, r in enumerate(refs):
+        if r is None:
+            continue
+        for key, value in r.items():
+            if key in vec and np.isfinite(vec[key][i]) and abs(value) > 1e-12:
+                worst = max(worst, abs(vec[key][i] - value) / abs(value))
+    return {"reference_samples_per_s": k / dt_ref, "vectorized_samples_per_s": n / dt_vec,
+            "ratio": (n / dt_vec) / (k / dt_ref), "max_relative_difference": worst,
+            "reference_samples": k, "reference_failures": sum(r is None for r in refs)}
+
+
+def analysis_figures(path: Path, n: int) -> dict:
+    from tolerance.analysis import study_sensitivity, study_worst_case
+    from tolerance.choose import choose
+    from tolerance.whatif import whatif
+
+    study = load_study(path)
+    out = {}
+    t0 = time.perf_counter()
+    run(study, samples=n)
+    out["run_with_insights"] = {"seconds": time.perf_counter() - t0, "evaluations": n}
+    hfe = next((p.name for p in study.parameters if p.name.endswith(".hfe")), None)
+    if hfe:
+        t0 = time.perf_counter()
+        res, _, _ = whatif(study, [f"{hfe}=min"], samples=n)
+        out["whatif"] = {"seconds": time.perf_counter() - t0, "evaluations": res["evaluations"]}
+    t0 = time.perf_counter()
+    res = study_worst_case(study, n, 1)
+    out["worstcase"] = {"seconds": time.perf_counter() - t0, "evaluations": res["evaluations"]}
+    t0 = time.perf_counter()
+    res = study_sensitivity(study, n, 1, 1024, bootstrap=100)
+    out["sensitivity"] = {"seconds": time.perf_counter() - t0, "evaluations": res["evaluations"]}
+    if "RB" in study.parameter_names:
+        t0 = time.perf_counter()
+        nominal = study.parameter("RB").nominal
+        res = choose(study, [f"RB=E12:{nominal / 2:g}..{nominal * 2:g}"], samples=n // 4)
+        out["choose"] = {"seconds": time.perf_counter() - t0, "evaluations": res["evaluations"]}
+    for v in out.values():
+        v["evaluations_per_s"] = v["evaluations"] / v["seconds"]
+    return out
+
+
+def worker_figures(path: Path, n: int) -> dict:
+    study = load_study(path)
+    with tempfile.TemporaryDirectory() as tmp:
+        t1 = best_of(lambda: run(study, samples=n, jobs=1, out=Path(tmp) / "a", force=True,
+                                 insights=False), repeat=2)
+        t2 = best_of(lambda: run(study, samples=n, jobs=2, out=Path(tmp) / "b", force=True,
+                                 insights=False), repeat=2)
+    return {"one_worker_s": t1, "two_workers_s": t2, "speedup": t1 / t2, "samples": n}
+
+
+def memory_figures(path: Path, n: int) -> dict:
+    """Peak resident memory of a whole DC run in a child process (one worker)."""
+    with tempfile.TemporaryDirectory() as tmp:
+        code = ("import sys; from tolerance.cli import main; "
+                "sys.exit(main(sys.argv[1:]))")
+        env = dict(os.environ, PYTHONPATH=str(ROOT))
+        t0 = time.perf_counter()
+        proc = subprocess.run([sys.executable, "-c", code, "run", str(path), "--samples",
+                               str(n), "--out", str(Path(tmp) / "big"), "--quiet"], env=env,
+                              capture_output=True, text=True)
+        dt = time.perf_counter() - t0
+        peak_kb = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    if proc.returncode not in (0, 1):
+        raise RuntimeError(proc.stderr[-2000:])
+    return {"samples": n, "peak_memory_mb": peak_kb / 1024, "seconds": dt,
+            "samples_per_s": n / dt}
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--json", help="write the figures to this file")
+    ap.add_argument("--quick", action="store_true", help="smaller runs (a minute or two)")
+    args = ap.parse_args()
+    quick = args.quick
+    n_stage = 50_000 if quick else 200_000
+    figures: dict = {"machine": {"processor": platform.processor() or platform.machine(),
+                                 "cores": os.cpu_count(), "python": platform.python_version(),
+                                 "numpy": np.__version__}, "targets": TARGETS, "stages": {}}
+    paths = studies_by_stage()
+    for stage_name, path in paths.items():
+        study = load_study(path)
+        entry = {"study": path.name, **stage_figures(study, n_stage)}
+        ref = reference_figures(study, stage_name)
+        if ref:
+            entry["reference"] = ref
+        figures["stages"][stage_name] = entry
+        print(f"measured {stage_name}", file=sys.stderr)
+    first = paths.get("darlington", next(iter(paths.values())))
+    figures["analyses"] = analysis_figures(first, 5_000 if quick else 20_000)
+    figures["workers"] = worker_figures(first, 100_000 if quick else 400_000)
+    figures["memory"] = memory_figures(first, 500_000 if quick else 10_000_000)
+
+    print_table(figures)
+    if args.json:
+        Path(args.json).write_text(json.dumps(figures, indent=2) + "\n")
+    return 0
+
+
+def _met(value, target, larger_is_better=True) -> str:
+    if value is None:
+        return "n/a"
+    ok = value >= target if larger_is_better else value <= target
+    return "met" if ok else "NOT met"
+
+
+def print_table(f: dict) -> None:
+    w = sys.stdout.write
+    m = f["machine"]
+    w(f"\nmachine: {m['processor']}, {m['cores']} cores, Python {m['python']}, "
+      f"numpy {m['numpy']}\n\n")
+    w(f"{'stage':<12} {'DC samples/s':>14} {'full samples/s':>15} {'reference/s':>12} "
+      f"{'ratio':>8} {'max rel diff':>13}\n")
+    for name, s in f["stages"].items():
+        ref = s.get("reference", {})
+        w(f"{name:<12} {s['dc_samples_per_s']:>14,.0f} "
+          f"{s.get('full_samples_per_s', float('nan')):>15,.0f} "
+          f"{ref.get('reference_samples_per_s', float('nan')):>12,.1f} "
+          f"{ref.get('ratio', float('nan')):>8,.0f} "
+          f"{ref.get('max_relative_difference', float('nan')):>13.2e}\n")
+    w(f"\n{'analysis':<20} {'seconds':>9} {'evaluations':>12} {'evaluations/s':>14}\n")
+    for name, a in f["analyses"].items():
+        w(f"{name:<20} {a['seconds']:>9.2f} {a['evaluations']:>12,} "
+          f"{a['evaluations_per_s']:>14,.0f}\n")
+    wk, mem = f["workers"], f["memory"]
+    w(f"\nworkers: 1 -> {wk['one_worker_s']:.2f} s, 2 -> {wk['two_workers_s']:.2f} s for "
+      f"{wk['samples']:,} samples: speed-up {wk['speedup']:.2f}\n")
+    w(f"memory: {mem['samples']:,}-sample run, peak {mem['peak_memory_mb']:.0f} MB, "
+      f"{mem['seconds']:.0f} s\n\n")
+    t = f["targets"]
+    darl = f["stages"].get("darlington", {})
+    fulls = [s.get("full_samples_per_s") for s in f["stages"].values()
+             if s.get("full_samples_per_s") is not None]
+    ratios = [s["reference"]["ratio"] for s in f["stages"].values() if "reference" in s]
+    rows = [
+        ("Darlington DC >= 300,000 samples/s", darl.get("dc_samples_per_s"),
+         t["dc_darlington"], True),
+        ("full evaluation >= 10,000 samples/s", min(fulls) if fulls else None, t["full"], True),
+        (">= 500x the per-sample reference", min(ratios) if ratios else None,
+         t["reference_ratio"], True),
+        ("2 workers >= 1.7x one", wk["speedup"], t["two_workers"], True),
+        ("10M-sample DC run < 1.5 GB", mem["peak_memory_mb"] if mem["samples"] >= 10_000_000
+         else None, t["peak_memory_mb"], False),
+    ]
+    w(f"{'target':<40} {'measured':>14}  verdict\n")
+    for label, value, target, larger in rows:
+        shown = "-" if value is None else f"{value:,.1f}"
+        w(f"{label:<40} {shown:>14}  {_met(value, target, larger)}\n")
+
+
+if __name__ == "__main__":
+    sys.exit(main())
