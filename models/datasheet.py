@@ -1,0 +1,691 @@
+"""From datasheet figures to consistent Gummel-Poon parameters.
+
+An engineer enters what a transistor datasheet states: current gain h_FE (min / typ / max) at a
+test current and V_CE, optionally h_FE at a high current (the fall-off) and at a low current (the
+roll-off), V_CE(sat) at a stated I_C / I_B, V_BE(sat) there, V_BE(on) at a current, I_CBO at a
+V_CB, and the ratings (V_(BR)CEO, I_C max, power, T_j max, theta_JA, theta_JC). A few class
+figures that datasheets rarely give (Early voltage, reverse gain, temperature exponent of the
+gain) have typical defaults. :func:`fit_datasheet` derives model parameters that reproduce every
+stated figure; :meth:`FittedDevice.forward_beta_for_hfe` maps a sampled h_FE onto the model's
+ideal forward gain so that the model's h_FE at the test point equals the sample.
+
+Which parameter each figure sets:
+
+========================  ============================  ======================================
+figure                    parameter                     condition (25 degC)
+========================  ============================  ======================================
+vbe_on at its I_C, V_CE   saturation_current            V_BE of the model (at typical h_FE)
+hfe_high_min at its I_C   knee_current                  h_FE(I_high) at h_FE(test) = hfe_min
+hfe_low_min at its I_C    be_leakage_current            h_FE(I_low) at h_FE(test) = hfe_min
+vce_sat_max at I_C, I_B   collector_resistance          V_CE at the forced gain, hfe_min unit
+vbe_sat_max at I_C, I_B   base_resistance               V_BE at the forced gain, hfe_min unit
+hfe at the test point     forward_beta (per sample)     closed form, see forward_beta_for_hfe
+icbo_max at V_CB          cbo_leakage (per sample)      generation term of the model
+========================  ============================  ======================================
+
+The conditions are coupled weakly; they are solved in turn (each a one-dimensional bracketed
+root, ``scipy.optimize.brentq``) and the sweep is repeated until no parameter moves by more
+than 1e-9 relative. The maximum figures (V_CE(sat), V_BE(sat)) are met by the minimum-gain unit
+(the least overdriven one, so the model is conservative for the saturation check), V_BE(on) by
+the typical unit.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field, fields, replace
+
+import numpy as np
+from scipy import optimize
+
+from tolerance.models.newton import newton_solve
+from tolerance.models.transistor import (
+    REFERENCE_TEMPERATURE,
+    TransistorParameters,
+    junction_currents,
+    terminal_offsets,
+)
+
+__all__ = [
+    "CLASS_DEFAULTS",
+    "DATASHEET_FIGURES",
+    "Datasheet",
+    "DatasheetError",
+    "FittedDevice",
+    "fit_datasheet",
+    "model_figures",
+    "hfe_at",
+    "icbo_at",
+    "saturation_at",
+]
+
+
+class DatasheetError(ValueError):
+    """Inconsistent or impossible device data; ``key`` names the offending figure."""
+
+    def __init__(self, key: str, message: str):
+        self.key = key
+        self.message = message
+        super().__init__(f"{key}: {message}")
+
+
+#: Datasheet figures: name -> (unit for tolerance.units, description). Figures marked with a
+#: trailing '*' in the description are required.
+DATASHEET_FIGURES: dict[str, tuple[str, str]] = {
+    "hfe_min": ("1", "minimum DC current gain at the test point*"),
+    "hfe_typ": ("1", "typical DC current gain at the test point"),
+    "hfe_max": ("1", "maximum DC current gain at the test point*"),
+    "hfe_current": ("A", "collector current of the h_FE test point*"),
+    "hfe_vce": ("V", "collector-emitter voltage of the h_FE test point*"),
+    "hfe_high_current": ("A", "high collector current where h_FE has fallen off"),
+    "hfe_high_min": ("1", "minimum h_FE at hfe_high_current"),
+    "hfe_low_current": ("A", "low collector current where h_FE has rolled off"),
+    "hfe_low_min": ("1", "minimum h_FE at hfe_low_current"),
+    "vce_sat_max": ("V", "maximum collector-emitter saturation voltage*"),
+    "vce_sat_ic": ("A", "collector current of the V_CE(sat) figure*"),
+    "vce_sat_ib": ("A", "base current of the V_CE(sat) figure*"),
+    "vbe_sat_max": ("V", "maximum base-emitter voltage at the V_CE(sat) point"),
+    "vbe_on": ("V", "typical base-emitter on voltage*"),
+    "vbe_on_current": ("A", "collector current of the V_BE(on) figure*"),
+    "vbe_on_vce": ("V", "collector-emitter voltage of the V_BE(on) figure*"),
+    "icbo_max": ("A", "maximum collector-base cut-off current at 25 degC*"),
+    "icbo_vcb": ("V", "collector-base voltage of the I_CBO figure*"),
+    "breakdown_vceo": ("V", "collector-emitter breakdown voltage, base open*"),
+    "ic_max": ("A", "maximum continuous collector current*"),
+    "power_rating": ("W", "total dissipation at 25 degC ambient*"),
+    "tj_max": ("temperature", "maximum junction temperature*"),
+    "theta_ja": ("K/W", "thermal resistance junction to ambient*"),
+    "theta_jc": ("K/W", "thermal resistance junction to case"),
+    # class figures, rarely on a datasheet: defaults in CLASS_DEFAULTS
+    "early_voltage": ("V", "forward Early voltage (class figure)"),
+    "reverse_beta": ("1", "reverse current gain (class figure)"),
+    "beta_exponent": ("1", "temperature exponent of the current gain (class figure)"),
+    "emitter_resistance": ("ohm", "emitter series resistance (class figure)"),
+    "leakage_doubling": ("K", "temperature rise that doubles I_CBO"),
+    "icbo_spread": ("1", "ratio of I_CBO max to the lowest I_CBO sampled"),
+}
+
+#: Class figures used when the device entry does not give them (typical class values, from
+#: memory): Early voltage 100 V, reverse gain 4, gain rising as (T/T0)^1.5, no emitter
+#: resistance, I_CBO doubling every 10 K, I_CBO spread over a factor 30 (common practice, no
+#: source).
+CLASS_DEFAULTS: dict[str, float] = {
+    "early_voltage": 100.0,
+    "reverse_beta": 4.0,
+    "beta_exponent": 1.5,
+    "emitter_resistance": 0.0,
+    "leakage_doubling": 10.0,
+    "icbo_spread": 30.0,
+}
+
+REQUIRED = tuple(k for k, (_, d) in DATASHEET_FIGURES.items() if d.endswith("*"))
+
+
+@dataclass(frozen=True)
+class Datasheet:
+    """Figures of one transistor class or part, SI units (temperatures in kelvin).
+
+    ``polarity`` is ``"npn"`` or ``"pnp"``; every other field is named in
+    :data:`DATASHEET_FIGURES`. Optional figures are ``None``.
+    """
+
+    polarity: str
+    hfe_min: float
+    hfe_max: float
+    hfe_current: float
+    hfe_vce: float
+    vce_sat_max: float
+    vce_sat_ic: float
+    vce_sat_ib: float
+    vbe_on: float
+    vbe_on_current: float
+    vbe_on_vce: float
+    icbo_max: float
+    icbo_vcb: float
+    breakdown_vceo: float
+    ic_max: float
+    power_rating: float
+    tj_max: float
+    theta_ja: float
+    hfe_typ: float | None = None
+    hfe_high_current: float | None = None
+    hfe_high_min: float | None = None
+    hfe_low_current: float | None = None
+    hfe_low_min: float | None = None
+    vbe_sat_max: float | None = None
+    theta_jc: float | None = None
+    early_voltage: float = CLASS_DEFAULTS["early_voltage"]
+    reverse_beta: float = CLASS_DEFAULTS["reverse_beta"]
+    beta_exponent: float = CLASS_DEFAULTS["beta_exponent"]
+    emitter_resistance: float = CLASS_DEFAULTS["emitter_resistance"]
+    leakage_doubling: float = CLASS_DEFAULTS["leakage_doubling"]
+    icbo_spread: float = CLASS_DEFAULTS["icbo_spread"]
+
+    @classmethod
+    def from_figures(cls, figures: dict) -> "Datasheet":
+        """Build from a dict of SI values (``polarity`` a string); checks the figures."""
+        names = {f.name for f in fields(cls)}
+        unknown = sorted(set(figures) - names)
+        if unknown:
+            raise DatasheetError(unknown[0], "is not a datasheet figure")
+        if "polarity" not in figures:
+            raise DatasheetError("polarity", "is required (npn or pnp)")
+        missing = [k for k in REQUIRED if figures.get(k) is None]
+        if missing:
+            raise DatasheetError(missing[0], "is required but missing")
+        ds = cls(**{k: v for k, v in figures.items() if v is not None})
+        ds.check()
+        return ds
+
+    @property
+    def sign(self) -> int:
+        return 1 if self.polarity == "npn" else -1
+
+    @property
+    def hfe_median(self) -> float:
+        """Median gain of the spread: the typical value, else the geometric mean."""
+        if self.hfe_typ is not None:
+            return self.hfe_typ
+        return math.sqrt(self.hfe_min * self.hfe_max)
+
+    def figures(self) -> dict:
+        """The figures as a dict (None for absent optional ones)."""
+        return {f.name: getattr(self, f.name) for f in fields(self)}
+
+    def check(self) -> None:
+        """Raise :class:`DatasheetError` naming the first inconsistent figure."""
+        if self.polarity not in ("npn", "pnp"):
+            raise DatasheetError("polarity", f"'{self.polarity}' is not npn or pnp")
+        for f in fields(self):
+            v = getattr(self, f.name)
+            if f.name == "polarity" or v is None:
+                continue
+            if not (isinstance(v, (int, float)) and math.isfinite(v)):
+                raise DatasheetError(f.name, f"expected a finite number, got {v!r}")
+            if f.name == "emitter_resistance":
+                if v < 0:
+                    raise DatasheetError(f.name, f"must not be negative, got {v:g}")
+            elif v <= 0:
+                what = "a leakage current" if "icbo" in f.name else "this figure"
+                raise DatasheetError(f.name, f"{what} must be positive, got {v:g}")
+        if self.hfe_min > self.hfe_max:
+            raise DatasheetError("hfe_min", f"hfe_min ({self.hfe_min:g}) is above hfe_max "
+                                            f"({self.hfe_max:g})")
+        if self.hfe_typ is not None and not self.hfe_min <= self.hfe_typ <= self.hfe_max:
+            raise DatasheetError("hfe_typ", f"{self.hfe_typ:g} lies outside hfe_min..hfe_max")
+        for cur, gain in (("hfe_high_current", "hfe_high_min"), ("hfe_low_current", "hfe_low_min")):
+            if (getattr(self, cur) is None) != (getattr(self, gain) is None):
+                raise DatasheetError(gain if getattr(self, gain) is None else cur,
+                                     f"{cur} and {gain} go together")
+        if self.hfe_high_current is not None:
+            if self.hfe_high_current <= self.hfe_current:
+                raise DatasheetError("hfe_high_current", "must be above hfe_current")
+            if self.hfe_high_min >= self.hfe_min:
+                raise DatasheetError("hfe_high_min", "must be below hfe_min (the gain falls off "
+                                                     "at high current)")
+        if self.hfe_low_current is not None:
+            if self.hfe_low_current >= self.hfe_current:
+                raise DatasheetError("hfe_low_current", "must be below hfe_current")
+            if self.hfe_low_min >= self.hfe_min:
+                raise DatasheetError("hfe_low_min", "must be below hfe_min (the gain rolls off "
+                                                    "at low current)")
+        forced = self.vce_sat_ic / self.vce_sat_ib
+        if forced >= self.hfe_min:
+            raise DatasheetError("vce_sat_ib", f"the forced gain I_C/I_B = {forced:g} of the "
+                                               f"V_CE(sat) figure must be below hfe_min")
+        if self.vce_sat_max >= self.breakdown_vceo:
+            raise DatasheetError("vce_sat_max", "must be below breakdown_vceo")
+        if self.vbe_on >= 1.5:
+            raise DatasheetError("vbe_on", f"{self.vbe_on:g} V is not a single junction voltage")
+        if self.vbe_sat_max is not None and self.vbe_sat_max <= self.vce_sat_max:
+            raise DatasheetError("vbe_sat_max", "must be above vce_sat_max")
+        if self.icbo_spread < 1:
+            raise DatasheetError("icbo_spread", "must be at least 1")
+
+
+@dataclass(frozen=True)
+class FittedDevice:
+    """Model parameters derived from a datasheet.
+
+    Attributes
+    ----------
+    datasheet : Datasheet
+        The figures.
+    template : TransistorParameters
+        Parameters of the minimum-gain unit (h_FE = hfe_min at the test point) with the
+        median ``cbo_leakage`` (geometric mean of its spread); :meth:`parameters` makes any
+        other unit.
+    iterations : int
+        Sweeps the fit took.
+
+    Notes
+    -----
+    Units differ by their base current: a unit of gain h has the whole base-current curve of
+    the minimum unit scaled by hfe_min / h, so the non-ideal (recombination) current scales
+    with it and the shape of h_FE(I_C) is common to all units (a common working assumption,
+    no source). The ideal forward gain then follows in closed form
+    (:func:`forward_beta_for_hfe`).
+    """
+
+    datasheet: Datasheet
+    template: TransistorParameters
+    iterations: int = 0
+    _cache: dict = field(default_factory=dict, compare=False, repr=False)
+
+    def _leakage(self, hfe):
+        return self.template.be_leakage_current * (self.datasheet.hfe_min / hfe)
+
+    def forward_beta_for_hfe(self, hfe, icbo=None) -> np.ndarray:
+        """Ideal forward gain whose model h_FE at the datasheet test point equals ``hfe``.
+
+        Parameters
+        ----------
+        hfe : array_like
+            DC current gain I_C / I_B at ``hfe_current``, ``hfe_vce``, 25 degC [1].
+        icbo : array_like, optional
+            The unit's I_CBO at 25 degC [A] (the generation current flows out of the base and
+            so enters the gain); default the fit's median leakage.
+
+        Returns
+        -------
+        ndarray
+            ``forward_beta`` [1] of the unit (its non-ideal base current scaled as in the class
+            Notes).
+        """
+        hfe = np.atleast_1d(np.asarray(hfe, dtype=float))
+        icbo = self.template.cbo_leakage if icbo is None else icbo
+        icbo = np.broadcast_to(np.asarray(icbo, dtype=float), hfe.shape)
+        ds = self.datasheet
+        if hfe.size > 1 and np.all(hfe == hfe[0]) and np.all(icbo == icbo[0]):
+            return np.full(hfe.shape, self.forward_beta_for_hfe(hfe[:1], icbo[:1])[0])
+        if hfe.size == 1:
+            key = (float(hfe[0]), float(icbo[0]))
+            if key in self._cache:
+                return np.array([self._cache[key]])
+        q = replace(self.template, be_leakage_current=self._leakage(hfe),
+                    cbo_leakage=np.array(icbo))
+        out = forward_beta_for_hfe(q, hfe, ds.hfe_current, ds.hfe_vce)
+        if hfe.size == 1:
+            self._cache[key] = float(out[0])
+        return out
+
+    def parameters(self, hfe, icbo=None) -> TransistorParameters:
+        """Per-sample parameters for gains ``hfe`` [1] and leakages ``icbo`` [A].
+
+        ``icbo`` None keeps the fit's median leakage.
+        """
+        hfe = np.asarray(hfe, dtype=float)
+        icbo = self.template.cbo_leakage if icbo is None else np.asarray(icbo, dtype=float)
+        beta = self.forward_beta_for_hfe(hfe, icbo)
+        return replace(self.template, forward_beta=beta.reshape(np.shape(beta) if hfe.ndim
+                                                                 else ()),
+                       be_leakage_current=self._leakage(hfe), cbo_leakage=icbo)
+
+
+class _PointSystem:
+    """Two equations fixing an operating point of one transistor (25 degC).
+
+    kind ``ic_vce``: I_C = a, V_CE(terminal) = b.  ``ic_ib``: I_C = a, I_B = b.
+    ``open_vcb``: emitter open (I_C + I_B = 0), V_CB(terminal) = b.
+    ``beta_map``: I_C = a, and V_CE = b with I_B = a / h (h per sample) in the emitter drop;
+    the parameters then carry an infinite forward_beta.
+    Values a, b are in the NPN sense (the polarity multiplies them).
+    """
+
+    def __init__(self, scaled, kind, a, b, h=None):
+        self.p = scaled
+        self.kind = kind
+        self.a = a
+        self.b = b
+        self.h = h
+
+    def subset(self, idx):
+        pick = lambda v: v[idx] if np.ndim(v) > 0 and np.size(v) > 1 else v  # noqa: E731
+        return _PointSystem(self.p.subset(idx), self.kind, pick(self.a), pick(self.b),
+                            None if self.h is None else pick(self.h))
+
+    def limit(self, x_new, x_old):
+        return x_new
+
+    def residual(self, x):
+        p = self.p
+        pol = p.polarity
+        vbe, vbc = x[:, 0], x[:, 1]
+        c = junction_currents(p, vbe, vbc)
+        s = x.shape[0]
+        f = np.empty((s, 2))
+        j = np.empty((s, 2, 2))
+        a = pol * self.a
+        b = pol * self.b
+        g = 1e-3  # voltage equations scaled to currents: 1 nV <-> 1 pA
+        if self.kind in ("ic_vce", "ic_ib", "beta_map"):
+            f[:, 0] = c.collector - a
+            j[:, 0, 0] = c.dcollector_dvbe
+            j[:, 0, 1] = c.dcollector_dvbc
+        if self.kind == "ic_ib":
+            f[:, 1] = c.base - b
+            j[:, 1, 0] = c.dbase_dvbe
+            j[:, 1, 1] = c.dbase_dvbc
+        elif self.kind == "ic_vce":
+            o = terminal_offsets(p, vbe, vbc, c)
+            f[:, 1] = g * (o.collector - b)
+            j[:, 1, 0] = g * o.dcollector_dvbe
+            j[:, 1, 1] = g * o.dcollector_dvbc
+        elif self.kind == "beta_map":
+            # V_CE = v_be - v_bc + I_C r_C + I_C (1 + 1/h) r_E at the target currents
+            drop = a * p.collector_resistance + a * (1.0 + 1.0 / self.h) * p.emitter_resistance
+            f[:, 1] = g * (vbe - vbc + drop - b)
+            j[:, 1, 0] = g
+            j[:, 1, 1] = -g
+        elif self.kind == "open_vcb":
+            o = terminal_offsets(p, vbe, vbc, c)
+            f[:, 0] = c.collector + c.base
+            j[:, 0, 0] = c.dcollector_dvbe + c.dbase_dvbe
+            j[:, 0, 1] = c.dcollector_dvbc + c.dbase_dvbc
+            f[:, 1] = g * (o.collector - o.base - b)
+            j[:, 1, 0] = g * (o.dcollector_dvbe - o.dbase_dvbe)
+            j[:, 1, 1] = g * (o.dcollector_dvbc - o.dbase_dvbc)
+        # relative test against the prescribed currents only: the device currents of a wild
+        # iterate must not loosen it
+        scale = np.abs(a) + (np.abs(b) if self.kind == "ic_ib" else 0.0)
+        return f, j, scale
+
+
+def _guess(scaled, kind, a, b, n):
+    pol = scaled.polarity
+    nvt = 1.0 / np.broadcast_to(scaled.inv_forward_nvt, (n,))
+    i_s = np.broadcast_to(scaled.saturation_current, (n,))
+    if kind == "open_vcb":
+        vbe = np.zeros(n)
+        vbc = -np.broadcast_to(np.abs(b), (n,)).astype(float)
+    else:
+        cur = np.abs(np.broadcast_to(a, (n,)))
+        vbe = nvt * np.log1p(cur / i_s)
+        # in high injection I_C ~ sqrt(I_S I_KF) exp(V_BE / 2 n V_T): take the larger estimate
+        with np.errstate(divide="ignore"):
+            vbe = np.maximum(vbe, 2.0 * nvt * np.log(cur / np.sqrt(i_s / np.broadcast_to(
+                scaled.inv_knee, (n,)))))
+        if kind == "ic_ib":
+            vbc = vbe - 0.1
+        else:
+            vbc = vbe - np.abs(np.broadcast_to(b, (n,)))
+    return np.stack([pol * vbe, pol * vbc], axis=1)
+
+
+def _solve_point(params: TransistorParameters, kind, a, b, h=None, temperature=None, n=None):
+    if temperature is None:
+        temperature = REFERENCE_TEMPERATURE
+    sizes = [np.size(v) for v in (a, b, h, temperature) if v is not None]
+    sizes += [np.size(getattr(params, f.name)) for f in fields(params) if f.name != "polarity"]
+    n = max(sizes) if n is None else n
+    scaled = params.at_temperature(np.broadcast_to(np.asarray(temperature, float), (n,)).copy())
+    bc = lambda v: None if v is None else np.broadcast_to(np.asarray(v, float), (n,)).copy()  # noqa
+    system = _PointSystem(scaled.subset(np.arange(n)) if n > 1 else scaled, kind, bc(a), bc(b),
+                          bc(h))
+    res = newton_solve(system, _guess(scaled, kind, bc(a), bc(b), n), max_iterations=100)
+    vbe, vbc = res.x[:, 0], res.x[:, 1]
+    c = junction_currents(system.p, vbe, vbc)
+    return system.p, vbe, vbc, c, res.converged
+
+
+def forward_beta_for_hfe(template: TransistorParameters, hfe, current, vce) -> np.ndarray:
+    """Ideal forward gain beta_F giving the model h_FE ``hfe`` at (``current``, ``vce``), 25 C.
+
+    See :meth:`FittedDevice.forward_beta_for_hfe`. ``current`` and ``vce`` are magnitudes
+    [A], [V]; the template's polarity applies.
+    """
+    hfe = np.atleast_1d(np.asarray(hfe, dtype=float))
+    p_inf = replace(template, forward_beta=np.inf)
+    scaled, vbe, vbc, c, ok = _solve_point(p_inf, "beta_map", current, vce, h=hfe, n=hfe.size)
+    pol = template.polarity
+    vbe_n = pol * vbe
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        i_f = scaled.saturation_current * np.expm1(vbe_n * scaled.inv_forward_nvt)
+        ideal_base = current / hfe - pol * c.base  # I_C/h_FE minus the non-ideal base current
+        beta = np.where((ideal_base > 0) & ok, i_f / ideal_base, np.nan)
+    return beta
+
+
+def hfe_at(params: TransistorParameters, current, vce, temperature=None):
+    """Model DC gain I_C / I_B at collector current ``current`` and terminal V_CE ``vce``.
+
+    ``current`` [A] and ``vce`` [V] are magnitudes; returns (hfe [1], V_BE magnitude [V]).
+    """
+    scaled, vbe, vbc, c, ok = _solve_point(params, "ic_vce", current, vce, temperature=temperature)
+    o = terminal_offsets(scaled, vbe, vbc, c)
+    hfe = np.where(ok, c.collector / c.base, np.nan)
+    return hfe, np.where(ok, np.abs(o.base), np.nan)
+
+
+def saturation_at(params: TransistorParameters, ic, ib, temperature=None):
+    """Model terminal (V_CE, V_BE) magnitudes [V] at forced collector and base currents [A]."""
+    scaled, vbe, vbc, c, ok = _solve_point(params, "ic_ib", ic, ib, temperature=temperature)
+    o = terminal_offsets(scaled, vbe, vbc, c)
+    return (np.where(ok, np.abs(o.collector), np.nan), np.where(ok, np.abs(o.base), np.nan))
+
+
+def icbo_at(params: TransistorParameters, vcb, temperature=None):
+    """Model collector current magnitude [A] with the emitter open at |V_CB| = ``vcb`` [V]."""
+    scaled, vbe, vbc, c, ok = _solve_point(params, "open_vcb", 0.0, vcb, temperature=temperature)
+    return np.where(ok, np.abs(c.collector), np.nan)
+
+
+def _scalar(x) -> float:
+    return float(np.asarray(x).ravel()[0])
+
+
+def _root_log(fun, lo, hi):
+    """Root of fun(exp(u)) for u in [ln lo, ln hi] (fun increasing or decreasing)."""
+    return math.exp(optimize.brentq(lambda u: fun(math.exp(u)), math.log(lo), math.log(hi),
+                                    xtol=1e-12, rtol=1e-12))
+
+
+def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
+    """Derive Gummel-Poon parameters reproducing the datasheet figures.
+
+    Parameters
+    ----------
+    ds : Datasheet
+        The figures.
+    max_sweeps : int
+        Cap on the sweeps over the conditions.
+
+    Returns
+    -------
+    FittedDevice
+
+    Raises
+    ------
+    DatasheetError
+        When a figure cannot be met by the model (naming it).
+
+    Notes
+    -----
+    The non-ideal base current is fitted as its share ``phi`` of the minimum unit's base
+    current at the test point (not as I_SE itself): the junction voltage there moves with the
+    saturation current and the knee, and a fixed share keeps every intermediate model
+    reachable while the sweep converges.
+    """
+    base = TransistorParameters(
+        polarity=ds.sign,
+        saturation_current=1e-14,
+        forward_beta=100.0,
+        reverse_beta=ds.reverse_beta,
+        early_voltage=ds.early_voltage,
+        beta_exponent=ds.beta_exponent,
+        emitter_resistance=ds.emitter_resistance,
+        leakage_doubling=ds.leakage_doubling,
+        be_leakage_emission=2.0,  # recombination current in the depletion layer, n = 2
+        cbo_leakage=ds.icbo_max / math.sqrt(ds.icbo_spread),  # the median unit's leakage
+    )
+    vt0 = 0.025693  # kT/q at 25 degC [V]
+    state = {
+        "saturation_current": ds.vbe_on_current / math.exp(ds.vbe_on / vt0),  # ideal diode
+        "knee_current": math.inf,
+        "phi": 0.0,
+        "collector_resistance": 0.0,
+        "base_resistance": 0.0,
+    }
+
+    def build(**changes):
+        """Minimum-gain unit (h_FE = hfe_min at the test point) of the state with changes."""
+        st = dict(state, **changes)
+        phi = st.pop("phi")
+        q = replace(base, **st)
+        if phi > 0:
+            sc, vbe_t, _, _, ok = _solve_point(replace(q, forward_beta=np.inf), "beta_map",
+                                               ds.hfe_current, ds.hfe_vce, h=ds.hfe_min, n=1)
+            if not ok[0]:
+                raise DatasheetError("hfe_current", "no operating point at the test point")
+            nvt = 2.0 * _scalar(sc.thermal_voltage)
+            ise = phi * ds.hfe_current / ds.hfe_min / math.expm1(abs(_scalar(vbe_t)) / nvt)
+            q = replace(q, be_leakage_current=ise)
+        return unit(q, ds.hfe_min)
+
+    def unit(params, h):
+        """The unit of gain h (params describe the minimum-gain unit's leakage)."""
+        q = replace(params, be_leakage_current=params.be_leakage_current * ds.hfe_min / h)
+        b = _scalar(forward_beta_for_hfe(q, h, ds.hfe_current, ds.hfe_vce))
+        if not math.isfinite(b):
+            raise DatasheetError("hfe_min", f"h_FE {h:g} cannot be reached with this leakage")
+        return replace(q, forward_beta=b)
+
+    def solve(fun, lo, hi, key, what, log=True):
+        """Root of fun in [lo, hi]; an end where the model cannot be evaluated (no gain
+        mapping, no converged operating point) is moved towards the other end first."""
+        def safe(x):
+            try:
+                v = fun(x)
+            except DatasheetError:
+                return math.nan
+            return v
+        if log and lo > 0:
+            step = lambda a, b: a ** 0.9 * b ** 0.1  # noqa: E731 - a tenth of the way, in log
+        else:
+            step = lambda a, b: 0.9 * a + 0.1 * b  # noqa: E731
+        flo, fhi = safe(lo), safe(hi)
+        for _ in range(200):
+            if math.isfinite(flo) and math.isfinite(fhi):
+                break
+            if not math.isfinite(flo):
+                lo = step(lo, hi)
+                flo = safe(lo)
+            if not math.isfinite(fhi):
+                hi = step(hi, lo)
+                fhi = safe(hi)
+        if not (math.isfinite(flo) and math.isfinite(fhi)) or flo * fhi > 0:
+            raise DatasheetError(key, f"cannot be met by the model ({what})")
+        if log and lo > 0:
+            return _root_log(fun, lo, hi)
+        return optimize.brentq(fun, lo, hi, xtol=1e-14, rtol=1e-12)
+
+    sweeps = 0
+    for sweeps in range(1, max_sweeps + 1):
+        old = dict(state)
+        # saturation current from V_BE(on) of the typical unit
+        def f_is(i_s):
+            q = unit(build(saturation_current=i_s), ds.hfe_median)
+            return _scalar(hfe_at(q, ds.vbe_on_current, ds.vbe_on_vce)[1]) - ds.vbe_on
+        i_s0 = state["saturation_current"]
+        state["saturation_current"] = solve(f_is, i_s0 / 1e3, i_s0 * 1e3, "vbe_on",
+                                            "no saturation current gives it")
+
+        def f_knee(ik, **extra):
+            q = build(knee_current=ik, **extra)
+            return _scalar(hfe_at(q, ds.hfe_high_current, ds.hfe_vce)[0]) - ds.hfe_high_min
+
+        def f_phi(logit, **extra):
+            q = build(phi=1.0 / (1.0 + math.exp(-logit)), **extra)
+            return _scalar(hfe_at(q, ds.hfe_low_current, ds.hfe_vce)[0]) - ds.hfe_low_min
+
+        both = ds.hfe_high_current is not None and ds.hfe_low_current is not None
+        joint = None
+        if both:
+            # fall-off and roll-off together: the knee and the recombination share interact
+            # strongly (a large share makes the gain rise with current), so solve them jointly
+            def pair(u):
+                try:
+                    return [f_knee(math.exp(u[0]), phi=1.0 / (1.0 + math.exp(-u[1])))
+                            / ds.hfe_high_min,
+                            f_phi(u[1], knee_current=math.exp(u[0])) / ds.hfe_low_min]
+                except DatasheetError:
+                    return [math.nan, math.nan]
+            phi0 = min(max(state["phi"], 1e-3), 1.0 - 1e-3)
+            knee0 = state["knee_current"]
+            if not knee0 < 1e3 * ds.hfe_high_current:
+                knee0 = ds.hfe_high_current
+            u0 = [math.log(knee0), math.log(phi0 / (1.0 - phi0))]
+            with np.errstate(all="ignore"):
+                sol = optimize.root(pair, u0, method="hybr", options={"xtol": 1e-13})
+            if sol.success and np.all(np.abs(pair(sol.x)) < 1e-9):
+                joint = sol.x
+        if joint is not None:
+            state["knee_current"] = math.exp(joint[0])
+            state["phi"] = 1.0 / (1.0 + math.exp(-joint[1]))
+        else:
+            if ds.hfe_high_current is not None:
+                lo, hi = ds.hfe_high_current * 1e-2, ds.hfe_high_current * 1e4
+                state["knee_current"] = solve(f_knee, lo, hi, "hfe_high_min",
+                                              "no knee current gives this fall-off")
+            if ds.hfe_low_current is not None:
+                logit = solve(f_phi, -40.0, 20.0, "hfe_low_min",
+                              "no recombination current gives this roll-off", log=False)
+                state["phi"] = 1.0 / (1.0 + math.exp(-logit))
+
+        def f_rc(rc):
+            q = build(collector_resistance=rc)
+            return _scalar(saturation_at(q, ds.vce_sat_ic, ds.vce_sat_ib)[0]) - ds.vce_sat_max
+        if f_rc(0.0) > 0:
+            raise DatasheetError("vce_sat_max", "is below the intrinsic saturation voltage of "
+                                                "the model at this forced gain")
+        rc_hi = 10.0 * ds.vce_sat_max / ds.vce_sat_ic
+        state["collector_resistance"] = solve(f_rc, 0.0, rc_hi, "vce_sat_max",
+                                              "no collector resistance gives it", log=False)
+
+        if ds.vbe_sat_max is not None:
+            def f_rb(rb):
+                q = build(base_resistance=rb)
+                return _scalar(saturation_at(q, ds.vce_sat_ic, ds.vce_sat_ib)[1]) - ds.vbe_sat_max
+            if f_rb(0.0) > 0:
+                raise DatasheetError("vbe_sat_max", "is below the model's intrinsic V_BE at the "
+                                                    "V_CE(sat) point; lower vbe_on or raise it")
+            rb_hi = 10.0 * ds.vbe_sat_max / ds.vce_sat_ib
+            state["base_resistance"] = solve(f_rb, 0.0, rb_hi, "vbe_sat_max",
+                                             "no base resistance gives it", log=False)
+
+        moved = 0.0
+        for k, v in state.items():
+            w = old[k]
+            if w == v:
+                continue
+            moved = max(moved, abs(v / w - 1.0) if w not in (0.0, math.inf) else 1.0)
+        if moved < 1e-10:
+            break
+    p = build()
+    for h in (ds.hfe_median, ds.hfe_max):
+        unit(p, h)
+    return FittedDevice(ds, p, sweeps)
+
+
+def model_figures(device: FittedDevice) -> dict[str, float]:
+    """The figures the fit targets, as the fitted model gives them (for checks and reports)."""
+    ds = device.datasheet
+    out = {}
+    q_min = device.parameters(ds.hfe_min)
+    q_typ = device.parameters(ds.hfe_median)
+    q_max = device.parameters(ds.hfe_max)
+    out["hfe_min"] = _scalar(hfe_at(q_min, ds.hfe_current, ds.hfe_vce)[0])
+    out["hfe_max"] = _scalar(hfe_at(q_max, ds.hfe_current, ds.hfe_vce)[0])
+    if ds.hfe_typ is not None:
+        out["hfe_typ"] = _scalar(hfe_at(q_typ, ds.hfe_current, ds.hfe_vce)[0])
+    if ds.hfe_high_current is not None:
+        out["hfe_high_min"] = _scalar(hfe_at(q_min, ds.hfe_high_current, ds.hfe_vce)[0])
+    if ds.hfe_low_current is not None:
+        out["hfe_low_min"] = _scalar(hfe_at(q_min, ds.hfe_low_current, ds.hfe_vce)[0])
+    vce, vbe = saturation_at(q_min, ds.vce_sat_ic, ds.vce_sat_ib)
+    out["vce_sat_max"] = _scalar(vce)
+    if ds.vbe_sat_max is not None:
+        out["vbe_sat_max"] = _scalar(vbe)
+    out["vbe_on"] = _scalar(hfe_at(q_typ, ds.vbe_on_current, ds.vbe_on_vce)[1])
+    out["icbo_max"] = _scalar(icbo_at(device.parameters(ds.hfe_median, ds.icbo_max), ds.icbo_vcb))
+    return out

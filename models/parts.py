@@ -1,0 +1,307 @@
+"""The transistor part library and the reading of ``[parts.Qn]`` tables.
+
+The library holds generic device classes (no part numbers), one TOML data file each under
+``parts/`` (shipped as package data); every figure in them is a typical class value, from memory.
+A study uses a class (``device = "small_signal_npn"``), overrides any figure of it, or defines a
+device inline (``device = "inline"``, or no ``device`` key, with all required figures).
+
+Per-sample spread of a transistor enters through two parameters:
+
+- ``<Q>.hfe``: the DC current gain at the datasheet test point, lognormal between hfe_min and
+  hfe_max (each at -/+3 sigma of the logarithm) with the typical value as median when given:
+  the usual description of gain spread. The stage maps it onto the model's ideal forward gain
+  (:meth:`tolerance.models.datasheet.FittedDevice.forward_beta_for_hfe`).
+- ``<Q>.icbo``: the collector-base cut-off current at 25 degC, lognormal between
+  icbo_max / icbo_spread (default 30) and icbo_max. The datasheet states only a maximum; a
+  spread over about one and a half decades below it is a common working assumption (common
+  practice, no source).
+"""
+
+from __future__ import annotations
+
+import difflib
+import functools
+import tomllib
+from dataclasses import dataclass, field
+from importlib import resources
+
+import numpy as np
+
+from tolerance.models.datasheet import (
+    DATASHEET_FIGURES,
+    Datasheet,
+    DatasheetError,
+    FittedDevice,
+    fit_datasheet,
+)
+from tolerance.models.transistor import TransistorParameters
+from tolerance.study import Reader, StudyError
+from tolerance.units import UnitError, parse_quantity
+
+__all__ = [
+    "DARLINGTON_FIGURES",
+    "LibraryEntry",
+    "TransistorPart",
+    "device_for",
+    "library",
+    "read_transistor",
+]
+
+#: Figures of a monolithic Darlington entry beside its [driver] and [output] dies.
+DARLINGTON_FIGURES: dict[str, tuple[str, str]] = {
+    "rbe_driver": ("ohm", "internal resistor across the driver's base-emitter"),
+    "rbe_output": ("ohm", "internal resistor across the output's base-emitter"),
+    "rbe_tolerance": ("1", "spread of the internal resistors"),
+    "rbe_tempco": ("1/K", "temperature coefficient of the internal resistors"),
+    "pair_hfe_min": ("1", "minimum gain of the pair at pair_hfe_current"),
+    "pair_hfe_current": ("A", "collector current of the pair gain figure"),
+    "pair_hfe_vce": ("V", "collector-emitter voltage of the pair gain figure"),
+    "pair_vce_sat_max": ("V", "maximum saturation voltage of the pair"),
+    "pair_vce_sat_ic": ("A", "collector current of the pair V_CE(sat) figure"),
+    "pair_vce_sat_ib": ("A", "base current of the pair V_CE(sat) figure"),
+}
+
+_ENTRY_KEYS = ("kind", "description", "package")
+
+
+@dataclass(frozen=True)
+class LibraryEntry:
+    """One device class of the library.
+
+    Attributes
+    ----------
+    name : str
+        Library name (the data file's stem), used as ``device = "<name>"``.
+    kind : str
+        ``transistor`` or ``darlington`` (a monolithic pair).
+    description, package : str
+        One line and the package class.
+    figures : dict
+        SI figures: a transistor's datasheet figures, or a Darlington's pair figures.
+    dies : dict
+        For a Darlington: ``{"driver": figures, "output": figures}``; empty otherwise.
+    text : dict
+        The figures as written in the data file (for listings).
+    """
+
+    name: str
+    kind: str
+    description: str
+    package: str
+    figures: dict = field(default_factory=dict)
+    dies: dict = field(default_factory=dict)
+    text: dict = field(default_factory=dict)
+
+
+def _parse_figures(raw: dict, table: dict[str, tuple[str, str]], where: str) -> dict:
+    out = {}
+    for key, value in raw.items():
+        if key == "polarity":
+            out[key] = value
+            continue
+        if key not in table:
+            raise ValueError(f"{where}: {key}: not a known figure")
+        try:
+            out[key] = parse_quantity(value, table[key][0])
+        except UnitError as exc:
+            raise ValueError(f"{where}: {key}: {exc}") from None
+    return out
+
+
+@functools.lru_cache(maxsize=1)
+def library() -> dict[str, LibraryEntry]:
+    """The device classes of the library, by name (read once from the package data)."""
+    out = {}
+    folder = resources.files("tolerance.models").joinpath("parts")
+    for item in sorted(folder.iterdir(), key=lambda p: p.name):
+        if not item.name.endswith(".toml"):
+            continue
+        name = item.name[: -len(".toml")]
+        data = tomllib.loads(item.read_text(encoding="utf-8"))
+        where = f"parts/{item.name}"
+        kind = data.get("kind", "transistor")
+        text = {k: v for k, v in data.items() if not isinstance(v, dict)}
+        if kind == "darlington":
+            dies = {}
+            for die in ("driver", "output"):
+                dies[die] = _parse_figures(data[die], DATASHEET_FIGURES, f"{where}: {die}")
+                text[die] = dict(data[die])
+            pair = {k: v for k, v in data.items() if k not in _ENTRY_KEYS and k not in dies}
+            figures = _parse_figures(pair, DARLINGTON_FIGURES, where)
+        else:
+            dies = {}
+            figures = _parse_figures({k: v for k, v in data.items() if k not in _ENTRY_KEYS},
+                                     DATASHEET_FIGURES, where)
+        out[name] = LibraryEntry(name, kind, data.get("description", ""),
+                                 data.get("package", ""), figures, dies, text)
+    return out
+
+
+@functools.lru_cache(maxsize=64)
+def _fit_cached(items: tuple) -> FittedDevice:
+    return fit_datasheet(Datasheet.from_figures(dict(items)))
+
+
+def device_for(figures: dict) -> FittedDevice:
+    """Fitted model of a set of datasheet figures (cached: fitting takes about a second)."""
+    return _fit_cached(tuple(sorted((k, v) for k, v in figures.items() if v is not None)))
+
+
+@dataclass(frozen=True)
+class TransistorPart:
+    """A transistor of a stage: its fitted device and the names of its sampled parameters."""
+
+    name: str
+    device: FittedDevice
+    hfe_parameter: str
+    icbo_parameter: str
+
+    @property
+    def polarity(self) -> int:
+        return self.device.template.polarity
+
+    def parameters(self, samples: dict[str, np.ndarray]) -> TransistorParameters:
+        """Model parameters of this transistor for a chunk of samples."""
+        return self.device.parameters(samples[self.hfe_parameter],
+                                      samples[self.icbo_parameter])
+
+
+def _derived_parameter(reader: Reader, name: str, spec: dict, unit: str, parameter_name: str,
+                       description: str):
+    """Register a parameter whose distribution the model derives (key path reader.name)."""
+    # The Reader has no public way to register a distribution built by the caller; a reader
+    # over a one-key table at the same path gives the right key path in every message.
+    sub = Reader({name: spec}, reader.path, reader._ctx)  # noqa: SLF001
+    return sub.parameter(name, unit, parameter_name, description, positive=True)
+
+
+def read_transistor(parts: Reader, name: str, description: str, *, polarity: str | None = None,
+                    base_figures: dict | None = None, supply_minimum: float | None = None,
+                    required: bool = True, read_device: bool = True,
+                    table: Reader | None = None) -> TransistorPart:
+    """Read ``[parts.<name>]``: the device, figure overrides and the gain and leakage spread.
+
+    Parameters
+    ----------
+    parts : Reader
+        Reader of the ``[parts]`` table.
+    name : str
+        The part's name (``Q1``); its parameters are ``<name>.hfe`` and ``<name>.icbo``.
+    description : str
+        The part's role, for the parameter table.
+    polarity : {"npn", "pnp"}, optional
+        Required polarity of the stage position.
+    base_figures : dict, optional
+        Figures to start from instead of a library class (a die of a monolithic pair); the
+        table may still override them.
+    supply_minimum : float, optional
+        Lowest supply voltage [V]; a V_CE(sat) figure at or above it is an error.
+    required : bool
+        Whether the table must exist (it may be absent when ``base_figures`` are given).
+    read_device : bool
+        Whether the table may name a library ``device`` (False when the caller has read it,
+        e.g. a monolithic pair).
+    table : Reader, optional
+        The reader of ``[parts.<name>]`` when the caller has opened it already (every
+        table is read through one reader, so that unknown keys are found).
+
+    Raises
+    ------
+    StudyError
+        Naming the key of an unknown device, a bad or inconsistent figure.
+    """
+    part = table if table is not None else parts.table(
+        name, required=required and base_figures is None)
+    figures: dict = dict(base_figures or {})
+    device = part.string("device", default=None) if read_device else None
+    if device is not None and device != "inline":
+        lib = library()
+        if device not in lib:
+            close = difflib.get_close_matches(device, list(lib), n=1, cutoff=0.5)
+            hint = f"; did you mean '{close[0]}'?" if close else ""
+            raise part.error("device", f"'{device}' is not in the part library (see "
+                                       f"'tolerance parts'){hint}")
+        entry = lib[device]
+        if entry.kind != "transistor":
+            raise part.error("device", f"'{device}' is a {entry.kind}, not a single transistor")
+        figures.update(entry.figures)
+    if part.has("polarity"):
+        figures["polarity"] = part.string("polarity", choices=("npn", "pnp"))
+    for key, (unit, _) in DATASHEET_FIGURES.items():
+        if key == "hfe_min" or key == "hfe_max" or key == "hfe_typ":
+            if part.has(key):
+                figures[key] = part.quantity(key, unit)
+            continue
+        if part.has(key):
+            figures[key] = part.quantity(key, unit)
+
+    hfe_spec = None
+    if part.has("hfe"):
+        try:
+            t = part.table("hfe")
+        except StudyError:
+            t = None
+        if t is None:
+            fixed = part.quantity("hfe", "1", positive=True)
+            figures["hfe_min"] = figures["hfe_max"] = fixed
+            figures.pop("hfe_typ", None)
+            hfe_spec = {"min": fixed, "max": fixed}
+        else:
+            lo = t.quantity("min", "1", positive=True)
+            hi = t.quantity("max", "1", positive=True)
+            if lo > hi:
+                raise t.error("min", f"min ({lo:g}) is above max ({hi:g})")
+            typ = t.optional_quantity("typ", "1", positive=True)
+            kind = t.string("distribution", default="lognormal",
+                            choices=("lognormal", "uniform", "normal", "truncnormal", "fixed"))
+            figures["hfe_min"], figures["hfe_max"] = lo, hi
+            if typ is not None:
+                figures["hfe_typ"] = typ
+            elif figures.get("hfe_typ") is not None and not lo <= figures["hfe_typ"] <= hi:
+                figures.pop("hfe_typ")
+            hfe_spec = {"min": lo, "max": hi, "distribution": kind}
+            if typ is not None:
+                hfe_spec["typ"] = typ
+            if t.has("sigmas"):
+                hfe_spec["sigmas"] = t.quantity("sigmas", "1")
+    if polarity is not None and figures.get("polarity", polarity) != polarity:
+        key = "polarity" if part.has("polarity") else "device"
+        raise part.error(key, f"this position needs a {polarity.upper()} transistor")
+    figures.setdefault("polarity", polarity or "npn")
+
+    try:
+        ds = Datasheet.from_figures(figures)
+    except DatasheetError as exc:
+        key = exc.key if part.has(exc.key) or device is None else "device"
+        if exc.key.startswith("hfe") and part.has("hfe"):
+            key = "hfe"
+        raise part.error(key, exc.message if key == exc.key else f"{exc.key}: {exc.message}") \
+            from None
+    if supply_minimum is not None and ds.vce_sat_max >= supply_minimum:
+        raise part.error("vce_sat_max", f"the saturation voltage {ds.vce_sat_max:g} V is at or "
+                                        f"above the lowest supply {supply_minimum:g} V")
+    try:
+        fitted = device_for(ds.figures())
+    except DatasheetError as exc:
+        raise part.error(exc.key if part.has(exc.key) else "device",
+                         f"{exc.key}: {exc.message}") from None
+
+    if hfe_spec is None:
+        hfe_spec = {"min": ds.hfe_min, "max": ds.hfe_max, "distribution": "lognormal"}
+        if ds.hfe_typ is not None:
+            hfe_spec["typ"] = ds.hfe_typ
+    if hfe_spec["min"] == hfe_spec["max"]:
+        hfe_spec = {"min": hfe_spec["min"], "max": hfe_spec["max"]}
+    _derived_parameter(part, "hfe", hfe_spec, "1", f"{name}.hfe",
+                       f"{description}: DC current gain at {ds.hfe_current * 1e3:g} mA")
+    if part.has("icbo"):
+        part.parameter("icbo", "A", f"{name}.icbo", f"{description}: I_CBO at 25 degC",
+                       positive=True)
+    else:
+        spec = {"min": ds.icbo_max / ds.icbo_spread, "max": ds.icbo_max,
+                "distribution": "lognormal"}
+        if ds.icbo_spread == 1:
+            spec = {"min": ds.icbo_max, "max": ds.icbo_max}
+        _derived_parameter(part, "icbo", spec, "A", f"{name}.icbo",
+                           f"{description}: I_CBO at 25 degC")
+    return TransistorPart(name, fitted, f"{name}.hfe", f"{name}.icbo")

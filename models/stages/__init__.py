@@ -1,0 +1,412 @@
+"""Switching-stage topologies and what they share.
+
+Each stage module registers ``configure(reader)`` with :func:`tolerance.protocol.register_stage`
+and returns a picklable configured stage whose ``evaluate(samples)`` solves, vectorized over the
+chunk, four DC problems with the batched Newton solver of :mod:`tolerance.models.newton`:
+
+``on``
+    the drive at its high level: load current, V_CE, base currents, dissipation;
+``edge``
+    the same drive with the (driver) transistor held at the edge of saturation, intrinsic
+    V_BC = 0, and the load removed: the collector current the drive can sustain there, which
+    ``drive_margin`` divides by the load's demand at that collector voltage. Because both
+    operating points coincide when the on-state sits exactly at the edge, ``drive_margin > 1``
+    is the same statement as "the on-state is saturated";
+``off``
+    the drive at its low level: the off-state leakage through the load;
+``threshold``
+    the input voltage at which the load current reaches 1 % of the sample's own on-state load
+    current (the input equation is replaced by that current constraint and the input voltage
+    follows explicitly); ``off_margin`` is its distance above the low level.
+
+The unknowns of every solve are the intrinsic junction voltages of the transistors: the series
+resistances and every node voltage then follow explicitly (:func:`terminal_offsets`), so
+series resistances add no unknowns, and junction limiting acts directly on the unknowns. Where
+two devices close a loop (the joined collectors of a Darlington) one extra equation states the
+loop's voltage balance, scaled by 1 mS so that 1 nV counts as 1 pA.
+
+Resistor temperature coefficients are applied at the sample's temperature:
+``R(T) = R (1 + tempco (T - 298.15 K))``. The transistors sit at the ambient temperature (no
+self-heating in this static model).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from tolerance.models.drive import DriveSpec, read_drive
+from tolerance.models.newton import newton_solve
+from tolerance.models.transistor import (
+    REFERENCE_TEMPERATURE,
+    critical_voltage,
+    limit_junction_step,
+)
+from tolerance.protocol import Criterion, MetricInfo
+from tolerance.study import Reader, StudyError
+
+__all__ = [
+    "COMMON_METRICS",
+    "LOOP_CONDUCTANCE",
+    "Environment",
+    "ResistorPart",
+    "Subsettable",
+    "read_environment",
+    "read_load_table",
+    "read_resistor",
+    "saturation_criterion",
+]
+
+#: scale of voltage-balance equations [S]: 1 nV of imbalance counts as 1 pA of residual
+LOOP_CONDUCTANCE = 1e-3
+#: fraction of the on-state load current that defines the switching threshold of off_margin
+THRESHOLD_FRACTION = 0.01
+
+COMMON_METRICS: dict[str, MetricInfo] = {
+    "load_current": MetricInfo("A", "load current, drive high"),
+    "vce_on": MetricInfo("V", "output voltage (collector to emitter of the stage), drive high"),
+    "load_voltage": MetricInfo("V", "voltage across the load, drive high"),
+    "base_current": MetricInfo("A", "base current of the (driver) transistor, drive high"),
+    "drive_current": MetricInfo("A", "current the drive output sources, drive high"),
+    "drive_margin": MetricInfo("1", "collector current sustainable at the edge of saturation "
+                                    "over the load's demand; > 1 means fully on"),
+    "power_output": MetricInfo("W", "dissipation of the output transistor, drive high"),
+    "off_current": MetricInfo("A", "load current, drive low (leakage)"),
+    "off_margin": MetricInfo("V", "input voltage giving 1 % of the on-state load current, "
+                                  "minus the drive's low level"),
+}
+
+
+def saturation_criterion() -> Criterion:
+    return Criterion("saturation", "drive_margin", minimum=1.0, source="stage",
+                     description="output fully on (saturation)")
+
+
+class Subsettable:
+    """Mixin: ``subset(idx)`` copies the object with every per-sample array indexed.
+
+    Attributes that are 1-D arrays of the chunk's length are indexed; objects with a
+    ``subset`` (transistor parameters) or ``take`` (load states) method are asked for theirs;
+    everything else is shared.
+    """
+
+    n_samples: int
+
+    def subset(self, idx):
+        out = object.__new__(type(self))
+        n = self.n_samples
+        for key, value in vars(self).items():
+            if isinstance(value, np.ndarray) and value.ndim >= 1 and value.shape[0] == n:
+                value = value[idx]
+            elif hasattr(value, "subset") and not isinstance(value, type):
+                value = value.subset(idx)
+            elif hasattr(value, "take") and not isinstance(value, (np.ndarray, type)):
+                value = value.take(idx)
+            setattr(out, key, value)
+        out.n_samples = len(idx)
+        return out
+
+
+@dataclass(frozen=True)
+class ResistorPart:
+    """A resistor of the stage: its parameter names (``value``/``tempco``), or absent.
+
+    ``tempco_parameter`` None means the fixed coefficient ``tempco_value`` [1/K].
+    """
+
+    name: str
+    present: bool
+    value_parameter: str | None = None
+    tempco_parameter: str | None = None
+    tempco_value: float = 0.0
+
+    def resistance(self, samples, temperature) -> np.ndarray:
+        """Resistance at the sample temperatures [ohm] (infinite when absent)."""
+        t = np.asarray(temperature, dtype=float)
+        if not self.present:
+            return np.full(t.shape, np.inf)
+        r = np.asarray(samples[self.value_parameter], dtype=float)
+        if self.tempco_parameter is None:
+            tc = self.tempco_value
+        else:
+            tc = np.asarray(samples[self.tempco_parameter], dtype=float)
+        return r * (1.0 + tc * (t - REFERENCE_TEMPERATURE))
+
+    def conductance(self, samples, temperature) -> np.ndarray:
+        """1/R at the sample temperatures [S] (0 when absent)."""
+        with np.errstate(divide="ignore"):
+            return 1.0 / self.resistance(samples, temperature)
+
+
+def read_resistor(parts: Reader, name: str, description: str, required: bool) -> ResistorPart:
+    """Read ``[parts.<name>]``: ``value`` (toleranced), ``tempco`` (default 0).
+
+    Parameters ``<name>`` [ohm] and ``<name>.tempco`` [1/K].
+    """
+    if not parts.has(name):
+        if required:
+            raise parts.error(name, "is required but missing; expected a table with a value")
+        return ResistorPart(name, False)
+    table = parts.table(name, required=True)
+    table.parameter("value", "ohm", name, description, positive=True, allow_tolerance_key=True)
+    table.parameter("tempco", "1/K", f"{name}.tempco", f"{description}: temperature "
+                    "coefficient", default=0.0, minimum=-5e-3, maximum=5e-3)
+    return ResistorPart(name, True, name, f"{name}.tempco")
+
+
+@dataclass(frozen=True)
+class Environment:
+    """Names of the ambient temperature and supply voltage parameters."""
+
+    temperature: str = "ambient.temperature"
+    supply: str = "supply.voltage"
+    supply_minimum: float = 0.0
+    supply_maximum: float = 0.0
+
+
+def read_environment(reader: Reader) -> Environment:
+    """Read ``[ambient] temperature`` (default 25 degC) and ``[supply] voltage``."""
+    ambient = reader.table("ambient")
+    ambient.parameter("temperature", "temperature", "ambient.temperature",
+                      "ambient temperature", default="25 degC", minimum=150.0, maximum=500.0)
+    supply = reader.table("supply", required=True)
+    p = supply.parameter("voltage", "V", "supply.voltage", "supply voltage", positive=True)
+    return Environment(supply_minimum=p.low, supply_maximum=p.high)
+
+
+def read_load_table(reader: Reader):
+    """The study's load (:func:`tolerance.models.loads.read_load` on ``[load]``)."""
+    from tolerance.models.loads import read_load
+
+    return read_load(reader.table("load", required=True))
+
+
+def junction_limit(x_new, x_old, columns):
+    """Apply :func:`limit_junction_step` to the junction columns of an iterate.
+
+    ``columns`` lists ``(column, polarity, emission_vt, critical_voltage)``.
+    """
+    out = x_new.copy()
+    for col, pol, nvt, vcrit in columns:
+        out[:, col] = pol * limit_junction_step(pol * x_new[:, col], pol * x_old[:, col], nvt,
+                                                vcrit)
+    return out
+
+
+def solve_with_restarts(system, guesses, **options):
+    """Newton from the first guess; samples that fail retry from the next guesses in turn,
+    and finally with a short maximum step (0.05 V, up to 400 iterations) from the first.
+
+    Parameters
+    ----------
+    system : NewtonSystem
+    guesses : list of ndarray, each (S, n)
+        Starting points in order of preference.
+    **options
+        Passed to :func:`tolerance.models.newton.newton_solve`.
+
+    Returns
+    -------
+    NewtonResult
+    """
+    res = newton_solve(system, guesses[0], **options)
+    attempts = [(g, options) for g in guesses[1:]]
+    slow = dict(options, max_step=0.05, max_iterations=max(400, options.get("max_iterations",
+                                                                            60)))
+    if "max_iterations" not in options or options["max_iterations"] >= 20:
+        attempts.append((guesses[0], slow))
+    for guess, opts in attempts:
+        bad = np.flatnonzero(~res.converged)
+        if bad.size == 0:
+            break
+        retry = newton_solve(system.subset(bad), guess[bad], **opts)
+        res.x[bad] = retry.x
+        res.converged[bad] = retry.converged
+        res.iterations[bad] += retry.iterations
+    return res
+
+
+__all__ += ["DriveSpec", "read_drive", "junction_limit", "solve_with_restarts",
+            "THRESHOLD_FRACTION"]
+
+
+PAIR_METRICS: dict[str, MetricInfo] = {
+    "base_current_driver": MetricInfo("A", "base current of the driver transistor, drive high"),
+    "base_current_output": MetricInfo("A", "base current magnitude of the output transistor, "
+                                           "drive high"),
+    "power_driver": MetricInfo("W", "dissipation of the driver transistor, drive high"),
+}
+
+#: rows of a pair system's equations: input KCL, middle-node KCL, output KCL, loop balance,
+#: threshold condition; columns: v_BE1, v_BC1, v_BE2, v_BC2
+_PAIR_MODES = {
+    "on": ((0, 1, 2, 3), (0, 1, 2, 3)),
+    "edge": ((0, 1, 3), (0, 2, 3)),
+    "threshold": ((4, 1, 2, 3), (0, 1, 2, 3)),
+}
+
+
+class PairSystem(Subsettable):
+    """Equations of a two-transistor stage for one mode (``on``, ``edge``, ``threshold``).
+
+    Subclasses implement ``equations(xf)`` returning the five residual rows (S, 5) [A], their
+    Jacobian (S, 5, 4) [A/V] with respect to the four junction voltages, the current scale
+    (S,) [A] and a dict of node voltages and currents for the metrics. In the ``edge`` mode the
+    driver's v_BC1 is held at zero; in ``threshold`` the input row is replaced by the load
+    current condition.
+    """
+
+    def __init__(self, q1, q2, load, supply, v_in, g_in, g_be1, g_be2, mode, i_target=None):
+        self.q1 = q1
+        self.q2 = q2
+        self.load = load
+        self.supply = supply
+        self.v_in = v_in
+        self.g_in = g_in
+        self.g_be1 = g_be1
+        self.g_be2 = g_be2
+        self.mode = mode
+        self.i_target = np.zeros_like(supply) if i_target is None else i_target
+        self.n_samples = supply.shape[0]
+
+    def full(self, x):
+        if self.mode == "edge":
+            return np.stack([x[:, 0], np.zeros(x.shape[0]), x[:, 1], x[:, 2]], axis=1)
+        return x
+
+    def residual(self, x):
+        f, j, scale, _ = self.equations(self.full(x))
+        rows, cols = _PAIR_MODES[self.mode]
+        return f[:, rows], j[:, rows][:, :, cols], scale
+
+    def state(self, x):
+        return self.equations(self.full(x))[3]
+
+    def limit(self, x_new, x_old):
+        q1, q2 = self.q1, self.q2
+        cols = []
+        for q, be, bc in ((q1, 0, 1), (q2, 2, 3)):
+            nvt_f = 1.0 / q.inv_forward_nvt
+            nvt_r = 1.0 / q.inv_reverse_nvt
+            cols.append((be, q.polarity, nvt_f, critical_voltage(q.saturation_current, nvt_f)))
+            cols.append((bc, q.polarity, nvt_r, critical_voltage(q.saturation_current, nvt_r)))
+        if self.mode == "edge":  # column 1 (v_BC1) is not an unknown
+            cols = [(0, *cols[0][1:]), (1, *cols[2][1:]), (2, *cols[3][1:])]
+        return junction_limit(x_new, x_old, cols)
+
+
+def vbe_guess(q, current):
+    """Junction voltage of an ideal diode carrying ``current`` [A] (actual polarity) [V]."""
+    nvt = 1.0 / q.inv_forward_nvt
+    return q.polarity * nvt * np.log1p(np.maximum(np.abs(current), 1e-12) / q.saturation_current)
+
+
+def transistor_power(ic, ib, vc_minus_ve, vb_minus_ve):
+    """Dissipation of a transistor from its terminal currents and voltages [W]."""
+    return ic * vc_minus_ve + ib * vb_minus_ve
+
+
+class PairStage:
+    """A configured two-transistor stage (Darlington or Sziklai); picklable.
+
+    Subclasses set ``name`` and ``system`` (a :class:`PairSystem` subclass) and implement
+    ``guesses(mode, ...)`` and ``outputs(state, ...)``.
+    """
+
+    name = "pair"
+    system = PairSystem
+
+    def __init__(self, env, drive, rb, rbe1, rbe2, q1, q2, load, parameters,
+                 internal_rbe1=None, internal_rbe2=None, suggested_correlations=()):
+        self.env = env
+        self.drive = drive
+        self.rb = rb
+        self.rbe1 = rbe1
+        self.rbe2 = rbe2
+        self.q1 = q1
+        self.q2 = q2
+        self.load = load
+        self.parameters = parameters
+        self.internal_rbe1 = internal_rbe1
+        self.internal_rbe2 = internal_rbe2
+        self.suggested_correlations = tuple(suggested_correlations)
+        self.metrics = dict(COMMON_METRICS)
+        self.metrics.update(PAIR_METRICS)
+        self.metrics.update(load.metrics)
+        self.criteria = [saturation_criterion()] + list(load.criteria)
+        self.solver_options = {}
+
+    def _setup(self, samples):
+        t = np.asarray(samples[self.env.temperature], dtype=float)
+        vs = np.asarray(samples[self.env.supply], dtype=float)
+        v_high, v_low, r_s = self.drive.levels(samples)
+        g_in = 1.0 / (r_s + self.rb.resistance(samples, t))
+        g_be1 = self.rbe1.conductance(samples, t)
+        g_be2 = self.rbe2.conductance(samples, t)
+        if self.internal_rbe1 is not None:
+            g_be1 = g_be1 + self.internal_rbe1.conductance(samples, t)
+        if self.internal_rbe2 is not None:
+            g_be2 = g_be2 + self.internal_rbe2.conductance(samples, t)
+        q1 = self.q1.parameters(samples).at_temperature(t)
+        q2 = self.q2.parameters(samples).at_temperature(t)
+        load = self.load.at(samples, t, vs)
+        return t, vs, v_high, v_low, g_in, g_be1, g_be2, q1, q2, load
+
+    def evaluate(self, samples):
+        """All metrics for a chunk of samples (see :mod:`tolerance.models.stages`)."""
+        t, vs, v_high, v_low, g_in, g_be1, g_be2, q1, q2, load = self._setup(samples)
+        n = vs.shape[0]
+        opts = self.solver_options
+        make = lambda v, mode, target=None: self.system(  # noqa: E731
+            q1, q2, load, vs, v, g_in, g_be1, g_be2, mode, target)
+
+        demand_guess = load.current(vs - 1.0)[0]
+        on = make(v_high, "on")
+        starts = self.guesses("on", q1, q2, vs, demand_guess, g_be2)
+        r_on = solve_with_restarts(on, starts, **opts)
+        s_on = on.state(np.nan_to_num(r_on.x))
+        x_on = np.where(r_on.converged[:, None], r_on.x, starts[0])
+
+        edge = make(v_high, "edge")
+        cols = [0, 2, 3]
+        r_edge = solve_with_restarts(edge, [x_on[:, cols]] + [g[:, cols] for g in starts], **opts)
+        s_edge = edge.state(np.nan_to_num(r_edge.x))
+        demand = load.current(vs - s_edge["v_out"])[0]
+
+        off = make(v_low, "on")
+        off_starts = self.guesses("off", q1, q2, vs, demand_guess, g_be2)
+        r_off = solve_with_restarts(off, off_starts + [x_on], **opts)
+        s_off = off.state(np.nan_to_num(r_off.x))
+
+        target = THRESHOLD_FRACTION * np.where(r_on.converged, s_on["i_out"], 1.0)
+        thr = make(v_high, "threshold", target)
+        r_thr = solve_with_restarts(thr, self.guesses("threshold", q1, q2, vs, target, g_be2),
+                                    **opts)
+        s_thr = thr.state(np.nan_to_num(r_thr.x))
+        converged = r_on.converged & r_edge.converged & r_off.converged & r_thr.converged
+
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            v_threshold = s_thr["v_b1"] + (s_thr["i_rb_out"]) / g_in
+            out = {
+                "load_current": s_on["i_load"],
+                "vce_on": s_on["v_out"],
+                "load_voltage": vs - s_on["v_out"],
+                "base_current": s_on["ib1"],
+                "base_current_driver": s_on["ib1"],
+                "base_current_output": np.abs(s_on["ib2"]),
+                "drive_current": (v_high - s_on["v_b1"]) * g_in,
+                "drive_margin": s_edge["i_out"] / demand,
+                "power_driver": s_on["p1"],
+                "power_output": s_on["p2"],
+                "off_current": s_off["i_out"],
+                "off_margin": v_threshold - v_low,
+            }
+            out.update(load.metrics(vs - s_on["v_out"], s_on["i_load"]))
+        for key, value in out.items():
+            out[key] = np.where(converged, np.asarray(value, dtype=float), np.nan)
+        out["converged"] = converged
+        return out
+
+
+__all__ += ["PAIR_METRICS", "PairStage", "PairSystem", "transistor_power", "vbe_guess"]

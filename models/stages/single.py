@@ -1,0 +1,247 @@
+"""Single NPN low-side switch.
+
+Circuit: the drive (Thevenin: level V_in, source resistance R_S) feeds the base through the base
+resistor RB; an optional pull-down RPD sits from base to emitter (ground); the load runs from
+the supply to the collector. Parts ``RB``, ``RPD`` (optional), ``Q1``.
+
+Unknowns of each solve: the intrinsic junction voltages ``x = (v_BE, v_BC)`` of Q1 [V]. With
+``V_B = o_B(x)`` and ``V_C = o_C(x)`` the terminal voltages through the series resistances
+(:func:`tolerance.models.transistor.terminal_offsets`) the equations are
+
+==========  ===============================================================  ===============
+name        residual [A]                                                      used in
+==========  ===============================================================  ===============
+input       (V_in - V_B) / (R_S + R_B) - V_B / R_PD - I_B                     on, edge
+collector   I_load(V_supply - V_C) - I_C                                      on, threshold
+threshold   I_load(V_supply - V_C) - 0.01 I_load,on                           threshold
+==========  ===============================================================  ===============
+
+In the ``edge`` solve v_BC = 0 is fixed and the collector equation is dropped; in the
+``threshold`` solve the input equation is dropped and the input voltage follows from it.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from tolerance.models.parts import read_transistor
+from tolerance.models.stages import (
+    COMMON_METRICS,
+    THRESHOLD_FRACTION,
+    Subsettable,
+    junction_limit,
+    solve_with_restarts,
+    read_drive,
+    read_environment,
+    read_load_table,
+    read_resistor,
+    saturation_criterion,
+)
+from tolerance.models.transistor import critical_voltage, junction_currents, terminal_offsets
+from tolerance.protocol import register_stage
+
+__all__ = ["SingleStage", "SingleSystem", "configure"]
+
+
+def _junction_columns(q, vbe_col, vbc_col):
+    nvt_f = 1.0 / q.inv_forward_nvt
+    nvt_r = 1.0 / q.inv_reverse_nvt
+    cols = [(vbe_col, q.polarity, nvt_f, critical_voltage(q.saturation_current, nvt_f))]
+    if vbc_col is not None:
+        cols.append((vbc_col, q.polarity, nvt_r, critical_voltage(q.saturation_current, nvt_r)))
+    return cols
+
+
+class SingleSystem(Subsettable):
+    """Equations of the single-NPN stage for one mode (``on``, ``edge``, ``threshold``).
+
+    Parameters
+    ----------
+    q : ScaledTransistor
+        Q1 at the sample temperatures.
+    load : LoadState
+        The load for the chunk.
+    supply, v_in : ndarray
+        Supply voltage and drive level [V].
+    g_in, g_pd : ndarray
+        Conductances of the input path R_S + R_B and of the pull-down [S].
+    mode : str
+        ``on``, ``edge`` or ``threshold``.
+    i_target : ndarray, optional
+        Load current of the threshold solve [A].
+    """
+
+    def __init__(self, q, load, supply, v_in, g_in, g_pd, mode, i_target=None):
+        self.q = q
+        self.load = load
+        self.supply = supply
+        self.v_in = v_in
+        self.g_in = g_in
+        self.g_pd = g_pd
+        self.mode = mode
+        self.i_target = i_target
+        self.n_samples = supply.shape[0]
+
+    def full(self, x):
+        """Junction voltages (S, 2) of the mode's unknowns ``x``."""
+        if self.mode == "edge":
+            return np.stack([x[:, 0], np.zeros(x.shape[0])], axis=1)
+        return x
+
+    def state(self, x):
+        """Currents, terminal offsets and load current at the unknowns ``x``."""
+        xf = self.full(x)
+        vbe, vbc = xf[:, 0], xf[:, 1]
+        c = junction_currents(self.q, vbe, vbc)
+        o = terminal_offsets(self.q, vbe, vbc, c)
+        i_load, g_load = self.load.current(self.supply - o.collector)
+        return c, o, i_load, g_load
+
+    def residual(self, x):
+        c, o, i_load, g_load = self.state(x)
+        s = x.shape[0]
+        g_b = self.g_in + self.g_pd
+        if self.mode == "edge":
+            f = ((self.v_in - o.base) * self.g_in - o.base * self.g_pd - c.base)[:, None]
+            j = (-g_b * o.dbase_dvbe - c.dbase_dvbe)[:, None, None]
+            scale = np.abs(self.v_in * self.g_in)
+            return f, j, scale
+        f = np.empty((s, 2))
+        j = np.empty((s, 2, 2))
+        if self.mode == "on":
+            f[:, 0] = (self.v_in - o.base) * self.g_in - o.base * self.g_pd - c.base
+            j[:, 0, 0] = -g_b * o.dbase_dvbe - c.dbase_dvbe
+            j[:, 0, 1] = -g_b * o.dbase_dvbc - c.dbase_dvbc
+        else:  # threshold: the load current is prescribed
+            f[:, 0] = i_load - self.i_target
+            j[:, 0, 0] = -g_load * o.dcollector_dvbe
+            j[:, 0, 1] = -g_load * o.dcollector_dvbc
+        f[:, 1] = i_load - c.collector
+        j[:, 1, 0] = -g_load * o.dcollector_dvbe - c.dcollector_dvbe
+        j[:, 1, 1] = -g_load * o.dcollector_dvbc - c.dcollector_dvbc
+        # relative test against the drive's and the load's currents (bounded by the circuit),
+        # never against the device currents of a wild iterate
+        scale = np.abs(self.v_in * self.g_in) + np.abs(i_load)
+        return f, j, scale
+
+    def limit(self, x_new, x_old):
+        cols = _junction_columns(self.q, 0, None if self.mode == "edge" else 1)
+        return junction_limit(x_new, x_old, cols)
+
+
+def _vbe_guess(q, current):
+    """Junction voltage of an ideal diode carrying ``current`` [A] (actual polarity) [V]."""
+    nvt = 1.0 / q.inv_forward_nvt
+    return q.polarity * nvt * np.log1p(np.maximum(np.abs(current), 1e-12) / q.saturation_current)
+
+
+class SingleStage:
+    """The configured single-NPN stage (picklable)."""
+
+    name = "single"
+
+    def __init__(self, env, drive, rb, rpd, q1, load, parameters):
+        self.env = env
+        self.drive = drive
+        self.rb = rb
+        self.rpd = rpd
+        self.q1 = q1
+        self.load = load
+        self.parameters = parameters
+        self.metrics = dict(COMMON_METRICS)
+        self.metrics.update(load.metrics)
+        self.criteria = [saturation_criterion()] + list(load.criteria)
+        self.solver_options = {}
+
+    def _setup(self, samples):
+        t = np.asarray(samples[self.env.temperature], dtype=float)
+        vs = np.asarray(samples[self.env.supply], dtype=float)
+        v_high, v_low, r_s = self.drive.levels(samples)
+        g_in = 1.0 / (r_s + self.rb.resistance(samples, t))
+        g_pd = self.rpd.conductance(samples, t)
+        q = self.q1.parameters(samples).at_temperature(t)
+        load = self.load.at(samples, t, vs)
+        return t, vs, v_high, v_low, g_in, g_pd, q, load
+
+    def evaluate(self, samples):
+        """All metrics for a chunk of samples (see the module docstring)."""
+        t, vs, v_high, v_low, g_in, g_pd, q, load = self._setup(samples)
+        n = vs.shape[0]
+        opts = self.solver_options
+
+        pol = q.polarity
+        # on-state: from a lightly saturated start, else from the active region
+        on = SingleSystem(q, load, vs, v_high, g_in, g_pd, "on")
+        demand_guess = load.current(vs - 0.2)[0]
+        vbe0 = _vbe_guess(q, demand_guess)
+        sat0 = np.stack([vbe0, vbe0 - pol * 0.15], axis=1)
+        act0 = np.stack([vbe0, vbe0 - 0.5 * vs], axis=1)
+        r_on = solve_with_restarts(on, [sat0, act0], **opts)
+        c, o, i_on, _ = on.state(np.nan_to_num(r_on.x))
+        x_on = np.where(r_on.converged[:, None], r_on.x, sat0)
+
+        # edge of saturation
+        edge = SingleSystem(q, load, vs, v_high, g_in, g_pd, "edge")
+        r_edge = solve_with_restarts(edge, [x_on[:, :1], vbe0[:, None],
+                                            np.full((n, 1), pol * 0.6)], **opts)
+        ce, oe, _, _ = edge.state(np.nan_to_num(r_edge.x))
+        demand = load.current(vs - oe.collector)[0]
+
+        # off-state: from cut-off, else from the on-state (a hot unit may conduct)
+        off = SingleSystem(q, load, vs, v_low, g_in, g_pd, "on")
+        vb_off = pol * np.minimum(np.abs(v_low) * g_in / (g_in + g_pd), 0.3)
+        r_off = solve_with_restarts(off, [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0],
+                                    **opts)
+        # the transistor's collector current (equal to the load's at the solution) keeps its
+        # relative accuracy where the load voltage is a tiny difference of two large ones
+        c_off, _, _, _ = off.state(np.nan_to_num(r_off.x))
+        i_off = c_off.collector
+
+        # switching threshold: input voltage for 1 % of the on-state load current
+        target = THRESHOLD_FRACTION * np.where(r_on.converged, i_on, 1.0)
+        thr = SingleSystem(q, load, vs, v_high, g_in, g_pd, "threshold", i_target=target)
+        vbe_t = _vbe_guess(q, target)
+        r_thr = solve_with_restarts(thr, [np.stack([vbe_t, vbe_t - 0.9 * vs], axis=1),
+                                          np.stack([vbe_t, vbe_t - 0.5 * vs], axis=1)], **opts)
+        ct, ot, _, _ = thr.state(np.nan_to_num(r_thr.x))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            v_threshold = ot.base + (ot.base * g_pd + ct.base) / g_in
+
+            converged = r_on.converged & r_edge.converged & r_off.converged & r_thr.converged
+            out = {
+                "load_current": i_on,
+                "vce_on": o.collector,
+                "load_voltage": vs - o.collector,
+                "base_current": c.base,
+                "drive_current": (v_high - o.base) * g_in,
+                "drive_margin": (ce.collector) / demand,
+                "power_output": c.collector * o.collector + c.base * o.base,
+                "off_current": i_off,
+                "off_margin": v_threshold - v_low,
+            }
+            out.update(load.metrics(vs - o.collector, i_on))
+        for key, value in out.items():
+            out[key] = np.where(converged, np.asarray(value, dtype=float), np.nan)
+        out["converged"] = converged
+        return out
+
+
+@register_stage("single", description="single NPN low-side switch with base resistor and "
+                                      "optional base pull-down",
+                parts=("RB", "RPD", "Q1"))
+def configure(reader):
+    """Build the single-NPN stage from a study (``reader`` is the top-level reader)."""
+    env = read_environment(reader)
+    drive = read_drive(reader)
+    parts = reader.table("parts", required=True)
+    rb = read_resistor(parts, "RB", "base resistor", required=True)
+    rpd = read_resistor(parts, "RPD", "base pull-down resistor", required=False)
+    q1 = read_transistor(parts, "Q1", "switching transistor", polarity="npn",
+                         supply_minimum=env.supply_minimum)
+    load = read_load_table(reader)
+    names = [env.temperature, env.supply, drive.high, drive.low, drive.source_resistance,
+             rb.value_parameter, rb.tempco_parameter, q1.hfe_parameter, q1.icbo_parameter]
+    if rpd.present:
+        names += [rpd.value_parameter, rpd.tempco_parameter]
+    names += list(load.parameters)
+    return SingleStage(env, drive, rb, rpd, q1, load, names)

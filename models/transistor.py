@@ -1,0 +1,529 @@
+"""Static Gummel-Poon model of a bipolar transistor, vectorized over samples.
+
+The model gives the terminal currents of the intrinsic transistor (collector and base, emitter
+by Kirchhoff) as functions of the two intrinsic junction voltages, together with their analytic
+partial derivatives, for NPN and PNP devices, at a per-sample temperature. Series base,
+collector and emitter resistances are carried in the parameters; :func:`terminal_offsets` maps
+the intrinsic junction voltages to the external terminal voltages through them, so that a stage
+can use the junction voltages themselves as the unknowns of its Newton solve.
+
+Nomenclature (paper symbol | name in this module | meaning):
+
+============  ===============================  ===============================================
+I_S           saturation_current               transport saturation current [A]
+beta_F        forward_beta                     ideal maximum forward current gain [1]
+beta_R        reverse_beta                     ideal maximum reverse current gain [1]
+n_F, n_R      forward_emission, ...            emission coefficients of the transport terms
+V_A, V_B      early_voltage, reverse_...       forward and reverse Early voltages [V]
+I_KF, I_KR    knee_current, reverse_knee_...   high-injection knee currents [A]
+C_2 I_S       be_leakage_current               non-ideal (recombination) B-E current [A]
+n_EL          be_leakage_emission              its emission coefficient [1]
+C_4 I_S       bc_leakage_current               non-ideal B-C current [A]
+n_CL          bc_leakage_emission              its emission coefficient [1]
+r_B, r_C, r_E base_resistance, ...             series resistances [ohm]
+E_g           energy_gap                       band gap for the I_S temperature law [eV]
+X_TI          saturation_current_exponent      temperature exponent of I_S [1]
+X_TB          beta_exponent                    temperature exponent of the gains [1]
+I_CBO         cbo_leakage                      collector-base generation leakage at 25 C [A]
+============  ===============================  ===============================================
+
+Notes
+-----
+Transport current and base charge, Gummel & Poon [1]_::
+
+    I_F  = I_S (exp(V_BE / (n_F V_T)) - 1),   I_R = I_S (exp(V_BC / (n_R V_T)) - 1)
+    q_1  = 1 / (1 - V_BC / V_A - V_BE / V_B)                      (Early effect)
+    q_2  = I_F / I_KF + I_R / I_KR                                 (high injection)
+    q_b  = q_1 / 2 * (1 + sqrt(1 + 4 q_2))                         (eq. of [1] for q_b)
+    I_CT = (I_F - I_R) / q_b
+    I_BE = I_F / beta_F + I_SE (exp(V_BE / (n_EL V_T)) - 1)
+    I_BC = I_R / beta_R + I_SC (exp(V_BC / (n_CL V_T)) - 1)
+    I_C  = I_CT - I_BC + I_gen,        I_B = I_BE + I_BC - I_gen
+
+The non-ideal base currents I_SE, I_SC give the gain roll-off at low current. The extra
+collector-base generation current ``I_gen = I_CBO(T) tanh(V_CB / (2 V_T))`` represents the
+leakage that the ideal diode terms understate: it follows the Shockley-Read-Hall factor
+``(1 - exp(-V_CB/V_T)) / (1 + exp(-V_CB/V_T))``, so it saturates at I_CBO under reverse bias,
+vanishes smoothly at zero bias and stays bounded under forward bias (where the diode terms
+dominate by many decades); it doubles every ``leakage_doubling`` kelvin (common practice, see
+the project's reference list).
+
+Temperature (T in kelvin, T_0 = 298.15 K, V_T = k T / q)::
+
+    I_S(T)    = I_S (T/T_0)^X_TI exp[(q E_g / k)(1/T_0 - 1/T)]      (band-gap law)
+    beta(T)   = beta (T/T_0)^X_TB
+    I_SE(T)   = I_SE (T/T_0)^(-X_TB) (I_S(T)/I_S)^(1/n_EL)           (consistent with beta)
+    I_CBO(T)  = I_CBO 2^((T - T_0) / leakage_doubling)
+
+The scaling of the non-ideal currents keeps the low-current gain consistent with the ideal
+gain's temperature law; it is the usual companion of the band-gap law (from memory).
+
+To keep every Newton iterate finite the exponentials are continued linearly above an argument
+of 80, and q_1 is continued linearly when its denominator falls below 0.1 (far outside any
+physical operating point); both continuations are C1, so the analytic derivatives stay exact.
+
+References
+----------
+.. [1] H. K. Gummel and H. C. Poon, "An integral charge control model of bipolar transistors,"
+   Bell Syst. Tech. J., vol. 49, no. 5, pp. 827-852, 1970.
+.. [2] J. J. Ebers and J. L. Moll, "Large-signal behavior of junction transistors," Proc. IRE,
+   vol. 42, no. 12, pp. 1761-1772, 1954.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, fields, replace
+
+import numpy as np
+
+__all__ = [
+    "BOLTZMANN",
+    "ELEMENTARY_CHARGE",
+    "REFERENCE_TEMPERATURE",
+    "JunctionCurrents",
+    "ScaledTransistor",
+    "TerminalOffsets",
+    "TransistorParameters",
+    "critical_voltage",
+    "junction_currents",
+    "limit_junction_step",
+    "terminal_offsets",
+    "thermal_voltage",
+]
+
+#: Boltzmann constant [J/K] (exact, SI 2019)
+BOLTZMANN = 1.380649e-23
+#: elementary charge [C] (exact, SI 2019)
+ELEMENTARY_CHARGE = 1.602176634e-19
+#: temperature at which the model parameters are stated [K] (25 degC)
+REFERENCE_TEMPERATURE = 298.15
+
+_EXP_MAX = 80.0  # argument above which exp() is continued linearly
+_Q1_DENOMINATOR_MIN = 0.1  # q_1 denominator below which q_1 is continued linearly
+
+
+def thermal_voltage(temperature):
+    """Thermal voltage kT/q [V] at ``temperature`` [K]."""
+    return BOLTZMANN / ELEMENTARY_CHARGE * np.asarray(temperature, dtype=float)
+
+
+def _exp_lin(arg):
+    """exp(arg) and its derivative, continued linearly above ``_EXP_MAX`` (C1)."""
+    if np.max(arg) > _EXP_MAX:
+        big = arg > _EXP_MAX
+        e = np.exp(np.minimum(arg, _EXP_MAX))
+        value = np.where(big, e * (1.0 + (arg - _EXP_MAX)), e)
+        return value, e
+    e = np.exp(arg)
+    return e, e
+
+
+@dataclass(frozen=True)
+class TransistorParameters:
+    """Static Gummel-Poon parameters of one transistor (floats or arrays over samples).
+
+    Every field may be a float (same for all samples) or a 1-D array with one value per sample.
+    Infinite Early voltages or knee currents switch the corresponding effect off; zero
+    leakage currents or resistances remove the term.
+
+    Parameters
+    ----------
+    polarity : int
+        +1 for NPN, -1 for PNP.
+    saturation_current : float or ndarray
+        Transport saturation current I_S at 25 degC [A].
+    forward_beta, reverse_beta : float or ndarray
+        Ideal maximum forward and reverse current gains at 25 degC [1].
+    forward_emission, reverse_emission : float or ndarray
+        Emission coefficients of the transport currents [1].
+    early_voltage, reverse_early_voltage : float or ndarray
+        Forward (V_A) and reverse (V_B) Early voltages [V].
+    knee_current, reverse_knee_current : float or ndarray
+        Forward and reverse high-injection knee currents [A].
+    be_leakage_current, be_leakage_emission : float or ndarray
+        Non-ideal base-emitter current at 25 degC [A] and its emission coefficient [1].
+    bc_leakage_current, bc_leakage_emission : float or ndarray
+        Non-ideal base-collector current at 25 degC [A] and its emission coefficient [1].
+    base_resistance, collector_resistance, emitter_resistance : float or ndarray
+        Series resistances [ohm].
+    energy_gap : float
+        Band gap of the saturation-current temperature law [eV].
+    saturation_current_exponent : float
+        Temperature exponent X_TI of the saturation current [1].
+    beta_exponent : float
+        Temperature exponent X_TB of the current gains [1].
+    cbo_leakage : float or ndarray
+        Collector-base generation leakage I_CBO at 25 degC under reverse bias [A].
+    leakage_doubling : float
+        Temperature rise that doubles I_CBO [K].
+    """
+
+    polarity: int = 1
+    saturation_current: float | np.ndarray = 1e-14
+    forward_beta: float | np.ndarray = 100.0
+    reverse_beta: float | np.ndarray = 1.0
+    forward_emission: float | np.ndarray = 1.0
+    reverse_emission: float | np.ndarray = 1.0
+    early_voltage: float | np.ndarray = np.inf
+    reverse_early_voltage: float | np.ndarray = np.inf
+    knee_current: float | np.ndarray = np.inf
+    reverse_knee_current: float | np.ndarray = np.inf
+    be_leakage_current: float | np.ndarray = 0.0
+    be_leakage_emission: float | np.ndarray = 1.5
+    bc_leakage_current: float | np.ndarray = 0.0
+    bc_leakage_emission: float | np.ndarray = 2.0
+    base_resistance: float | np.ndarray = 0.0
+    collector_resistance: float | np.ndarray = 0.0
+    emitter_resistance: float | np.ndarray = 0.0
+    energy_gap: float | np.ndarray = 1.11
+    saturation_current_exponent: float | np.ndarray = 3.0
+    beta_exponent: float | np.ndarray = 0.0
+    cbo_leakage: float | np.ndarray = 0.0
+    leakage_doubling: float | np.ndarray = 10.0
+
+    def __post_init__(self):
+        if self.polarity not in (1, -1):
+            raise ValueError(f"polarity must be +1 (NPN) or -1 (PNP), got {self.polarity!r}")
+
+    def replace(self, **changes) -> "TransistorParameters":
+        """A copy with some fields changed."""
+        return replace(self, **changes)
+
+    def at_temperature(self, temperature) -> "ScaledTransistor":
+        """Parameters scaled to ``temperature`` [K] (see the module Notes for the laws)."""
+        t = np.asarray(temperature, dtype=float)
+        vt = thermal_voltage(t)
+        ratio = t / REFERENCE_TEMPERATURE
+        # band-gap law for I_S: (T/T0)^XTI exp[(q Eg / k)(1/T0 - 1/T)]
+        is_factor = ratio ** self.saturation_current_exponent * np.exp(
+            self.energy_gap * ELEMENTARY_CHARGE / BOLTZMANN
+            * (1.0 / REFERENCE_TEMPERATURE - 1.0 / t)
+        )
+        beta_factor = ratio ** self.beta_exponent
+        with np.errstate(divide="ignore"):
+            inv = lambda v: 1.0 / np.asarray(v, dtype=float)  # noqa: E731 - inf -> 0
+            scaled = ScaledTransistor(
+                polarity=self.polarity,
+                saturation_current=self.saturation_current * is_factor,
+                inv_forward_beta=1.0 / (self.forward_beta * beta_factor),
+                inv_reverse_beta=1.0 / (self.reverse_beta * beta_factor),
+                inv_forward_nvt=1.0 / (self.forward_emission * vt),
+                inv_reverse_nvt=1.0 / (self.reverse_emission * vt),
+                inv_early=inv(self.early_voltage),
+                inv_reverse_early=inv(self.reverse_early_voltage),
+                inv_knee=inv(self.knee_current),
+                inv_reverse_knee=inv(self.reverse_knee_current),
+                be_leakage_current=self.be_leakage_current / beta_factor
+                * is_factor ** (1.0 / np.asarray(self.be_leakage_emission, dtype=float)),
+                inv_be_leakage_nvt=1.0 / (self.be_leakage_emission * vt),
+                bc_leakage_current=self.bc_leakage_current / beta_factor
+                * is_factor ** (1.0 / np.asarray(self.bc_leakage_emission, dtype=float)),
+                inv_bc_leakage_nvt=1.0 / (self.bc_leakage_emission * vt),
+                cbo_leakage=self.cbo_leakage
+                * 2.0 ** ((t - REFERENCE_TEMPERATURE) / self.leakage_doubling),
+                inv_two_vt=0.5 / vt,
+                base_resistance=self.base_resistance,
+                collector_resistance=self.collector_resistance,
+                emitter_resistance=self.emitter_resistance,
+                thermal_voltage=vt,
+                forward_emission=self.forward_emission,
+            )
+        return scaled
+
+
+@dataclass(frozen=True)
+class ScaledTransistor:
+    """Gummel-Poon parameters at the sample temperatures, in the form the equations use.
+
+    Built by :meth:`TransistorParameters.at_temperature`; reciprocals are stored so that the
+    hot path multiplies instead of dividing. ``subset(idx)`` selects samples.
+    """
+
+    polarity: int
+    saturation_current: np.ndarray
+    inv_forward_beta: np.ndarray
+    inv_reverse_beta: np.ndarray
+    inv_forward_nvt: np.ndarray
+    inv_reverse_nvt: np.ndarray
+    inv_early: np.ndarray
+    inv_reverse_early: np.ndarray
+    inv_knee: np.ndarray
+    inv_reverse_knee: np.ndarray
+    be_leakage_current: np.ndarray
+    inv_be_leakage_nvt: np.ndarray
+    bc_leakage_current: np.ndarray
+    inv_bc_leakage_nvt: np.ndarray
+    cbo_leakage: np.ndarray
+    inv_two_vt: np.ndarray
+    base_resistance: np.ndarray
+    collector_resistance: np.ndarray
+    emitter_resistance: np.ndarray
+    thermal_voltage: np.ndarray
+    forward_emission: np.ndarray
+
+    def subset(self, idx) -> "ScaledTransistor":
+        """The same parameters for the samples ``idx`` (arrays indexed, scalars kept)."""
+        out = {}
+        for f in fields(self):
+            v = getattr(self, f.name)
+            if isinstance(v, np.ndarray) and v.ndim > 0 and v.size > 1:
+                v = v[idx]
+            out[f.name] = v
+        return ScaledTransistor(**out)
+
+    def critical_voltage(self):
+        """Critical base-emitter voltage of the junction-limiting rule [V] (intrinsic NPN sense)."""
+        nvt = 1.0 / self.inv_forward_nvt
+        return critical_voltage(self.saturation_current, nvt)
+
+
+@dataclass(frozen=True)
+class JunctionCurrents:
+    """Currents into the collector and base terminals of the intrinsic transistor [A] and
+    their partial derivatives with respect to the intrinsic junction voltages [S]."""
+
+    collector: np.ndarray
+    base: np.ndarray
+    dcollector_dvbe: np.ndarray
+    dcollector_dvbc: np.ndarray
+    dbase_dvbe: np.ndarray
+    dbase_dvbc: np.ndarray
+
+    @property
+    def emitter_out(self):
+        """Current out of the emitter terminal [A] (= collector + base)."""
+        return self.collector + self.base
+
+
+def _is_zero(v) -> bool:
+    return np.ndim(v) == 0 and float(v) == 0.0
+
+
+def junction_currents(p: ScaledTransistor, v_be, v_bc) -> JunctionCurrents:
+    """Terminal currents of the intrinsic transistor and their derivatives.
+
+    Parameters
+    ----------
+    p : ScaledTransistor
+        Parameters at the sample temperatures (:meth:`TransistorParameters.at_temperature`).
+    v_be, v_bc : ndarray
+        Intrinsic base-emitter and base-collector voltages, base minus emitter and base minus
+        collector, in the actual sign (negative for a conducting PNP) [V].
+
+    Returns
+    -------
+    JunctionCurrents
+        Currents into the collector and base [A] (negative for a conducting PNP) and
+        d(current)/d(voltage) [S].
+
+    Notes
+    -----
+    Equations of the module Notes (Gummel & Poon [1]_ of the module). For a PNP the NPN
+    equations are evaluated at the mirrored voltages and the currents mirrored back; the
+    derivatives are unchanged by the double sign flip.
+    """
+    pol = p.polarity
+    if pol == 1:
+        vbe = v_be
+        vbc = v_bc
+    else:
+        vbe = -v_be
+        vbc = -v_bc
+    i_s = p.saturation_current
+    ef, def_ = _exp_lin(vbe * p.inv_forward_nvt)
+    er, der = _exp_lin(vbc * p.inv_reverse_nvt)
+    i_f = i_s * (ef - 1.0)
+    i_r = i_s * (er - 1.0)
+    gf = i_s * def_ * p.inv_forward_nvt  # dI_F/dV_BE
+    gr = i_s * der * p.inv_reverse_nvt  # dI_R/dV_BC
+
+    # base charge q_b (Gummel & Poon)
+    early = not (_is_zero(p.inv_early) and _is_zero(p.inv_reverse_early))
+    knee = not (_is_zero(p.inv_knee) and _is_zero(p.inv_reverse_knee))
+    if early:
+        den = 1.0 - vbc * p.inv_early - vbe * p.inv_reverse_early
+        small = den < _Q1_DENOMINATOR_MIN
+        if np.any(small):
+            dmin = _Q1_DENOMINATOR_MIN
+            q1 = np.where(small, (2.0 * dmin - den) / dmin**2, 1.0 / np.where(small, 1.0, den))
+            dq1_dden = np.where(small, -1.0 / dmin**2, -q1 * q1)
+        else:
+            q1 = 1.0 / den
+            dq1_dden = -q1 * q1
+        dq1_be = -dq1_dden * p.inv_reverse_early
+        dq1_bc = -dq1_dden * p.inv_early
+    if knee:
+        q2 = i_f * p.inv_knee + i_r * p.inv_reverse_knee
+        s = np.sqrt(1.0 + 4.0 * q2)
+        half = 0.5 * (1.0 + s)
+        inv_s = 1.0 / s
+        dq2_be = gf * p.inv_knee
+        dq2_bc = gr * p.inv_reverse_knee
+    if early and knee:
+        qb = q1 * half
+        dqb_be = dq1_be * half + q1 * inv_s * dq2_be
+        dqb_bc = dq1_bc * half + q1 * inv_s * dq2_bc
+    elif early:
+        qb, dqb_be, dqb_bc = q1, dq1_be, dq1_bc
+    elif knee:
+        qb, dqb_be, dqb_bc = half, inv_s * dq2_be, inv_s * dq2_bc
+    else:
+        qb = None
+
+    if qb is None:
+        ict = i_f - i_r
+        dict_be = gf
+        dict_bc = -gr
+    else:
+        inv_qb = 1.0 / qb
+        ict = (i_f - i_r) * inv_qb
+        dict_be = (gf - ict * dqb_be) * inv_qb
+        dict_bc = (-gr - ict * dqb_bc) * inv_qb
+
+    ibe = i_f * p.inv_forward_beta
+    dibe = gf * p.inv_forward_beta
+    if not _is_zero(p.be_leakage_current):
+        el, del_ = _exp_lin(vbe * p.inv_be_leakage_nvt)
+        ibe = ibe + p.be_leakage_current * (el - 1.0)
+        dibe = dibe + p.be_leakage_current * del_ * p.inv_be_leakage_nvt
+    ibc = i_r * p.inv_reverse_beta
+    dibc = gr * p.inv_reverse_beta
+    if not _is_zero(p.bc_leakage_current):
+        el, del_ = _exp_lin(vbc * p.inv_bc_leakage_nvt)
+        ibc = ibc + p.bc_leakage_current * (el - 1.0)
+        dibc = dibc + p.bc_leakage_current * del_ * p.inv_bc_leakage_nvt
+
+    ic = ict - ibc
+    ib = ibe + ibc
+    dic_be = dict_be
+    dic_bc = dict_bc - dibc
+    dib_be = dibe
+    dib_bc = dibc
+    if not _is_zero(p.cbo_leakage):
+        # generation current from collector to base: I_CBO tanh(V_CB / 2V_T), V_CB = -V_BC
+        th = np.tanh(-vbc * p.inv_two_vt)
+        gen = p.cbo_leakage * th
+        dgen_bc = -p.cbo_leakage * (1.0 - th * th) * p.inv_two_vt
+        ic = ic + gen
+        ib = ib - gen
+        dic_bc = dic_bc + dgen_bc
+        dib_bc = dib_bc - dgen_bc
+    if pol == -1:
+        ic = -ic
+        ib = -ib
+    return JunctionCurrents(ic, ib, dic_be, dic_bc, dib_be, dib_bc)
+
+
+@dataclass(frozen=True)
+class TerminalOffsets:
+    """External base and collector voltages relative to the external emitter [V], with their
+    derivatives with respect to the intrinsic junction voltages [1]."""
+
+    base: np.ndarray
+    collector: np.ndarray
+    dbase_dvbe: np.ndarray
+    dbase_dvbc: np.ndarray
+    dcollector_dvbe: np.ndarray
+    dcollector_dvbc: np.ndarray
+
+
+def terminal_offsets(p: ScaledTransistor, v_be, v_bc, c: JunctionCurrents) -> TerminalOffsets:
+    """Terminal voltages relative to the external emitter through the series resistances.
+
+    Parameters
+    ----------
+    p : ScaledTransistor
+        Parameters (the series resistances are used).
+    v_be, v_bc : ndarray
+        Intrinsic junction voltages [V].
+    c : JunctionCurrents
+        The currents at these voltages (:func:`junction_currents`).
+
+    Returns
+    -------
+    TerminalOffsets
+        ``V_B - V_E = v_be + I_B r_B + (I_B + I_C) r_E`` and
+        ``V_C - V_E = v_be - v_bc + I_C r_C + (I_B + I_C) r_E`` [V] and their derivatives.
+
+    Notes
+    -----
+    Kirchhoff's voltage law around the series resistances; the currents are those into the
+    collector and base terminals, so the emitter carries their sum outwards.
+    """
+    rb, rc, re = p.base_resistance, p.collector_resistance, p.emitter_resistance
+    vb = v_be
+    vc = v_be - v_bc
+    one = np.ones_like(np.asarray(v_be, dtype=float))
+    dvb_be, dvb_bc = one, 0.0 * one
+    dvc_be, dvc_bc = one, -one
+    if not _is_zero(rb):
+        vb = vb + c.base * rb
+        dvb_be = dvb_be + c.dbase_dvbe * rb
+        dvb_bc = dvb_bc + c.dbase_dvbc * rb
+    if not _is_zero(rc):
+        vc = vc + c.collector * rc
+        dvc_be = dvc_be + c.dcollector_dvbe * rc
+        dvc_bc = dvc_bc + c.dcollector_dvbc * rc
+    if not _is_zero(re):
+        ie = c.collector + c.base
+        die_be = c.dcollector_dvbe + c.dbase_dvbe
+        die_bc = c.dcollector_dvbc + c.dbase_dvbc
+        vb = vb + ie * re
+        vc = vc + ie * re
+        dvb_be = dvb_be + die_be * re
+        dvb_bc = dvb_bc + die_bc * re
+        dvc_be = dvc_be + die_be * re
+        dvc_bc = dvc_bc + die_bc * re
+    return TerminalOffsets(vb, vc, dvb_be, dvb_bc, dvc_be, dvc_bc)
+
+
+def critical_voltage(saturation_current, emission_vt):
+    """Critical voltage of an exponential junction [V].
+
+    Above ``V_crit = n V_T ln(n V_T / (sqrt(2) I_S))`` the diode current's curvature makes a
+    plain Newton step overshoot; :func:`limit_junction_step` limits steps that end above it.
+    The 1 A / 1 V scaling of the argument is the usual choice (from memory).
+    """
+    return emission_vt * np.log(emission_vt / (np.sqrt(2.0) * saturation_current))
+
+
+def limit_junction_step(v_new, v_old, emission_vt, v_crit):
+    """Limit a Newton update of a forward-biased exponential junction.
+
+    Parameters
+    ----------
+    v_new : ndarray
+        Proposed junction voltage (forward bias positive) [V].
+    v_old : ndarray
+        Junction voltage of the previous iterate [V].
+    emission_vt : ndarray
+        Emission coefficient times thermal voltage [V].
+    v_crit : ndarray
+        Critical voltage (:func:`critical_voltage`) [V].
+
+    Returns
+    -------
+    ndarray
+        The limited junction voltage [V].
+
+    Notes
+    -----
+    A step that ends above ``v_crit`` and is larger than two ``n V_T`` is replaced by the step
+    that changes the junction *current* of the linearised diode by the same amount the full step
+    proposed: ``v_old + n V_T ln(1 + (v_new - v_old) / (n V_T))`` when the old point is
+    forward-biased, or ``n V_T ln(v_new / n V_T)`` when it was not (the classical logarithmic
+    limiting of circuit simulation, from memory). Steps downwards and small steps pass unchanged,
+    so the limit never moves a converged iterate.
+    """
+    v_new = np.asarray(v_new, dtype=float)
+    v_old = np.asarray(v_old, dtype=float)
+    step = v_new - v_old
+    need = (v_new > v_crit) & (step > 2.0 * emission_vt)
+    if not np.any(need):
+        return v_new
+    with np.errstate(divide="ignore", invalid="ignore"):
+        arg = 1.0 + step / emission_vt
+        from_forward = v_old + emission_vt * np.log(arg)
+        from_reverse = emission_vt * np.log(np.maximum(v_new / emission_vt, 1.0))
+    limited = np.where(v_old > 0.0, from_forward, from_reverse)
+    return np.where(need, limited, v_new)
