@@ -1,0 +1,180 @@
+"""Thermal models: junction temperature, derating, electro-thermal fixed point.
+
+Symbol | variable name | meaning
+------ | ------------- | -------
+T_a    | ambient       | ambient temperature [K]
+T_j    | junction      | junction temperature [K]
+P      | power         | dissipation averaged over the PWM period [W]
+theta_JA | theta_ja    | thermal resistance junction to ambient [K/W]
+theta_JC, theta_CS, theta_SA | theta_jc, theta_cs, theta_sa | junction-case, case-sink,
+         |             | sink-ambient [K/W]
+
+References
+----------
+.. [1] JEDEC JESD51-1, "Integrated Circuit Thermal Measurement Method - Electrical Test
+   Method (Single Semiconductor Device)," 1995; JESD51-2, "Integrated Circuits Thermal Test
+   Method Environmental Conditions - Natural Convection (Still Air)," 1995.
+.. [2] MIL-PRF-39017, "Resistors, Fixed, Film (Insulated), Nonestablished Reliability,
+   Established Reliability, and Space Level," derating figure; IEC 60115-1, "Fixed resistors
+   for use in electronic equipment - Part 1: Generic specification" (rated ambient
+   temperature, upper category temperature).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable
+
+import numpy as np
+
+#: the electro-thermal loop stops when no junction temperature moves by more than this [K]
+SETTLE_KELVIN = 0.05
+#: most fixed-point iterations before a sample is called a runaway
+MAX_ITERATIONS = 60
+#: a junction above this is beyond any model (and any silicon): the loop has run away [K]
+RUNAWAY_KELVIN = 1000.0
+
+
+def junction_temperature(power, ambient, theta_ja):
+    """Steady junction temperature in natural convection.
+
+    Parameters
+    ----------
+    power : array_like
+        Dissipation [W].
+    ambient : array_like
+        Ambient temperature [K].
+    theta_ja : array_like
+        Thermal resistance junction to ambient [K/W].
+
+    Returns
+    -------
+    ndarray
+        T_j = T_a + theta_JA P [K] (JESD51-1/-2 [1]).
+    """
+    return np.asarray(ambient, dtype=float) + np.asarray(theta_ja) * np.asarray(power)
+
+
+def heatsink_resistance(theta_jc, theta_cs, theta_sa):
+    """Thermal resistance junction to ambient through a heatsink [K/W].
+
+    theta_JA = theta_JC + theta_CS + theta_SA: the three resistances in series ([1]).
+    """
+    return np.asarray(theta_jc) + np.asarray(theta_cs) + np.asarray(theta_sa)
+
+
+def derated_power(rated_power, ambient, rated_ambient, zero_power_temperature):
+    """Allowed dissipation of a part at an ambient temperature (linear derating curve).
+
+    Full rated power up to ``rated_ambient``, falling linearly to zero at
+    ``zero_power_temperature`` (the maximum element / junction temperature), zero above it —
+    the shape of the MIL-PRF-39017 resistor derating figure and of IEC 60115-1 practice [2],
+    and of a transistor's total-power derating (P_tot from 25 degC to T_j max).
+
+    Parameters
+    ----------
+    rated_power : array_like
+        Rated power [W].
+    ambient : array_like
+        Ambient temperature [K].
+    rated_ambient : array_like
+        Ambient up to which the full rating applies [K] (70 degC for film resistors).
+    zero_power_temperature : array_like
+        Temperature at which the allowed power reaches zero [K].
+
+    Returns
+    -------
+    ndarray
+        Allowed power [W].
+    """
+    ta = np.asarray(ambient, dtype=float)
+    span = np.asarray(zero_power_temperature, dtype=float) - np.asarray(rated_ambient)
+    frac = np.clip((np.asarray(zero_power_temperature) - ta) / span, 0.0, 1.0)
+    return np.asarray(rated_power) * frac
+
+
+@dataclass
+class FixedPointResult:
+    """Junction temperatures [K] per device (NaN where runaway), settled flag, iterations."""
+
+    temperatures: dict[str, np.ndarray]
+    settled: np.ndarray
+    iterations: np.ndarray
+
+
+def electrothermal(power_at: Callable[[dict[str, np.ndarray]], dict[str, np.ndarray]],
+                   ambient: np.ndarray, theta: dict[str, np.ndarray],
+                   shared: dict[str, str] | None = None, limit: dict[str, np.ndarray] | None = None,
+                   settle: float = SETTLE_KELVIN, max_iterations: int = MAX_ITERATIONS
+                   ) -> FixedPointResult:
+    """Electro-thermal fixed point of every sample, vectorized.
+
+    Iterates T_j = T_a + theta P(T_j) for every device until no temperature moves by more than
+    ``settle`` kelvin. ``power_at(temperatures)`` evaluates the whole chunk's dissipation per
+    device at the given junction temperatures (one vectorized call per iteration; samples that
+    have settled keep their temperatures). Devices listed in ``shared`` (device -> the device
+    whose junction it shares, e.g. the two transistors of a monolithic Darlington) take the
+    sum of both powers through the shared thermal resistance.
+
+    The iteration is damped (a relaxation factor that halves for a sample whose step grows),
+    so a stable electro-thermal loop converges even when d(theta P)/dT approaches 1. A sample
+    whose temperature is still moving after ``max_iterations``, whose temperature exceeds
+    ``limit`` + 100 K (the loop would only go on heating), or whose power is not finite, is
+    returned with ``settled = False``: thermal runaway. So is one that passes
+    :data:`RUNAWAY_KELVIN`.
+
+    Parameters
+    ----------
+    power_at : callable
+        ``power_at({device: T_j [K]}) -> {device: P [W]}``, arrays of the chunk's length.
+    ambient : ndarray
+        Ambient temperature per sample [K].
+    theta : dict
+        Thermal resistance junction to ambient per device [K/W].
+    shared : dict, optional
+        Devices on one die: name -> name of the device that carries the junction.
+    limit : dict, optional
+        Maximum junction temperature per device [K]; far beyond it a sample is declared a
+        runaway without more iterations.
+    """
+    shared = shared or {}
+    names = list(theta)
+    n = len(ambient)
+    temps = {d: np.array(ambient, dtype=float) for d in names}
+    settled = np.zeros(n, dtype=bool)
+    runaway = np.zeros(n, dtype=bool)
+    iterations = np.zeros(n, dtype=np.int64)
+    relax = np.ones(n)
+    last_step = np.full(n, np.inf)
+    for it in range(1, max_iterations + 1):
+        active = ~(settled | runaway)
+        if not active.any():
+            break
+        power = power_at(temps)
+        heat = {d: np.asarray(power[d], dtype=float) for d in names}
+        for d, carrier in shared.items():
+            heat[carrier] = heat[carrier] + heat[d]
+        step_max = np.zeros(n)
+        new = {}
+        for d in names:
+            carrier = shared.get(d, d)
+            target = np.asarray(ambient) + np.asarray(theta[carrier]) * heat[carrier]
+            delta = target - temps[d]
+            new[d] = temps[d] + relax * delta
+            step_max = np.maximum(step_max, np.abs(delta))
+        bad = ~np.isfinite(step_max)
+        for d in names:
+            bad |= new[d] > RUNAWAY_KELVIN
+            if limit is not None and d in limit:
+                bad |= new[d] > np.asarray(limit[d]) + 100.0
+        growing = step_max > last_step
+        relax = np.where(growing & active, np.maximum(relax * 0.5, 1 / 64), relax)
+        last_step = np.where(active, step_max, last_step)
+        for d in names:
+            temps[d] = np.where(active & ~bad, new[d], temps[d])
+        runaway |= active & bad
+        iterations = np.where(active, it, iterations)
+        settled |= active & ~bad & (step_max < settle)
+    runaway |= ~settled
+    out = {d: np.where(runaway, np.nan, t) for d, t in temps.items()}
+    return FixedPointResult(out, ~runaway, iterations)

@@ -1,0 +1,83 @@
+"""Thermal models: junction temperature, heatsink chain, derating, electro-thermal fixed point."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy import optimize
+
+from tolerance.models import thermal
+
+C0 = 273.15
+
+
+def test_junction_temperature_natural_convection():
+    # JEDEC JESD51-1/-2: T_j = T_a + theta_JA * P; 0.3 W in a 200 K/W package at 25 degC
+    # (the TO-92 class figure of REFERENCES, from memory) gives 85 degC
+    assert_allclose(thermal.junction_temperature(0.3, C0 + 25, 200.0), C0 + 85.0)
+
+
+def test_heatsink_chain():
+    # JESD51 series chain theta_JA = theta_JC + theta_CS + theta_SA; a constructed example:
+    # 15 W through 1.5 + 0.5 + 3 K/W from 40 degC ambient gives 115 degC
+    theta = thermal.heatsink_resistance(1.5, 0.5, 3.0)
+    assert_allclose(theta, 5.0)
+    assert_allclose(thermal.junction_temperature(15.0, C0 + 40, theta), C0 + 115.0)
+
+
+def test_derating_curve_break_points():
+    # MIL-PRF-39017 / IEC 60115-1 practice: full power to the rated ambient (70 degC),
+    # linear to zero at the maximum element temperature (155 degC here)
+    ta = C0 + np.array([25.0, 70.0, 112.5, 155.0, 170.0])
+    p = thermal.derated_power(0.25, ta, C0 + 70, C0 + 155)
+    assert_allclose(p, [0.25, 0.25, 0.125, 0.0, 0.0], atol=1e-15)
+
+
+def test_fixed_point_matches_scipy_root_per_sample():
+    rng = np.random.default_rng(4)
+    n = 300
+    ta = C0 + rng.uniform(-40, 85, n)
+    theta = rng.uniform(50, 250, n)
+    p0 = rng.uniform(0.05, 0.4, n)
+    k = rng.uniform(0.0, 0.012, n)
+
+    def power_at(t):
+        # dissipation rising with temperature (gain and leakage grow when hot)
+        return {"q": p0 * np.exp(k * (t["q"] - (C0 + 25)))}
+
+    res = thermal.electrothermal(power_at, ta, {"q": theta}, settle=1e-6, max_iterations=400)
+    for i in range(n):
+        f = lambda t: t - ta[i] - theta[i] * p0[i] * np.exp(k[i] * (t - (C0 + 25)))  # noqa: E731
+        if res.settled[i]:
+            # scipy.optimize.brentq as the per-sample reference for the stable fixed point
+            ref = optimize.brentq(f, ta[i], res.temperatures["q"][i] + 1.0, xtol=1e-10)
+            assert res.temperatures["q"][i] == pytest.approx(ref, abs=1e-4)
+        else:
+            # no fixed point: t - ta - theta P(t) stays positive... never zero below 1000 K
+            grid = np.linspace(ta[i], ta[i] + 1000, 20001)
+            assert np.all(f(grid) < 0)
+    assert res.settled.mean() > 0.8
+
+
+def test_runaway_is_flagged_and_a_stable_case_settles():
+    ta = np.full(2, C0 + 25.0)
+    theta = np.array([100.0, 100.0])
+    p0 = np.array([0.2, 0.2])
+    # loop gain theta * dP/dT: 100 * 0.2 * 0.01 = 0.2 (stable) and 100 * 0.2 * 0.1 = 2 (no
+    # fixed point for an exponential power law once theta P0 k e > 1; common practice)
+    k = np.array([0.01, 0.1])
+    res = thermal.electrothermal(lambda t: {"q": p0 * np.exp(k * (t["q"] - ta))}, ta,
+                                 {"q": theta}, limit={"q": np.full(2, C0 + 150)})
+    assert res.settled.tolist() == [True, False]
+    assert np.isnan(res.temperatures["q"][1])
+
+
+def test_shared_junction_sums_the_powers():
+    ta = np.full(3, C0 + 25.0)
+    res = thermal.electrothermal(lambda t: {"a": np.full(3, 0.1), "b": np.full(3, 0.3)}, ta,
+                                 {"a": np.full(3, 50.0), "b": np.full(3, 50.0)},
+                                 shared={"a": "b"})
+    # one die: both dissipations through one theta_JA (JESD51 relation on the sum)
+    assert_allclose(res.temperatures["a"], C0 + 25 + 50 * 0.4)
+    assert_allclose(res.temperatures["b"], C0 + 25 + 50 * 0.4)
