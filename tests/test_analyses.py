@@ -157,3 +157,21 @@ def test_pin_override_reproduces_baseline_columns(study):
     same = run(study, overrides={"x2": Override("scale", 1.0)})
     # scaling by one is the identity: every metric identical (common random numbers)
     assert np.array_equal(base.samples["y"], same.samples["y"])
+
+
+def test_notebook_api_mirrors_the_commands(write_study):
+    from matplotlib.figure import Figure
+
+    study = load_study(write_study(LINEAR.format(x1=SPREAD) + '[limits]\ny = {min = "1 V"}\n'))
+    res = study.run(samples=2000)
+    assert isinstance(res.plot.histogram("y"), Figure)
+    assert isinstance(res.plot.tornado("y"), Figure)
+    assert isinstance(res.plot.driver_scatter("y_positive"), Figure)
+    with pytest.raises(KeyError, match="no metric"):
+        res.plot.histogram("w")
+    assert list(res.criteria.index) == ["y_positive"]
+    assert "mean" in res.metrics.columns
+    comparison, base, pinned = study.whatif("x1=min", samples=500)
+    assert comparison["pins"] == {"x1": -1.0}
+    assert "y" in study.worstcase(samples=500)["metrics"]
+    assert study.choose("x2=E6:1..2.2", samples=300)["candidates"]

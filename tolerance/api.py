@@ -86,6 +86,60 @@ class RunResult:
         """One row per metric: unit, mean, std, extremes and percentiles [SI units]."""
         return pd.DataFrame(self.summary["metrics"]).T
 
+    @property
+    def plot(self) -> "ResultPlots":
+        """Figures of this result: ``result.plot.histogram("drive_margin")`` and friends."""
+        return ResultPlots(self)
+
+
+class ResultPlots:
+    """matplotlib figures of a :class:`RunResult` (no pyplot state; display in a notebook)."""
+
+    def __init__(self, result: RunResult):
+        self._r = result
+
+    def histogram(self, metric: str):
+        """Histogram and ECDF of ``metric`` with its limits and counted failure rate."""
+        from tolerance import plots
+
+        self._check(metric)
+        return plots.histogram(self._r.samples, metric, self._r.summary)
+
+    def tornado(self, metric: str, measure: str = "srrc", top: int = 10):
+        """Rank sensitivities of ``metric`` (``srrc``, ``spearman`` or ``prcc``)."""
+        from tolerance import plots
+
+        self._check(metric)
+        return plots.tornado(self._r.summary.get("sensitivity", []), metric, top, measure)
+
+    def driver_scatter(self, criterion: str, input_name: str | None = None):
+        """The top failure driver (or ``input_name``) against the criterion's margin."""
+        from tolerance import plots
+
+        crit = self._r.summary["criteria"].get(criterion)
+        if crit is None:
+            raise KeyError(f"no criterion {criterion!r}; criteria: "
+                           f"{', '.join(self._r.summary['criteria'])}")
+        if input_name is None:
+            ranking = self._r.summary.get("failure_drivers", {}).get(criterion, {}).get(
+                "ranking") or []
+            if ranking:
+                input_name = ranking[0]["input"]
+            else:
+                rows = [r for r in self._r.summary.get("sensitivity", [])
+                        if r["metric"] == crit["metric"] and r.get("spearman") is not None]
+                if not rows:
+                    raise ValueError(f"no varying input to plot against {criterion!r}")
+                input_name = max(rows, key=lambda r: abs(r["spearman"]))["input"]
+        units = {p["name"]: p["unit"] for p in self._r.summary.get("parameters", [])}
+        return plots.driver_scatter(self._r.samples, input_name, crit["metric"],
+                                    self._r.summary, units)
+
+    def _check(self, metric: str) -> None:
+        if metric not in self._r.summary["metrics"]:
+            raise KeyError(f"no metric {metric!r}; metrics: "
+                           f"{', '.join(self._r.summary['metrics'])}")
+
 
 def _prepare_folder(out: Path, force: bool, resume: bool) -> None:
     if out.exists() and not out.is_dir():

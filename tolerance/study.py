@@ -424,6 +424,35 @@ class Study:
 
         return run(self, **kwargs)
 
+    def whatif(self, *pins: str, **kwargs):
+        """Pinned run against the baseline (common random numbers), e.g.
+        ``study.whatif("Q2.hfe=min")``; see :func:`tolerance.whatif.whatif`."""
+        from tolerance.whatif import whatif
+
+        return whatif(self, list(pins), **kwargs)
+
+    def worstcase(self, samples: int | None = None, seed: int | None = None) -> dict:
+        """Extreme-value, RSS and optimizer worst case beside the Monte Carlo extremes."""
+        from tolerance.analysis import study_worst_case
+
+        return study_worst_case(self, samples or self.settings.samples,
+                                self.settings.seed if seed is None else seed)
+
+    def sensitivity(self, samples: int | None = None, seed: int | None = None,
+                    sobol_samples: int = 1024) -> dict:
+        """Rank sensitivities and Sobol indices (``sobol_samples`` a power of two)."""
+        from tolerance.analysis import study_sensitivity
+
+        return study_sensitivity(self, samples or self.settings.samples,
+                                 self.settings.seed if seed is None else seed, sobol_samples)
+
+    def choose(self, *vary: str, **kwargs) -> dict:
+        """Preferred-value sweep, e.g. ``study.choose("RBE2=E24:47..1k")``; see
+        :func:`tolerance.choose.choose`."""
+        from tolerance.choose import choose
+
+        return choose(self, list(vary), **kwargs)
+
     def correlation_matrix(self) -> np.ndarray:
         """Correlation matrix of the normal scores of all parameters (identity if none)."""
         names = self.parameter_names
