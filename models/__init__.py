@@ -5,3 +5,4 @@ Importing the package registers every stage with :func:`tolerance.protocol.regis
 
 from tolerance.models.stages import single  # noqa: F401  (registers "single")
 from tolerance.models.stages import darlington  # noqa: F401,E402  (registers "darlington")
+from tolerance.models.stages import sziklai  # noqa: F401,E402  (registers "sziklai")

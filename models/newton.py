@@ -69,12 +69,14 @@ def _max_abs_columns(a: np.ndarray) -> np.ndarray:
     return out
 
 
-def solve_stacked(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+def solve_stacked(a, b: np.ndarray) -> np.ndarray:
     """Solve the stacked linear systems ``a[s] @ x[s] = b[s]``.
 
     Parameters
     ----------
-    a : ndarray, shape (S, n, n)
+    a : ndarray, shape (S, n, n), or nested list
+        The matrices, or (structure of arrays) ``a[i][j]`` an (S,) array or a scalar for each
+        entry, as a system may return them to avoid assembling the stack.
     b : ndarray, shape (S, n)
 
     Returns
@@ -87,47 +89,72 @@ def solve_stacked(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     Gaussian elimination with partial (row) pivoting, each elimination step vectorized over the
     samples (textbook algorithm, e.g. Golub & Van Loan, Matrix Computations, alg. 3.4.1).
     """
-    a = np.asarray(a, dtype=float)
     b = np.asarray(b, dtype=float)
     s, n = b.shape
+    if isinstance(a, list):
+        m = [[np.array(np.broadcast_to(e, (s,)), dtype=float) for e in row] for row in a]
+    else:
+        a = np.asarray(a, dtype=float)
+        if n == 1:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                return b / a[:, :, 0]
+        if n == 2:
+            return _solve_two(a[:, 0, 0], a[:, 0, 1], a[:, 1, 0], a[:, 1, 1], b[:, 0], b[:, 1])
+        m = [[np.array(a[:, i, j]) for j in range(n)] for i in range(n)]
     if n == 1:
         with np.errstate(divide="ignore", invalid="ignore"):
-            return b / a[:, :, 0]
+            return (b[:, 0] / m[0][0])[:, None]
     if n == 2:
-        a00, a01, a10, a11 = a[:, 0, 0], a[:, 0, 1], a[:, 1, 0], a[:, 1, 1]
-        b0, b1 = b[:, 0], b[:, 1]
-        # pivot on the larger of the first column
-        swap = np.abs(a10) > np.abs(a00)
-        p00 = np.where(swap, a10, a00)
-        p01 = np.where(swap, a11, a01)
-        q0 = np.where(swap, b1, b0)
-        r10 = np.where(swap, a00, a10)
-        r11 = np.where(swap, a01, a11)
-        q1 = np.where(swap, b0, b1)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            f = r10 / p00
-            x1 = (q1 - f * q0) / (r11 - f * p01)
-            x0 = (q0 - p01 * x1) / p00
-        return np.stack([x0, x1], axis=1)
-    m = np.concatenate([a, b[:, :, None]], axis=2)
-    rows = np.arange(s)
-    with np.errstate(divide="ignore", invalid="ignore"):
+        return _solve_two(m[0][0], m[0][1], m[1][0], m[1][1], b[:, 0], b[:, 1])
+    return _eliminate(m, b)
+
+
+def _solve_two(a00, a01, a10, a11, b0, b1):
+    """2 x 2 systems by elimination with pivoting on the larger first-column entry."""
+    swap = np.abs(a10) > np.abs(a00)
+    p00 = np.where(swap, a10, a00)
+    p01 = np.where(swap, a11, a01)
+    q0 = np.where(swap, b1, b0)
+    r10 = np.where(swap, a00, a10)
+    r11 = np.where(swap, a01, a11)
+    q1 = np.where(swap, b0, b1)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        f = r10 / p00
+        x1 = (q1 - f * q0) / (r11 - f * p01)
+        x0 = (q0 - p01 * x1) / p00
+    return np.stack([x0, x1], axis=1)
+
+
+def _eliminate(m, b):
+    """Gaussian elimination with partial pivoting on per-entry arrays ``m[i][j]`` (modified)."""
+    s, n = b.shape
+    r = [np.array(b[:, i]) for i in range(n)]
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         for k in range(n):
-            piv = k + np.argmax(np.abs(m[:, k:, k]), axis=1)
-            if np.any(piv != k):
-                row_k = m[rows, k].copy()
-                m[rows, k] = m[rows, piv]
-                m[rows, piv] = row_k
-            inv_p = 1.0 / m[:, k, k]
+            # partial pivoting: pairwise exchanges bring the largest |a_ik| (i >= k) to row k;
+            # only the samples that need an exchange are touched
             for i in range(k + 1, n):
-                f = m[:, i, k] * inv_p
-                m[:, i, k:] -= f[:, None] * m[:, k, k:]
+                idx = np.flatnonzero(np.abs(m[i][k]) > np.abs(m[k][k]))
+                if idx.size:
+                    for j in range(k, n):
+                        top = m[k][j][idx]
+                        m[k][j][idx] = m[i][j][idx]
+                        m[i][j][idx] = top
+                    top = r[k][idx]
+                    r[k][idx] = r[i][idx]
+                    r[i][idx] = top
+            inv_p = 1.0 / m[k][k]
+            for i in range(k + 1, n):
+                f = m[i][k] * inv_p
+                for j in range(k + 1, n):
+                    m[i][j] -= f * m[k][j]
+                r[i] -= f * r[k]
         x = np.empty((s, n))
         for i in range(n - 1, -1, -1):
-            acc = m[:, i, n].copy()
+            acc = r[i]
             for j in range(i + 1, n):
-                acc -= m[:, i, j] * x[:, j]
-            x[:, i] = acc / m[:, i, i]
+                acc = acc - m[i][j] * x[:, j]
+            x[:, i] = acc / m[i][i]
     return x
 
 

@@ -242,9 +242,8 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
         except StudyError:
             t = None
         if t is None:
+            # one number: this unit's gain (a what-if); the class figures stay as they are
             fixed = part.quantity("hfe", "1", positive=True)
-            figures["hfe_min"] = figures["hfe_max"] = fixed
-            figures.pop("hfe_typ", None)
             hfe_spec = {"min": fixed, "max": fixed}
         else:
             lo = t.quantity("min", "1", positive=True)
@@ -269,6 +268,11 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
         raise part.error(key, f"this position needs a {polarity.upper()} transistor")
     figures.setdefault("polarity", polarity or "npn")
 
+    vce_sat = figures.get("vce_sat_max")
+    if supply_minimum is not None and vce_sat is not None and vce_sat >= supply_minimum:
+        key = "vce_sat_max" if part.has("vce_sat_max") else "device"
+        raise part.error(key, f"the saturation voltage {vce_sat:g} V is at or above the "
+                              f"lowest supply {supply_minimum:g} V")
     try:
         ds = Datasheet.from_figures(figures)
     except DatasheetError as exc:
@@ -277,9 +281,6 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
             key = "hfe"
         raise part.error(key, exc.message if key == exc.key else f"{exc.key}: {exc.message}") \
             from None
-    if supply_minimum is not None and ds.vce_sat_max >= supply_minimum:
-        raise part.error("vce_sat_max", f"the saturation voltage {ds.vce_sat_max:g} V is at or "
-                                        f"above the lowest supply {supply_minimum:g} V")
     try:
         fitted = device_for(ds.figures())
     except DatasheetError as exc:

@@ -299,6 +299,15 @@ def _is_zero(v) -> bool:
     return np.ndim(v) == 0 and float(v) == 0.0
 
 
+def _add(a, b):
+    """a + b where None stands for a structural zero."""
+    if a is None:
+        return b
+    if b is None:
+        return a
+    return a + b
+
+
 def junction_currents(p: ScaledTransistor, v_be, v_bc) -> JunctionCurrents:
     """Terminal currents of the intrinsic transistor and their derivatives.
 
@@ -337,38 +346,44 @@ def junction_currents(p: ScaledTransistor, v_be, v_bc) -> JunctionCurrents:
     gf = i_s * def_ * p.inv_forward_nvt  # dI_F/dV_BE
     gr = i_s * der * p.inv_reverse_nvt  # dI_R/dV_BC
 
-    # base charge q_b (Gummel & Poon)
-    early = not (_is_zero(p.inv_early) and _is_zero(p.inv_reverse_early))
-    knee = not (_is_zero(p.inv_knee) and _is_zero(p.inv_reverse_knee))
-    if early:
-        den = 1.0 - vbc * p.inv_early - vbe * p.inv_reverse_early
-        small = den < _Q1_DENOMINATOR_MIN
-        if np.any(small):
+    # base charge q_b (Gummel & Poon); terms whose parameters are off are skipped (None is a
+    # structural zero), which keeps the common cases (no reverse Early voltage, no reverse
+    # knee) cheap
+    has_va, has_vb = not _is_zero(p.inv_early), not _is_zero(p.inv_reverse_early)
+    has_kf, has_kr = not _is_zero(p.inv_knee), not _is_zero(p.inv_reverse_knee)
+    qb = dqb_be = dqb_bc = None
+    if has_va or has_vb:
+        den = 1.0
+        if has_va:
+            den = den - vbc * p.inv_early
+        if has_vb:
+            den = den - vbe * p.inv_reverse_early
+        if np.min(den) < _Q1_DENOMINATOR_MIN:
             dmin = _Q1_DENOMINATOR_MIN
+            small = den < dmin
             q1 = np.where(small, (2.0 * dmin - den) / dmin**2, 1.0 / np.where(small, 1.0, den))
-            dq1_dden = np.where(small, -1.0 / dmin**2, -q1 * q1)
+            slope = np.where(small, 1.0 / dmin**2, q1 * q1)  # -dq1/dden
         else:
             q1 = 1.0 / den
-            dq1_dden = -q1 * q1
-        dq1_be = -dq1_dden * p.inv_reverse_early
-        dq1_bc = -dq1_dden * p.inv_early
-    if knee:
-        q2 = i_f * p.inv_knee + i_r * p.inv_reverse_knee
+            slope = q1 * q1
+        qb = q1
+        dqb_bc = slope * p.inv_early if has_va else None
+        dqb_be = slope * p.inv_reverse_early if has_vb else None
+    if has_kf or has_kr:
+        q2 = i_f * p.inv_knee if has_kf else 0.0
+        if has_kr:
+            q2 = q2 + i_r * p.inv_reverse_knee
         s = np.sqrt(1.0 + 4.0 * q2)
-        half = 0.5 * (1.0 + s)
-        inv_s = 1.0 / s
-        dq2_be = gf * p.inv_knee
-        dq2_bc = gr * p.inv_reverse_knee
-    if early and knee:
-        qb = q1 * half
-        dqb_be = dq1_be * half + q1 * inv_s * dq2_be
-        dqb_bc = dq1_bc * half + q1 * inv_s * dq2_bc
-    elif early:
-        qb, dqb_be, dqb_bc = q1, dq1_be, dq1_bc
-    elif knee:
-        qb, dqb_be, dqb_bc = half, inv_s * dq2_be, inv_s * dq2_bc
-    else:
-        qb = None
+        half = 0.5 + 0.5 * s
+        w = 1.0 / s if qb is None else qb / s  # q1 d(half)/dq2
+        kb_e = w * (gf * p.inv_knee) if has_kf else None
+        kb_c = w * (gr * p.inv_reverse_knee) if has_kr else None
+        if qb is None:
+            qb, dqb_be, dqb_bc = half, kb_e, kb_c
+        else:
+            dqb_be = _add(None if dqb_be is None else dqb_be * half, kb_e)
+            dqb_bc = _add(None if dqb_bc is None else dqb_bc * half, kb_c)
+            qb = qb * half
 
     if qb is None:
         ict = i_f - i_r
@@ -377,8 +392,8 @@ def junction_currents(p: ScaledTransistor, v_be, v_bc) -> JunctionCurrents:
     else:
         inv_qb = 1.0 / qb
         ict = (i_f - i_r) * inv_qb
-        dict_be = (gf - ict * dqb_be) * inv_qb
-        dict_bc = (-gr - ict * dqb_bc) * inv_qb
+        dict_be = gf * inv_qb if dqb_be is None else (gf - ict * dqb_be) * inv_qb
+        dict_bc = -gr * inv_qb if dqb_bc is None else (-gr - ict * dqb_bc) * inv_qb
 
     ibe = i_f * p.inv_forward_beta
     dibe = gf * p.inv_forward_beta
@@ -401,9 +416,9 @@ def junction_currents(p: ScaledTransistor, v_be, v_bc) -> JunctionCurrents:
     dib_bc = dibc
     if not _is_zero(p.cbo_leakage):
         # generation current from collector to base: I_CBO tanh(V_CB / 2V_T), V_CB = -V_BC
-        th = np.tanh(-vbc * p.inv_two_vt)
+        th = np.tanh(vbc * -p.inv_two_vt)
         gen = p.cbo_leakage * th
-        dgen_bc = -p.cbo_leakage * (1.0 - th * th) * p.inv_two_vt
+        dgen_bc = (th * th - 1.0) * (p.cbo_leakage * p.inv_two_vt)
         ic = ic + gen
         ib = ib - gen
         dic_bc = dic_bc + dgen_bc

@@ -3,6 +3,7 @@ relations, monotonic behaviour, failure flagging."""
 
 from __future__ import annotations
 
+import math
 import pickle
 import textwrap
 
@@ -10,7 +11,7 @@ import numpy as np
 import pytest
 from scipy import optimize
 
-from tolerance.models.transistor import junction_currents
+from tolerance.models.transistor import BOLTZMANN, ELEMENTARY_CHARGE, TransistorParameters
 from tolerance.study import load_study
 
 # ---------------------------------------------------------------------------------------------
@@ -86,21 +87,90 @@ def nominal(study, n=1, **pins):
 
 
 # ---------------------------------------------------------------------------------------------
+# an independent scalar Gummel-Poon evaluation for the references (plain math, no arrays)
+# ---------------------------------------------------------------------------------------------
+
+def _floats(q):
+    """The scaled parameters of a one-sample ScaledTransistor as plain floats."""
+    names = ("saturation_current", "inv_forward_beta", "inv_reverse_beta", "inv_forward_nvt",
+             "inv_reverse_nvt", "inv_early", "inv_reverse_early", "inv_knee",
+             "inv_reverse_knee", "be_leakage_current", "inv_be_leakage_nvt",
+             "bc_leakage_current", "inv_bc_leakage_nvt", "cbo_leakage", "inv_two_vt")
+    return {n: float(np.ravel(getattr(q, n))[0]) for n in names}
+
+
+def _gp(p, pol, vbe, vbc):
+    """Gummel & Poon (1970) static currents (I_C, I_B) into the terminals, plus the
+    generation leakage I_CBO tanh(V_CB / 2V_T); written from the paper's equations."""
+    vbe, vbc = pol * vbe, pol * vbc
+    ex = lambda a: math.exp(min(a, 700.0))  # noqa: E731
+    i_f = p["saturation_current"] * (ex(vbe * p["inv_forward_nvt"]) - 1.0)
+    i_r = p["saturation_current"] * (ex(vbc * p["inv_reverse_nvt"]) - 1.0)
+    q1 = 1.0 / (1.0 - vbc * p["inv_early"] - vbe * p["inv_reverse_early"])
+    q2 = i_f * p["inv_knee"] + i_r * p["inv_reverse_knee"]
+    qb = q1 / 2.0 * (1.0 + math.sqrt(1.0 + 4.0 * q2))
+    i_be = i_f * p["inv_forward_beta"] + p["be_leakage_current"] * (
+        ex(vbe * p["inv_be_leakage_nvt"]) - 1.0)
+    i_bc = i_r * p["inv_reverse_beta"] + p["bc_leakage_current"] * (
+        ex(vbc * p["inv_bc_leakage_nvt"]) - 1.0)
+    gen = p["cbo_leakage"] * math.tanh(-vbc * p["inv_two_vt"])
+    return pol * ((i_f - i_r) / qb - i_bc + gen), pol * (i_be + i_bc - gen)
+
+
+class _Currents:
+    pass
+
+
+_FLOAT_CACHE = {}
+
+
+def junction_currents(q, vbe, vbc):
+    """Scalar stand-in for the model's function in the references: currents from
+    :func:`_gp`, derivatives by central differences (step 1e-7 V)."""
+    key = id(q)
+    if key not in _FLOAT_CACHE:
+        if len(_FLOAT_CACHE) > 8:
+            _FLOAT_CACHE.clear()
+        _FLOAT_CACHE[key] = (q, _floats(q))  # q is kept so that its id stays unique
+    p = _FLOAT_CACHE[key][1]
+    pol = q.polarity
+    be, bc = float(vbe[0]), float(vbc[0])
+    ic, ib = _gp(p, pol, be, bc)
+    h = 1e-7
+    c = _Currents()
+    c.collector, c.base = np.array([ic]), np.array([ib])
+    up, dn = _gp(p, pol, be + h, bc), _gp(p, pol, be - h, bc)
+    c.dcollector_dvbe = np.array([(up[0] - dn[0]) / (2 * h)])
+    c.dbase_dvbe = np.array([(up[1] - dn[1]) / (2 * h)])
+    up, dn = _gp(p, pol, be, bc + h), _gp(p, pol, be, bc - h)
+    c.dcollector_dvbc = np.array([(up[0] - dn[0]) / (2 * h)])
+    c.dbase_dvbc = np.array([(up[1] - dn[1]) / (2 * h)])
+    return c
+
+
+# ---------------------------------------------------------------------------------------------
 # per-sample reference: node voltages with the internal transistor nodes, scipy root (hybr)
 # ---------------------------------------------------------------------------------------------
 
-def _root(system, x0):
-    """scipy.optimize.root (hybr, xtol 1e-13) with the reference's own Jacobian, and
-    Levenberg-Marquardt (lm, same tolerance) where hybr stalls; None unless the residual
-    vanishes. ``system`` returns (residual, Jacobian)."""
-    for method in ("hybr", "lm"):
-        sol = optimize.root(system, x0, jac=True, method=method, options={"xtol": 1e-13})
+def _root(system, x0, methods=("hybr", "hybr-short", "lm")):
+    """scipy.optimize.root (hybr, xtol 1e-13) with the reference's own Jacobian, optionally
+    followed by hybr with a short first trust region and Levenberg-Marquardt (lm, same
+    tolerance); None unless the residual vanishes.
+    ``system`` returns (residual, Jacobian)."""
+    # MINPACK's first trust region is proportional to |x0|: a start made of denormal
+    # leftovers (an unbiased node) would freeze it, exact zeros do not
+    x0 = np.where(np.abs(np.asarray(x0, dtype=float)) < 1e-30, 0.0, x0)
+    options = {"hybr": {"xtol": 1e-13}, "hybr-short": {"xtol": 1e-13, "factor": 0.1},
+               "lm": {"xtol": 1e-13, "maxiter": 5000}}
+    for method in methods:
+        sol = optimize.root(system, x0, jac=True, method=method.split("-")[0],
+                            options=options[method])
         if np.all(np.abs(system(sol.x)[0]) < 1e-10):
             return sol.x
     return None
 
 
-def _stepped(make, level, x0, steps=8):
+def _stepped(make, level, x0, steps=3):
     """Source stepping (classical continuation, from memory): raise the drive from 0 V to
     ``level`` in ``steps`` steps, each solve starting from the previous solution, a step that
     fails being split in halves (down to 1/1024 of it); returns the list of (drive, solution)."""
@@ -225,7 +295,7 @@ def reference_single(stage, samples, k):
     # from its lower neighbour), then solve with the drive as the sixth unknown
     lo = max(i for i, p in enumerate(path) if i_load(p[1][4])[0] <= target)
     (v_a, x_a), (v_b, _) = path[lo], path[lo + 1]
-    for _ in range(12):
+    for _ in range(6):
         v_m = 0.5 * (v_a + v_b)
         x_m = _root(on_eqs(v_m), x_a)
         assert x_m is not None, "reference bisection failed"
@@ -235,7 +305,7 @@ def reference_single(stage, samples, k):
             v_b = v_m
     x = _root(lambda x: full(x[:5], x[5], target), list(x_a) + [v_a])
     assert x is not None, "threshold reference failed"
-    out["off_margin"] = x[5] - v_low
+    out["off_margin"] = max(x[5], 0.0) - v_low  # the threshold is searched from 0 V up
     return out
 
 
@@ -352,3 +422,420 @@ def test_chunk_composition_does_not_change_results(tmp_path):
     part = study.stage.evaluate({k: v[100:200] for k, v in samples.items()})
     for key in study.stage.metrics:
         np.testing.assert_allclose(part[key], whole[key][100:200], rtol=1e-9, atol=1e-15)
+
+
+# ---------------------------------------------------------------------------------------------
+# per-sample reference for the two-transistor stages: a generic node-voltage circuit
+# ---------------------------------------------------------------------------------------------
+
+class _Circuit:
+    """Node-voltage equations of a small circuit, written independently of the stage code.
+
+    Unknowns: the external nodes (ground excluded), three internal nodes per transistor and,
+    in threshold mode, the drive voltage. Equations: KCL at every external node, one branch
+    equation per series resistance (v_ext - v_int = r * i), and the mode's constraints. Currents
+    are scaled by 100 ohm to volts. The Jacobian is assembled here from the model's junction
+    derivatives.
+    """
+
+    KS = 100.0
+
+    def __init__(self, nodes, conductances, transistors, load_node, load, vs, g_in, input_node):
+        self.nodes = list(nodes)  # external, non-ground
+        self.conductances = conductances  # (node_a, node_b, G); None = ground
+        self.transistors = transistors  # (q, b, c, e)
+        self.load_node, self.load, self.vs = load_node, load, vs
+        self.g_in, self.input_node = g_in, input_node
+        self.index = {name: i for i, name in enumerate(self.nodes)}
+        for k in range(len(transistors)):
+            for t in "bce":
+                self.index[f"{k}{t}"] = len(self.index)
+        self.n = len(self.index)
+        self.series = [tuple(float(np.ravel(getattr(q, a))[0]) for a in
+                             ("base_resistance", "collector_resistance", "emitter_resistance"))
+                       for q, *_ in transistors]
+
+    def _v(self, x, node):
+        return 0.0 if node is None else x[self.index[node]]
+
+    def equations(self, x, v_in, mode="on", target=None, edge_device=0):
+        n = self.n
+        extra = 1 if mode == "threshold" else 0
+        f = np.zeros(n + extra)
+        j = np.zeros((n + extra, n + extra))
+        ks = self.KS
+
+        def add_current(node, value, grads):  # current leaving the node
+            if node is None:
+                return
+            i = self.index[node]
+            f[i] -= value * ks
+            for col, g in grads:
+                j[i, col] -= g * ks
+
+        # drive
+        i_in = self.index[self.input_node]
+        vin = x[n] if mode == "threshold" else v_in
+        f[i_in] += (vin - x[i_in]) * self.g_in * ks
+        j[i_in, i_in] -= self.g_in * ks
+        if mode == "threshold":
+            j[i_in, n] += self.g_in * ks
+        for a, b, g in self.conductances:
+            va, vb = self._v(x, a), self._v(x, b)
+            cols = [(self.index[a], g)] if a else []
+            cols += [(self.index[b], -g)] if b else []
+            add_current(a, (va - vb) * g, cols)
+            add_current(b, (vb - va) * g, [(c, -gg) for c, gg in cols])
+        # load into its node
+        il, gl = self.load.current(np.array([self.vs - x[self.index[self.load_node]]]))
+        il, gl = il[0], gl[0]
+        li = self.index[self.load_node]
+        if not (mode == "edge"):
+            f[li] += il * ks
+            j[li, li] -= gl * ks
+        row = None
+        for k, (q, b, c, e) in enumerate(self.transistors):
+            bi, ci, ei = (self.index[f"{k}{t}"] for t in "bce")
+            rb, rc, re = self.series[k]
+            vbi, vci, vei = x[bi], x[ci], x[ei]
+            cur = junction_currents(q, np.array([vbi - vei]), np.array([vbi - vci]))
+            ib, ic = cur.base[0], cur.collector[0]
+            dib = {bi: cur.dbase_dvbe[0] + cur.dbase_dvbc[0], ci: -cur.dbase_dvbc[0],
+                   ei: -cur.dbase_dvbe[0]}
+            dic = {bi: cur.dcollector_dvbe[0] + cur.dcollector_dvbc[0],
+                   ci: -cur.dcollector_dvbc[0], ei: -cur.dcollector_dvbe[0]}
+            die = {m: dib[m] + dic[m] for m in dib}
+            # terminal currents leave the external nodes into the device
+            add_current(b, ib, list(dib.items()))
+            add_current(c, ic, list(dic.items()))
+            add_current(e, -(ib + ic), [(m, -g) for m, g in die.items()])
+            # branch equations in the rows of the internal nodes
+            for node_int, node_ext, r, i_val, di in ((bi, b, rb, ib, dib), (ci, c, rc, ic, dic),
+                                                     (ei, e, re, -(ib + ic),
+                                                      {m: -g for m, g in die.items()})):
+                f[node_int] = self._v(x, node_ext) - x[node_int] - r * i_val
+                if node_ext is not None:
+                    j[node_int, self.index[node_ext]] += 1.0
+                j[node_int, node_int] -= 1.0
+                for m, g in di.items():
+                    j[node_int, m] -= r * g
+            if mode == "edge" and k == edge_device:
+                row = (ci, bi)
+        if mode == "edge":
+            # the driver at the edge of saturation: its intrinsic V_BC = 0 replaces the load
+            # node's KCL (an ideal source holds that node)
+            f[li] = 0.0
+            j[li, :] = 0.0
+            ci, bi = row
+            f[li] = x[bi] - x[ci]
+            j[li, bi], j[li, ci] = 1.0, -1.0
+        if mode == "threshold":
+            f[n] = (il - target) * ks
+            j[n, li] = -gl * ks
+        return f, j
+
+    def current_into(self, x, node):
+        """Current the load delivers into ``node`` [A]."""
+        return self.load.current(np.array([self.vs - x[self.index[node]]]))[0][0]
+
+    def device(self, x, k):
+        q = self.transistors[k][0]
+        bi, ci, ei = (x[self.index[f"{k}{t}"]] for t in "bce")
+        cur = junction_currents(q, np.array([bi - ei]), np.array([bi - ci]))
+        return cur.base[0], cur.collector[0]
+
+
+def reference_pair(stage, samples, k, kind):
+    """One sample of the Darlington or Sziklai stage, by source stepping on :class:`_Circuit`."""
+    t, vs, v_high, v_low, g_in, g1, g2, q1, q2, load = stage._setup(samples)
+    idx = np.array([k])
+    q1, q2, load = q1.subset(idx), q2.subset(idx), load.take(idx)
+    vs, v_high, v_low, g_in, g1, g2 = (a[idx][0] for a in (vs, v_high, v_low, g_in, g1, g2))
+    if kind == "darlington":
+        nodes = ["b1", "b2", "c"]
+        cond = [("b1", "b2", g1), ("b2", None, g2)]
+        trans = [(q1, "b1", "c", "b2"), (q2, "b2", "c", None)]
+        out = "c"
+    else:
+        nodes = ["b1", "n1", "c"]
+        cond = [("b1", None, g1), ("n1", "c", g2)]
+        trans = [(q1, "b1", "n1", None), (q2, "n1", None, "c")]
+        out = "c"
+    circ = _Circuit(nodes, cond, trans, out, load, vs, g_in, "b1")
+    rest = np.zeros(circ.n)
+    rest[circ.index["c"]] = vs
+    if kind == "sziklai":
+        rest[circ.index["n1"]] = vs
+        for t_ in "bce":
+            rest[circ.index[f"1{t_}"]] = vs if t_ != "c" else 0.0
+    else:
+        rest[circ.index["0c"]] = rest[circ.index["1c"]] = vs
+    if kind == "sziklai":
+        rest[circ.index["0c"]] = vs
+    make = lambda v, mode="on": (lambda x: circ.equations(x, v, mode))  # noqa: E731
+    res = {}
+    path = _stepped(make, v_high, rest)
+    x = path[-1][1]
+    ib1, ic1 = circ.device(x, 0)
+    ib2, ic2 = circ.device(x, 1)
+    res["vce_on"] = x[circ.index["c"]]
+    res["load_current"] = circ.current_into(x, "c")
+    res["base_current_driver"] = ib1
+    res["base_current_output"] = abs(ib2)
+    i_on = res["load_current"]
+
+    xe = _stepped(lambda v: (lambda x: circ.equations(x, v, "edge")), v_high, rest)[-1][1]
+    if kind == "darlington":
+        i_edge = sum(circ.device(xe, m)[1] for m in (0, 1))
+    else:
+        ib2e, ic2e = circ.device(xe, 1)
+        i_edge = -(ib2e + ic2e) + (xe[circ.index["c"]] - xe[circ.index["n1"]]) * g2
+    res["drive_margin"] = i_edge / circ.current_into(xe, "c")
+
+    xo = _stepped(make, v_low, rest)[-1][1]
+    if kind == "darlington":
+        res["off_current"] = sum(circ.device(xo, m)[1] for m in (0, 1))
+    else:
+        ib2o, ic2o = circ.device(xo, 1)
+        res["off_current"] = -(ib2o + ic2o) + (xo[circ.index["c"]] - xo[circ.index["n1"]]) * g2
+
+    target = 0.01 * i_on
+    below = [i for i, p in enumerate(path) if circ.current_into(p[1], "c") <= target]
+    if not below:  # conducts the target at 0 V drive already: threshold 0 V
+        res["off_margin"] = -v_low
+        return res
+    lo = max(below)
+    (v_a, x_a), (v_b, _) = path[lo], path[lo + 1]
+    for _ in range(6):
+        v_m = 0.5 * (v_a + v_b)
+        x_m = _root(make(v_m), x_a)
+        assert x_m is not None, "reference bisection failed"
+        if circ.current_into(x_m, "c") <= target:
+            v_a, x_a = v_m, x_m
+        else:
+            v_b = v_m
+    x = _root(lambda z: circ.equations(z, 0.0, "threshold", target), np.append(x_a, v_a),
+              ("hybr", "lm"))
+    assert x is not None, "threshold reference failed"
+    res["off_margin"] = max(x[-1], 0.0) - v_low
+    return res
+
+
+DARLINGTON_WIDE = """
+stage = "darlington"
+[ambient]
+temperature = {min = "-40 degC", max = "100 degC"}
+[supply]
+voltage = {min = "9 V", max = "30 V"}
+[drive]
+high = {min = "2.5 V", max = "5 V"}
+low = {min = "0 V", max = "0.6 V"}
+source_resistance = {min = "0 ohm", max = "200 ohm"}
+[parts.RB]
+value = {min = "470 ohm", max = "22k"}
+[parts.RBE1]
+value = {min = "4k7", max = "100k"}
+[parts.RBE2]
+value = {min = "220 ohm", max = "4k7"}
+tempco = "100 ppm/K"
+[parts.Q1]
+device = "small_signal_npn"
+[parts.Q2]
+device = "power_npn"
+emitter_resistance = "0.05 ohm"
+[load]
+kind = "resistor"
+resistance = {min = "10 ohm", max = "200 ohm"}
+"""
+
+SZIKLAI_WIDE = """
+stage = "sziklai"
+[ambient]
+temperature = {min = "-40 degC", max = "100 degC"}
+[supply]
+voltage = {min = "6 V", max = "24 V"}
+[drive]
+high = {min = "2.5 V", max = "5 V"}
+low = {min = "0 V", max = "0.6 V"}
+[parts.RB]
+value = {min = "1k", max = "22k"}
+[parts.RBE1]
+value = {min = "10k", max = "100k"}
+[parts.RBE2]
+value = {min = "470 ohm", max = "10k"}
+[parts.Q1]
+device = "small_signal_npn"
+[parts.Q2]
+device = "small_signal_pnp"
+emitter_resistance = "0.5 ohm"
+[load]
+kind = "resistor"
+resistance = {min = "60 ohm", max = "1k"}
+"""
+
+
+@pytest.mark.parametrize("kind, text", [("darlington", DARLINGTON_WIDE),
+                                        ("sziklai", SZIKLAI_WIDE)], ids=["darlington", "sziklai"])
+def test_pair_stages_match_scipy_reference(tmp_path, kind, text):
+    # reference: scipy.optimize.root (hybr, then lm; xtol 1e-13) per sample on the node-voltage
+    # form of the circuit, reached by source stepping; 1e-6 relative is far above both solvers'
+    # noise (~1e-12 V)
+    study = study_from(tmp_path, text)
+    n = 210
+    samples = draw(study, n, seed=17)
+    res = study.stage.evaluate(samples)
+    assert res["converged"].all()
+    for k in range(n):
+        ref = reference_pair(study.stage, samples, k, kind)
+        for key, value in ref.items():
+            got = res[key][k]
+            assert got == pytest.approx(value, rel=1e-6, abs=1e-12 if "current" in key else 1e-9), \
+                (key, k, got, value)
+
+
+# ---------------------------------------------------------------------------------------------
+# textbook relations of the pairs
+# ---------------------------------------------------------------------------------------------
+
+def _ideal(beta, polarity=1):
+    return TransistorParameters(polarity=polarity, saturation_current=1e-14, forward_beta=beta,
+                                reverse_beta=2.0)
+
+
+@pytest.mark.parametrize("b1, b2", [(100.0, 50.0), (300.0, 20.0), (40.0, 150.0)])
+def test_darlington_gain_in_the_active_region(b1, b2):
+    # textbook (any electronics text): the Darlington's current gain is
+    # beta1 beta2 + beta1 + beta2. Ideal Ebers-Moll devices (no Early, knee, leakage, series R,
+    # no base-emitter resistors) in the active region; the reverse saturation terms
+    # (I_S / beta_R ~ 5e-15 A against base currents down to ~2 uA) change it by up to ~3e-9,
+    # so 1e-7 relative
+    from tolerance.models.loads import ResistorState
+    from tolerance.models.newton import newton_solve
+    from tolerance.models.stages.darlington import DarlingtonSystem
+
+    n = 4
+    t = np.full(n, 298.15)
+    q1 = _ideal(b1).at_temperature(t)
+    q2 = _ideal(b2).at_temperature(t)
+    vs = np.full(n, 20.0)
+    load = ResistorState(vs, t, np.full(n, 10.0), None)
+    g_in = np.full(n, 1.0 / np.array([1e6, 3e5, 1e5, 5e4]))
+    system = DarlingtonSystem(q1, q2, load, vs, np.full(n, 3.0), g_in, np.zeros(n), np.zeros(n),
+                              "on")
+    x0 = np.tile([0.55, -5.0, 0.65, -5.0], (n, 1))
+    res = newton_solve(system, x0)
+    assert res.converged.all()
+    st = system.state(res.x)
+    assert np.all(res.x[:, 1] < 0) and np.all(res.x[:, 3] < 0)  # both active
+    np.testing.assert_allclose(st["i_out"] / st["ib1"], b1 * b2 + b1 + b2, rtol=1e-7)
+
+
+def test_darlington_on_voltage_sits_at_vbe2_plus_vce1sat(tmp_path):
+    # common practice / textbooks: a saturated Darlington sits near V_BE2 + V_CE1(sat), well
+    # above a single transistor's V_CE(sat), because the output transistor cannot saturate
+    text = DARLINGTON_WIDE.replace('{min = "470 ohm", max = "22k"}', '"470 ohm"')
+    study = study_from(tmp_path, text)
+    samples = draw(study, 400, seed=5)
+    res = study.stage.evaluate(samples)
+    on = res["drive_margin"] > 1.2
+    assert on.sum() > 100
+    vce = res["vce_on"][on]
+    # the output transistor stays out of saturation: its V_CB = V_CE1 > 0
+    from tolerance.models.newton import newton_solve
+    from tolerance.models.stages.darlington import DarlingtonSystem
+
+    t, vs, v_high, v_low, g_in, g1, g2, q1, q2, load = study.stage._setup(samples)
+    system = DarlingtonSystem(q1, q2, load, vs, v_high, g_in, g1, g2, "on")
+    r = newton_solve(system, study.stage.guesses("on", q1, q2, vs, load.current(vs - 1)[0],
+                                                  g2)[0])
+    st = system.state(r.x)
+    np.testing.assert_allclose(st["v_out"][on], vce, rtol=1e-9)
+    # V_CE(on) = V_BE2 + V_CE1 with the driver saturated (|V_CE1| small; it even goes a little
+    # negative when the drive exceeds what the output's base takes, the driver's collector
+    # then returning base current to the output node)
+    vce1 = vce - st["v_b2"][on]
+    assert np.all(np.abs(vce1) < 0.4)
+    assert np.all(vce > 0.45)
+    assert np.all(st["v_b2"][on] > 0.45)  # a forward-biased V_BE2 at up to 100 degC
+    # a single transistor of the same class driven as hard saturates far lower
+    single = study_from(tmp_path, SINGLE_NOMINAL.replace('"small_signal_npn"', '"power_npn"')
+                        .replace('"120 ohm"', '"24 ohm"').replace('"1k"', '"47 ohm"')
+                        .replace("hfe = {min = 100, max = 300}\n", ""), name="single.toml")
+    rs = single.stage.evaluate(nominal(single))
+    assert rs["drive_margin"][0] > 1 and rs["vce_on"][0] < np.min(vce) - 0.3
+
+
+LEAKAGE = """
+stage = "single"
+[ambient]
+temperature = "100 degC"
+[supply]
+voltage = "24 V"
+[drive]
+high = "5 V"
+low = "0 V"
+[parts.RB]
+value = "{rb}"
+[parts.Q1]
+device = "small_signal_npn"
+hfe = 200
+icbo = "20 nA"
+[load]
+kind = "resistor"
+resistance = "1k"
+"""
+
+
+def test_base_emitter_resistor_cuts_hot_leakage_by_the_gain(tmp_path):
+    # Derivation (common practice, worked here from the model): with the base open the
+    # generation current I_gen = I_CBO(T) has no way out but the base-emitter junction, so the
+    # collector carries I_gen (1 + h), h the transistor's own DC gain I_C/I_B at that current;
+    # a resistor R from base to emitter takes I_gen instead while I_gen R << V_T, leaving
+    # I_gen (1 + I_S R / V_T). Their ratio is the leakage cut.
+    from tolerance.models.datasheet import hfe_at
+
+    hot = 373.15
+    open_base = study_from(tmp_path, LEAKAGE.format(rb="1G"), name="open.toml")
+    shunted = study_from(tmp_path, LEAKAGE.format(rb="100 ohm"), name="shunt.toml")
+    i_open = open_base.stage.evaluate(nominal(open_base))["off_current"][0]
+    i_shunt = shunted.stage.evaluate(nominal(shunted))["off_current"][0]
+    q = open_base.stage.q1
+    params = q.device.parameters(np.array([200.0]), np.array([20e-9]))
+    i_gen = 20e-9 * 2 ** ((hot - 298.15) / 10.0)  # doubling every 10 K
+    scaled = params.at_temperature(np.array([hot]))
+    vt = BOLTZMANN * hot / ELEMENTARY_CHARGE
+    # h: the diode currents' gain (the generation term removed) near the open-base point
+    # (at the open-base point's own V_CE, 24 V less the 1 k load's drop)
+    h, _ = hfe_at(params.replace(cbo_leakage=np.array([0.0])), i_open - i_gen,
+                  24.0 - 1e3 * i_open, hot)
+    # 2e-3: the 1 G "open" base still draws ~1e-4 of I_gen, and the tanh factor at 24 V is 1
+    assert i_open == pytest.approx(i_gen * (1 + h[0]), rel=2e-3)
+    assert i_shunt == pytest.approx(i_gen * (1 + scaled.saturation_current[0] * 100.0 / vt),
+                                    rel=2e-3)  # I_gen R = 5 uV << V_T: the linear diode holds
+    assert i_open / i_shunt == pytest.approx(
+        (1 + h[0]) / (1 + scaled.saturation_current[0] * 100.0 / vt), rel=5e-3)
+    assert i_open / i_shunt > 30  # the gain at a few microamperes is tens
+
+
+@pytest.mark.parametrize("stage_text", [SINGLE_NOMINAL, DARLINGTON_WIDE, SZIKLAI_WIDE],
+                         ids=["single", "darlington", "sziklai"])
+@pytest.mark.parametrize("load_table", [
+    'kind = "lamp"\nrated_voltage = "24 V"\nrated_power = "5 W"',
+    'kind = "coil"\nresistance = "240 ohm"\ninductance = "0.5 H"\nmust_operate_voltage = "9 V"',
+    'kind = "led"\ncount = 3\nforward_voltage = "2.1 V"\ntest_current = "20 mA"\n'
+    'series_resistance = "150 ohm"',
+], ids=["lamp", "coil", "led"])
+def test_every_load_kind_through_every_stage(tmp_path, stage_text, load_table):
+    # each load law drives the same solver: everything converges, the on-state load current is
+    # the load's own law at the solved voltage, and its metrics are present
+    text = stage_text[:stage_text.index("[load]")] + "[load]\n" + load_table + "\n"
+    study = study_from(tmp_path, text)
+    samples = draw(study, 300, seed=8)
+    res = study.stage.evaluate(samples)
+    assert res["converged"].all()
+    t, vs = samples["ambient.temperature"], samples["supply.voltage"]
+    state = study.stage.load.at(samples, t, vs)
+    i_law = state.current(vs - res["vce_on"])[0]
+    np.testing.assert_allclose(res["load_current"], i_law, rtol=1e-9)
+    for key in study.stage.metrics:
+        assert res[key].shape == (300,)

@@ -44,7 +44,7 @@ from tolerance.models.transistor import (
     limit_junction_step,
 )
 from tolerance.protocol import Criterion, MetricInfo
-from tolerance.study import Reader, StudyError
+from tolerance.study import Reader
 
 __all__ = [
     "COMMON_METRICS",
@@ -194,15 +194,18 @@ def junction_limit(x_new, x_old, columns):
     return out
 
 
-def solve_with_restarts(system, guesses, **options):
+def solve_with_restarts(system, guesses, slow=True, **options):
     """Newton from the first guess; samples that fail retry from the next guesses in turn,
-    and finally with a short maximum step (0.05 V, up to 400 iterations) from the first.
+    and finally (``slow``) with a short maximum step (0.05 V, up to 300 iterations) from the
+    first.
 
     Parameters
     ----------
     system : NewtonSystem
     guesses : list of ndarray, each (S, n)
         Starting points in order of preference.
+    slow : bool
+        Whether to make the final short-step attempt.
     **options
         Passed to :func:`tolerance.models.newton.newton_solve`.
 
@@ -212,10 +215,8 @@ def solve_with_restarts(system, guesses, **options):
     """
     res = newton_solve(system, guesses[0], **options)
     attempts = [(g, options) for g in guesses[1:]]
-    slow = dict(options, max_step=0.05, max_iterations=max(400, options.get("max_iterations",
-                                                                            60)))
-    if "max_iterations" not in options or options["max_iterations"] >= 20:
-        attempts.append((guesses[0], slow))
+    if slow and options.get("max_iterations", 60) >= 20:
+        attempts.append((guesses[0], dict(options, max_step=0.05, max_iterations=300)))
     for guess, opts in attempts:
         bad = np.flatnonzero(~res.converged)
         if bad.size == 0:
@@ -227,8 +228,38 @@ def solve_with_restarts(system, guesses, **options):
     return res
 
 
-__all__ += ["DriveSpec", "read_drive", "junction_limit", "solve_with_restarts",
-            "THRESHOLD_FRACTION"]
+def threshold_voltage(solve_threshold, zero_drive_current, target, options):
+    """Input voltage at which the load current reaches ``target``, searched from 0 V up.
+
+    Parameters
+    ----------
+    solve_threshold : callable
+        ``solve_threshold(slow)`` -> (NewtonResult, v_threshold) for the whole chunk.
+    zero_drive_current : callable
+        ``zero_drive_current(idx)`` -> (converged, current) of the stage with the drive at
+        0 V, for the samples ``idx``.
+    target : ndarray
+        The threshold current [A].
+    options : dict
+        Solver options.
+
+    Returns
+    -------
+    (ndarray, ndarray)
+        Threshold voltage [V] (0 where the stage conducts the target already at 0 V: a logic
+        output cannot go lower, so the threshold is taken as 0 V) and a success flag.
+    """
+    res, v_th = solve_threshold()
+    ok = res.converged.copy()
+    bad = np.flatnonzero(~ok)
+    if bad.size:
+        conv, i0 = zero_drive_current(bad)
+        stuck_on = conv & (np.abs(i0) >= np.abs(target[bad]))
+        v_th[bad[stuck_on]] = 0.0
+        ok[bad[stuck_on]] = True
+    with np.errstate(invalid="ignore"):
+        v_th = np.where(ok, np.maximum(v_th, 0.0), np.nan)
+    return v_th, ok
 
 
 PAIR_METRICS: dict[str, MetricInfo] = {
@@ -250,9 +281,11 @@ _PAIR_MODES = {
 class PairSystem(Subsettable):
     """Equations of a two-transistor stage for one mode (``on``, ``edge``, ``threshold``).
 
-    Subclasses implement ``equations(xf)`` returning the five residual rows (S, 5) [A], their
-    Jacobian (S, 5, 4) [A/V] with respect to the four junction voltages, the current scale
-    (S,) [A] and a dict of node voltages and currents for the metrics. In the ``edge`` mode the
+    Subclasses implement ``equations(xf)`` returning the five residual rows (a list of (S,)
+    arrays) [A], their Jacobian with respect to the four junction voltages as a 5 x 4 nested
+    list of (S,) arrays or scalar zeros [A/V], the current scale (S,) [A] and a dict of node
+    voltages and currents for the metrics (``equations(xf, jacobian=False)`` skips the
+    Jacobian, giving None in its place). In the ``edge`` mode the
     driver's v_BC1 is held at zero; in ``threshold`` the input row is replaced by the load
     current condition.
     """
@@ -268,7 +301,19 @@ class PairSystem(Subsettable):
         self.g_be2 = g_be2
         self.mode = mode
         self.i_target = np.zeros_like(supply) if i_target is None else i_target
-        self.n_samples = supply.shape[0]
+        self.n_samples = n = supply.shape[0]
+        # junction limiting data per unknown column: emission voltage and critical voltage
+        nvt, vcrit, pol = [], [], []
+        for q in (q1, q2):
+            for inv in (q.inv_forward_nvt, q.inv_reverse_nvt):
+                e = np.broadcast_to(1.0 / inv, (n,))
+                nvt.append(e)
+                vcrit.append(np.broadcast_to(critical_voltage(q.saturation_current, e), (n,)))
+                pol.append(q.polarity)
+        keep = [0, 2, 3] if mode == "edge" else [0, 1, 2, 3]
+        self.limit_nvt = np.stack([nvt[k] for k in keep], axis=1)
+        self.limit_vcrit = np.stack([vcrit[k] for k in keep], axis=1)
+        self.limit_polarity = tuple(pol[k] for k in keep)
 
     def full(self, x):
         if self.mode == "edge":
@@ -278,28 +323,30 @@ class PairSystem(Subsettable):
     def residual(self, x):
         f, j, scale, _ = self.equations(self.full(x))
         rows, cols = _PAIR_MODES[self.mode]
-        return f[:, rows], j[:, rows][:, :, cols], scale
+        return (np.stack([f[r] for r in rows], axis=1), [[j[r][c] for c in cols] for r in rows],
+                scale)
 
     def state(self, x):
-        return self.equations(self.full(x))[3]
+        return self.equations(self.full(x), jacobian=False)[3]
 
     def limit(self, x_new, x_old):
-        q1, q2 = self.q1, self.q2
-        cols = []
-        for q, be, bc in ((q1, 0, 1), (q2, 2, 3)):
-            nvt_f = 1.0 / q.inv_forward_nvt
-            nvt_r = 1.0 / q.inv_reverse_nvt
-            cols.append((be, q.polarity, nvt_f, critical_voltage(q.saturation_current, nvt_f)))
-            cols.append((bc, q.polarity, nvt_r, critical_voltage(q.saturation_current, nvt_r)))
-        if self.mode == "edge":  # column 1 (v_BC1) is not an unknown
-            cols = [(0, *cols[0][1:]), (1, *cols[2][1:]), (2, *cols[3][1:])]
+        cols = [(k, pol, self.limit_nvt[:, k], self.limit_vcrit[:, k])
+                for k, pol in enumerate(self.limit_polarity)]
         return junction_limit(x_new, x_old, cols)
 
 
 def vbe_guess(q, current):
-    """Junction voltage of an ideal diode carrying ``current`` [A] (actual polarity) [V]."""
+    """Base-emitter voltage that carries the collector ``current`` [A] (actual polarity) [V]:
+    the larger of the ideal-diode value and the high-injection value
+    ``2 n V_T ln(I / sqrt(I_S I_KF))`` (Gummel-Poon q_b for q_2 >> 1)."""
     nvt = 1.0 / q.inv_forward_nvt
-    return q.polarity * nvt * np.log1p(np.maximum(np.abs(current), 1e-12) / q.saturation_current)
+    cur = np.maximum(np.abs(current), 1e-12)
+    v = nvt * np.log1p(cur / q.saturation_current)
+    if not (np.ndim(q.inv_knee) == 0 and float(q.inv_knee) == 0.0):
+        with np.errstate(divide="ignore"):
+            v = np.maximum(v, 2.0 * nvt * np.log(cur / np.sqrt(q.saturation_current /
+                                                               q.inv_knee)))
+    return q.polarity * v
 
 
 def transistor_power(ic, ib, vc_minus_ve, vb_minus_ve):
@@ -381,13 +428,24 @@ class PairStage:
 
         target = THRESHOLD_FRACTION * np.where(r_on.converged, s_on["i_out"], 1.0)
         thr = make(v_high, "threshold", target)
-        r_thr = solve_with_restarts(thr, self.guesses("threshold", q1, q2, vs, target, g_be2),
-                                    **opts)
-        s_thr = thr.state(np.nan_to_num(r_thr.x))
-        converged = r_on.converged & r_edge.converged & r_off.converged & r_thr.converged
+        thr_starts = self.guesses("threshold", q1, q2, vs, target, g_be2)
+
+        def solve_threshold():
+            r = solve_with_restarts(thr, thr_starts, slow=False, **opts)
+            s_t = thr.state(np.nan_to_num(r.x))
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                return r, s_t["v_b1"] + s_t["i_rb_out"] / g_in
+
+        def zero_drive_current(idx):
+            zero = make(np.zeros(n), "on").subset(idx)
+            r = solve_with_restarts(zero, [g[idx] for g in off_starts], **opts)
+            return r.converged, zero.state(np.nan_to_num(r.x))["i_out"]
+
+        v_threshold, thr_ok = threshold_voltage(solve_threshold, zero_drive_current, target,
+                                                opts)
+        converged = r_on.converged & r_edge.converged & r_off.converged & thr_ok
 
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            v_threshold = s_thr["v_b1"] + (s_thr["i_rb_out"]) / g_in
             out = {
                 "load_current": s_on["i_load"],
                 "vce_on": s_on["v_out"],
@@ -409,4 +467,7 @@ class PairStage:
         return out
 
 
-__all__ += ["PAIR_METRICS", "PairStage", "PairSystem", "transistor_power", "vbe_guess"]
+__all__ += ["DriveSpec", "THRESHOLD_FRACTION", "junction_limit", "read_drive",
+            "solve_with_restarts"]
+__all__ += ["PAIR_METRICS", "PairStage", "PairSystem", "threshold_voltage", "transistor_power",
+            "vbe_guess"]

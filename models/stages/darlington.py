@@ -60,7 +60,7 @@ __all__ = ["DarlingtonStage", "DarlingtonSystem", "configure"]
 class DarlingtonSystem(PairSystem):
     """Equations of the Darlington stage (see the module docstring)."""
 
-    def equations(self, xf):
+    def equations(self, xf, jacobian=True):
         vbe1, vbc1, vbe2, vbc2 = xf[:, 0], xf[:, 1], xf[:, 2], xf[:, 3]
         c1 = junction_currents(self.q1, vbe1, vbc1)
         o1 = terminal_offsets(self.q1, vbe1, vbc1, c1)
@@ -72,42 +72,35 @@ class DarlingtonSystem(PairSystem):
         v_c1 = v_b2 + o1.collector
         i_load, g_load = self.load.current(self.supply - v_c)
         g_in, g1, g2 = self.g_in, self.g_be1, self.g_be2
-        s = xf.shape[0]
-        f = np.empty((s, 5))
-        j = np.zeros((s, 5, 4))
+        gl = LOOP_CONDUCTANCE
         i_be1 = (v_b1 - v_b2) * g1
-        f[:, 0] = (self.v_in - v_b1) * g_in - i_be1 - c1.base
-        f[:, 1] = c1.collector + c1.base + i_be1 - v_b2 * g2 - c2.base
-        f[:, 2] = i_load - c1.collector - c2.collector
-        f[:, 3] = LOOP_CONDUCTANCE * (v_c1 - v_c)
-        f[:, 4] = i_load - self.i_target
+        f = [
+            (self.v_in - v_b1) * g_in - i_be1 - c1.base,  # input
+            c1.collector + c1.base + i_be1 - v_b2 * g2 - c2.base,  # middle
+            i_load - c1.collector - c2.collector,  # output
+            gl * (v_c1 - v_c),  # loop
+            i_load - self.i_target,  # threshold target
+        ]
         gg = g_in + g1
-        # input row
-        j[:, 0, 0] = -gg * o1.dbase_dvbe - c1.dbase_dvbe
-        j[:, 0, 1] = -gg * o1.dbase_dvbc - c1.dbase_dvbc
-        j[:, 0, 2] = -g_in * o2.dbase_dvbe
-        j[:, 0, 3] = -g_in * o2.dbase_dvbc
-        # middle row
-        j[:, 1, 0] = c1.dcollector_dvbe + c1.dbase_dvbe + g1 * o1.dbase_dvbe
-        j[:, 1, 1] = c1.dcollector_dvbc + c1.dbase_dvbc + g1 * o1.dbase_dvbc
-        j[:, 1, 2] = -g2 * o2.dbase_dvbe - c2.dbase_dvbe
-        j[:, 1, 3] = -g2 * o2.dbase_dvbc - c2.dbase_dvbc
-        # output row
-        j[:, 2, 0] = -c1.dcollector_dvbe
-        j[:, 2, 1] = -c1.dcollector_dvbc
-        j[:, 2, 2] = -g_load * o2.dcollector_dvbe - c2.dcollector_dvbe
-        j[:, 2, 3] = -g_load * o2.dcollector_dvbc - c2.dcollector_dvbc
-        # loop row
-        j[:, 3, 0] = LOOP_CONDUCTANCE * o1.dcollector_dvbe
-        j[:, 3, 1] = LOOP_CONDUCTANCE * o1.dcollector_dvbc
-        j[:, 3, 2] = LOOP_CONDUCTANCE * (o2.dbase_dvbe - o2.dcollector_dvbe)
-        j[:, 3, 3] = LOOP_CONDUCTANCE * (o2.dbase_dvbc - o2.dcollector_dvbc)
-        # target row
-        j[:, 4, 2] = -g_load * o2.dcollector_dvbe
-        j[:, 4, 3] = -g_load * o2.dcollector_dvbc
+        j = None
+        if jacobian:
+            j = [
+                [-gg * o1.dbase_dvbe - c1.dbase_dvbe, -gg * o1.dbase_dvbc - c1.dbase_dvbc,
+                 -g_in * o2.dbase_dvbe, -g_in * o2.dbase_dvbc],
+                [c1.dcollector_dvbe + c1.dbase_dvbe + g1 * o1.dbase_dvbe,
+                 c1.dcollector_dvbc + c1.dbase_dvbc + g1 * o1.dbase_dvbc,
+                 -g2 * o2.dbase_dvbe - c2.dbase_dvbe, -g2 * o2.dbase_dvbc - c2.dbase_dvbc],
+                [-c1.dcollector_dvbe, -c1.dcollector_dvbc,
+                 -g_load * o2.dcollector_dvbe - c2.dcollector_dvbe,
+                 -g_load * o2.dcollector_dvbc - c2.dcollector_dvbc],
+                [gl * o1.dcollector_dvbe, gl * o1.dcollector_dvbc,
+                 gl * (o2.dbase_dvbe - o2.dcollector_dvbe),
+                 gl * (o2.dbase_dvbc - o2.dcollector_dvbc)],
+                [0.0, 0.0, -g_load * o2.dcollector_dvbe, -g_load * o2.dcollector_dvbc],
+            ]
         scale = np.abs(self.v_in * g_in) + np.abs(i_load)
         state = {
-            "v_b1": v_b1, "v_out": v_c, "i_load": i_load,
+            "v_b1": v_b1, "v_b2": v_b2, "v_out": v_c, "i_load": i_load,
             "i_out": c1.collector + c2.collector,
             "ib1": c1.base, "ib2": c2.base,
             "i_rb_out": i_be1 + c1.base,
@@ -131,9 +124,9 @@ class DarlingtonStage(PairStage):
             vbe = np.full(n, pol * 0.2)
             return [np.stack([vbe, 2 * vbe - vs, vbe, vbe - vs], axis=1)]
         vbe2 = vbe_guess(q2, current)
-        # the driver carries the output's base current (a gain of about 30 assumed) and the
-        # current of the output's base-emitter resistor
-        vbe1 = vbe_guess(q1, np.abs(current) / 30.0 + np.abs(vbe2) * g_be2)
+        # the driver carries the output's base current (at its ideal gain) and the current of
+        # the output's base-emitter resistor
+        vbe1 = vbe_guess(q1, np.abs(current) * q2.inv_forward_beta + np.abs(vbe2) * g_be2)
         if mode == "threshold":
             vc = 0.9 * vs
             return [np.stack([vbe1, vbe1 + vbe2 - vc, vbe2, vbe2 - vc], axis=1),

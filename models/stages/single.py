@@ -30,12 +30,14 @@ from tolerance.models.stages import (
     THRESHOLD_FRACTION,
     Subsettable,
     junction_limit,
-    solve_with_restarts,
     read_drive,
     read_environment,
     read_load_table,
     read_resistor,
     saturation_criterion,
+    solve_with_restarts,
+    threshold_voltage,
+    vbe_guess,
 )
 from tolerance.models.transistor import critical_voltage, junction_currents, terminal_offsets
 from tolerance.protocol import register_stage
@@ -129,12 +131,6 @@ class SingleSystem(Subsettable):
         return junction_limit(x_new, x_old, cols)
 
 
-def _vbe_guess(q, current):
-    """Junction voltage of an ideal diode carrying ``current`` [A] (actual polarity) [V]."""
-    nvt = 1.0 / q.inv_forward_nvt
-    return q.polarity * nvt * np.log1p(np.maximum(np.abs(current), 1e-12) / q.saturation_current)
-
-
 class SingleStage:
     """The configured single-NPN stage (picklable)."""
 
@@ -173,7 +169,7 @@ class SingleStage:
         # on-state: from a lightly saturated start, else from the active region
         on = SingleSystem(q, load, vs, v_high, g_in, g_pd, "on")
         demand_guess = load.current(vs - 0.2)[0]
-        vbe0 = _vbe_guess(q, demand_guess)
+        vbe0 = vbe_guess(q, demand_guess)
         sat0 = np.stack([vbe0, vbe0 - pol * 0.15], axis=1)
         act0 = np.stack([vbe0, vbe0 - 0.5 * vs], axis=1)
         r_on = solve_with_restarts(on, [sat0, act0], **opts)
@@ -200,14 +196,26 @@ class SingleStage:
         # switching threshold: input voltage for 1 % of the on-state load current
         target = THRESHOLD_FRACTION * np.where(r_on.converged, i_on, 1.0)
         thr = SingleSystem(q, load, vs, v_high, g_in, g_pd, "threshold", i_target=target)
-        vbe_t = _vbe_guess(q, target)
-        r_thr = solve_with_restarts(thr, [np.stack([vbe_t, vbe_t - 0.9 * vs], axis=1),
-                                          np.stack([vbe_t, vbe_t - 0.5 * vs], axis=1)], **opts)
-        ct, ot, _, _ = thr.state(np.nan_to_num(r_thr.x))
-        with np.errstate(divide="ignore", invalid="ignore"):
-            v_threshold = ot.base + (ot.base * g_pd + ct.base) / g_in
+        vbe_t = vbe_guess(q, target)
+        thr_starts = [np.stack([vbe_t, vbe_t - 0.9 * vs], axis=1),
+                      np.stack([vbe_t, vbe_t - 0.5 * vs], axis=1)]
+        off_starts = [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0]
 
-            converged = r_on.converged & r_edge.converged & r_off.converged & r_thr.converged
+        def solve_threshold():
+            r = solve_with_restarts(thr, thr_starts, slow=False, **opts)
+            ct, ot, _, _ = thr.state(np.nan_to_num(r.x))
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                return r, ot.base + (ot.base * g_pd + ct.base) / g_in
+
+        def zero_drive_current(idx):
+            zero = SingleSystem(q, load, vs, np.zeros(n), g_in, g_pd, "on").subset(idx)
+            r = solve_with_restarts(zero, [g[idx] for g in off_starts], **opts)
+            return r.converged, zero.state(np.nan_to_num(r.x))[0].collector
+
+        v_threshold, thr_ok = threshold_voltage(solve_threshold, zero_drive_current, target,
+                                                opts)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            converged = r_on.converged & r_edge.converged & r_off.converged & thr_ok
             out = {
                 "load_current": i_on,
                 "vce_on": o.collector,

@@ -1,0 +1,229 @@
+"""From datasheet figures to model parameters; the part library; bad device data."""
+
+from __future__ import annotations
+
+import textwrap
+
+import numpy as np
+import pytest
+
+from tolerance.distributions import LogNormal
+from tolerance.models.datasheet import (
+    Datasheet,
+    DatasheetError,
+    fit_datasheet,
+    hfe_at,
+    model_figures,
+    saturation_at,
+)
+from tolerance.models.parts import device_for, library
+from tolerance.study import StudyError, load_study
+
+
+def _all_dies():
+    out = []
+    for name, entry in sorted(library().items()):
+        if entry.kind == "transistor":
+            out.append((name, entry.figures))
+        else:
+            for die, figures in entry.dies.items():
+                out.append((f"{name}.{die}", figures))
+    return out
+
+
+@pytest.mark.parametrize("name, figures", _all_dies(), ids=[n for n, _ in _all_dies()])
+def test_library_model_reproduces_its_figures(name, figures):
+    # the fit's own targets (module table of tolerance.models.datasheet); 2 % is the
+    # acceptance band for a datasheet-derived model
+    device = device_for(figures)
+    got = model_figures(device)
+    ds = device.datasheet
+    assert set(got) >= {"hfe_min", "hfe_max", "vce_sat_max", "vbe_on", "icbo_max"}
+    for key, value in got.items():
+        assert value == pytest.approx(getattr(ds, key), rel=0.02), key
+
+
+def test_gain_mapping_is_exact_at_the_test_point():
+    # the closed form of forward_beta_for_hfe: the model's h_FE at the datasheet test point
+    # equals the sampled gain for every unit (rounding-level check)
+    device = device_for(library()["small_signal_npn"].figures)
+    ds = device.datasheet
+    rng = np.random.default_rng(2)
+    hfe = np.exp(rng.uniform(np.log(60), np.log(500), 40))
+    icbo = np.exp(rng.uniform(np.log(1e-9), np.log(5e-8), 40))
+    params = device.parameters(hfe, icbo)
+    got, _ = hfe_at(params, ds.hfe_current, ds.hfe_vce)
+    np.testing.assert_allclose(got, hfe, rtol=1e-9)
+
+
+def test_gain_curve_shape_is_common_to_all_units():
+    # the units' base-current curves scale together (module Notes): h_FE(I)/h_FE(test) is the
+    # same for a low-gain and a high-gain unit to within the Early/knee interaction (1 %)
+    device = device_for(library()["medium_power_npn"].figures)
+    ds = device.datasheet
+    lo, hi = device.parameters(np.array([40.0])), device.parameters(np.array([250.0]))
+    for current in (ds.hfe_low_current, ds.hfe_high_current):
+        r_lo = hfe_at(lo, current, ds.hfe_vce)[0][0] / 40.0
+        r_hi = hfe_at(hi, current, ds.hfe_vce)[0][0] / 250.0
+        assert r_lo == pytest.approx(r_hi, rel=0.01)
+
+
+def test_library_lists_generic_classes():
+    lib = library()
+    assert set(lib) == {"small_signal_npn", "small_signal_pnp", "medium_power_npn",
+                        "power_npn", "monolithic_darlington"}
+    for name, entry in lib.items():
+        assert entry.description and entry.package
+        assert "from memory" in (entry.text.get("description", "") + name) or entry.text
+    assert lib["small_signal_pnp"].figures["polarity"] == "pnp"
+    assert lib["monolithic_darlington"].kind == "darlington"
+    assert set(lib["monolithic_darlington"].dies) == {"driver", "output"}
+
+
+def test_every_figure_line_of_the_data_files_is_marked_from_memory():
+    # project rule: library figures are typical class values, from memory
+    from importlib import resources
+
+    folder = resources.files("tolerance.models").joinpath("parts")
+    for item in folder.iterdir():
+        if not item.name.endswith(".toml"):
+            continue
+        for line in item.read_text(encoding="utf-8").splitlines():
+            stripped = line.strip()
+            if not stripped or stripped.startswith(("#", "[")) or stripped.split("=")[0].strip() \
+                    in ("kind", "description", "package", "polarity"):
+                continue
+            assert "from memory" in line, f"{item.name}: {line}"
+
+
+def test_vce_sat_override_moves_the_fit():
+    figures = dict(library()["small_signal_npn"].figures, vce_sat_max=0.2)
+    device = device_for(figures)
+    q_min = device.parameters(np.array([device.datasheet.hfe_min]))
+    vce, _ = saturation_at(q_min, 50e-3, 5e-3)
+    assert vce[0] == pytest.approx(0.2, rel=1e-6)
+
+
+def test_inconsistent_figures_are_rejected_by_name():
+    base = dict(library()["small_signal_npn"].figures)
+    for key, value, match in (("hfe_min", 400.0, "hfe_min"), ("icbo_max", -1e-9, "icbo_max"),
+                              ("vce_sat_ib", 1e-4, "vce_sat_ib"),
+                              ("hfe_low_current", 0.5, "hfe_low_current")):
+        with pytest.raises(DatasheetError) as info:
+            Datasheet.from_figures(dict(base, **{key: value}))
+        assert info.value.key == match
+    with pytest.raises(DatasheetError, match="polarity"):
+        Datasheet.from_figures({k: v for k, v in base.items() if k != "polarity"})
+    with pytest.raises(DatasheetError) as info:
+        Datasheet.from_figures({k: v for k, v in base.items() if k != "ic_max"})
+    assert info.value.key == "ic_max"
+
+
+def test_unreachable_saturation_voltage_is_rejected():
+    # below the intrinsic Ebers-Moll V_CE(sat) at the forced gain no collector resistance helps
+    figures = dict(library()["small_signal_npn"].figures, vce_sat_max=0.01)
+    with pytest.raises(DatasheetError) as info:
+        fit_datasheet(Datasheet.from_figures(figures))
+    assert info.value.key == "vce_sat_max"
+
+
+STUDY = """
+stage = "single"
+[supply]
+voltage = "12 V"
+[drive]
+high = "3.3 V"
+[parts.RB]
+value = "1k"
+[parts.Q1]
+{q1}
+[load]
+kind = "resistor"
+resistance = "120 ohm"
+"""
+
+
+def _study(tmp_path, q1):
+    path = tmp_path / "s.toml"
+    path.write_text(textwrap.dedent(STUDY).replace("{q1}", q1), encoding="utf-8")
+    return load_study(path)
+
+
+def test_study_parameters_of_a_library_part(tmp_path):
+    study = _study(tmp_path, 'device = "small_signal_npn"')
+    hfe = study.parameter("Q1.hfe").distribution
+    # lognormal between the datasheet min and max, typical value as median (module docstring)
+    assert isinstance(hfe, LogNormal)
+    assert (hfe.lower, hfe.upper, hfe.median) == (100.0, 300.0, 200.0)
+    icbo = study.parameter("Q1.icbo").distribution
+    assert isinstance(icbo, LogNormal)
+    assert icbo.upper == pytest.approx(50e-9) and icbo.lower == pytest.approx(50e-9 / 30)
+    assert study.parameter("Q1.hfe").key == "parts.Q1.hfe"
+
+
+@pytest.mark.parametrize("q1, key", [
+    ('device = "small_signal_npn"\nhfe = {min = 300, max = 100}', "parts.Q1.hfe.min"),
+    ('device = "small_signal_npn"\nicbo_max = "-5 nA"', "parts.Q1.icbo_max"),
+    ('device = "small_signal_npn"\nvce_sat_max = "13 V"', "parts.Q1.vce_sat_max"),
+    ('device = "small_signal_npm"', "parts.Q1.device"),
+    ('device = "small_signal_pnp"', "parts.Q1.device"),
+    ('device = "monolithic_darlington"', "parts.Q1.device"),
+    ('device = "small_signal_npn"\nvce_sat_maxx = "0.2 V"', "parts.Q1.vce_sat_maxx"),
+])
+def test_bad_device_data_names_the_key(tmp_path, q1, key):
+    with pytest.raises(StudyError) as info:
+        _study(tmp_path, q1)
+    assert info.value.key == key, str(info.value)
+
+
+def test_did_you_mean_for_a_misspelt_device(tmp_path):
+    with pytest.raises(StudyError, match="did you mean 'small_signal_npn'"):
+        _study(tmp_path, 'device = "smal_signal_npn"')
+
+
+def test_inline_device(tmp_path):
+    lib = library()["small_signal_npn"]
+    lines = ['device = "inline"', 'polarity = "npn"']
+    for key, value in lib.text.items():
+        if key not in ("kind", "description", "package", "polarity"):
+            lines.append(f"{key} = {value!r}".replace("'", '"'))
+    study = _study(tmp_path, "\n".join(lines))
+    res = study.stage.evaluate({p.name: np.full(3, p.nominal) for p in study.parameters})
+    assert res["converged"].all()
+    missing = [line for line in lines if not line.startswith("ic_max")]
+    with pytest.raises(StudyError) as info:
+        _study(tmp_path, "\n".join(missing))
+    assert "ic_max" in str(info.value)
+
+
+def test_monolithic_darlington_study(tmp_path):
+    path = tmp_path / "m.toml"
+    path.write_text(textwrap.dedent("""
+        stage = "darlington"
+        [supply]
+        voltage = "24 V"
+        [drive]
+        high = "5 V"
+        [parts.RB]
+        value = "1k"
+        [parts.Q2]
+        monolithic = true
+        device = "monolithic_darlington"
+        [load]
+        kind = "resistor"
+        resistance = "24 ohm"
+        [[correlation]]
+        parameters = ["Q1.hfe", "Q2.hfe"]
+        coefficient = 0.8
+    """), encoding="utf-8")
+    study = load_study(path)
+    names = study.parameter_names
+    assert {"Q1.hfe", "Q2.hfe", "Q2.rbe_driver", "Q2.rbe_output"} <= set(names)
+    rbe = study.parameter("Q2.rbe_output").distribution
+    assert rbe.nominal == pytest.approx(120.0)
+    assert study.stage.suggested_correlations == ((("Q1.hfe", "Q2.hfe"), 0.8),)
+    res = study.stage.evaluate({p.name: np.full(2, p.nominal) for p in study.parameters})
+    assert res["converged"].all() and res["drive_margin"][0] > 1
+    # the pair's stated saturation voltage (2 V at 3 A / 12 mA) is met by the typical unit at
+    # the nominal 1 A load: it stays below the figure (typical class values, from memory)
+    assert 0.6 < res["vce_on"][0] < 2.0
