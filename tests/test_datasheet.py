@@ -188,7 +188,7 @@ def test_inline_device(tmp_path):
         if key not in ("kind", "description", "package", "polarity"):
             lines.append(f"{key} = {value!r}".replace("'", '"'))
     study = _study(tmp_path, "\n".join(lines))
-    res = study.stage.evaluate({p.name: np.full(3, p.nominal) for p in study.parameters})
+    res = study.stage.dc({p.name: np.full(3, p.nominal) for p in study.parameters})
     assert res["converged"].all()
     missing = [line for line in lines if not line.startswith("ic_max")]
     with pytest.raises(StudyError) as info:
@@ -222,7 +222,7 @@ def test_monolithic_darlington_study(tmp_path):
     rbe = study.parameter("Q2.rbe_output").distribution
     assert rbe.nominal == pytest.approx(120.0)
     assert study.stage.suggested_correlations == ((("Q1.hfe", "Q2.hfe"), 0.8),)
-    res = study.stage.evaluate({p.name: np.full(2, p.nominal) for p in study.parameters})
+    res = study.stage.dc({p.name: np.full(2, p.nominal) for p in study.parameters})
     assert res["converged"].all() and res["drive_margin"][0] > 1
     # the pair's stated saturation voltage (2 V at 3 A / 12 mA) is met by the typical unit at
     # the nominal 1 A load: it stays below the figure (typical class values, from memory)

@@ -315,7 +315,7 @@ def test_single_matches_scipy_reference(tmp_path):
     study = study_from(tmp_path, SINGLE_WIDE)
     n = 220
     samples = draw(study, n, seed=42)
-    res = study.stage.evaluate(samples)
+    res = study.stage.dc(samples)
     assert res["converged"].all()
     for k in range(n):
         ref = reference_single(study.stage, samples, k)
@@ -330,7 +330,7 @@ def test_single_nominal_study_is_sane(tmp_path):
     # gives about 2.5 mA of base current, saturates a gain-100 transistor, and V_CE(on) stays
     # below a volt
     study = study_from(tmp_path, SINGLE_NOMINAL)
-    res = study.stage.evaluate(nominal(study))
+    res = study.stage.dc(nominal(study))
     assert res["converged"][0]
     assert 1.5e-3 < res["base_current"][0] < 2.6e-3
     assert res["drive_margin"][0] > 1.0
@@ -338,7 +338,8 @@ def test_single_nominal_study_is_sane(tmp_path):
     assert res["load_current"][0] == pytest.approx(
         (12 - res["vce_on"][0]) / 120.0, rel=1e-9)  # the resistor's own law
     assert res["off_margin"][0] > 0.2
-    assert set(study.stage.metrics) <= set(res)
+    # the full evaluation (electro-thermal loop and ratings) gives every declared metric
+    assert set(study.stage.metrics) <= set(study.stage.evaluate(nominal(study)))
 
 
 def test_drive_margin_above_one_means_saturated(tmp_path):
@@ -350,7 +351,7 @@ def test_drive_margin_above_one_means_saturated(tmp_path):
     study = study_from(tmp_path, SINGLE_WIDE)
     samples = draw(study, 3000, seed=9)
     stage = study.stage
-    res = stage.evaluate(samples)
+    res = stage.dc(samples)
     t, vs, v_high, v_low, g_in, g_pd, q, load = stage._setup(samples)
     on = SingleSystem(q, load, vs, v_high, g_in, g_pd, "on")
     vbe0 = np.full(vs.shape, 0.7)
@@ -367,16 +368,16 @@ def test_monotonic_sweeps(tmp_path):
     study = study_from(tmp_path, SINGLE_NOMINAL)
     stage = study.stage
     rb = np.linspace(300, 5000, 40)
-    m = stage.evaluate(nominal(study, 40, RB=rb))["drive_margin"]
+    m = stage.dc(nominal(study, 40, RB=rb))["drive_margin"]
     assert np.all(np.diff(m) < 0)
     hfe = np.geomspace(60, 400, 40)
-    m = stage.evaluate(nominal(study, 40, Q1__hfe=hfe))["drive_margin"]
+    m = stage.dc(nominal(study, 40, Q1__hfe=hfe))["drive_margin"]
     assert np.all(np.diff(m) > 0)
     vs = np.linspace(8, 16, 40)
-    m = stage.evaluate(nominal(study, 40, supply__voltage=vs))["drive_margin"]
+    m = stage.dc(nominal(study, 40, supply__voltage=vs))["drive_margin"]
     assert np.all(np.diff(m) < 0)
     rpd = np.geomspace(1e3, 1e6, 40)
-    r = stage.evaluate(nominal(study, 40, RPD=rpd))
+    r = stage.dc(nominal(study, 40, RPD=rpd))
     assert np.all(np.diff(r["drive_margin"]) > 0)
     # a stronger pull-down keeps the switch off further: off_margin falls as RPD rises
     assert np.all(np.diff(r["off_margin"]) < 0)
@@ -388,7 +389,7 @@ def test_leakage_grows_with_temperature(tmp_path):
     # temperature
     study = study_from(tmp_path, SINGLE_NOMINAL)
     t = np.linspace(233.15, 358.15, 30)
-    off = study.stage.evaluate(nominal(study, 30, ambient__temperature=t,
+    off = study.stage.dc(nominal(study, 30, ambient__temperature=t,
                                        drive__low=0.0))["off_current"]
     assert np.all(np.diff(off) > 0)
     assert off[-1] / off[0] > 100
@@ -683,7 +684,7 @@ def test_pair_stages_match_scipy_reference(tmp_path, kind, text):
     study = study_from(tmp_path, text)
     n = 210
     samples = draw(study, n, seed=17)
-    res = study.stage.evaluate(samples)
+    res = study.stage.dc(samples)
     assert res["converged"].all()
     for k in range(n):
         ref = reference_pair(study.stage, samples, k, kind)
@@ -736,7 +737,7 @@ def test_darlington_on_voltage_sits_at_vbe2_plus_vce1sat(tmp_path):
     text = DARLINGTON_WIDE.replace('{min = "470 ohm", max = "22k"}', '"470 ohm"')
     study = study_from(tmp_path, text)
     samples = draw(study, 400, seed=5)
-    res = study.stage.evaluate(samples)
+    res = study.stage.dc(samples)
     on = res["drive_margin"] > 1.2
     assert on.sum() > 100
     vce = res["vce_on"][on]
@@ -761,7 +762,7 @@ def test_darlington_on_voltage_sits_at_vbe2_plus_vce1sat(tmp_path):
     single = study_from(tmp_path, SINGLE_NOMINAL.replace('"small_signal_npn"', '"power_npn"')
                         .replace('"120 ohm"', '"24 ohm"').replace('"1k"', '"47 ohm"')
                         .replace("hfe = {min = 100, max = 300}\n", ""), name="single.toml")
-    rs = single.stage.evaluate(nominal(single))
+    rs = single.stage.dc(nominal(single))
     assert rs["drive_margin"][0] > 1 and rs["vce_on"][0] < np.min(vce) - 0.3
 
 
@@ -797,8 +798,8 @@ def test_base_emitter_resistor_cuts_hot_leakage_by_the_gain(tmp_path):
     hot = 373.15
     open_base = study_from(tmp_path, LEAKAGE.format(rb="1G"), name="open.toml")
     shunted = study_from(tmp_path, LEAKAGE.format(rb="100 ohm"), name="shunt.toml")
-    i_open = open_base.stage.evaluate(nominal(open_base))["off_current"][0]
-    i_shunt = shunted.stage.evaluate(nominal(shunted))["off_current"][0]
+    i_open = open_base.stage.dc(nominal(open_base))["off_current"][0]
+    i_shunt = shunted.stage.dc(nominal(shunted))["off_current"][0]
     q = open_base.stage.q1
     params = q.device.parameters(np.array([200.0]), np.array([20e-9]))
     i_gen = 20e-9 * 2 ** ((hot - 298.15) / 10.0)  # doubling every 10 K
@@ -831,11 +832,13 @@ def test_every_load_kind_through_every_stage(tmp_path, stage_text, load_table):
     text = stage_text[:stage_text.index("[load]")] + "[load]\n" + load_table + "\n"
     study = study_from(tmp_path, text)
     samples = draw(study, 300, seed=8)
-    res = study.stage.evaluate(samples)
+    res = study.stage.dc(samples)
     assert res["converged"].all()
     t, vs = samples["ambient.temperature"], samples["supply.voltage"]
     state = study.stage.load.at(samples, t, vs)
     i_law = state.current(vs - res["vce_on"])[0]
     np.testing.assert_allclose(res["load_current"], i_law, rtol=1e-9)
+    full = study.stage.evaluate(samples)
+    assert full["converged"].all()
     for key in study.stage.metrics:
-        assert res[key].shape == (300,)
+        assert full[key].shape == (300,)

@@ -520,12 +520,18 @@ def build_study(data: dict, file: str, text: str) -> Study:
     criteria = _read_limits(top.table("limits"), stage)
     correlations = _read_correlations(top, ctx)
 
+    # several readers may read one table (a stage and a helper each take their keys): a key
+    # is known when any reader of that table consumed it
+    used_by_table: dict[int, set[str]] = {}
+    for reader in ctx.readers:
+        used_by_table.setdefault(id(reader._data), set()).update(reader._used)
     for reader in ctx.readers:
         if not reader.exists:
             continue
+        used = used_by_table[id(reader._data)]
         for k in reader._data:
-            if k not in reader._used:
-                known = set(reader._used)
+            if k not in used:
+                known = set(used)
                 if reader.path == "":
                     known |= set(ENGINE_KEYS)
                 raise StudyError(file, reader.key(k), "unknown key" + _did_you_mean(k, known))
@@ -564,23 +570,26 @@ def _read_limits(r: Reader, stage: ConfiguredStage) -> tuple[Criterion, ...]:
             raise spec.error("min", f"min ({lo:g}) is above max ({hi:g})")
         desc = spec.string("description", default="")
         study_criteria.append(Criterion(metric, metric, lo, hi, "study", desc))
-    overridden = {c.metric for c in study_criteria}
-    defaults = [c for c in stage.criteria if c.metric not in overridden or c.source == "rating"]
-    # study criteria keep the default's name when they replace one (e.g. saturation)
-    names = {c.metric: c.name for c in stage.criteria if c.source == "stage"}
-    study_criteria = [
-        Criterion(names.get(c.metric, c.name), c.metric, c.minimum, c.maximum, c.source,
-                  c.description or next((d.description for d in stage.criteria
-                                         if d.metric == c.metric), ""))
-        for c in study_criteria
-    ]
-    seen = set()
-    out = []
-    for c in defaults + study_criteria:
-        if c.name in seen:
-            continue
-        seen.add(c.name)
-        out.append(c)
+    # a study limit on a metric replaces the stage's default or the rating on that metric
+    # (tightening or relaxing it) and keeps its name; order: stage defaults, study, ratings
+    defaults = {c.metric: c for c in stage.criteria}
+    replaced = []
+    for c in study_criteria:
+        d = defaults.get(c.metric)
+        replaced.append(Criterion(d.name if d else c.name, c.metric, c.minimum, c.maximum,
+                                  d.source if d else "study",
+                                  c.description or (d.description if d else "")))
+    overridden = {c.metric for c in replaced}
+    kept = [c for c in stage.criteria if c.metric not in overridden]
+    ordered = ([c for c in kept if c.source == "stage"]
+               + [c for c in replaced if c.source != "rating"]
+               + [c for c in kept if c.source == "rating"]
+               + [c for c in replaced if c.source == "rating"])
+    seen, out = set(), []
+    for c in ordered:
+        if c.name not in seen:
+            seen.add(c.name)
+            out.append(c)
     return tuple(out)
 
 

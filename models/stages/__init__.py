@@ -119,6 +119,9 @@ class ResistorPart:
     present: bool
     value_parameter: str | None = None
     tempco_parameter: str | None = None
+    power_rating: float = 0.25
+    rated_ambient: float = 343.15
+    max_temperature: float = 428.15
     tempco_value: float = 0.0
 
     def resistance(self, samples, temperature) -> np.ndarray:
@@ -140,7 +143,9 @@ class ResistorPart:
 
 
 def read_resistor(parts: Reader, name: str, description: str, required: bool) -> ResistorPart:
-    """Read ``[parts.<name>]``: ``value`` (toleranced), ``tempco`` (default 0).
+    """Read ``[parts.<name>]``: ``value`` (toleranced), ``tempco`` (default 0), and the power
+    rating with its derating curve (``power_rating`` [W] default 0.25 W, ``rated_ambient``
+    default 70 degC, ``max_temperature`` default 155 degC).
 
     Parameters ``<name>`` [ohm] and ``<name>.tempco`` [1/K].
     """
@@ -152,7 +157,15 @@ def read_resistor(parts: Reader, name: str, description: str, required: bool) ->
     table.parameter("value", "ohm", name, description, positive=True, allow_tolerance_key=True)
     table.parameter("tempco", "1/K", f"{name}.tempco", f"{description}: temperature "
                     "coefficient", default=0.0, minimum=-5e-3, maximum=5e-3)
-    return ResistorPart(name, True, name, f"{name}.tempco")
+    # power rating and its derating curve: full power to rated_ambient, zero at
+    # max_temperature (film-resistor defaults 0.25 W, 70 degC, 155 degC; common practice)
+    rating = table.quantity("power_rating", "W", default=0.25, positive=True)
+    rated_ambient = table.quantity("rated_ambient", "temperature", default=343.15)
+    max_temperature = table.quantity("max_temperature", "temperature", default=428.15)
+    if not max_temperature > rated_ambient:
+        raise table.error("max_temperature", "must lie above the rated ambient temperature")
+    return ResistorPart(name, True, name, f"{name}.tempco", rating, rated_ambient,
+                        max_temperature)
 
 
 @dataclass(frozen=True)
@@ -384,8 +397,19 @@ class PairStage:
         self.criteria = [saturation_criterion()] + list(load.criteria)
         self.solver_options = {}
 
-    def _setup(self, samples):
+    devices = ("Q1", "Q2")
+
+    def transistors(self):
+        """The stage's transistors by name (for ratings and the thermal network)."""
+        return {"Q1": self.q1, "Q2": self.q2}
+
+    def resistors(self):
+        return {"RB": self.rb, "RBE1": self.rbe1, "RBE2": self.rbe2}
+
+    def _setup(self, samples, temps=None):
         t = np.asarray(samples[self.env.temperature], dtype=float)
+        t1 = t if temps is None else temps["Q1"]
+        t2 = t if temps is None else temps["Q2"]
         vs = np.asarray(samples[self.env.supply], dtype=float)
         v_high, v_low, r_s = self.drive.levels(samples)
         g_in = 1.0 / (r_s + self.rb.resistance(samples, t))
@@ -395,18 +419,51 @@ class PairStage:
             g_be1 = g_be1 + self.internal_rbe1.conductance(samples, t)
         if self.internal_rbe2 is not None:
             g_be2 = g_be2 + self.internal_rbe2.conductance(samples, t)
-        q1 = self.q1.parameters(samples).at_temperature(t)
-        q2 = self.q2.parameters(samples).at_temperature(t)
+        q1 = self.q1.parameters(samples).at_temperature(t1)
+        q2 = self.q2.parameters(samples).at_temperature(t2)
         load = self.load.at(samples, t, vs)
         return t, vs, v_high, v_low, g_in, g_be1, g_be2, q1, q2, load
 
+    def _powers(self, samples, v_in, g_in, g_be1, g_be2, state, vs):
+        """Dissipation of every part and the source powers of one solved state [W].
+
+        A monolithic pair's internal resistors count with the external ones they parallel.
+        """
+        r_s = self.drive.levels(samples)[2]
+        i_in = (v_in - state["v_b1"]) * g_in
+        v_be1, v_be2 = self.resistor_voltages(state)
+        return {
+            "devices": {"Q1": state["p1"], "Q2": state["p2"]},
+            "resistors": {"RB": i_in ** 2 * (1.0 / g_in - r_s), "RBE1": v_be1 ** 2 * g_be1,
+                          "RBE2": v_be2 ** 2 * g_be2},
+            "source": i_in ** 2 * r_s,
+            "load": (vs - state["v_out"]) * state["i_load"],
+            "supply": vs * state["i_load"],
+            "drive": v_in * i_in,
+        }
+
     def evaluate(self, samples):
-        """All metrics for a chunk of samples (see :mod:`tolerance.models.stages`)."""
-        t, vs, v_high, v_low, g_in, g_be1, g_be2, q1, q2, load = self._setup(samples)
+        """All metrics for a chunk: DC, switching and electro-thermal (see
+        :func:`tolerance.models.stages.evaluation.evaluate_stage`)."""
+        from tolerance.models.stages.evaluation import evaluate_stage
+
+        return evaluate_stage(self, samples)
+
+    def dc(self, samples, temps=None, temps_off=None, full=True):
+        """DC solution at the given device temperatures [K] (default: the ambient); see
+        :meth:`tolerance.models.stages.single.SingleStage.dc`."""
+        t, vs, v_high, v_low, g_in, g_be1, g_be2, q1, q2, load = self._setup(samples, temps)
+        if temps_off is not None and temps_off is not temps:
+            q1_off = self.q1.parameters(samples).at_temperature(temps_off["Q1"])
+            q2_off = self.q2.parameters(samples).at_temperature(temps_off["Q2"])
+        else:
+            q1_off, q2_off = q1, q2
         n = vs.shape[0]
         opts = self.solver_options
         make = lambda v, mode, target=None: self.system(  # noqa: E731
             q1, q2, load, vs, v, g_in, g_be1, g_be2, mode, target)
+        make_off = lambda v, mode, target=None: self.system(  # noqa: E731
+            q1_off, q2_off, load, vs, v, g_in, g_be1, g_be2, mode, target)
 
         demand_guess = load.current(vs - 1.0)[0]
         on = make(v_high, "on")
@@ -415,20 +472,29 @@ class PairStage:
         s_on = on.state(np.nan_to_num(r_on.x))
         x_on = np.where(r_on.converged[:, None], r_on.x, starts[0])
 
+        if not full:
+            off = make_off(v_low, "on")
+            off_starts = self.guesses("off", q1_off, q2_off, vs, demand_guess, g_be2)
+            r_off = solve_with_restarts(off, off_starts + [x_on], **opts)
+            s_off = off.state(np.nan_to_num(r_off.x))
+            return {"converged": r_on.converged & r_off.converged,
+                    "power_on": self._powers(samples, v_high, g_in, g_be1, g_be2, s_on, vs),
+                    "power_off": self._powers(samples, v_low, g_in, g_be1, g_be2, s_off, vs)}
+
         edge = make(v_high, "edge")
         cols = [0, 2, 3]
         r_edge = solve_with_restarts(edge, [x_on[:, cols]] + [g[:, cols] for g in starts], **opts)
         s_edge = edge.state(np.nan_to_num(r_edge.x))
         demand = load.current(vs - s_edge["v_out"])[0]
 
-        off = make(v_low, "on")
-        off_starts = self.guesses("off", q1, q2, vs, demand_guess, g_be2)
+        off = make_off(v_low, "on")
+        off_starts = self.guesses("off", q1_off, q2_off, vs, demand_guess, g_be2)
         r_off = solve_with_restarts(off, off_starts + [x_on], **opts)
         s_off = off.state(np.nan_to_num(r_off.x))
 
         target = THRESHOLD_FRACTION * np.where(r_on.converged, s_on["i_out"], 1.0)
-        thr = make(v_high, "threshold", target)
-        thr_starts = self.guesses("threshold", q1, q2, vs, target, g_be2)
+        thr = make_off(v_high, "threshold", target)
+        thr_starts = self.guesses("threshold", q1_off, q2_off, vs, target, g_be2)
 
         def solve_threshold():
             r = solve_with_restarts(thr, thr_starts, slow=False, **opts)
@@ -437,7 +503,7 @@ class PairStage:
                 return r, s_t["v_b1"] + s_t["i_rb_out"] / g_in
 
         def zero_drive_current(idx):
-            zero = make(np.zeros(n), "on").subset(idx)
+            zero = make_off(np.zeros(n), "on").subset(idx)
             r = solve_with_restarts(zero, [g[idx] for g in off_starts], **opts)
             return r.converged, zero.state(np.nan_to_num(r.x))["i_out"]
 
@@ -464,6 +530,11 @@ class PairStage:
         for key, value in out.items():
             out[key] = np.where(converged, np.asarray(value, dtype=float), np.nan)
         out["converged"] = converged
+        out["power_on"] = self._powers(samples, v_high, g_in, g_be1, g_be2, s_on, vs)
+        out["power_off"] = self._powers(samples, v_low, g_in, g_be1, g_be2, s_off, vs)
+        out["vce_off"] = s_off["v_out"]
+        out["capability"] = s_edge["i_out"]
+        out["load_state"] = load
         return out
 
 

@@ -51,6 +51,7 @@ from tolerance.models.stages import (
     vbe_guess,
 )
 from tolerance.models.transistor import junction_currents, terminal_offsets
+from tolerance.models.stages.evaluation import read_thermal
 from tolerance.protocol import register_stage
 from tolerance.study import Reader
 
@@ -115,6 +116,12 @@ class DarlingtonStage(PairStage):
 
     name = "darlington"
     system = DarlingtonSystem
+
+    @staticmethod
+    def resistor_voltages(state):
+        """Voltages across RBE1 (driver base to output base) and RBE2 (output base to
+        ground) [V]."""
+        return state["v_b1"] - state["v_b2"], state["v_b2"]
 
     def guesses(self, mode, q1, q2, vs, current, g_be2):
         """Starting points (S, 4) for the ``on``, ``off`` and ``threshold`` solves."""
@@ -206,7 +213,11 @@ def configure(reader):
             names.append(r.value_parameter)
     names += [q1.hfe_parameter, q1.icbo_parameter, q2.hfe_parameter, q2.icbo_parameter]
     names += list(load.parameters)
-    return DarlingtonStage(env, drive, rb, rbe1, rbe2, q1, q2, load, names,
-                           internal_rbe1=internal1, internal_rbe2=internal2,
-                           suggested_correlations=((("Q1.hfe", "Q2.hfe"), 0.8),)
-                           if monolithic else ())
+    stage = DarlingtonStage(env, drive, rb, rbe1, rbe2, q1, q2, load, names,
+                            internal_rbe1=internal1, internal_rbe2=internal2,
+                            suggested_correlations=((("Q1.hfe", "Q2.hfe"), 0.8),)
+                            if monolithic else ())
+    # one die: both transistors share the output's junction and thermal resistance
+    read_thermal(reader, parts, stage, {"Q1": "driver", "Q2": "output"},
+                 shared={"Q1": "Q2"} if monolithic else None)
+    return stage

@@ -40,6 +40,7 @@ from tolerance.models.stages import (
     vbe_guess,
 )
 from tolerance.models.transistor import critical_voltage, junction_currents, terminal_offsets
+from tolerance.models.stages.evaluation import read_thermal
 from tolerance.protocol import register_stage
 
 __all__ = ["SingleStage", "SingleSystem", "configure"]
@@ -149,19 +150,59 @@ class SingleStage:
         self.criteria = [saturation_criterion()] + list(load.criteria)
         self.solver_options = {}
 
-    def _setup(self, samples):
+    devices = ("Q1",)
+
+    def transistors(self):
+        """The stage's transistors by name (for ratings and the thermal network)."""
+        return {"Q1": self.q1}
+
+    def resistors(self):
+        return {"RB": self.rb, "RPD": self.rpd}
+
+    def _setup(self, samples, temps=None):
         t = np.asarray(samples[self.env.temperature], dtype=float)
+        tq = t if temps is None else temps["Q1"]
         vs = np.asarray(samples[self.env.supply], dtype=float)
         v_high, v_low, r_s = self.drive.levels(samples)
         g_in = 1.0 / (r_s + self.rb.resistance(samples, t))
         g_pd = self.rpd.conductance(samples, t)
-        q = self.q1.parameters(samples).at_temperature(t)
+        q = self.q1.parameters(samples).at_temperature(tq)
         load = self.load.at(samples, t, vs)
         return t, vs, v_high, v_low, g_in, g_pd, q, load
 
     def evaluate(self, samples):
-        """All metrics for a chunk of samples (see the module docstring)."""
-        t, vs, v_high, v_low, g_in, g_pd, q, load = self._setup(samples)
+        """All metrics for a chunk: DC, switching and electro-thermal (see
+        :func:`tolerance.models.stages.evaluation.evaluate_stage`)."""
+        from tolerance.models.stages.evaluation import evaluate_stage
+
+        return evaluate_stage(self, samples)
+
+    def _powers(self, samples, t, v_in, g_in, g_pd, c, o, i_load, vs):
+        """Dissipation of every part and the source powers of one solved state [W]."""
+        r_s = self.drive.levels(samples)[2]
+        i_in = (v_in - o.base) * g_in
+        return {
+            "devices": {"Q1": c.collector * o.collector + c.base * o.base},
+            "resistors": {"RB": i_in ** 2 * self.rb.resistance(samples, t),
+                          "RPD": o.base ** 2 * g_pd},
+            "source": i_in ** 2 * r_s,
+            "load": (vs - o.collector) * i_load,
+            "supply": vs * i_load,
+            "drive": v_in * i_in,
+        }
+
+    def dc(self, samples, temps=None, temps_off=None, full=True):
+        """DC solution at the given device temperatures [K] (default: the ambient).
+
+        ``temps_off`` are the temperatures of the off-state solve (default ``temps``). With
+        ``full`` False only the on- and off-states are solved (the electro-thermal loop needs
+        no more); the result then holds the powers and convergence only.
+        """
+        t, vs, v_high, v_low, g_in, g_pd, q, load = self._setup(samples, temps)
+        if temps_off is not None and temps_off is not temps:
+            q_off = self.q1.parameters(samples).at_temperature(temps_off["Q1"])
+        else:
+            q_off = q
         n = vs.shape[0]
         opts = self.solver_options
 
@@ -176,6 +217,17 @@ class SingleStage:
         c, o, i_on, _ = on.state(np.nan_to_num(r_on.x))
         x_on = np.where(r_on.converged[:, None], r_on.x, sat0)
 
+        if not full:
+            off = SingleSystem(q_off, load, vs, v_low, g_in, g_pd, "on")
+            vb_off = np.minimum(np.abs(v_low) * g_in / (g_in + g_pd), 0.3) * q.polarity
+            r_off = solve_with_restarts(off, [np.stack([vb_off, vb_off - vs], axis=1), x_on,
+                                              act0], **opts)
+            c_off, o_off, i_l_off, _ = off.state(np.nan_to_num(r_off.x))
+            return {"converged": r_on.converged & r_off.converged,
+                    "power_on": self._powers(samples, t, v_high, g_in, g_pd, c, o, i_on, vs),
+                    "power_off": self._powers(samples, t, v_low, g_in, g_pd, c_off, o_off,
+                                              c_off.collector, vs)}
+
         # edge of saturation
         edge = SingleSystem(q, load, vs, v_high, g_in, g_pd, "edge")
         r_edge = solve_with_restarts(edge, [x_on[:, :1], vbe0[:, None],
@@ -184,19 +236,19 @@ class SingleStage:
         demand = load.current(vs - oe.collector)[0]
 
         # off-state: from cut-off, else from the on-state (a hot unit may conduct)
-        off = SingleSystem(q, load, vs, v_low, g_in, g_pd, "on")
+        off = SingleSystem(q_off, load, vs, v_low, g_in, g_pd, "on")
         vb_off = pol * np.minimum(np.abs(v_low) * g_in / (g_in + g_pd), 0.3)
         r_off = solve_with_restarts(off, [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0],
                                     **opts)
         # the transistor's collector current (equal to the load's at the solution) keeps its
         # relative accuracy where the load voltage is a tiny difference of two large ones
-        c_off, _, _, _ = off.state(np.nan_to_num(r_off.x))
+        c_off, o_off, _, _ = off.state(np.nan_to_num(r_off.x))
         i_off = c_off.collector
 
         # switching threshold: input voltage for 1 % of the on-state load current
         target = THRESHOLD_FRACTION * np.where(r_on.converged, i_on, 1.0)
-        thr = SingleSystem(q, load, vs, v_high, g_in, g_pd, "threshold", i_target=target)
-        vbe_t = vbe_guess(q, target)
+        thr = SingleSystem(q_off, load, vs, v_high, g_in, g_pd, "threshold", i_target=target)
+        vbe_t = vbe_guess(q_off, target)
         thr_starts = [np.stack([vbe_t, vbe_t - 0.9 * vs], axis=1),
                       np.stack([vbe_t, vbe_t - 0.5 * vs], axis=1)]
         off_starts = [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0]
@@ -208,7 +260,7 @@ class SingleStage:
                 return r, ot.base + (ot.base * g_pd + ct.base) / g_in
 
         def zero_drive_current(idx):
-            zero = SingleSystem(q, load, vs, np.zeros(n), g_in, g_pd, "on").subset(idx)
+            zero = SingleSystem(q_off, load, vs, np.zeros(n), g_in, g_pd, "on").subset(idx)
             r = solve_with_restarts(zero, [g[idx] for g in off_starts], **opts)
             return r.converged, zero.state(np.nan_to_num(r.x))[0].collector
 
@@ -231,6 +283,11 @@ class SingleStage:
         for key, value in out.items():
             out[key] = np.where(converged, np.asarray(value, dtype=float), np.nan)
         out["converged"] = converged
+        out["power_on"] = self._powers(samples, t, v_high, g_in, g_pd, c, o, i_on, vs)
+        out["power_off"] = self._powers(samples, t, v_low, g_in, g_pd, c_off, o_off, i_off, vs)
+        out["vce_off"] = o_off.collector
+        out["capability"] = ce.collector
+        out["load_state"] = load
         return out
 
 
@@ -252,4 +309,6 @@ def configure(reader):
     if rpd.present:
         names += [rpd.value_parameter, rpd.tempco_parameter]
     names += list(load.parameters)
-    return SingleStage(env, drive, rb, rpd, q1, load, names)
+    stage = SingleStage(env, drive, rb, rpd, q1, load, names)
+    read_thermal(reader, parts, stage, {"Q1": "output"})
+    return stage

@@ -40,6 +40,7 @@ from tolerance.models.stages import (
     vbe_guess,
 )
 from tolerance.models.transistor import junction_currents, terminal_offsets
+from tolerance.models.stages.evaluation import read_thermal
 from tolerance.protocol import register_stage
 
 __all__ = ["SziklaiStage", "SziklaiSystem", "configure"]
@@ -88,7 +89,7 @@ class SziklaiSystem(PairSystem):
             ]
         scale = np.abs(self.v_in * g_in) + np.abs(i_load)
         state = {
-            "v_b1": v_b1, "v_out": v_out, "i_load": i_load,
+            "v_b1": v_b1, "v_b2": v_b2, "v_out": v_out, "i_load": i_load,
             # current the stage takes from the output node: the PNP's emitter and RBE2
             "i_out": -(c2.base + c2.collector) + i_be2,
             "ib1": c1.base, "ib2": c2.base,
@@ -104,6 +105,12 @@ class SziklaiStage(PairStage):
 
     name = "sziklai"
     system = SziklaiSystem
+
+    @staticmethod
+    def resistor_voltages(state):
+        """Voltages across RBE1 (driver base to ground) and RBE2 (output base to its emitter,
+        the output node) [V]."""
+        return state["v_b1"], state["v_out"] - state["v_b2"]
 
     def guesses(self, mode, q1, q2, vs, current, g_be2):
         """Starting points (S, 4) for the ``on``, ``off`` and ``threshold`` solves."""
@@ -150,4 +157,6 @@ def configure(reader):
             names += [r.value_parameter, r.tempco_parameter]
     names += [q1.hfe_parameter, q1.icbo_parameter, q2.hfe_parameter, q2.icbo_parameter]
     names += list(load.parameters)
-    return SziklaiStage(env, drive, rb, rbe1, rbe2, q1, q2, load, names)
+    stage = SziklaiStage(env, drive, rb, rbe1, rbe2, q1, q2, load, names)
+    read_thermal(reader, parts, stage, {"Q1": "driver", "Q2": "output"})
+    return stage

@@ -1,0 +1,295 @@
+"""What every stage does after its DC solution: the electro-thermal loop, losses averaged
+over the PWM period, junction temperatures, ratings and the hot spot.
+
+Flow of :func:`evaluate_stage` for a chunk:
+
+1. **Electro-thermal fixed point** (``[thermal] self_heating = true``, the default): the
+   stage's on- and off-states are solved at trial junction temperatures; each device's
+   dissipation averaged over the period, P = D P_on + (1 - D) P_off (+ f (E_on + E_off) when the
+   switching transient is evaluated), sets T_j = T_a + theta_JA P (JESD51), until no junction
+   moves by more than 0.05 K (:func:`tolerance.models.thermal.electrothermal`). A monolithic
+   Darlington's two dies share one junction. With a static drive (no PWM frequency) the
+   off-state is solved at the ambient: a unit that is switched off has cooled down.
+2. **Full DC solution** at the settled temperatures (saturation, threshold, leakage).
+3. **Ratings**: junction temperature against T_j max less the study's margin, dissipation
+   against P_tot derated linearly from 25 degC to T_j max, resistor dissipation against its
+   derating curve (full power to the rated ambient, zero at the maximum element temperature,
+   MIL-PRF-39017 / IEC 60115-1 practice), the off-state collector voltage (or the transient's
+   peak) against V_(BR)CEO, the peak collector current (a lamp's cold inrush as far as the
+   stage can carry it) against I_C max.
+
+A sample whose loop does not settle, or settles far beyond T_j max, has ``thermal_runaway = 1``
+and NaN junction temperatures; its other metrics are evaluated with the junction at T_j max.
+Resistors are taken at the ambient temperature (their own self-heating is not modelled).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from tolerance.models import thermal
+from tolerance.protocol import Criterion, MetricInfo
+
+#: reference temperature of a transistor's total power rating P_tot [K]
+POWER_RATING_AMBIENT = 298.15
+
+
+class ThermalSetup:
+    """Thermal network and ratings of a stage (picklable).
+
+    Attributes
+    ----------
+    theta : dict
+        Thermal resistance junction to ambient per device [K/W].
+    tj_max, power_rating, breakdown, ic_max : dict
+        Ratings per device [K], [W], [V], [A].
+    shared : dict
+        Devices sharing a junction (monolithic pair): name -> carrier.
+    roles : dict
+        Device -> role in metric names (``driver``, ``output``).
+    margin : float
+        Required distance below T_j max [K].
+    self_heating : bool
+        Whether the electro-thermal loop runs.
+    """
+
+    def __init__(self, theta, tj_max, power_rating, breakdown, ic_max, shared, roles, margin,
+                 self_heating):
+        self.theta = theta
+        self.tj_max = tj_max
+        self.power_rating = power_rating
+        self.breakdown = breakdown
+        self.ic_max = ic_max
+        self.shared = shared
+        self.roles = roles
+        self.margin = margin
+        self.self_heating = self_heating
+
+
+def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
+                 shared: dict[str, str] | None = None) -> None:
+    """Read ``[thermal]`` and each transistor's heatsink; add thermal metrics and ratings.
+
+    Keys: ``[thermal] self_heating`` (default true), ``tj_margin`` [K] (default 0);
+    ``[parts.Qn] heatsink`` [K/W] (sink to ambient; absent: free air with the part's
+    ``theta_ja``) and ``case_to_sink`` [K/W] (default 0.5 K/W with a heatsink, a greased
+    insulating washer, typical value from memory).
+    """
+    table = reader.table("thermal")
+    self_heating = table.boolean("self_heating", default=True)
+    margin = table.quantity("tj_margin", "K", default=0.0, minimum=0.0, maximum=100.0)
+    theta, tj_max, rating, breakdown, ic_max = {}, {}, {}, {}, {}
+    for name, part in stage.transistors().items():
+        ds = part.device.datasheet
+        t = parts_reader.table(name)
+        sink = t.optional_quantity("heatsink", "K/W", positive=True)
+        if sink is not None:
+            if ds.theta_jc is None:
+                raise t.error("heatsink", "needs the part's theta_jc (junction to case)")
+            cs = t.quantity("case_to_sink", "K/W", default=0.5, minimum=0.0)
+            theta[name] = float(thermal.heatsink_resistance(ds.theta_jc, cs, sink))
+        else:
+            if t.has("case_to_sink"):
+                raise t.error("case_to_sink", "only applies with a heatsink")
+            theta[name] = float(ds.theta_ja)
+        tj_max[name] = float(ds.tj_max)
+        rating[name] = float(ds.power_rating)
+        breakdown[name] = float(ds.breakdown_vceo)
+        ic_max[name] = float(ds.ic_max)
+    setup = ThermalSetup(theta, tj_max, rating, breakdown, ic_max, dict(shared or {}), roles,
+                         margin, self_heating)
+    stage.thermal = setup
+    _add_metrics_and_ratings(stage, setup)
+
+
+def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
+    m, crit = stage.metrics, stage.criteria
+    for dev, role in setup.roles.items():
+        m[f"power_{role}"] = MetricInfo("W", f"dissipation of {dev} ({role}) averaged over the "
+                                             "period, at its junction temperature")
+        m[f"tj_{role}"] = MetricInfo("temperature", f"junction temperature of {dev} ({role})")
+        m[f"power_stress_{role}"] = MetricInfo("1", f"dissipation of {dev} over its P_tot "
+                                                    "derated to the ambient")
+        limit = setup.tj_max[dev] - setup.margin
+        crit.append(Criterion(f"tj_max_{role}", f"tj_{role}", maximum=limit, source="rating",
+                              description=f"{dev} junction below T_j max"
+                              + (f" less {setup.margin:g} K" if setup.margin else "")))
+        crit.append(Criterion(f"power_rating_{role}", f"power_stress_{role}", maximum=1.0,
+                              source="rating", description=f"{dev} within derated P_tot"))
+    for name, r in stage.resistors().items():
+        if not r.present:
+            continue
+        m[f"power_{name}"] = MetricInfo("W", f"dissipation of {name} averaged over the period")
+        m[f"resistor_stress_{name}"] = MetricInfo("1", f"dissipation of {name} over its "
+                                                       "derated power rating")
+        crit.append(Criterion(f"resistor_{name}", f"resistor_stress_{name}", maximum=1.0,
+                              source="rating", description=f"{name} within its derated rating"))
+    names = ", ".join(f"{k}={p}" for k, p in enumerate(hot_spot_parts(stage)))
+    m["hot_spot"] = MetricInfo("1", f"part closest to its limit ({names})")
+    m["hot_spot_margin"] = MetricInfo("1", "1 minus the largest stress of any part (junction "
+                                           "rise over allowed rise, power over derated "
+                                           "rating); below 0 something is overstressed")
+    m["thermal_runaway"] = MetricInfo("1", "1 when the electro-thermal loop does not settle")
+    m["vce_peak"] = MetricInfo("V", "highest collector-emitter voltage of the output (off-state "
+                                    "or transient)")
+    m["peak_current"] = MetricInfo("A", "highest collector current the output carries (a "
+                                        "lamp's inrush as far as the drive allows)")
+    crit.append(Criterion("thermal_runaway", "thermal_runaway", maximum=0.0, source="rating",
+                          description="electro-thermal loop settles"))
+    out = output_device(stage)
+    crit.append(Criterion("breakdown", "vce_peak", maximum=min(setup.breakdown.values()),
+                          source="rating", description=f"below V_(BR)CEO of {out}"))
+    crit.append(Criterion("collector_current", "peak_current", maximum=setup.ic_max[out],
+                          source="rating", description=f"within I_C max of {out}"))
+    if stage.load.kind == "lamp":
+        m["inrush_energy"] = MetricInfo("J", "energy the output absorbs while it limits the "
+                                             "cold filament's current")
+
+
+def output_device(stage) -> str:
+    return "Q2" if "Q2" in stage.transistors() else "Q1"
+
+
+def hot_spot_parts(stage) -> list[str]:
+    return list(stage.transistors()) + [n for n, r in stage.resistors().items() if r.present]
+
+
+def _average(on, off, duty):
+    return duty * np.asarray(on) + (1.0 - duty) * np.asarray(off)
+
+
+def _device_power(res, duty, extra=None):
+    p = {d: _average(res["power_on"]["devices"][d], res["power_off"]["devices"][d], duty)
+         for d in res["power_on"]["devices"]}
+    if extra:
+        for d, e in extra.items():
+            p[d] = p[d] + e
+    return p
+
+
+def lamp_inrush_energy(load_state, supply, capability):
+    """Energy the output absorbs while it limits a cold filament's current [J].
+
+    While the cold filament asks for more than the stage can carry (``capability``, the
+    collector current at the edge of saturation), the output runs in its linear region at that
+    current and V_CE = V_S - I R(t); the filament warms as R(t) = R_hot - (R_hot - R_cold)
+    exp(-t / tau) until I R(t1) = V_S. The energy integral of V_CE I over [0, t1] is
+
+        E = I [(V_S - I R_hot) t1 + I (R_hot - R_cold) tau (1 - exp(-t1 / tau))]
+
+    with t1 = -tau ln((R_hot - V_S / I) / (R_hot - R_cold)). Zero when the stage carries the
+    whole inrush (the transistor stays saturated). A first-order estimate (common practice,
+    no source): the filament's warm-up is taken as exponential with its thermal time constant.
+    """
+    r_cold = np.asarray(load_state.cold_resistance, dtype=float)
+    r_hot = np.asarray(load_state.hot_resistance, dtype=float)
+    tau = np.asarray(load_state.thermal_time_constant, dtype=float)
+    i = np.asarray(capability, dtype=float)
+    vs = np.asarray(supply, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r_end = vs / i
+        limited = (r_end > r_cold) & (r_end < r_hot) & (i > 0)
+        ratio = np.where(limited, (r_hot - r_end) / (r_hot - r_cold), 1.0)
+        t1 = -tau * np.log(ratio)
+        e = i * ((vs - i * r_hot) * t1 + i * (r_hot - r_cold) * tau * (1 - np.exp(-t1 / tau)))
+        # the stage cannot even reach the hot current: it never leaves the linear region
+        never = (r_end >= r_hot) & (i > 0)
+    return np.where(limited, e, np.where(never, np.inf, 0.0))
+
+
+def evaluate_stage(stage, samples):
+    """All metrics of a chunk: see the module docstring."""
+    setup: ThermalSetup = stage.thermal
+    ambient = np.asarray(samples[stage.env.temperature], dtype=float)
+    n = ambient.shape[0]
+    duty = stage.drive.duty if stage.drive.pwm else 1.0
+    devices = list(setup.theta)
+    static = not stage.drive.pwm
+
+    def off_temps(temps):
+        return {d: ambient for d in devices} if static else temps
+
+    switching_power = None
+    temps = {d: ambient.copy() for d in devices}
+    settled = np.ones(n, dtype=bool)
+    if setup.self_heating:
+        def power_at(t):
+            res = stage.dc(samples, t, off_temps(t), full=False)
+            p = _device_power(res, duty, switching_power)
+            ok = res["converged"]
+            return {d: np.where(ok, p[d], np.nan) for d in devices}
+
+        theta = {d: np.full(n, setup.theta[d]) for d in devices}
+        limit = {d: np.full(n, setup.tj_max[d]) for d in devices}
+        fp = thermal.electrothermal(power_at, ambient, theta, setup.shared, limit)
+        settled = fp.settled
+        temps = fp.temperatures
+
+    eval_temps = {d: np.where(settled, temps[d], setup.tj_max[d]) for d in devices}
+    res = stage.dc(samples, eval_temps, off_temps(eval_temps), full=True)
+    converged = np.asarray(res["converged"], dtype=bool)
+    runaway = converged & ~settled
+
+    out = {k: res[k] for k in stage.metrics if k in res}
+    power = _device_power(res, duty, switching_power)
+    heat = dict(power)
+    for d, carrier in setup.shared.items():
+        heat[carrier] = heat[carrier] + power[d]
+    stresses = []
+    for d in devices:
+        role = setup.roles[d]
+        carrier = setup.shared.get(d, d)
+        p = power[d]
+        out[f"power_{role}"] = p
+        if setup.self_heating:
+            tj = np.where(settled, eval_temps[d], np.nan)
+        else:  # one pass at the ambient: the DC solution does not see its own heating
+            tj = ambient + setup.theta[carrier] * heat[carrier]
+        out[f"tj_{role}"] = tj
+        allowed = thermal.derated_power(setup.power_rating[d], ambient, POWER_RATING_AMBIENT,
+                                        setup.tj_max[d])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out[f"power_stress_{role}"] = p / allowed
+            rise = (tj - ambient) / (setup.tj_max[d] - setup.margin - ambient)
+        stresses += [np.where(np.isnan(tj), np.inf, rise), out[f"power_stress_{role}"]]
+    for name, r in stage.resistors().items():
+        if not r.present:
+            continue
+        p = _average(res["power_on"]["resistors"][name], res["power_off"]["resistors"][name],
+                     duty)
+        out[f"power_{name}"] = p
+        allowed = thermal.derated_power(r.power_rating, ambient, r.rated_ambient,
+                                        r.max_temperature)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out[f"resistor_stress_{name}"] = p / allowed
+        stresses.append(out[f"resistor_stress_{name}"])
+    # one stress per part (in hot_spot_parts order): the larger of a device's temperature
+    # and power stresses, then each resistor's
+    per_part = []
+    k = 0
+    for _ in devices:
+        per_part.append(np.maximum(stresses[k], stresses[k + 1]))
+        k += 2
+    per_part += stresses[k:]
+    stack = np.vstack(per_part)
+    stack = np.where(np.isnan(stack), -np.inf, stack)
+    out["hot_spot"] = np.argmax(stack, axis=0).astype(float)
+    out["hot_spot_margin"] = 1.0 - np.max(stack, axis=0)
+    out["thermal_runaway"] = runaway.astype(float)
+    out["vce_peak"] = np.abs(res["vce_off"])
+    load_state = res["load_state"]
+    if stage.load.kind == "lamp":
+        demand = load_state.inrush_demand(np.asarray(samples[stage.env.supply], dtype=float))
+        capability = np.abs(res["capability"])
+        out["peak_current"] = np.minimum(demand, capability)
+        out["inrush_energy"] = lamp_inrush_energy(
+            load_state, np.asarray(samples[stage.env.supply], dtype=float), capability)
+    else:
+        out["peak_current"] = np.abs(res["load_current"])
+    for key in list(out):
+        out[key] = np.where(converged, np.asarray(out[key], dtype=float), np.nan)
+    missing = set(stage.metrics) - set(out)
+    if missing:
+        raise KeyError(f"stage {stage.name} did not produce {sorted(missing)}")
+    out["converged"] = converged
+    return out
