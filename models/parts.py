@@ -155,6 +155,7 @@ class TransistorPart:
     device: FittedDevice
     hfe_parameter: str
     icbo_parameter: str
+    device_class: str | None = None
 
     @property
     def polarity(self) -> int:
@@ -305,4 +306,5 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
             spec = {"min": ds.icbo_max, "max": ds.icbo_max}
         _derived_parameter(part, "icbo", spec, "A", f"{name}.icbo",
                            f"{description}: I_CBO at 25 degC")
-    return TransistorPart(name, fitted, f"{name}.hfe", f"{name}.icbo")
+    return TransistorPart(name, fitted, f"{name}.hfe", f"{name}.icbo",
+                          device if device not in (None, "inline") else None)

@@ -298,7 +298,8 @@ def format_quantity(x: float, unit: str, digits: int = 3) -> str:
     str
         E.g. "4.7 kOhm", "3.2 us", "120 mA", "62 K/W", "85 degC" (absolute temperatures are
         shown in degC), "100 ppm/K" (temperature coefficients), "0.05" (unit "1"); NaN is
-        shown as "nan". The result parses back with :func:`parse_quantity`.
+        shown as "nan"; magnitudes below 1 f or from 1 T up in scientific notation
+        ("1.2e-19 J"). The result parses back with :func:`parse_quantity`.
     """
     _known_unit(unit)
     if digits < 1:
@@ -319,6 +320,8 @@ def format_quantity(x: float, unit: str, digits: int = 3) -> str:
         return f"{x} {label}"
     if x == 0:
         return f"0 {label}"
+    if abs(x) < 1e-15 or abs(x) >= 1e12:  # beyond the prefixes: scientific notation
+        return f"{x:.{digits}g} {label}"
     exp3 = int(math.floor(math.log10(abs(x)) / 3.0)) * 3
     exp3 = min(max(exp3, -15), 9)
     mantissa = float(f"{x / 10.0**exp3:.{digits}g}")

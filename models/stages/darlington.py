@@ -51,7 +51,7 @@ from tolerance.models.stages import (
     vbe_guess,
 )
 from tolerance.models.transistor import junction_currents, terminal_offsets
-from tolerance.models.stages.evaluation import read_thermal
+from tolerance.models.stages.evaluation import read_switching, read_thermal
 from tolerance.protocol import register_stage
 from tolerance.study import Reader
 
@@ -220,4 +220,6 @@ def configure(reader):
     # one die: both transistors share the output's junction and thermal resistance
     read_thermal(reader, parts, stage, {"Q1": "driver", "Q2": "output"},
                  shared={"Q1": "Q2"} if monolithic else None)
+    read_switching(reader, parts, stage, "darlington", {"Q1": "driver", "Q2": "output"},
+                   classes={"Q1": device, "Q2": device} if monolithic else None)
     return stage

@@ -10,8 +10,12 @@ Flow of :func:`evaluate_stage` for a chunk:
    moves by more than 0.05 K (:func:`tolerance.models.thermal.electrothermal`). A monolithic
    Darlington's two dies share one junction. With a static drive (no PWM frequency) the
    off-state is solved at the ambient: a unit that is switched off has cooled down.
-2. **Full DC solution** at the settled temperatures (saturation, threshold, leakage).
-3. **Ratings**: junction temperature against T_j max less the study's margin, dissipation
+2. **Switching transient** (``[switching] enabled``; default on with a PWM drive or a coil
+   load): turn-on and turn-off of every sample at the settled temperatures
+   (:func:`tolerance.models.switching.switching_metrics`); with a PWM drive the switching
+   energies f (E_on + E_off) join the losses and the loop settles again.
+3. **Full DC solution** at the settled temperatures (saturation, threshold, leakage).
+4. **Ratings**: junction temperature against T_j max less the study's margin, dissipation
    against P_tot derated linearly from 25 degC to T_j max, resistor dissipation against its
    derating curve (full power to the rated ambient, zero at the maximum element temperature,
    MIL-PRF-39017 / IEC 60115-1 practice), the off-state collector voltage (or the transient's
@@ -146,6 +150,122 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
                                              "cold filament's current")
 
 
+SWITCHING_METRICS = {
+    "turn_on_delay": "drive edge (50 %) to 10 % of the on-state load current",
+    "rise_time": "load current 10 % to 90 %",
+    "storage_time": "turn-off drive edge (50 %) to 90 % of the on-state load current",
+    "fall_time": "load current 90 % to 10 %",
+    "turn_off_delay": "storage time plus fall time",
+    "energy_on": "turn-on energy of the transistors beyond their on-state dissipation "
+                 "(negative when the rise dissipates less, e.g. a coil's slow current rise)",
+    "energy_off": "turn-off energy of the transistors beyond their off-state dissipation",
+    "energy_on_output": "turn-on energy of the output transistor (as energy_on)",
+    "energy_off_output": "turn-off energy of the output transistor (as energy_off)",
+    "energy_on_driver": "turn-on energy of the driver transistor (as energy_on)",
+    "energy_off_driver": "turn-off energy of the driver transistor (as energy_off)",
+    "avalanche_energy": "energy the output absorbs in avalanche (unclamped inductive load)",
+    "transition_fraction": "turn-on plus turn-off delay and transition times over the PWM "
+                           "period",
+}
+_CHARGE_KEYS = {
+    # part-table key: (unit, charge_parameters_from_datasheet argument)
+    "transition_frequency": ("Hz", "transition_frequency"),
+    "transition_current": ("A", "transition_current"),
+    "storage_time": ("s", "storage_time"),
+    "storage_ic": ("A", "storage_ic"),
+    "storage_ib_on": ("A", "storage_ib_on"),
+    "storage_ib_off": ("A", "storage_ib_off"),
+    "output_capacitance": ("F", "output_capacitance"),
+}
+
+
+class SwitchingSetup:
+    """Whether and how a stage's switching transient is evaluated (picklable)."""
+
+    def __init__(self, enabled, topology, charges, roles, options):
+        self.enabled = enabled
+        self.topology = topology
+        self.charges = charges
+        self.roles = roles
+        self.options = options
+
+
+def read_switching(reader, parts_reader, stage, topology: str, roles: dict[str, str],
+                   classes: dict[str, str] | None = None) -> None:
+    """Read ``[switching]`` and each transistor's charge-storage figures.
+
+    ``[switching] enabled`` (default: true with a PWM drive or a coil load),
+    ``relative_tolerance`` (default 5e-4). Part keys (optional; class defaults otherwise):
+    ``transition_frequency`` at ``transition_current``, ``storage_time`` at ``storage_ic``,
+    ``storage_ib_on``, ``storage_ib_off``, and ``output_capacitance``.
+    """
+    from tolerance.models.charges import CHARGE_CLASS_DEFAULTS, charge_parameters_from_datasheet
+
+    table = reader.table("switching")
+    default = stage.drive.pwm or stage.load.kind == "coil"
+    enabled = table.boolean("enabled", default=default)
+    rtol = table.quantity("relative_tolerance", "1", default=5e-4, minimum=1e-7, maximum=0.05)
+    charges = {}
+    for name, part in stage.transistors().items():
+        ds = part.device.datasheet
+        cls = (classes or {}).get(name) or part.device_class
+        if cls not in CHARGE_CLASS_DEFAULTS:
+            cls = "small_signal_pnp" if ds.polarity == "pnp" else "small_signal_npn"
+        base = CHARGE_CLASS_DEFAULTS[cls]
+        t = parts_reader.table(name)
+        given = {arg: t.quantity(key, unit, positive=True)
+                 for key, (unit, arg) in _CHARGE_KEYS.items() if t.has(key)}
+        if given:
+            try:
+                base = charge_parameters_from_datasheet(
+                    defaults=base, forward_beta=ds.hfe_median, reverse_beta=ds.reverse_beta,
+                    be_on_voltage=ds.vbe_on, **given)
+            except ValueError as exc:
+                raise t.error(next(k for k, (_, a) in _CHARGE_KEYS.items() if a in given),
+                              str(exc)) from None
+        charges[name] = base.replace(collector_emitter_breakdown=float(ds.breakdown_vceo))
+    setup = SwitchingSetup(enabled, topology, charges, roles, {"relative_tolerance": rtol})
+    stage.switching = setup
+    if enabled:
+        pair = len(roles) > 1
+        for key, text in SWITCHING_METRICS.items():
+            if key.endswith("_driver") and not pair:
+                continue
+            unit = "J" if key.startswith(("energy", "avalanche")) else (
+                "1" if key == "transition_fraction" else "s")
+            stage.metrics[key] = MetricInfo(unit, text)
+
+
+def _switching(stage, samples, temps, ambient):
+    """Switching metrics of the chunk at the device temperatures ``temps``."""
+    from tolerance.models.switching import switching_metrics
+
+    sw: SwitchingSetup = stage.switching
+    n = ambient.shape[0]
+    vs = np.asarray(samples[stage.env.supply], dtype=float)
+    devices = {}
+    for name, part in stage.transistors().items():
+        q = part.parameters(samples).at_temperature(temps[name])
+        devices[sw.roles[name]] = (q, sw.charges[name].broadcast(n))
+    resistors = {}
+    for name, r in stage.resistors().items():
+        g = r.conductance(samples, ambient)
+        internal = getattr(stage, f"internal_{name.lower()}", None)
+        if internal is not None:
+            g = g + internal.conductance(samples, ambient)
+        with np.errstate(divide="ignore"):
+            resistors[name] = 1.0 / g
+    high, low, r_s = stage.drive.levels(samples)
+    drive = {"high": high, "low": low, "source_resistance": r_s,
+             "edge_time": np.full(n, stage.drive.edge_time)}
+    if stage.drive.pwm:
+        drive["frequency"] = np.full(n, stage.drive.frequency)
+        drive["duty"] = np.full(n, stage.drive.duty)
+    load_state = stage.load.at(samples, ambient, vs)
+    return switching_metrics(sw.topology, devices, resistors, drive, vs, load_state, ambient,
+                             **sw.options)
+
+
 def output_device(stage) -> str:
     return "Q2" if "Q2" in stage.transistors() else "Q1"
 
@@ -212,7 +332,8 @@ def evaluate_stage(stage, samples):
     switching_power = None
     temps = {d: ambient.copy() for d in devices}
     settled = np.ones(n, dtype=bool)
-    if setup.self_heating:
+
+    def settle():
         def power_at(t):
             res = stage.dc(samples, t, off_temps(t), full=False)
             p = _device_power(res, duty, switching_power)
@@ -222,8 +343,25 @@ def evaluate_stage(stage, samples):
         theta = {d: np.full(n, setup.theta[d]) for d in devices}
         limit = {d: np.full(n, setup.tj_max[d]) for d in devices}
         fp = thermal.electrothermal(power_at, ambient, theta, setup.shared, limit)
-        settled = fp.settled
-        temps = fp.temperatures
+        return fp.settled, fp.temperatures
+
+    if setup.self_heating:
+        settled, temps = settle()
+    sw_metrics = None
+    sw = getattr(stage, "switching", None)
+    if sw is not None and sw.enabled:
+        at = {d: np.where(settled, temps[d], setup.tj_max[d]) for d in devices}
+        sw_metrics = _switching(stage, samples, at, ambient)
+        if stage.drive.pwm:
+            f = stage.drive.frequency
+            switching_power = {}
+            for d in devices:
+                role = sw.roles[d]
+                e = (np.nan_to_num(sw_metrics[f"energy_on_{role}"])
+                     + np.nan_to_num(sw_metrics[f"energy_off_{role}"]))
+                switching_power[d] = f * e
+            if setup.self_heating:
+                settled, temps = settle()
 
     eval_temps = {d: np.where(settled, temps[d], setup.tj_max[d]) for d in devices}
     res = stage.dc(samples, eval_temps, off_temps(eval_temps), full=True)
@@ -277,6 +415,12 @@ def evaluate_stage(stage, samples):
     out["hot_spot_margin"] = 1.0 - np.max(stack, axis=0)
     out["thermal_runaway"] = runaway.astype(float)
     out["vce_peak"] = np.abs(res["vce_off"])
+    if sw_metrics is not None:
+        converged = converged & np.asarray(sw_metrics["converged"], dtype=bool)
+        for key in stage.metrics:
+            if key in sw_metrics and key != "vce_peak":
+                out[key] = sw_metrics[key]
+        out["vce_peak"] = np.fmax(out["vce_peak"], np.abs(sw_metrics["vce_peak"]))
     load_state = res["load_state"]
     if stage.load.kind == "lamp":
         demand = load_state.inrush_demand(np.asarray(samples[stage.env.supply], dtype=float))

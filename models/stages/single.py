@@ -40,7 +40,7 @@ from tolerance.models.stages import (
     vbe_guess,
 )
 from tolerance.models.transistor import critical_voltage, junction_currents, terminal_offsets
-from tolerance.models.stages.evaluation import read_thermal
+from tolerance.models.stages.evaluation import read_switching, read_thermal
 from tolerance.protocol import register_stage
 
 __all__ = ["SingleStage", "SingleSystem", "configure"]
@@ -311,4 +311,5 @@ def configure(reader):
     names += list(load.parameters)
     stage = SingleStage(env, drive, rb, rpd, q1, load, names)
     read_thermal(reader, parts, stage, {"Q1": "output"})
+    read_switching(reader, parts, stage, "single", {"Q1": "output"})
     return stage

@@ -40,7 +40,7 @@ from tolerance.models.stages import (
     vbe_guess,
 )
 from tolerance.models.transistor import junction_currents, terminal_offsets
-from tolerance.models.stages.evaluation import read_thermal
+from tolerance.models.stages.evaluation import read_switching, read_thermal
 from tolerance.protocol import register_stage
 
 __all__ = ["SziklaiStage", "SziklaiSystem", "configure"]
@@ -159,4 +159,5 @@ def configure(reader):
     names += list(load.parameters)
     stage = SziklaiStage(env, drive, rb, rbe1, rbe2, q1, q2, load, names)
     read_thermal(reader, parts, stage, {"Q1": "driver", "Q2": "output"})
+    read_switching(reader, parts, stage, "sziklai", {"Q1": "driver", "Q2": "output"})
     return stage
