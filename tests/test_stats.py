@@ -150,6 +150,13 @@ def test_percentile_summary_values():
         assert out[key] == pytest.approx(np.percentile(x, q), rel=1e-12)
 
 
+def test_percentile_summary_ignores_infinities():
+    # common practice, no source: an infinite value (outside the model's range) is left out of
+    # the spread figures like a NaN
+    out = percentile_summary([1.0, 2.0, 3.0, np.inf, -np.inf])
+    assert out["min"] == 1.0 and out["max"] == 3.0 and out["mean"] == 2.0
+
+
 def test_percentile_summary_small_example():
     # hand calculation, linear interpolation between order statistics (common practice)
     out = percentile_summary([1.0, 2.0, 3.0, 4.0, 5.0])

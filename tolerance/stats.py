@@ -142,7 +142,8 @@ _SUMMARY_PERCENTILES = {"p001": 0.1, "p01": 1.0, "p50": 50.0, "p99": 99.0, "p999
 
 
 def percentile_summary(x) -> dict[str, float]:
-    """Mean, spread, extremes and tail percentiles of a sample, ignoring NaN.
+    """Mean, spread, extremes and tail percentiles of a sample, ignoring NaN and infinities
+    (an infinite metric marks a sample outside the model's range; the counted criteria see it).
 
     Parameters
     ----------
@@ -157,7 +158,8 @@ def percentile_summary(x) -> dict[str, float]:
         ``p999`` (99.9 %), linearly interpolated [same unit as ``x``]. All NaN when no finite
         sample remains.
     """
-    data = _clean(x)
+    raw = _clean(x)
+    data = raw[np.isfinite(raw)]
     keys = ["mean", "std", "min", "max", *_SUMMARY_PERCENTILES]
     if data.size == 0:
         return {key: math.nan for key in keys}

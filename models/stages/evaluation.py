@@ -22,8 +22,9 @@ Flow of :func:`evaluate_stage` for a chunk:
    peak) against V_(BR)CEO, the peak collector current (a lamp's cold inrush as far as the
    stage can carry it) against I_C max.
 
-A sample whose loop does not settle, or settles far beyond T_j max, has ``thermal_runaway = 1``
-and NaN junction temperatures; its other metrics are evaluated with the junction at T_j max.
+A sample whose loop does not settle has ``thermal_runaway = 1`` and NaN junction temperatures;
+its other metrics are evaluated with the junction at T_j max. A sample that settles above T_j
+max is flagged ``thermal_runaway = 1`` too, with its settled temperatures.
 Resistors are taken at the ambient temperature (their own self-heating is not modelled).
 """
 
@@ -366,7 +367,11 @@ def evaluate_stage(stage, samples):
     eval_temps = {d: np.where(settled, temps[d], setup.tj_max[d]) for d in devices}
     res = stage.dc(samples, eval_temps, off_temps(eval_temps), full=True)
     converged = np.asarray(res["converged"], dtype=bool)
-    runaway = converged & ~settled
+    # a loop that does not settle, or settles above T_j max, is a thermal runaway
+    over = np.zeros(n, dtype=bool)
+    for d in devices:
+        over |= settled & (eval_temps[d] > setup.tj_max[d])
+    runaway = converged & (~settled | over)
 
     out = {k: res[k] for k in stage.metrics if k in res}
     power = _device_power(res, duty, switching_power)
@@ -389,7 +394,7 @@ def evaluate_stage(stage, samples):
         with np.errstate(divide="ignore", invalid="ignore"):
             out[f"power_stress_{role}"] = p / allowed
             rise = (tj - ambient) / (setup.tj_max[d] - setup.margin - ambient)
-        stresses += [np.where(np.isnan(tj), np.inf, rise), out[f"power_stress_{role}"]]
+        stresses += [rise, out[f"power_stress_{role}"]]
     for name, r in stage.resistors().items():
         if not r.present:
             continue
@@ -410,9 +415,9 @@ def evaluate_stage(stage, samples):
         k += 2
     per_part += stresses[k:]
     stack = np.vstack(per_part)
-    stack = np.where(np.isnan(stack), -np.inf, stack)
-    out["hot_spot"] = np.argmax(stack, axis=0).astype(float)
-    out["hot_spot_margin"] = 1.0 - np.max(stack, axis=0)
+    unknown = np.isnan(stack)  # a runaway junction: that part is the hot spot, margin unknown
+    out["hot_spot"] = np.argmax(np.where(unknown, np.inf, stack), axis=0).astype(float)
+    out["hot_spot_margin"] = np.where(unknown.any(axis=0), np.nan, 1.0 - np.max(stack, axis=0))
     out["thermal_runaway"] = runaway.astype(float)
     out["vce_peak"] = np.abs(res["vce_off"])
     if sw_metrics is not None:

@@ -1,0 +1,162 @@
+"""The electro-thermal evaluation of real stages: fixed point against a per-sample scipy root,
+power balance, runaway, shared junction, ratings as criteria, the hot corner."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy import optimize
+
+from tolerance.api import demo_text, load_study, run
+from tolerance.sampling import draw
+from tolerance.study import load_study as load_text
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def _samples(study, n, seed=3):
+    return draw(study.parameters, None, "random", seed, n, 0, n)[1]
+
+
+def _one(samples, k):
+    return {name: v[k:k + 1] for name, v in samples.items()}
+
+
+def test_fixed_point_matches_scipy_root_per_sample():
+    study = load_study(ROOT / "studies" / "engine_bay_heater_darlington.toml")
+    stage = study.stage
+    samples = _samples(study, 40)
+    res = stage.evaluate(samples)
+    theta = stage.thermal.theta["Q2"]  # one die: both transistors on the output's junction
+    for k in range(40):
+        s = _one(samples, k)
+        ta = s["ambient.temperature"][0]
+
+        def excess(tj):
+            t = {"Q1": np.array([tj]), "Q2": np.array([tj])}
+            dc = stage.dc(s, t, {d: np.array([ta]) for d in t}, full=False)
+            p = sum(dc["power_on"]["devices"][d][0] for d in ("Q1", "Q2"))
+            return tj - ta - theta * p
+
+        # scipy.optimize.brentq on T_j - T_a - theta_JA P(T_j) (JESD51 relation) per sample
+        ref = optimize.brentq(excess, ta, ta + 200.0, xtol=1e-9)
+        # the loop stops when no junction moves by more than 0.05 K; the damped iteration's
+        # remaining error is below that step
+        assert res["tj_output"][k] == pytest.approx(ref, abs=0.05)
+        assert res["tj_driver"][k] == res["tj_output"][k]
+
+
+@pytest.mark.parametrize("study_file", ["beacon_lamp_darlington.toml", "shelf_led_sziklai.toml",
+                                        "irrigation_valve_single.toml"])
+def test_power_balance(study_file):
+    # conservation of energy (common practice, no source): what the supply and the drive
+    # deliver is dissipated in the load, the transistors, the resistors and the drive's source
+    # resistance
+    study = load_study(ROOT / "studies" / study_file)
+    samples = _samples(study, 200)
+    dc = study.stage.dc(samples)
+    assert dc["converged"].all()
+    for state in ("power_on", "power_off"):
+        p = dc[state]
+        given = p["supply"] + p["drive"]
+        spent = p["load"] + p["source"] + sum(p["devices"].values()) + sum(
+            v for v in p["resistors"].values())
+        scale = np.abs(given) + np.abs(spent) + 1e-15
+        assert np.max(np.abs(given - spent) / scale) < 1e-6, state
+
+
+def _demo_with(extra_part: str = "", thermal: str = "") -> str:
+    text = demo_text().replace('device = "medium_power_npn"',
+                               'device = "medium_power_npn"\n' + extra_part)
+    return text + ("\n[thermal]\n" + thermal if thermal else "")
+
+
+def test_runaway_is_flagged_and_fails_the_rating():
+    # a junction with an absurd thermal resistance in a stage that is not saturated (weak base
+    # drive: the transistor sits in its linear region, so its dissipation grows with its gain,
+    # which grows with temperature) has no stable operating point below T_j max
+    text = _demo_with('theta_ja = "9000 K/W"').replace('value = "150R"', 'value = "47k"')
+    text = text.replace('[parts.RPD]\nvalue = "1k0"\ntolerance = "5%"\n', "")
+    study = load_text("runaway.toml", text=text)
+    res = run(study, samples=200)
+    s = res.summary
+    assert s["criteria"]["thermal_runaway"]["failures"] > 0
+    df = res.samples
+    bad = df["thermal_runaway"] == 1
+    assert df.loc[bad, "tj_output"].isna().all()
+    assert not df.loc[bad, "pass"].any()
+    # the same stage in free air with the class's own theta_JA settles everywhere
+    calm = run(load_text("calm.toml", text=text.replace('theta_ja = "9000 K/W"', "")),
+               samples=200)
+    assert calm.summary["criteria"]["thermal_runaway"]["failures"] == 0
+
+
+def test_self_heating_raises_the_junction_temperature():
+    hot = run(load_text("a.toml", text=_demo_with()), samples=300).samples
+    cold = run(load_text("b.toml", text=_demo_with(thermal="self_heating = false")),
+               samples=300).samples
+    rise = hot["tj_output"] - hot["ambient.temperature"]
+    # T_j - T_a = theta_JA P (JESD51) with the class's 100 K/W
+    np.testing.assert_allclose(rise, 100.0 * hot["power_output"], rtol=1e-3, atol=0.06)
+    # without the loop the DC solution is the ambient one: same rise estimate, a little lower
+    # dissipation is not guaranteed, but the estimate differs by well under a kelvin here
+    np.testing.assert_allclose(cold["tj_output"], hot["tj_output"], atol=1.0)
+
+
+def test_heatsink_chain_lowers_theta():
+    text = demo_text().replace('device = "medium_power_npn"',
+                               'device = "medium_power_npn"\nheatsink = "20 K/W"')
+    study = load_text("sink.toml", text=text)
+    # theta_JA = theta_JC + theta_CS + theta_SA (JESD51): class theta_JC 10 K/W + 0.5 + 20
+    assert study.stage.thermal.theta["Q1"] == pytest.approx(30.5)
+
+
+def test_ratings_are_criteria_and_a_study_limit_replaces_one():
+    study = load_study()
+    names = {c.name: c for c in study.criteria}
+    for name in ("tj_max_output", "power_rating_output", "resistor_RB", "thermal_runaway",
+                 "breakdown", "collector_current"):
+        assert names[name].source == "rating"
+    # medium_power_npn class: T_j max 150 degC, V_(BR)CEO 45 V, I_C max 1.5 A (part library)
+    assert names["tj_max_output"].maximum == pytest.approx(423.15)
+    assert names["breakdown"].maximum == pytest.approx(45.0)
+    relaxed = load_text("r.toml", text=demo_text() + '\n# relax\n').criteria
+    assert len(relaxed) == len(study.criteria)
+    text = demo_text().replace('[limits]', '[limits]\ntj_output = {max = "120 degC"}')
+    tightened = {c.name: c for c in load_text("t.toml", text=text).criteria}
+    assert tightened["tj_max_output"].maximum == pytest.approx(393.15)
+
+
+def test_hot_corner_decides_the_engine_bay_study():
+    study = load_study(ROOT / "studies" / "engine_bay_heater_darlington.toml")
+    res = run(study, samples=1500)
+    df = res.samples
+    failed = ~df["pass"]
+    assert failed.any()
+    # every failure is a junction-temperature failure at the hot end of the ambient range
+    assert (df.loc[failed, "ambient.temperature"] > 273.15 + 50).all()
+    assert res.summary["criteria"]["saturation"]["failures"] == 0
+    drivers = res.summary["failure_drivers"]["tj_max_output"]
+    assert drivers["ranking"][0]["input"] == "ambient.temperature"
+    assert drivers["ranking"][0]["direction"] == "high"
+
+
+def test_pwm_switching_losses_heat_the_junction():
+    path = ROOT / "studies" / "pwm_led_dimmer_darlington.toml"
+    text = path.read_text(encoding="utf-8").replace('frequency = "2 kHz"',
+                                                    'frequency = "100 kHz"')
+    study = load_text("fast.toml", text=text)
+    samples = _samples(study, 100)
+    out = study.stage.evaluate(samples)
+    sw = study.stage.switching
+    assert sw.enabled and out["converged"].all()
+    # the average loss includes f (E_on + E_off) of each device, so at 100 kHz the output's
+    # dissipation exceeds the duty-weighted static one by exactly that
+    dc = study.stage.dc(samples, {d: out[f"tj_{r}"] for d, r in (("Q1", "driver"),
+                                                                 ("Q2", "output"))})
+    static = (0.1 * dc["power_on"]["devices"]["Q2"] + 0.9 * dc["power_off"]["devices"]["Q2"])
+    extra = 100e3 * (out["energy_on_output"] + out["energy_off_output"])
+    np.testing.assert_allclose(out["power_output"], static + extra, rtol=1e-3)
+    assert np.all(extra > 0)
