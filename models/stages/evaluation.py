@@ -134,7 +134,8 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
     m["hot_spot_margin"] = MetricInfo("1", "1 minus the largest stress of any part (junction "
                                            "rise over allowed rise, power over derated "
                                            "rating); below 0 something is overstressed")
-    m["thermal_runaway"] = MetricInfo("1", "1 when the electro-thermal loop does not settle")
+    m["thermal_runaway"] = MetricInfo("1", "1 when the electro-thermal loop does not settle or "
+                                           "settles above T_j max")
     m["vce_peak"] = MetricInfo("V", "highest collector-emitter voltage of the output (off-state "
                                     "or transient)")
     m["peak_current"] = MetricInfo("A", "highest collector current the output carries (a "

@@ -40,12 +40,14 @@ TARGETS = {
 }
 
 
+#: the study that represents each stage in the benchmark
+STAGE_STUDIES = {"single": "irrigation_valve_single.toml",
+                 "darlington": "pwm_led_dimmer_darlington.toml",
+                 "sziklai": "shelf_led_sziklai.toml"}
+
+
 def studies_by_stage() -> dict[str, Path]:
-    out: dict[str, Path] = {}
-    for path in sorted((ROOT / "studies").glob("*.toml")):
-        study = load_study(path)
-        out.setdefault(study.stage_name, path)
-    return out
+    return {stage: ROOT / "studies" / name for stage, name in STAGE_STUDIES.items()}
 
 
 def best_of(fn, repeat: int = 3) -> float:
@@ -57,19 +59,20 @@ def best_of(fn, repeat: int = 3) -> float:
     return best
 
 
-def stage_figures(study, n: int) -> dict:
-    """DC (and full, when the stage has more than DC) samples/s of stage.evaluate."""
+def stage_figures(study, n: int, n_full: int) -> dict:
+    """Samples/s of the DC evaluation (stage.dc: on, edge, off and threshold solves at the
+    ambient) and of the full evaluation (stage.evaluate: electro-thermal loop, switching
+    transient where the study enables it, ratings)."""
     _, values = draw(study.parameters, None, "random", 3, n, 0, n)
-    dt = best_of(lambda: study.stage.evaluate(values))
-    out = study.stage.evaluate(values)
+    dt = best_of(lambda: study.stage.dc(values))
+    out = study.stage.dc(values)
     conv = float(np.mean(out["converged"]))
     figures = {"dc_samples_per_s": n / dt, "converged_fraction": conv, "samples": n}
-    evaluate_full = getattr(study.stage, "evaluate_full", None)
-    if evaluate_full is not None:
-        m = max(n // 10, 1000)
-        _, v2 = draw(study.parameters, None, "random", 3, m, 0, m)
-        dt_full = best_of(lambda: evaluate_full(v2), repeat=1)
-        figures["full_samples_per_s"] = m / dt_full
+    _, v2 = draw(study.parameters, None, "random", 3, n_full, 0, n_full)
+    dt_full = best_of(lambda: study.stage.evaluate(v2), repeat=1)
+    sw = getattr(study.stage, "switching", None)
+    figures.update(full_samples_per_s=n_full / dt_full, full_samples=n_full,
+                   transient=bool(sw is not None and sw.enabled))
     return figures
 
 
@@ -79,11 +82,13 @@ def reference_figures(study, stage_name: str, k: int = 100) -> dict | None:
         import test_stages  # the per-sample references live beside the stage tests
     except ImportError:
         return None
-    ref = getattr(test_stages, f"reference_{stage_name}", None)
-    if ref is None:
-        return None
+    if stage_name == "single":
+        ref = test_stages.reference_single
+    else:
+        def ref(stage, samples, i):
+            return test_stages.reference_pair(stage, samples, i, stage_name)
     _, values = draw(study.parameters, None, "random", 5, k, 0, k)
-    vec = study.stage.evaluate(values)
+    vec = study.stage.dc(values)
     def one(i):
         try:
             return ref(study.stage, values, i)
@@ -95,7 +100,7 @@ def reference_figures(study, stage_name: str, k: int = 100) -> dict | None:
     dt_ref = time.perf_counter() - t0
     n = 100_000
     _, big = draw(study.parameters, None, "random", 5, n, 0, n)
-    dt_vec = best_of(lambda: study.stage.evaluate(big))
+    dt_vec = best_of(lambda: study.stage.dc(big))
     worst = 0.0
     for i, r in enumerate(refs):
         if r is None:
@@ -180,13 +185,13 @@ def main() -> int:
     paths = studies_by_stage()
     for stage_name, path in paths.items():
         study = load_study(path)
-        entry = {"study": path.name, **stage_figures(study, n_stage)}
+        entry = {"study": path.name, **stage_figures(study, n_stage, 5_000 if quick else 20_000)}
         ref = reference_figures(study, stage_name)
         if ref:
             entry["reference"] = ref
         figures["stages"][stage_name] = entry
         print(f"measured {stage_name}", file=sys.stderr)
-    first = paths.get("darlington", next(iter(paths.values())))
+    first = ROOT / "studies" / "beacon_lamp_darlington.toml"
     figures["analyses"] = analysis_figures(first, 5_000 if quick else 20_000)
     figures["workers"] = worker_figures(first, 100_000 if quick else 400_000)
     figures["memory"] = memory_figures(first, 500_000 if quick else 10_000_000)
