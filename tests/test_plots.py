@@ -94,7 +94,7 @@ def test_histogram_counts_samples_left_out(result):
     df = result.samples[["y"]].copy()
     df.loc[:9, "y"] = np.nan
     fig = plots.histogram(df, "y", result.summary)
-    assert "10 samples not converged" in fig.axes[0].get_title(loc="left")
+    assert "10 samples without a value" in fig.axes[0].get_title(loc="left")
 
 
 # --- tornado --------------------------------------------------------------------------------

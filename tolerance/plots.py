@@ -215,7 +215,7 @@ def histogram(samples: pd.DataFrame, metric: str, summary: dict) -> Figure:
                 text += f", zero-failure upper bound {format_rate(c['zero_failure_upper'])}"
             lines.append(text)
         if missing:
-            lines.append(f"{missing} samples not converged (left out)")
+            lines.append(f"{missing} samples without a value (not converged or runaway), left out")
         ax.set_title("\n".join(lines), fontsize=8, loc="left", gid="rates")
         if handles:
             fig.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 3),
@@ -385,7 +385,7 @@ def driver_scatter(samples: pd.DataFrame, input_name: str, metric: str, summary:
         ax.set_ylabel(f"margin of {metric} (inside > 0)")
         skipped = int((~valid).sum())
         ax.set_title(f"{metric} margin vs {input_name}"
-                     + (f" ({skipped} not converged, left out)" if skipped else ""),
+                     + (f" ({skipped} without a value, left out)" if skipped else ""),
                      fontsize=10)
         ax.legend(loc="best", fontsize=8)
     return fig
@@ -584,7 +584,10 @@ def frontier(candidates: pd.DataFrame, metric_x: str, metric_y: str, *,
 
 
 def waveforms(times: list[np.ndarray], traces: list[np.ndarray], labels: Sequence[str],
-              unit: str | None, time_unit: str = "s") -> Figure:
+              unit: str | None, time_unit: str = "s", *, ylabel: str = "value",
+              lower_traces: list[np.ndarray] | None = None, lower_unit: str | None = None,
+              lower_ylabel: str = "value", title: str | None = None,
+              time_scale: str = "linear", decades: float = 5.0) -> Figure:
     """Several time traces on one axis, each in its own line style and colour.
 
     Parameters
@@ -599,27 +602,64 @@ def waveforms(times: list[np.ndarray], traces: list[np.ndarray], labels: Sequenc
         Unit of the traces, for the engineering-notation y axis.
     time_unit : str, default "s"
         Unit of the time axis.
+    ylabel : str, default "value"
+        Label of the (upper) value axis.
+    lower_traces : list of ndarray, optional
+        A second quantity of the same traces (same time points) [``lower_unit``], drawn in a
+        lower panel that shares the time axis; trace ``i`` keeps its line style and colour in
+        both panels.
+    lower_unit : str or None
+        Unit of ``lower_traces``.
+    lower_ylabel : str, default "value"
+        Label of the lower value axis.
+    title : str, optional
+        Title above the (upper) panel.
+    time_scale : {"linear", "symlog"}, default "linear"
+        ``"symlog"``: the time axis is linear up to ``10**-decades`` times the longest time
+        and logarithmic above, so a fast edge and a slow settling tail both show.
+    decades : float, default 5
+        Logarithmic decades of a ``"symlog"`` time axis.
 
     Returns
     -------
     matplotlib.figure.Figure
+        Lines carry the gid ``trace:<i>`` (upper panel) and ``lower:<i>`` (lower panel).
     """
     if not (len(times) == len(traces) == len(labels)):
         raise ValueError(f"got {len(times)} time arrays, {len(traces)} traces and "
                          f"{len(labels)} labels; expected the same number of each")
+    if time_scale not in ("linear", "symlog"):
+        raise ValueError(f"time_scale must be 'linear' or 'symlog', got {time_scale!r}")
+    if lower_traces is not None and len(lower_traces) != len(traces):
+        raise ValueError(f"got {len(lower_traces)} lower traces for {len(traces)} traces; "
+                         "expected the same number of each")
     with sns.axes_style(_STYLE):
-        fig = _figure(7.0, 4.2)
-        ax = fig.subplots()
-        for i, (t, v, name) in enumerate(zip(times, traces, labels)):
-            ax.plot(np.asarray(t, dtype=float), np.asarray(v, dtype=float),
-                    linestyle=LINESTYLES[i % len(LINESTYLES)], color=PALETTE[i % len(PALETTE)],
-                    linewidth=1.6, label=str(name), gid=f"trace:{i}")
-        ax.xaxis.set_major_formatter(_unit_formatter(time_unit))
-        ax.yaxis.set_major_formatter(_unit_formatter(unit))
-        ax.set_xlabel("time")
-        ax.set_ylabel("value")
+        if lower_traces is None:
+            fig = _figure(7.0, 4.2)
+            panels = [(fig.subplots(), traces, unit, ylabel, "trace")]
+        else:
+            fig = _figure(7.0, 6.0)
+            top, bottom = fig.subplots(2, 1, sharex=True)
+            panels = [(top, traces, unit, ylabel, "trace"),
+                      (bottom, lower_traces, lower_unit, lower_ylabel, "lower")]
+        for ax, values, u, label, gid in panels:
+            for i, (t, v, name) in enumerate(zip(times, values, labels)):
+                ax.plot(np.asarray(t, dtype=float), np.asarray(v, dtype=float),
+                        linestyle=LINESTYLES[i % len(LINESTYLES)],
+                        color=PALETTE[i % len(PALETTE)], linewidth=1.6, label=str(name),
+                        gid=f"{gid}:{i}")
+            ax.yaxis.set_major_formatter(_unit_formatter(u))
+            ax.set_ylabel(label)
+        bottom_ax = panels[-1][0]
+        t_max = max((float(np.max(np.abs(t))) for t in times if np.size(t)), default=0.0)
+        if time_scale == "symlog" and t_max > 0:
+            bottom_ax.set_xscale("symlog", linthresh=t_max * 10.0 ** -decades)
+        bottom_ax.xaxis.set_major_formatter(_unit_formatter(time_unit))
+        bottom_ax.set_xlabel("time")
+        if title:
+            panels[0][0].set_title(title, fontsize=10)
         if len(labels):
-            ax.legend(loc="best", fontsize=8)
+            panels[0][0].legend(loc="best", fontsize=8)
     return fig
 
 
