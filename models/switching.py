@@ -110,6 +110,10 @@ METRIC_UNITS = {
     "vce_peak": "V", "avalanche_energy": "J", "transition_fraction": "1", "converged": "bool",
 }
 
+#: Most steps of one run per sample: a coil's slow decay through its clamp while a floating
+#: node of a pair keeps the steps short can take tens of thousands (a sample that needs more is
+#: reported as not converged)
+MAX_STEPS = 100_000
 #: Test current of a V_(BR)CEO rating, where the avalanche source reaches it [A].
 BREAKDOWN_TEST_CURRENT = 10e-3
 #: Slope voltage of the avalanche law as a fraction of V_(BR)CEO [1].
@@ -447,7 +451,8 @@ def _resistor(resistors, key, n):
 
 def simulate_switching(topology, devices, resistors, drive, supply, load_state, temperature, *,
                        relative_tolerance=5e-4, voltage_tolerance=1e-3, time_limit=None,
-                       settle_voltage=2e-3, charge_fraction=0.5, record=()) -> SwitchingResult:
+                       settle_voltage=2e-3, charge_fraction=0.5, record=(),
+                       max_steps=MAX_STEPS) -> SwitchingResult:
     """Turn-on and turn-off transients of a batch of stages and their switching metrics.
 
     Parameters are those of :func:`switching_metrics`; in addition ``record`` names sample
@@ -660,7 +665,7 @@ def simulate_switching(topology, devices, resistors, drive, supply, load_state, 
                        charge_relative_tolerance=charge_fraction * relative_tolerance,
                        absolute_tolerance=atol, relative_tolerance=relative_tolerance,
                        breakpoints=bps, event_levels=levels, event_directions=dirs,
-                       initial_step=h0[two], record=rec)
+                       initial_step=h0[two], record=rec, max_steps=max_steps)
 
     ok_run = ok0 & result.ok & np.all(np.isfinite(result.event_times), axis=1)
     converged = ok_run[:s] & ok_run[s:]
@@ -735,6 +740,7 @@ def switching_metrics(topology, devices, resistors, drive, supply, load_state, t
     temperature : ndarray
         Ambient temperature [K] (clamp diode).
     **options
+        ``max_steps`` per run and sample (default :data:`MAX_STEPS`);
         ``relative_tolerance`` [1] (default 5e-4) and ``voltage_tolerance`` [V] (default
         1 mV) of the local error of the unknowns; the node charges are held to
         ``charge_fraction`` (default 0.5) times the relative tolerance and to the voltage

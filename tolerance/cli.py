@@ -92,6 +92,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--target-ci", type=_fraction, metavar="W",
                    help="keep sampling (up to --samples) until every criterion's 95 %% interval "
                         "half-width is below W (e.g. 0.001 or 100ppm)")
+    p.add_argument("--waveforms", type=_positive_int, metavar="K",
+                   help="store K switching waveforms in waveforms.json for the report (the "
+                        "nominal point, the worst turn-off sample and K-2 random samples, "
+                        "chosen with the run's seed); needs the switching transient")
 
     p = sub.add_parser("whatif", help="pin parameters and compare with the baseline (common "
                        "random numbers)")
@@ -190,15 +194,38 @@ def cmd_run(args) -> int:
     out = Path(args.out) if args.out else _default_out(study)
     if args.scheduler and args.backend != "dask":
         raise UsageError("--scheduler needs --backend dask")
+    if args.waveforms is not None:
+        from tolerance.models.waveforms import check_recordable
+
+        try:  # before the run: a refused request writes nothing
+            check_recordable(study, args.waveforms)
+        except ValueError as exc:
+            raise UsageError(f"--waveforms: {exc}") from None
     progress = (not args.quiet) and sys.stderr.isatty()
     result = run(study, samples=args.samples, seed=args.seed, sampler=args.sampler,
                  jobs=args.jobs, chunk_size=args.chunk_size, out=out, progress=progress,
                  resume=args.resume, force=args.force, backend=args.backend,
                  scheduler=args.scheduler, target_ci=args.target_ci)
+    if args.waveforms is not None:
+        _write_waveforms(study, out, args.waveforms, result.summary["seed"])
     _write_report(out)
     if not args.quiet:
         print_summary(result.summary, study, out)
     return exit_status(result.summary["verdict"])
+
+
+def _write_waveforms(study, out: Path, k: int, seed: int) -> None:
+    """waveforms.json of a finished run, from the parameter and turn-off delay columns only."""
+    import pandas as pd
+
+    from tolerance import runner
+    from tolerance.api import SAMPLES_DIR, write_json
+    from tolerance.models.waveforms import record_waveforms
+
+    folder = out / SAMPLES_DIR
+    columns = ["sample", *study.parameter_names, "turn_off_delay"]
+    frame = pd.DataFrame({c: runner.read_column(folder, c) for c in columns})
+    write_json(out / "waveforms.json", record_waveforms(study, frame, k, seed))
 
 
 def _analysis_out(args, study, suffix: str) -> Path:

@@ -1,11 +1,12 @@
 """Reports a reviewer can sign: a self-contained HTML page and a Markdown twin of a run.
 
 :func:`write_reports` reads a run folder (summary.json, samples.parquet and, when present, the
-JSON files of the sensitivity, worst-case, what-if and value-choice analyses), draws the plots
-into ``plots/`` and writes ``report.html`` and ``report.md``. Both reports are rendered from one
-document model (headings, paragraphs, tables of already formatted strings, figures), so every
-figure they share is the very same string. Nothing depends on the clock or on the machine: the
-same saved files give byte-identical reports.
+JSON files of the sensitivity, worst-case, what-if and value-choice analyses and the stored
+switching waveforms), draws the plots into ``plots/`` and writes ``report.html`` and
+``report.md``. Both reports are rendered from one document model (headings, paragraphs, tables
+of already formatted strings, figures), so every figure they share is the very same string.
+Nothing depends on the clock or on the machine: the same saved files give byte-identical
+reports.
 """
 
 from __future__ import annotations
@@ -48,7 +49,9 @@ EXTRA_FILES = {
     "whatif.json": "What-if runs",
     "choose.json": "Value choice",
 }
-PLOT_PREFIXES = ("hist-", "tornado-", "driver-", "whatif-", "choose-")
+PLOT_PREFIXES = ("hist-", "tornado-", "driver-", "whatif-", "choose-", "waveforms-")
+#: Sample waveforms of the switching transient (``tolerance run --waveforms K``).
+WAVEFORMS_FILE = "waveforms.json"
 WHATIF_SAMPLES = "whatif_samples.parquet"
 VERDICT_WORDS = {"pass": "PASS", "fail": "FAIL", "undecided": "UNDECIDED"}
 VERDICT_MEANING = {
@@ -394,6 +397,40 @@ def _run_plots(folder: Path, summary: dict, extras: dict,
         fig = plots.driver_scatter(frame, top, metric, summary, units)
         path = plots.save(fig, plot_dir / f"driver-{_safe_name(name)}.png")
         made.append((path, f"Top failure driver of {name}: {top} against the margin of {metric}"))
+    return made
+
+
+_RUN_TITLES = {"turn_on": "Turn-on", "turn_off": "Turn-off"}
+
+
+def _waveform_plots(data: dict, plot_dir: Path) -> list[tuple[Path, str]]:
+    """Load current and V_CE against time of the stored samples, one figure per transient."""
+    entries = [e for e in (data.get("samples") or []) if isinstance(e, dict)]
+    units = data.get("units") or {}
+    temp = data.get("device_temperature")
+    made = []
+    for run, word in _RUN_TITLES.items():
+        traces = [(e, e[run]) for e in entries if isinstance(e.get(run), dict)
+                  and all(k in e[run] for k in ("time", "load_current", "vce"))]
+        if not traces:
+            continue
+        labels = [str(e.get("label", "")) + ("" if e.get("sample") is None
+                                             else f" (sample {e['sample']})")
+                  for e, _ in traces]
+        fig = plots.waveforms([np.asarray(t["time"], dtype=float) for _, t in traces],
+                              [np.asarray(t["load_current"], dtype=float) for _, t in traces],
+                              labels, units.get("load_current", "A"),
+                              units.get("time", "s"), ylabel="load current",
+                              lower_traces=[np.asarray(t["vce"], dtype=float)
+                                            for _, t in traces],
+                              lower_unit=units.get("vce", "V"), lower_ylabel="V_CE",
+                              title=f"{word} transient of {len(traces)} stored samples",
+                              time_scale="symlog")
+        path = plots.save(fig, plot_dir / f"waveforms-{run}.png")
+        note = f"; devices at the {temp} temperature of each sample" if temp else ""
+        made.append((path, f"{word} transient: load current and V_CE against time from the "
+                           f"drive edge (linear near zero, logarithmic beyond) of the stored "
+                           f"samples ({', '.join(labels)}){note}"))
     return made
 
 
@@ -745,7 +782,9 @@ def write_reports(folder) -> dict:
         Result folder. A Monte Carlo run holds summary.json and samples.parquet (chunk
         files); any of sensitivity.json, worstcase.json, whatif.json (with
         whatif_samples.parquet) and choose.json present is rendered as tables, plus ECDF
-        overlays for a what-if and a yield map / trade-off frontier for a value choice.
+        overlays for a what-if and a yield map / trade-off frontier for a value choice;
+        waveforms.json (``tolerance run --waveforms K``) gives the turn-on and turn-off
+        waveform plots.
 
     Returns
     -------
@@ -780,6 +819,8 @@ def write_reports(folder) -> dict:
         made += _whatif_plots(folder, extras["whatif.json"], summary, plot_dir)
     if "choose.json" in extras:
         made += _choose_plots(extras["choose.json"], plot_dir)
+    if (folder / WAVEFORMS_FILE).is_file():
+        made += _waveform_plots(_read_json(folder / WAVEFORMS_FILE), plot_dir)
     figures = [(f"{PLOTS_DIR}/{p.name}", p.read_bytes(), caption) for p, caption in made]
     doc = build_document(summary, extras, figures)
     title = doc[0].text
