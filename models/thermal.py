@@ -102,7 +102,14 @@ class FixedPointResult:
     iterations: np.ndarray
 
 
-def electrothermal(power_at: Callable[[dict[str, np.ndarray]], dict[str, np.ndarray]],
+def _at(value, idx):
+    """``value[idx]`` for a per-sample array, the value itself for a scalar."""
+    arr = np.asarray(value, dtype=float)
+    return arr[idx] if arr.ndim else arr
+
+
+def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
+                                      dict[str, np.ndarray]],
                    ambient: np.ndarray, theta: dict[str, np.ndarray],
                    shared: dict[str, str] | None = None, limit: dict[str, np.ndarray] | None = None,
                    settle: float = SETTLE_KELVIN, max_iterations: int = MAX_ITERATIONS
@@ -126,7 +133,7 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray]], dict[str, np.ndar
     Parameters
     ----------
     power_at : callable
-        ``power_at({device: T_j [K]}) -> {device: P [W]}``, arrays of the chunk's length.
+        ``power_at({device: T_j [K]}, idx) -> {device: P [W]}``, arrays of ``len(idx)``.
     ambient : ndarray
         Ambient temperature per sample [K].
     theta : dict
@@ -141,6 +148,7 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray]], dict[str, np.ndar
     names = list(theta)
     n = len(ambient)
     temps = {d: np.array(ambient, dtype=float) for d in names}
+    ambient = np.asarray(ambient, dtype=float)
     settled = np.zeros(n, dtype=bool)
     runaway = np.zeros(n, dtype=bool)
     iterations = np.zeros(n, dtype=np.int64)
@@ -150,31 +158,34 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray]], dict[str, np.ndar
         active = ~(settled | runaway)
         if not active.any():
             break
-        power = power_at(temps)
+        idx = np.flatnonzero(active)
+        # only the samples still moving are evaluated: the cost follows the active set
+        power = power_at({d: temps[d][idx] for d in names}, idx)
         heat = {d: np.asarray(power[d], dtype=float) for d in names}
         for d, carrier in shared.items():
             heat[carrier] = heat[carrier] + heat[d]
-        step_max = np.zeros(n)
+        step_max = np.zeros(idx.size)
         new = {}
+        rel = relax[idx]
         for d in names:
             carrier = shared.get(d, d)
-            target = np.asarray(ambient) + np.asarray(theta[carrier]) * heat[carrier]
-            delta = target - temps[d]
-            new[d] = temps[d] + relax * delta
+            target = np.asarray(ambient)[idx] + _at(theta[carrier], idx) * heat[carrier]
+            delta = target - temps[d][idx]
+            new[d] = temps[d][idx] + rel * delta
             step_max = np.maximum(step_max, np.abs(delta))
         bad = ~np.isfinite(step_max)
         for d in names:
             bad |= new[d] > RUNAWAY_KELVIN
             if limit is not None and d in limit:
-                bad |= new[d] > np.asarray(limit[d]) + 100.0
-        growing = step_max > last_step
-        relax = np.where(growing & active, np.maximum(relax * 0.5, 1 / 64), relax)
-        last_step = np.where(active, step_max, last_step)
+                bad |= new[d] > _at(limit[d], idx) + 100.0
+        growing = step_max > last_step[idx]
+        relax[idx] = np.where(growing, np.maximum(rel * 0.5, 1 / 64), rel)
+        last_step[idx] = step_max
         for d in names:
-            temps[d] = np.where(active & ~bad, new[d], temps[d])
-        runaway |= active & bad
-        iterations = np.where(active, it, iterations)
-        settled |= active & ~bad & (step_max < settle)
+            temps[d][idx] = np.where(bad, temps[d][idx], new[d])
+        runaway[idx] |= bad
+        iterations[idx] = it
+        settled[idx] |= ~bad & (step_max < settle)
     runaway |= ~settled
     out = {d: np.where(runaway, np.nan, t) for d, t in temps.items()}
     return FixedPointResult(out, ~runaway, iterations)

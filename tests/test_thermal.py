@@ -42,9 +42,9 @@ def test_fixed_point_matches_scipy_root_per_sample():
     p0 = rng.uniform(0.05, 0.4, n)
     k = rng.uniform(0.0, 0.012, n)
 
-    def power_at(t):
+    def power_at(t, idx):
         # dissipation rising with temperature (gain and leakage grow when hot)
-        return {"q": p0 * np.exp(k * (t["q"] - (C0 + 25)))}
+        return {"q": p0[idx] * np.exp(k[idx] * (t["q"] - (C0 + 25)))}
 
     res = thermal.electrothermal(power_at, ta, {"q": theta}, settle=1e-6, max_iterations=400)
     for i in range(n):
@@ -67,7 +67,7 @@ def test_runaway_is_flagged_and_a_stable_case_settles():
     # loop gain theta * dP/dT: 100 * 0.2 * 0.01 = 0.2 (stable) and 100 * 0.2 * 0.1 = 2 (no
     # fixed point for an exponential power law once theta P0 k e > 1; common practice)
     k = np.array([0.01, 0.1])
-    res = thermal.electrothermal(lambda t: {"q": p0 * np.exp(k * (t["q"] - ta))}, ta,
+    res = thermal.electrothermal(lambda t, i: {"q": p0[i] * np.exp(k[i] * (t["q"] - ta[i]))}, ta,
                                  {"q": theta}, limit={"q": np.full(2, C0 + 150)})
     assert res.settled.tolist() == [True, False]
     assert np.isnan(res.temperatures["q"][1])
@@ -75,7 +75,8 @@ def test_runaway_is_flagged_and_a_stable_case_settles():
 
 def test_shared_junction_sums_the_powers():
     ta = np.full(3, C0 + 25.0)
-    res = thermal.electrothermal(lambda t: {"a": np.full(3, 0.1), "b": np.full(3, 0.3)}, ta,
+    res = thermal.electrothermal(lambda t, i: {"a": np.full(i.size, 0.1),
+                                               "b": np.full(i.size, 0.3)}, ta,
                                  {"a": np.full(3, 50.0), "b": np.full(3, 50.0)},
                                  shared={"a": "b"})
     # one die: both dissipations through one theta_JA (JESD51 relation on the sum)

@@ -195,6 +195,31 @@ def read_load_table(reader: Reader):
     return read_load(reader.table("load", required=True))
 
 
+def device_parameters(stage, samples) -> dict:
+    """Model parameters of every transistor of the stage for a chunk (name -> parameters).
+
+    Mapping each unit's sampled h_FE to its forward gain takes a small Newton solve per device;
+    callers that evaluate the same samples at several temperatures compute this once and pass
+    it on (``params``).
+    """
+    return {name: part.parameters(samples) for name, part in stage.transistors().items()}
+
+
+def take_parameters(params: dict, idx: np.ndarray, n: int) -> dict:
+    """The same parameters for the samples ``idx`` of a chunk of ``n``."""
+    from dataclasses import fields
+
+    out = {}
+    for name, p in params.items():
+        changes = {}
+        for f in fields(p):
+            v = getattr(p, f.name)
+            if isinstance(v, np.ndarray) and v.ndim >= 1 and v.shape[0] == n:
+                changes[f.name] = v[idx]
+        out[name] = p.replace(**changes) if changes else p
+    return out
+
+
 def junction_limit(x_new, x_old, columns):
     """Apply :func:`limit_junction_step` to the junction columns of an iterate.
 
@@ -406,7 +431,7 @@ class PairStage:
     def resistors(self):
         return {"RB": self.rb, "RBE1": self.rbe1, "RBE2": self.rbe2}
 
-    def _setup(self, samples, temps=None):
+    def _setup(self, samples, temps=None, params=None):
         t = np.asarray(samples[self.env.temperature], dtype=float)
         t1 = t if temps is None else temps["Q1"]
         t2 = t if temps is None else temps["Q2"]
@@ -419,8 +444,9 @@ class PairStage:
             g_be1 = g_be1 + self.internal_rbe1.conductance(samples, t)
         if self.internal_rbe2 is not None:
             g_be2 = g_be2 + self.internal_rbe2.conductance(samples, t)
-        q1 = self.q1.parameters(samples).at_temperature(t1)
-        q2 = self.q2.parameters(samples).at_temperature(t2)
+        params = params or device_parameters(self, samples)
+        q1 = params["Q1"].at_temperature(t1)
+        q2 = params["Q2"].at_temperature(t2)
         load = self.load.at(samples, t, vs)
         return t, vs, v_high, v_low, g_in, g_be1, g_be2, q1, q2, load
 
@@ -449,13 +475,15 @@ class PairStage:
 
         return evaluate_stage(self, samples)
 
-    def dc(self, samples, temps=None, temps_off=None, full=True):
+    def dc(self, samples, temps=None, temps_off=None, full=True, params=None):
         """DC solution at the given device temperatures [K] (default: the ambient); see
         :meth:`tolerance.models.stages.single.SingleStage.dc`."""
-        t, vs, v_high, v_low, g_in, g_be1, g_be2, q1, q2, load = self._setup(samples, temps)
+        params = params or device_parameters(self, samples)
+        t, vs, v_high, v_low, g_in, g_be1, g_be2, q1, q2, load = self._setup(samples, temps,
+                                                                             params)
         if temps_off is not None and temps_off is not temps:
-            q1_off = self.q1.parameters(samples).at_temperature(temps_off["Q1"])
-            q2_off = self.q2.parameters(samples).at_temperature(temps_off["Q2"])
+            q1_off = params["Q1"].at_temperature(temps_off["Q1"])
+            q2_off = params["Q2"].at_temperature(temps_off["Q2"])
         else:
             q1_off, q2_off = q1, q2
         n = vs.shape[0]

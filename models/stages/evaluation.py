@@ -347,10 +347,18 @@ def evaluate_stage(stage, samples):
     temps = {d: ambient.copy() for d in devices}
     settled = np.ones(n, dtype=bool)
 
+    from tolerance.models.stages import device_parameters, take_parameters
+
+    params = device_parameters(stage, samples)
+
     def settle():
-        def power_at(t):
-            res = stage.dc(samples, t, off_temps(t), full=False)
-            p = _device_power(res, duty, switching_power)
+        def power_at(t, idx):
+            sub = {k: np.asarray(v)[idx] for k, v in samples.items()}
+            t_off = {d: ambient[idx] for d in devices} if static else t
+            res = stage.dc(sub, t, t_off, full=False, params=take_parameters(params, idx, n))
+            extra = None if switching_power is None else {
+                d: e[idx] for d, e in switching_power.items()}
+            p = _device_power(res, duty, extra)
             ok = res["converged"]
             return {d: np.where(ok, p[d], np.nan) for d in devices}
 
@@ -378,7 +386,7 @@ def evaluate_stage(stage, samples):
                 settled, temps = settle()
 
     eval_temps = {d: np.where(settled, temps[d], setup.tj_max[d]) for d in devices}
-    res = stage.dc(samples, eval_temps, off_temps(eval_temps), full=True)
+    res = stage.dc(samples, eval_temps, off_temps(eval_temps), full=True, params=params)
     converged = np.asarray(res["converged"], dtype=bool)
     # a loop that does not settle, or settles above T_j max, is a thermal runaway
     over = np.zeros(n, dtype=bool)

@@ -26,6 +26,7 @@ import numpy as np
 
 from tolerance.models.parts import read_transistor
 from tolerance.models.stages import (
+    device_parameters,
     COMMON_METRICS,
     THRESHOLD_FRACTION,
     Subsettable,
@@ -159,14 +160,14 @@ class SingleStage:
     def resistors(self):
         return {"RB": self.rb, "RPD": self.rpd}
 
-    def _setup(self, samples, temps=None):
+    def _setup(self, samples, temps=None, params=None):
         t = np.asarray(samples[self.env.temperature], dtype=float)
         tq = t if temps is None else temps["Q1"]
         vs = np.asarray(samples[self.env.supply], dtype=float)
         v_high, v_low, r_s = self.drive.levels(samples)
         g_in = 1.0 / (r_s + self.rb.resistance(samples, t))
         g_pd = self.rpd.conductance(samples, t)
-        q = self.q1.parameters(samples).at_temperature(tq)
+        q = (params or device_parameters(self, samples))["Q1"].at_temperature(tq)
         load = self.load.at(samples, t, vs)
         return t, vs, v_high, v_low, g_in, g_pd, q, load
 
@@ -191,16 +192,17 @@ class SingleStage:
             "drive": v_in * i_in,
         }
 
-    def dc(self, samples, temps=None, temps_off=None, full=True):
+    def dc(self, samples, temps=None, temps_off=None, full=True, params=None):
         """DC solution at the given device temperatures [K] (default: the ambient).
 
         ``temps_off`` are the temperatures of the off-state solve (default ``temps``). With
         ``full`` False only the on- and off-states are solved (the electro-thermal loop needs
         no more); the result then holds the powers and convergence only.
         """
-        t, vs, v_high, v_low, g_in, g_pd, q, load = self._setup(samples, temps)
+        params = params or device_parameters(self, samples)
+        t, vs, v_high, v_low, g_in, g_pd, q, load = self._setup(samples, temps, params)
         if temps_off is not None and temps_off is not temps:
-            q_off = self.q1.parameters(samples).at_temperature(temps_off["Q1"])
+            q_off = params["Q1"].at_temperature(temps_off["Q1"])
         else:
             q_off = q
         n = vs.shape[0]
