@@ -175,3 +175,16 @@ def test_notebook_api_mirrors_the_commands(write_study):
     assert comparison["pins"] == {"x1": -1.0}
     assert "y" in study.worstcase(samples=500)["metrics"]
     assert study.choose("x2=E6:1..2.2", samples=300)["candidates"]
+
+
+def test_end_of_life_drift_widens_the_worst_case_bounds(write_study):
+    from tolerance.analysis import study_worst_case
+
+    text = LINEAR.format(x1=SPREAD).replace('distribution = "normal"}',
+                                            'distribution = "normal", drift = "10%"}')
+    study = load_study(write_study(text))
+    assert study.parameter("x2").drift == pytest.approx(0.1)
+    y = study_worst_case(study, 500, 1)["metrics"]["y"]
+    # ECSS-Q-HB-30-01A practice: initial tolerance and ageing add linearly at the extremes;
+    # x2 in 1 -/+ (0.3 + 0.1), so y spans -1 + 2 * 0.6 .. 3 + 2 * 1.4 (exact for a linear model)
+    assert_allclose([y["eva_min"], y["eva_max"]], [0.2, 5.8], rtol=1e-12)

@@ -59,7 +59,8 @@ def _wait_for_chunks(folder: Path, count: int, proc, timeout=60.0):
 
 @pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGINT])
 def test_interrupted_run_resumes_to_identical_result(write_study, tmp_path, sig):
-    study = write_study(LINEAR.format(samples=600_000, chunk=4_000))
+    # a million-sample run, killed part way
+    study = write_study(LINEAR.format(samples=1_000_000, chunk=8_000))
     whole = tmp_path / "whole"
     ref = _cli("run", study, "--out", whole, "--quiet")
     ref.communicate(timeout=300)
@@ -181,3 +182,55 @@ def test_mutated_studies_never_crash(table, key, value):
         return
     res = run(study, samples=20)
     assert res.summary["samples"] == 20
+
+
+# --- edge cases on the real stages ------------------------------------------------------------
+
+def _demo(replace_from: str, replace_to: str) -> str:
+    from tolerance.api import demo_text
+
+    text = demo_text()
+    assert replace_from in text
+    return text.replace(replace_from, replace_to)
+
+
+def test_supply_below_turn_on_is_counted_not_crashed():
+    # a 1 V supply leaves the heater almost unpowered: the stage still solves (or counts its
+    # failures), nothing crashes
+    text = _demo('voltage = {nominal = "12 V", tolerance = "10%", distribution = "uniform"}',
+                 'voltage = "1 V"')
+    res = run(load_text("low.toml", text=text), samples=200)
+    s = res.summary
+    assert s["samples"] == 200
+    assert s["not_converged"] + s["criteria"]["saturation"]["evaluated"] == 200
+    # a supply at or below the transistor's V_CE(sat) is refused as bad input, naming the key
+    with pytest.raises(StudyError, match=r"parts\.Q1\.(device|vce_sat_max).*lowest supply"):
+        load_text("lower.toml", text=text.replace('voltage = "1 V"', 'voltage = "0.4 V"'))
+
+
+def test_temperatures_outside_a_device_range():
+    # -100 degC and 200 degC lie outside any silicon datasheet: the run completes, every sample
+    # is either solved or counted as not converged, and the hot ones fail T_j max
+    text = _demo('temperature = {min = "-20 degC", max = "55 degC"}',
+                 'temperature = {values = ["-100 degC", "200 degC"]}')
+    res = run(load_text("cold_hot.toml", text=text), samples=100)
+    df = res.samples
+    hot = df["ambient.temperature"] > 400
+    assert hot.any() and (~hot).any()
+    solved = df["converged"]
+    assert not df.loc[hot & solved, "pass"].any()
+    assert res.summary["not_converged"] == int((~solved).sum())
+
+
+def test_tolerance_at_its_limit():
+    # 99.9 % (uniform) takes the base resistor to a fraction of an ohm: accepted and run;
+    # 100 % would reach zero and is refused with the key
+    study = load_text("t.toml", text=_demo('tolerance = "5%"\ntempco = "200 ppm/K"',
+                                           'tolerance = "99.9%"\ndistribution = "uniform"\n'
+                                           'tempco = "200 ppm/K"'))
+    res = run(study, samples=300)
+    assert res.summary["samples"] == 300
+    assert res.samples["RB"].min() < 15.0
+    with pytest.raises(StudyError, match=r"parts\.RB\.tolerance"):
+        load_text("t2.toml", text=_demo('tolerance = "5%"\ntempco = "200 ppm/K"',
+                                        'tolerance = "100%"\ntempco = "200 ppm/K"'))

@@ -40,6 +40,10 @@ class Parameter:
         One line for the parameter table.
     key : str
         Key path in the study file the parameter came from (for messages).
+    drift : float
+        End-of-life drift, relative [1]: worst-case analysis widens the tolerance bounds by it
+        (initial tolerance plus ageing, ECSS-Q-HB-30-01A practice); the Monte Carlo run samples
+        the initial spread.
     """
 
     name: str
@@ -47,6 +51,7 @@ class Parameter:
     distribution: Distribution
     description: str = ""
     key: str = ""
+    drift: float = 0.0
 
     @property
     def nominal(self) -> float:

@@ -134,8 +134,10 @@ def zero_failure_upper(n, confidence: float = 0.95):
 
 
 def _clean(x) -> np.ndarray:
+    """Finite entries only: NaN (no solution) and infinities (outside the model's range) are
+    left out of every spread, capability and tail figure; the counted criteria see them."""
     arr = np.asarray(x, dtype=float).ravel()
-    return arr[~np.isnan(arr)]
+    return arr[np.isfinite(arr)]
 
 
 _SUMMARY_PERCENTILES = {"p001": 0.1, "p01": 1.0, "p50": 50.0, "p99": 99.0, "p999": 99.9}

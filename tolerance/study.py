@@ -212,6 +212,12 @@ class Reader:
             raw = default
         else:
             raw = self._get(name, _MISSING)
+        drift = 0.0
+        if allow_tolerance_key and self.has("drift"):
+            drift = self._drift(self, "drift")
+        if isinstance(raw, dict) and "drift" in raw:
+            # read by its own reader over the same table: the table's keys count as one
+            drift = self._drift(Reader(raw, key, self._ctx), "drift")
         if allow_tolerance_key and not isinstance(raw, dict) and (
             self.has("tolerance") or self.has("distribution") or self.has("sigmas")
         ):
@@ -232,9 +238,15 @@ class Reader:
             distribution = dist.Fixed(value)
         if parameter_name in self._ctx.parameters:
             raise self.error(name, f"defines parameter '{parameter_name}' a second time")
-        param = Parameter(parameter_name, unit, distribution, description, key)
+        param = Parameter(parameter_name, unit, distribution, description, key, drift)
         self._ctx.parameters[parameter_name] = param
         return param
+
+    @staticmethod
+    def _drift(reader: "Reader", name: str) -> float:
+        """End-of-life drift: a relative figure such as 1% or 0.01 (below 50 %)."""
+        value = reader.quantity(name, "1", minimum=0.0, maximum=0.5)
+        return value
 
     def _distribution(self, unit, positive, minimum, maximum, default_distribution,
                       nominal_key) -> dist.Distribution:

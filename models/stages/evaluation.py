@@ -59,7 +59,7 @@ class ThermalSetup:
     """
 
     def __init__(self, theta, tj_max, power_rating, breakdown, ic_max, shared, roles, margin,
-                 self_heating):
+                 self_heating, pulse_energy=None):
         self.theta = theta
         self.tj_max = tj_max
         self.power_rating = power_rating
@@ -69,6 +69,7 @@ class ThermalSetup:
         self.roles = roles
         self.margin = margin
         self.self_heating = self_heating
+        self.pulse_energy = dict(pulse_energy or {})
 
 
 def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
@@ -78,12 +79,14 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
     Keys: ``[thermal] self_heating`` (default true), ``tj_margin`` [K] (default 0);
     ``[parts.Qn] heatsink`` [K/W] (sink to ambient; absent: free air with the part's
     ``theta_ja``) and ``case_to_sink`` [K/W] (default 0.5 K/W with a heatsink, a greased
-    insulating washer, typical value from memory).
+    insulating washer, typical value from memory); ``pulse_energy`` [J], the single-pulse
+    energy the part may absorb (from its safe-operating-area or single-pulse figure), which
+    becomes a rating on a lamp's ``inrush_energy``.
     """
     table = reader.table("thermal")
     self_heating = table.boolean("self_heating", default=True)
     margin = table.quantity("tj_margin", "K", default=0.0, minimum=0.0, maximum=100.0)
-    theta, tj_max, rating, breakdown, ic_max = {}, {}, {}, {}, {}
+    theta, tj_max, rating, breakdown, ic_max, pulse_energy = {}, {}, {}, {}, {}, {}
     for name, part in stage.transistors().items():
         ds = part.device.datasheet
         t = parts_reader.table(name)
@@ -97,12 +100,15 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
             if t.has("case_to_sink"):
                 raise t.error("case_to_sink", "only applies with a heatsink")
             theta[name] = float(ds.theta_ja)
+        pulse = t.optional_quantity("pulse_energy", "J", positive=True)
+        if pulse is not None:
+            pulse_energy[name] = pulse
         tj_max[name] = float(ds.tj_max)
         rating[name] = float(ds.power_rating)
         breakdown[name] = float(ds.breakdown_vceo)
         ic_max[name] = float(ds.ic_max)
     setup = ThermalSetup(theta, tj_max, rating, breakdown, ic_max, dict(shared or {}), roles,
-                         margin, self_heating)
+                         margin, self_heating, pulse_energy)
     stage.thermal = setup
     _add_metrics_and_ratings(stage, setup)
 
@@ -150,6 +156,13 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
     if stage.load.kind == "lamp":
         m["inrush_energy"] = MetricInfo("J", "energy the output absorbs while it limits the "
                                              "cold filament's current")
+        m["inrush_margin"] = MetricInfo("1", "current the stage can carry at the edge of "
+                                             "saturation over the cold filament's demand")
+        pulse = setup.pulse_energy.get(out)
+        if pulse is not None:
+            crit.append(Criterion("pulse_energy", "inrush_energy", maximum=pulse,
+                                  source="rating", description=f"within the single-pulse "
+                                  f"energy of {out}"))
 
 
 SWITCHING_METRICS = {
@@ -461,6 +474,8 @@ def evaluate_stage(stage, samples):
         out["peak_current"] = np.minimum(demand, capability)
         out["inrush_energy"] = lamp_inrush_energy(
             load_state, np.asarray(samples[stage.env.supply], dtype=float), capability)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            out["inrush_margin"] = capability / demand
     else:
         out["peak_current"] = np.abs(res["load_current"])
     for key in list(out):
