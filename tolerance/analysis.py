@@ -91,8 +91,9 @@ def insights(study: Study, column) -> dict:
     metrics = list(study.stage.metrics)
     n = len(column("converged"))
     rows = slice(0, min(n, SENSITIVITY_ROWS))
-    inputs = pd.DataFrame({p.name: column(p.name)[rows] for p in varying})
-    outputs = pd.DataFrame({m: column(m)[rows] for m in metrics})
+    # copies: a slice is a view that would keep every full column alive (memory ~ run length)
+    inputs = pd.DataFrame({p.name: column(p.name)[rows].copy() for p in varying})
+    outputs = pd.DataFrame({m: column(m)[rows].copy() for m in metrics})
     result: dict = {"parameters": parameters_table(study)}
     if varying and len(inputs) > 2:
         table = sensitivity.rank_sensitivity(inputs, outputs)
@@ -171,10 +172,12 @@ def study_worst_case(study: Study, samples: int, seed: int) -> dict:
     mc = {m: {k: res.summary["metrics"][m][k] for k in ("min", "max", "p001", "p999")}
           for m in study.stage.metrics}
     bounds = bounds_for(study)
-    limited = list(dict.fromkeys(c.metric for c in study.criteria))
+    # the optimizer (sequential, the costly part) searches the metrics the design is judged
+    # on: the stage's and the study's own criteria; ratings get EVA and RSS like every metric
+    limited = list(dict.fromkeys(c.metric for c in study.criteria if c.source != "rating"))
     table = worstcase.worst_case_table(model_for(study), bounds, list(study.stage.metrics),
                                        mc_extremes=mc, seed=seed, optimize_metrics=limited,
-                                       starts=4, maxiter=100)
+                                       starts=3, maxiter=60)
     evaluations = table.pop("evaluations")
     return {
         "study": study.path, "study_hash": study.study_hash, "seed": seed,
