@@ -55,9 +55,8 @@ def bounds_for(study: Study) -> list[worstcase.Bound]:
     out = []
     for p in study.parameters:
         lo, hi, nom = p.low, p.high, p.nominal
-        drift = getattr(p, "drift", 0.0) or 0.0
-        if drift:
-            lo, hi = lo - abs(nom) * drift, hi + abs(nom) * drift
+        if p.drift:
+            lo, hi = lo - abs(nom) * p.drift, hi + abs(nom) * p.drift
         out.append(worstcase.Bound(p.name, nom, min(lo, nom), max(hi, nom)))
     return out
 

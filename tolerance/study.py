@@ -245,8 +245,7 @@ class Reader:
     @staticmethod
     def _drift(reader: "Reader", name: str) -> float:
         """End-of-life drift: a relative figure such as 1% or 0.01 (below 50 %)."""
-        value = reader.quantity(name, "1", minimum=0.0, maximum=0.5)
-        return value
+        return reader.quantity(name, "1", minimum=0.0, maximum=0.5)
 
     def _distribution(self, unit, positive, minimum, maximum, default_distribution,
                       nominal_key) -> dist.Distribution:
