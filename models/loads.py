@@ -117,6 +117,13 @@ class LoadState(abc.ABC):
         """Load-specific metrics at the solved on-state (none for the base class)."""
         return {}
 
+    def voltage_guess(self, current) -> np.ndarray:
+        """Load voltage at which the load carries ``current`` [A] (a starting point for the
+        solvers, exact or close) [V]."""
+        i = _arr(current)
+        g = self.current(np.zeros_like(i))[1]
+        return i / g
+
     def demand(self, supply_voltage, vce) -> np.ndarray:
         """Current the load draws when the switch sits at ``vce`` [V] from ``supply_voltage`` [V].
 
@@ -161,6 +168,10 @@ class ResistorState(LoadState):
         g = 1.0 / self.resistance
         v = _arr(v)
         return v * g, np.broadcast_to(g, np.broadcast(v, g).shape).copy()
+
+    def voltage_guess(self, current):
+        """``i R(T)`` [V] (exact)."""
+        return _arr(current) * self.resistance
 
 
 class LampState(LoadState):
@@ -236,6 +247,15 @@ class LampState(LoadState):
         i = v * conductance
         di = conductance * (1.0 - slope * fp)
         return i, di
+
+    def voltage_guess(self, current):
+        """The cold resistance's voltage or the hot law's, whichever is larger [V] (exact away
+        from the blend near the crossover)."""
+        i = _arr(current)
+        cold = i * self.cold_resistance
+        hot = np.sign(i) * self.rated_voltage * (np.abs(i) / self.rated_current) ** (
+            1.0 / self.exponent)
+        return np.where(np.abs(hot) > np.abs(cold), hot, cold)
 
     def inrush_demand(self, supply_voltage) -> np.ndarray:
         """Current of the cold filament at switch-on, ``V_supply / R_cold`` [A]."""
@@ -314,6 +334,10 @@ class CoilState(LoadState):
         g = 1.0 / self.resistance
         v = _arr(v)
         return v * g, np.broadcast_to(g, np.broadcast(v, g).shape).copy()
+
+    def voltage_guess(self, current):
+        """``i R(T)`` [V] (exact)."""
+        return _arr(current) * self.resistance
 
     def stored_energy(self, current) -> np.ndarray:
         """Magnetic energy ``0.5 L I^2`` [J] at coil current ``current`` [A]."""
@@ -397,6 +421,14 @@ class LedState(LoadState):
         i = (a / r) * omega - i_s + LED_SHUNT_CONDUCTANCE * v
         di = omega / (r * (1.0 + omega)) + LED_SHUNT_CONDUCTANCE
         return i, di
+
+    def voltage_guess(self, current):
+        """The string law ``m n V_T ln(1 + i / I_s) + i R_S`` for ``i > 0`` (the shunt is
+        neglected), zero for ``i <= 0`` [V]."""
+        i = np.maximum(_arr(current), 0.0)
+        # ln(1 + i / I_s) = logaddexp(0, ln i - ln I_s), free of overflow
+        log_ratio = np.logaddexp(0.0, np.log(np.maximum(i, 1e-300)) - self.log_saturation_current)
+        return self.string_scale * log_ratio + i * self.series_resistance
 
     def metrics(self, v_on, i_on):
         """``led_current`` [A] (through the LEDs) and ``led_voltage`` (string) [V]."""

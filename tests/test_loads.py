@@ -428,3 +428,26 @@ def test_led_fit_impossible_is_nan():
     # flags the sample (project rule: a failed sample is flagged, never passed)
     i, di = state.current(np.array([5.0]))
     assert np.isnan(i).all() and np.isnan(di).all()
+
+
+@pytest.mark.parametrize("data", [COIL, RESISTOR, LED, LAMP], ids=["coil", "resistor", "led",
+                                                                  "lamp"])
+def test_voltage_guess_inverts_the_current_law(data):
+    """The solvers' starting points: the load voltage that carries a given current."""
+    state = state_of(data, n=5)
+    v = np.array([0.5, 3.0, 6.5, 9.0, 24.0])
+    i = state.current(v)[0]
+    guess = state.voltage_guess(i)
+    if data is LAMP:
+        # exact on the two straight pieces of ln R over ln V; the blend near the crossover
+        # (a quadratic join, see LampState) moves the inverse by a few percent there
+        assert_allclose(guess[-1], v[-1], rtol=1e-12)
+        assert np.all(np.abs(guess / v - 1) < 0.1)
+    elif data is LED:
+        # the string law inverted in closed form; the 1e-12 S shunt (neglected) only matters
+        # far below the knee, where the current is below a picoampere
+        on = i > 1e-9
+        assert_allclose(guess[on], v[on], rtol=1e-9)
+    else:
+        # Ohm's law, exact (rounding only)
+        assert_allclose(guess, v, rtol=1e-13)

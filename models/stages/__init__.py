@@ -493,6 +493,9 @@ class PairStage:
         make_off = lambda v, mode, target=None: self.system(  # noqa: E731
             q1_off, q2_off, load, vs, v, g_in, g_be1, g_be2, mode, target)
 
+        def circuit(v):
+            return {"v_in": v, "g_in": g_in, "g_be1": g_be1, "load": load}
+
         demand_guess = load.current(vs - 1.0)[0]
         on = make(v_high, "on")
         starts = self.guesses("on", q1, q2, vs, demand_guess, g_be2)
@@ -502,7 +505,8 @@ class PairStage:
 
         if not full:
             off = make_off(v_low, "on")
-            off_starts = self.guesses("off", q1_off, q2_off, vs, demand_guess, g_be2)
+            off_starts = self.guesses("off", q1_off, q2_off, vs, demand_guess, g_be2,
+                                      **circuit(v_low))
             r_off = solve_with_restarts(off, off_starts + [x_on], **opts)
             s_off = off.state(np.nan_to_num(r_off.x))
             return {"converged": r_on.converged & r_off.converged,
@@ -516,13 +520,15 @@ class PairStage:
         demand = load.current(vs - s_edge["v_out"])[0]
 
         off = make_off(v_low, "on")
-        off_starts = self.guesses("off", q1_off, q2_off, vs, demand_guess, g_be2)
+        off_starts = self.guesses("off", q1_off, q2_off, vs, demand_guess, g_be2,
+                                  **circuit(v_low))
         r_off = solve_with_restarts(off, off_starts + [x_on], **opts)
         s_off = off.state(np.nan_to_num(r_off.x))
 
         target = THRESHOLD_FRACTION * np.where(r_on.converged, s_on["i_out"], 1.0)
         thr = make_off(v_high, "threshold", target)
-        thr_starts = self.guesses("threshold", q1_off, q2_off, vs, target, g_be2)
+        thr_starts = self.guesses("threshold", q1_off, q2_off, vs, target, g_be2,
+                                  **circuit(v_high))
 
         def solve_threshold():
             r = solve_with_restarts(thr, thr_starts, slow=False, **opts)

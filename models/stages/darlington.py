@@ -123,25 +123,62 @@ class DarlingtonStage(PairStage):
         ground) [V]."""
         return state["v_b1"] - state["v_b2"], state["v_b2"]
 
-    def guesses(self, mode, q1, q2, vs, current, g_be2):
-        """Starting points (S, 4) for the ``on``, ``off`` and ``threshold`` solves."""
+    def guesses(self, mode, q1, q2, vs, current, g_be2, v_in=None, g_in=None, g_be1=None,
+                load=None):
+        """Starting points (S, 4) for the ``on``, ``off`` and ``threshold`` solves, best first.
+
+        With the circuit (``v_in``, ``g_in``, ``g_be1``, ``load``) the ``off`` guess is the
+        linear divider of RB, RBE1 and RBE2 with the junctions nearly open, the collector where
+        the load passes the collector-base leakage, and the ``threshold`` guess puts the
+        collector where the load carries the target ``current``.
+        """
         pol = q1.polarity
         n = vs.shape[0]
         if mode == "off":
             vbe = np.full(n, pol * 0.2)
-            return [np.stack([vbe, 2 * vbe - vs, vbe, vbe - vs], axis=1)]
+            plain = np.stack([vbe, 2 * vbe - vs, vbe, vbe - vs], axis=1)
+            if load is None:
+                return [plain]
+            return [self._off_guess(q1, q2, vs, g_be2, v_in, g_in, g_be1, load), plain]
+        vbe2 = vbe_guess(q2, current)
         vbe2 = vbe_guess(q2, current)
         # the driver carries the output's base current (at its ideal gain) and the current of
         # the output's base-emitter resistor
         vbe1 = vbe_guess(q1, np.abs(current) * q2.inv_forward_beta + np.abs(vbe2) * g_be2)
         if mode == "threshold":
+            half = np.stack([vbe1, vbe1 + vbe2 - 0.5 * vs, vbe2, vbe2 - 0.5 * vs], axis=1)
             vc = 0.9 * vs
-            return [np.stack([vbe1, vbe1 + vbe2 - vc, vbe2, vbe2 - vc], axis=1),
-                    np.stack([vbe1, vbe1 + vbe2 - 0.5 * vs, vbe2, vbe2 - 0.5 * vs], axis=1)]
-        vce1 = pol * 0.15
+            tenth = np.stack([vbe1, vbe1 + vbe2 - vc, vbe2, vbe2 - vc], axis=1)
+            if load is None:
+                return [tenth, half]
+            # the collector where the load carries the threshold current (above 0.5 V)
+            vc = np.maximum(vs - pol * load.voltage_guess(np.abs(current)), 0.5)
+            at_load = np.stack([vbe1, vbe1 + vbe2 - vc, vbe2, vbe2 - vc], axis=1)
+            return [at_load, tenth, half]
+        vce1 = pol * 0.02
         sat = np.stack([vbe1, vbe1 - vce1, vbe2, -vce1 * np.ones(n)], axis=1)
         act = np.stack([vbe1, vbe1 + vbe2 - 0.5 * vs, vbe2, vbe2 - 0.5 * vs], axis=1)
         return [sat, act]
+
+    @staticmethod
+    def _off_guess(q1, q2, vs, g_be2, v_in, g_in, g_be1, load):
+        """Off-state starting point: RB, RBE1 and RBE2 as a divider from the drive's low level,
+        each junction a 1 nS leak, the output's collector-base leakage into its base node;
+        junction voltages capped where the junction would carry that leakage; the collector
+        where the load passes the leakage of both transistors."""
+        leak = 1e-9
+        g1 = g_be1 + leak
+        g2 = g_be2 + leak
+        chain = v_in / (1.0 / g_in + 1.0 / g1 + 1.0 / g2)  # divider current [A]
+        i_cbo = np.abs(q1.cbo_leakage) + np.abs(q2.cbo_leakage) + 1e-12
+        cap1 = np.abs(vbe_guess(q1, i_cbo))
+        cap2 = np.abs(vbe_guess(q2, i_cbo))
+        pol = q1.polarity
+        vbe1 = np.minimum(pol * chain / g1, cap1)
+        vbe2 = np.minimum(pol * chain / g2 + np.abs(q2.cbo_leakage) / g2, cap2)
+        vc = vs - pol * load.voltage_guess(i_cbo)
+        vbe1, vbe2 = pol * vbe1, pol * vbe2
+        return np.stack([vbe1, vbe1 + vbe2 - vc, vbe2, vbe2 - vc], axis=1)
 
 
 def _read_internal(part: Reader, entry, name: str) -> tuple[ResistorPart, ResistorPart]:

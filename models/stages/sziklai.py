@@ -112,8 +112,9 @@ class SziklaiStage(PairStage):
         the output node) [V]."""
         return state["v_b1"], state["v_out"] - state["v_b2"]
 
-    def guesses(self, mode, q1, q2, vs, current, g_be2):
-        """Starting points (S, 4) for the ``on``, ``off`` and ``threshold`` solves."""
+    def guesses(self, mode, q1, q2, vs, current, g_be2, **circuit):
+        """Starting points (S, 4) for the ``on``, ``off`` and ``threshold`` solves (the
+        circuit's drive and conductances, ``circuit``, are not needed here)."""
         n = vs.shape[0]
         if mode == "off":
             vbe1 = np.full(n, 0.2)
