@@ -112,24 +112,48 @@ class SziklaiStage(PairStage):
         the output node) [V]."""
         return state["v_b1"], state["v_out"] - state["v_b2"]
 
-    def guesses(self, mode, q1, q2, vs, current, g_be2, **circuit):
-        """Starting points (S, 4) for the ``on``, ``off`` and ``threshold`` solves (the
-        circuit's drive and conductances, ``circuit``, are not needed here)."""
+    def guesses(self, mode, q1, q2, vs, current, g_be2, v_in=None, g_in=None, g_be1=None,
+                load=None):
+        """Starting points (S, 4) for the ``on``, ``off`` and ``threshold`` solves, best first.
+
+        With the circuit (``v_in``, ``g_in``, ``g_be1``, ``load``) the ``off`` guess is the
+        driver's base divider (RB, RBE1, the junction a 1 nS leak), the output node where the
+        load passes the collector-base leakage and the output's base at its emitter; the
+        ``threshold`` guess puts the output node where the load carries the target
+        ``current``.
+        """
         n = vs.shape[0]
         if mode == "off":
             vbe1 = np.full(n, 0.2)
             # Q2's base and emitter near the supply, its collector at ground
-            return [np.stack([vbe1, vbe1 - vs, np.zeros(n), vs], axis=1)]
+            plain = np.stack([vbe1, vbe1 - vs, np.zeros(n), vs], axis=1)
+            if load is None:
+                return [plain]
+            i_cbo = np.abs(q1.cbo_leakage) + np.abs(q2.cbo_leakage) + 1e-12
+            leak = 1e-9
+            vbe1 = np.minimum(v_in * g_in / (g_in + g_be1 + leak), vbe_guess(q1, i_cbo))
+            v_out = vs - load.voltage_guess(i_cbo)
+            # Q1's leakage through RBE2, or through Q2's emitter junction without it (PNP:
+            # negative)
+            vbe2 = np.maximum(-np.abs(q1.cbo_leakage) / (g_be2 + leak), vbe_guess(q2, i_cbo))
+            v_b2 = v_out + vbe2
+            return [np.stack([vbe1, vbe1 - v_b2, vbe2, v_b2], axis=1), plain]
         vbe2 = vbe_guess(q2, current)  # negative: PNP
         # the driver carries the output's base current (at its ideal gain) and the current of
         # the output's base-emitter resistor
         vbe1 = vbe_guess(q1, np.abs(current) * q2.inv_forward_beta + np.abs(vbe2) * g_be2)
         if mode == "threshold":
+            half = np.stack([vbe1, vbe1 - 0.5 * vs, vbe2, 0.5 * vs], axis=1)
             v_out = 0.9 * vs
             v_b2 = v_out + vbe2
-            return [np.stack([vbe1, vbe1 - v_b2, vbe2, v_b2], axis=1),
-                    np.stack([vbe1, vbe1 - 0.5 * vs, vbe2, 0.5 * vs], axis=1)]
-        vce1 = 0.15
+            tenth = np.stack([vbe1, vbe1 - v_b2, vbe2, v_b2], axis=1)
+            if load is None:
+                return [tenth, half]
+            # the output node where the load carries the threshold current (above 0.5 V)
+            v_out = np.maximum(vs - load.voltage_guess(np.abs(current)), 0.5)
+            v_b2 = v_out + vbe2
+            return [np.stack([vbe1, vbe1 - v_b2, vbe2, v_b2], axis=1), tenth, half]
+        vce1 = 0.05
         sat = np.stack([vbe1, vbe1 - vce1, vbe2, np.full(n, vce1)], axis=1)
         act = np.stack([vbe1, vbe1 - 0.5 * vs, vbe2, 0.5 * vs], axis=1)
         return [sat, act]
