@@ -79,7 +79,7 @@ import numpy as np
 from tolerance.models.charges import ChargeParameters, stored_charges
 from tolerance.models.loads import LoadState
 from tolerance.models.newton import newton_solve
-from tolerance.models.transient import Observation, TransientResult, integrate
+from tolerance.models.transient import SETTLED, Observation, TransientResult, integrate
 from tolerance.models.transistor import (
     ScaledTransistor,
     critical_voltage,
@@ -184,7 +184,8 @@ class StageCircuit:
     """
 
     def __init__(self, topology, devices, n_unknowns, switch_node, coil_index, drive,
-                 resistors, load, supply, merged_resistance, avalanche, x_final, settle_scale):
+                 resistors, load, supply, merged_resistance, avalanche, x_final, settle_scale,
+                 ringing=None):
         self.topology = topology
         self.devices: list[_Device] = devices
         self.n_unknowns = n_unknowns
@@ -198,6 +199,7 @@ class StageCircuit:
         self.avalanche = avalanche  # dict or None
         self.x_final = x_final
         self.settle_scale = settle_scale
+        self.ringing = ringing  # dict or None: see settled()
 
     # -- ChargeSystem -------------------------------------------------------------------------
     def subset(self, idx):
@@ -211,7 +213,8 @@ class StageCircuit:
             self.switch_node, self.coil_index, {k: _take(v, idx) for k, v in self.drive.items()},
             [(a, b, _take(g, idx)) for a, b, g in self.resistors], load,
             _take(self.supply, idx), _take(self.merged_resistance, idx), aval,
-            _take(self.x_final, idx), _take(self.settle_scale, idx))
+            _take(self.x_final, idx), _take(self.settle_scale, idx),
+            None if self.ringing is None else {k: _take(v, idx) for k, v in self.ringing.items()})
 
     def drive_voltage(self, t):
         """Thevenin voltage of the drive at the input transistor's base [V] at times ``t``."""
@@ -368,8 +371,84 @@ class StageCircuit:
         return Observation(isw, p, vsw + r * isw)
 
     def settled(self, x):
-        """Every unknown within its settling scale of the final DC state."""
-        return np.all(np.abs(x - self.x_final) <= self.settle_scale, axis=1)
+        """Every unknown within its settling scale of the final DC state, or (a coil load)
+        only the switch node still ringing with too little energy to change a metric.
+
+        The second case is the coil's free oscillation with the switch node's capacitance
+        after a turn-off: every other unknown (the coil current too) is settled, no junction,
+        clamp or avalanche conducts more than ``ringing["current"]``, so the transistors are
+        cut off and the oscillation only exchanges energy with the winding and the supply
+        (what a cut-off device can still take is bounded separately, to a thousandth of
+        that).
+        Its energy ``0.5 dv' C dv + 0.5 L di^2`` (``dv``, ``di``: distance of the node
+        voltages and the coil current from the final state, ``C`` the node capacitances there)
+        plus the supply's share ``V_S |(C dv)_switch|`` bounds what the rest of the run can
+        still add to any energy metric, and ``ringing["energy"]`` bounds that; the switch
+        node's amplitude it allows stays below the clamp and breakdown conduction and does
+        not forward-bias a junction at the switch node (checked), so the peak voltage is
+        final.
+        """
+        near = np.abs(x - self.x_final) <= self.settle_scale
+        plain = np.all(near, axis=1)
+        rg = self.ringing
+        if rg is None:
+            return plain
+        sw, k = self.switch_node, self.coil_index
+        cand = near[:, k] & ~plain
+        if not np.any(cand):
+            return plain
+        energy, dq_sw = self.ringing_energy(x)
+        di = x[:, k] - self.x_final[:, k]
+        bound = energy + np.abs(self.supply * dq_sw)
+        ok = cand & (bound <= rg["energy"])
+        cap = rg["capacitance"][:, sw, sw]
+        # the largest swing the remaining energy allows must not reach a conduction level
+        amp = np.sqrt(2.0 * energy / cap)
+        reach = self.x_final[:, sw] + amp
+        i_max = rg["current"]
+        i_dev = np.zeros(x.shape[0])
+        for d, dev in enumerate(self.devices):
+            pol = dev.scaled.polarity
+            i_s = dev.scaled.saturation_current
+            i_dev = i_dev + np.abs(rg["collector"][:, d])
+            for other, nvt in ((dev.e, dev.nvt_f), (dev.c, dev.nvt_r)):
+                if other == sw:  # its most forward bias over the swing
+                    vj = pol * (_node(x, dev.b) - self.x_final[:, sw]) + amp
+                else:
+                    vj = pol * (_node(x, dev.b) - _node(x, other))
+                i_j = i_s * np.exp(np.minimum(vj / nvt, 80.0))
+                ok &= i_j <= i_max
+                i_dev = i_dev + i_j
+        ld = self.load
+        # a cut-off device carries its final current (leakage) plus at most the junction
+        # currents above, so its power moves with v (v - v_final) times that current, whose
+        # integral over the rest of the run follows from the winding (L di/dt = -dv - R di):
+        # |int dv dt| <= L |di| + R |dq| with dq the charge the coil still moves into the
+        # switch node (to first order in the swing: the device current's own dependence on it,
+        # the Early effect, adds a second-order share that this does not bound; up to 7e-4
+        # of the turn-off energy in the example studies)
+        flux = ld["inductance"] * np.abs(di) + ld["resistance"] * np.abs(dq_sw)
+        ok &= i_dev * flux <= 1e-3 * rg["energy"]
+        if ld["clamp"] != "none":
+            ic, _ = self._clamp(reach)
+            ok &= ic <= i_max
+        if self.avalanche is not None:
+            _, iav, _ = self._avalanche(np.where(np.arange(x.shape[1]) == sw, reach[:, None], x))
+            ok &= iav <= i_max
+        return plain | ok
+
+    def ringing_energy(self, x):
+        """Energy of a coil circuit relative to its final state [J], ``0.5 dv' C dv +
+        0.5 L di^2`` with the node capacitances ``C`` of the final state, and the charge the
+        switch node holds above its final charge, ``(C dv)_switch`` [C] (see settled())."""
+        rg, k = self.ringing, self.coil_index
+        dx = x - self.x_final
+        dx[:, k] = 0.0
+        dq = np.einsum("sij,sj->si", rg["capacitance"], dx)  # the coil's row and column are 0
+        di = x[:, k] - self.x_final[:, k]
+        energy = (0.5 * np.abs(np.einsum("si,si->s", dx, dq))
+                  + 0.5 * self.load["inductance"] * di * di)
+        return energy, dq[:, self.switch_node]
 
     def limit(self, x_new, x_old):
         """Scale the update so that no junction exceeds the classical junction limit."""
@@ -623,8 +702,18 @@ def simulate_switching(topology, devices, resistors, drive, supply, load_state, 
 
     # final powers and switch currents
     t_inf = np.full(2 * s, np.inf)
-    *_, aux_final = circuit.evaluate(t_inf, circuit.x_final)
+    _, _, _, dq_final, aux_final = circuit.evaluate(t_inf, circuit.x_final)
     obs_final = circuit.observe(t_inf, circuit.x_final, aux_final)
+    if coil_index >= 0:
+        # the ringing end of a run (StageCircuit.settled): 1 % of the relative tolerance of
+        # the coil's stored energy (the scale of the turn-off energies of clamp, winding and
+        # supply), and cut-off below 1e-6 of the on-current
+        circuit.ringing = {
+            "capacitance": np.where(np.arange(n) == coil_index, 0.0, dq_final),
+            "energy": (1e-2 * relative_tolerance * 0.5 * ind * i_ref**2)[two],
+            "current": (1e-6 * i_ref)[two],
+            "collector": aux_final,
+        }
     i_on = obs_final.current[:s]
     i_off = obs_final.current[s:]
     swing = i_on - i_off
@@ -667,6 +756,19 @@ def simulate_switching(topology, devices, resistors, drive, supply, load_state, 
                        breakpoints=bps, event_levels=levels, event_directions=dirs,
                        initial_step=h0[two], record=rec, max_steps=max_steps)
 
+    if circuit.ringing is not None:
+        # a run that ended on the ringing rule (StageCircuit.settled) still holds a little
+        # energy: the coil still moves the switch node's excess charge, which the supply
+        # delivers at V_S, and the winding dissipates that work plus the stored energy
+        # (conservation of charge and energy; the cut-off devices' share is bounded there)
+        xe = result.final_state
+        ringing = (result.status == SETTLED) & ~np.all(
+            np.abs(xe - circuit.x_final) <= circuit.settle_scale, axis=1)
+        if np.any(ringing):
+            energy, dq_sw = circuit.ringing_energy(xe)
+            work = -circuit.supply * dq_sw
+            result.integrals[:, _P_SUPPLY] += np.where(ringing, work, 0.0)
+            result.integrals[:, _P_LOAD] += np.where(ringing, energy + work, 0.0)
     ok_run = ok0 & result.ok & np.all(np.isfinite(result.event_times), axis=1)
     converged = ok_run[:s] & ok_run[s:]
     t50 = 0.5 * edge
@@ -747,7 +849,10 @@ def switching_metrics(topology, devices, resistors, drive, supply, load_state, t
         tolerance times each node's off-state capacitance; ``time_limit`` [s] per sample
         (default 1 ms, or 60 coil time constants if longer); ``settle_voltage`` [V] (default
         2 mV): a run ends once every node is this close to its final DC state (coil currents:
-        0.1 % of the on-current) and both events have been seen. A sample whose run does not
+        0.1 % of the on-current) and both events have been seen, or (a coil load) once only
+        the coil's free oscillation with the switch node's capacitance is left, with too
+        little energy to change a metric (``StageCircuit.settled``; the charge and energy it
+        still holds are added to the supply's and the winding's energies). A sample whose run does not
         see both events within the time limit is not converged.
 
 
