@@ -852,8 +852,8 @@ def switching_metrics(topology, devices, resistors, drive, supply, load_state, t
         0.1 % of the on-current) and both events have been seen, or (a coil load) once only
         the coil's free oscillation with the switch node's capacitance is left, with too
         little energy to change a metric (``StageCircuit.settled``; the charge and energy it
-        still holds are added to the supply's and the winding's energies). A sample whose run does not
-        see both events within the time limit is not converged.
+        still holds are added to the supply's and the winding's energies). A sample whose run
+        does not see both events within the time limit is not converged.
 
 
     Returns

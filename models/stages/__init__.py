@@ -48,6 +48,7 @@ from tolerance.study import Reader
 
 __all__ = [
     "COMMON_METRICS",
+    "JUNCTION_LEAK",
     "LOOP_CONDUCTANCE",
     "Environment",
     "ResistorPart",
@@ -60,6 +61,8 @@ __all__ = [
 
 #: scale of voltage-balance equations [S]: 1 nV of imbalance counts as 1 pA of residual
 LOOP_CONDUCTANCE = 1e-3
+#: conductance standing for a nearly open junction in the off-state starting points [S]
+JUNCTION_LEAK = 1e-9
 #: fraction of the on-state load current that defines the switching threshold of off_margin
 THRESHOLD_FRACTION = 0.01
 

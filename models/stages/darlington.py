@@ -39,6 +39,7 @@ import numpy as np
 
 from tolerance.models.parts import library, read_transistor
 from tolerance.models.stages import (
+    JUNCTION_LEAK,
     LOOP_CONDUCTANCE,
     PairStage,
     PairSystem,
@@ -141,7 +142,6 @@ class DarlingtonStage(PairStage):
                 return [plain]
             return [self._off_guess(q1, q2, vs, g_be2, v_in, g_in, g_be1, load), plain]
         vbe2 = vbe_guess(q2, current)
-        vbe2 = vbe_guess(q2, current)
         # the driver carries the output's base current (at its ideal gain) and the current of
         # the output's base-emitter resistor
         vbe1 = vbe_guess(q1, np.abs(current) * q2.inv_forward_beta + np.abs(vbe2) * g_be2)
@@ -166,9 +166,8 @@ class DarlingtonStage(PairStage):
         each junction a 1 nS leak, the output's collector-base leakage into its base node;
         junction voltages capped where the junction would carry that leakage; the collector
         where the load passes the leakage of both transistors."""
-        leak = 1e-9
-        g1 = g_be1 + leak
-        g2 = g_be2 + leak
+        g1 = g_be1 + JUNCTION_LEAK
+        g2 = g_be2 + JUNCTION_LEAK
         chain = v_in / (1.0 / g_in + 1.0 / g1 + 1.0 / g2)  # divider current [A]
         i_cbo = np.abs(q1.cbo_leakage) + np.abs(q2.cbo_leakage) + 1e-12
         cap1 = np.abs(vbe_guess(q1, i_cbo))

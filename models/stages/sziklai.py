@@ -29,6 +29,7 @@ import numpy as np
 
 from tolerance.models.parts import read_transistor
 from tolerance.models.stages import (
+    JUNCTION_LEAK,
     LOOP_CONDUCTANCE,
     PairStage,
     PairSystem,
@@ -130,12 +131,13 @@ class SziklaiStage(PairStage):
             if load is None:
                 return [plain]
             i_cbo = np.abs(q1.cbo_leakage) + np.abs(q2.cbo_leakage) + 1e-12
-            leak = 1e-9
-            vbe1 = np.minimum(v_in * g_in / (g_in + g_be1 + leak), vbe_guess(q1, i_cbo))
+            vbe1 = np.minimum(v_in * g_in / (g_in + g_be1 + JUNCTION_LEAK),
+                              vbe_guess(q1, i_cbo))
             v_out = vs - load.voltage_guess(i_cbo)
             # Q1's leakage through RBE2, or through Q2's emitter junction without it (PNP:
             # negative)
-            vbe2 = np.maximum(-np.abs(q1.cbo_leakage) / (g_be2 + leak), vbe_guess(q2, i_cbo))
+            vbe2 = np.maximum(-np.abs(q1.cbo_leakage) / (g_be2 + JUNCTION_LEAK),
+                              vbe_guess(q2, i_cbo))
             v_b2 = v_out + vbe2
             return [np.stack([vbe1, vbe1 - v_b2, vbe2, v_b2], axis=1), plain]
         vbe2 = vbe_guess(q2, current)  # negative: PNP
