@@ -75,7 +75,7 @@ from dataclasses import dataclass, fields, replace
 
 import numpy as np
 
-from tolerance.models.transistor import ScaledTransistor, thermal_voltage
+from tolerance.models.transistor import ScaledTransistor, Transport, thermal_voltage
 
 __all__ = [
     "CHARGE_CLASS_DEFAULTS",
@@ -265,7 +265,8 @@ def depletion_charge(v, zero_bias_capacitance, built_in_voltage, grading, fracti
     return q, c
 
 
-def stored_charges(p: ScaledTransistor, c: ChargeParameters, v_be, v_bc) -> StoredCharges:
+def stored_charges(p: ScaledTransistor, c: ChargeParameters, v_be, v_bc,
+                   transport: Transport | None = None) -> StoredCharges:
     """Junction charges of a transistor and their derivatives.
 
     Parameters
@@ -276,6 +277,10 @@ def stored_charges(p: ScaledTransistor, c: ChargeParameters, v_be, v_bc) -> Stor
         Charge parameters (scalars or arrays matching the samples).
     v_be, v_bc : ndarray
         Intrinsic junction voltages in the actual sign (negative for a conducting PNP) [V].
+    transport : Transport, optional
+        The transport terms of :func:`~tolerance.models.transistor.junction_currents` at the
+        same voltages (``JunctionCurrents.transport``); given, the exponentials and q_b are
+        taken from there instead of being evaluated again.
 
     Returns
     -------
@@ -298,7 +303,24 @@ def stored_charges(p: ScaledTransistor, c: ChargeParameters, v_be, v_bc) -> Stor
     qbc = zero
     dbc_bc = zero
     i_s = p.saturation_current
-    if not _is_zero(tf):
+    if transport is not None:
+        if not _is_zero(tf):
+            t = transport
+            if t.base_charge is None:
+                qf = tf * t.forward
+                dbe_be = tf * t.dforward
+            else:
+                inv_qb = 1.0 / t.base_charge
+                qf = tf * t.forward * inv_qb
+                dbe_be = (tf * t.dforward * inv_qb if t.dbase_charge_dvbe is None else
+                          tf * (t.dforward - t.forward * inv_qb * t.dbase_charge_dvbe) * inv_qb)
+                if t.dbase_charge_dvbc is not None:
+                    dbe_bc = -qf * inv_qb * t.dbase_charge_dvbc
+            qbe = qbe + qf
+        if not _is_zero(tr):
+            qbc = qbc + tr * transport.reverse
+            dbc_bc = dbc_bc + tr * transport.dreverse
+    elif not _is_zero(tf):
         ef, def_ = _exp_lin(vbe * p.inv_forward_nvt)
         i_f = i_s * (ef - 1.0)
         gf = i_s * def_ * p.inv_forward_nvt
@@ -337,7 +359,7 @@ def stored_charges(p: ScaledTransistor, c: ChargeParameters, v_be, v_bc) -> Stor
             qf = tf * i_f
             dbe_be = tf * gf
         qbe = qbe + qf
-    if not _is_zero(tr):
+    if transport is None and not _is_zero(tr):
         er, der = _exp_lin(vbc * p.inv_reverse_nvt)
         qbc = qbc + tr * p.saturation_current * (er - 1.0)
         dbc_bc = dbc_bc + tr * p.saturation_current * der * p.inv_reverse_nvt

@@ -281,7 +281,7 @@ class StageCircuit:
             vbe = np.broadcast_to(vb - ve, (w,))
             vbc = np.broadcast_to(vb - vc, (w,))
             jc = junction_currents(dev.scaled, vbe, vbc)
-            ch = stored_charges(dev.scaled, dev.charges, vbe, vbc)
+            ch = stored_charges(dev.scaled, dev.charges, vbe, vbc, jc.transport)
             b, c, e = dev.b, dev.c, dev.e
             _stamp(f, df, c, jc.collector, jc.dcollector_dvbe, jc.dcollector_dvbc, b, c, e)
             _stamp(f, df, b, jc.base, jc.dbase_dvbe, jc.dbase_dvbc, b, c, e)

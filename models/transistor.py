@@ -76,7 +76,7 @@ from dataclasses import dataclass, fields, replace
 
 import numpy as np
 
-__all__ = [
+__all__ = ["Transport", 
     "BOLTZMANN",
     "ELEMENTARY_CHARGE",
     "REFERENCE_TEMPERATURE",
@@ -278,9 +278,26 @@ class ScaledTransistor:
 
 
 @dataclass(frozen=True)
+class Transport:
+    """The transport terms behind :class:`JunctionCurrents`, in the NPN sense (mirrored
+    voltages for a PNP), for the charge model to reuse: I_F, I_R [A] and their derivatives
+    dI_F/dV_BE, dI_R/dV_BC [S], the base charge q_b [1] and its derivatives [1/V]. ``None``
+    is a structural value: q_b = 1 or a zero derivative."""
+
+    forward: np.ndarray
+    dforward: np.ndarray
+    reverse: np.ndarray
+    dreverse: np.ndarray
+    base_charge: np.ndarray | None
+    dbase_charge_dvbe: np.ndarray | None
+    dbase_charge_dvbc: np.ndarray | None
+
+
+@dataclass(frozen=True)
 class JunctionCurrents:
     """Currents into the collector and base terminals of the intrinsic transistor [A] and
-    their partial derivatives with respect to the intrinsic junction voltages [S]."""
+    their partial derivatives with respect to the intrinsic junction voltages [S]; the
+    transport terms they came from ride along (:class:`Transport`)."""
 
     collector: np.ndarray
     base: np.ndarray
@@ -288,6 +305,7 @@ class JunctionCurrents:
     dcollector_dvbc: np.ndarray
     dbase_dvbe: np.ndarray
     dbase_dvbc: np.ndarray
+    transport: Transport | None = None
 
     @property
     def emitter_out(self):
@@ -426,7 +444,8 @@ def junction_currents(p: ScaledTransistor, v_be, v_bc) -> JunctionCurrents:
     if pol == -1:
         ic = -ic
         ib = -ib
-    return JunctionCurrents(ic, ib, dic_be, dic_bc, dib_be, dib_bc)
+    return JunctionCurrents(ic, ib, dic_be, dic_bc, dib_be, dib_bc,
+                            Transport(i_f, gf, i_r, gr, qb, dqb_be, dqb_bc))
 
 
 @dataclass(frozen=True)
