@@ -174,6 +174,24 @@ def _led_reference(v, count, vf25, i_test, n, tempco, r, temperature):
     return i + loads.LED_SHUNT_CONDUCTANCE * v
 
 
+def test_wright_omega_against_scipy():
+    from scipy import special
+
+    y = np.concatenate([np.linspace(-700.0, -1.0, 20001), np.linspace(-3.0, 3.0, 20001),
+                        np.linspace(-2.001, -1.999, 101), np.linspace(0.999, 1.001, 101),
+                        np.linspace(1.0, 1e4, 20001), np.geomspace(1.0, 1e15, 2001)])
+    w = loads.wright_omega(y)
+    # reference library: scipy.special.wrightomega, the same function; the region borders of
+    # the starting values (-2 and 1) are covered densely
+    assert_allclose(w, special.wrightomega(y), rtol=1e-14, atol=0)
+    # the defining equation w + ln w = y (Corless et al. 1996), checked where it is well
+    # conditioned
+    mid = np.abs(y) < 1e6
+    assert_allclose(w[mid] + np.log(w[mid]), y[mid], rtol=1e-13, atol=1e-13)
+    # below the range of exp() the function is exp(y), i.e. zero in floating point
+    assert np.all(loads.wright_omega(np.array([-800.0, -1e4])) == 0.0)
+
+
 def test_led_string_against_brentq():
     data = {**LED, "forward_voltage": {"nominal": "2.1 V", "tolerance": "8%"},
             "series_resistance": {"nominal": "330R", "tolerance": "5%", "distribution": "uniform"},
