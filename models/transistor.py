@@ -108,8 +108,11 @@ def thermal_voltage(temperature):
 
 
 def _exp_lin(arg):
-    """exp(arg) and its derivative, continued linearly above ``_EXP_MAX`` (C1)."""
-    if np.max(arg) > _EXP_MAX:
+    """exp(arg) and its derivative, continued linearly above ``_EXP_MAX`` (C1).
+
+    The test is element-wise (``np.any``, not ``np.max``, which a NaN of another sample would
+    turn false): a sample's value never depends on the others of its batch."""
+    if np.any(arg > _EXP_MAX):
         big = arg > _EXP_MAX
         e = np.exp(np.minimum(arg, _EXP_MAX))
         value = np.where(big, e * (1.0 + (arg - _EXP_MAX)), e)
@@ -376,7 +379,7 @@ def junction_currents(p: ScaledTransistor, v_be, v_bc) -> JunctionCurrents:
             den = den - vbc * p.inv_early
         if has_vb:
             den = den - vbe * p.inv_reverse_early
-        if np.min(den) < _Q1_DENOMINATOR_MIN:
+        if np.any(den < _Q1_DENOMINATOR_MIN):  # element-wise: NaN-proof, see _exp_lin
             dmin = _Q1_DENOMINATOR_MIN
             small = den < dmin
             q1 = np.where(small, (2.0 * dmin - den) / dmin**2, 1.0 / np.where(small, 1.0, den))

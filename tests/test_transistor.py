@@ -88,6 +88,22 @@ def test_derivatives_in_the_continued_regions():
         _close(getattr(c, attr), (up.collector - dn.collector) / (2 * h), c.collector, 1e-5)
 
 
+def test_a_nan_sample_leaves_the_others_of_its_batch_alone():
+    # vectorized evaluation is per sample (common practice, no source): a sample in a
+    # continued region (exp above 80, q1 denominator below 0.1) gets the same currents
+    # whether or not another sample of the batch is NaN (a batch-wide max or min test would
+    # let the NaN switch the continuation off for everyone)
+    p = TransistorParameters(**dict(FULL, early_voltage=1.0, reverse_early_voltage=np.inf))
+    vbe = np.array([3.0, 0.5, np.nan])
+    vbc = np.array([-0.2, 0.95, np.nan])
+    with np.errstate(invalid="ignore"):
+        mixed = junction_currents(p.at_temperature(np.full(3, 300.0)), vbe, vbc)
+    alone = junction_currents(p.at_temperature(np.full(2, 300.0)), vbe[:2], vbc[:2])
+    for name in ("collector", "base", "dcollector_dvbe", "dcollector_dvbc", "dbase_dvbe",
+                 "dbase_dvbc"):
+        assert np.array_equal(getattr(mixed, name)[:2], getattr(alone, name)), name
+
+
 def test_ebers_moll_transport_limit():
     # Ebers & Moll (1954), transport form: I_C = I_S (e^(V_BE/V_T) - e^(V_BC/V_T))
     # - (I_S/beta_R)(e^(V_BC/V_T) - 1), I_B = (I_S/beta_F)(e^(V_BE/V_T) - 1)
