@@ -3,12 +3,18 @@
 from __future__ import annotations
 
 import itertools
+import threading
 
 import numpy as np
 import pytest
 
 from tolerance.worstcase import (
     Bound,
+    _evaluate,
+    _Lockstep,
+    _optimize,
+    _SearchGroup,
+    _start_searches,
     combine_tolerances,
     extreme_value,
     optimize_extreme,
@@ -251,3 +257,195 @@ def test_combine_tolerances_arithmetic():
     assert combine_tolerances(0.03, 0.04, method="rss") == pytest.approx(0.05, abs=1e-15)
     with pytest.raises(ValueError):
         combine_tolerances(0.01, method="sum")
+
+
+# Non-monotonic metrics of four varying parameters and a fixed one, elementwise over samples
+# (every sample's value is independent of the batch it is in), so the searches differ in
+# length and some extremes lie inside the box.
+WAVY_BOUNDS = [
+    Bound("a", 0.4, 0.0, 1.0),
+    Bound("b", 0.0, -1.0, 1.0),
+    Bound("c", 1.0, 0.5, 2.0),
+    Bound("g", 3.0, 3.0, 3.0),
+    Bound("e", 0.2, -1.0, 1.0),
+]
+WAVY_METRICS = ["ripple", "bowl", "ratio"]
+
+
+def wavy_model(s):
+    a, b, c, g, e = s["a"], s["b"], s["c"], s["g"], s["e"]
+    return {
+        "ripple": np.sin(g * a) * np.cos(2.0 * b) + (c - 1.2) ** 2 - 0.3 * e,
+        "bowl": (a - 0.3) ** 2 + np.exp(b * c) - (e - 0.1) ** 2,
+        "ratio": a * b / (1.0 + c**2) + e**3 - 0.5 * e,
+    }
+
+
+class CountingModel:
+    """Wraps a model; counts its calls and the largest batch it was given."""
+
+    def __init__(self, model, fail_on=None):
+        self.model = model
+        self.fail_on = fail_on
+        self.calls = 0
+        self.largest = 0
+
+    def __call__(self, samples):
+        self.calls += 1
+        if self.calls == self.fail_on:
+            raise ModelFailure(f"model failed on call {self.calls}")
+        self.largest = max(self.largest, len(next(iter(samples.values()))))
+        return self.model(samples)
+
+
+class ModelFailure(RuntimeError):
+    pass
+
+
+def _groups(seed, starts, metrics=WAVY_METRICS):
+    """The search groups worst_case_table builds: same child seeds and vertex starts."""
+    eva = extreme_value(wavy_model, WAVY_BOUNDS, metrics)
+    children = np.random.SeedSequence(seed).spawn(2 * len(metrics))
+    return [
+        _SearchGroup(
+            m, sense, starts, np.random.default_rng(children[2 * k + j]), eva[m]["arg" + sense]
+        )
+        for k, m in enumerate(metrics)
+        for j, sense in enumerate(("min", "max"))
+    ]
+
+
+def _sequential(model, group, maxiter):
+    """Every start of one group run alone, one after the other, without threads; one
+    running best over all starts (first strictly better value kept)."""
+    searches = _start_searches(WAVY_BOUNDS, group)
+    best = {"f": np.inf, "y": float("nan"), "x": np.array([b.nominal for b in WAVY_BOUNDS])}
+    calls = []
+    for search in searches:
+        before = model.calls
+        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+            search.run(lambda xs: _evaluate(model, WAVY_BOUNDS, xs, [group.metric])[0][
+                group.metric], maxiter)
+        calls.append(model.calls - before)
+        if search.best_f < best["f"]:
+            best.update(f=search.best_f, y=search.best_y, x=search.best_x)
+    at = {b.name: float(v) for b, v in zip(WAVY_BOUNDS, best["x"])}
+    evaluations = sum(s.evaluations for s in searches)
+    return {"value": best["y"], "at": at, "evaluations": evaluations, "calls": calls}
+
+
+def test_lockstep_table_equals_searches_run_one_after_the_other():
+    seed, starts, maxiter = 11, 4, 40
+    model = CountingModel(wavy_model)
+    table = worst_case_table(model, WAVY_BOUNDS, WAVY_METRICS, seed=seed, starts=starts,
+                             maxiter=maxiter)
+    d = 4  # varying parameters
+    # common practice, no source: the lockstep batches really mixed several searches' blocks
+    assert model.largest > d + 1
+    eva_rss = (2**d + 1) + (2 * len(WAVY_BOUNDS) + 1)
+    total = eva_rss
+    # two sets of groups: drawing the random starts consumes a group's generator
+    for group, fresh in zip(_groups(seed, starts), _groups(seed, starts)):
+        alone = _sequential(CountingModel(wavy_model), group, maxiter)
+        single = _optimize(wavy_model, WAVY_BOUNDS, fresh.metric, fresh.sense, starts,
+                           fresh.rng, maxiter, fresh.vertex)
+        row = table[group.metric]
+        # common practice, no source: each search's points depend only on its own values and
+        # the model is evaluated per sample, so lockstep and sequential runs agree exactly
+        assert row["opt_" + group.sense] == alone["value"] == single["value"]
+        assert row["opt_arg" + group.sense] == alone["at"] == single["at"]
+        # common practice, no source: per-start sample counts do not depend on batching
+        assert single["evaluations"] == alone["evaluations"]
+        assert single["starts"] == len(alone["calls"]) == starts
+        total += alone["evaluations"]
+    # common practice, no source: the reported total is the sequential total
+    assert table["evaluations"] == total
+
+
+def test_lockstep_needs_the_calls_of_the_longest_start_not_their_sum():
+    seed, starts, maxiter = 11, 3, 40
+    model = CountingModel(wavy_model)
+    worst_case_table(model, WAVY_BOUNDS, WAVY_METRICS, seed=seed, starts=starts,
+                     maxiter=maxiter)
+    per_start = []
+    for group in _groups(seed, starts):
+        per_start.extend(_sequential(CountingModel(wavy_model), group, maxiter)["calls"])
+    assert len(per_start) == len(WAVY_METRICS) * 2 * starts
+    # common practice, no source: one EVA batch, one RSS batch, then one model call per
+    # lockstep round, and every live start submits once per round, so the rounds are the
+    # objective calls of the longest start
+    assert model.calls == 2 + max(per_start)
+    # common practice, no source: far below the sequential count, 2 + the sum over starts
+    assert 3 * model.calls < 2 + sum(per_start)
+    single = CountingModel(wavy_model)
+    group = _groups(seed, starts)[0]
+    _optimize(single, WAVY_BOUNDS, group.metric, group.sense, starts, group.rng, maxiter,
+              group.vertex)
+    # common practice, no source: one group alone also needs the calls of its longest start
+    assert single.calls == max(per_start[:starts])
+
+
+def _run_in_thread(fn):
+    """Run fn in a helper thread with a deadline, so a hang fails the test instead."""
+    outcome = {}
+
+    def body():
+        try:
+            outcome["value"] = fn()
+        except BaseException as exc:  # noqa: BLE001 - inspected by the test
+            outcome["error"] = exc
+
+    helper = threading.Thread(target=body, daemon=True)
+    helper.start()
+    helper.join(timeout=60.0)
+    return helper, outcome
+
+
+def test_model_error_during_lockstep_search_reaches_the_caller_and_stops_all_threads():
+    before = threading.active_count()
+    # calls 1 and 2 are the EVA and RSS batches; call 4 is the searches' second round
+    model = CountingModel(wavy_model, fail_on=4)
+    helper, outcome = _run_in_thread(
+        lambda: worst_case_table(model, WAVY_BOUNDS, WAVY_METRICS, seed=3, starts=3)
+    )
+    # common practice, no source: the run ended (no search left waiting forever)
+    assert not helper.is_alive()
+    # common practice, no source: the model's own exception reaches the caller
+    assert isinstance(outcome.get("error"), ModelFailure)
+    assert "call 4" in str(outcome["error"])
+    # common practice, no source: every search thread was unwound and joined
+    assert threading.active_count() == before
+
+
+class _EndlessSearch:
+    """Asks for the same point forever; only an abandoned run can stop it."""
+
+    metric = "ripple"
+
+    def run(self, evaluate, maxiter):
+        while True:
+            evaluate(np.array([[b.nominal for b in WAVY_BOUNDS]]))
+
+
+class _FailingSearch:
+    metric = "bowl"
+
+    def run(self, evaluate, maxiter):
+        evaluate(np.array([[b.nominal for b in WAVY_BOUNDS]]))
+        raise ArithmeticError("search failed after one round")
+
+
+def test_error_in_a_search_thread_reaches_the_caller_and_unwinds_the_others():
+    before = threading.active_count()
+    model = CountingModel(wavy_model)
+    searches = [_EndlessSearch(), _FailingSearch(), _EndlessSearch()]
+    helper, outcome = _run_in_thread(lambda: _Lockstep(model, WAVY_BOUNDS, searches).run(10))
+    # common practice, no source: the endless searches were unwound, the run ended
+    assert not helper.is_alive()
+    # common practice, no source: the search thread's exception is re-raised in the caller
+    assert isinstance(outcome.get("error"), ArithmeticError)
+    # common practice, no source: a failing search is live until it has failed, so the
+    # coordinator sees the error before it can start a second round
+    assert model.calls == 1
+    # common practice, no source: no search thread is left running
+    assert threading.active_count() == before

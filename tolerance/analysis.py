@@ -171,8 +171,9 @@ def study_worst_case(study: Study, samples: int, seed: int) -> dict:
     mc = {m: {k: res.summary["metrics"][m][k] for k in ("min", "max", "p001", "p999")}
           for m in study.stage.metrics}
     bounds = bounds_for(study)
-    # the optimizer (sequential, the costly part) searches the metrics the design is judged
-    # on: the stage's and the study's own criteria; ratings get EVA and RSS like every metric
+    # the optimizer (the costly part: its searches run in lockstep, but each start's L-BFGS-B
+    # steps are sequential) searches the metrics the design is judged on: the stage's and the
+    # study's own criteria; ratings get EVA and RSS like every metric
     limited = list(dict.fromkeys(c.metric for c in study.criteria if c.source != "rating"))
     table = worstcase.worst_case_table(model_for(study), bounds, list(study.stage.metrics),
                                        mc_extremes=mc, seed=seed, optimize_metrics=limited,

@@ -23,6 +23,7 @@ ignored (and counted) when searching for extremes.
 from __future__ import annotations
 
 import math
+import threading
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
@@ -354,6 +355,350 @@ def root_sum_square(
 # ---------------------------------------------------------------------------------------------
 
 
+# Floating-point warnings the bounded search deliberately silences: non-finite objective
+# values (solver failures) are returned as +inf, so the finite-difference gradients then
+# contain inf/nan. Those steps are simply rejected by the line search, so the warnings they
+# raise carry no information.
+_SEARCH_ERRSTATE = {"invalid": "ignore", "over": "ignore", "divide": "ignore"}
+
+# Relative forward-difference step in normalised coordinates.
+_GRADIENT_STEP = 1e-6
+
+
+@dataclass(frozen=True)
+class _SearchGroup:
+    """One multi-start search: a metric, a sense and how its start points are drawn.
+
+    Parameters
+    ----------
+    metric : str
+        Metric to extremise.
+    sense : {"min", "max"}
+        Direction of the search.
+    starts : int
+        Number of starting points (nominal, ``vertex``, then random points).
+    rng : numpy.random.Generator
+        Source of the random starting points.
+    vertex : dict or None
+        Extreme-value vertex used as the second start, or None.
+    """
+
+    metric: str
+    sense: str
+    starts: int
+    rng: np.random.Generator
+    vertex: dict[str, float] | None
+
+
+class _Search:
+    """One L-BFGS-B start of one search group, with its own best point and sample count.
+
+    Parameters
+    ----------
+    bounds : list of Bound
+        Parameters; fixed ones stay at nominal.
+    metric : str
+        Metric to extremise.
+    sign : float
+        ``+1`` to minimise, ``-1`` to maximise.
+    u0 : ndarray
+        Start point in normalised coordinates of the varying parameters (empty when no
+        parameter varies).
+
+    Notes
+    -----
+    :meth:`run` talks to the model only through the ``evaluate`` function it is given, so
+    the same search runs alone (``evaluate`` calls the model directly) or as one of many in
+    :func:`_run_lockstep` (``evaluate`` blocks until the shared batch has been evaluated).
+    Its sequence of points depends only on the values it receives.
+    """
+
+    def __init__(self, bounds: list[Bound], metric: str, sign: float, u0: np.ndarray):
+        self.metric = metric
+        self.sign = sign
+        self.u0 = np.clip(np.asarray(u0, dtype=float), 0.0, 1.0)
+        self.x0 = _nominal(bounds)
+        self.vidx = np.array([i for i, b in enumerate(bounds) if not b.fixed], dtype=int)
+        self.lows = np.array([b.low for b in bounds])[self.vidx]
+        self.span = np.array([b.high - b.low for b in bounds])[self.vidx]
+        self.best_f = math.inf
+        self.best_x = self.x0.copy()
+        self.best_y = float("nan")
+        self.evaluations = 0
+
+    def run(self, evaluate: Callable[[np.ndarray], np.ndarray], maxiter: int) -> None:
+        """Run the search to completion.
+
+        Parameters
+        ----------
+        evaluate : callable
+            ``evaluate(xs) -> values`` of this search's metric at the rows of ``xs``
+            (full parameter vectors, shape ``(k, len(bounds))``).
+        maxiter : int
+            L-BFGS-B iteration limit.
+
+        Notes
+        -----
+        Without varying parameters the nominal point is evaluated once. Otherwise
+        :func:`scipy.optimize.minimize` (``"L-BFGS-B"``, box ``[0, 1]^d``) is run from
+        ``u0``; every objective call asks ``evaluate`` for the point and its ``d``
+        forward-difference neighbours in one block of ``d + 1`` rows. Every evaluated row
+        is a candidate for the best point (the first strictly better one is kept).
+        """
+        sign, x0, vidx, lows, span = self.sign, self.x0, self.vidx, self.lows, self.span
+        d = int(vidx.size)
+        if d == 0:
+            val = float(np.asarray(evaluate(x0[None, :]), dtype=float)[0])
+            self.evaluations += 1
+            if math.isfinite(val) and sign * val < self.best_f:
+                self.best_f, self.best_x, self.best_y = sign * val, x0.copy(), val
+            return
+
+        def objective_and_gradient(u: np.ndarray) -> tuple[float, np.ndarray]:
+            """Value and forward-difference gradient from ONE block of d + 1 points (the
+            model's cost is mostly per call, so this is about d times faster than letting
+            the optimizer difference point by point)."""
+            u = np.clip(np.asarray(u, dtype=float), 0.0, 1.0)
+            steps = np.where(u + _GRADIENT_STEP <= 1.0, _GRADIENT_STEP, -_GRADIENT_STEP)
+            pts = np.vstack([u, u + np.diag(steps)])
+            xs = np.tile(x0, (d + 1, 1))
+            xs[:, vidx] = lows + pts * span
+            vals = np.asarray(evaluate(xs), dtype=float)
+            self.evaluations += d + 1
+            finite = np.isfinite(vals)
+            if finite.any():
+                k = int(np.argmin(np.where(finite, sign * vals, np.inf)))
+                if sign * vals[k] < self.best_f:
+                    self.best_f = float(sign * vals[k])
+                    self.best_x = xs[k].copy()
+                    self.best_y = float(vals[k])
+            if not finite[0]:
+                return math.inf, np.zeros(d)
+            grad = np.where(finite[1:], sign * (vals[1:] - vals[0]) / steps, 0.0)
+            return float(sign * vals[0]), grad
+
+        optimize.minimize(
+            objective_and_gradient,
+            self.u0,
+            jac=True,
+            method="L-BFGS-B",
+            bounds=[(0.0, 1.0)] * d,
+            options={"maxiter": int(maxiter), "ftol": 1e-15, "gtol": 1e-10},
+        )
+
+
+def _start_searches(bounds: list[Bound], group: _SearchGroup) -> list[_Search]:
+    """The starts of one search group, in order: nominal, vertex, then random points.
+
+    Draws the random start points from ``group.rng`` (one ``(n, d)`` draw). Without varying
+    parameters there is a single start at nominal.
+    """
+    if group.sense not in ("min", "max"):
+        raise ValueError(f"sense must be 'min' or 'max', got {group.sense!r}")
+    sign = 1.0 if group.sense == "min" else -1.0
+    x0 = _nominal(bounds)
+    vidx = np.array([i for i, b in enumerate(bounds) if not b.fixed], dtype=int)
+    lows = np.array([b.low for b in bounds])[vidx]
+    span = np.array([b.high - b.low for b in bounds])[vidx]
+    d = int(vidx.size)
+    if d == 0:
+        return [_Search(bounds, group.metric, sign, np.zeros(0))]
+    start_points = [(x0[vidx] - lows) / span]
+    if group.vertex is not None:
+        v = np.array([group.vertex[b.name] for b in bounds])[vidx]
+        start_points.append((v - lows) / span)
+    n_random = max(int(group.starts) - len(start_points), 0)
+    if n_random:
+        start_points.extend(group.rng.random((n_random, d)))
+    start_points = start_points[: max(int(group.starts), 1)]
+    return [_Search(bounds, group.metric, sign, u0) for u0 in start_points]
+
+
+def _combine(bounds: list[Bound], searches: list[_Search]) -> dict:
+    """Result of one search group from its starts: the first strictly best value wins.
+
+    Taking the starts in order, with strict comparison, gives the same point as tracking
+    one running best over the starts run one after the other.
+    """
+    best_f, best_x, best_y = math.inf, _nominal(bounds), float("nan")
+    for s in searches:
+        if s.best_f < best_f:
+            best_f, best_x, best_y = s.best_f, s.best_x, s.best_y
+    return {
+        "value": best_y,
+        "at": _point(bounds, best_x),
+        "evaluations": int(sum(s.evaluations for s in searches)),
+        "starts": len(searches),
+    }
+
+
+class _Abort(Exception):
+    """Unwinds a search thread whose lockstep run was abandoned."""
+
+
+class _Lockstep:
+    """Batching coordinator: one model call per round for all searches still running.
+
+    Parameters
+    ----------
+    model : callable
+        Batch model ``model(samples) -> dict[str, ndarray]``.
+    bounds : list of Bound
+        Parameters.
+    searches : list
+        Objects with a ``metric`` attribute and a ``run(evaluate, maxiter)`` method
+        (:class:`_Search`).
+
+    Attributes
+    ----------
+    calls : int
+        Model calls made so far.
+    """
+
+    def __init__(self, model: Model, bounds: list[Bound], searches: list) -> None:
+        self._model = model
+        self._bounds = bounds
+        self._searches = list(searches)
+        n = len(self._searches)
+        self._cond = threading.Condition()
+        self._live = set(range(n))
+        self._pending: dict[int, np.ndarray] = {}
+        self._replies: list[np.ndarray | None] = [None] * n
+        self._wake = [threading.Event() for _ in range(n)]
+        self._abort = False
+        self._errors: list[BaseException] = []
+        self.calls = 0
+
+    def _request(self, i: int, xs: np.ndarray) -> np.ndarray:
+        """Called in search thread ``i``: submit ``xs`` and block until its values arrive."""
+        with self._cond:
+            if self._abort:
+                raise _Abort
+            self._pending[i] = xs
+            self._cond.notify()
+        self._wake[i].wait()
+        self._wake[i].clear()
+        reply, self._replies[i] = self._replies[i], None
+        if reply is None:
+            raise _Abort
+        return reply
+
+    def _thread(self, i: int, maxiter: int) -> None:
+        """Body of search thread ``i``; records any exception for the coordinator."""
+        error = None
+        try:
+            # np.errstate is context-local: each thread sets its own.
+            with np.errstate(**_SEARCH_ERRSTATE):
+                self._searches[i].run(lambda xs: self._request(i, xs), maxiter)
+        except _Abort:
+            pass
+        except BaseException as exc:  # noqa: BLE001 - re-raised in the calling thread
+            error = exc
+        finally:
+            with self._cond:
+                self._live.discard(i)
+                if error is not None:
+                    self._errors.append(error)
+                self._cond.notify()
+
+    def _serve(self, batch: list[tuple[int, np.ndarray]]) -> None:
+        """Evaluate all pending blocks in one model call and hand each search its rows."""
+        metrics = list(dict.fromkeys(self._searches[i].metric for i, _ in batch))
+        xs = np.vstack([block for _, block in batch])
+        with np.errstate(**_SEARCH_ERRSTATE):
+            y, _ = _evaluate(self._model, self._bounds, xs, metrics)
+        self.calls += 1
+        start = 0
+        for i, block in batch:
+            stop = start + block.shape[0]
+            self._replies[i] = y[self._searches[i].metric][start:stop]
+            start = stop
+            self._wake[i].set()
+
+    def run(self, maxiter: int) -> None:
+        """Run every search to completion in lockstep; re-raise the first error."""
+        threads = []
+        try:
+            for i in range(len(self._searches)):
+                t = threading.Thread(
+                    target=self._thread, args=(i, maxiter), name=f"wc-search-{i}", daemon=True
+                )
+                t.start()
+                threads.append(t)
+            while True:
+                with self._cond:
+                    self._cond.wait_for(
+                        lambda: self._errors or len(self._pending) == len(self._live)
+                    )
+                    if self._errors:
+                        raise self._errors[0]
+                    if not self._live:
+                        return
+                    # Ordered by search index, so every round's batch is reproducible.
+                    batch = sorted(self._pending.items())
+                    self._pending.clear()
+                self._serve(batch)
+        finally:
+            with self._cond:
+                self._abort = True
+            for event in self._wake:
+                event.set()
+            for t in threads:
+                t.join()
+
+
+def _run_lockstep(
+    model: Model, bounds: list[Bound], groups: Sequence[_SearchGroup], maxiter: int
+) -> list[dict]:
+    """Run every start of every search group in lockstep, one model call per round.
+
+    Parameters
+    ----------
+    model : callable
+        Batch model ``model(samples) -> dict[str, ndarray]``.
+    bounds : list of Bound
+        Search box; fixed parameters stay at nominal.
+    groups : sequence of _SearchGroup
+        The multi-start searches (metric, sense, starts, generator, vertex).
+    maxiter : int
+        L-BFGS-B iteration limit per start.
+
+    Returns
+    -------
+    list of dict
+        Per group, in order, the result described in :func:`optimize_extreme`
+        (``value``, ``at``, ``evaluations``, ``starts``), without extreme-value samples.
+
+    Notes
+    -----
+    The model's cost is mostly per call, and L-BFGS-B asks for one small block of ``d + 1``
+    points at a time, so running the searches one after the other makes about as many
+    model calls as all searches make objective calls together. Here every start of every
+    group is one :class:`_Search` in its own :class:`threading.Thread`; its objective
+    submits its block to a shared :class:`_Lockstep` coordinator and blocks. The calling
+    thread waits until every live search has either submitted a block or finished, then
+    evaluates all blocks in one model call (asking for the union of their metrics, blocks
+    in search order), hands each search its rows and waits again. The run therefore needs
+    as many model calls as the longest single start has objective calls.
+
+    The result is identical to running the starts one after the other, provided the model
+    evaluates every sample independently of the others in its batch (values do not depend
+    on the batch they are in): each search's sequence of points depends only on its own
+    values, evaluation counts are per start, and :func:`_combine` takes the first strictly
+    best value over the starts in order, as one running best would. The random start
+    points come from each group's own generator, drawn before any search starts.
+
+    An exception in the model (raised in the calling thread) or in a search thread stops
+    the run: every waiting search is woken and unwound, all threads are joined, and the
+    first exception is re-raised in the caller. Only the calling thread calls the model.
+    """
+    searches = [_start_searches(bounds, g) for g in groups]
+    flat = [s for group in searches for s in group]
+    if flat:
+        _Lockstep(model, bounds, flat).run(maxiter)
+    return [_combine(bounds, group) for group in searches]
+
+
 def _optimize(
     model: Model,
     bounds: list[Bound],
@@ -364,98 +709,12 @@ def _optimize(
     maxiter: int,
     vertex: dict[str, float] | None,
 ) -> dict:
-    """Multi-start L-BFGS-B search in normalised coordinates; see :func:`optimize_extreme`."""
-    if sense not in ("min", "max"):
-        raise ValueError(f"sense must be 'min' or 'max', got {sense!r}")
-    sign = 1.0 if sense == "min" else -1.0
-    x0 = _nominal(bounds)
-    vidx = np.array([i for i, b in enumerate(bounds) if not b.fixed], dtype=int)
-    lows = np.array([b.low for b in bounds])[vidx]
-    span = np.array([b.high - b.low for b in bounds])[vidx]
-    d = int(vidx.size)
+    """Multi-start L-BFGS-B search in normalised coordinates; see :func:`optimize_extreme`.
 
-    counter = {"n": 0}
-    best = {"f": math.inf, "x": x0.copy(), "y": float("nan")}
-
-    def full_point(u: np.ndarray) -> np.ndarray:
-        x = x0.copy()
-        x[vidx] = lows + np.clip(u, 0.0, 1.0) * span
-        return x
-
-    def objective(u: np.ndarray) -> float:
-        x = full_point(np.asarray(u, dtype=float))
-        y, _ = _evaluate(model, bounds, x[None, :], [metric])
-        counter["n"] += 1
-        val = float(y[metric][0])
-        if not math.isfinite(val):
-            return math.inf
-        f = sign * val
-        if f < best["f"]:
-            best.update(f=f, x=x, y=val)
-        return f
-
-    step = 1e-6
-
-    def objective_and_gradient(u: np.ndarray) -> tuple[float, np.ndarray]:
-        """Value and forward-difference gradient from ONE batched model call of d + 1 points
-        (the model's cost is mostly per call, so this is about d times faster than letting the
-        optimizer difference point by point)."""
-        u = np.clip(np.asarray(u, dtype=float), 0.0, 1.0)
-        steps = np.where(u + step <= 1.0, step, -step)
-        pts = np.vstack([u, u + np.diag(steps)])
-        xs = np.tile(x0, (d + 1, 1))
-        xs[:, vidx] = lows + pts * span
-        y, _ = _evaluate(model, bounds, xs, [metric])
-        counter["n"] += d + 1
-        vals = np.asarray(y[metric], dtype=float)
-        finite = np.isfinite(vals)
-        if finite.any():
-            k = int(np.argmin(np.where(finite, sign * vals, np.inf)))
-            if sign * vals[k] < best["f"]:
-                best.update(f=float(sign * vals[k]), x=xs[k].copy(), y=float(vals[k]))
-        if not finite[0]:
-            return math.inf, np.zeros(d)
-        grad = np.where(finite[1:], sign * (vals[1:] - vals[0]) / steps, 0.0)
-        return float(sign * vals[0]), grad
-
-    if d == 0:
-        objective(np.zeros(0))
-        return {
-            "value": best["y"],
-            "at": _point(bounds, best["x"]),
-            "evaluations": counter["n"],
-            "starts": 1,
-        }
-
-    start_points = [(x0[vidx] - lows) / span]
-    if vertex is not None:
-        v = np.array([vertex[b.name] for b in bounds])[vidx]
-        start_points.append((v - lows) / span)
-    n_random = max(int(starts) - len(start_points), 0)
-    if n_random:
-        start_points.extend(rng.random((n_random, d)))
-    start_points = start_points[: max(int(starts), 1)]
-
-    box = [(0.0, 1.0)] * d
-    # Non-finite objective values (solver failures) are returned as +inf; the optimiser's
-    # finite-difference gradients then contain inf/nan. Those steps are simply rejected by
-    # the line search, so the floating-point warnings they raise carry no information.
-    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-        for u0 in start_points:
-            optimize.minimize(
-                objective_and_gradient,
-                np.clip(u0, 0.0, 1.0),
-                jac=True,
-                method="L-BFGS-B",
-                bounds=box,
-                options={"maxiter": int(maxiter), "ftol": 1e-15, "gtol": 1e-10},
-            )
-    return {
-        "value": best["y"],
-        "at": _point(bounds, best["x"]),
-        "evaluations": counter["n"],
-        "starts": len(start_points),
-    }
+    A single search group run by :func:`_run_lockstep` (its starts share model calls).
+    """
+    group = _SearchGroup(metric, sense, starts, rng, vertex)
+    return _run_lockstep(model, bounds, [group], maxiter)[0]
 
 
 def optimize_extreme(
@@ -504,11 +763,15 @@ def optimize_extreme(
     -----
     Each start runs :func:`scipy.optimize.minimize` with method ``"L-BFGS-B"`` in normalised
     coordinates ``u in [0, 1]^d`` (``x = low + u (high - low)``), so all parameters are on a
-    common scale and the box is the unit cube. Gradients come from finite differences.
-    The optimiser is inherently sequential; every objective call evaluates the model on
-    a batch of one point; this is the one place in the package where the model is not fed
-    large batches. NaN results (non-converged solver) count as ``+inf`` for the search and
-    the best finite value seen across all starts is returned.
+    common scale and the box is the unit cube. Gradients come from forward differences:
+    every objective call evaluates the point and its ``d`` neighbours in one block of
+    ``d + 1`` points. L-BFGS-B is inherently sequential, so the starts run in lockstep
+    (see :func:`_run_lockstep`): each model call evaluates the pending blocks of all starts
+    still running, and the search needs as many model calls as its longest start has
+    objective calls; the result equals running the starts one after the other. This is the
+    one place in the package where the model is not fed large batches. NaN results
+    (non-converged solver) count as ``+inf`` for the search and the best finite value seen
+    across all starts is returned.
 
     Multi-start search finds local extrema; it cannot prove that the global one was found.
     Compare its result with the vertices and with Monte Carlo extremes.
@@ -540,8 +803,12 @@ def worst_case_table(
 ) -> dict:
     """Extreme-value, RSS and optimised extremes of every metric, side by side.
 
-    ``optimize_metrics`` limits the (costly, sequential) optimizer search to those metrics
-    (default: all); the others get ``opt_min``/``opt_max`` of None.
+    ``optimize_metrics`` limits the (costly) optimizer search to those metrics (default:
+    all); the others get ``opt_min``/``opt_max`` of None. The searches of all those metrics,
+    both senses and every start run in lockstep (see :func:`_run_lockstep`), so the search
+    needs about as many model calls as its longest single start, each call evaluating the
+    pending points of every search still running; the figures equal those of running the
+    searches one after the other.
 
     Parameters
     ----------
@@ -556,6 +823,12 @@ def worst_case_table(
         beside the worst-case figures as ``mc_min``, ``mc_max``, ``mc_p001``, ``mc_p999``.
     seed : int, SeedSequence or None, default 0
         Root seed; independent child seeds are spawned for each metric and sense.
+    optimize_metrics : list of str, optional
+        Metrics given to the optimizer search; default all of ``metrics``.
+    starts : int, default 8
+        Starting points per metric and sense, as in :func:`optimize_extreme`.
+    maxiter : int, default 200
+        L-BFGS-B iteration limit per start.
 
     Returns
     -------
@@ -574,17 +847,25 @@ def worst_case_table(
     total = int(eva[metrics[0]]["evaluations"]) if metrics else 0
     total += int(rss[metrics[0]]["evaluations"]) if metrics else 0
     children = np.random.SeedSequence(seed).spawn(2 * len(metrics))
-    table: dict = {}
+    groups, keys = [], []
     for k, m in enumerate(metrics):
+        if optimize_metrics is not None and m not in optimize_metrics:
+            continue
+        for j, sense in enumerate(("min", "max")):
+            rng = np.random.default_rng(children[2 * k + j])
+            vertex = eva[m]["arg" + sense] or None
+            groups.append(_SearchGroup(m, sense, starts, rng, vertex))
+            keys.append((m, sense))
+    found = dict(zip(keys, _run_lockstep(model, bounds, groups, maxiter)))
+    table: dict = {}
+    for m in metrics:
         e, r = eva[m], rss[m]
         opt = {}
-        for j, sense in enumerate(("min", "max")):
-            if optimize_metrics is not None and m not in optimize_metrics:
+        for sense in ("min", "max"):
+            if (m, sense) not in found:
                 opt[sense] = {"value": None, "at": {}}
                 continue
-            rng = np.random.default_rng(children[2 * k + j])
-            vertex = e["arg" + sense] or None
-            opt[sense] = _optimize(model, bounds, m, sense, starts, rng, maxiter, vertex)
+            opt[sense] = found[(m, sense)]
             total += int(opt[sense]["evaluations"])
         row = {
             "nominal": e["nominal"],
