@@ -168,6 +168,28 @@ def test_same_seed_same_summary_whatever_jobs_and_chunks(linear, tmp_path, sampl
     assert comparable(on_disk) == json.loads(json.dumps(comparable(b)))
 
 
+def test_chunk_columns_read_what_the_run_keeps(linear, tmp_path):
+    import pyarrow.parquet as pq
+
+    from tolerance import runner
+    from tolerance.api import SAMPLES_DIR
+
+    res = run(linear("random"), chunk_size=777, out=tmp_path / "r")
+    folder = tmp_path / "r" / SAMPLES_DIR
+    files = runner.chunk_files(folder)
+    assert len(files) > 1
+    read = runner.ChunkColumns(folder)
+    frame = pq.read_table(folder).to_pandas()  # reference: pyarrow's own dataset reader
+    # common practice, no source: every column, in sample order and with its type, equals
+    # the whole table read at once, also on the second reading (cached footers)
+    for _ in range(2):
+        for name in frame.columns:
+            got = read(name)
+            assert got.dtype == frame[name].to_numpy().dtype, name
+            assert np.array_equal(got, frame[name].to_numpy(), equal_nan=got.dtype.kind == "f")
+    assert np.array_equal(read("sample"), np.arange(res.summary["samples"]))
+
+
 def test_overrides_pin_and_scale(linear):
     from tolerance.runner import Override
 

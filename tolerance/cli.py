@@ -224,7 +224,8 @@ def _write_waveforms(study, out: Path, k: int, seed: int) -> None:
 
     folder = out / SAMPLES_DIR
     columns = ["sample", *study.parameter_names, "turn_off_delay"]
-    frame = pd.DataFrame({c: runner.read_column(folder, c) for c in columns})
+    read = runner.ChunkColumns(folder)
+    frame = pd.DataFrame({c: read(c) for c in columns})
     write_json(out / "waveforms.json", record_waveforms(study, frame, k, seed))
 
 

@@ -360,11 +360,13 @@ def _run_plots(folder: Path, summary: dict, extras: dict,
     made: list[tuple[Path, str]] = []
     columns: dict[str, np.ndarray] = {}
 
+    read = runner.ChunkColumns(samples_dir)
+
     def col(name):
         # plots draw at most PLOT_ROWS evenly spaced samples (every k-th); the counted rates
         # in their titles come from the summary, which used every sample
         if name not in columns:
-            full = runner.read_column(samples_dir, name)
+            full = read(name)
             step = max(1, -(-len(full) // PLOT_ROWS))
             columns[name] = full[::step].copy() if step > 1 else full
         return columns[name]
