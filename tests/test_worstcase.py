@@ -435,7 +435,7 @@ class _FailingSearch:
         raise ArithmeticError("search failed after one round")
 
 
-def test_error_in_a_search_thread_reaches_the_caller_and_unwinds_the_others():
+def test_exception_in_a_search_thread_reaches_the_caller_and_unwinds_the_others():
     before = threading.active_count()
     model = CountingModel(wavy_model)
     searches = [_EndlessSearch(), _FailingSearch(), _EndlessSearch()]
