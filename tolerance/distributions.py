@@ -13,7 +13,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
 #: smallest distance of a uniform number from 0 or 1 before an unbounded inverse CDF is taken
 UNIFORM_EPS = 1e-12
@@ -168,6 +168,10 @@ class TruncatedNormal(Distribution):
     _frozen: object = field(default=None, init=False, repr=False, compare=False)
 
     def __post_init__(self):
+        # imported here: scipy.stats takes about half a second to import, which every worker
+        # process would pay on start even for studies without a truncated normal
+        from scipy import stats
+
         a = (self.lower - self.mean) / self.sigma
         b = (self.upper - self.mean) / self.sigma
         object.__setattr__(

@@ -19,7 +19,6 @@ import warnings
 
 import numpy as np
 from scipy import special
-from scipy.stats import qmc
 
 from tolerance.protocol import Parameter
 
@@ -32,6 +31,8 @@ def _block_uniforms(kind: str, seed: int, block: int, size: int, dim: int) -> np
     if kind == "random":
         return rng.random((size, dim))
     if kind == "lhs":
+        from scipy.stats import qmc  # here, not at the top: scipy.stats costs a worker's start
+
         return qmc.LatinHypercube(d=dim, rng=rng).random(size)
     raise ValueError(f"unknown block design {kind!r}")
 
@@ -60,6 +61,8 @@ def uniforms(sampler: str, seed: int, total: int, start: int, stop: int, dim: in
     if dim == 0:
         return np.empty((n, 0))
     if sampler == "sobol":
+        from scipy.stats import qmc
+
         engine = qmc.Sobol(d=dim, scramble=True,
                            rng=np.random.default_rng(np.random.SeedSequence(seed)))
         if start:
