@@ -75,7 +75,8 @@ from dataclasses import dataclass, fields, replace
 
 import numpy as np
 
-from tolerance.models.transistor import ScaledTransistor, Transport, thermal_voltage
+from tolerance.models.transistor import (ScaledTransistor, Transport, junction_currents,
+                                         thermal_voltage)
 
 __all__ = [
     "CHARGE_CLASS_DEFAULTS",
@@ -87,9 +88,6 @@ __all__ = [
     "storage_time",
     "stored_charges",
 ]
-
-_EXP_MAX = 80.0  # same linear continuation of exp() as the static model
-_Q1_DENOMINATOR_MIN = 0.1  # same continuation of q_1 as the static model
 
 
 @dataclass(frozen=True)
@@ -208,15 +206,6 @@ class StoredCharges:
     dbc_dvbc: np.ndarray
 
 
-def _exp_lin(arg):
-    big = arg > _EXP_MAX
-    if np.any(big):
-        e = np.exp(np.minimum(arg, _EXP_MAX))
-        return np.where(big, e * (1.0 + (arg - _EXP_MAX)), e), e
-    e = np.exp(arg)
-    return e, e
-
-
 def _is_zero(v) -> bool:
     return np.ndim(v) == 0 and float(v) == 0.0
 
@@ -279,8 +268,8 @@ def stored_charges(p: ScaledTransistor, c: ChargeParameters, v_be, v_bc,
         Intrinsic junction voltages in the actual sign (negative for a conducting PNP) [V].
     transport : Transport, optional
         The transport terms of :func:`~tolerance.models.transistor.junction_currents` at the
-        same voltages (``JunctionCurrents.transport``); given, the exponentials and q_b are
-        taken from there instead of being evaluated again.
+        same voltages (``JunctionCurrents.transport``), which the switching circuit has at
+        hand; without them they are evaluated here.
 
     Returns
     -------
@@ -302,67 +291,25 @@ def stored_charges(p: ScaledTransistor, c: ChargeParameters, v_be, v_bc,
     dbe_bc = zero
     qbc = zero
     dbc_bc = zero
-    i_s = p.saturation_current
-    if transport is not None:
-        if not _is_zero(tf):
-            t = transport
-            if t.base_charge is None:
-                qf = tf * t.forward
-                dbe_be = tf * t.dforward
-            else:
-                inv_qb = 1.0 / t.base_charge
-                qf = tf * t.forward * inv_qb
-                dbe_be = (tf * t.dforward * inv_qb if t.dbase_charge_dvbe is None else
-                          tf * (t.dforward - t.forward * inv_qb * t.dbase_charge_dvbe) * inv_qb)
-                if t.dbase_charge_dvbc is not None:
-                    dbe_bc = -qf * inv_qb * t.dbase_charge_dvbc
-            qbe = qbe + qf
-        if not _is_zero(tr):
-            qbc = qbc + tr * transport.reverse
-            dbc_bc = dbc_bc + tr * transport.dreverse
-    elif not _is_zero(tf):
-        ef, def_ = _exp_lin(vbe * p.inv_forward_nvt)
-        i_f = i_s * (ef - 1.0)
-        gf = i_s * def_ * p.inv_forward_nvt
-        early = not (_is_zero(p.inv_early) and _is_zero(p.inv_reverse_early))
-        knee = not (_is_zero(p.inv_knee) and _is_zero(p.inv_reverse_knee))
-        if early or knee:
-            # q_b of Gummel & Poon, same equations and continuation as the static model
-            er, der = _exp_lin(vbc * p.inv_reverse_nvt)
-            i_r = i_s * (er - 1.0)
-            gr = i_s * der * p.inv_reverse_nvt
-            q1, dq1_be, dq1_bc = 1.0, 0.0, 0.0
-            if early:
-                den = 1.0 - vbc * p.inv_early - vbe * p.inv_reverse_early
-                dmin = _Q1_DENOMINATOR_MIN
-                small = den < dmin
-                q1 = np.where(small, (2.0 * dmin - den) / dmin**2,
-                              1.0 / np.where(small, 1.0, den))
-                dq1_dden = np.where(small, -1.0 / dmin**2, -q1 * q1)
-                dq1_be = -dq1_dden * p.inv_reverse_early
-                dq1_bc = -dq1_dden * p.inv_early
-            half, dh_be, dh_bc = 1.0, 0.0, 0.0
-            if knee:
-                q2 = i_f * p.inv_knee + i_r * p.inv_reverse_knee
-                s = np.sqrt(1.0 + 4.0 * q2)
-                half = 0.5 * (1.0 + s)
-                dh_be = gf * p.inv_knee / s
-                dh_bc = gr * p.inv_reverse_knee / s
-            qb = q1 * half
-            dqb_be = dq1_be * half + q1 * dh_be
-            dqb_bc = dq1_bc * half + q1 * dh_bc
-            inv_qb = 1.0 / qb
-            qf = tf * i_f * inv_qb
-            dbe_be = tf * (gf - i_f * inv_qb * dqb_be) * inv_qb
-            dbe_bc = -qf * inv_qb * dqb_bc
+    if transport is None and not (_is_zero(tf) and _is_zero(tr)):
+        # the static model's I_F, I_R and q_b (Gummel & Poon, same continuations)
+        transport = junction_currents(p, v_be, v_bc).transport
+    t = transport
+    if not _is_zero(tf):
+        if t.base_charge is None:
+            qf = tf * t.forward
+            dbe_be = tf * t.dforward
         else:
-            qf = tf * i_f
-            dbe_be = tf * gf
+            inv_qb = 1.0 / t.base_charge
+            qf = tf * t.forward * inv_qb
+            dbe_be = (tf * t.dforward * inv_qb if t.dbase_charge_dvbe is None else
+                      tf * (t.dforward - t.forward * inv_qb * t.dbase_charge_dvbe) * inv_qb)
+            if t.dbase_charge_dvbc is not None:
+                dbe_bc = -qf * inv_qb * t.dbase_charge_dvbc
         qbe = qbe + qf
-    if transport is None and not _is_zero(tr):
-        er, der = _exp_lin(vbc * p.inv_reverse_nvt)
-        qbc = qbc + tr * p.saturation_current * (er - 1.0)
-        dbc_bc = dbc_bc + tr * p.saturation_current * der * p.inv_reverse_nvt
+    if not _is_zero(tr):
+        qbc = qbc + tr * t.reverse
+        dbc_bc = dbc_bc + tr * t.dreverse
     if not _is_zero(c.be_zero_bias_capacitance):
         qj, cj = depletion_charge(vbe, c.be_zero_bias_capacitance, c.be_built_in_voltage,
                                   c.be_grading_coefficient, c.forward_bias_fraction)

@@ -57,10 +57,10 @@ __all__ = [
     "LedState",
     "LoadSpec",
     "LoadState",
-    "wright_omega",
     "ResistorLoad",
     "ResistorState",
     "read_load",
+    "wright_omega",
 ]
 
 KINDS = ("resistor", "lamp", "coil", "led")

@@ -76,7 +76,7 @@ from dataclasses import dataclass, fields, replace
 
 import numpy as np
 
-__all__ = ["Transport", 
+__all__ = [
     "BOLTZMANN",
     "ELEMENTARY_CHARGE",
     "REFERENCE_TEMPERATURE",
@@ -84,6 +84,7 @@ __all__ = ["Transport",
     "ScaledTransistor",
     "TerminalOffsets",
     "TransistorParameters",
+    "Transport",
     "critical_voltage",
     "junction_currents",
     "limit_junction_step",

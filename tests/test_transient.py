@@ -215,26 +215,6 @@ def test_stored_charge_derivatives(polarity):
                     rtol=1e-5, atol=1e-15)
 
 
-@pytest.mark.parametrize("polarity", [1, -1])
-@pytest.mark.parametrize("effects", [{}, dict(early_voltage=80), dict(knee_current=0.2),
-                                     dict(early_voltage=80, reverse_early_voltage=20,
-                                          knee_current=0.2, reverse_knee_current=0.05)])
-def test_charges_from_the_static_transport_terms(polarity, effects):
-    # the charges from junction_currents' transport terms are those evaluated on their own
-    # (the same equations, common practice, no source): only rounding may differ
-    p = TransistorParameters(polarity=polarity, saturation_current=2e-14, forward_beta=150,
-                             reverse_beta=3, **effects)
-    sc = p.at_temperature(np.full(5, 320.0))
-    cp = charges.ChargeParameters(reverse_transit_time=20e-9)
-    vbe = polarity * np.array([0.3, 0.6, 0.7, 0.75, -1.0])
-    vbc = polarity * np.array([-5.0, -0.5, 0.55, 0.65, -3.0])
-    alone = charges.stored_charges(sc, cp, vbe, vbc)
-    reused = charges.stored_charges(sc, cp, vbe, vbc, junction_currents(sc, vbe, vbc).transport)
-    for name in ("base_emitter", "base_collector", "dbe_dvbe", "dbe_dvbc", "dbc_dvbc"):
-        assert_allclose(getattr(reused, name), getattr(alone, name), rtol=1e-13, atol=1e-30,
-                        err_msg=name)
-
-
 def test_pnp_charges_mirror_npn():
     kw = dict(saturation_current=1e-14, forward_beta=100, early_voltage=50, knee_current=0.1)
     n = TransistorParameters(**kw).at_temperature(np.full(3, ROOM))

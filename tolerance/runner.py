@@ -293,7 +293,7 @@ def chunk_files(folder: Path) -> list[Path]:
 
 
 def _chunk_column(path: Path, name: str, metadata=None) -> np.ndarray:
-    """One column of one chunk file (see :func:`read_column`)."""
+    """One column of one chunk file (see :class:`ChunkColumns`)."""
     with pq.ParquetFile(path, metadata=metadata) as f:
         return f.read(columns=[name], use_threads=False).column(name).to_numpy()
 
@@ -321,11 +321,6 @@ class ChunkColumns:
                 self._metadata[k] = pq.read_metadata(path)
             parts.append(_chunk_column(path, name, self._metadata[k]))
         return np.concatenate(parts) if parts else np.empty(0)
-
-
-def read_column(folder: Path, name: str) -> np.ndarray:
-    """One column of a chunked result, in sample order (see :class:`ChunkColumns`)."""
-    return ChunkColumns(folder)(name)
 
 
 def read_samples(folder: Path) -> pd.DataFrame:
