@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 from scipy import stats as sps
+from scipy.stats import qmc
 
 from tolerance import distributions as dist
 from tolerance import sampling
@@ -106,6 +107,15 @@ def test_lhs_block_is_stratified():
     # (McKay, Beckman & Conover, Technometrics 21 (1979) 239-245)
     for j in range(3):
         assert np.array_equal(np.sort(np.floor(u[:, j] * total)), np.arange(total))
+
+
+@pytest.mark.parametrize("seed, block, size, dim", [(0, 0, 4096, 5), (3, 7, 1000, 1),
+                                                    (12345, 2, 17, 9), (1, 0, 1, 3)])
+def test_latin_hypercube_draws_what_scipy_draws(seed, block, size, dim):
+    # reference library: scipy.stats.qmc.LatinHypercube on the block's generator
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block,)))
+    expected = qmc.LatinHypercube(d=dim, rng=rng).random(size)
+    assert np.array_equal(sampling.latin_hypercube(seed, block, size, dim), expected)
 
 
 def test_seeds_differ():

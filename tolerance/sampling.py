@@ -31,10 +31,27 @@ def _block_uniforms(kind: str, seed: int, block: int, size: int, dim: int) -> np
     if kind == "random":
         return rng.random((size, dim))
     if kind == "lhs":
-        from scipy.stats import qmc  # here, not at the top: scipy.stats costs a worker's start
-
-        return qmc.LatinHypercube(d=dim, rng=rng).random(size)
+        return latin_hypercube(seed, block, size, dim)
     raise ValueError(f"unknown block design {kind!r}")
+
+
+def latin_hypercube(seed: int, block: int, size: int, dim: int) -> np.ndarray:
+    """The Latin hypercube of one block: in every column one point in each of the ``size``
+    equal strata, the strata paired at random across columns, each point uniform within its
+    stratum (McKay, Beckman and Conover, Technometrics 21 (1979) 239-245).
+
+    The numbers are those ``scipy.stats.qmc.LatinHypercube(d=dim, rng=...).random(size)``
+    draws from the block's generator (a child stream of the block's seed sequence, the
+    in-stratum offsets, then one shuffle per column), so a seed's results are unchanged; it is
+    written here because importing ``scipy.stats`` costs a worker process half a second before
+    its first chunk (tests/test_engine.py compares the two).
+    """
+    child = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block, 0)))
+    offsets = child.uniform(size=(size, dim))
+    strata = np.tile(np.arange(1, size + 1), (dim, 1))
+    for column in strata:  # one shuffle per parameter, in the order scipy draws them
+        child.shuffle(column)
+    return (strata.T - offsets) / size
 
 
 def uniforms(sampler: str, seed: int, total: int, start: int, stop: int, dim: int) -> np.ndarray:
