@@ -36,7 +36,6 @@ import math
 from dataclasses import dataclass, field, fields, replace
 
 import numpy as np
-from scipy import optimize
 
 from tolerance.models.newton import newton_solve
 from tolerance.models.transistor import (
@@ -476,6 +475,8 @@ def _scalar(x) -> float:
 
 def _root_log(fun, lo, hi):
     """Root of fun(exp(u)) for u in [ln lo, ln hi] (fun increasing or decreasing)."""
+    from scipy import optimize  # here: a worker evaluating chunks never fits
+
     return math.exp(optimize.brentq(lambda u: fun(math.exp(u)), math.log(lo), math.log(hi),
                                     xtol=1e-12, rtol=1e-12))
 
@@ -577,6 +578,8 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
             raise DatasheetError(key, f"cannot be met by the model ({what})")
         if log and lo > 0:
             return _root_log(fun, lo, hi)
+        from scipy import optimize  # here: a worker evaluating chunks never fits
+
         return optimize.brentq(fun, lo, hi, xtol=1e-14, rtol=1e-12)
 
     sweeps = 0
@@ -615,6 +618,8 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
             if not knee0 < 1e3 * ds.hfe_high_current:
                 knee0 = ds.hfe_high_current
             u0 = [math.log(knee0), math.log(phi0 / (1.0 - phi0))]
+            from scipy import optimize  # here: a worker evaluating chunks never fits
+
             with np.errstate(all="ignore"):
                 sol = optimize.root(pair, u0, method="hybr", options={"xtol": 1e-13})
             if sol.success and np.all(np.abs(pair(sol.x)) < 1e-9):

@@ -18,13 +18,17 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from typing import TYPE_CHECKING
+
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
 from tolerance.protocol import Criterion, Parameter
 from tolerance.sampling import draw
+
+if TYPE_CHECKING:  # pandas is imported where a frame is built: a worker writing chunks
+    import pandas as pd  # never needs it, and it costs a worker's start a third of a second
 
 CHUNK_PREFIX = "part-"
 
@@ -86,8 +90,10 @@ def criterion_column(name: str) -> str:
     return f"pass.{name}"
 
 
-def evaluate_chunk(spec: RunSpec, start: int, stop: int) -> pd.DataFrame:
-    """Draw, evaluate and judge samples ``start:stop``; one row per sample."""
+def chunk_columns(spec: RunSpec, start: int, stop: int) -> dict[str, np.ndarray]:
+    """Draw, evaluate and judge samples ``start:stop``: one array per column (sample index,
+    parameters, metrics, ``converged``, a ``pass.<criterion>`` column per criterion and
+    ``pass``), one row per sample."""
     _, values = draw(spec.parameters, spec.correlation, spec.sampler, spec.seed, spec.samples,
                      start, stop)
     for name, override in spec.overrides:
@@ -110,17 +116,37 @@ def evaluate_chunk(spec: RunSpec, start: int, stop: int) -> pd.DataFrame:
         columns[criterion_column(c.name)] = ok
         all_pass &= ok
     columns["pass"] = all_pass
-    return pd.DataFrame(columns)
+    return columns
+
+
+def evaluate_chunk(spec: RunSpec, start: int, stop: int) -> pd.DataFrame:
+    """Draw, evaluate and judge samples ``start:stop``; one row per sample
+    (:func:`chunk_columns` as a frame)."""
+    import pandas as pd
+
+    return pd.DataFrame(chunk_columns(spec, start, stop))
 
 
 def _chunk_path(folder: Path, index: int) -> Path:
     return folder / f"{CHUNK_PREFIX}{index:06d}.parquet"
 
 
-def _write_chunk(df: pd.DataFrame, path: Path, signature: dict, start: int, stop: int) -> None:
-    table = pa.Table.from_pandas(df, preserve_index=False)
-    meta = dict(table.schema.metadata or {})
-    meta[b"tolerance"] = json.dumps({**signature, "start": start, "stop": stop}).encode()
+def _arrow_column(values: np.ndarray) -> pa.Array:
+    """A numpy column as an Arrow array, built from its buffers: ``pa.array`` and
+    ``pa.table`` import pandas to check what they were given, a third of a second of every
+    worker's start."""
+    v = np.ascontiguousarray(values)
+    if v.dtype == np.bool_:
+        bits = np.packbits(v, bitorder="little")  # Arrow's booleans are a bitmap, LSB first
+        return pa.Array.from_buffers(pa.bool_(), v.size, [None, pa.py_buffer(bits)])
+    return pa.Array.from_buffers(pa.from_numpy_dtype(v.dtype), v.size, [None, pa.py_buffer(v)])
+
+
+def _write_chunk(columns: dict[str, np.ndarray], path: Path, signature: dict, start: int,
+                 stop: int) -> None:
+    table = pa.Table.from_arrays([_arrow_column(v) for v in columns.values()],
+                                 names=list(columns))
+    meta = {b"tolerance": json.dumps({**signature, "start": start, "stop": stop}).encode()}
     table = table.replace_schema_metadata(meta)
     tmp = path.with_suffix(".parquet.tmp")
     pq.write_table(table, tmp)
@@ -141,8 +167,8 @@ def chunk_is_complete(path: Path, signature: dict, start: int, stop: int) -> boo
 
 def run_chunk_to_file(spec: RunSpec, index: int, start: int, stop: int, folder: str) -> int:
     """Worker task: evaluate a chunk and write it; returns the number of samples."""
-    df = evaluate_chunk(spec, start, stop)
-    _write_chunk(df, _chunk_path(Path(folder), index), spec.signature, start, stop)
+    columns = chunk_columns(spec, start, stop)
+    _write_chunk(columns, _chunk_path(Path(folder), index), spec.signature, start, stop)
     return stop - start
 
 
@@ -179,7 +205,7 @@ def execute(spec: RunSpec, chunk_size: int, jobs: int = 1, folder: Path | None =
     evaluated so far; the chunks kept are always a prefix of the plan, so the result depends
     only on the seed and the rule.
     """
-    from joblib import Parallel, delayed
+    from joblib import delayed
 
     ranges = chunk_ranges(spec.samples, chunk_size, CHECK_EVERY if stop_rule else None)
     bar = Progress(spec.samples, progress)
@@ -212,12 +238,15 @@ def execute(spec: RunSpec, chunk_size: int, jobs: int = 1, folder: Path | None =
                 else:
                     tasks.append(delayed(run_chunk_to_file)(spec, i, s, e, str(folder)))
         for item in _run_tasks(tasks, jobs, backend, scheduler):
-            n = len(item) if isinstance(item, pd.DataFrame) else item
-            if isinstance(item, pd.DataFrame):
+            if folder is None:
                 frames.append(item)
-            bar.advance(n)
+                bar.advance(len(item))
+            else:
+                bar.advance(item)
         if stop_rule is not None and finished < len(ranges):
             if folder is None:
+                import pandas as pd
+
                 done = pd.concat(frames, ignore_index=True)
                 column = lambda name, d=done: d[name].to_numpy()  # noqa: E731
             else:
@@ -232,6 +261,8 @@ def execute(spec: RunSpec, chunk_size: int, jobs: int = 1, folder: Path | None =
     if progress and bar.done < bar.total:
         sys.stderr.write("\n")
     if folder is None:
+        import pandas as pd
+
         return pd.concat(frames, ignore_index=True)
     return None
 
@@ -324,5 +355,7 @@ class ChunkColumns:
 
 
 def read_samples(folder: Path) -> pd.DataFrame:
+    import pandas as pd
+
     files = chunk_files(folder)
     return pd.concat([pq.read_table(p).to_pandas() for p in files], ignore_index=True)
