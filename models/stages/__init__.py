@@ -235,6 +235,21 @@ def junction_limit(x_new, x_old, columns):
     return out
 
 
+def warm_guesses(start, key, guesses):
+    """``guesses`` with the samples' own earlier solution of the same state first.
+
+    ``start`` maps a state (``"on"``, ``"off"``) to unknowns of the same samples solved
+    before, NaN rows where that solve did not converge (which take the first guess instead);
+    ``None`` or a missing key leaves ``guesses`` as they are. The electro-thermal loop solves
+    the same states at junction temperatures a fraction of a kelvin to a few kelvin apart, so
+    the earlier solution is a far closer start than any guess from the circuit.
+    """
+    prev = None if start is None else start.get(key)
+    if prev is None:
+        return guesses
+    return [np.where(np.isfinite(prev), prev, guesses[0])] + list(guesses)
+
+
 def solve_with_restarts(system, guesses, slow=True, **options):
     """Newton from the first guess; samples that fail retry from the next guesses in turn,
     and finally (``slow``) with a short maximum step (0.05 V, up to 300 iterations) from the
@@ -478,7 +493,7 @@ class PairStage:
 
         return evaluate_stage(self, samples)
 
-    def dc(self, samples, temps=None, temps_off=None, full=True, params=None):
+    def dc(self, samples, temps=None, temps_off=None, full=True, params=None, start=None):
         """DC solution at the given device temperatures [K] (default: the ambient); see
         :meth:`tolerance.models.stages.single.SingleStage.dc`."""
         params = params or device_parameters(self, samples)
@@ -502,7 +517,7 @@ class PairStage:
         demand_guess = load.current(vs - 1.0)[0]
         on = make(v_high, "on")
         starts = self.guesses("on", q1, q2, vs, demand_guess, g_be2)
-        r_on = solve_with_restarts(on, starts, **opts)
+        r_on = solve_with_restarts(on, warm_guesses(start, "on", starts), **opts)
         s_on = on.state(np.nan_to_num(r_on.x))
         x_on = np.where(r_on.converged[:, None], r_on.x, starts[0])
 
@@ -510,9 +525,11 @@ class PairStage:
             off = make_off(v_low, "on")
             off_starts = self.guesses("off", q1_off, q2_off, vs, demand_guess, g_be2,
                                       **circuit(v_low))
-            r_off = solve_with_restarts(off, off_starts + [x_on], **opts)
+            r_off = solve_with_restarts(off, warm_guesses(start, "off", off_starts + [x_on]),
+                                        **opts)
             s_off = off.state(np.nan_to_num(r_off.x))
-            return {"converged": r_on.converged & r_off.converged,
+            return {"converged": r_on.converged & r_off.converged, "x_on": r_on.x,
+                    "x_off": r_off.x,
                     "power_on": self._powers(samples, v_high, g_in, g_be1, g_be2, s_on, vs),
                     "power_off": self._powers(samples, v_low, g_in, g_be1, g_be2, s_off, vs)}
 
@@ -525,7 +542,7 @@ class PairStage:
         off = make_off(v_low, "on")
         off_starts = self.guesses("off", q1_off, q2_off, vs, demand_guess, g_be2,
                                   **circuit(v_low))
-        r_off = solve_with_restarts(off, off_starts + [x_on], **opts)
+        r_off = solve_with_restarts(off, warm_guesses(start, "off", off_starts + [x_on]), **opts)
         s_off = off.state(np.nan_to_num(r_off.x))
 
         target = THRESHOLD_FRACTION * np.where(r_on.converged, s_on["i_out"], 1.0)
@@ -576,6 +593,6 @@ class PairStage:
 
 
 __all__ += ["DriveSpec", "THRESHOLD_FRACTION", "junction_limit", "read_drive",
-            "solve_with_restarts"]
+            "solve_with_restarts", "warm_guesses"]
 __all__ += ["PAIR_METRICS", "PairStage", "PairSystem", "threshold_voltage", "transistor_power",
             "vbe_guess"]

@@ -39,6 +39,7 @@ from tolerance.models.stages import (
     solve_with_restarts,
     threshold_voltage,
     vbe_guess,
+    warm_guesses,
 )
 from tolerance.models.transistor import critical_voltage, junction_currents, terminal_offsets
 from tolerance.models.stages.evaluation import read_switching, read_thermal
@@ -192,12 +193,15 @@ class SingleStage:
             "drive": v_in * i_in,
         }
 
-    def dc(self, samples, temps=None, temps_off=None, full=True, params=None):
+    def dc(self, samples, temps=None, temps_off=None, full=True, params=None, start=None):
         """DC solution at the given device temperatures [K] (default: the ambient).
 
         ``temps_off`` are the temperatures of the off-state solve (default ``temps``). With
         ``full`` False only the on- and off-states are solved (the electro-thermal loop needs
-        no more); the result then holds the powers and convergence only.
+        no more); the result then holds the powers, convergence and the solved unknowns
+        ``x_on``, ``x_off`` (NaN rows where not converged) only. ``start`` (``{"on": x,
+        "off": x}`` of an earlier solve of the same samples) is tried before the guesses
+        (:func:`tolerance.models.stages.warm_guesses`).
         """
         params = params or device_parameters(self, samples)
         t, vs, v_high, v_low, g_in, g_pd, q, load = self._setup(samples, temps, params)
@@ -215,17 +219,18 @@ class SingleStage:
         vbe0 = vbe_guess(q, demand_guess)
         sat0 = np.stack([vbe0, vbe0 - pol * 0.15], axis=1)
         act0 = np.stack([vbe0, vbe0 - 0.5 * vs], axis=1)
-        r_on = solve_with_restarts(on, [sat0, act0], **opts)
+        r_on = solve_with_restarts(on, warm_guesses(start, "on", [sat0, act0]), **opts)
         c, o, i_on, _ = on.state(np.nan_to_num(r_on.x))
         x_on = np.where(r_on.converged[:, None], r_on.x, sat0)
 
         if not full:
             off = SingleSystem(q_off, load, vs, v_low, g_in, g_pd, "on")
             vb_off = np.minimum(np.abs(v_low) * g_in / (g_in + g_pd), 0.3) * q.polarity
-            r_off = solve_with_restarts(off, [np.stack([vb_off, vb_off - vs], axis=1), x_on,
-                                              act0], **opts)
+            off_starts = [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0]
+            r_off = solve_with_restarts(off, warm_guesses(start, "off", off_starts), **opts)
             c_off, o_off, i_l_off, _ = off.state(np.nan_to_num(r_off.x))
-            return {"converged": r_on.converged & r_off.converged,
+            return {"converged": r_on.converged & r_off.converged, "x_on": r_on.x,
+                    "x_off": r_off.x,
                     "power_on": self._powers(samples, t, v_high, g_in, g_pd, c, o, i_on, vs),
                     "power_off": self._powers(samples, t, v_low, g_in, g_pd, c_off, o_off,
                                               c_off.collector, vs)}
@@ -240,8 +245,8 @@ class SingleStage:
         # off-state: from cut-off, else from the on-state (a hot unit may conduct)
         off = SingleSystem(q_off, load, vs, v_low, g_in, g_pd, "on")
         vb_off = pol * np.minimum(np.abs(v_low) * g_in / (g_in + g_pd), 0.3)
-        r_off = solve_with_restarts(off, [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0],
-                                    **opts)
+        off_starts = [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0]
+        r_off = solve_with_restarts(off, warm_guesses(start, "off", off_starts), **opts)
         # the transistor's collector current (equal to the load's at the solution) keeps its
         # relative accuracy where the load voltage is a tiny difference of two large ones
         c_off, o_off, _, _ = off.state(np.nan_to_num(r_off.x))
