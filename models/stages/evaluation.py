@@ -9,7 +9,9 @@ Flow of :func:`evaluate_stage` for a chunk:
    switching transient is evaluated), sets T_j = T_a + theta_JA P (JESD51), until no junction
    moves by more than 0.05 K (:func:`tolerance.models.thermal.electrothermal`). A monolithic
    Darlington's two dies share one junction. With a static drive (no PWM frequency) the
-   off-state is solved at the ambient: a unit that is switched off has cooled down.
+   off-state is solved at the ambient: a unit that is switched off has cooled down. Each solve
+   starts from the sample's own earlier solution of the same state when no junction has moved
+   by more than :data:`WARM_START_KELVIN` since (the final solve of step 3 too).
 2. **Switching transient** (``[switching] enabled``; default on with a PWM drive or a coil
    load): turn-on and turn-off of every sample at the settled temperatures
    (:func:`tolerance.models.switching.switching_metrics`); with a PWM drive the switching

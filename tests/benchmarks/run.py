@@ -61,13 +61,20 @@ def best_of(fn, repeat: int = 3) -> float:
 
 def stage_figures(study, n: int, n_full: int) -> dict:
     """Samples/s of the DC evaluation (stage.dc: on, edge, off and threshold solves at the
-    ambient) and of the full evaluation (stage.evaluate: electro-thermal loop, switching
-    transient where the study enables it, ratings)."""
+    ambient), in the study's chunks as a run evaluates them, and of the full evaluation
+    (stage.evaluate: electro-thermal loop, switching transient where the study enables it,
+    ratings) of one chunk of ``n_full`` samples."""
     _, values = draw(study.parameters, None, "random", 3, n, 0, n)
-    dt = best_of(lambda: study.stage.dc(values))
-    out = study.stage.dc(values)
-    conv = float(np.mean(out["converged"]))
-    figures = {"dc_samples_per_s": n / dt, "converged_fraction": conv, "samples": n}
+    size = study.settings.chunk_size
+    pieces = [{k: v[a:a + size] for k, v in values.items()} for a in range(0, n, size)]
+
+    def dc():
+        return [study.stage.dc(piece) for piece in pieces]
+
+    dt = best_of(dc)
+    conv = float(np.mean(np.concatenate([out["converged"] for out in dc()])))
+    figures = {"dc_samples_per_s": n / dt, "converged_fraction": conv, "samples": n,
+               "chunk_size": size}
     _, v2 = draw(study.parameters, None, "random", 3, n_full, 0, n_full)
     dt_full = best_of(lambda: study.stage.evaluate(v2), repeat=1)
     sw = getattr(study.stage, "switching", None)
@@ -233,6 +240,10 @@ def print_table(f: dict) -> None:
           f"{ref.get('reference_samples_per_s', float('nan')):>12,.1f} "
           f"{ref.get('ratio', float('nan')):>8,.0f} "
           f"{ref.get('max_relative_difference', float('nan')):>13.2e}\n")
+    sizes = sorted({s["chunk_size"] for s in f["stages"].values() if "chunk_size" in s})
+    if sizes:
+        w(f"(DC in the studies' chunks of {', '.join(f'{c:,}' for c in sizes)} samples, as a "
+          f"run evaluates them; full: one chunk)\n")
     w(f"\n{'analysis':<20} {'seconds':>9} {'evaluations':>12} {'evaluations/s':>14}\n")
     for name, a in f["analyses"].items():
         w(f"{name:<20} {a['seconds']:>9.2f} {a['evaluations']:>12,} "
