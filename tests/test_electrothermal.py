@@ -24,6 +24,20 @@ def _one(samples, k):
     return {name: v[k:k + 1] for name, v in samples.items()}
 
 
+def test_warm_guesses_order_the_starts_per_sample():
+    from tolerance.models.stages import warm_guesses
+
+    g = [np.full((3, 2), 1.0), np.full((3, 2), 2.0)]
+    prev = np.array([[7.0, 7.0], [8.0, 8.0], [np.nan, np.nan]])
+    near = np.array([True, False, True])
+    got = [a[:, 0].tolist() for a in warm_guesses({"on": (prev, near)}, "on", g)]
+    # common practice, no source: a near sample starts from its own solution, a far one tries
+    # it after the circuit's guesses, one without a solution has the guesses only
+    assert got == [[7.0, 1.0, 1.0], [1.0, 2.0, 2.0], [2.0, 8.0, 2.0]]
+    assert warm_guesses(None, "on", g) is g
+    assert warm_guesses({"off": (prev, near)}, "on", g) is g
+
+
 @pytest.mark.parametrize("study_file", ["engine_bay_heater_darlington.toml",
                                         "shelf_led_sziklai.toml", "irrigation_valve_single.toml"])
 def test_warm_starts_keep_the_metrics_and_save_iterations(study_file, monkeypatch):

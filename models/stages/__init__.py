@@ -236,18 +236,30 @@ def junction_limit(x_new, x_old, columns):
 
 
 def warm_guesses(start, key, guesses):
-    """``guesses`` with the samples' own earlier solution of the same state first.
+    """``guesses`` with the samples' own earlier solution of the same state among them.
 
-    ``start`` maps a state (``"on"``, ``"off"``) to unknowns of the same samples solved
-    before, NaN rows where that solve did not converge (which take the first guess instead);
-    ``None`` or a missing key leaves ``guesses`` as they are. The electro-thermal loop solves
-    the same states at junction temperatures a fraction of a kelvin to a few kelvin apart, so
-    the earlier solution is a far closer start than any guess from the circuit.
+    ``start`` maps a state (``"on"``, ``"off"``) to ``(x, near)``: unknowns of the same samples
+    solved before (NaN rows where that solve did not converge) and a mask of the samples whose
+    junctions have moved little since. A near sample starts from its earlier solution and then
+    tries the guesses in turn; any other sample with an earlier solution tries the guesses
+    first and its earlier solution last, before the slow attempt of
+    :func:`solve_with_restarts`. ``None`` or a missing key leaves ``guesses`` as they are.
+    The electro-thermal loop solves the same states at junction temperatures a fraction of a
+    kelvin to a few kelvin apart, so the earlier solution is a far closer start than any guess
+    from the circuit; a sample that none of the circuit's guesses brings to convergence at its
+    new temperatures still may from there.
     """
-    prev = None if start is None else start.get(key)
-    if prev is None:
+    entry = None if start is None else start.get(key)
+    if entry is None:
         return guesses
-    return [np.where(np.isfinite(prev), prev, guesses[0])] + list(guesses)
+    prev, near = entry
+    known = np.all(np.isfinite(prev), axis=1)
+    near = (near & known)[:, None]
+    last = np.where(known[:, None], prev, guesses[-1])
+    ordered = [np.where(near, prev, guesses[0])]
+    ordered += [np.where(near, guesses[k - 1], guesses[k]) for k in range(1, len(guesses))]
+    ordered.append(np.where(near, guesses[-1], last))
+    return ordered
 
 
 def solve_with_restarts(system, guesses, slow=True, **options):

@@ -380,8 +380,9 @@ def evaluate_stage(stage, samples):
     solved_at: dict[str, dict[str, np.ndarray]] = {}
 
     def warm_start(temps_by_state, idx):
-        """The earlier solutions of samples ``idx`` where they are close enough to the
-        temperatures ``{state: {device: T}}`` of this solve (NaN rows elsewhere)."""
+        """The earlier solutions of samples ``idx`` and which of them are close enough to the
+        temperatures ``{state: {device: T}}`` of this solve to start from
+        (:func:`tolerance.models.stages.warm_guesses`)."""
         start = {}
         for key, x in solved.items():
             moved = np.zeros(idx.size)
@@ -389,8 +390,7 @@ def evaluate_stage(stage, samples):
                 t_now = np.broadcast_to(np.asarray(temps_by_state[key][d], dtype=float),
                                         idx.shape)
                 moved = np.maximum(moved, np.abs(t_now - solved_at[key][d][idx]))
-            near = (moved <= WARM_START_KELVIN)[:, None]  # never solved (NaN): not near
-            start[key] = np.where(near, x[idx], np.nan)
+            start[key] = (x[idx], moved <= WARM_START_KELVIN)  # never solved (NaN): not near
         return start
 
     def keep(res, temps_by_state, idx):
