@@ -34,6 +34,14 @@ MAX_ITERATIONS = 60
 #: a junction above this is beyond any model (and any silicon): the loop has run away [K]
 RUNAWAY_KELVIN = 1000.0
 
+#: largest step of the secant relaxation, in plain fixed-point steps (see
+#: :func:`electrothermal`): the secant is used where the estimated loop slope is below
+#: 1 - 1 / MAX_EXTRAPOLATION
+MAX_EXTRAPOLATION = 100.0
+#: and by at most this beyond the plain step [K]: an iterate far from the last one starts its
+#: DC solves from the circuit's guesses, not from the last solution
+EXTRAPOLATION_KELVIN = 5.0
+
 
 def junction_temperature(power, ambient, theta_ja):
     """Steady junction temperature in natural convection.
@@ -124,8 +132,20 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     sum of both powers through the shared thermal resistance.
 
     The iteration is damped (a relaxation factor that halves for a sample whose step grows),
-    so a stable electro-thermal loop converges even when d(theta P)/dT approaches 1. A sample
-    whose temperature is still moving after ``max_iterations``, whose temperature exceeds
+    so a stable electro-thermal loop converges even when d(theta P)/dT approaches 1. From the
+    second iteration on, each device's step is the secant step on T - T_a - theta P(T):
+    the plain step times 1 / (1 - F'), with the loop slope F' = d(theta P)/dT estimated from
+    the device's last two iterates. Where the dissipation falls steeply with temperature (a
+    stage at the edge of saturation that saturates as its gain rises with T) F' nears -1
+    and the plain iteration would swing between two temperatures for dozens of steps; where
+    it rises steeply (leakage and gain growing with T) F' nears 1 and the plain iteration
+    creeps up on its fixed point by a factor F' per step. The secant step converges
+    superlinearly in both; it extrapolates (F' > 0) only while the approach stays on one side,
+    by at most :data:`MAX_EXTRAPOLATION` plain steps and :data:`EXTRAPOLATION_KELVIN` beyond
+    the plain step, and is not used where F' is unknown (the
+    first step, a device whose temperature did not move) or near and above 1 (the damped
+    plain step takes over, and a runaway heats on until it is flagged). A sample whose
+    temperature is still moving after ``max_iterations``, whose temperature exceeds
     ``limit`` + 100 K (the loop would only go on heating), or whose power is not finite, is
     returned with ``settled = False``: thermal runaway. So is one that passes
     :data:`RUNAWAY_KELVIN`.
@@ -154,6 +174,9 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     iterations = np.zeros(n, dtype=np.int64)
     relax = np.ones(n)
     last_step = np.full(n, np.inf)
+    # each device's previous iterate and its residual theta P(T) + T_a - T, for the secant
+    prev_t = {d: np.full(n, np.nan) for d in names}
+    prev_r = {d: np.full(n, np.nan) for d in names}
     for it in range(1, max_iterations + 1):
         active = ~(settled | runaway)
         if not active.any():
@@ -170,8 +193,23 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
         for d in names:
             carrier = shared.get(d, d)
             target = np.asarray(ambient)[idx] + _at(theta[carrier], idx) * heat[carrier]
-            delta = target - temps[d][idx]
-            new[d] = temps[d][idx] + rel * delta
+            t_now = temps[d][idx]
+            delta = target - t_now
+            with np.errstate(divide="ignore", invalid="ignore"):
+                slope = (delta - prev_r[d][idx]) / (t_now - prev_t[d][idx])  # F' - 1
+            gain = slope + 1.0  # F' = d(theta P)/dT along the last step
+            # the secant step where F' is known and below 1: damping where the loop swings
+            # (F' < 0), extrapolation where it creeps up on its fixed point from one side
+            usable = (np.isfinite(gain) & (gain < 1.0 - 1.0 / MAX_EXTRAPOLATION)
+                      & ((gain < 0.0) | (delta * prev_r[d][idx] > 0.0)))
+            with np.errstate(divide="ignore", invalid="ignore"):
+                secant_w = np.clip(1.0 / (1.0 - gain), 1.0 / 64.0, MAX_EXTRAPOLATION)
+                # an extrapolation moves at most EXTRAPOLATION_KELVIN beyond the plain step
+                reach = np.maximum(1.0, 1.0 + EXTRAPOLATION_KELVIN / np.abs(delta))
+            w = np.where(usable, np.minimum(secant_w, reach), rel)
+            new[d] = t_now + w * delta
+            prev_t[d][idx] = t_now
+            prev_r[d][idx] = delta
             step_max = np.maximum(step_max, np.abs(delta))
         bad = ~np.isfinite(step_max)
         for d in names:

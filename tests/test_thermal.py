@@ -60,6 +60,43 @@ def test_fixed_point_matches_scipy_root_per_sample():
     assert res.settled.mean() > 0.8
 
 
+@pytest.mark.parametrize("slope, most", [(-0.98, 4), (-0.7, 4), (0.9, 16), (0.97, 16)])
+def test_steep_loops_settle_in_a_few_iterations(slope, most):
+    # a linear power law P = P0 + k (T - T1) through the fixed point T1 = T_a + theta P0 with
+    # loop slope theta k = slope: the plain iteration T <- T_a + theta P(T) contracts by
+    # |slope| per step (80 to 230 steps from the ambient to 0.05 K at 0.97 or -0.98; common
+    # practice, no source), the secant step solves a linear loop exactly from its third
+    # iterate; where it extrapolates (slope > 0) it moves at most 5 K beyond the plain step,
+    # so the up to 62 K still to go after the first step take up to a dozen more
+    ta = np.full(3, C0 + 25.0)
+    theta = np.array([50.0, 80.0, 120.0])
+    p0 = np.array([0.5, 0.8, 0.3])
+    k = slope / theta
+    t1 = ta + theta * p0
+    res = thermal.electrothermal(lambda t, i: {"q": p0[i] + k[i] * (t["q"] - t1[i])}, ta,
+                                 {"q": theta})
+    assert res.settled.all()
+    assert res.iterations.max() <= most
+    assert_allclose(res.temperatures["q"], t1, atol=1e-6)
+
+
+def test_secant_keeps_the_stable_fixed_point_of_a_loop_with_two():
+    # P0 exp(k (T - T_a)): two fixed points once theta P0 k e < 1, the lower one stable
+    # (0 < F' < 1) and the upper one unstable (F' > 1); the loop must settle on the lower one
+    # (scipy.optimize.brentq below the tangency point T_a + 1/k as the reference)
+    ta = np.full(4, C0 + 25.0)
+    theta = np.full(4, 100.0)
+    p0 = np.array([0.2, 0.3, 0.33, 0.36])
+    k = np.full(4, 0.01)
+    res = thermal.electrothermal(lambda t, i: {"q": p0[i] * np.exp(k[i] * (t["q"] - ta[i]))},
+                                 ta, {"q": theta}, settle=1e-6, max_iterations=400)
+    assert res.settled.all()
+    for i in range(4):
+        f = lambda t: t - ta[i] - theta[i] * p0[i] * np.exp(k[i] * (t - ta[i]))  # noqa: E731
+        lower = optimize.brentq(f, ta[i], ta[i] + 1.0 / k[i], xtol=1e-10)
+        assert res.temperatures["q"][i] == pytest.approx(lower, abs=1e-4)
+
+
 def test_runaway_is_flagged_and_a_stable_case_settles():
     ta = np.full(2, C0 + 25.0)
     theta = np.array([100.0, 100.0])
