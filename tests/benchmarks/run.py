@@ -171,6 +171,40 @@ def worker_figures(path: Path, n: int, rounds: int = 2) -> dict:
             "runs_s": {str(k): v for k, v in times.items()}}
 
 
+def command_figures(path: Path, n: int, jobs: int = 2) -> dict:
+    """Wall time of what ``tolerance run STUDY --samples n --jobs 2`` does, phase by phase:
+    reading the study (the datasheet fits of its transistors included), the run with its
+    insights, and the plots and reports; and the command itself in a fresh process."""
+    from tolerance.models.parts import _fit_cached
+    from tolerance.report import write_reports
+
+    _fit_cached.cache_clear()
+    t0 = time.perf_counter()
+    study = load_study(path)
+    t_load = time.perf_counter() - t0
+    with tempfile.TemporaryDirectory() as tmp:
+        out = Path(tmp) / "run"
+        t0 = time.perf_counter()
+        run(study, samples=n, jobs=jobs, out=out, force=True, insights=False)
+        t_run = time.perf_counter() - t0
+        t0 = time.perf_counter()
+        run(study, samples=n, jobs=jobs, out=out, force=True, insights=True)
+        t_insights = time.perf_counter() - t0 - t_run
+        t0 = time.perf_counter()
+        write_reports(out)
+        t_report = time.perf_counter() - t0
+        env = dict(os.environ, PYTHONPATH=str(ROOT))
+        t0 = time.perf_counter()
+        proc = subprocess.run([sys.executable, "-m", "tolerance", "run", str(path), "--samples",
+                               str(n), "--jobs", str(jobs), "--out", str(Path(tmp) / "cli"),
+                               "--quiet"], env=env, capture_output=True, text=True)
+        t_cli = time.perf_counter() - t0
+    if proc.returncode not in (0, 1):
+        raise RuntimeError(proc.stderr[-2000:])
+    return {"samples": n, "jobs": jobs, "load_s": t_load, "run_s": t_run,
+            "insights_s": t_insights, "report_s": t_report, "command_s": t_cli}
+
+
 def memory_figures(path: Path, n: int) -> dict:
     """Peak resident memory of a whole DC run in a child process (one worker)."""
     with tempfile.TemporaryDirectory() as tmp:
@@ -211,6 +245,7 @@ def main() -> int:
     first = ROOT / "studies" / "beacon_lamp_darlington.toml"
     figures["analyses"] = analysis_figures(first, 5_000 if quick else 20_000)
     figures["workers"] = worker_figures(first, 100_000 if quick else 400_000)
+    figures["command"] = command_figures(first, 50_000 if quick else 400_000)
     figures["memory"] = memory_figures(first, 500_000 if quick else 10_000_000)
 
     print_table(figures)
@@ -253,6 +288,12 @@ def print_table(f: dict) -> None:
       f"{wk['samples']:,} samples: speed-up {wk['speedup']:.2f} (best runs; the first "
       f"two-worker run, which starts the workers: {wk['two_workers_first_s']:.2f} s, "
       f"{wk['speedup_with_start']:.2f})\n")
+    cmd = f.get("command")
+    if cmd:
+        w(f"command line, {cmd['samples']:,} samples, {cmd['jobs']} workers: "
+          f"{cmd['command_s']:.1f} s in all; in one process: study with its datasheet fits "
+          f"{cmd['load_s']:.1f} s, run {cmd['run_s']:.1f} s, insights {cmd['insights_s']:.1f} s, "
+          f"plots and reports {cmd['report_s']:.1f} s\n")
     w(f"memory: {mem['samples']:,}-sample run, peak {mem['peak_memory_mb']:.0f} MB, "
       f"{mem['seconds']:.0f} s\n\n")
     t = f["targets"]
