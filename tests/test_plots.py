@@ -97,6 +97,27 @@ def test_histogram_counts_samples_left_out(result):
     assert "10 samples without a value" in fig.axes[0].get_title(loc="left")
 
 
+def test_histogram_panels_show_every_sample(result):
+    fig = plots.histogram(result.samples, "y", result.summary)
+    y = result.samples["y"].to_numpy()
+    bars = [p for p in fig.axes[0].patches if p.get_gid() == "histogram"]
+    # common practice, no source: the bars count every finite sample once
+    assert sum(b.get_height() for b in bars) == np.isfinite(y).sum()
+    (line,) = _lines(fig, "ecdf")
+    xs, fs = line.get_xdata(), line.get_ydata()
+    # numpy as the reference: at every drawn step the ECDF is the fraction of samples <= x
+    assert np.allclose(fs[1:], [np.mean(y <= v) for v in xs[1:]])
+    assert fs[0] == 0.0 and fs[-1] == 1.0
+
+
+def test_ecdf_ranks_thin_long_columns_exactly():
+    x = np.random.default_rng(2).normal(size=100_003)
+    xs, fs = plots._ecdf_ranks(x, most=500)
+    assert xs.size <= 501 and xs[1] == x.min() and xs[-1] == x.max()
+    # numpy as the reference: searchsorted counts the samples at or below each drawn point
+    assert np.allclose(fs[1:], np.searchsorted(np.sort(x), xs[1:], side="right") / x.size)
+
+
 # --- tornado --------------------------------------------------------------------------------
 
 def _top_to_bottom(ax):

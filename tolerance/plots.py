@@ -41,6 +41,8 @@ __all__ = [
 
 #: Resolution of saved figures [dots per inch].
 DPI = 110
+#: most points of a histogram's ECDF panel (some five per pixel of its width at DPI)
+ECDF_POINTS = 4000
 
 #: Colour-blind safe palette (seaborn "colorblind"), as RGB tuples.
 PALETTE = tuple(sns.color_palette("colorblind", 10))
@@ -193,9 +195,16 @@ def histogram(samples: pd.DataFrame, metric: str, summary: dict) -> Figure:
         fig = _figure(7.0, 5.6)
         ax, ax_cdf = fig.subplots(2, 1, sharex=True, height_ratios=[2.2, 1.0])
         if x.size:
-            sns.histplot(x=x, bins=_bin_edges(x), ax=ax, color=PALETTE[0], edgecolor="white",
-                         linewidth=0.4, alpha=0.85, zorder=2)
-            sns.ecdfplot(x=x, ax=ax_cdf, color=PALETTE[0], linewidth=1.6, zorder=3)
+            # the bars from their counts and the ECDF at a few thousand of its ranks: the
+            # same picture at this size, without handing half a million points to seaborn's
+            # histogram and ECDF (half of the figure's time at that count)
+            edges = _bin_edges(x)
+            counts, _ = np.histogram(x, bins=edges)
+            ax.bar(edges[:-1], counts, width=np.diff(edges), align="edge", color=PALETTE[0],
+                   edgecolor="white", linewidth=0.4, alpha=0.85, zorder=2, gid="histogram")
+            xs, fs = _ecdf_ranks(x)
+            ax_cdf.step(xs, fs, where="post", color=PALETTE[0], linewidth=1.6, zorder=3,
+                        gid="ecdf")
         handles = _draw_limits([ax, ax_cdf], criteria, lo_edge, hi_edge, unit)
         ax.set_xlim(lo_edge, hi_edge)
         ax.set_ylabel("samples")
@@ -389,6 +398,18 @@ def driver_scatter(samples: pd.DataFrame, input_name: str, metric: str, summary:
                      fontsize=10)
         ax.legend(loc="best", fontsize=8)
     return fig
+
+
+def _ecdf_ranks(x: np.ndarray, most: int = ECDF_POINTS) -> tuple[np.ndarray, np.ndarray]:
+    """The empirical CDF of ``x`` at its steps, or at ``most`` evenly spaced ranks (the first
+    and the last included) where it has more: exact values of the ECDF, (rank + 1) / n."""
+    xs = np.sort(x)
+    n = xs.size
+    if n <= most:
+        return np.concatenate([xs[:1], xs]), np.concatenate([[0.0], np.arange(1, n + 1) / n])
+    ranks = np.unique(np.linspace(0, n - 1, most).round().astype(np.int64))
+    return (np.concatenate([xs[:1], xs[ranks]]),
+            np.concatenate([[0.0], (ranks + 1) / n]))
 
 
 def _ecdf(values) -> tuple[np.ndarray, np.ndarray]:
