@@ -19,11 +19,16 @@ Per-sample spread of a transistor enters through two parameters:
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
 import functools
+import hashlib
+import json
+import os
 import tomllib
 from dataclasses import dataclass, field
 from importlib import resources
+from pathlib import Path
 
 import numpy as np
 
@@ -137,9 +142,66 @@ def library() -> dict[str, LibraryEntry]:
     return out
 
 
+#: environment variable naming the folder of the datasheet-fit cache; set to an empty string
+#: it turns the cache off
+CACHE_ENV = "TOLERANCE_CACHE_DIR"
+
+
+def fit_cache_dir() -> Path | None:
+    """Folder of the fit cache: ``$TOLERANCE_CACHE_DIR``, else ``tolerance/fits`` in the user
+    cache folder (``$XDG_CACHE_HOME`` or ``~/.cache``); None when turned off."""
+    env = os.environ.get(CACHE_ENV)
+    if env is not None:
+        return Path(env) / "fits" if env else None
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "tolerance" / "fits"
+
+
+@functools.lru_cache(maxsize=1)
+def _fit_code() -> str:
+    """Digest of the code a fit depends on: any change to it makes every cached fit stale."""
+    digest = hashlib.sha256()
+    models = Path(__file__).resolve().parent
+    for name in ("datasheet.py", "transistor.py", "newton.py", "parts.py"):
+        digest.update((models / name).read_bytes())
+    return digest.hexdigest()
+
+
 @functools.lru_cache(maxsize=64)
 def _fit_cached(items: tuple) -> FittedDevice:
-    return fit_datasheet(Datasheet.from_figures(dict(items)))
+    """The fit of a set of datasheet figures, from the fit cache when it holds one.
+
+    A fit takes one to three seconds (about 1,500 scalar root-finding steps) and every
+    command reads its study's transistors again, so fits are kept as JSON files named by a
+    digest of the figures and of the fitting code (:func:`_fit_code`): the same figures with
+    the same code give the same parameters, and a changed fit never reads an old file. An
+    unreadable or malformed file is fitted again and rewritten; a cache that cannot be
+    written is skipped.
+    """
+    datasheet = Datasheet.from_figures(dict(items))
+    folder = fit_cache_dir()
+    path = None
+    if folder is not None:
+        key = hashlib.sha256(json.dumps([list(items), _fit_code()]).encode()).hexdigest()
+        path = folder / f"{key[:40]}.json"
+        try:
+            data = json.loads(path.read_text())
+            return FittedDevice(datasheet, TransistorParameters(**data["template"]),
+                                int(data["iterations"]))
+        except (OSError, ValueError, TypeError, KeyError):
+            pass
+    fit = fit_datasheet(datasheet)
+    if path is not None:
+        data = {"figures": list(items), "template": dataclasses.asdict(fit.template),
+                "iterations": fit.iterations}
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            tmp = path.with_suffix(f".{os.getpid()}.tmp")
+            tmp.write_text(json.dumps(data))
+            os.replace(tmp, path)
+        except OSError:
+            pass
+    return fit
 
 
 def device_for(figures: dict) -> FittedDevice:

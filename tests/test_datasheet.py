@@ -227,3 +227,40 @@ def test_monolithic_darlington_study(tmp_path):
     # the pair's stated saturation voltage (2 V at 3 A / 12 mA) is met by the typical unit at
     # the nominal 1 A load: it stays below the figure (typical class values, from memory)
     assert 0.6 < res["vce_on"][0] < 2.0
+
+
+def test_fit_cache_gives_back_the_fit_and_never_a_stale_one(tmp_path, monkeypatch):
+    import json
+
+    from tolerance.models import parts
+    from tolerance.models.datasheet import Datasheet, fit_datasheet
+
+    figures = library()["small_signal_npn"].figures
+    monkeypatch.setenv(parts.CACHE_ENV, str(tmp_path))
+    parts._fit_cached.cache_clear()
+    try:
+        fresh = fit_datasheet(Datasheet.from_figures(figures))
+        first = device_for(figures)
+        files = sorted((tmp_path / "fits").glob("*.json"))
+        assert len(files) == 1
+        parts._fit_cached.cache_clear()
+        # common practice, no source: a cache returns exactly what the computation gives
+        # (JSON keeps every float through repr)
+        cached = device_for(figures)
+        assert cached.template == fresh.template == first.template
+        assert cached.iterations == fresh.iterations
+        # a damaged file is fitted again and rewritten
+        files[0].write_text("{not json")
+        parts._fit_cached.cache_clear()
+        assert device_for(figures).template == fresh.template
+        assert json.loads(files[0].read_text())["iterations"] == fresh.iterations
+        # other fitting code: another file, never the old one
+        monkeypatch.setattr(parts, "_fit_code", lambda: "changed code")
+        parts._fit_cached.cache_clear()
+        device_for(figures)
+        assert len(list((tmp_path / "fits").glob("*.json"))) == 2
+        # an empty setting turns the cache off
+        monkeypatch.setenv(parts.CACHE_ENV, "")
+        assert parts.fit_cache_dir() is None
+    finally:
+        parts._fit_cached.cache_clear()
