@@ -186,7 +186,10 @@ def _fit_cached(items: tuple) -> FittedDevice:
         path = folder / f"{key[:40]}.json"
         try:
             data = json.loads(path.read_text())
-            return FittedDevice(datasheet, TransistorParameters(**data["template"]),
+            template = data["template"]
+            if not all(isinstance(v, (int, float)) for v in template.values()):
+                raise ValueError("a cached parameter is not a number")
+            return FittedDevice(datasheet, TransistorParameters(**template),
                                 int(data["iterations"]))
         except (OSError, ValueError, TypeError, KeyError):
             pass

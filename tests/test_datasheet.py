@@ -250,10 +250,13 @@ def test_fit_cache_gives_back_the_fit_and_never_a_stale_one(tmp_path, monkeypatc
         assert cached.template == fresh.template == first.template
         assert cached.iterations == fresh.iterations
         # a damaged file is fitted again and rewritten
-        files[0].write_text("{not json")
-        parts._fit_cached.cache_clear()
-        assert device_for(figures).template == fresh.template
-        assert json.loads(files[0].read_text())["iterations"] == fresh.iterations
+        good = json.loads(files[0].read_text())
+        for damaged in ("{not json", json.dumps({**good, "template": {
+                **good["template"], "saturation_current": "1e-14"}})):
+            files[0].write_text(damaged)
+            parts._fit_cached.cache_clear()
+            assert device_for(figures).template == fresh.template
+            assert json.loads(files[0].read_text()) == good
         # other fitting code: another file, never the old one
         monkeypatch.setattr(parts, "_fit_code", lambda: "changed code")
         parts._fit_cached.cache_clear()
