@@ -142,9 +142,9 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     creeps up on its fixed point by a factor F' per step. The secant step converges
     superlinearly in both; it extrapolates (F' > 0) only while the approach stays on one side,
     by at most :data:`MAX_EXTRAPOLATION` plain steps and :data:`EXTRAPOLATION_KELVIN` beyond
-    the plain step, and is not used where F' is unknown (the
-    first step, a device whose temperature did not move) or near and above 1 (the damped
-    plain step takes over, and a runaway heats on until it is flagged). A sample whose
+    the plain step, and is not used where F' is unknown (the first step, a device whose
+    temperature did not move) or near and above 1 (the damped plain step takes over, and a
+    runaway heats on until it is flagged). A sample whose
     temperature is still moving after ``max_iterations``, whose temperature exceeds
     ``limit`` + 100 K (the loop would only go on heating), or whose power is not finite, is
     returned with ``settled = False``: thermal runaway. So is one that passes
