@@ -199,8 +199,9 @@ class SingleStage:
         ``temps_off`` are the temperatures of the off-state solve (default ``temps``). With
         ``full`` False only the on- and off-states are solved (the electro-thermal loop needs
         no more); the result then holds the powers, convergence and the solved unknowns
-        ``x_on``, ``x_off`` (NaN rows where not converged) only. ``start`` (``{"on": x,
-        "off": x}`` of an earlier solve of the same samples) is tried before the guesses
+        ``x_on``, ``x_off`` (NaN rows where not converged) only. ``start`` (``{"on": (x,
+        near), "off": (x, near)}``: an earlier solution of the same samples and which of them
+        are close enough to start from) joins the guesses
         (:func:`tolerance.models.stages.warm_guesses`).
         """
         params = params or device_parameters(self, samples)
