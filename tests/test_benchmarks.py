@@ -67,6 +67,36 @@ def test_benchmark_says_which_targets_are_met(capsys):
     assert v["10M-sample DC run < 1.5 GB"] == "n/a"
 
 
+def test_benchmark_prints_the_phases_of_a_command_line_run(capsys):
+    figures = _figures(dc=90_000.0, speedup=1.5, memory=900.0, samples=500_000)
+    figures["command"] = {"samples": 400_000, "jobs": 2, "load_s": 4.7, "load_cached_s": 0.002,
+                          "run_s": 10.4, "insights_s": 5.3, "report_s": 15.1, "command_s": 40.4}
+    _script("run").print_table(figures)
+    (line,) = [x for x in capsys.readouterr().out.splitlines() if x.startswith("command line")]
+    # common practice, no source: every phase is printed with the figure it was given
+    for text in ("400,000 samples", "2 workers", "40.4 s in all", "4.7 s", "0.0 s with the fits",
+                 "run 10.4 s", "insights 5.3 s", "reports 15.1 s"):
+        assert text in line, text
+
+
+def test_command_figures_time_every_phase(monkeypatch):
+    import os
+
+    from tolerance.models import parts
+
+    run = _script("run")
+    monkeypatch.setenv(parts.CACHE_ENV, "")
+    before = os.environ.get(parts.CACHE_ENV)
+    f = run.command_figures(STUDIES / "beacon_lamp_darlington.toml", 300, jobs=1)
+    # the phases are timed and the command ran in its own process; the caller's cache
+    # setting is put back (common practice, no source)
+    assert f["samples"] == 300 and f["jobs"] == 1
+    for key in ("load_s", "load_cached_s", "run_s", "report_s", "command_s"):
+        assert f[key] > 0.0, key
+    assert f["load_cached_s"] < f["load_s"]
+    assert os.environ.get(parts.CACHE_ENV) == before
+
+
 def test_hotspots_counts_the_newton_iterations_of_each_dc_solve():
     from tolerance.api import load_study
 
