@@ -41,7 +41,7 @@ __all__ = [
 
 #: Resolution of saved figures [dots per inch].
 DPI = 110
-#: most points of a histogram's ECDF panel (some five per pixel of its width at DPI)
+#: most points of a drawn ECDF (some five per pixel of the plot's width at DPI)
 ECDF_POINTS = 4000
 
 #: Colour-blind safe palette (seaborn "colorblind"), as RGB tuples.
@@ -412,11 +412,6 @@ def _ecdf_ranks(x: np.ndarray, most: int = ECDF_POINTS) -> tuple[np.ndarray, np.
             np.concatenate([[0.0], (ranks + 1) / n]))
 
 
-def _ecdf(values) -> tuple[np.ndarray, np.ndarray]:
-    x = np.sort(_finite(values))
-    return x, np.arange(1, x.size + 1) / max(x.size, 1)
-
-
 def whatif_overlay(baseline: np.ndarray, pinned: np.ndarray, metric: str, unit: str | None,
                    limits=None, labels: tuple[str, str] = ("baseline", "pinned")) -> Figure:
     """ECDFs of a metric before and after a what-if change, with its limits.
@@ -439,8 +434,9 @@ def whatif_overlay(baseline: np.ndarray, pinned: np.ndarray, metric: str, unit: 
     matplotlib.figure.Figure
         Baseline as a solid step line, the what-if run dashed, in different colours.
     """
-    b, fb = _ecdf(baseline)
-    p, fp = _ecdf(pinned)
+    base, pin = _finite(baseline), _finite(pinned)
+    b, fb = _ecdf_ranks(base)
+    p, fp = _ecdf_ranks(pin)
     lims = _limits_of(limits)
     marks = [lim.get(s) for lim in lims for s in ("min", "max")]
     lo_edge, hi_edge = _x_range(np.concatenate([b, p]), marks)
@@ -448,9 +444,9 @@ def whatif_overlay(baseline: np.ndarray, pinned: np.ndarray, metric: str, unit: 
         fig = _figure(7.0, 4.4)
         ax = fig.subplots()
         ax.step(b, fb, where="post", linestyle=LINESTYLES[0], color=PALETTE[0], linewidth=1.8,
-                label=f"{labels[0]} ({b.size})", gid="ecdf:baseline")
+                label=f"{labels[0]} ({base.size})", gid="ecdf:baseline")
         ax.step(p, fp, where="post", linestyle=LINESTYLES[1], color=PALETTE[1], linewidth=1.8,
-                label=f"{labels[1]} ({p.size})", gid="ecdf:pinned")
+                label=f"{labels[1]} ({pin.size})", gid="ecdf:pinned")
         handles = _draw_limits([ax], [(f"limit {i + 1}", lim) for i, lim in enumerate(lims)],
                                lo_edge, hi_edge, unit)
         ax.set_xlim(lo_edge, hi_edge)
