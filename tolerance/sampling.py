@@ -27,8 +27,8 @@ BLOCK = 4096
 
 
 def _block_uniforms(kind: str, seed: int, block: int, size: int, dim: int) -> np.ndarray:
-    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block,)))
     if kind == "random":
+        rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(block,)))
         return rng.random((size, dim))
     if kind == "lhs":
         return latin_hypercube(seed, block, size, dim)
