@@ -243,7 +243,9 @@ def warm_guesses(start, key, guesses):
     junctions have moved little since. A near sample starts from its earlier solution and then
     tries the guesses in turn; any other sample with an earlier solution tries the guesses
     first and its earlier solution last, before the slow attempt of
-    :func:`solve_with_restarts`. ``None`` or a missing key leaves ``guesses`` as they are.
+    :func:`solve_with_restarts`; a sample without one gets NaN for that last start, which
+    :func:`tolerance.models.newton.newton_solve` gives up at its first iteration instead of
+    repeating a guess it has tried. ``None`` or a missing key leaves ``guesses`` as they are.
     The electro-thermal loop solves the same states at junction temperatures a fraction of a
     kelvin to a few kelvin apart, so the earlier solution is a far closer start than any guess
     from the circuit; a sample that none of the circuit's guesses brings to convergence at its
@@ -255,7 +257,7 @@ def warm_guesses(start, key, guesses):
     prev, near = entry
     known = np.all(np.isfinite(prev), axis=1)
     near = (near & known)[:, None]
-    last = np.where(known[:, None], prev, guesses[-1])
+    last = np.where(known[:, None], prev, np.nan)
     ordered = [np.where(near, prev, guesses[0])]
     ordered += [np.where(near, guesses[k - 1], guesses[k]) for k in range(1, len(guesses))]
     ordered.append(np.where(near, guesses[-1], last))
