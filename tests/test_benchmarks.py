@@ -91,7 +91,7 @@ def test_command_figures_time_every_phase(monkeypatch):
     # the phases are timed and the command ran in its own process; the caller's cache
     # setting is put back (common practice, no source)
     assert f["samples"] == 300 and f["jobs"] == 1
-    for key in ("load_s", "load_cached_s", "run_s", "report_s", "command_s"):
+    for key in ("load_s", "load_cached_s", "run_s", "insights_s", "report_s", "command_s"):
         assert f[key] > 0.0, key
     assert f["load_cached_s"] < f["load_s"]
     assert os.environ.get(parts.CACHE_ENV) == before
