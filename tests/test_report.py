@@ -216,6 +216,39 @@ def test_reports_are_reproducible(folder, tmp_path):
     assert (copy / "report.html").read_bytes() == before_html
 
 
+def test_plots_drawn_by_two_workers_are_byte_identical(folder, tmp_path):
+    # common practice, no source: a figure depends only on its own task, so the PNG files
+    # and the reports that embed them must not depend on the number of workers
+    from tolerance.cli import main
+
+    copy = tmp_path / "two"
+    shutil.copytree(folder, copy)
+    shutil.rmtree(copy / "plots")
+    (copy / "report.html").unlink()
+    assert main(["report", str(copy), "--jobs", "2"]) == 0
+    serial = sorted(p.name for p in (folder / "plots").glob("*.png"))
+    assert serial and sorted(p.name for p in (copy / "plots").glob("*.png")) == serial
+    for name in serial:
+        assert (copy / "plots" / name).read_bytes() == (folder / "plots" / name).read_bytes()
+    for name in ("report.html", "report.md"):
+        assert (copy / name).read_bytes() == (folder / name).read_bytes()
+    with pytest.raises(ValueError, match="jobs must be at least 1"):
+        report.render_plots([], 0)
+
+
+def test_the_report_module_leaves_the_plotting_stack_to_whoever_draws(tmp_path):
+    # with workers drawing the plots the parent process never needs matplotlib or seaborn
+    # (about 3 s of imports); checked in a fresh interpreter
+    import sys
+
+    code = ("import sys, tolerance.report\n"
+            "print(sorted(m for m in ('matplotlib', 'seaborn', 'tolerance.plots') "
+            "if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, cwd=tmp_path)
+    assert out.stdout.strip() == "[]"
+
+
 def test_undecided_verdict_is_explained(write_study, tmp_path):
     # 3000 samples cannot settle a 24 % failure rate against an allowed 24.5 % either way
     study = load_study(write_study(STUDY.format(rate=0.245)))

@@ -125,6 +125,8 @@ def build_parser() -> argparse.ArgumentParser:
                        "results")
     p.add_argument("folder", help="a result folder written by run, whatif, worstcase, "
                    "sensitivity or choose")
+    p.add_argument("--jobs", type=_positive_int, default=1,
+                   help="parallel workers drawing the plots (the files do not depend on it)")
 
     p = sub.add_parser("check", help="validate a study and print its parameter table")
     p.add_argument("study", nargs="?", help="study file (TOML); none: the built-in demo")
@@ -208,7 +210,7 @@ def cmd_run(args) -> int:
                  scheduler=args.scheduler, target_ci=args.target_ci)
     if args.waveforms is not None:
         _write_waveforms(study, out, args.waveforms, result.summary["seed"])
-    _write_report(out)
+    _write_report(out, args.jobs)
     if not args.quiet:
         print_summary(result.summary, study, out)
     return exit_status(result.summary["verdict"])
@@ -237,10 +239,10 @@ def _analysis_out(args, study, suffix: str) -> Path:
     return out
 
 
-def _write_report(out: Path) -> None:
+def _write_report(out: Path, jobs: int = 1) -> None:
     from tolerance import report
 
-    report.write_reports(out)
+    report.write_reports(out, jobs)
 
 
 def _samples(args, study) -> int:
@@ -262,7 +264,7 @@ def cmd_whatif(args) -> int:
                                   args.jobs)
     write_json(out / "whatif.json", result)
     _save_pair(out, study, base.samples, pinned.samples)
-    _write_report(out)
+    _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write
         w(f"\nwhat if {', '.join(args.pin)}  ({result['samples']:,} samples, common random "
@@ -304,7 +306,7 @@ def cmd_worstcase(args) -> int:
     result = study_worst_case(study, _samples(args, study), args.seed if args.seed is not None
                               else study.settings.seed)
     write_json(out / "worstcase.json", result)
-    _write_report(out)
+    _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write
         w(f"\nworst case of {study.title}  ({result['evaluations']:,} evaluations)\n\n")
@@ -331,7 +333,7 @@ def cmd_sensitivity(args) -> int:
     result = study_sensitivity(study, _samples(args, study), args.seed if args.seed is not None
                                else study.settings.seed, args.sobol_samples)
     write_json(out / "sensitivity.json", result)
-    _write_report(out)
+    _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write
         w(f"\nsensitivity of {study.title}  ({result['evaluations']:,} evaluations)\n")
@@ -368,7 +370,7 @@ def cmd_choose(args) -> int:
     out = _analysis_out(args, study, "-choose")
     result = choose(study, args.vary, args.samples, args.seed, args.sampler, args.jobs, tradeoff)
     write_json(out / "choose.json", result)
-    _write_report(out)
+    _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write
         names = list(result["vary"])
@@ -400,7 +402,7 @@ def cmd_report(args) -> int:
                                          "choose.json")
     ):
         raise UsageError(f"{folder}: holds no saved results (summary.json or an analysis file)")
-    paths = report.write_reports(folder)
+    paths = report.write_reports(folder, args.jobs)
     sys.stdout.write(f"wrote {paths['html']} and {paths['md']}\n")
     return 0
 

@@ -24,7 +24,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from matplotlib.ticker import FuncFormatter
 
-from tolerance.units import format_quantity
+from tolerance.units import format_quantity, spread_unit
 
 __all__ = [
     "DPI",
@@ -71,11 +71,6 @@ def _unit_formatter(unit: str | None, digits: int = 3) -> FuncFormatter:
         return format_quantity(value, unit, digits)
 
     return FuncFormatter(fmt)
-
-
-def _spread_unit(unit: str | None) -> str | None:
-    """Unit of a difference of two values (absolute temperatures differ in kelvin)."""
-    return "K" if unit == "temperature" else unit
 
 
 def _finite(values) -> np.ndarray:
@@ -389,7 +384,7 @@ def driver_scatter(samples: pd.DataFrame, input_name: str, metric: str, summary:
                 color=FAIL_COLOR, alpha=0.9, label=f"fail ({int(fail.sum())})", gid="fail")
         ax.axhline(0.0, color="black", linestyle="--", linewidth=1.2, label="nearest limit")
         ax.xaxis.set_major_formatter(_unit_formatter(units.get(input_name)))
-        ax.yaxis.set_major_formatter(_unit_formatter(_spread_unit(unit)))
+        ax.yaxis.set_major_formatter(_unit_formatter(spread_unit(unit)))
         ax.set_xlabel(input_name)
         ax.set_ylabel(f"margin of {metric} (inside > 0)")
         skipped = int((~valid).sum())

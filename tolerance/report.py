@@ -22,9 +22,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from tolerance import plots, runner
+from tolerance import runner
 from tolerance.cli import SAFETY
-from tolerance.units import UnitError, format_quantity
+from tolerance.units import UnitError, format_quantity, spread_unit
 
 __all__ = [
     "EXTRA_FILES",
@@ -33,7 +33,9 @@ __all__ = [
     "format_rate",
     "format_value",
     "render_html",
+    "PlotTask",
     "render_markdown",
+    "render_plots",
     "write_reports",
 ]
 
@@ -199,7 +201,7 @@ def metrics_table(summary: dict) -> Table:
         unit = m.get("unit")
         row = [name, str(m.get("description", ""))]
         for key, _ in _PERCENTILES:
-            u = plots._spread_unit(unit) if key == "std" else unit
+            u = spread_unit(unit) if key == "std" else unit
             row.append(format_value(m.get(key), u))
         rows.append(row)
     return Table(header, rows, "metrics-table", "Metric percentiles (not converged left out)")
@@ -343,6 +345,45 @@ def _sensitivity_rows(summary: dict, extras: dict) -> list[dict]:
     return []
 
 
+@dataclass(frozen=True)
+class PlotTask:
+    """One figure of a report: the :mod:`tolerance.plots` function that draws it, its
+    arguments, the PNG file it goes to and its caption. Tasks are independent of each other,
+    so :func:`render_plots` may draw them in any process."""
+
+    draw: str
+    args: tuple
+    kwargs: dict
+    path: Path
+    caption: str
+
+
+def _render(task: PlotTask) -> Path:
+    # imported here: with workers drawing, the parent never pays for matplotlib and seaborn
+    from tolerance import plots
+
+    return plots.save(getattr(plots, task.draw)(*task.args, **task.kwargs), task.path)
+
+
+def render_plots(tasks: list[PlotTask], jobs: int = 1) -> list[Path]:
+    """Draw and save every task's figure, in ``jobs`` joblib workers (loky) when more than one.
+
+    Each figure depends only on its own task, and matplotlib's Agg rendering is the same in
+    every process, so the PNG files are byte-identical whatever the number of workers
+    (``tests/test_report.py`` checks it). With the run's workers still alive (joblib keeps
+    its process pool), a report after a run with ``--jobs 2`` starts no new processes; each
+    worker imports matplotlib and seaborn once.
+    """
+    if jobs < 1:
+        raise ValueError(f"jobs must be at least 1, got {jobs}")
+    if jobs == 1 or len(tasks) < 2:
+        return [_render(t) for t in tasks]
+    from joblib import Parallel, delayed
+
+    return Parallel(n_jobs=min(jobs, len(tasks)), backend="loky")(
+        delayed(_render)(t) for t in tasks)
+
+
 def _remove_stale_plots(plot_dir: Path) -> None:
     for stale in sorted(plot_dir.glob("*.png")):
         if stale.name.startswith(PLOT_PREFIXES):
@@ -354,10 +395,10 @@ PLOT_ROWS = 500_000
 
 
 def _run_plots(folder: Path, summary: dict, extras: dict,
-               plot_dir: Path) -> list[tuple[Path, str]]:
+               plot_dir: Path) -> list[PlotTask]:
     """Histograms, tornado charts and driver scatters of a Monte Carlo run."""
     samples_dir = folder / SAMPLES_DIR
-    made: list[tuple[Path, str]] = []
+    made: list[PlotTask] = []
     columns: dict[str, np.ndarray] = {}
 
     read = runner.ChunkColumns(samples_dir)
@@ -373,16 +414,17 @@ def _run_plots(folder: Path, summary: dict, extras: dict,
 
     criteria = summary.get("criteria", {})
     for metric in _limited_metrics(summary):
-        fig = plots.histogram(pd.DataFrame({metric: col(metric)}), metric, summary)
-        path = plots.save(fig, plot_dir / f"hist-{_safe_name(metric)}.png")
-        made.append((path, f"Distribution of {metric} with its limits and counted failure rate"))
+        made.append(PlotTask("histogram", (pd.DataFrame({metric: col(metric)}), metric, summary),
+                             {}, plot_dir / f"hist-{_safe_name(metric)}.png",
+                             f"Distribution of {metric} with its limits and counted failure "
+                             f"rate"))
 
     rows = _sensitivity_rows(summary, extras)
     for metric in _limited_metrics(summary):
         if any(r["metric"] == metric for r in rows):
-            fig = plots.tornado(rows, metric)
-            path = plots.save(fig, plot_dir / f"tornado-{_safe_name(metric)}.png")
-            made.append((path, f"Rank sensitivity of {metric} (SRRC)"))
+            made.append(PlotTask("tornado", (rows, metric), {},
+                                 plot_dir / f"tornado-{_safe_name(metric)}.png",
+                                 f"Rank sensitivity of {metric} (SRRC)"))
 
     units = {p["name"]: p.get("unit") for p in summary.get("parameters", []) or []
              if isinstance(p, dict) and "name" in p}
@@ -396,16 +438,17 @@ def _run_plots(folder: Path, summary: dict, extras: dict,
         related = [f"pass.{n}" for n, c in criteria.items() if c["metric"] == metric]
         frame = pd.DataFrame({top: col(top), metric: col(metric),
                               **{r: col(r) for r in related}})
-        fig = plots.driver_scatter(frame, top, metric, summary, units)
-        path = plots.save(fig, plot_dir / f"driver-{_safe_name(name)}.png")
-        made.append((path, f"Top failure driver of {name}: {top} against the margin of {metric}"))
+        made.append(PlotTask("driver_scatter", (frame, top, metric, summary, units), {},
+                             plot_dir / f"driver-{_safe_name(name)}.png",
+                             f"Top failure driver of {name}: {top} against the margin of "
+                             f"{metric}"))
     return made
 
 
 _RUN_TITLES = {"turn_on": "Turn-on", "turn_off": "Turn-off"}
 
 
-def _waveform_plots(data: dict, plot_dir: Path) -> list[tuple[Path, str]]:
+def _waveform_plots(data: dict, plot_dir: Path) -> list[PlotTask]:
     """Load current and V_CE against time of the stored samples, one figure per transient."""
     entries = [e for e in (data.get("samples") or []) if isinstance(e, dict)]
     units = data.get("units") or {}
@@ -419,25 +462,24 @@ def _waveform_plots(data: dict, plot_dir: Path) -> list[tuple[Path, str]]:
         labels = [str(e.get("label", "")) + ("" if e.get("sample") is None
                                              else f" (sample {e['sample']})")
                   for e, _ in traces]
-        fig = plots.waveforms([np.asarray(t["time"], dtype=float) for _, t in traces],
-                              [np.asarray(t["load_current"], dtype=float) for _, t in traces],
-                              labels, units.get("load_current", "A"),
-                              units.get("time", "s"), ylabel="load current",
-                              lower_traces=[np.asarray(t["vce"], dtype=float)
-                                            for _, t in traces],
-                              lower_unit=units.get("vce", "V"), lower_ylabel="V_CE",
-                              title=f"{word} transient of {len(traces)} stored samples",
-                              time_scale="symlog")
-        path = plots.save(fig, plot_dir / f"waveforms-{run}.png")
+        args = ([np.asarray(t["time"], dtype=float) for _, t in traces],
+                [np.asarray(t["load_current"], dtype=float) for _, t in traces],
+                labels, units.get("load_current", "A"), units.get("time", "s"))
+        kwargs = dict(ylabel="load current",
+                      lower_traces=[np.asarray(t["vce"], dtype=float) for _, t in traces],
+                      lower_unit=units.get("vce", "V"), lower_ylabel="V_CE",
+                      title=f"{word} transient of {len(traces)} stored samples",
+                      time_scale="symlog")
         note = f"; devices at the {temp} temperature of each sample" if temp else ""
-        made.append((path, f"{word} transient: load current and V_CE against time from the "
-                           f"drive edge (linear near zero, logarithmic beyond) of the stored "
-                           f"samples ({', '.join(labels)}){note}"))
+        made.append(PlotTask("waveforms", args, kwargs, plot_dir / f"waveforms-{run}.png",
+                             f"{word} transient: load current and V_CE against time from the "
+                             f"drive edge (linear near zero, logarithmic beyond) of the stored "
+                             f"samples ({', '.join(labels)}){note}"))
     return made
 
 
 def _whatif_plots(folder: Path, whatif: dict, summary: dict | None,
-                  plot_dir: Path) -> list[tuple[Path, str]]:
+                  plot_dir: Path) -> list[PlotTask]:
     """ECDF overlays from whatif_samples.parquet (columns baseline.<metric>, pinned.<metric>)."""
     path = folder / WHATIF_SAMPLES
     if not path.is_file() or not isinstance(whatif, dict):
@@ -459,15 +501,16 @@ def _whatif_plots(folder: Path, whatif: dict, summary: dict | None,
         if b not in frame or q not in frame:
             continue
         unit = (metrics.get(metric) or {}).get("unit")
-        fig = plots.whatif_overlay(frame[b].to_numpy(dtype=float), frame[q].to_numpy(dtype=float),
-                                   metric, unit, limits.get(metric),
-                                   labels=("baseline", f"pinned {pins}" if pins else "pinned"))
-        out = plots.save(fig, plot_dir / f"whatif-{_safe_name(metric)}.png")
-        made.append((out, f"What-if {pins or ''}: distribution of {metric}, baseline vs pinned"))
+        made.append(PlotTask(
+            "whatif_overlay", (frame[b].to_numpy(dtype=float), frame[q].to_numpy(dtype=float),
+                               metric, unit, limits.get(metric)),
+            {"labels": ("baseline", f"pinned {pins}" if pins else "pinned")},
+            plot_dir / f"whatif-{_safe_name(metric)}.png",
+            f"What-if {pins or ''}: distribution of {metric}, baseline vs pinned"))
     return made
 
 
-def _choose_plots(choose: dict, plot_dir: Path) -> list[tuple[Path, str]]:
+def _choose_plots(choose: dict, plot_dir: Path) -> list[PlotTask]:
     """Yield map over the candidate values and the trade-off frontier, from choose.json."""
     if not isinstance(choose, dict) or not isinstance(choose.get("candidates"), list):
         return []
@@ -487,19 +530,21 @@ def _choose_plots(choose: dict, plot_dir: Path) -> list[tuple[Path, str]]:
     df = pd.DataFrame(rows)
     made = []
     y = names[1] if len(names) == 2 else None
-    fig = plots.yield_map(df, names[0], y, x_unit=units.get(names[0]),
-                          y_unit=units.get(y) if y else None)
-    made.append((plots.save(fig, plot_dir / "choose-yield.png"),
-                 f"Yield over the candidate values of {', '.join(names)}"))
+    made.append(PlotTask("yield_map", (df, names[0], y),
+                         {"x_unit": units.get(names[0]), "y_unit": units.get(y) if y else None},
+                         plot_dir / "choose-yield.png",
+                         f"Yield over the candidate values of {', '.join(names)}"))
     trade = choose.get("tradeoff") or {}
     if len(trade) == 2:
         (mx, ix), (my, iy) = trade.items()
         # a metric judged at its low percentile has a lower limit: larger is better
-        fig = plots.frontier(df, mx, my, minimize_x=ix.get("statistic") != "p001",
-                             minimize_y=iy.get("statistic") != "p001",
-                             x_unit=ix.get("unit"), y_unit=iy.get("unit"))
-        made.append((plots.save(fig, plot_dir / "choose-frontier.png"),
-                     f"Trade-off between {mx} and {my} with the non-dominated frontier"))
+        made.append(PlotTask("frontier", (df, mx, my),
+                             {"minimize_x": ix.get("statistic") != "p001",
+                              "minimize_y": iy.get("statistic") != "p001",
+                              "x_unit": ix.get("unit"), "y_unit": iy.get("unit")},
+                             plot_dir / "choose-frontier.png",
+                             f"Trade-off between {mx} and {my} with the non-dominated "
+                             f"frontier"))
     return made
 
 
@@ -775,7 +820,7 @@ def render_markdown(doc: list[Block]) -> str:
     return "\n".join(out).rstrip("\n") + "\n"
 
 
-def write_reports(folder) -> dict:
+def write_reports(folder, jobs: int = 1) -> dict:
     """Write plots, report.html and report.md for a finished run or analysis folder.
 
     Parameters
@@ -787,6 +832,8 @@ def write_reports(folder) -> dict:
         overlays for a what-if and a yield map / trade-off frontier for a value choice;
         waveforms.json (``tolerance run --waveforms K``) gives the turn-on and turn-off
         waveform plots.
+    jobs : int
+        Workers drawing the plots (:func:`render_plots`); the files do not depend on it.
 
     Returns
     -------
@@ -814,7 +861,7 @@ def write_reports(folder) -> dict:
     plot_dir = folder / PLOTS_DIR
     plot_dir.mkdir(exist_ok=True)
     _remove_stale_plots(plot_dir)
-    made: list[tuple[Path, str]] = []
+    made: list[PlotTask] = []
     if summary is not None:
         made += _run_plots(folder, summary, extras, plot_dir)
     if "whatif.json" in extras:
@@ -823,10 +870,11 @@ def write_reports(folder) -> dict:
         made += _choose_plots(extras["choose.json"], plot_dir)
     if (folder / WAVEFORMS_FILE).is_file():
         made += _waveform_plots(_read_json(folder / WAVEFORMS_FILE), plot_dir)
-    figures = [(f"{PLOTS_DIR}/{p.name}", p.read_bytes(), caption) for p, caption in made]
+    paths = render_plots(made, jobs)
+    figures = [(f"{PLOTS_DIR}/{p.name}", p.read_bytes(), t.caption) for p, t in zip(paths, made)]
     doc = build_document(summary, extras, figures)
     title = doc[0].text
     html_path, md_path = folder / HTML_FILE, folder / MD_FILE
     html_path.write_text(render_html(doc, title), encoding="utf-8", newline="\n")
     md_path.write_text(render_markdown(doc), encoding="utf-8", newline="\n")
-    return {"html": html_path, "md": md_path, "plots": [p for p, _ in made]}
+    return {"html": html_path, "md": md_path, "plots": paths}

@@ -38,6 +38,7 @@ __all__ = [
     "parse_series_range",
     "preferred_values",
     "snap",
+    "spread_unit",
 ]
 
 
@@ -279,6 +280,11 @@ def _plain(x: float, digits: int) -> str:
     if text in ("-0", ""):
         text = "0"
     return text
+
+
+def spread_unit(unit: str | None) -> str | None:
+    """Unit of a difference of two values (absolute temperatures differ in kelvin)."""
+    return "K" if unit == "temperature" else unit
 
 
 def format_quantity(x: float, unit: str, digits: int = 3) -> str:
