@@ -9,7 +9,9 @@ from scipy import integrate, stats
 
 from tolerance.sensitivity import (
     as_array_function,
+    average_ranks,
     failure_drivers,
+    failure_drivers_of,
     rank_sensitivity,
     sobol_analysis,
 )
@@ -322,3 +324,45 @@ def test_failure_drivers_length_mismatch():
     x, failed = _failure_data(n=50)
     with pytest.raises(ValueError, match="entries"):
         failure_drivers(x, failed[:-1])
+
+
+def test_average_ranks_equal_scipy_rankdata():
+    rng = np.random.default_rng(12)
+    # ties of every length (small integers), no ties, a constant column, negative zero
+    x = np.column_stack([rng.integers(0, 40, 5000), rng.normal(size=5000), np.full(5000, 2.5),
+                         rng.choice([-0.0, 0.0, 1.0], 5000)]).astype(float)
+    # scipy.stats.rankdata is the reference (method "average", ranks along the first axis)
+    assert np.array_equal(average_ranks(x), stats.rankdata(x, axis=0))
+    assert np.array_equal(average_ranks(x[:, 0]), stats.rankdata(x[:, 0]))
+    assert np.array_equal(average_ranks(x[:1]), stats.rankdata(x[:1], axis=0))
+    assert average_ranks(np.zeros((0, 2))).shape == (0, 2)
+
+
+@pytest.mark.parametrize("n", [150, 6000])
+def test_failure_driver_statistics_equal_scipy_ks_2samp(n):
+    rng = np.random.default_rng(n)
+    # ties (a parameter on a few values), a smooth input, one that does not matter, and
+    # failures on both sides of the statistic's sign
+    x = pd.DataFrame({"steps": rng.integers(0, 7, n).astype(float), "smooth": rng.normal(size=n),
+                      "idle": rng.uniform(size=n)})
+    failed = {"low": (x["steps"] + 0.3 * rng.normal(size=n) < 1.5).to_numpy(),
+              "high": (x["smooth"] > 1.0).to_numpy(),
+              "none": np.zeros(n, dtype=bool), "all": np.ones(n, dtype=bool)}
+    out = failure_drivers_of(x, failed)
+    for key in ("low", "high"):
+        f = failed[key]
+        ranking = {r["input"]: r for r in out[key]["ranking"]}
+        for name in x.columns:
+            # scipy.stats.ks_2samp is the reference: statistic, sign and p-value
+            ref = stats.ks_2samp(x[name][f], x[name][~f],
+                                 method="exact" if n <= 200 else "asymp")
+            got = ranking.get(name)
+            if got is None:  # beyond the top 5: not the case with three inputs
+                raise AssertionError(name)
+            assert got["ks"] == float(ref.statistic)
+            assert got["direction"] == ("none" if ref.statistic == 0 else
+                                        "low" if ref.statistic_sign > 0 else "high")
+            assert got["p_value"] == pytest.approx(float(ref.pvalue), rel=1e-12, abs=1e-300)
+        # one label alone gives what it gives among several
+        assert failure_drivers(x, f) == out[key]
+    assert out["none"]["text"] == "no failures" and out["all"]["text"] == "all samples failed"

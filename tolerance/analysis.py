@@ -105,7 +105,7 @@ def insights(study: Study, column) -> dict:
     drivers, capability, tail = {}, {}, {}
     head = slice(0, min(n, INSIGHT_ROWS))
     converged = column("converged")[head].astype(bool)
-    all_inputs = None
+    failing = {}
     for c in study.criteria:
         values = column(c.metric)[head][converged]
         capability[c.name] = stats.capability(values, c.minimum, c.maximum)
@@ -113,10 +113,11 @@ def insights(study: Study, column) -> dict:
         del values
         failed = converged & ~column(f"pass.{c.name}")[head].astype(bool)
         if failed.any() and varying:
-            if all_inputs is None:
-                all_inputs = pd.DataFrame({p.name: column(p.name)[head][converged]
-                                           for p in varying})
-            drivers[c.name] = sensitivity.failure_drivers(all_inputs, failed[converged], units)
+            failing[c.name] = failed[converged]
+    if failing:
+        # every criterion's drivers at once: each input column is sorted once for all
+        all_inputs = pd.DataFrame({p.name: column(p.name)[head][converged] for p in varying})
+        drivers = sensitivity.failure_drivers_of(all_inputs, failing, units)
     result["failure_drivers"] = drivers
     result["insight_rows"] = min(n, INSIGHT_ROWS)
     result["capability"] = capability

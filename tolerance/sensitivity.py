@@ -29,6 +29,7 @@ from scipy import stats
 __all__ = [
     "as_array_function",
     "failure_drivers",
+    "failure_drivers_of",
     "rank_sensitivity",
     "sobol_analysis",
 ]
@@ -37,6 +38,38 @@ __all__ = [
 # ---------------------------------------------------------------------------------------------
 # rank-based measures
 # ---------------------------------------------------------------------------------------------
+
+
+def average_ranks(values: np.ndarray) -> np.ndarray:
+    """Column-wise ranks from 1, ties given the mean of the ranks they span.
+
+    Parameters
+    ----------
+    values : ndarray, shape (n, k) or (n,)
+        Finite data, one variable per column.
+
+    Returns
+    -------
+    ndarray of float, the shape of ``values``
+        Equal to ``scipy.stats.rankdata(values, axis=0)`` (method ``"average"``; the ranks
+        are exact halves, ``tests/test_sensitivity.py`` checks the equality). Each column is
+        sorted once as a contiguous copy with numpy's default (unstable) sort, whose order
+        within a run of equal values does not matter here: about three times faster than
+        the stable sort along the first axis of the whole array.
+    """
+    x = np.asarray(values, dtype=float)
+    flat = x.ndim == 1
+    x = x[:, None] if flat else x
+    n, k = x.shape
+    ranks = np.empty((n, k), order="F")  # column by column, as scipy returns them
+    for j in range(k if n else 0):
+        col = np.ascontiguousarray(x[:, j])
+        order = np.argsort(col)
+        xs = col[order]
+        ends = np.flatnonzero(np.append(xs[1:] != xs[:-1], True))
+        starts = np.concatenate(([0], ends[:-1] + 1))
+        ranks[order, j] = np.repeat(0.5 * (starts + ends) + 1.0, ends - starts + 1)
+    return ranks[:, 0] if flat else ranks
 
 
 def _standardized_ranks(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -54,7 +87,7 @@ def _standardized_ranks(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     constant : ndarray of bool, shape (k,)
         True for columns whose values are all equal.
     """
-    ranks = stats.rankdata(values, axis=0)
+    ranks = average_ranks(values)
     ranks = ranks - ranks.mean(axis=0)
     scale = np.sqrt(np.mean(ranks**2, axis=0))
     constant = scale == 0.0
@@ -479,7 +512,7 @@ def _best_threshold(x: np.ndarray, failed: np.ndarray, side: str) -> tuple[float
     j : float
         Youden's J = (share of failures inside) - (share of passes inside).
     """
-    order = np.argsort(x, kind="stable")
+    order = np.argsort(x)  # cuts lie between distinct values: ties may come in any order
     xs = x[order]
     fs = failed[order]
     n_fail = fs.sum()
@@ -524,6 +557,60 @@ def _percent(fraction: float) -> str:
     if v >= 1.0:
         return f"{v:.1f}".rstrip("0").rstrip(".")
     return f"{v:.2g}"
+
+
+def _ks_table(x: np.ndarray, failed: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Two-sample Kolmogorov-Smirnov statistics, failed against passed samples, of every
+    input column for every failure label, from one sort of each column.
+
+    Parameters
+    ----------
+    x : ndarray, shape (n, p)
+        Finite inputs.
+    failed : list of ndarray of bool, shape (n,)
+        Failure labels, each with at least one failure and one pass.
+
+    Returns
+    -------
+    d, sign : ndarray, shape (len(failed), p)
+        The statistic ``max |F_failed - F_passed|`` and its sign as
+        :func:`scipy.stats.ks_2samp` reports them (+1 where ``F_failed - F_passed`` reaches
+        its largest distance above zero, ties included, else -1).
+
+    Notes
+    -----
+    Both empirical CDFs are counts among the samples at or below each distinct value
+    (the ends of runs of equal values in the sorted column) divided by the group sizes, the
+    same integers and divisions as scipy's ``searchsorted`` form, so the statistics are
+    equal to its own (``tests/test_sensitivity.py`` checks it). Sorting each column once
+    instead of both groups for every label and input saves most of the run insights' time.
+    """
+    n, p = x.shape
+    d = np.zeros((len(failed), p))
+    sign = np.ones((len(failed), p))
+    k = np.arange(1, n + 1)
+    sizes = [int(np.count_nonzero(f)) for f in failed]
+    for i in range(p):
+        col = np.ascontiguousarray(x[:, i])
+        order = np.argsort(col)  # the order within runs of equal values does not matter
+        xs = col[order]
+        ends = np.flatnonzero(np.append(xs[1:] != xs[:-1], True))
+        for c, fail in enumerate(failed):
+            cum_f = np.cumsum(fail[order])[ends]
+            diff = cum_f / sizes[c] - (k[ends] - cum_f) / (n - sizes[c])
+            high = float(diff.max())
+            low = float(np.clip(-diff.min(), 0.0, 1.0))
+            # scipy.stats.ks_2samp: the negative side wins only when strictly larger
+            d[c, i], sign[c, i] = (low, -1.0) if low > high else (high, 1.0)
+    return d, sign
+
+
+def _ks_p_value(d: float, n_fail: int, n_pass: int) -> float:
+    """Two-sided p-value of a two-sample KS statistic by Smirnov's asymptotic form with the
+    effective size ``m n / (m + n)``, as :func:`scipy.stats.ks_2samp` computes it with
+    ``method="asymp"``."""
+    m, k = sorted([float(n_fail), float(n_pass)], reverse=True)
+    return float(np.clip(stats.kstwo.sf(d, np.round(m * k / (m + k))), 0.0, 1.0))
 
 
 def failure_drivers(
@@ -584,24 +671,57 @@ def failure_drivers(
     With no failures the ranking is empty and the text reads ``"no failures"``; when every
     sample failed the text reads ``"all samples failed"``.
     """
+    return failure_drivers_of(inputs, {"": failed}, units, formatter, top)[""]
+
+
+def failure_drivers_of(
+    inputs: pd.DataFrame,
+    failed: Mapping[str, np.ndarray],
+    units: dict[str, str] | None = None,
+    formatter: Callable[[float, str], str] | None = None,
+    top: int = 5,
+) -> dict[str, dict]:
+    """:func:`failure_drivers` of several failure labels (one per criterion) on the same
+    inputs, each input column sorted once for all of them.
+
+    Returns
+    -------
+    dict
+        For each key of ``failed``, what :func:`failure_drivers` returns for its label.
+    """
     units = units or {}
     fmt = formatter if formatter is not None else _default_formatter()
-    failed_all = np.asarray(failed, dtype=bool).reshape(-1)
-    if failed_all.size != len(inputs):
-        raise ValueError(
-            f"failed has {failed_all.size} entries but inputs has {len(inputs)} rows"
-        )
     names = [str(c) for c in inputs.columns]
     x_all = inputs.to_numpy(dtype=float)
     ok = np.all(np.isfinite(x_all), axis=1)
     x = x_all[ok]
-    fail = failed_all[ok]
+    labels = {}
+    for key, f in failed.items():
+        f = np.asarray(f, dtype=bool).reshape(-1)
+        if f.size != len(inputs):
+            raise ValueError(f"failed has {f.size} entries but inputs has {len(inputs)} rows")
+        labels[key] = f[ok]
+    mixed = [key for key, f in labels.items() if 0 < np.count_nonzero(f) < f.size]
+    d, sign = _ks_table(x, [labels[key] for key in mixed]) if mixed else (None, None)
+    out = {}
+    for key, fail in labels.items():
+        ks = None
+        if key in mixed:
+            c = mixed.index(key)
+            ks = (d[c], sign[c])
+        out[key] = _drivers(names, x, fail, ks, int((~ok).sum()), units, fmt, top)
+    return out
+
+
+def _drivers(names, x, fail, ks, dropped, units, fmt, top) -> dict:
+    """The failure drivers of one label, with its KS statistics ``ks = (d, sign)`` (None
+    when the label has no failure or no pass)."""
     n_fail = int(fail.sum())
     n = int(fail.size)
     base = {
         "failures": n_fail,
         "samples": n,
-        "dropped": int((~ok).sum()),
+        "dropped": dropped,
     }
     empty = {
         "ranking": [],
@@ -622,20 +742,21 @@ def failure_drivers(
         }
 
     n_pass = n - n_fail
-    method = "exact" if n <= 200 else "asymp"
     ranking = []
     for i, name in enumerate(names):
-        res = stats.ks_2samp(x[fail, i], x[~fail, i], method=method)
-        ks = float(res.statistic)
-        if ks == 0.0:
+        if n <= 200:  # small runs: scipy's exact distribution of the statistic
+            res = stats.ks_2samp(x[fail, i], x[~fail, i], method="exact")
+            stat, above, p_value = float(res.statistic), res.statistic_sign > 0, float(res.pvalue)
+        else:
+            stat, above = float(ks[0][i]), ks[1][i] > 0
+            p_value = _ks_p_value(stat, n_fail, n_pass)
+        if stat == 0.0:
             direction = "none"
         else:
-            # statistic_sign > 0: the CDF of the failures lies above that of the passes,
+            # above: the CDF of the failures lies above that of the passes,
             # i.e. failures concentrate at lower values.
-            direction = "low" if res.statistic_sign > 0 else "high"
-        ranking.append(
-            {"input": name, "ks": ks, "direction": direction, "p_value": float(res.pvalue)}
-        )
+            direction = "low" if above else "high"
+        ranking.append({"input": name, "ks": stat, "direction": direction, "p_value": p_value})
     ranking.sort(key=lambda r: -r["ks"])
     ranking = ranking[: max(int(top), 0)] if top is not None else ranking
 
