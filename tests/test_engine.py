@@ -205,7 +205,8 @@ def test_a_worker_writing_chunks_imports_no_more_than_it_needs(tmp_path):
     assert (tmp_path / "part-000000.parquet").is_file()
 
 
-def test_chunk_columns_read_what_the_run_keeps(linear, tmp_path):
+@pytest.mark.parametrize("open_files", [128, 1])
+def test_chunk_columns_read_what_the_run_keeps(linear, tmp_path, monkeypatch, open_files):
     import pyarrow.parquet as pq
 
     from tolerance import runner
@@ -215,16 +216,25 @@ def test_chunk_columns_read_what_the_run_keeps(linear, tmp_path):
     folder = tmp_path / "r" / SAMPLES_DIR
     files = runner.chunk_files(folder)
     assert len(files) > 1
+    # files kept open between reads (a short run), or each opened for each read
+    monkeypatch.setattr(runner, "OPEN_FILES", open_files)
     read = runner.ChunkColumns(folder)
     frame = pq.read_table(folder).to_pandas()  # reference: pyarrow's own dataset reader
     # common practice, no source: every column, in sample order and with its type, equals
-    # the whole table read at once, also on the second reading (cached footers)
-    for _ in range(2):
+    # the whole table read at once, also on the second reading (cached footers), and after
+    # the kept files were closed
+    for rounds in range(3):
+        if rounds == 2:
+            read.close()
         for name in frame.columns:
             got = read(name)
             assert got.dtype == frame[name].to_numpy().dtype, name
             assert np.array_equal(got, frame[name].to_numpy(), equal_nan=got.dtype.kind == "f")
-    assert np.array_equal(read("sample"), np.arange(res.summary["samples"]))
+    assert sum(f is not None for f in read._open) == (len(files) if open_files >= len(files)
+                                                       else 0)
+    with read:
+        assert np.array_equal(read("sample"), np.arange(res.summary["samples"]))
+    assert all(f is None for f in read._open)
 
 
 def test_overrides_pin_and_scale(linear):

@@ -243,8 +243,9 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     folder = out / SAMPLES_DIR
     runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler,
                    stop_rule=stop_rule)
-    column = runner.ChunkColumns(folder)
-    summary = summarize(spec, column, **meta, extra=_extra(study, column, insights, target_ci))
+    with runner.ChunkColumns(folder) as column:
+        summary = summarize(spec, column, **meta,
+                            extra=_extra(study, column, insights, target_ci))
     write_json(out / SUMMARY_FILE, summary)
     return RunResult(study, summary, out)
 

@@ -226,8 +226,8 @@ def _write_waveforms(study, out: Path, k: int, seed: int) -> None:
 
     folder = out / SAMPLES_DIR
     columns = ["sample", *study.parameter_names, "turn_off_delay"]
-    read = runner.ChunkColumns(folder)
-    frame = pd.DataFrame({c: read(c) for c in columns})
+    with runner.ChunkColumns(folder) as read:
+        frame = pd.DataFrame({c: read(c) for c in columns})
     write_json(out / "waveforms.json", record_waveforms(study, frame, k, seed))
 
 

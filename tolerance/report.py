@@ -398,10 +398,13 @@ def _run_plots(folder: Path, summary: dict, extras: dict,
                plot_dir: Path) -> list[PlotTask]:
     """Histograms, tornado charts and driver scatters of a Monte Carlo run."""
     samples_dir = folder / SAMPLES_DIR
+    with runner.ChunkColumns(samples_dir) as read:
+        return _run_plot_tasks(read, summary, extras, plot_dir)
+
+
+def _run_plot_tasks(read, summary: dict, extras: dict, plot_dir: Path) -> list[PlotTask]:
     made: list[PlotTask] = []
     columns: dict[str, np.ndarray] = {}
-
-    read = runner.ChunkColumns(samples_dir)
 
     def col(name):
         # plots draw at most PLOT_ROWS evenly spaced samples (every k-th); the counted rates
