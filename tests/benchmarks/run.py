@@ -175,7 +175,8 @@ def command_figures(path: Path, n: int, jobs: int = 2) -> dict:
     """Wall time of what ``tolerance run STUDY --samples n --jobs 2`` does, phase by phase:
     reading the study with its transistors' datasheet fits (once fitting, once from the fit
     cache), the run (its insights timed once more on its samples and counted apart), and the
-    plots (drawn by the run's ``jobs`` workers) and reports; and the command itself in a fresh process (fits cached)."""
+    plots (drawn by the run's ``jobs`` workers) and reports; and the command itself in a
+    fresh process (fits cached)."""
     from tolerance.analysis import insights
     from tolerance.api import SAMPLES_DIR
     from tolerance.models import parts
