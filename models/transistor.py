@@ -101,6 +101,10 @@ REFERENCE_TEMPERATURE = 298.15
 
 _EXP_MAX = 80.0  # argument above which exp() is continued linearly
 _Q1_DENOMINATOR_MIN = 0.1  # q_1 denominator below which q_1 is continued linearly
+#: a junction biased above this many emission thermal voltages counts as forward-biased in
+#: :meth:`TransistorParameters.carry_junctions` (e^10 I_S: where its own law sets its voltage;
+#: common practice, no source)
+CARRY_FORWARD = 10.0
 
 
 def thermal_voltage(temperature):
@@ -193,16 +197,43 @@ class TransistorParameters:
         """A copy with some fields changed."""
         return replace(self, **changes)
 
+    def saturation_current_factor(self, temperature):
+        """I_S(T) / I_S(T_0) [1] by the band-gap law (T/T_0)^XTI exp[(q E_g / k)(1/T_0 - 1/T)]."""
+        t = np.asarray(temperature, dtype=float)
+        return (t / REFERENCE_TEMPERATURE) ** self.saturation_current_exponent * np.exp(
+            self.energy_gap * ELEMENTARY_CHARGE / BOLTZMANN
+            * (1.0 / REFERENCE_TEMPERATURE - 1.0 / t)
+        )
+
+    def carry_junctions(self, v_be, v_bc, t_from, t_to):
+        """Junction voltages at ``t_to`` [K] with the transport currents the voltages
+        ``v_be``, ``v_bc`` [V] (actual sign) carry at ``t_from``: a Newton start for a
+        solve at a new temperature from a solution at the old one.
+
+        A forward-biased junction (more than :data:`CARRY_FORWARD` emission thermal
+        voltages) keeps I_S(T) exp(v / (N V_T(T))), so v_to = N V_T(t_to) (v_from /
+        (N V_T(t_from)) + ln(I_S(t_from) / I_S(t_to))), about -2 mV/K at 0.65 V (the
+        textbook V_BE drift, e.g. Sedra & Smith, Microelectronic Circuits); the voltage of
+        any other junction is set by the circuit, not by its own law, and is kept.
+        """
+        pol = self.polarity
+        ln_ratio = np.log(self.saturation_current_factor(t_from)
+                          / self.saturation_current_factor(t_to))
+        scale = np.asarray(t_to, dtype=float) / np.asarray(t_from, dtype=float)
+        out = []
+        for v, emission in ((v_be, self.forward_emission), (v_bc, self.reverse_emission)):
+            u = pol * np.asarray(v, dtype=float)
+            nvt_from = emission * thermal_voltage(t_from)
+            carried = (u / nvt_from + ln_ratio) * nvt_from * scale
+            out.append(pol * np.where(u > CARRY_FORWARD * nvt_from, carried, u))
+        return out[0], out[1]
+
     def at_temperature(self, temperature) -> "ScaledTransistor":
         """Parameters scaled to ``temperature`` [K] (see the module Notes for the laws)."""
         t = np.asarray(temperature, dtype=float)
         vt = thermal_voltage(t)
         ratio = t / REFERENCE_TEMPERATURE
-        # band-gap law for I_S: (T/T0)^XTI exp[(q Eg / k)(1/T0 - 1/T)]
-        is_factor = ratio ** self.saturation_current_exponent * np.exp(
-            self.energy_gap * ELEMENTARY_CHARGE / BOLTZMANN
-            * (1.0 / REFERENCE_TEMPERATURE - 1.0 / t)
-        )
+        is_factor = self.saturation_current_factor(t)
         beta_factor = ratio ** self.beta_exponent
         with np.errstate(divide="ignore"):
             inv = lambda v: 1.0 / np.asarray(v, dtype=float)  # noqa: E731 - inf -> 0

@@ -433,6 +433,9 @@ class PairStage:
 
     name = "pair"
     system = PairSystem
+    #: the transistors whose (v_BE, v_BC) are the columns of the on- and off-state unknowns,
+    #: in order
+    junction_devices = ("Q1", "Q2")
 
     def __init__(self, env, drive, rb, rbe1, rbe2, q1, q2, load, parameters,
                  internal_rbe1=None, internal_rbe2=None, suggested_correlations=()):

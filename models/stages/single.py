@@ -138,6 +138,8 @@ class SingleStage:
     """The configured single-NPN stage (picklable)."""
 
     name = "single"
+    #: the transistor whose (v_BE, v_BC) are the columns of the on- and off-state unknowns
+    junction_devices = ("Q1",)
 
     def __init__(self, env, drive, rb, rpd, q1, load, parameters):
         self.env = env
