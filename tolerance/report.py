@@ -28,12 +28,12 @@ from tolerance.units import UnitError, format_quantity, spread_unit
 
 __all__ = [
     "EXTRA_FILES",
+    "PlotTask",
     "format_interval",
     "format_number",
     "format_rate",
     "format_value",
     "render_html",
-    "PlotTask",
     "render_markdown",
     "render_plots",
     "write_reports",
@@ -417,7 +417,9 @@ def _run_plot_tasks(read, summary: dict, extras: dict, plot_dir: Path) -> list[P
 
     criteria = summary.get("criteria", {})
     for metric in _limited_metrics(summary):
-        made.append(PlotTask("histogram", (pd.DataFrame({metric: col(metric)}), metric, summary),
+        # copy=False: the task holds the cached column itself, not a second copy
+        frame = pd.DataFrame({metric: col(metric)}, copy=False)
+        made.append(PlotTask("histogram", (frame, metric, summary),
                              {}, plot_dir / f"hist-{_safe_name(metric)}.png",
                              f"Distribution of {metric} with its limits and counted failure "
                              f"rate"))
