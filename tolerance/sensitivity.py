@@ -41,6 +41,11 @@ __all__ = [
 # ---------------------------------------------------------------------------------------------
 
 
+def _run_ends(xs: np.ndarray) -> np.ndarray:
+    """Index of the last element of every run of equal values of a sorted array."""
+    return np.flatnonzero(np.append(xs[1:] != xs[:-1], True))
+
+
 def average_ranks(values: np.ndarray) -> np.ndarray:
     """Column-wise ranks from 1, ties given the mean of the ranks they span.
 
@@ -66,8 +71,7 @@ def average_ranks(values: np.ndarray) -> np.ndarray:
     for j in range(k if n else 0):
         col = np.ascontiguousarray(x[:, j])
         order = np.argsort(col)
-        xs = col[order]
-        ends = np.flatnonzero(np.append(xs[1:] != xs[:-1], True))
+        ends = _run_ends(col[order])
         starts = np.concatenate(([0], ends[:-1] + 1))
         ranks[order, j] = np.repeat(0.5 * (starts + ends) + 1.0, ends - starts + 1)
     return ranks[:, 0] if flat else ranks
@@ -595,8 +599,7 @@ def _ks_table(x: np.ndarray, failed: list[np.ndarray]) -> tuple[np.ndarray, np.n
     for i in range(p):
         col = np.ascontiguousarray(x[:, i])
         order = np.argsort(col)  # the order within runs of equal values does not matter
-        xs = col[order]
-        ends = np.flatnonzero(np.append(xs[1:] != xs[:-1], True))
+        ends = _run_ends(col[order])
         for c, fail in enumerate(failed):
             cum_f = np.cumsum(fail[order])[ends]
             diff = cum_f / sizes[c] - (k[ends] - cum_f) / (n - sizes[c])
