@@ -706,7 +706,9 @@ def failure_drivers_of(
         if f.size != len(inputs):
             raise ValueError(f"failed has {f.size} entries but inputs has {len(inputs)} rows")
         labels[key] = f[ok]
-    mixed = [key for key, f in labels.items() if 0 < np.count_nonzero(f) < f.size]
+    # up to 200 samples the drivers take scipy's exact test instead (:func:`_drivers`)
+    mixed = [key for key, f in labels.items()
+             if 0 < np.count_nonzero(f) < f.size and f.size > 200]
     d, sign = _ks_table(x, [labels[key] for key in mixed]) if mixed else (None, None)
     out = {}
     for key, fail in labels.items():
@@ -720,7 +722,8 @@ def failure_drivers_of(
 
 def _drivers(names, x, fail, ks, dropped, units, fmt, top) -> dict:
     """The failure drivers of one label, with its KS statistics ``ks = (d, sign)`` (None
-    when the label has no failure or no pass)."""
+    when the label has no failure or no pass, or up to 200 samples, where scipy's exact
+    test gives them)."""
     n_fail = int(fail.sum())
     n = int(fail.size)
     base = {
