@@ -84,12 +84,16 @@ def test_command_figures_time_every_phase(monkeypatch):
 
     from tolerance.models import parts
 
+    from tolerance import analysis
+
     run = _script("run")
     monkeypatch.setenv(parts.CACHE_ENV, "")
     before = os.environ.get(parts.CACHE_ENV)
+    plain = analysis.insights
     f = run.command_figures(STUDIES / "beacon_lamp_darlington.toml", 300, jobs=1)
     # the phases are timed and the command ran in its own process; the caller's cache
-    # setting is put back (common practice, no source)
+    # setting and the timed insights function are put back (common practice, no source)
+    assert analysis.insights is plain
     assert f["samples"] == 300 and f["jobs"] == 1
     for key in ("load_s", "load_cached_s", "run_s", "insights_s", "report_s", "command_s"):
         assert f[key] > 0.0, key
