@@ -8,7 +8,6 @@ metric. Sample-based functions drop NaN entries; count-based functions reject in
 from __future__ import annotations
 
 import math
-import warnings
 
 import numpy as np
 from scipy import optimize, stats
@@ -16,6 +15,7 @@ from scipy import optimize, stats
 __all__ = [
     "capability",
     "clopper_pearson",
+    "gpd_fit",
     "half_width",
     "percentile_summary",
     "tail_estimate",
@@ -283,6 +283,92 @@ _ASSUMPTION_GPD = (
 )
 
 
+#: Grid points of the profile-likelihood search in :func:`gpd_fit` [count].
+_GPD_GRID = 64
+
+
+def gpd_fit(excess) -> tuple[float, float]:
+    """Maximum-likelihood fit of a generalized Pareto distribution (location 0) to positive
+    exceedances, over shapes of at least -1, by Grimshaw's reduction to one dimension.
+
+    With ``theta = shape / scale`` the likelihood equations give ``shape = mean(log(1 +
+    theta x))`` for each ``theta``, so the profile log-likelihood per sample is
+    ``-log(shape / theta) - 1 - shape``, a function of ``theta`` alone (Grimshaw, "Computing
+    maximum likelihood estimates for the generalized Pareto distribution," Technometrics 35,
+    1993). It is searched on a grid in ``log(1 + theta max(x))``, each interior maximum of the
+    grid refined by bounded Brent minimization between its neighbours.
+
+    Below shape -1 the likelihood grows without bound as the end of the support approaches
+    the largest exceedance, so no maximum exists there (Smith, Biometrika 72, 1985). At shape
+    -1 the distribution is uniform on ``[0, scale]``, whose best scale is the largest
+    exceedance: that corner competes with the interior maxima, and it is the answer for a
+    tail that ends abruptly.
+
+    Parameters
+    ----------
+    excess : array_like
+        Exceedances over the threshold [any unit], all positive and finite, not all equal.
+
+    Returns
+    -------
+    (shape, scale) : tuple of float
+        The estimates [1] and [unit of ``excess``].
+    """
+    x = np.asarray(excess, dtype=float)
+    top = float(np.max(x))
+    y = x / top  # in (0, 1]; theta * x = t * y with t = theta * top
+
+    def shape_of(t: float) -> float:
+        return float(np.mean(np.log1p(t * y)))
+
+    def per_sample_loss(w: float) -> float:
+        # minus the log-likelihood per sample at the profile point t = expm1(w), less
+        # log(top); the shape -1 corner (uniform on [0, top]) scores 0
+        t = math.expm1(w)
+        if abs(t) < 1e-12:  # the exponential limit: shape 0, scale mean(x)
+            return math.log(float(np.mean(y))) + 1.0
+        k = shape_of(t)
+        return math.log(k / t) + 1.0 + k
+
+    # shape(t) rises with t, from -inf (t -> -1, where the largest exceedance meets the end
+    # of the support; reached only logarithmically, so with many samples not within double
+    # precision) through 0 (t = 0). Where the profile's shape falls below -1 the best shape
+    # is -1 and the loss -log(-t) falls to the corner's 0, so the search starts at shape -1.
+    t_low = -1.0 + 1e-15
+    if shape_of(t_low) < -1.0:
+        t_low = optimize.brentq(lambda t: shape_of(t) + 1.0, t_low, 0.0, xtol=1e-15,
+                                rtol=1e-14)
+    # every stationary point of the profile lies below theta = 2 (mean - min) / min^2
+    # (Grimshaw 1993, sec. 2); one unit of log(1 + t) beyond it keeps the top grid point
+    # clear of the maximum
+    low = float(np.min(y))
+    t_top = min(2.0 * (float(np.mean(y)) - low) / (low * low), 1e300)
+    grid = np.linspace(math.log1p(t_low), math.log1p(t_top) + 1.0, _GPD_GRID)
+    losses = np.array([per_sample_loss(w) for w in grid])
+    # interior minima of the grid, and its first point where the loss still falls towards it
+    starts = list(np.flatnonzero((losses[1:-1] <= losses[:-2]) & (losses[1:-1] <= losses[2:]))
+                  + 1)
+    if losses[0] < losses[1]:
+        starts.append(0)
+    best_loss, best_w = 0.0, None  # the shape -1 corner
+    for i in starts:
+        found = optimize.minimize_scalar(per_sample_loss,
+                                         bounds=(grid[max(i - 1, 0)], grid[i + 1]),
+                                         method="bounded", options={"xatol": 1e-12})
+        w, loss = (float(found.x), float(found.fun))
+        if not loss <= losses[i]:
+            w, loss = float(grid[i]), float(losses[i])
+        if loss < best_loss:
+            best_loss, best_w = loss, w
+    if best_w is None:
+        return -1.0, top
+    t = math.expm1(best_w)
+    if abs(t) < 1e-12:
+        return 0.0, float(np.mean(x))
+    shape = shape_of(t)
+    return shape, shape / t * top
+
+
 def tail_estimate(margin, confidence: float = 0.95) -> dict:
     """Model-based failure probability of a margin metric, for rare failures.
 
@@ -373,11 +459,7 @@ def tail_estimate(margin, confidence: float = 0.95) -> dict:
             "not fitted: too few distinct samples below the 5 % quantile for a tail fit"
         )
         return out
-    with warnings.catch_warnings():
-        # The optimizer may probe parameters outside the support on its way; those interim
-        # evaluations are not results.
-        warnings.simplefilter("ignore", RuntimeWarning)
-        shape, _, scale = stats.genpareto.fit(excess, floc=0.0)
+    shape, scale = gpd_fit(excess)
     if not (math.isfinite(shape) and math.isfinite(scale) and scale > 0):
         out["method"] = "not fitted: the generalized Pareto fit did not converge"
         return out
