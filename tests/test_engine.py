@@ -178,6 +178,21 @@ def test_same_seed_same_summary_whatever_jobs_and_chunks(linear, tmp_path, sampl
     assert comparable(on_disk) == json.loads(json.dumps(comparable(b)))
 
 
+def test_after_samples_is_called_once_between_the_samples_and_the_summary(linear, tmp_path):
+    from tolerance.api import SAMPLES_DIR, SUMMARY_FILE
+
+    study = linear("random")
+    seen = []
+    out = tmp_path / "r"
+    # common practice, no source: the hook sees every chunk written and no summary yet
+    res = run(study, out=out, chunk_size=2000, after_samples=lambda: seen.append(
+        (len(list((out / SAMPLES_DIR).glob("*.parquet"))), (out / SUMMARY_FILE).exists())))
+    assert seen == [(3, False)] and (out / SUMMARY_FILE).exists()
+    in_memory = []
+    run(study, after_samples=lambda: in_memory.append(True))
+    assert in_memory == [True] and res.summary["samples"] == 5000
+
+
 def test_a_worker_writing_chunks_imports_no_more_than_it_needs(tmp_path):
     import os
     import pickle

@@ -249,6 +249,37 @@ def test_the_report_module_leaves_the_plotting_stack_to_whoever_draws(tmp_path):
     assert out.stdout.strip() == "[]"
 
 
+def test_plot_workers_import_the_plotting_stack_in_the_background(tmp_path):
+    # `tolerance run --jobs 2` has its workers import matplotlib and seaborn while the parent
+    # computes the insights; drawing waits for that warm-up (common practice, no source).
+    # Checked in a fresh interpreter, whose workers have imported nothing before.
+    import sys
+
+    code = (
+        "import os, sys, time\n"
+        "from joblib import Parallel, delayed\n"
+        "from tolerance import report\n"
+        "def probe():\n"
+        "    time.sleep(0.3)\n"
+        "    return os.getpid(), 'tolerance.plots' in sys.modules\n"
+        "def ask():\n"
+        "    return Parallel(n_jobs=2, backend='loky')(delayed(probe)() for _ in range(4))\n"
+        "before = ask()\n"
+        "report.warm_plot_workers(2)\n"
+        "started = report._warm_up is not None\n"
+        "report._join_warm_up()\n"
+        "after = ask()\n"
+        "report.warm_plot_workers(1)\n"
+        "print(len({p for p, _ in before + after}), any(l for _, l in before),\n"
+        "      all(l for _, l in after), started, report._warm_up is None,\n"
+        "      'tolerance.plots' in sys.modules)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, cwd=tmp_path)
+    # two workers, neither with the stack before, both with it after; one job warms nothing;
+    # the parent itself never imported it
+    assert out.stdout.split() == ["2", "False", "True", "True", "True", "False"]
+
+
 def test_undecided_verdict_is_explained(write_study, tmp_path):
     # 3000 samples cannot settle a 24 % failure rate against an allowed 24.5 % either way
     study = load_study(write_study(STUDY.format(rate=0.245)))

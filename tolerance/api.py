@@ -191,7 +191,7 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         out=None, progress: bool = False, resume: bool = False, force: bool = False,
         backend: str = "loky", scheduler: str | None = None,
         overrides: dict[str, Override] | None = None, target_ci: float | None = None,
-        insights: bool = True) -> RunResult:
+        insights: bool = True, after_samples=None) -> RunResult:
     """Run a study's Monte Carlo analysis.
 
     Parameters
@@ -214,6 +214,9 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     insights : bool
         Add the parameter table, rank sensitivities, failure drivers, capability and tail
         estimates to the summary.
+    after_samples : callable, optional
+        Called without arguments once every sample is evaluated, before the summary is
+        computed (the command line starts its plot workers' imports there).
     """
     spec = make_spec(study, samples, seed, sampler, overrides)
     chunk = study.settings.chunk_size if chunk_size is None else int(chunk_size)
@@ -234,6 +237,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     if out is None:
         df = runner.execute(spec, chunk, jobs, None, progress, backend=backend,
                             scheduler=scheduler, stop_rule=stop_rule)
+        if after_samples is not None:
+            after_samples()
         column = lambda name: df[name].to_numpy()  # noqa: E731
         summary = summarize(spec, column, **meta, extra=_extra(study, column, insights,
                                                                target_ci))
@@ -243,6 +248,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     folder = out / SAMPLES_DIR
     runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler,
                    stop_rule=stop_rule)
+    if after_samples is not None:
+        after_samples()
     with runner.ChunkColumns(folder) as column:
         summary = summarize(spec, column, **meta,
                             extra=_extra(study, column, insights, target_ci))

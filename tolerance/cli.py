@@ -204,10 +204,17 @@ def cmd_run(args) -> int:
         except ValueError as exc:
             raise UsageError(f"--waveforms: {exc}") from None
     progress = (not args.quiet) and sys.stderr.isatty()
+
+    def warm_plot_workers() -> None:
+        from tolerance import report
+
+        report.warm_plot_workers(args.jobs)
+
     result = run(study, samples=args.samples, seed=args.seed, sampler=args.sampler,
                  jobs=args.jobs, chunk_size=args.chunk_size, out=out, progress=progress,
                  resume=args.resume, force=args.force, backend=args.backend,
-                 scheduler=args.scheduler, target_ci=args.target_ci)
+                 scheduler=args.scheduler, target_ci=args.target_ci,
+                 after_samples=warm_plot_workers)
     if args.waveforms is not None:
         _write_waveforms(study, out, args.waveforms, result.summary["seed"])
     _write_report(out, args.jobs)

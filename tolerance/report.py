@@ -16,6 +16,7 @@ import html
 import json
 import math
 import re
+import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -358,6 +359,49 @@ class PlotTask:
     caption: str
 
 
+def _import_plotting() -> bool:
+    from tolerance import plots  # noqa: F401  (matplotlib, scipy.stats, seaborn)
+
+    return True
+
+
+#: the background warm-up of :func:`warm_plot_workers`, joined before any figure is drawn
+_warm_up: threading.Thread | None = None
+
+
+def warm_plot_workers(jobs: int) -> None:
+    """Have the ``jobs`` loky workers import the plotting stack in the background.
+
+    A worker's first figure costs it about 2.5 s of imports (matplotlib, and seaborn with
+    scipy.stats). A command that knows figures will follow calls this once its samples are
+    written, so the workers import while the parent computes the summary and insights;
+    :func:`render_plots` waits for the warm-up before it hands out figures. Nothing happens
+    with fewer than two jobs (the parent draws). A failure here is left for the drawing to
+    report.
+    """
+    global _warm_up
+    if jobs < 2 or _warm_up is not None:
+        return
+    from joblib import Parallel, delayed
+
+    def work() -> None:
+        try:
+            Parallel(n_jobs=jobs, backend="loky")(delayed(_import_plotting)()
+                                                  for _ in range(jobs))
+        except Exception:  # noqa: BLE001 - the figures themselves will say what is wrong
+            pass
+
+    _warm_up = threading.Thread(target=work, name="plot-worker-warm-up", daemon=True)
+    _warm_up.start()
+
+
+def _join_warm_up() -> None:
+    global _warm_up
+    if _warm_up is not None:
+        _warm_up.join()
+        _warm_up = None
+
+
 def _render(task: PlotTask) -> Path:
     # imported here: with workers drawing, the parent never pays for matplotlib and seaborn
     from tolerance import plots
@@ -376,6 +420,7 @@ def render_plots(tasks: list[PlotTask], jobs: int = 1) -> list[Path]:
     """
     if jobs < 1:
         raise ValueError(f"jobs must be at least 1, got {jobs}")
+    _join_warm_up()
     if jobs == 1 or len(tasks) < 2:
         return [_render(t) for t in tasks]
     from joblib import Parallel, delayed
