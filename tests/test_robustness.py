@@ -130,6 +130,21 @@ def test_single_sample_and_zero_tolerance(write_study):
     assert res.samples["x2"].iloc[0] == 1.0
 
 
+def test_a_limit_window_of_one_value_runs_and_reports(write_study, tmp_path):
+    # found by fuzzing the shipped studies: min = max is a legal criterion (a metric that
+    # must take one value), every sample fails it here, and the insights, capability and
+    # report must not stumble over its zero width (common practice, no source)
+    from tolerance import report
+
+    text = LINEAR.format(samples=200, chunk=100) + '[limits]\ny = {min = "1 V", max = "1 V"}\n'
+    res = run(load_study(write_study(text)), out=tmp_path / "r")
+    c = res.summary["criteria"]["y_positive"]  # the stage default on y, replaced
+    assert c["failures"] == c["evaluated"] == 200
+    assert res.summary["capability"]["y_positive"]["cp"] == 0.0
+    report.write_reports(res.folder)
+    assert (res.folder / "report.md").exists()
+
+
 # --- fuzzing ----------------------------------------------------------------------------------
 
 VALUES = st.one_of(

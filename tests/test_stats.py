@@ -240,8 +240,14 @@ def test_capability_degenerate_and_errors():
     assert nan_dropped["n"] == 3 and nan_dropped["cp"] == pytest.approx(4.0 / 6.0)
     with pytest.raises(ValueError, match="at least one"):
         capability([1.0, 2.0])
-    with pytest.raises(ValueError, match="must exceed"):
+    with pytest.raises(ValueError, match="must not be below"):
         capability([1.0, 2.0], lower=3.0, upper=1.0)
+    # equal limits (a flag that must be 0): the window has no width, so Cp = 0 and Cpk is
+    # minus the distance from the mean in units of 3 s; with no spread Cp is 0 / 0
+    point = capability([0.0, 1.0, 2.0], lower=1.0, upper=1.0)
+    assert point["cp"] == 0.0 and point["cpk"] == pytest.approx(0.0)
+    assert capability([0.0, 0.0], lower=1.0, upper=1.0)["cpk"] == -math.inf
+    assert math.isnan(capability([1.0, 1.0], lower=1.0, upper=1.0)["cp"])
 
 
 # ---------------------------------------------------------------------------------------------

@@ -196,7 +196,8 @@ def capability(x, lower=None, upper=None, confidence: float = 0.95) -> dict[str,
         ``cpk_low``, ``cpk_high`` [1], the normal-approximation interval of Bissell (1990),
         Cpk +- z * sqrt(1 / (9 n) + Cpk**2 / (2 (n - 1))); ``n`` [count] as an int. With
         fewer than two samples every index is NaN; with zero spread the indices are +-inf
-        and the interval NaN.
+        and the interval NaN. Equal limits (a metric that must take one value) are allowed:
+        Cp is then 0 (NaN with zero spread as well).
 
     Notes
     -----
@@ -212,8 +213,8 @@ def capability(x, lower=None, upper=None, confidence: float = 0.95) -> dict[str,
     confidence = _check_confidence(confidence)
     if lower is None and upper is None:
         raise ValueError("capability needs at least one specification limit")
-    if lower is not None and upper is not None and not float(upper) > float(lower):
-        raise ValueError(f"upper limit {upper!r} must exceed lower limit {lower!r}")
+    if lower is not None and upper is not None and not float(upper) >= float(lower):
+        raise ValueError(f"upper limit {upper!r} must not be below lower limit {lower!r}")
     data = _clean(x)
     n = int(data.size)
     nan = math.nan
@@ -227,7 +228,9 @@ def capability(x, lower=None, upper=None, confidence: float = 0.95) -> dict[str,
     if lower is not None:
         sides.append(mean - float(lower))
     if s == 0.0:
-        cp = math.inf if (lower is not None and upper is not None) else nan
+        # both limits: the window's width over no spread (0 / 0 when the limits coincide)
+        cp = ((math.inf if float(upper) > float(lower) else nan)
+              if (lower is not None and upper is not None) else nan)
         worst = min(sides)
         cpk = math.inf if worst > 0 else (-math.inf if worst < 0 else 0.0)
         return {"cp": cp, "cpk": cpk, "cpk_low": nan, "cpk_high": nan, "n": n}
