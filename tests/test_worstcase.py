@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import itertools
+import math
 import threading
 
 import numpy as np
@@ -242,6 +243,16 @@ def test_worst_case_table_combines_methods():
     assert table["evaluations"] > (2**4 + 1) + (2 * 4 + 1)
     again = worst_case_table(linear_model, LINEAR_BOUNDS, ["y"], mc_extremes=mc, seed=5)
     assert again == table
+
+
+def test_worst_case_table_takes_a_metric_no_sample_produced():
+    # found by fuzzing the command line: with 2 Monte Carlo samples the unclamped valve's
+    # transition fraction was NaN in both, so the summary's extremes are None; the table
+    # shows them as NaN instead of raising (common practice, no source)
+    mc = {"y": {"min": None, "max": None, "p001": None, "p999": None}}
+    row = worst_case_table(linear_model, LINEAR_BOUNDS, ["y"], mc_extremes=mc, seed=5)["y"]
+    assert all(math.isnan(row["mc_" + k]) for k in ("min", "max", "p001", "p999"))
+    assert math.isfinite(row["eva_max"])
 
 
 def test_combine_tolerances_arithmetic():

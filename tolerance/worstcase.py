@@ -893,7 +893,9 @@ def worst_case_table(
         }
         if mc_extremes is not None and m in mc_extremes:
             for key in ("min", "max", "p001", "p999"):
-                row["mc_" + key] = float(mc_extremes[m].get(key, float("nan")))
+                # a metric no Monte Carlo sample produced (every one NaN) has no extremes
+                value = mc_extremes[m].get(key)
+                row["mc_" + key] = float("nan") if value is None else float(value)
         table[m] = row
     table["evaluations"] = total
     return table
