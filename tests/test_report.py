@@ -252,32 +252,41 @@ def test_the_report_module_leaves_the_plotting_stack_to_whoever_draws(tmp_path):
 def test_plot_workers_import_the_plotting_stack_in_the_background(tmp_path):
     # `tolerance run --jobs 2` has its workers import matplotlib and seaborn while the parent
     # computes the insights; drawing waits for that warm-up (common practice, no source).
-    # Checked in a fresh interpreter, whose workers have imported nothing before.
+    # Checked in a fresh interpreter, whose workers have imported nothing before. Each probe
+    # waits until both workers hold one, so every question reaches both workers.
     import sys
 
     code = (
         "import os, sys, time\n"
+        "from pathlib import Path\n"
         "from joblib import Parallel, delayed\n"
         "from tolerance import report\n"
-        "def probe():\n"
-        "    time.sleep(0.3)\n"
+        "def probe(folder):\n"
+        "    here = Path(folder)\n"
+        "    (here / str(os.getpid())).touch()\n"
+        "    t = time.time()\n"
+        "    while len(list(here.iterdir())) < 2 and time.time() - t < 60:\n"
+        "        time.sleep(0.01)\n"
         "    return os.getpid(), 'tolerance.plots' in sys.modules\n"
-        "def ask():\n"
-        "    return Parallel(n_jobs=2, backend='loky')(delayed(probe)() for _ in range(4))\n"
-        "before = ask()\n"
+        "def ask(name):\n"
+        "    folder = Path(sys.argv[1]) / name\n"
+        "    folder.mkdir()\n"
+        "    return Parallel(n_jobs=2, backend='loky')(delayed(probe)(str(folder))\n"
+        "                                             for _ in range(2))\n"
+        "before = ask('before')\n"
         "report.warm_plot_workers(2)\n"
         "started = report._warm_up is not None\n"
         "report._join_warm_up()\n"
-        "after = ask()\n"
+        "after = ask('after')\n"
         "report.warm_plot_workers(1)\n"
-        "print(len({p for p, _ in before + after}), any(l for _, l in before),\n"
-        "      all(l for _, l in after), started, report._warm_up is None,\n"
-        "      'tolerance.plots' in sys.modules)\n")
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                         check=True, cwd=tmp_path)
-    # two workers, neither with the stack before, both with it after; one job warms nothing;
-    # the parent itself never imported it
-    assert out.stdout.split() == ["2", "False", "True", "True", "True", "False"]
+        "print(len({p for p, _ in before}), len({p for p, _ in before + after}),\n"
+        "      any(l for _, l in before), all(l for _, l in after), started,\n"
+        "      report._warm_up is None, 'tolerance.plots' in sys.modules)\n")
+    out = subprocess.run([sys.executable, "-c", code, str(tmp_path)], capture_output=True,
+                         text=True, check=True, cwd=tmp_path)
+    # the same two workers both times, neither with the stack before, both with it after; one
+    # job warms nothing; the parent itself never imported it
+    assert out.stdout.split() == ["2", "2", "False", "True", "True", "True", "False"]
 
 
 def test_undecided_verdict_is_explained(write_study, tmp_path):
