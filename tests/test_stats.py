@@ -348,6 +348,18 @@ def test_gpd_fit_reaches_the_likelihood_maximum(shape, n):
     assert abs(d_shape) < 1e-5 and abs(d_scale) < 1e-5
 
 
+def test_gpd_fit_takes_exceedances_spread_over_hundreds_of_decades():
+    from tolerance.stats import gpd_fit
+
+    # common practice, no source: a smallest exceedance 1e-200 of the largest (its square
+    # underflows) still gives a fit with a valid support and a finite likelihood
+    rng = np.random.default_rng(4)
+    x = np.concatenate([rng.exponential(1.0, 200), [1e-200, 1e-120]])
+    k, s = gpd_fit(x)
+    assert math.isfinite(k) and s > 0
+    assert math.isfinite(float(np.sum(stats.genpareto.logpdf(x, k, 0.0, s))))
+
+
 @pytest.mark.parametrize("seed", range(10))
 def test_gpd_fit_on_a_bounded_tail_keeps_to_shapes_of_minus_one_and_above(seed):
     import warnings

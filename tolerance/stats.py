@@ -329,7 +329,9 @@ def gpd_fit(excess) -> tuple[float, float]:
     # (Grimshaw 1993, sec. 2); one unit of log(1 + t) beyond it keeps the top grid point
     # clear of the maximum
     low = float(np.min(y))
-    t_top = min(2.0 * (float(np.mean(y)) - low) / (low * low), 1e300)
+    # (a smallest exceedance below 1e-150 of the largest would overflow the bound)
+    t_top = min(2.0 * (float(np.mean(y)) - low) / (low * low), 1e300) if low > 1e-150 \
+        else 1e300
     grid = np.linspace(math.log1p(t_low), math.log1p(t_top) + 1.0, _GPD_GRID)
     losses = np.array([per_sample_loss(w) for w in grid])
     # interior minima of the grid, and its first point where the loss still falls towards it
