@@ -288,22 +288,6 @@ def test_tail_estimate_normal_upper_bound_matches_tolerance_factor():
     assert math.isnan(out["tail_ppm"])
 
 
-@pytest.mark.parametrize(("k", "n"), [(3.0, 10), (2.5, 30), (0.5, 20000), (-1.0, 100),
-                                    (4.0, 400000), (8.0, 10**6), (1e-3, 50)])
-def test_tail_estimate_normal_upper_bound_inverts_the_noncentral_t(k, n):
-    from scipy import optimize
-
-    # scipy.stats.nct as reference: the bound's noncentrality delta is where the CDF of the
-    # observed t = sqrt(n) k equals the confidence, found here by brentq on nct.cdf
-    t_obs = math.sqrt(n) * k
-    delta = optimize.brentq(lambda d: stats.nct.cdf(t_obs, n - 1, d) - 0.95,
-                            t_obs - 10.0, t_obs + 10.0, xtol=1e-12, rtol=1e-14)
-    out = tail_estimate(_exact_sample(k, 1.0, n), confidence=0.95)
-    # cdflib's inversion agrees to about 1e-8 of delta, which 8 sigma out is 6e-6 of the ppm
-    assert out["normal_ppm_upper"] == pytest.approx(1e6 * stats.norm.sf(delta / math.sqrt(n)),
-                                                    rel=2e-5)
-
-
 def test_tail_estimate_normal_upper_bound_coverage():
     # coverage check by simulation, common practice, no source: the exact one-sided bound
     # should exceed the true failure probability in ~95 % of repeated experiments

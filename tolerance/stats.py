@@ -249,17 +249,33 @@ def _normal_upper_ppm(mean: float, s: float, n: int, confidence: float) -> float
     """One-sided upper confidence bound [ppm] on Phi(-mu/sigma) for a normal sample.
 
     ``sqrt(n) * mean / s`` follows a noncentral t distribution with ``n - 1`` degrees of
-    freedom and noncentrality ``sqrt(n) * mu / sigma``; the bound takes the lowest
+    freedom and noncentrality ``sqrt(n) * mu / sigma``; the bound inverts it for the lowest
     noncentrality still compatible with the observation at the given confidence (the
-    construction behind one-sided normal tolerance factors), from scipy's inverse of the
-    noncentral t CDF in its noncentrality (``scipy.special.nctdtrinc``).
+    construction behind one-sided normal tolerance factors).
     """
-    from scipy import special
-
+    df = n - 1
     t_obs = math.sqrt(n) * mean / s
-    delta_low = float(special.nctdtrinc(n - 1, confidence, t_obs))
-    if not math.isfinite(delta_low):
-        return math.nan  # the noncentral t CDF is not resolvable this far out
+
+    def excess(delta: float) -> float:
+        return float(stats.nct.cdf(t_obs, df, delta)) - confidence
+
+    # excess() decreases with delta; widen a bracket around the observation until it holds.
+    width = 5.0 + abs(t_obs)
+    lo, hi = t_obs - width, t_obs + width
+    for _ in range(60):
+        e_lo, e_hi = excess(lo), excess(hi)
+        if not (math.isfinite(e_lo) and math.isfinite(e_hi)):
+            return math.nan  # the noncentral t CDF is not resolvable this far out
+        if e_lo > 0 > e_hi:
+            break
+        width *= 2.0
+        lo, hi = t_obs - width, t_obs + width
+    else:
+        return math.nan
+    try:
+        delta_low = optimize.brentq(excess, lo, hi, xtol=1e-10, rtol=1e-12)
+    except ValueError:  # NaN met inside the bracket
+        return math.nan
     return 1e6 * float(stats.norm.sf(delta_low / math.sqrt(n)))
 
 
