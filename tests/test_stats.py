@@ -288,6 +288,15 @@ def test_tail_estimate_normal_upper_bound_matches_tolerance_factor():
     assert math.isnan(out["tail_ppm"])
 
 
+def test_tail_estimate_normal_upper_bound_far_out_returns():
+    # found by fuzzing: a 12-sample margin 180,000 standard deviations from its limit
+    # (t = 6e5 on 11 degrees of freedom), where scipy.special.nctdtrinc, tried as a faster
+    # inverse, never returned; the bracket search gives up with NaN (common practice, no
+    # source: no bound can be resolved that far out, and the point estimate is 0)
+    out = tail_estimate(_exact_sample(184647.9, 1.0, 12))
+    assert out["normal_ppm"] == 0.0 and math.isnan(out["normal_ppm_upper"])
+
+
 def test_tail_estimate_normal_upper_bound_coverage():
     # coverage check by simulation, common practice, no source: the exact one-sided bound
     # should exceed the true failure probability in ~95 % of repeated experiments
