@@ -828,7 +828,8 @@ def worst_case_table(
         Metrics to analyse; default every metric the model returns.
     mc_extremes : dict, optional
         Monte Carlo results per metric, ``{metric: {"min", "max", "p001", "p999"}}``, placed
-        beside the worst-case figures as ``mc_min``, ``mc_max``, ``mc_p001``, ``mc_p999``.
+        beside the worst-case figures as ``mc_min``, ``mc_max``, ``mc_p001``, ``mc_p999``;
+        ``None`` (how a run summary stores a figure no sample produced) becomes NaN.
     seed : int, SeedSequence or None, default 0
         Root seed; independent child seeds are spawned for each metric and sense.
     optimize_metrics : list of str, optional
