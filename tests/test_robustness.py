@@ -227,7 +227,9 @@ def test_mutated_shipped_studies_never_crash(path, picks):
     try:
         study = load_text("fuzz.toml", text="\n".join(lines) + "\n")
     except StudyError as exc:
+        # the key, or for text that is no longer TOML the line and column
         assert str(exc).startswith("fuzz.toml")
+        assert exc.key or "at line" in exc.message, str(exc)
         return
     res = run(study, samples=12, chunk_size=12)
     s = res.summary
