@@ -70,13 +70,17 @@ def test_benchmark_says_which_targets_are_met(capsys):
 def test_benchmark_prints_the_phases_of_a_command_line_run(capsys):
     figures = _figures(dc=90_000.0, speedup=1.5, memory=900.0, samples=500_000)
     figures["command"] = {"samples": 400_000, "jobs": 2, "load_s": 4.7, "load_cached_s": 0.002,
-                          "run_s": 10.4, "insights_s": 5.3, "report_s": 15.1, "command_s": 40.4}
+                          "run_s": 10.4, "insights_s": 5.3, "report_s": 15.1, "command_s": 40.4,
+                          "check_s": 0.75}
     _script("run").print_table(figures)
-    (line,) = [x for x in capsys.readouterr().out.splitlines() if x.startswith("command line")]
+    out = capsys.readouterr().out.splitlines()
+    (line,) = [x for x in out if x.startswith("command line")]
     # common practice, no source: every phase is printed with the figure it was given
     for text in ("400,000 samples", "2 workers", "40.4 s in all", "4.7 s", "0.0 s with the fits",
                  "run 10.4 s", "insights 5.3 s", "reports 15.1 s"):
         assert text in line, text
+    (start,) = [x for x in out if x.startswith("command start")]
+    assert "fresh process 0.75 s" in start
 
 
 def test_command_figures_time_every_phase(monkeypatch):
@@ -95,7 +99,8 @@ def test_command_figures_time_every_phase(monkeypatch):
     # setting and the timed insights function are put back (common practice, no source)
     assert analysis.insights is plain
     assert f["samples"] == 300 and f["jobs"] == 1
-    for key in ("load_s", "load_cached_s", "run_s", "insights_s", "report_s", "command_s"):
+    for key in ("load_s", "load_cached_s", "run_s", "insights_s", "report_s", "command_s",
+                "check_s"):
         assert f[key] > 0.0, key
     assert f["load_cached_s"] < f["load_s"]
     assert os.environ.get(parts.CACHE_ENV) == before

@@ -16,13 +16,11 @@ from importlib import resources
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 
 from tolerance import runner
 from tolerance.runner import Override, RunSpec
 from tolerance.study import SAMPLERS, Study, StudyError
 from tolerance.study import load_study as _load_study_file
-from tolerance.summary import summarize
 
 SUMMARY_FILE = "summary.json"
 SAMPLES_DIR = "samples.parquet"
@@ -79,11 +77,15 @@ class RunResult:
             rows.append({"criterion": name, "metric": c["metric"], "min": c["limit"]["min"],
                          "max": c["limit"]["max"], "failures": c["failures"], "rate": c["rate"],
                          "ci_low": c["ci_low"], "ci_high": c["ci_high"], "verdict": c["verdict"]})
+        import pandas as pd
+
         return pd.DataFrame(rows).set_index("criterion")
 
     @property
     def metrics(self) -> pd.DataFrame:
         """One row per metric: unit, mean, std, extremes and percentiles [SI units]."""
+        import pandas as pd
+
         return pd.DataFrame(self.summary["metrics"]).T
 
     @property
@@ -232,6 +234,9 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
             raise UsageError(f"target interval half-width must lie between 0 and 0.5, got "
                              f"{target_ci}")
         stop_rule = _half_width_rule(spec, target_ci)
+    # here, not at the top: scipy.stats and pandas are a second of the command line's start
+    from tolerance.summary import summarize
+
     meta = dict(study_path=study.path, title=study.title, stage_name=study.stage_name,
                 allowed_rate=study.settings.max_failure_rate)
     if out is None:
