@@ -167,6 +167,57 @@ def test_check_prints_parameter_table(capsys):
         assert name in out
 
 
+def _block(out: str, header_start: str) -> list[str]:
+    """The header line that starts with ``header_start`` and the rows under it."""
+    lines = out.splitlines()
+    i = next(k for k, line in enumerate(lines) if line.startswith(header_start))
+    block = [lines[i]]
+    for line in lines[i + 1:]:
+        if not line.strip():
+            break
+        block.append(line)
+    return block
+
+
+def _assert_left_columns(block: list[str], names: tuple[str, ...]) -> None:
+    # common practice, no source: a left-aligned column's cells start where its heading
+    # does, after the two spaces that end the column before it
+    for name in names:
+        at = block[0].index(name)
+        for row in block[1:]:
+            assert row[at - 2:at] == "  " and row[at] != " ", (name, row)
+
+
+def test_tables_are_as_wide_as_their_longest_cell(tmp_path, capsys):
+    from tolerance.cli import _table
+
+    text = _table(("name", "value"), [("a", "1.5 V"), ("a_much_longer_name", "12 mV")], "<>")
+    # right-aligned cells end together, left-aligned ones start together
+    assert text.splitlines() == ["name                value",
+                                 "a                   1.5 V",
+                                 "a_much_longer_name  12 mV"]
+    assert main(["run", "--samples", "300", "--out", str(tmp_path / "o")]) == 0
+    out = capsys.readouterr().out
+    # the demo's longest metric (power_stress_output) used to run into the limit column
+    _assert_left_columns(_block(out, "criterion"), ("metric", "limit"))
+    for study in ("beacon_lamp_darlington.toml", "shelf_led_sziklai.toml"):
+        assert main(["check", str(ROOT / "studies" / study)]) == 0
+        out = capsys.readouterr().out
+        _assert_left_columns(_block(out, "parameter"), ("distribution", "unit"))
+        _assert_left_columns(_block(out, "criterion"), ("metric", "limit", "from"))
+
+
+def test_a_closed_pipe_ends_the_command_quietly():
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    proc = subprocess.Popen([sys.executable, "-m", "tolerance", "parts"], env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    proc.stdout.close()  # the reader is gone before the command writes (``| head -0``)
+    with proc.stderr:
+        err = proc.stderr.read().decode()
+    assert proc.wait(timeout=120) == 141
+    assert "Traceback" not in err and "Broken pipe" not in err, err
+
+
 def test_parts_lists_the_library(capsys):
     assert main(["parts"]) == 0
     out = capsys.readouterr().out

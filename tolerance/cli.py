@@ -7,6 +7,7 @@ Errors go to stderr as one line naming the file, the key and what was expected.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from pathlib import Path
 
@@ -159,6 +160,20 @@ def _fmt(value, unit):
     return format_quantity(value, unit)
 
 
+def _table(header, rows, align: str, indent: str = "") -> str:
+    """Text table whose columns are as wide as their widest cell; ``align`` holds one ``<``
+    or ``>`` per column; two spaces between columns."""
+    cells = [[str(c) for c in header]] + [[str(c) for c in r] for r in rows]
+    widths = [max(len(r[i]) for r in cells) for i in range(len(header))]
+    last = len(header) - 1
+    lines = []
+    for r in cells:
+        parts = [f"{c:{a}{wd}}" if i < last or a == ">" else c
+                 for i, (c, a, wd) in enumerate(zip(r, align, widths))]
+        lines.append(indent + "  ".join(parts).rstrip() + "\n")
+    return "".join(lines)
+
+
 def print_summary(summary: dict, study, out) -> None:
     w = sys.stdout.write
     w(f"\n{summary['title']}  ({summary['stage']} stage, {summary['samples']:,} samples, "
@@ -168,23 +183,19 @@ def print_summary(summary: dict, study, out) -> None:
       f"{100 * y['ci_high']:.4f} %)   not converged: {summary['not_converged']}\n")
     if summary.get("saturation_failure_rate") is not None:
         w(f"saturation-failure rate {_ppm(summary['saturation_failure_rate'])} ppm\n")
-    w("\n{:<22} {:<18} {:<26} {:>9} {:>12} {:>22}  {}\n".format(
-        "criterion", "metric", "limit", "failures", "rate ppm", "95 % interval ppm", "verdict"))
+    rows = []
     for name, c in summary["criteria"].items():
         unit = summary["metrics"][c["metric"]]["unit"]
         lim = " and ".join(
             f"{op} {_fmt(v, unit)}" for op, v in ((">=", c["limit"]["min"]),
                                                   ("<=", c["limit"]["max"])) if v is not None)
-        w("{:<22} {:<18} {:<26} {:>9} {:>12} {:>22}  {}\n".format(
-            name, c["metric"], lim, c["failures"], _ppm(c["rate"]),
-            f"{_ppm(c['ci_low'])} .. {_ppm(c['ci_high'])}", c["verdict"].upper()))
-    w("\n{:<20} {:>12} {:>12} {:>12} {:>12} {:>12}\n".format(
-        "metric", "min", "p0.1", "median", "p99.9", "max"))
-    for name, m in summary["metrics"].items():
-        u = m["unit"]
-        w("{:<20} {:>12} {:>12} {:>12} {:>12} {:>12}\n".format(
-            name, _fmt(m["min"], u), _fmt(m["p001"], u), _fmt(m["p50"], u),
-            _fmt(m["p999"], u), _fmt(m["max"], u)))
+        rows.append((name, c["metric"], lim, c["failures"], _ppm(c["rate"]),
+                     f"{_ppm(c['ci_low'])} .. {_ppm(c['ci_high'])}", c["verdict"].upper()))
+    w("\n" + _table(("criterion", "metric", "limit", "failures", "rate ppm",
+                     "95 % interval ppm", "verdict"), rows, "<<<>>><"))
+    rows = [(name, *(_fmt(m[k], m["unit"]) for k in ("min", "p001", "p50", "p999", "max")))
+            for name, m in summary["metrics"].items()]
+    w("\n" + _table(("metric", "min", "p0.1", "median", "p99.9", "max"), rows, "<>>>>>"))
     w(f"\nverdict: {summary['verdict'].upper()}")
     if out is not None:
         w(f"   results in {out}")
@@ -278,19 +289,19 @@ def cmd_whatif(args) -> int:
           "numbers)\n")
         yb, yp = result["yield"]["baseline"], result["yield"]["pinned"]
         w(f"yield  baseline {100 * yb['estimate']:.4f} %   pinned {100 * yp['estimate']:.4f} %\n\n")
-        w("{:<22} {:>14} {:>14} {:>10} {:>10}\n".format("criterion", "baseline ppm",
-                                                       "pinned ppm", "baseline", "pinned"))
-        for name, c in result["criteria"].items():
-            w("{:<22} {:>14} {:>14} {:>10} {:>10}\n".format(
-                name, _ppm(c["baseline"]["rate"]), _ppm(c["pinned"]["rate"]),
-                c["baseline"]["verdict"], c["pinned"]["verdict"]))
-        w("\n{:<20} {:>26} {:>26}\n".format("metric", "baseline p0.1 / p99.9",
-                                             "pinned p0.1 / p99.9"))
+        rows = [(name, _ppm(c["baseline"]["rate"]), _ppm(c["pinned"]["rate"]),
+                 c["baseline"]["verdict"], c["pinned"]["verdict"])
+                for name, c in result["criteria"].items()]
+        w(_table(("criterion", "baseline ppm", "pinned ppm", "baseline", "pinned"), rows,
+                 "<>>>>"))
+        rows = []
         for name, m in result["metrics"].items():
             u = m["unit"]
-            w("{:<20} {:>26} {:>26}\n".format(
-                name, f"{_fmt(m['baseline']['p001'], u)} / {_fmt(m['baseline']['p999'], u)}",
-                f"{_fmt(m['pinned']['p001'], u)} / {_fmt(m['pinned']['p999'], u)}"))
+            rows.append((name,
+                         f"{_fmt(m['baseline']['p001'], u)} / {_fmt(m['baseline']['p999'], u)}",
+                         f"{_fmt(m['pinned']['p001'], u)} / {_fmt(m['pinned']['p999'], u)}"))
+        w("\n" + _table(("metric", "baseline p0.1 / p99.9", "pinned p0.1 / p99.9"), rows,
+                        "<>>"))
         w(f"\nresults in {out}\n\nCaution: {SAFETY}\n")
     return exit_status(result["verdict"]["pinned"])
 
@@ -317,16 +328,16 @@ def cmd_worstcase(args) -> int:
     if not args.quiet:
         w = sys.stdout.write
         w(f"\nworst case of {study.title}  ({result['evaluations']:,} evaluations)\n\n")
-        w("{:<18} {:>11} {:>23} {:>23} {:>23} {:>23}\n".format(
-            "metric", "nominal", "EVA min .. max", "RSS band", "optimizer min .. max",
-            "Monte Carlo min .. max"))
+        rows = []
         for name, m in result["metrics"].items():
             u = result["units"][name]
-            w("{:<18} {:>11} {:>23} {:>23} {:>23} {:>23}\n".format(
-                name, _fmt(m["nominal"], u), f"{_fmt(m['eva_min'], u)} .. {_fmt(m['eva_max'], u)}",
-                f"{_fmt(m['rss_low'], u)} .. {_fmt(m['rss_high'], u)}",
-                f"{_fmt(m['opt_min'], u)} .. {_fmt(m['opt_max'], u)}",
-                f"{_fmt(m.get('mc_min'), u)} .. {_fmt(m.get('mc_max'), u)}"))
+            rows.append((name, _fmt(m["nominal"], u),
+                         f"{_fmt(m['eva_min'], u)} .. {_fmt(m['eva_max'], u)}",
+                         f"{_fmt(m['rss_low'], u)} .. {_fmt(m['rss_high'], u)}",
+                         f"{_fmt(m['opt_min'], u)} .. {_fmt(m['opt_max'], u)}",
+                         f"{_fmt(m.get('mc_min'), u)} .. {_fmt(m.get('mc_max'), u)}"))
+        w(_table(("metric", "nominal", "EVA min .. max", "RSS band", "optimizer min .. max",
+                  "Monte Carlo min .. max"), rows, "<>>>>>"))
         w(f"\nresults in {out}\n\nCaution: {SAFETY}\n")
     return 0
 
@@ -348,14 +359,14 @@ def cmd_sensitivity(args) -> int:
             rows = sorted((r for r in result["rank"] if r["metric"] == metric),
                           key=lambda r: -abs(r["spearman"] or 0))[:6]
             sob = result["sobol"].get(metric, {})
-            w(f"\n{metric}\n  {'input':<24} {'spearman':>9} {'srrc':>8} {'prcc':>8} "
-              f"{'sobol S1':>9} {'sobol ST':>9}\n")
+            cells = []
             for r in rows:
                 s = sob.get(r["input"], {})
-                w("  {:<24} {:>9} {:>8} {:>8} {:>9} {:>9}\n".format(
-                    r["input"], *(f"{v:.3f}" if isinstance(v, float) else "-" for v in
-                                  (r["spearman"], r["srrc"], r["prcc"], s.get("first"),
-                                   s.get("total")))))
+                cells.append((r["input"], *(f"{v:.3f}" if isinstance(v, float) else "-" for v in
+                                            (r["spearman"], r["srrc"], r["prcc"],
+                                             s.get("first"), s.get("total")))))
+            w(f"\n{metric}\n" + _table(("input", "spearman", "srrc", "prcc", "sobol S1",
+                                          "sobol ST"), cells, "<>>>>>", indent="  "))
         w(f"\nresults in {out}\n")
     return 0
 
@@ -419,18 +430,18 @@ def cmd_check(args) -> int:
     w = sys.stdout.write
     w(f"{study.path}: valid {study.stage_name} study '{study.title}' "
       f"({len(study.parameters)} parameters, {len(study.criteria)} criteria)\n\n")
-    w("{:<26} {:>12} {:>26} {:<40} {}\n".format("parameter", "nominal", "spread (low .. high)",
-                                                 "distribution", "unit"))
+    rows = []
     for p in study.parameters:
         spread = "-" if not p.varies else f"{_fmt(p.low, p.unit)} .. {_fmt(p.high, p.unit)}"
-        w("{:<26} {:>12} {:>26} {:<40} {}\n".format(
-            p.name, _fmt(p.nominal, p.unit), spread, p.distribution.describe(),
-            "degC" if p.unit == "temperature" else p.unit))
-    w("\n{:<22} {:<18} {:<30} {}\n".format("criterion", "metric", "limit", "from"))
+        rows.append((p.name, _fmt(p.nominal, p.unit), spread, p.distribution.describe(),
+                     "degC" if p.unit == "temperature" else p.unit))
+    w(_table(("parameter", "nominal", "spread (low .. high)", "distribution", "unit"), rows,
+             "<>><<"))
+    rows = []
     for c in study.criteria:
         unit = study.stage.metrics[c.metric].unit
-        w("{:<22} {:<18} {:<30} {}\n".format(c.name, c.metric,
-                                              c.limit_text(lambda x: _fmt(x, unit)), c.source))
+        rows.append((c.name, c.metric, c.limit_text(lambda x, u=unit: _fmt(x, u)), c.source))
+    w("\n" + _table(("criterion", "metric", "limit", "from"), rows, "<<<<"))
     return 0
 
 
@@ -480,6 +491,14 @@ def main(argv: list[str] | None = None) -> int:
         sys.stderr.write("\ntolerance: interrupted; finished chunks are kept (continue with "
                          "--resume)\n")
         return 130
+    except BrokenPipeError:
+        # the reader went away (``tolerance check | head``): what is left to print goes to
+        # the null device, so the interpreter's last flush raises nothing either (the
+        # Python documentation's recipe, "Note on SIGPIPE" of the signal module)
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        # common practice, no source: 128 + SIGPIPE, as a shell reports a process that
+        # SIGPIPE ended
+        return 141
 
 
 if __name__ == "__main__":  # pragma: no cover
