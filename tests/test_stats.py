@@ -291,10 +291,66 @@ def test_tail_estimate_normal_upper_bound_matches_tolerance_factor():
 def test_tail_estimate_normal_upper_bound_far_out_returns():
     # found by fuzzing: a 12-sample margin 180,000 standard deviations from its limit
     # (t = 6e5 on 11 degrees of freedom), where scipy.special.nctdtrinc, tried as a faster
-    # inverse, never returned; the bracket search gives up with NaN (common practice, no
-    # source: no bound can be resolved that far out, and the point estimate is 0)
+    # inverse, never returned and the bracket search could not resolve the CDF (NaN). The
+    # CDF at 40 sqrt(n) already exceeds the confidence, so the bound is below Phi(-40), 0 in
+    # double precision (scipy.stats.norm.sf as reference), like the point estimate
     out = tail_estimate(_exact_sample(184647.9, 1.0, 12))
-    assert out["normal_ppm"] == 0.0 and math.isnan(out["normal_ppm_upper"])
+    assert out["normal_ppm"] == 0.0 and out["normal_ppm_upper"] == 0.0
+
+
+@pytest.mark.parametrize("n,k", [(12, 20_000.0), (1000, 45.0), (20_000, 41.0),
+                                 (400_000, 60.0), (400_000, 250.0)])
+def test_normal_tail_bound_beyond_forty_sigma_is_zero_from_one_evaluation(monkeypatch, n, k):
+    from scipy import special
+
+    import tolerance.stats as ts
+
+    calls = []
+    plain = special.nctdtr
+    monkeypatch.setattr(special, "nctdtr", lambda *a: calls.append(a) or plain(*a))
+    got = ts._normal_upper_ppm(k, 1.0, n, 0.95)
+    assert got == 0.0 and len(calls) == 1
+    # the search gives the same where it resolves the root (scipy.stats.norm.sf as
+    # reference: 0 beyond about 37.6 standard deviations)
+    delta = ts._noncentrality_low(math.sqrt(n) * k, n - 1, 0.95)
+    if math.isfinite(delta):
+        assert delta > 40.0 * math.sqrt(n)
+        assert 1e6 * stats.norm.sf(delta / math.sqrt(n)) == 0.0
+
+
+def test_normal_tail_bound_starts_near_its_root_and_keeps_it(monkeypatch):
+    from scipy import optimize, special
+
+    import tolerance.stats as ts
+
+    calls = []
+    plain = special.nctdtr
+    monkeypatch.setattr(special, "nctdtr", lambda *a: calls.append(a) or plain(*a))
+    for n in (10, 30, 1000, 20_000, 400_000):
+        for k in (-2.0, 0.5, 3.0, 6.0, 10.0):
+            t = math.sqrt(n) * k
+            calls.clear()
+            got = ts._noncentrality_low(t, n - 1, 0.95)
+            used = len(calls)
+
+            # reference: scipy.stats.nct.cdf, Brent's method on the wide bracket the search
+            # used before it started from the normal approximation
+            ref_calls = []
+
+            def excess(d):
+                ref_calls.append(d)
+                return float(stats.nct.cdf(t, n - 1, d)) - 0.95
+
+            width = 5.0 + abs(t)
+            while not excess(t - width) > 0 > excess(t + width):
+                width *= 2.0
+            ref = optimize.brentq(excess, t - width, t + width, xtol=1e-10, rtol=1e-12)
+            assert got == pytest.approx(ref, rel=1e-11, abs=1e-9), (n, k)
+            # common practice, no source: the near bracket saves CDF evaluations, most of them
+            # on many degrees of freedom, where each costs most (counted, not timed)
+            assert used < len(ref_calls), (n, k, used, len(ref_calls))
+            if n >= 1000:
+                assert used <= 10, (n, k, used)
 
 
 def test_tail_estimate_normal_upper_bound_coverage():
