@@ -109,6 +109,48 @@ def test_resume_discards_chunks_of_another_plan(write_study, tmp_path):
     assert comparable(resumed.summary) != comparable(first.summary)
 
 
+def test_resume_keeps_the_plan_of_the_run_it_continues(write_study, tmp_path, monkeypatch):
+    from tolerance import runner
+
+    study = load_study(write_study(LINEAR.format(samples=9000, chunk=4000)))
+    whole = run(study, jobs=2, out=tmp_path / "r")
+    folder = tmp_path / "r" / "samples.parquet"
+    # two workers: the fewest chunks that is a multiple of two, all of one size
+    assert [len(runner._chunk_column(p, "sample")) for p in runner.chunk_files(folder)] == [
+        2250] * 4
+    runner.chunk_files(folder)[2].unlink()  # as if the run had been killed there
+    (tmp_path / "r" / "summary.json").unlink()
+    done = []
+    plain = runner.run_chunk_to_file
+    monkeypatch.setattr(runner, "run_chunk_to_file",
+                        lambda spec, i, s, e, f: done.append((i, s, e)) or plain(spec, i, s, e, f))
+    # resumed on one worker, whose own plan would be chunks of 4,000: the folder's plan is
+    # kept and only the missing chunk is computed
+    resumed = run(study, jobs=1, out=tmp_path / "r", resume=True)
+    assert done == [(2, 4500, 6750)]
+    assert comparable(resumed.summary) == comparable(whole.summary)
+
+
+@pytest.mark.parametrize("samples,chunk,jobs,size", [
+    (20_000, 16_384, 2, 10_000), (50_000, 16_384, 2, 12_500), (400_000, 16_384, 2, 15_385),
+    (20_000, 16_384, 1, 16_384), (5_000, 16_384, 4, 1_250), (7, 16_384, 4, 2),
+    (3, 16_384, 8, 1), (30_000, 10_000, 2, 7_500)])
+def test_balanced_chunks_give_every_worker_the_same_work(samples, chunk, jobs, size):
+    from tolerance.runner import balanced_chunk_size, chunk_ranges
+
+    got = balanced_chunk_size(samples, chunk, jobs)
+    assert got == size
+    ranges = chunk_ranges(samples, got)
+    # common practice, no source: the chunks stay within the limit and cover the run; with
+    # several workers they come in a multiple of the workers, of one size but for a shorter
+    # last one (one worker keeps the study's chunk size)
+    lengths = [e - s for _, s, e in ranges]
+    assert max(lengths) <= chunk and sum(lengths) == samples
+    if jobs > 1:
+        assert len(ranges) % jobs == 0 or samples < jobs
+        assert max(lengths) - min(lengths) < len(ranges)
+
+
 def test_dask_backend_matches_local(write_study, tmp_path):
     pytest.importorskip("distributed")
     study = load_study(write_study(LINEAR.format(samples=20_000, chunk=3_000)))

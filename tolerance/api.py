@@ -204,7 +204,10 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     jobs : int
         Parallel workers (joblib); results do not depend on it.
     chunk_size : int, optional
-        Samples per chunk; results do not depend on it.
+        Largest number of samples per chunk; with several workers the chunks are made equal
+        and a multiple of ``jobs`` in number (:func:`tolerance.runner.balanced_chunk_size`),
+        and a resumed run keeps the plan of the run it continues. Results do not depend on
+        it.
     out : path, optional
         Output folder for summary.json and samples.parquet; without it the samples stay in
         memory.
@@ -239,6 +242,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
 
     meta = dict(study_path=study.path, title=study.title, stage_name=study.stage_name,
                 allowed_rate=study.settings.max_failure_rate)
+    if stop_rule is None:  # a stopping rule has its own rounds (runner.execute)
+        chunk = runner.balanced_chunk_size(spec.samples, chunk, jobs)
     if out is None:
         df = runner.execute(spec, chunk, jobs, None, progress, backend=backend,
                             scheduler=scheduler, stop_rule=stop_rule)
@@ -251,6 +256,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     out = Path(out)
     _prepare_folder(out, force, resume)
     folder = out / SAMPLES_DIR
+    if resume and stop_rule is None:
+        chunk = runner.resumable_chunk_size(folder, spec) or chunk
     runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler,
                    stop_rule=stop_rule)
     if after_samples is not None:

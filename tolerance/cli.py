@@ -53,7 +53,8 @@ def _add_run_options(p: argparse.ArgumentParser, out_help: str) -> None:
     p.add_argument("--seed", type=_seed, help="random seed (same seed, same results)")
     p.add_argument("--sampler", choices=SAMPLERS, help="sampling design")
     p.add_argument("--jobs", type=_positive_int, default=1, help="parallel workers")
-    p.add_argument("--chunk-size", type=_positive_int, help="samples per chunk")
+    p.add_argument("--chunk-size", type=_positive_int,
+                   help="the most samples per chunk (several workers get equal chunks)")
     p.add_argument("--out", help=out_help)
     p.add_argument("--force", action="store_true", help="replace an existing result folder")
     p.add_argument("--quiet", action="store_true", help="no progress bar, no summary table")

@@ -86,6 +86,39 @@ def chunk_ranges(total: int, chunk_size: int, align: int | None = None
     return [(i, s, e) for i, (s, e) in enumerate(zip(starts, stops))]
 
 
+def balanced_chunk_size(samples: int, chunk_size: int, jobs: int) -> int:
+    """Chunk size that gives every one of ``jobs`` workers the same work.
+
+    The fewest chunks that is a multiple of ``jobs`` and keeps every chunk within
+    ``chunk_size``, all of one size (the last one up to ``n - 1`` samples shorter): a
+    20,000-sample run on two workers is two chunks of 10,000, not 16,384 and 3,616, one
+    worker waiting for the other. One worker keeps ``chunk_size``. Results never depend on
+    the chunk size (every figure is computed from whole columns in sample order).
+    """
+    if jobs <= 1 or samples <= 0:
+        return chunk_size
+    n = jobs * -(-samples // (chunk_size * jobs))
+    return max(1, -(-samples // n))
+
+
+def resumable_chunk_size(folder: Path, spec: RunSpec) -> int | None:
+    """The chunk size of the run that left ``folder``: the length of its first chunk when
+    that chunk belongs to this very run (a resumed run keeps that plan, whatever its
+    number of workers, so no finished chunk is computed again); None otherwise."""
+    path = _chunk_path(folder, 0)
+    if not path.is_file():
+        return None
+    try:
+        meta = pq.read_schema(path).metadata or {}
+        stored = json.loads(meta.get(b"tolerance", b"{}"))
+    except (OSError, ValueError, pa.ArrowException):
+        return None
+    start, stop = stored.pop("start", None), stored.pop("stop", None)
+    if stored != spec.signature or start != 0 or not isinstance(stop, int) or stop < 1:
+        return None
+    return stop
+
+
 def criterion_column(name: str) -> str:
     return f"pass.{name}"
 
