@@ -67,6 +67,16 @@ def test_benchmark_says_which_targets_are_met(capsys):
     assert v["10M-sample DC run < 1.5 GB"] == "n/a"
 
 
+def test_benchmark_shows_a_ratio_below_its_target_as_below(capsys):
+    # common practice, no source: a speed-up of 1.66 against 1.7 is printed as 1.66, not as
+    # a rounded "1.7" beside "NOT met"
+    _script("run").print_table(_figures(dc=90_000.0, speedup=1.66, memory=900.0,
+                                        samples=500_000))
+    (line,) = [x for x in capsys.readouterr().out.splitlines()
+               if x.startswith("2 workers >= 1.7x one")]
+    assert line.split()[-3:] == ["1.66", "NOT", "met"]
+
+
 def test_benchmark_prints_the_phases_of_a_command_line_run(capsys):
     figures = _figures(dc=90_000.0, speedup=1.5, memory=900.0, samples=500_000)
     figures["command"] = {"samples": 400_000, "jobs": 2, "load_s": 4.7, "load_cached_s": 0.002,

@@ -361,7 +361,9 @@ def print_table(f: dict) -> None:
     ]
     w(f"{'target':<40} {'measured':>14}  verdict\n")
     for label, value, target, larger in rows:
-        shown = "-" if value is None else f"{value:,.1f}"
+        # ratios with two decimals: a speed-up of 1.66 against 1.7 must not read "1.7"
+        shown = ("-" if value is None else f"{value:,.2f}" if abs(value) < 100
+                 else f"{value:,.1f}")
         w(f"{label:<40} {shown:>14}  {_met(value, target, larger)}\n")
 
 
