@@ -90,7 +90,8 @@ def balanced_chunk_size(samples: int, chunk_size: int, jobs: int) -> int:
     """Chunk size that gives every one of ``jobs`` workers the same work.
 
     The fewest chunks that is a multiple of ``jobs`` and keeps every chunk within
-    ``chunk_size``, all of one size (the last one up to ``n - 1`` samples shorter): a
+    ``chunk_size``, all of one size (the last one shorter by less than the number of
+    chunks): a
     20,000-sample run on two workers is two chunks of 10,000, not 16,384 and 3,616, one
     worker waiting for the other. One worker keeps ``chunk_size``. Results never depend on
     the chunk size (every figure is computed from whole columns in sample order).

@@ -285,7 +285,8 @@ def _noncentrality_low(t_obs: float, df: int, confidence: float) -> float:
     Kotz & Balakrishnan, Continuous Univariate Distributions 2, ch. 31), 0.2 % of its
     standard deviation wide and widened fourfold until it holds; only if that fails, around
     the observation. The root is then found by Brent's method, so the approximation only
-    saves evaluations of the CDF (each up to 1.6 ms far out on many degrees of freedom) and
+    saves evaluations of the CDF (each up to several milliseconds far out on many degrees of
+    freedom) and
     never changes the result beyond the root-finder's tolerance.
     """
     from scipy import special
