@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pytest
 
+from fresh_process import run_fresh
 from tolerance.api import demo_text
 from tolerance.cli import main
 from tolerance.summary import comparable
@@ -107,18 +108,16 @@ def test_malformed_study_through_a_real_process(tmp_path):
 
 def test_checking_or_refusing_a_study_loads_no_statistics_stack(tmp_path):
     bad = _study(tmp_path, _replace('value = "150R"', 'value = "150 V"'))
-    code = ("import sys; from tolerance.cli import main; "
-            "codes = [main(['check']), main(['check', sys.argv[1]]), "
-            "main(['run', sys.argv[1], '--out', sys.argv[2]])]; "
-            "print(codes, [m for m in ('pandas', 'scipy.stats', 'matplotlib') "
-            "if m in sys.modules])")
-    env = dict(os.environ, PYTHONPATH=str(ROOT))
-    proc = subprocess.run([sys.executable, "-c", code, str(bad), str(tmp_path / "o")],
-                          capture_output=True, text=True, env=env, timeout=120)
+    code = ("from tolerance.cli import main; "
+            "print([main(['check']), main(['check', sys.argv[1]]), "
+            "main(['run', sys.argv[1], '--out', sys.argv[2]])])")
+    proc = run_fresh(code, bad, tmp_path / "o", modules=("pandas", "scipy.stats",
+                                                         "matplotlib"), timeout=120)
     assert proc.returncode == 0, proc.stderr
     # common practice, no source: pandas and scipy.stats took 1.4 s of the command's 2 s
     # start here; checking a study, or refusing it, needs neither
-    assert proc.stdout.strip().splitlines()[-1] == "[0, 2, 2] []"
+    lines = proc.stdout.splitlines()
+    assert lines[-2] == "[0, 2, 2]" and lines[-1] == ""
     assert "parts.RB.value" in proc.stderr
     assert not (tmp_path / "o").exists()
 

@@ -194,25 +194,20 @@ def test_after_samples_is_called_once_between_the_samples_and_the_summary(linear
 
 
 def test_a_worker_writing_chunks_imports_no_more_than_it_needs(tmp_path):
-    import os
     import pickle
-    import subprocess
-    import sys
     from pathlib import Path
 
+    from fresh_process import run_fresh
     from tolerance.api import make_spec
 
     root = Path(__file__).resolve().parent.parent
     spec = make_spec(load_study(root / "studies" / "beacon_lamp_darlington.toml"), 300)
     (tmp_path / "spec.pkl").write_bytes(pickle.dumps(spec))
-    code = ("import pickle, sys; from pathlib import Path; from tolerance import runner; "
+    code = ("import pickle; from pathlib import Path; from tolerance import runner; "
             "spec = pickle.loads(Path(sys.argv[1]).read_bytes()); "
-            "runner.run_chunk_to_file(spec, 0, 0, 300, sys.argv[2]); "
-            "print(' '.join(m for m in ('pandas', 'scipy.stats', 'scipy.optimize') "
-            "if m in sys.modules))")
-    env = dict(os.environ, PYTHONPATH=str(root))
-    proc = subprocess.run([sys.executable, "-c", code, str(tmp_path / "spec.pkl"),
-                           str(tmp_path)], env=env, capture_output=True, text=True, timeout=300)
+            "runner.run_chunk_to_file(spec, 0, 0, 300, sys.argv[2])")
+    proc = run_fresh(code, tmp_path / "spec.pkl", tmp_path,
+                     modules=("pandas", "scipy.stats", "scipy.optimize"))
     assert proc.returncode == 0, proc.stderr
     # common practice, no source: these packages cost a worker process most of its start
     # (about 0.3, 0.5 and 0.2 s here) and evaluating a chunk needs none of them

@@ -106,13 +106,8 @@ def resumable_chunk_size(folder: Path, spec: RunSpec) -> int | None:
     """The chunk size of the run that left ``folder``: the length of its first chunk when
     that chunk belongs to this very run (a resumed run keeps that plan, whatever its
     number of workers, so no finished chunk is computed again); None otherwise."""
-    path = _chunk_path(folder, 0)
-    if not path.is_file():
-        return None
-    try:
-        meta = pq.read_schema(path).metadata or {}
-        stored = json.loads(meta.get(b"tolerance", b"{}"))
-    except (OSError, ValueError, pa.ArrowException):
+    stored = _chunk_stamp(_chunk_path(folder, 0))
+    if stored is None:
         return None
     start, stop = stored.pop("start", None), stored.pop("stop", None)
     if stored != spec.signature or start != 0 or not isinstance(stop, int) or stop < 1:
@@ -187,16 +182,22 @@ def _write_chunk(columns: dict[str, np.ndarray], path: Path, signature: dict, st
     os.replace(tmp, path)
 
 
-def chunk_is_complete(path: Path, signature: dict, start: int, stop: int) -> bool:
-    """True when ``path`` holds this chunk of this very run (same study, seed, plan)."""
+def _chunk_stamp(path: Path) -> dict | None:
+    """The run signature and sample range a chunk file was written with (None: no file, or
+    not a readable chunk)."""
     if not path.is_file():
-        return False
+        return None
     try:
         meta = pq.read_schema(path).metadata or {}
         stored = json.loads(meta.get(b"tolerance", b"{}"))
     except (OSError, ValueError, pa.ArrowException):
-        return False
-    return stored == {**signature, "start": start, "stop": stop}
+        return None
+    return stored if isinstance(stored, dict) else None
+
+
+def chunk_is_complete(path: Path, signature: dict, start: int, stop: int) -> bool:
+    """True when ``path`` holds this chunk of this very run (same study, seed, plan)."""
+    return _chunk_stamp(path) == {**signature, "start": start, "stop": stop}
 
 
 def run_chunk_to_file(spec: RunSpec, index: int, start: int, stop: int, folder: str) -> int:
