@@ -217,6 +217,19 @@ def test_a_closed_pipe_ends_the_command_quietly():
     assert "Traceback" not in err and "Broken pipe" not in err, err
 
 
+def test_a_broken_pipe_of_something_else_is_not_taken_for_the_reader(monkeypatch, capsys):
+    import tolerance.cli as cli
+
+    def broken(args):
+        raise BrokenPipeError("a worker's pipe")
+
+    # common practice, no source: only our own output's reader going away ends quietly;
+    # any other broken pipe is an error that must surface
+    monkeypatch.setitem(cli.COMMANDS, "parts", broken)
+    with pytest.raises(BrokenPipeError, match="worker"):
+        main(["parts"])
+
+
 def test_parts_lists_the_library(capsys):
     assert main(["parts"]) == 0
     out = capsys.readouterr().out

@@ -493,6 +493,8 @@ def main(argv: list[str] | None = None) -> int:
                          "--resume)\n")
         return 130
     except BrokenPipeError:
+        if not _stdout_is_closed():
+            raise  # another pipe broke: not the reader of our output going away
         # the reader went away (``tolerance check | head``): what is left to print goes to
         # the null device, so the interpreter's last flush raises nothing either (the
         # Python documentation's recipe, "Note on SIGPIPE" of the signal module)
@@ -500,6 +502,20 @@ def main(argv: list[str] | None = None) -> int:
         # common practice, no source: 128 + SIGPIPE, as a shell reports a process that
         # SIGPIPE ended
         return 141
+
+
+def _stdout_is_closed() -> bool:
+    """True when standard output is a pipe whose reader has gone: polling its descriptor
+    reports an error condition (POSIX poll(), POLLERR on a pipe without a reader)."""
+    import select
+
+    try:
+        fd = sys.stdout.fileno()
+        poller = select.poll()
+    except (OSError, ValueError, AttributeError):  # captured output, or no poll()
+        return False
+    poller.register(fd, select.POLLOUT)
+    return any(ev & select.POLLERR for _, ev in poller.poll(0))
 
 
 if __name__ == "__main__":  # pragma: no cover

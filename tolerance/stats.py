@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import optimize, special, stats
 
 __all__ = [
     "capability",
@@ -253,8 +253,6 @@ def _normal_upper_ppm(mean: float, s: float, n: int, confidence: float) -> float
     noncentrality still compatible with the observation at the given confidence (the
     construction behind one-sided normal tolerance factors).
     """
-    from scipy import special
-
     df = n - 1
     t_obs = math.sqrt(n) * mean / s
     cut = _ZERO_BOUND_SIGMAS * math.sqrt(n)
@@ -289,8 +287,6 @@ def _noncentrality_low(t_obs: float, df: int, confidence: float) -> float:
     freedom) and
     never changes the result beyond the root-finder's tolerance.
     """
-    from scipy import special
-
     def excess(delta: float) -> float:
         return float(special.nctdtr(df, delta, t_obs)) - confidence
 
