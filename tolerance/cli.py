@@ -495,7 +495,7 @@ def main(argv: list[str] | None = None) -> int:
     except BrokenPipeError:
         if not _stdout_is_closed():
             raise  # another pipe broke: not the reader of our output going away
-        # the reader went away (``tolerance check | head``): what is left to print goes to
+        # the reader went away (``tolerance parts | head -1``): what is left to print goes to
         # the null device, so the interpreter's last flush raises nothing either (the
         # Python documentation's recipe, "Note on SIGPIPE" of the signal module)
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
