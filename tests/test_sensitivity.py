@@ -326,20 +326,36 @@ def test_failure_drivers_length_mismatch():
         failure_drivers(x, failed[:-1])
 
 
-def test_average_ranks_equal_scipy_rankdata():
+@pytest.mark.parametrize("threads", [1, 2, 3])
+def test_average_ranks_equal_scipy_rankdata(threads):
     rng = np.random.default_rng(12)
     # ties of every length (small integers), no ties, a constant column, negative zero
     x = np.column_stack([rng.integers(0, 40, 5000), rng.normal(size=5000), np.full(5000, 2.5),
                          rng.choice([-0.0, 0.0, 1.0], 5000)]).astype(float)
     # scipy.stats.rankdata is the reference (method "average", ranks along the first axis)
-    assert np.array_equal(average_ranks(x), stats.rankdata(x, axis=0))
-    assert np.array_equal(average_ranks(x[:, 0]), stats.rankdata(x[:, 0]))
-    assert np.array_equal(average_ranks(x[:1]), stats.rankdata(x[:1], axis=0))
-    assert average_ranks(np.zeros((0, 2))).shape == (0, 2)
+    assert np.array_equal(average_ranks(x, threads), stats.rankdata(x, axis=0))
+    assert np.array_equal(average_ranks(x[:, 0], threads), stats.rankdata(x[:, 0]))
+    assert np.array_equal(average_ranks(x[:1], threads), stats.rankdata(x[:1], axis=0))
+    assert average_ranks(np.zeros((0, 2)), threads).shape == (0, 2)
 
 
+def test_rank_measures_do_not_depend_on_the_threads():
+    rng = np.random.default_rng(5)
+    n = 3000
+    x = pd.DataFrame({"a": rng.normal(size=n), "b": rng.integers(0, 5, n).astype(float),
+                      "fixed": np.full(n, 1.0), "c": rng.uniform(size=n)})
+    y = pd.DataFrame({"y1": x["a"] + 0.3 * x["b"] ** 2 + 0.1 * rng.normal(size=n),
+                      "y2": np.where(rng.random(n) < 0.02, np.nan, x["c"] - x["a"]),
+                      "flat": np.zeros(n)})
+    one = rank_sensitivity(x, y)
+    # equal to the last bit, constant columns' NaN included
+    for threads in (2, 4):
+        pd.testing.assert_frame_equal(rank_sensitivity(x, y, threads), one, check_exact=True)
+
+
+@pytest.mark.parametrize("threads", [1, 2])
 @pytest.mark.parametrize("n", [150, 6000])
-def test_failure_driver_statistics_equal_scipy_ks_2samp(n):
+def test_failure_driver_statistics_equal_scipy_ks_2samp(n, threads):
     rng = np.random.default_rng(n)
     # ties (a parameter on a few values), a smooth input, one that does not matter, and
     # failures on both sides of the statistic's sign
@@ -348,7 +364,7 @@ def test_failure_driver_statistics_equal_scipy_ks_2samp(n):
     failed = {"low": (x["steps"] + 0.3 * rng.normal(size=n) < 1.5).to_numpy(),
               "high": (x["smooth"] > 1.0).to_numpy(),
               "none": np.zeros(n, dtype=bool), "all": np.ones(n, dtype=bool)}
-    out = failure_drivers_of(x, failed)
+    out = failure_drivers_of(x, failed, threads=threads)
     for key in ("low", "high"):
         f = failed[key]
         ranking = {r["input"]: r for r in out[key]["ranking"]}

@@ -81,30 +81,40 @@ def _margin(values: np.ndarray, lo, hi) -> np.ndarray:
     return np.minimum.reduce(parts) if len(parts) > 1 else parts[0]
 
 
-def insights(study: Study, column) -> dict:
+def insights(study: Study, column, threads: int = 1) -> dict:
     """Parameter table, rank sensitivities, failure drivers, capability, tail estimates.
 
-    ``column(name)`` returns one column of the run in sample order.
+    ``column(name)`` returns one column of the run in sample order; it is only called from
+    this thread. ``threads`` columns are ranked or sorted at once
+    (:func:`tolerance.threads.thread_map`); the insights do not depend on it.
     """
     varying = [p for p in study.parameters if p.varies]
     metrics = list(study.stage.metrics)
     n = len(column("converged"))
     rows = slice(0, min(n, SENSITIVITY_ROWS))
-    # copies: a slice is a view that would keep every full column alive (memory ~ run length)
-    inputs = pd.DataFrame({p.name: column(p.name)[rows].copy() for p in varying})
+    head = slice(0, min(n, INSIGHT_ROWS))
+    converged = column("converged")[head].astype(bool)
+    # every input read once for both uses; copies, because a slice is a view that would
+    # keep every full column alive (memory ~ run length)
+    sensitivity_inputs, driver_inputs = {}, {}
+    for p in varying:
+        values = column(p.name)
+        sensitivity_inputs[p.name] = values[rows].copy()
+        driver_inputs[p.name] = values[head][converged]
+        del values
+    inputs = pd.DataFrame(sensitivity_inputs)
     outputs = pd.DataFrame({m: column(m)[rows].copy() for m in metrics})
     result: dict = {"parameters": parameters_table(study)}
     if varying and len(inputs) > 2:
-        table = sensitivity.rank_sensitivity(inputs, outputs)
+        table = sensitivity.rank_sensitivity(inputs, outputs, threads)
         result["sensitivity"] = _records(table)
         result["sensitivity_rows"] = len(inputs)
     else:
         result["sensitivity"] = []
+    del inputs, outputs, sensitivity_inputs
 
     units = {p.name: p.unit for p in study.parameters}
     drivers, capability, tail = {}, {}, {}
-    head = slice(0, min(n, INSIGHT_ROWS))
-    converged = column("converged")[head].astype(bool)
     failing = {}
     for c in study.criteria:
         values = column(c.metric)[head][converged]
@@ -116,8 +126,9 @@ def insights(study: Study, column) -> dict:
             failing[c.name] = failed[converged]
     if failing:
         # every criterion's drivers at once: each input column is sorted once for all
-        all_inputs = pd.DataFrame({p.name: column(p.name)[head][converged] for p in varying})
-        drivers = sensitivity.failure_drivers_of(all_inputs, failing, units)
+        frame = pd.DataFrame(driver_inputs)
+        driver_inputs.clear()  # the frame holds its own copy
+        drivers = sensitivity.failure_drivers_of(frame, failing, units, threads=threads)
     result["failure_drivers"] = drivers
     result["insight_rows"] = min(n, INSIGHT_ROWS)
     result["capability"] = capability

@@ -22,6 +22,7 @@ from tolerance import runner
 from tolerance.runner import Override, RunSpec
 from tolerance.study import SAMPLERS, Study, StudyError
 from tolerance.study import load_study as _load_study_file
+from tolerance.threads import parent_threads
 
 if TYPE_CHECKING:  # pandas is imported where a frame is built: the command line's start
     import pandas as pd  # would pay 0.4 s for it (and scipy.stats 1 s with the summary)
@@ -206,7 +207,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     samples, seed, sampler : optional
         Override the study's ``[run]`` settings.
     jobs : int
-        Parallel workers (joblib); results do not depend on it.
+        Parallel workers (joblib), and threads of the summary once they are done; results
+        do not depend on it.
     chunk_size : int, optional
         Largest number of samples per chunk; with several workers the chunks are made equal
         and a multiple of ``jobs`` in number (:func:`tolerance.runner.balanced_chunk_size`),
@@ -246,6 +248,9 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
 
     meta = dict(study_path=study.path, title=study.title, stage_name=study.stage_name,
                 allowed_rate=study.settings.max_failure_rate)
+    # the workers are idle once the samples are written: the summary's column work uses as
+    # many threads as there were workers (tolerance.threads)
+    threads = parent_threads(jobs)
     if stop_rule is None:  # a stopping rule has its own rounds (runner.execute)
         chunk = runner.balanced_chunk_size(spec.samples, chunk, jobs)
     if out is None:
@@ -254,8 +259,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         if after_samples is not None:
             after_samples()
         column = lambda name: df[name].to_numpy()  # noqa: E731
-        summary = summarize(spec, column, **meta, extra=_extra(study, column, insights,
-                                                               target_ci))
+        summary = summarize(spec, column, **meta, threads=threads,
+                            extra=_extra(study, column, insights, target_ci, threads))
         return RunResult(study, summary, None, df)
     out = Path(out)
     _prepare_folder(out, force, resume)
@@ -267,16 +272,17 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     if after_samples is not None:
         after_samples()
     with runner.ChunkColumns(folder) as column:
-        summary = summarize(spec, column, **meta,
-                            extra=_extra(study, column, insights, target_ci))
+        summary = summarize(spec, column, **meta, threads=threads,
+                            extra=_extra(study, column, insights, target_ci, threads))
     write_json(out / SUMMARY_FILE, summary)
     return RunResult(study, summary, out)
 
 
-def _extra(study: Study, column, insights: bool, target_ci: float | None) -> dict:
+def _extra(study: Study, column, insights: bool, target_ci: float | None,
+           threads: int = 1) -> dict:
     from tolerance.analysis import insights as _insights
 
-    extra = _insights(study, column) if insights else {}
+    extra = _insights(study, column, threads) if insights else {}
     if target_ci is not None:
         extra["target_ci"] = target_ci
     return extra

@@ -26,6 +26,8 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from tolerance.threads import thread_map
+
 __all__ = [
     "as_array_function",
     "average_ranks",
@@ -46,13 +48,26 @@ def _run_ends(xs: np.ndarray) -> np.ndarray:
     return np.flatnonzero(np.append(xs[1:] != xs[:-1], True))
 
 
-def average_ranks(values: np.ndarray) -> np.ndarray:
+def _column_ranks(col: np.ndarray) -> np.ndarray:
+    """Average ranks from 1 of one contiguous 1-D column (see :func:`average_ranks`)."""
+    order = np.argsort(col)
+    ends = _run_ends(col[order])
+    starts = np.concatenate(([0], ends[:-1] + 1))
+    ranks = np.empty(col.size)
+    ranks[order] = np.repeat(0.5 * (starts + ends) + 1.0, ends - starts + 1)
+    return ranks
+
+
+def average_ranks(values: np.ndarray, threads: int = 1) -> np.ndarray:
     """Column-wise ranks from 1, ties given the mean of the ranks they span.
 
     Parameters
     ----------
     values : ndarray, shape (n, k) or (n,)
         Finite data, one variable per column.
+    threads : int
+        Columns ranked at once (:func:`tolerance.threads.thread_map`); the ranks do not
+        depend on it.
 
     Returns
     -------
@@ -68,22 +83,33 @@ def average_ranks(values: np.ndarray) -> np.ndarray:
     x = x[:, None] if flat else x
     n, k = x.shape
     ranks = np.empty((n, k), order="F")  # column by column, as scipy returns them
-    for j in range(k if n else 0):
-        col = np.ascontiguousarray(x[:, j])
-        order = np.argsort(col)
-        ends = _run_ends(col[order])
-        starts = np.concatenate(([0], ends[:-1] + 1))
-        ranks[order, j] = np.repeat(0.5 * (starts + ends) + 1.0, ends - starts + 1)
+    columns = thread_map(lambda j: _column_ranks(np.ascontiguousarray(x[:, j])),
+                         range(k if n else 0), threads)
+    for j, col in enumerate(columns):
+        ranks[:, j] = col
     return ranks[:, 0] if flat else ranks
 
 
-def _standardized_ranks(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _standardized_column(col: np.ndarray) -> tuple[np.ndarray, bool]:
+    ranks = _column_ranks(np.ascontiguousarray(col))
+    ranks -= ranks.mean()
+    scale = np.sqrt(np.mean(ranks**2))
+    if scale == 0.0:
+        return np.zeros_like(ranks), True
+    ranks /= scale
+    return ranks, False
+
+
+def _standardized_ranks(values: np.ndarray, threads: int = 1
+                        ) -> tuple[np.ndarray, np.ndarray]:
     """Column-wise average ranks, centred and scaled to unit (population) variance.
 
     Parameters
     ----------
     values : ndarray, shape (n, k)
         Data, one variable per column.
+    threads : int
+        Columns worked on at once; the result does not depend on it.
 
     Returns
     -------
@@ -92,16 +118,21 @@ def _standardized_ranks(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     constant : ndarray of bool, shape (k,)
         True for columns whose values are all equal.
     """
-    ranks = average_ranks(values)
-    ranks = ranks - ranks.mean(axis=0)
-    scale = np.sqrt(np.mean(ranks**2, axis=0))
-    constant = scale == 0.0
-    z = np.zeros_like(ranks)
-    z[:, ~constant] = ranks[:, ~constant] / scale[~constant]
+    x = np.asarray(values, dtype=float)
+    n, k = x.shape
+    z = np.zeros((n, k), order="F")
+    constant = np.zeros(k, dtype=bool)
+    if n == 0:
+        return z, constant
+    for j, (col, const) in enumerate(thread_map(lambda j: _standardized_column(x[:, j]),
+                                                range(k), threads)):
+        z[:, j] = col
+        constant[j] = const
     return z, constant
 
 
-def _rank_measures(x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _rank_measures(x: np.ndarray, y: np.ndarray, threads: int = 1
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Spearman, SRRC and PRCC for every input column against every output column.
 
     Parameters
@@ -136,8 +167,8 @@ def _rank_measures(x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray
     prcc = np.full((p, m), np.nan)
     if n < 3:
         return spearman, srrc, prcc
-    zx, const_x = _standardized_ranks(x)
-    zy, const_y = _standardized_ranks(y)
+    zx, const_x = _standardized_ranks(x, threads)
+    zy, const_y = _standardized_ranks(y, threads)
     rho = zx.T @ zy / n  # (p, m) rank correlations
     rho[const_x, :] = np.nan
     rho[:, const_y] = np.nan
@@ -168,7 +199,8 @@ def _rank_measures(x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray
     return spearman, srrc, prcc
 
 
-def rank_sensitivity(inputs: pd.DataFrame, outputs: pd.DataFrame) -> pd.DataFrame:
+def rank_sensitivity(inputs: pd.DataFrame, outputs: pd.DataFrame, threads: int = 1
+                     ) -> pd.DataFrame:
     """Rank-based sensitivity measures of every metric to every input.
 
     Parameters
@@ -178,6 +210,9 @@ def rank_sensitivity(inputs: pd.DataFrame, outputs: pd.DataFrame) -> pd.DataFram
     outputs : pandas.DataFrame
         Model outputs for the same samples (same number of rows, aligned by position), one
         column per metric. NaN marks samples that did not converge.
+    threads : int
+        Columns ranked at once (:func:`tolerance.threads.thread_map`); the measures do not
+        depend on it.
 
     Returns
     -------
@@ -234,7 +269,7 @@ def rank_sensitivity(inputs: pd.DataFrame, outputs: pd.DataFrame) -> pd.DataFram
         groups.setdefault(np.packbits(rows_ok[:, j]).tobytes(), []).append(j)
     for cols in groups.values():
         mask = rows_ok[:, cols[0]]
-        sp, sr, pr = _rank_measures(x_all[mask], y_all[np.ix_(mask, cols)])
+        sp, sr, pr = _rank_measures(x_all[mask], y_all[np.ix_(mask, cols)], threads)
         spearman[:, cols] = sp
         srrc[:, cols] = sr
         prcc[:, cols] = pr
@@ -564,7 +599,8 @@ def _percent(fraction: float) -> str:
     return f"{v:.2g}"
 
 
-def _ks_table(x: np.ndarray, failed: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+def _ks_table(x: np.ndarray, failed: list[np.ndarray], threads: int = 1
+              ) -> tuple[np.ndarray, np.ndarray]:
     """Two-sample Kolmogorov-Smirnov statistics, failed against passed samples, of every
     input column for every failure label, from one sort of each column.
 
@@ -596,17 +632,24 @@ def _ks_table(x: np.ndarray, failed: list[np.ndarray]) -> tuple[np.ndarray, np.n
     sign = np.ones((len(failed), p))
     k = np.arange(1, n + 1)
     sizes = [int(np.count_nonzero(f)) for f in failed]
-    for i in range(p):
+
+    def column(i: int) -> list[tuple[float, float]]:
         col = np.ascontiguousarray(x[:, i])
         order = np.argsort(col)  # the order within runs of equal values does not matter
         ends = _run_ends(col[order])
+        out = []
         for c, fail in enumerate(failed):
             cum_f = np.cumsum(fail[order])[ends]
             diff = cum_f / sizes[c] - (k[ends] - cum_f) / (n - sizes[c])
             high = float(diff.max())
             low = float(np.clip(-diff.min(), 0.0, 1.0))
             # scipy.stats.ks_2samp: the negative side wins only when strictly larger
-            d[c, i], sign[c, i] = (low, -1.0) if low > high else (high, 1.0)
+            out.append((low, -1.0) if low > high else (high, 1.0))
+        return out
+
+    for i, entries in enumerate(thread_map(column, range(p), threads)):
+        for c, (stat, side) in enumerate(entries):
+            d[c, i], sign[c, i] = stat, side
     return d, sign
 
 
@@ -685,9 +728,11 @@ def failure_drivers_of(
     units: dict[str, str] | None = None,
     formatter: Callable[[float, str], str] | None = None,
     top: int = 5,
+    threads: int = 1,
 ) -> dict[str, dict]:
     """:func:`failure_drivers` of several failure labels (one per criterion) on the same
-    inputs, each input column sorted once for all of them.
+    inputs, each input column sorted once for all of them, up to ``threads`` columns at once
+    (the drivers do not depend on it).
 
     Returns
     -------
@@ -709,7 +754,8 @@ def failure_drivers_of(
     # up to 200 samples the drivers take scipy's exact test instead (:func:`_drivers`)
     mixed = [key for key, f in labels.items()
              if 0 < np.count_nonzero(f) < f.size and f.size > 200]
-    d, sign = _ks_table(x, [labels[key] for key in mixed]) if mixed else (None, None)
+    d, sign = (_ks_table(x, [labels[key] for key in mixed], threads) if mixed
+               else (None, None))
     out = {}
     for key, fail in labels.items():
         ks = None

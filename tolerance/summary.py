@@ -13,13 +13,14 @@ import numpy as np
 
 from tolerance import __version__, limits, stats
 from tolerance.runner import RunSpec, criterion_column
+from tolerance.threads import thread_map
 
 CONFIDENCE = 0.95
 
 
 def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path: str,
               title: str, stage_name: str, allowed_rate: float,
-              extra: dict | None = None) -> dict:
+              extra: dict | None = None, threads: int = 1) -> dict:
     """Build the summary dict of a finished run.
 
     Parameters
@@ -28,6 +29,9 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
         What was run.
     column : callable
         ``column(name) -> ndarray`` returns one column of the samples, in sample order.
+    threads : int
+        Threads for the metrics' percentiles (:func:`tolerance.threads.thread_map`); the
+        summary does not depend on it. ``column`` is only ever called from this thread.
     """
     converged = column("converged").astype(bool)
     n = len(converged)
@@ -63,10 +67,10 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
         }
 
     metrics = {}
-    for name, info in spec.stage.metrics.items():
-        entry = {"unit": info.unit, "description": info.description}
-        entry.update(stats.percentile_summary(column(name)))
-        metrics[name] = entry
+    spreads = thread_map(stats.percentile_summary,
+                         (column(name) for name in spec.stage.metrics), threads)
+    for (name, info), spread in zip(spec.stage.metrics.items(), spreads):
+        metrics[name] = {"unit": info.unit, "description": info.description, **spread}
 
     overall = limits.overall(verdicts, not_converged)
     saturation = criteria.get("saturation")
