@@ -207,7 +207,10 @@ class StoredCharges:
 
 
 def _is_zero(v) -> bool:
-    return np.ndim(v) == 0 and float(v) == 0.0
+    """True for a scalar zero (a structural zero: the term is off), False for any array."""
+    if isinstance(v, np.ndarray):
+        return v.ndim == 0 and float(v) == 0.0
+    return float(v) == 0.0
 
 
 def depletion_charge(v, zero_bias_capacitance, built_in_voltage, grading, fraction=0.5):
@@ -320,12 +323,10 @@ def stored_charges(p: ScaledTransistor, c: ChargeParameters, v_be, v_bc,
                                   c.bc_grading_coefficient, c.forward_bias_fraction)
         qbc = qbc + qj
         dbc_bc = dbc_bc + cj
-    shape = np.shape(vbe)
-    qbe, qbc = np.broadcast_to(qbe, shape), np.broadcast_to(qbc, shape)
+    # every term started from ``zero``, the shape of the voltages, so none needs broadcasting
     if pol == -1:
         qbe, qbc = -qbe, -qbc
-    return StoredCharges(qbe, qbc, np.broadcast_to(dbe_be, shape),
-                         np.broadcast_to(dbe_bc, shape), np.broadcast_to(dbc_bc, shape))
+    return StoredCharges(qbe, qbc, dbe_be, dbe_bc, dbc_bc)
 
 
 def storage_time_constant(forward_beta, reverse_beta, forward_transit_time,

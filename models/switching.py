@@ -186,6 +186,8 @@ class StageCircuit:
     def __init__(self, topology, devices, n_unknowns, switch_node, coil_index, drive,
                  resistors, load, supply, merged_resistance, avalanche, x_final, settle_scale,
                  ringing=None):
+        if any(d.b < 0 for d in devices):  # evaluate() takes the junction voltages as (w,)
+            raise ValueError("a transistor's base must be a node of the circuit, not ground")
         self.topology = topology
         self.devices: list[_Device] = devices
         self.n_unknowns = n_unknowns
@@ -219,9 +221,10 @@ class StageCircuit:
     def drive_voltage(self, t):
         """Thevenin voltage of the drive at the input transistor's base [V] at times ``t``."""
         d = self.drive
-        with np.errstate(divide="ignore", invalid="ignore"):
-            ramp = np.where(d["edge"] > 0, np.clip(t / d["edge"], 0.0, 1.0), 1.0)
-        return d["start"] + (d["end"] - d["start"]) * ramp
+        ramping = d["edge"] > 0
+        # the same values as clip(t / edge, 0, 1) where the edge takes time; no division by 0
+        ramp = np.minimum(np.maximum(t / np.where(ramping, d["edge"], 1.0), 0.0), 1.0)
+        return d["start"] + (d["end"] - d["start"]) * np.where(ramping, ramp, 1.0)
 
     def _load_current(self, vc):
         """Current of the load branch into the switch node and d/dV_C (> 0 means the current
@@ -278,8 +281,7 @@ class StageCircuit:
         aux = np.empty((w, len(self.devices)))
         for k_dev, dev in enumerate(self.devices):
             vb, vc, ve = _node(x, dev.b), _node(x, dev.c), _node(x, dev.e)
-            vbe = np.broadcast_to(vb - ve, (w,))
-            vbc = np.broadcast_to(vb - vc, (w,))
+            vbe, vbc = vb - ve, vb - vc  # (w,): a base is never the ground node (__init__)
             jc = junction_currents(dev.scaled, vbe, vbc)
             ch = stored_charges(dev.scaled, dev.charges, vbe, vbc, jc.transport)
             b, c, e = dev.b, dev.c, dev.e
@@ -389,13 +391,13 @@ class StageCircuit:
         final.
         """
         near = np.abs(x - self.x_final) <= self.settle_scale
-        plain = np.all(near, axis=1)
+        plain = near.all(axis=1)
         rg = self.ringing
         if rg is None:
             return plain
         sw, k = self.switch_node, self.coil_index
         cand = near[:, k] & ~plain
-        if not np.any(cand):
+        if not cand.any():
             return plain
         energy, dq_sw = self.ringing_energy(x)
         di = x[:, k] - self.x_final[:, k]
@@ -460,11 +462,14 @@ class StageCircuit:
                 vn = pol * (_node(x_new, dev.b) - _node(x_new, other))
                 vo = pol * (_node(x_old, dev.b) - _node(x_old, other))
                 vl = limit_junction_step(vn, vo, nvt, vcrit)
+                if vl is vn:  # no step of this junction limited: its ratio is 1 everywhere
+                    continue
+                moved = vl != vn  # a limited step is more than 2 n V_T: vn - vo is not 0
                 with np.errstate(divide="ignore", invalid="ignore"):
-                    r = np.where(vl != vn, (vl - vo) / (vn - vo), 1.0)
+                    r = np.where(moved, (vl - vo) / (vn - vo), 1.0)
                 r = np.clip(np.where(np.isfinite(r), r, 1.0), 1e-3, 1.0)
                 alpha = r if alpha is None else np.minimum(alpha, r)
-        if alpha is None or np.all(alpha == 1.0):
+        if alpha is None or (alpha == 1.0).all():
             return x_new
         return x_old + alpha[:, None] * (x_new - x_old)
 

@@ -345,7 +345,7 @@ def integrate(system: ChargeSystem, x0, t_end, *, absolute_tolerance, relative_t
         active &= ~empty
         out_status[empty] = FINISHED
 
-    while np.any(active):
+    while active.any():
         # ---- step size: land on the next breakpoint and on the end time
         bp_next = bps[np.arange(gidx.size), np.minimum(bp_i, n_bp - 1)]
         to_bp = bp_next - t
@@ -482,12 +482,13 @@ def integrate(system: ChargeSystem, x0, t_end, *, absolute_tolerance, relative_t
         with np.errstate(divide="ignore"):
             expo = np.where(npts == 1, -0.5, -1.0 / 3.0)
             grow = 0.7 * np.power(np.maximum(err, 1e-12), expo)
-        fac = np.where(accept, np.clip(grow, 0.2, 2.0),
-                       np.where(conv, np.clip(grow, 0.1, 0.5), 0.25))
+        # np.clip's bounds by two ufuncs (the same values, NaN included, at less overhead)
+        fac = np.where(accept, np.minimum(np.maximum(grow, 0.2), 2.0),
+                       np.where(conv, np.minimum(np.maximum(grow, 0.1), 0.5), 0.25))
         if qtol_all is None:
             fac = np.where(accept & (npts == 1), 2.0, fac)
 
-        if np.any(accept):
+        if accept.any():
             obs = sys_w.observe(t_new, x, aux)
             y = np.asarray(obs.current, dtype=float)
             p = np.asarray(obs.power, dtype=float)
@@ -496,7 +497,7 @@ def integrate(system: ChargeSystem, x0, t_end, *, absolute_tolerance, relative_t
                 before = (y_prev[:, None] - levels) * dirs
                 after = (y[:, None] - levels) * dirs
                 hit = accept[:, None] & np.isnan(ev) & (before < 0.0) & (after >= 0.0)
-                if np.any(hit):
+                if hit.any():
                     # crossing of the parabola through the last three points, from the
                     # linear interpolation by Newton's method (it stays inside the step)
                     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
@@ -549,16 +550,20 @@ def integrate(system: ChargeSystem, x0, t_end, *, absolute_tolerance, relative_t
         h = np.where(active, h * fac, h)
 
         # ---- who is finished
-        all_events = np.all(~np.isnan(ev), axis=1) if k else np.ones(gidx.size, dtype=bool)
+        all_events = (~np.isnan(ev)).all(axis=1) if k else np.ones(gidx.size, dtype=bool)
         past_bp = ~np.isfinite(bps[np.arange(gidx.size), np.minimum(bp_i, n_bp - 1)])
-        settled = accept & past_bp & all_events & sys_w.settled(xa)
+        settled = accept & past_bp & all_events
+        if settled.any():  # the system's test only where it can end a run
+            settled &= sys_w.settled(xa)
         ended = accept & land_end
         failed_newton = active & (h < minimum_step)
         failed_steps = active & (steps + rejected >= max_steps)
-        status_now = np.select([settled, ended, failed_newton, failed_steps],
-                               [SETTLED, FINISHED, FAILED_NEWTON, FAILED_STEPS], RUNNING)
+        # the first that applies, in this order (np.select's rule, without its overhead)
+        status_now = np.where(settled, SETTLED, np.where(
+            ended, FINISHED, np.where(failed_newton, FAILED_NEWTON,
+                                      np.where(failed_steps, FAILED_STEPS, RUNNING))))
         done = active & (status_now != RUNNING)
-        if np.any(done):
+        if done.any():
             gi = gidx[done]
             out_status[gi] = status_now[done]
             out_events[gi] = ev[done]

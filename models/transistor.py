@@ -117,8 +117,8 @@ def _exp_lin(arg):
 
     The test is element-wise (``np.any``, not ``np.max``, which a NaN of another sample would
     turn false): a sample's value never depends on the others of its batch."""
-    if np.any(arg > _EXP_MAX):
-        big = arg > _EXP_MAX
+    big = arg > _EXP_MAX
+    if big.any() if isinstance(big, np.ndarray) else big:
         e = np.exp(np.minimum(arg, _EXP_MAX))
         value = np.where(big, e * (1.0 + (arg - _EXP_MAX)), e)
         return value, e
@@ -349,7 +349,10 @@ class JunctionCurrents:
 
 
 def _is_zero(v) -> bool:
-    return np.ndim(v) == 0 and float(v) == 0.0
+    """True for a scalar zero (a structural zero: the term is off), False for any array."""
+    if isinstance(v, np.ndarray):
+        return v.ndim == 0 and float(v) == 0.0
+    return float(v) == 0.0
 
 
 def _add(a, b):
@@ -588,7 +591,7 @@ def limit_junction_step(v_new, v_old, emission_vt, v_crit):
     v_old = np.asarray(v_old, dtype=float)
     step = v_new - v_old
     need = (v_new > v_crit) & (step > 2.0 * emission_vt)
-    if not np.any(need):
+    if not (need.any() if isinstance(need, np.ndarray) else need):
         return v_new
     with np.errstate(divide="ignore", invalid="ignore"):
         arg = 1.0 + step / emission_vt

@@ -527,3 +527,14 @@ def test_ringing_end_keeps_the_metrics(monkeypatch):
         # (5e-4) of the coil's energy, the scale of these energies; 1e-3 of each covers it
         # and the quadrature of the oscillation in the full run (common practice, no source)
         assert_allclose(fast.metrics[key], full.metrics[key], rtol=1e-3, err_msg=key)
+
+
+def test_a_transistor_base_on_the_ground_node_is_refused():
+    # the circuit's evaluation takes every junction voltage as one value per sample, which
+    # holds because a base is always a node of the circuit
+    from tolerance.models import switching
+
+    grounded = switching._Device("output", None, None, -1, 1, -1, 1.0, 1.0, 1.0, 1.0)
+    with pytest.raises(ValueError, match="base must be a node"):
+        switching.StageCircuit("single", [grounded], 2, 1, -1, {}, [], {}, 12.0, 0.0, None,
+                               None, None)
