@@ -17,6 +17,7 @@ import pandas as pd
 
 from tolerance import sensitivity, stats, worstcase
 from tolerance.study import Study
+from tolerance.threads import thread_map
 
 #: rows used for rank sensitivities in a run summary (ranks of very long runs add nothing)
 SENSITIVITY_ROWS = 200_000
@@ -116,11 +117,19 @@ def insights(study: Study, column, threads: int = 1) -> dict:
     units = {p.name: p.unit for p in study.parameters}
     drivers, capability, tail = {}, {}, {}
     failing = {}
+
+    def criterion_values():  # read here, in the calling thread; fitted in the threads
+        for c in study.criteria:
+            yield c, column(c.metric)[head][converged]
+
+    def fits(item):
+        c, values = item
+        return (stats.capability(values, c.minimum, c.maximum),
+                stats.tail_estimate(_margin(values, c.minimum, c.maximum)))
+
+    for c, (cap, fit) in zip(study.criteria, thread_map(fits, criterion_values(), threads)):
+        capability[c.name], tail[c.name] = cap, fit
     for c in study.criteria:
-        values = column(c.metric)[head][converged]
-        capability[c.name] = stats.capability(values, c.minimum, c.maximum)
-        tail[c.name] = stats.tail_estimate(_margin(values, c.minimum, c.maximum))
-        del values
         failed = converged & ~column(f"pass.{c.name}")[head].astype(bool)
         if failed.any() and varying:
             failing[c.name] = failed[converged]
