@@ -501,3 +501,29 @@ def test_tail_estimate_keys_and_types():
     assert isinstance(out["method"], str) and isinstance(out["assumption"], str)
     assert out["assumption"].count(". ") == 0 and out["assumption"].endswith(".")
     assert isinstance(out["n"], int)
+
+
+@pytest.mark.parametrize("magnitude", [1e-250, 1e-120, 1.0, 1e120, 1e250])
+def test_mean_and_spread_of_metrics_whose_squares_leave_double_precision(magnitude):
+    import statistics
+
+    from tolerance.stats import capability, mean_std, percentile_summary
+
+    rng = np.random.default_rng(11)
+    x = magnitude * rng.normal(3.0, 1.0, 500)
+    # Python's statistics module works in exact rational arithmetic, so no square overflows
+    # or underflows: the reference for the mean and the sample standard deviation
+    mean, std = mean_std(x)
+    assert mean == pytest.approx(statistics.fmean(x), rel=1e-12)
+    assert std == pytest.approx(statistics.stdev(x), rel=1e-12)
+    if magnitude == 1.0:  # numpy's own figures, to the last bit, in the plain range
+        assert (mean, std) == (float(np.mean(x)), float(np.std(x, ddof=1)))
+    # the run summary and the capability take the same figures without a floating-point
+    # warning (the test run turns warnings into errors)
+    s = percentile_summary(x)
+    assert s["std"] == std and s["mean"] == mean
+    cap = capability(x, upper=6.0 * magnitude)
+    assert cap["cpk"] == pytest.approx((6.0 * magnitude - mean) / (3.0 * std), rel=1e-12)
+    with_nan = np.append(x, np.nan)
+    assert mean_std(with_nan, ddof=0, nan=True)[1] == pytest.approx(statistics.pstdev(x),
+                                                                     rel=1e-12)

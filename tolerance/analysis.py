@@ -72,7 +72,8 @@ def parameters_table(study: Study) -> list[dict]:
 def _margin(values: np.ndarray, lo, hi) -> np.ndarray:
     """Signed distance to the nearest limit, scaled by the spread: negative fails."""
     values = np.where(np.isfinite(values), values, np.nan)  # out-of-range entries: no margin
-    scale = np.nanstd(values) if np.isfinite(values).sum() > 1 else 1.0
+    scale = stats.mean_std(values, ddof=0, nan=True)[1] if np.isfinite(values).sum() > 1 \
+        else 1.0
     scale = scale if scale > 0 else 1.0
     parts = []
     if lo is not None:

@@ -140,6 +140,44 @@ def _clean(x) -> np.ndarray:
     return arr[np.isfinite(arr)]
 
 
+#: largest magnitude whose squares, summed over any run, stay far inside double precision;
+#: beyond it (or below its reciprocal, where squares underflow) the moments are taken of the
+#: data divided by its largest magnitude (common practice, no source)
+_PLAIN_MOMENTS = 1e100
+
+
+def mean_std(data: np.ndarray, ddof: int = 1, nan: bool = False) -> tuple[float, float]:
+    """Mean and standard deviation of finite data, also where its squares would overflow.
+
+    Parameters
+    ----------
+    data : ndarray
+        Finite values [any unit] (NaN allowed, and skipped, with ``nan=True``).
+    ddof : int
+        Delta degrees of freedom of the standard deviation.
+    nan : bool
+        Skip NaN entries (``np.nanmean`` / ``np.nanstd``).
+
+    Returns
+    -------
+    (mean, std) : tuple of float
+        Exactly numpy's figures for magnitudes between 1e-100 and 1e100; outside that range
+        the same moments of ``data / max|data|``, scaled back, where numpy's own would
+        overflow to infinity (a metric of 1e200 has a square beyond double precision) or
+        underflow to 0. NaN for no data; the spread NaN for no more values than ``ddof``.
+    """
+    mean_of, std_of = (np.nanmean, np.nanstd) if nan else (np.mean, np.std)
+    count = int(np.count_nonzero(~np.isnan(data))) if nan else int(data.size)
+    if count == 0:
+        return math.nan, math.nan
+    big = float(np.nanmax(np.abs(data)))
+    scale = 1.0 if big == 0.0 or 1.0 / _PLAIN_MOMENTS <= big <= _PLAIN_MOMENTS else big
+    values = data if scale == 1.0 else data / scale
+    mean = scale * float(mean_of(values))
+    std = scale * float(std_of(values, ddof=ddof)) if count > ddof else math.nan
+    return mean, std
+
+
 _SUMMARY_PERCENTILES = {"p001": 0.1, "p01": 1.0, "p50": 50.0, "p99": 99.0, "p999": 99.9}
 
 
@@ -165,9 +203,10 @@ def percentile_summary(x) -> dict[str, float]:
     keys = ["mean", "std", "min", "max", *_SUMMARY_PERCENTILES]
     if data.size == 0:
         return {key: math.nan for key in keys}
+    mean, std = mean_std(data)
     out = {
-        "mean": float(np.mean(data)),
-        "std": float(np.std(data, ddof=1)) if data.size > 1 else 0.0,
+        "mean": mean,
+        "std": std if data.size > 1 else 0.0,
         "min": float(np.min(data)),
         "max": float(np.max(data)),
     }
@@ -220,8 +259,7 @@ def capability(x, lower=None, upper=None, confidence: float = 0.95) -> dict[str,
     nan = math.nan
     if n < 2:
         return {"cp": nan, "cpk": nan, "cpk_low": nan, "cpk_high": nan, "n": n}
-    mean = float(np.mean(data))
-    s = float(np.std(data, ddof=1))
+    mean, s = mean_std(data)
     sides = []
     if upper is not None:
         sides.append(float(upper) - mean)
@@ -464,8 +502,8 @@ def tail_estimate(margin, confidence: float = 0.95) -> dict:
     if n == 0:
         out["method"] = "no samples: nothing to estimate"
         return out
-    mean = float(np.mean(data))
-    s = float(np.std(data, ddof=1)) if n > 1 else 0.0
+    mean, s = mean_std(data)
+    s = s if n > 1 else 0.0
     if s == 0.0 or not math.isfinite(s):
         fail = 1e6 if mean < 0 else 0.0
         out.update(
