@@ -259,7 +259,33 @@ JUNK = ["0", "-1", "1e308", "nan", "inf", '"nan V"', '"0 ohm"', '"-5 V"', '"1e-3
 def test_mutated_shipped_studies_never_crash(path, picks):
     # common practice, no source: whatever a line of a real stage's study is changed to, the
     # study is refused with the file and key named, or it runs and accounts for every sample
-    lines = path.read_text(encoding="utf-8").splitlines()
+    _refused_or_accounted(path, picks)
+
+
+# found by longer campaigns of the test above (warnings as errors, as in the test run): a
+# value of 1e-300 or 1e308 gave metrics whose squares overflowed in the spread, a capability
+# index whose square overflowed in its interval, or a margin beyond double precision
+@pytest.mark.parametrize("name, section, line", [
+    ("unclamped_valve_single.toml", "[load]", 'must_operate_voltage = "18 V"'),
+    ("unclamped_valve_single.toml", "[parts.RB]", 'value = "68R"'),
+    ("irrigation_valve_single.toml", "[parts.RB]", 'value = "68R"'),
+    ("irrigation_valve_single.toml", "[parts.RPD]", 'value = "1k0"'),
+])
+@pytest.mark.parametrize("value", ["1e-300", '"1e-300 ohm"', "1e308"])
+def test_extreme_values_found_by_the_fuzzer_run_cleanly(name, section, line, value):
+    text = (ROOT / "studies" / name).read_text(encoding="utf-8")
+    head, tail = text.split(section + "\n", 1)
+    assert line in tail
+    key = line.split("=", 1)[0].rstrip()
+    lines = (head + section + "\n" + tail.replace(line, f"{key} = {value}", 1)).splitlines()
+    _refused_or_accounted(lines, [])
+
+
+def _refused_or_accounted(source, picks):
+    """Apply ``picks`` to the lines of a study (a path or its lines); the result is refused
+    with the file and key named, or it runs and accounts for every sample."""
+    lines = (source.read_text(encoding="utf-8").splitlines() if isinstance(source, Path)
+             else list(source))
     keyed = [i for i, ln in enumerate(lines) if "=" in ln and not ln.lstrip().startswith("#")]
     for pick, how, value in picks:
         i = keyed[pick % len(keyed)]

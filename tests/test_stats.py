@@ -527,3 +527,18 @@ def test_mean_and_spread_of_metrics_whose_squares_leave_double_precision(magnitu
     with_nan = np.append(x, np.nan)
     assert mean_std(with_nan, ddof=0, nan=True)[1] == pytest.approx(statistics.pstdev(x),
                                                                      rel=1e-12)
+
+
+def test_capability_of_a_spread_far_below_its_window():
+    from tolerance.stats import capability
+
+    # a metric of a few 1e-300 against a limit of 18 (a resistor typed as 1e-300 ohm): the
+    # index is about 1e300, whose square is beyond double precision; Bissell's interval is
+    # then cpk +- z cpk / sqrt(2 (n - 1)) (its 1 / (9 n) term vanishes beside it)
+    rng = np.random.default_rng(2)
+    x = 1e-300 * rng.uniform(1.0, 2.0, 40)
+    cap = capability(x, upper=18.0)
+    assert 1e299 < cap["cpk"] < math.inf
+    z = float(stats.norm.ppf(0.975))
+    assert cap["cpk_low"] == pytest.approx(cap["cpk"] * (1 - z / math.sqrt(78)), rel=1e-12)
+    assert cap["cpk_high"] == pytest.approx(cap["cpk"] * (1 + z / math.sqrt(78)), rel=1e-12)

@@ -76,10 +76,13 @@ def _margin(values: np.ndarray, lo, hi) -> np.ndarray:
         else 1.0
     scale = scale if scale > 0 else 1.0
     parts = []
-    if lo is not None:
-        parts.append((values - lo) / scale)
-    if hi is not None:
-        parts.append((hi - values) / scale)
+    # a distance beyond double precision in units of the spread (a limit of 1e308 against a
+    # spread of microvolts) is an infinite margin: the tail fits leave it out like any other
+    with np.errstate(over="ignore"):
+        if lo is not None:
+            parts.append((values - lo) / scale)
+        if hi is not None:
+            parts.append((hi - values) / scale)
     return np.minimum.reduce(parts) if len(parts) > 1 else parts[0]
 
 

@@ -275,7 +275,10 @@ def capability(x, lower=None, upper=None, confidence: float = 0.95) -> dict[str,
     cp = (float(upper) - float(lower)) / (6.0 * s) if len(sides) == 2 else nan
     cpk = min(sides) / (3.0 * s)
     z = float(stats.norm.ppf(0.5 + confidence / 2.0))
-    se = math.sqrt(1.0 / (9.0 * n) + cpk**2 / (2.0 * (n - 1)))
+    if abs(cpk) < 1e150:
+        se = math.sqrt(1.0 / (9.0 * n) + cpk**2 / (2.0 * (n - 1)))
+    else:  # the same root without squaring an index beyond double precision
+        se = math.hypot(math.sqrt(1.0 / (9.0 * n)), cpk / math.sqrt(2.0 * (n - 1)))
     return {"cp": cp, "cpk": cpk, "cpk_low": cpk - z * se, "cpk_high": cpk + z * se, "n": n}
 
 
