@@ -90,6 +90,20 @@ def test_histogram_axis_uses_engineering_units(result):
     assert fmt(0.5, 0) == "500 mV" and fmt(2.0, 0) == "2 V"
 
 
+def test_histogram_of_a_margin_beyond_any_prefix_saves_cleanly(result, tmp_path):
+    # common practice, no source: a dimensionless margin of 2e301 (a limit typed as 1e-300)
+    # once wrote its tick labels in three hundred digits, and the layout collapsed with a
+    # warning (an error in this test run); it is drawn and saved like any other
+    summary = dict(result.summary)
+    summary["metrics"] = {**summary["metrics"], "y": {**summary["metrics"]["y"], "unit": "1"}}
+    df = result.samples[["y"]].copy() * 1e301
+    fig = plots.histogram(df, "y", summary)
+    path = plots.save(fig, tmp_path / "margin.png")
+    assert path.stat().st_size > 0
+    labels = [t.get_text() for t in fig.axes[1].get_xticklabels()]
+    assert labels and max(len(t) for t in labels) <= 12, labels
+
+
 def test_histogram_counts_samples_left_out(result):
     df = result.samples[["y"]].copy()
     df.loc[:9, "y"] = np.nan

@@ -333,6 +333,20 @@ def test_format_parse_round_trip(x, unit):
     assert parse_quantity(format_quantity(x, unit), unit) == pytest.approx(x, rel=1e-12)
 
 
+@pytest.mark.parametrize("x, unit", [
+    *[(x, "1") for x in (2.1e301, -5e30, 1e12, 1.5e-30, 1e-300, -4.4e-16)],
+    *[(x, u) for x in (2.1e301, 1e12, 1.5e-30, 1e-300) for u in ("K/W", "K")],
+    (2.1e301, "1/K"), (1e-300, "1/K"), (-3e-25, "1/K"),
+])
+def test_extreme_plain_numbers_in_scientific_notation(x, unit):
+    # common practice, no source: a margin of 2e301 (a limit typed as 1e-300) is written in
+    # a few characters, not three hundred digits, as the prefixed units already are; it
+    # still reads back
+    text = format_quantity(x, unit)
+    assert len(text) <= 16, text
+    assert parse_quantity(text, unit) == pytest.approx(x, rel=5e-3)
+
+
 @settings(max_examples=200, deadline=None)
 @given(
     x=st.floats(min_value=1e-14, max_value=1e11, allow_nan=False, allow_infinity=False),

@@ -273,6 +273,8 @@ def _plain(x: float, digits: int) -> str:
     rounded = float(f"{x:.{digits}g}")
     if rounded == 0:
         return "0"
+    if abs(rounded) < 1e-15 or abs(rounded) >= 1e12:  # as the prefixed units: scientific
+        return f"{x:.{digits}g}"
     decimals = max(digits - 1 - math.floor(math.log10(abs(rounded))), 0)
     text = f"{rounded:.{decimals}f}"
     if "." in text:
