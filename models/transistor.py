@@ -349,7 +349,7 @@ class JunctionCurrents:
 
 
 def _is_zero(v) -> bool:
-    """True for a scalar zero (a structural zero: the term is off), False for any array."""
+    """True for a scalar zero (a structural zero: the term is off), False for per-sample arrays."""
     if isinstance(v, np.ndarray):
         return v.ndim == 0 and float(v) == 0.0
     return float(v) == 0.0
