@@ -25,22 +25,35 @@ def test_results_keep_the_order_of_the_items(threads):
 
 
 def test_calls_run_at_once_up_to_the_thread_count():
+    # three calls must meet at the barrier (it breaks after 10 s if fewer run at once), and
+    # the counter sees no more than three at a time; no timing is assumed
     running, most = 0, 0
     lock = threading.Lock()
+    meet = threading.Barrier(3, timeout=10.0)
 
     def call(_):
         nonlocal running, most
         with lock:
             running += 1
             most = max(most, running)
-        time.sleep(0.02)
+        meet.wait()
         with lock:
             running -= 1
 
     thread_map(call, range(12), 3)
     assert most == 3
+
+    def alone(_):
+        nonlocal running, most
+        with lock:
+            running += 1
+            most = max(most, running)
+        time.sleep(0.002)
+        with lock:
+            running -= 1
+
     most = 0
-    thread_map(call, range(12), 1)
+    thread_map(alone, range(12), 1)
     assert most == 1
 
 
