@@ -87,6 +87,59 @@ def test_interrupted_run_resumes_to_identical_result(write_study, tmp_path, sig)
     assert comparable(a) == comparable(b)
 
 
+class _InterruptInFinalizer:
+    """Sends the process SIGINT from its finalizer: Python's handler then raises
+    KeyboardInterrupt inside ``__del__``, where the interpreter ignores it (it only reports it
+    to ``sys.unraisablehook``), as it would for a Ctrl-C that arrives while any finalizer runs
+    (Python documentation, signal module: "Handlers and exceptions")."""
+
+    def __del__(self):
+        os.kill(os.getpid(), signal.SIGINT)
+        for _ in range(3):  # a backward jump: the pending handler runs here at the latest
+            pass
+
+
+class _StageInterruptedAtCall:
+    """Wraps a stage: its ``call``-th evaluation drops an object whose finalizer is hit by
+    the interrupt."""
+
+    def __init__(self, stage, call: int):
+        self._stage, self._call, self.calls = stage, call, 0
+
+    def __getattr__(self, name):
+        return getattr(self._stage, name)
+
+    def evaluate(self, samples):
+        self.calls += 1
+        if self.calls == self._call:
+            _InterruptInFinalizer()  # dropped at once: its finalizer runs here
+        return self._stage.evaluate(samples)
+
+
+@pytest.mark.skipif(not hasattr(signal, "pthread_kill"), reason="POSIX signals")
+def test_an_interrupt_swallowed_by_a_finalizer_still_stops_the_run(write_study, tmp_path,
+                                                                      monkeypatch):
+    import dataclasses
+
+    swallowed = []
+    monkeypatch.setattr(sys, "unraisablehook", lambda u: swallowed.append(u.exc_type))
+    study = load_study(write_study(LINEAR.format(samples=6000, chunk=1000)))
+    stage = _StageInterruptedAtCall(study.stage, call=2)
+    cut = tmp_path / "cut"
+    with pytest.raises(KeyboardInterrupt):
+        run(dataclasses.replace(study, stage=stage), out=cut, insights=False)
+    # the interrupt did reach the finalizer, and was ignored there by the interpreter ...
+    assert swallowed == [KeyboardInterrupt]
+    # ... yet the run stopped after that chunk: no further chunk, no summary
+    assert stage.calls == 2
+    assert len(list((cut / "samples.parquet").glob("part-*.parquet"))) == 2
+    assert not (cut / "summary.json").exists()
+    # and SIGINT is Python's own again
+    assert signal.getsignal(signal.SIGINT) is signal.default_int_handler
+    resumed = run(study, out=cut, resume=True, insights=False)
+    assert comparable(resumed.summary) == comparable(run(study, insights=False).summary)
+
+
 def test_existing_result_folder_needs_force(write_study, tmp_path):
     study = load_study(write_study(LINEAR.format(samples=1000, chunk=500)))
     run(study, out=tmp_path / "r")

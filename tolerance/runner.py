@@ -13,7 +13,9 @@ from __future__ import annotations
 
 import json
 import os
+import signal
 import sys
+import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -229,6 +231,42 @@ class Progress:
         sys.stderr.flush()
 
 
+class InterruptGuard:
+    """Ctrl-C during a run's chunks, kept until the run has seen it.
+
+    Python turns SIGINT into KeyboardInterrupt in whatever code runs next, and an exception
+    raised inside a finalizer (``__del__``, a weakref callback) is ignored there, only
+    reported (Python documentation, signal module, "Handlers and exceptions"): a Ctrl-C that
+    lands in one is lost and the run goes on to the end. While the guard is on, SIGINT still
+    raises at once, as Python's own handler does, and is also remembered; ``check()``, called
+    after every chunk and once the chunks are done, raises it again if it went missing. The
+    guard takes SIGINT only where Python's own handler holds it, in the main thread (a caller
+    that ignores or handles SIGINT itself keeps it), and gives it back on exit.
+    """
+
+    def __init__(self):
+        self.interrupted = False
+        self._previous = None
+
+    def __enter__(self):
+        if (threading.current_thread() is threading.main_thread()
+                and signal.getsignal(signal.SIGINT) is signal.default_int_handler):
+            self._previous = signal.signal(signal.SIGINT, self._handle)
+        return self
+
+    def _handle(self, signum, frame):
+        self.interrupted = True
+        raise KeyboardInterrupt
+
+    def check(self) -> None:
+        if self.interrupted:
+            raise KeyboardInterrupt
+
+    def __exit__(self, *exc) -> None:
+        if self._previous is not None:
+            signal.signal(signal.SIGINT, self._previous)
+
+
 def execute(spec: RunSpec, chunk_size: int, jobs: int = 1, folder: Path | None = None,
             progress: bool = False, resume: bool = False, backend: str = "loky",
             scheduler: str | None = None, stop_rule=None) -> pd.DataFrame | None:
@@ -261,38 +299,42 @@ def execute(spec: RunSpec, chunk_size: int, jobs: int = 1, folder: Path | None =
         rounds = list(rounds.values())
     frames: list[pd.DataFrame] = []
     finished = 0
-    for batch in rounds:
-        finished += len(batch)
-        if folder is None:
-            tasks = [delayed(evaluate_chunk)(spec, s, e) for _, s, e in batch]
-        else:
-            tasks = []
-            for i, s, e in batch:
-                if resume and chunk_is_complete(_chunk_path(folder, i), spec.signature, s, e):
-                    bar.advance(e - s)
+    with InterruptGuard() as guard:
+        for batch in rounds:
+            finished += len(batch)
+            if folder is None:
+                tasks = [delayed(evaluate_chunk)(spec, s, e) for _, s, e in batch]
+            else:
+                tasks = []
+                for i, s, e in batch:
+                    if resume and chunk_is_complete(_chunk_path(folder, i), spec.signature,
+                                                    s, e):
+                        bar.advance(e - s)
+                    else:
+                        tasks.append(delayed(run_chunk_to_file)(spec, i, s, e, str(folder)))
+            for item in _run_tasks(tasks, jobs, backend, scheduler):
+                if folder is None:
+                    frames.append(item)
+                    bar.advance(len(item))
                 else:
-                    tasks.append(delayed(run_chunk_to_file)(spec, i, s, e, str(folder)))
-        for item in _run_tasks(tasks, jobs, backend, scheduler):
-            if folder is None:
-                frames.append(item)
-                bar.advance(len(item))
-            else:
-                bar.advance(item)
-        if stop_rule is not None and finished < len(ranges):
-            if folder is None:
-                import pandas as pd
+                    bar.advance(item)
+                guard.check()  # an interrupt lost on its way stops the run here
+            if stop_rule is not None and finished < len(ranges):
+                if folder is None:
+                    import pandas as pd
 
-                done = pd.concat(frames, ignore_index=True)
-                column = lambda name, d=done: d[name].to_numpy()  # noqa: E731
-            else:
-                kept = [_chunk_path(folder, i) for i, _, _ in ranges[:finished]]
-                column = lambda name, k=kept: np.concatenate(  # noqa: E731
-                    [_chunk_column(p, name) for p in k])
-            if stop_rule(column):
-                if folder is not None:
-                    for i, _, _ in ranges[finished:]:
-                        _chunk_path(folder, i).unlink(missing_ok=True)
-                break
+                    done = pd.concat(frames, ignore_index=True)
+                    column = lambda name, d=done: d[name].to_numpy()  # noqa: E731
+                else:
+                    kept = [_chunk_path(folder, i) for i, _, _ in ranges[:finished]]
+                    column = lambda name, k=kept: np.concatenate(  # noqa: E731
+                        [_chunk_column(p, name) for p in k])
+                if stop_rule(column):
+                    if folder is not None:
+                        for i, _, _ in ranges[finished:]:
+                            _chunk_path(folder, i).unlink(missing_ok=True)
+                    break
+        guard.check()
     if progress and bar.done < bar.total:
         sys.stderr.write("\n")
     if folder is None:
