@@ -150,6 +150,40 @@ def test_existing_result_folder_needs_force(write_study, tmp_path):
         (tmp_path / "r" / "summary.json").read_text()))
 
 
+def test_force_never_empties_a_folder_that_holds_other_files(write_study, tmp_path, capsys):
+    # --out pointed at a working folder by mistake: its files must survive, --force or not
+    study = write_study(LINEAR.format(samples=500, chunk=500))
+    work = study.parent
+    (work / "notes").mkdir()
+    (work / "notes" / "bench.txt").write_text("measured 12 mA")
+    before = sorted(p.relative_to(work) for p in work.rglob("*"))
+    for extra in ([], ["--force"]):
+        code, err = _cli_in_process(["run", study, "--out", work, "--quiet", *extra], capsys)
+        assert code == 2 and "Traceback" not in err
+        assert "not results of a study" in err and "notes" in err and study.name in err
+    assert sorted(p.relative_to(work) for p in work.rglob("*")) == before
+
+
+def test_force_replaces_every_result_a_command_writes(tmp_path, capsys):
+    from tolerance.api import RESULT_NAMES
+
+    demo = ROOT / "tolerance" / "demo" / "demo.toml"
+    out = tmp_path / "r"
+    assert _cli_in_process(["run", demo, "--samples", "200", "--out", out, "--quiet"],
+                           capsys)[0] == 0
+    pinned = tmp_path / "w"
+    assert _cli_in_process(["whatif", demo, "--pin", "RB=min", "--samples", "200", "--out",
+                            pinned, "--quiet"], capsys)[0] in (0, 1)
+    # what the commands wrote is what --force may replace
+    written = {p.name for p in [*out.iterdir(), *pinned.iterdir()]}
+    assert written <= RESULT_NAMES and {"summary.json", "whatif.json"} <= written
+    old = (out / "summary.json").stat().st_mtime_ns
+    assert _cli_in_process(["run", demo, "--samples", "300", "--out", out, "--quiet",
+                            "--force"], capsys)[0] == 0
+    assert json.loads((out / "summary.json").read_text())["samples"] == 300
+    assert (out / "summary.json").stat().st_mtime_ns != old
+
+
 def test_resume_discards_chunks_of_another_plan(write_study, tmp_path):
     study = load_study(write_study(LINEAR.format(samples=3000, chunk=500)))
     first = run(study, out=tmp_path / "r")
@@ -408,3 +442,99 @@ def test_tolerance_at_its_limit():
     with pytest.raises(StudyError, match=r"parts\.RB\.tolerance"):
         load_text("t2.toml", text=_demo('tolerance = "5%"\ntempco = "200 ppm/K"',
                                         'tolerance = "100%"\ntempco = "200 ppm/K"'))
+
+
+def _cli_in_process(argv, capsys) -> tuple[int, str]:
+    from tolerance.cli import main
+
+    code = main([str(a) for a in argv])
+    return code, capsys.readouterr().err
+
+
+@pytest.mark.parametrize("command", [["run"], ["whatif", "--pin", "RB=min"], ["worstcase"]])
+def test_an_output_folder_that_cannot_be_made_is_refused(tmp_path, capsys, command):
+    blocker = tmp_path / "a_file"
+    blocker.write_text("not a folder")
+    out = blocker / "results"
+    code, err = _cli_in_process([*command, ROOT / "tolerance" / "demo" / "demo.toml",
+                                 "--samples", "100", "--out", out], capsys)
+    assert code == 2
+    assert str(out) in err and "--out" in err and "Traceback" not in err
+    assert blocker.read_text() == "not a folder"
+
+
+def _failing_writes(monkeypatch, target, attribute, name_part, calls_before=0):
+    """Make ``target.attribute`` (a writer taking the path first) write half a file and then
+    fail as a full disk does, from its ``calls_before + 1``-th call on a path whose name holds
+    ``name_part``; returns the list of paths it failed on."""
+    import errno
+
+    real = getattr(target, attribute)
+    failed, seen = [], [0]
+
+    def writer(*args, **kwargs):
+        # the path is self of a bound method (Path.write_text), the second argument of
+        # pq.write_table(table, where), the first of Figure.savefig(fname)
+        path = next((a for a in args if isinstance(a, (str, Path)) and name_part in str(a)),
+                    None)
+        seen[0] += path is not None
+        if path is None or seen[0] <= calls_before:
+            return real(*args, **kwargs)
+        Path(path).write_bytes(b"half a file")
+        failed.append(Path(path))
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(path))
+
+    monkeypatch.setattr(target, attribute, writer)
+    return failed
+
+
+def test_a_full_disk_during_the_chunks_keeps_what_is_complete(write_study, tmp_path, capsys,
+                                                              monkeypatch):
+    from tolerance import runner
+
+    study = write_study(LINEAR.format(samples=3000, chunk=500))
+    out = tmp_path / "r"
+    failed = _failing_writes(monkeypatch, runner.pq, "write_table", ".parquet.tmp",
+                             calls_before=2)
+    code, err = _cli_in_process(["run", study, "--out", out, "--quiet"], capsys)
+    assert code == 2 and "Traceback" not in err
+    assert os.strerror(28) in err and failed[0].name in err and "--resume" in err
+    # the chunk being written left nothing; the two before it are whole; no summary
+    assert not list(out.rglob("*.tmp"))
+    assert len(list((out / "samples.parquet").glob("part-*.parquet"))) == 2
+    assert not (out / "summary.json").exists()
+    monkeypatch.undo()  # space freed
+    assert _cli_in_process(["run", study, "--out", out, "--resume", "--quiet"], capsys)[0] == 0
+    fresh = run(load_study(study), insights=True)
+    assert comparable(json.loads((out / "summary.json").read_text())) == comparable(
+        fresh.summary)
+
+
+def test_a_full_disk_while_the_report_is_written_leaves_no_half_file(tmp_path, capsys,
+                                                                    monkeypatch):
+    out = tmp_path / "r"
+    failed = _failing_writes(monkeypatch, Path, "write_text", "report.md.tmp")
+    code, err = _cli_in_process(["run", "--samples", "300", "--out", out, "--quiet"], capsys)
+    assert code == 2 and "Traceback" not in err and failed and os.strerror(28) in err
+    # summary.json and the HTML report are whole; the Markdown report is absent, not half
+    assert json.loads((out / "summary.json").read_text())["samples"] == 300
+    assert (out / "report.html").read_text(encoding="utf-8").rstrip().endswith("</html>")
+    assert not (out / "report.md").exists() and not list(out.rglob("*.tmp"))
+    monkeypatch.undo()
+    assert _cli_in_process(["report", out], capsys)[0] == 0
+    assert (out / "report.md").is_file()
+
+
+def test_a_plot_that_cannot_be_written_leaves_no_half_file(tmp_path, monkeypatch):
+    from matplotlib.figure import Figure
+
+    from tolerance import plots
+
+    fig = Figure()
+    fig.add_subplot().plot([0, 1], [1, 0])
+    failed = _failing_writes(monkeypatch, Figure, "savefig", ".png.tmp")
+    with pytest.raises(OSError):
+        plots.save(fig, tmp_path / "drive_margin.png")
+    assert failed and not list(tmp_path.iterdir())
+    monkeypatch.undo()
+    assert plots.save(fig, tmp_path / "drive_margin.png").read_bytes()[:4] == b"\x89PNG"

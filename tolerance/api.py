@@ -9,7 +9,6 @@
 from __future__ import annotations
 
 import json
-import os
 import shutil
 from dataclasses import dataclass, field
 from importlib import resources
@@ -19,6 +18,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from tolerance import runner
+from tolerance.files import TMP_SUFFIX, os_error_text, write_atomic
 from tolerance.runner import Override, RunSpec
 from tolerance.study import SAMPLERS, Study, StudyError
 from tolerance.study import load_study as _load_study_file
@@ -29,6 +29,11 @@ if TYPE_CHECKING:  # pandas is imported where a frame is built: the command line
 
 SUMMARY_FILE = "summary.json"
 SAMPLES_DIR = "samples.parquet"
+#: What the commands write into a result folder (a ``.tmp`` of each while it is written):
+#: ``--force`` replaces these and nothing else.
+RESULT_NAMES = frozenset({SUMMARY_FILE, SAMPLES_DIR, "plots", "report.html", "report.md",
+                          "sensitivity.json", "worstcase.json", "whatif.json",
+                          "whatif_samples.parquet", "choose.json", "waveforms.json"})
 
 
 class UsageError(ValueError):
@@ -148,28 +153,45 @@ class ResultPlots:
                            f"{', '.join(self._r.summary['metrics'])}")
 
 
+def _is_result(name: str) -> bool:
+    return name in RESULT_NAMES or (name.endswith(TMP_SUFFIX)
+                                    and name[:-len(TMP_SUFFIX)] in RESULT_NAMES)
+
+
 def _prepare_folder(out: Path, force: bool, resume: bool) -> None:
+    """Make ``out`` ready for results: new or empty; with ``resume`` as it is; with
+    ``force`` a result folder whose results are removed. A folder that holds anything the
+    commands do not write is never emptied, ``--force`` or not."""
     if out.exists() and not out.is_dir():
         raise UsageError(f"{out}: exists and is not a folder")
-    if out.exists() and any(out.iterdir()) and not (force or resume):
-        raise UsageError(f"{out}: already holds results; choose another --out, add --resume to "
-                         "continue that run, or --force to replace it")
-    if out.exists() and force and not resume:
-        for child in out.iterdir():
-            if child.is_dir():
-                shutil.rmtree(child)
-            else:
-                child.unlink()
-    out.mkdir(parents=True, exist_ok=True)
+    try:
+        entries = sorted(p.name for p in out.iterdir()) if out.exists() else []
+        foreign = [name for name in entries if not _is_result(name)]
+        if foreign and not resume:
+            shown = ", ".join(foreign[:5]) + (" ..." if len(foreign) > 5 else "")
+            raise UsageError(f"{out}: holds files that are not results of a study ({shown}); "
+                             "choose another --out (--force replaces a result folder only)")
+        if entries and not (force or resume):
+            raise UsageError(f"{out}: already holds results; choose another --out, add --resume "
+                             "to continue that run, or --force to replace it")
+        if force and not resume:
+            for name in entries:
+                child = out / name
+                if child.is_dir() and not child.is_symlink():
+                    shutil.rmtree(child)
+                else:
+                    child.unlink()
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UsageError(f"{out}: cannot be used as the result folder ({os_error_text(exc)}); "
+                         "choose another --out") from None
 
 
 def write_json(path: Path, data: dict) -> None:
     """Write JSON atomically (temporary name, then rename)."""
     from tolerance.summary import clean
 
-    tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(json.dumps(clean(data), indent=2, allow_nan=False) + "\n", encoding="utf-8")
-    os.replace(tmp, path)
+    write_atomic(path, json.dumps(clean(data), indent=2, allow_nan=False) + "\n")
 
 
 def make_spec(study: Study, samples: int | None = None, seed: int | None = None,

@@ -13,6 +13,7 @@ from pathlib import Path
 
 from tolerance import __version__
 from tolerance.api import UsageError, load_study, run
+from tolerance.files import atomic_path, os_error_text
 from tolerance.limits import exit_status
 from tolerance.study import SAMPLERS, StudyError
 from tolerance.units import format_quantity
@@ -313,7 +314,8 @@ def _save_pair(out: Path, study, base, pinned) -> None:
     cols = list(study.stage.metrics)
     frame = pd.concat([base[cols].add_prefix("baseline."), pinned[cols].add_prefix("pinned.")],
                       axis=1)
-    frame.to_parquet(out / "whatif_samples.parquet", index=False)
+    with atomic_path(out / "whatif_samples.parquet") as tmp:
+        frame.to_parquet(tmp, index=False)
 
 
 def cmd_worstcase(args) -> int:
@@ -502,6 +504,12 @@ def main(argv: list[str] | None = None) -> int:
         # common practice, no source: 128 + SIGPIPE, as a shell reports a process that
         # SIGPIPE ended
         return 141
+    except OSError as exc:
+        # a file that cannot be read or written (disk full, a folder removed or read-only):
+        # every output file is written whole or not at all, so what exists is complete
+        sys.stderr.write(f"tolerance: error: {os_error_text(exc)}; the files already written "
+                         "are complete (a run continues with --resume)\n")
+        return 2
 
 
 def _stdout_is_closed() -> bool:

@@ -24,6 +24,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from matplotlib.ticker import FuncFormatter
 
+from tolerance.files import atomic_path
 from tolerance.units import format_quantity, spread_unit
 
 __all__ = [
@@ -692,5 +693,6 @@ def save(fig: Figure, path) -> Path:
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, dpi=DPI, format="png", metadata={"Software": None})
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp, dpi=DPI, format="png", metadata={"Software": None})
     return path

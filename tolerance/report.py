@@ -25,6 +25,7 @@ import pandas as pd
 
 from tolerance import runner
 from tolerance.cli import SAFETY
+from tolerance.files import TMP_SUFFIX, write_atomic
 from tolerance.units import UnitError, format_quantity, spread_unit
 
 __all__ = [
@@ -430,7 +431,7 @@ def render_plots(tasks: list[PlotTask], jobs: int = 1) -> list[Path]:
 
 
 def _remove_stale_plots(plot_dir: Path) -> None:
-    for stale in sorted(plot_dir.glob("*.png")):
+    for stale in sorted([*plot_dir.glob("*.png"), *plot_dir.glob("*.png" + TMP_SUFFIX)]):
         if stale.name.startswith(PLOT_PREFIXES):
             stale.unlink()
 
@@ -925,6 +926,6 @@ def write_reports(folder, jobs: int = 1) -> dict:
     doc = build_document(summary, extras, figures)
     title = doc[0].text
     html_path, md_path = folder / HTML_FILE, folder / MD_FILE
-    html_path.write_text(render_html(doc, title), encoding="utf-8", newline="\n")
-    md_path.write_text(render_markdown(doc), encoding="utf-8", newline="\n")
+    write_atomic(html_path, render_html(doc, title))
+    write_atomic(md_path, render_markdown(doc))
     return {"html": html_path, "md": md_path, "plots": paths}

@@ -12,7 +12,6 @@ in sample order, so the summary does not depend on the number of workers or the 
 from __future__ import annotations
 
 import json
-import os
 import signal
 import sys
 import threading
@@ -26,6 +25,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from tolerance.files import TMP_SUFFIX, atomic_path
 from tolerance.protocol import Criterion, Parameter
 from tolerance.sampling import draw
 
@@ -179,9 +179,8 @@ def _write_chunk(columns: dict[str, np.ndarray], path: Path, signature: dict, st
                                  names=list(columns))
     meta = {b"tolerance": json.dumps({**signature, "start": start, "stop": stop}).encode()}
     table = table.replace_schema_metadata(meta)
-    tmp = path.with_suffix(".parquet.tmp")
-    pq.write_table(table, tmp)
-    os.replace(tmp, path)
+    with atomic_path(path) as tmp:
+        pq.write_table(table, tmp)
 
 
 def _chunk_stamp(path: Path) -> dict | None:
@@ -284,7 +283,7 @@ def execute(spec: RunSpec, chunk_size: int, jobs: int = 1, folder: Path | None =
     bar = Progress(spec.samples, progress)
     if folder is not None:
         folder.mkdir(parents=True, exist_ok=True)
-        for stale in folder.glob("*.tmp"):
+        for stale in folder.glob("*" + TMP_SUFFIX):
             stale.unlink()  # a chunk interrupted while being written
         for path in chunk_files(folder):
             if int(path.stem[len(CHUNK_PREFIX):]) >= len(ranges):
