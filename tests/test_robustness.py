@@ -184,16 +184,23 @@ def test_force_replaces_every_result_a_command_writes(tmp_path, capsys):
     assert (out / "summary.json").stat().st_mtime_ns != old
 
 
-def test_resume_discards_chunks_of_another_plan(write_study, tmp_path):
-    study = load_study(write_study(LINEAR.format(samples=3000, chunk=500)))
-    first = run(study, out=tmp_path / "r")
-    other = load_study(write_study(LINEAR.format(samples=3000, chunk=500).replace("seed = 21",
-                                                                                  "seed = 22")))
-    resumed = run(other, out=tmp_path / "r", resume=True)
-    fresh = run(other)
-    # chunks of another seed do not belong to this run: all were recomputed
-    assert comparable(resumed.summary) == comparable(fresh.summary)
-    assert comparable(resumed.summary) != comparable(first.summary)
+@pytest.mark.parametrize("change, told", [
+    (("seed = 21", "seed = 22"), "seed 21, not 22"),
+    (("samples = 3000", "samples = 4000"), "samples 3000, not 4000"),
+    (('"-1 V"', '"-2 V"'), "another version of the study")])
+def test_resume_never_replaces_another_run(write_study, tmp_path, change, told):
+    text = LINEAR.format(samples=3000, chunk=500)
+    first = run(load_study(write_study(text)), out=tmp_path / "r")
+    other = load_study(write_study(text.replace(*change)))
+    files = {p: p.read_bytes() for p in (tmp_path / "r").rglob("*") if p.is_file()}
+    with pytest.raises(UsageError, match=f"another run \\({told}\\).*--force"):
+        run(other, out=tmp_path / "r", resume=True)
+    # the other run's results are untouched
+    assert {p: p.read_bytes() for p in (tmp_path / "r").rglob("*") if p.is_file()} == files
+    # --force replaces them: every chunk recomputed for this run
+    replaced = run(other, out=tmp_path / "r", resume=True, force=True)
+    assert comparable(replaced.summary) == comparable(run(other).summary)
+    assert comparable(replaced.summary) != comparable(first.summary)
 
 
 def test_resume_keeps_the_plan_of_the_run_it_continues(write_study, tmp_path, monkeypatch):

@@ -287,8 +287,14 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     out = Path(out)
     _prepare_folder(out, force, resume)
     folder = out / SAMPLES_DIR
-    if resume and stop_rule is None:
-        chunk = runner.resumable_chunk_size(folder, spec) or chunk
+    if resume and not force:  # with --force another run's chunks are replaced
+        differs = runner.other_run(folder, spec)
+        if differs is not None:
+            raise UsageError(f"{out}: holds the samples of another run ({differs}); --resume "
+                             "continues the same run only: choose another --out, or --force "
+                             "to replace it")
+        if stop_rule is None:
+            chunk = runner.resumable_chunk_size(folder, spec) or chunk
     runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler,
                    stop_rule=stop_rule)
     if after_samples is not None:

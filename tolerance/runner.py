@@ -117,6 +117,30 @@ def resumable_chunk_size(folder: Path, spec: RunSpec) -> int | None:
     return stop
 
 
+#: how a difference of the signature's entries is told when a resumed run is refused
+_OTHER = {"study_hash": "another version of the study", "overrides": "other pinned values"}
+
+
+def other_run(folder: Path, spec: RunSpec) -> str | None:
+    """How the run whose chunks ``folder`` holds differs from ``spec`` (``"seed 21, not
+    22"``), or None when every readable chunk belongs to this very run (or there is none).
+    A resumed run continues only the same run, so it never replaces another's results."""
+    for path in chunk_files(folder):
+        stored = _chunk_stamp(path)
+        if stored is None:
+            continue  # unreadable: recomputed like a missing chunk
+        stored.pop("start", None), stored.pop("stop", None)
+        mine = spec.signature
+        differ = [key for key in mine if stored.get(key) != mine[key]]
+        if len(differ) > 1 and "study_hash" in differ:
+            differ.remove("study_hash")  # the hash covers the study's [run] settings too
+        if not differ:
+            continue
+        return "; ".join(_OTHER.get(key) or f"{key} {stored.get(key)}, not {mine[key]}"
+                         for key in differ)
+    return None
+
+
 def criterion_column(name: str) -> str:
     return f"pass.{name}"
 
