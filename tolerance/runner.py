@@ -129,7 +129,8 @@ def other_run(folder: Path, spec: RunSpec) -> str | None:
         stored = _chunk_stamp(path)
         if stored is None:
             continue  # unreadable: recomputed like a missing chunk
-        stored.pop("start", None), stored.pop("stop", None)
+        stored.pop("start", None)
+        stored.pop("stop", None)
         mine = spec.signature
         differ = [key for key in mine if stored.get(key) != mine[key]]
         if len(differ) > 1 and "study_hash" in differ:
