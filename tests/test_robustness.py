@@ -545,3 +545,21 @@ def test_a_plot_that_cannot_be_written_leaves_no_half_file(tmp_path, monkeypatch
     assert failed and not list(tmp_path.iterdir())
     monkeypatch.undo()
     assert plots.save(fig, tmp_path / "drive_margin.png").read_bytes()[:4] == b"\x89PNG"
+
+
+def test_a_damaged_sample_file_is_named_and_mended_by_resume(write_study, tmp_path, capsys):
+    study = write_study(LINEAR.format(samples=3000, chunk=1000))
+    out = tmp_path / "r"
+    assert _cli_in_process(["run", study, "--out", out, "--quiet"], capsys)[0] == 0
+    whole = json.loads((out / "summary.json").read_text())
+    damaged = sorted((out / "samples.parquet").glob("part-*.parquet"))[1]
+    damaged.write_bytes(damaged.read_bytes()[:200])  # truncated, its footer gone
+    code, err = _cli_in_process(["report", out], capsys)
+    assert code == 2 and "Traceback" not in err
+    assert damaged.name in err and "cannot be read" in err and "--resume" in err
+    # --resume computes that chunk again (and only that one) and rebuilds everything
+    kept = sorted((out / "samples.parquet").glob("part-*.parquet"))[0].stat().st_mtime_ns
+    assert _cli_in_process(["run", study, "--out", out, "--resume", "--quiet"], capsys)[0] == 0
+    assert sorted((out / "samples.parquet").glob("part-*.parquet"))[0].stat().st_mtime_ns == kept
+    assert comparable(json.loads((out / "summary.json").read_text())) == comparable(whole)
+    assert _cli_in_process(["report", out], capsys)[0] == 0

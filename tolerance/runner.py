@@ -11,6 +11,8 @@ in sample order, so the summary does not depend on the number of workers or the 
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import json
 import signal
 import sys
@@ -435,6 +437,17 @@ def _read_column(f: pq.ParquetFile, name: str) -> np.ndarray:
     return f.read(columns=[name], use_threads=False).column(name).to_numpy()
 
 
+@contextlib.contextmanager
+def _readable(path: Path):
+    """A chunk file that cannot be read (damaged, truncated, removed, or without the column
+    asked for) raises an OSError that names it and says how to mend it."""
+    try:
+        yield
+    except (OSError, KeyError, pa.ArrowException) as exc:
+        raise OSError(errno.EIO, f"a sample file that cannot be read ({exc}); continue the run "
+                      "with --resume to compute it again", str(path)) from None
+
+
 #: most chunk files :class:`ChunkColumns` keeps open between reads (far below the usual
 #: limit of 1024 open files; a longer run opens each file for each read)
 OPEN_FILES = 128
@@ -464,14 +477,15 @@ class ChunkColumns:
     def __call__(self, name: str) -> np.ndarray:
         parts = []
         for k, path in enumerate(self.files):
-            if self._metadata[k] is None:
-                self._metadata[k] = pq.read_metadata(path)
-            if not self._keep:
-                parts.append(_chunk_column(path, name, self._metadata[k]))
-                continue
-            if self._open[k] is None:
-                self._open[k] = pq.ParquetFile(path, metadata=self._metadata[k])
-            parts.append(_read_column(self._open[k], name))
+            with _readable(path):
+                if self._metadata[k] is None:
+                    self._metadata[k] = pq.read_metadata(path)
+                if not self._keep:
+                    parts.append(_chunk_column(path, name, self._metadata[k]))
+                    continue
+                if self._open[k] is None:
+                    self._open[k] = pq.ParquetFile(path, metadata=self._metadata[k])
+                parts.append(_read_column(self._open[k], name))
         return np.concatenate(parts) if parts else np.empty(0)
 
     def close(self) -> None:
@@ -492,5 +506,8 @@ class ChunkColumns:
 def read_samples(folder: Path) -> pd.DataFrame:
     import pandas as pd
 
-    files = chunk_files(folder)
-    return pd.concat([pq.read_table(p).to_pandas() for p in files], ignore_index=True)
+    frames = []
+    for path in chunk_files(folder):
+        with _readable(path):
+            frames.append(pq.read_table(path).to_pandas())
+    return pd.concat(frames, ignore_index=True)
