@@ -563,3 +563,29 @@ def test_a_damaged_sample_file_is_named_and_mended_by_resume(write_study, tmp_pa
     assert sorted((out / "samples.parquet").glob("part-*.parquet"))[0].stat().st_mtime_ns == kept
     assert comparable(json.loads((out / "summary.json").read_text())) == comparable(whole)
     assert _cli_in_process(["report", out], capsys)[0] == 0
+
+
+def test_dask_backend_without_dask_installed_is_refused(write_study, tmp_path, capsys,
+                                                        monkeypatch):
+    monkeypatch.setitem(sys.modules, "distributed", None)  # import distributed -> ImportError
+    study = write_study(LINEAR.format(samples=100, chunk=50))
+    code, err = _cli_in_process(["run", study, "--backend", "dask", "--out", tmp_path / "r"],
+                                capsys)
+    assert code == 2 and "Traceback" not in err
+    assert "tolerance[dask]" in err and not (tmp_path / "r").exists()
+
+
+@pytest.mark.parametrize("address", ["tcp://127.0.0.1:9", "no-such-protocol://x"])
+def test_an_unreachable_scheduler_is_named_and_leaves_nothing(write_study, tmp_path, capsys,
+                                                              address):
+    pytest.importorskip("distributed")
+    import dask
+
+    study = write_study(LINEAR.format(samples=100, chunk=50))
+    # loopback port 9 (discard) has no scheduler; a short connect timeout keeps the test fast
+    with dask.config.set({"distributed.comm.timeouts.connect": "2s"}):
+        code, err = _cli_in_process(["run", study, "--backend", "dask", "--scheduler", address,
+                                     "--out", tmp_path / "r"], capsys)
+    assert code == 2 and "Traceback" not in err
+    assert "cannot reach the dask scheduler" in err and address in err
+    assert not (tmp_path / "r").exists()

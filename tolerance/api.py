@@ -259,6 +259,13 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         raise UsageError(f"jobs must be at least 1, got {jobs}")
     if backend not in ("loky", "dask"):
         raise UsageError(f"backend must be loky or dask, got {backend!r}")
+    if backend == "dask":
+        try:  # before anything is written; the parent needs it to reach the cluster
+            import distributed  # noqa: F401
+        except ImportError:
+            raise UsageError("--backend dask needs dask.distributed, which is not installed: "
+                             'python -m pip install "tolerance[dask]" (".[dask]" in a '
+                             "checkout)") from None
     stop_rule = None
     if target_ci is not None:
         if not 0 < target_ci < 0.5:
@@ -285,6 +292,7 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
                             extra=_extra(study, column, insights, target_ci, threads))
         return RunResult(study, summary, None, df)
     out = Path(out)
+    made = not out.exists()
     _prepare_folder(out, force, resume)
     folder = out / SAMPLES_DIR
     if resume and not force:  # with --force another run's chunks are replaced
@@ -295,8 +303,13 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
                              "to replace it")
         if stop_rule is None:
             chunk = runner.resumable_chunk_size(folder, spec) or chunk
-    runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler,
-                   stop_rule=stop_rule)
+    try:
+        runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler,
+                       stop_rule=stop_rule)
+    except Exception:
+        if made and not runner.chunk_files(folder):
+            shutil.rmtree(out, ignore_errors=True)  # nothing computed (no cluster): no folder
+        raise
     if after_samples is not None:
         after_samples()
     with runner.ChunkColumns(folder) as column:

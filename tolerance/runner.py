@@ -398,7 +398,11 @@ class _backend:
             from distributed import Client, LocalCluster
 
             if self.scheduler:
-                client = Client(self.scheduler)
+                try:
+                    client = Client(self.scheduler)
+                except (OSError, ValueError, TypeError) as exc:  # refused, timed out, malformed
+                    raise ConnectionError(f"cannot reach the dask scheduler at "
+                                          f"{self.scheduler!r} ({exc})") from None
             else:
                 cluster = LocalCluster(n_workers=max(self.jobs, 1), threads_per_worker=1,
                                        processes=True, host="127.0.0.1", dashboard_address=None)
