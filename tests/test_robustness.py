@@ -589,3 +589,44 @@ def test_an_unreachable_scheduler_is_named_and_leaves_nothing(write_study, tmp_p
     assert code == 2 and "Traceback" not in err
     assert "cannot reach the dask scheduler" in err and address in err
     assert not (tmp_path / "r").exists()
+
+
+class _StageDyingInWorkers:
+    """Wraps a stage: evaluating in any process but the one that made it ends that process
+    at once, as the system's out-of-memory killer or a crash would."""
+
+    def __init__(self, stage):
+        self._stage, self._parent = stage, os.getpid()
+
+    def __getattr__(self, name):
+        if name.startswith("_"):  # while unpickling, before __dict__ is filled
+            raise AttributeError(name)
+        return getattr(self._stage, name)
+
+    def evaluate(self, samples):
+        if os.getpid() != self._parent:
+            os._exit(1)
+        return self._stage.evaluate(samples)
+
+
+def test_a_worker_that_dies_ends_the_run_with_a_clear_message(write_study, tmp_path, capsys,
+                                                              monkeypatch):
+    import dataclasses
+
+    import cloudpickle
+
+    import tolerance.cli as cli
+
+    cloudpickle.register_pickle_by_value(sys.modules[__name__])  # workers cannot import tests
+    study = load_study(write_study(LINEAR.format(samples=4000, chunk=1000)))
+    dying = dataclasses.replace(study, stage=_StageDyingInWorkers(study.stage))
+    monkeypatch.setattr(cli, "_load", lambda path: dying)
+    out = tmp_path / "r"
+    code, err = _cli_in_process(["run", "any.toml", "--jobs", "2", "--out", out, "--quiet"],
+                                capsys)
+    assert code == 2 and "Traceback" not in err
+    assert "worker process" in err and "--resume" in err
+    assert not (out / "summary.json").exists()
+    # in this process the stage works: the run resumes to the plain run's result
+    resumed = run(dying, out=out, resume=True)
+    assert comparable(resumed.summary) == comparable(run(study).summary)

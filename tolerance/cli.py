@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+from concurrent.futures import BrokenExecutor
 from pathlib import Path
 
 from tolerance import __version__
@@ -504,12 +505,22 @@ def main(argv: list[str] | None = None) -> int:
         # common practice, no source: 128 + SIGPIPE, as a shell reports a process that
         # SIGPIPE ended
         return 141
+    except BrokenExecutor as exc:
+        # a worker process ended without a word: killed for memory, or a crash in a library
+        sys.stderr.write(f"tolerance: error: a worker process died ({_first_line(exc)}); the "
+                         "finished chunks are kept: continue with --resume (a smaller "
+                         "--chunk-size or fewer --jobs needs less memory)\n")
+        return 2
     except OSError as exc:
         # a file that cannot be read or written (disk full, a folder removed or read-only):
         # every output file is written whole or not at all, so what exists is complete
         sys.stderr.write(f"tolerance: error: {os_error_text(exc)}; the files already written "
                          "are complete (a run continues with --resume)\n")
         return 2
+
+
+def _first_line(exc: BaseException) -> str:
+    return (str(exc).strip().splitlines() or [type(exc).__name__])[0]
 
 
 def _stdout_is_closed() -> bool:
