@@ -183,8 +183,10 @@ def _prepare_folder(out: Path, force: bool, resume: bool) -> None:
                     child.unlink()
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise UsageError(f"{out}: cannot be used as the result folder ({os_error_text(exc)}); "
-                         "choose another --out") from None
+        detail = (exc.strerror if exc.strerror and str(exc.filename) == str(out)
+                  else os_error_text(exc))
+        raise UsageError(f"{out}: cannot be used as the result folder ({detail}); choose "
+                         "another --out") from None
 
 
 def write_json(path: Path, data: dict) -> None:

@@ -514,8 +514,11 @@ def main(argv: list[str] | None = None) -> int:
     except OSError as exc:
         # a file that cannot be read or written (disk full, a folder removed or read-only):
         # every output file is written whole or not at all, so what exists is complete
-        sys.stderr.write(f"tolerance: error: {os_error_text(exc)}; the files already written "
-                         "are complete (a run continues with --resume)\n")
+        from tolerance.runner import UnreadableChunk
+
+        done = ("" if isinstance(exc, UnreadableChunk) else
+                "; the files already written are complete (a run continues with --resume)")
+        sys.stderr.write(f"tolerance: error: {os_error_text(exc)}{done}\n")
         return 2
 
 

@@ -41,7 +41,7 @@ def write_atomic(path, data: str | bytes) -> None:
 
 
 def os_error_text(exc: OSError) -> str:
-    """What went wrong and on which file, in one line: ``No space left on device:
-    'results/x/report.html'``."""
+    """Which file and what went wrong with it, in one line: ``results/x/report.html: No
+    space left on device``."""
     text = exc.strerror or str(exc)
-    return f"{text}: {str(exc.filename)!r}" if exc.filename is not None else text
+    return f"{exc.filename}: {text}" if exc.filename is not None else text

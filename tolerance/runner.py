@@ -441,15 +441,19 @@ def _read_column(f: pq.ParquetFile, name: str) -> np.ndarray:
     return f.read(columns=[name], use_threads=False).column(name).to_numpy()
 
 
+class UnreadableChunk(OSError):
+    """A chunk file that cannot be read; its message names the file and how to mend it."""
+
+
 @contextlib.contextmanager
 def _readable(path: Path):
     """A chunk file that cannot be read (damaged, truncated, removed, or without the column
-    asked for) raises an OSError that names it and says how to mend it."""
+    asked for) raises :class:`UnreadableChunk`."""
     try:
         yield
     except (OSError, KeyError, pa.ArrowException) as exc:
-        raise OSError(errno.EIO, f"a sample file that cannot be read ({exc}); continue the run "
-                      "with --resume to compute it again", str(path)) from None
+        raise UnreadableChunk(errno.EIO, f"cannot be read ({exc}); continue the run with "
+                              "--resume to compute this chunk again", str(path)) from None
 
 
 #: most chunk files :class:`ChunkColumns` keeps open between reads (far below the usual
