@@ -16,6 +16,7 @@ from tolerance import __version__
 from tolerance.api import UsageError, load_study, run
 from tolerance.files import atomic_path, os_error_text
 from tolerance.limits import exit_status
+from tolerance.runner import UnreadableChunk
 from tolerance.study import SAMPLERS, StudyError
 from tolerance.units import format_quantity
 
@@ -514,8 +515,6 @@ def main(argv: list[str] | None = None) -> int:
     except OSError as exc:
         # a file that cannot be read or written (disk full, a folder removed or read-only):
         # every output file is written whole or not at all, so what exists is complete
-        from tolerance.runner import UnreadableChunk
-
         done = ("" if isinstance(exc, UnreadableChunk) else
                 "; the files already written are complete (a run continues with --resume)")
         sys.stderr.write(f"tolerance: error: {os_error_text(exc)}{done}\n")
