@@ -87,6 +87,45 @@ def test_interrupted_run_resumes_to_identical_result(write_study, tmp_path, sig)
     assert comparable(a) == comparable(b)
 
 
+def test_sigterm_stops_the_workers_with_the_run(write_study, tmp_path):
+    # a batch system's time limit or `timeout` sends SIGTERM: with its default the command
+    # ended at once and left its two idle workers behind, holding the output open
+    study = write_study(LINEAR.format(samples=400_000, chunk=4_000))
+    cut = tmp_path / "cut"
+    proc = _cli("run", study, "--out", cut, "--quiet", "--jobs", "2")
+    _wait_for_chunks(cut / "samples.parquet", 4, proc)
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=60)  # returns only once no worker holds the output
+    assert proc.returncode == 143 and "--resume" in err and "Traceback" not in err
+    assert not (cut / "summary.json").exists()
+    again = _cli("run", study, "--out", cut, "--resume", "--quiet", "--jobs", "2")
+    again.communicate(timeout=300)
+    assert again.returncode in (0, 1)
+    whole = run(load_study(study), insights=True)
+    assert comparable(json.loads((cut / "summary.json").read_text())) == comparable(
+        whole.summary)
+
+
+def test_sigterm_while_the_plots_are_drawn_stops_the_plot_workers(tmp_path):
+    out = tmp_path / "r"
+    proc = _cli("run", ROOT / "tolerance" / "demo" / "demo.toml", "--samples", "3000",
+                "--out", out, "--quiet", "--jobs", "2")
+    t0 = time.time()
+    while not list((out / "plots").glob("*.png")):
+        if proc.poll() is not None:
+            pytest.fail("the run finished before its plots could be interrupted")
+        if time.time() - t0 > 240:
+            pytest.fail("no plot appeared")
+        time.sleep(0.01)
+    proc.send_signal(signal.SIGTERM)
+    _, err = proc.communicate(timeout=60)  # returns only once no worker holds the output
+    assert proc.returncode == 143 and "Traceback" not in err
+    assert (out / "summary.json").is_file()
+    # every plot there is whole (PNG's last chunk is IEND); a stopped one is at most a .tmp
+    pngs = list((out / "plots").glob("*.png"))
+    assert pngs and all(p.read_bytes()[-12:-4] == b"\x00\x00\x00\x00IEND" for p in pngs)
+
+
 class _InterruptInFinalizer:
     """Sends the process SIGINT from its finalizer: Python's handler then raises
     KeyboardInterrupt inside ``__del__``, where the interpreter ignores it (it only reports it
@@ -134,8 +173,9 @@ def test_an_interrupt_swallowed_by_a_finalizer_still_stops_the_run(write_study, 
     assert stage.calls == 2
     assert len(list((cut / "samples.parquet").glob("part-*.parquet"))) == 2
     assert not (cut / "summary.json").exists()
-    # and SIGINT is Python's own again
+    # and SIGINT and SIGTERM have their handlers of before again
     assert signal.getsignal(signal.SIGINT) is signal.default_int_handler
+    assert signal.getsignal(signal.SIGTERM) is signal.SIG_DFL
     resumed = run(study, out=cut, resume=True, insights=False)
     assert comparable(resumed.summary) == comparable(run(study, insights=False).summary)
 

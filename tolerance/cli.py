@@ -8,7 +8,9 @@ from __future__ import annotations
 
 import argparse
 import os
+import signal
 import sys
+import threading
 from concurrent.futures import BrokenExecutor
 from pathlib import Path
 
@@ -16,7 +18,7 @@ from tolerance import __version__
 from tolerance.api import UsageError, load_study, run
 from tolerance.files import atomic_path, os_error_text
 from tolerance.limits import exit_status
-from tolerance.runner import UnreadableChunk
+from tolerance.runner import Terminated, UnreadableChunk
 from tolerance.study import SAMPLERS, StudyError
 from tolerance.units import format_quantity
 
@@ -487,15 +489,37 @@ def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     argv = sys.argv[1:] if argv is None else argv
     args = parser.parse_args(argv)
+    # SIGTERM (a batch system's time limit, `timeout`) ends the command as Ctrl-C does, in
+    # every phase: with its default the process ended at once and left the --jobs workers
+    # behind, idle, holding the command's output open until their idle timeout
+    previous = None
+    if (threading.current_thread() is threading.main_thread()
+            and signal.getsignal(signal.SIGTERM) is signal.SIG_DFL):
+        previous = signal.signal(signal.SIGTERM, _terminate)
+    try:
+        return _command(args)
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+def _terminate(signum, frame):
+    raise Terminated
+
+
+def _command(args) -> int:
+    """Run one command; its failures become a line on standard error and an exit status."""
     try:
         return COMMANDS[args.command](args)
     except (StudyError, UsageError) as exc:
         sys.stderr.write(f"tolerance: error: {exc}\n")
         return 2
-    except KeyboardInterrupt:
-        sys.stderr.write("\ntolerance: interrupted; finished chunks are kept (continue with "
-                         "--resume)\n")
-        return 130
+    except KeyboardInterrupt as exc:
+        terminated = isinstance(exc, Terminated)
+        sys.stderr.write(f"\ntolerance: {'stopped (SIGTERM)' if terminated else 'interrupted'}; "
+                         "finished chunks are kept (continue with --resume)\n")
+        # common practice, no source: 128 + the signal's number, as a shell reports it
+        return 143 if terminated else 130
     except BrokenPipeError:
         if not _stdout_is_closed():
             raise  # another pipe broke: not the reader of our output going away

@@ -257,40 +257,53 @@ class Progress:
         sys.stderr.flush()
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM during a run's chunks (a batch system's time limit, ``timeout``), handled as
+    an interrupt: the workers are stopped with the run, the finished chunks kept."""
+
+
 class InterruptGuard:
-    """Ctrl-C during a run's chunks, kept until the run has seen it.
+    """Ctrl-C (SIGINT) and SIGTERM during a run's chunks, kept until the run has seen them.
 
     Python turns SIGINT into KeyboardInterrupt in whatever code runs next, and an exception
     raised inside a finalizer (``__del__``, a weakref callback) is ignored there, only
     reported (Python documentation, signal module, "Handlers and exceptions"): a Ctrl-C that
     lands in one is lost and the run goes on to the end. While the guard is on, SIGINT still
     raises at once, as Python's own handler does, and is also remembered; ``check()``, called
-    after every chunk and once the chunks are done, raises it again if it went missing. The
-    guard takes SIGINT only where Python's own handler holds it, in the main thread (a caller
-    that ignores or handles SIGINT itself keeps it), and gives it back on exit.
+    after every chunk and once the chunks are done, raises it again if it went missing.
+    SIGTERM, whose default ends the process at once and leaves its worker processes behind
+    (idle, holding the command's output open until their idle timeout), raises
+    :class:`Terminated` the same way, so the workers are stopped with the run. The guard
+    takes a signal only where its default handler holds it, in the main thread (a caller
+    that ignores or handles a signal itself keeps it), and gives it back on exit.
     """
 
+    _DEFAULTS = {signal.SIGINT: signal.default_int_handler, signal.SIGTERM: signal.SIG_DFL}
+
     def __init__(self):
-        self.interrupted = False
-        self._previous = None
+        self.interrupted: int | None = None
+        self._previous: dict = {}
 
     def __enter__(self):
-        if (threading.current_thread() is threading.main_thread()
-                and signal.getsignal(signal.SIGINT) is signal.default_int_handler):
-            self._previous = signal.signal(signal.SIGINT, self._handle)
+        if threading.current_thread() is threading.main_thread():
+            for signum, default in self._DEFAULTS.items():
+                if signal.getsignal(signum) is default:
+                    self._previous[signum] = signal.signal(signum, self._handle)
         return self
 
     def _handle(self, signum, frame):
-        self.interrupted = True
-        raise KeyboardInterrupt
+        self.interrupted = signum
+        self.check()
 
     def check(self) -> None:
-        if self.interrupted:
+        if self.interrupted == signal.SIGTERM:
+            raise Terminated
+        if self.interrupted is not None:
             raise KeyboardInterrupt
 
     def __exit__(self, *exc) -> None:
-        if self._previous is not None:
-            signal.signal(signal.SIGINT, self._previous)
+        for signum, previous in self._previous.items():
+            signal.signal(signum, previous)
 
 
 def execute(spec: RunSpec, chunk_size: int, jobs: int = 1, folder: Path | None = None,
