@@ -126,6 +126,28 @@ def test_sigterm_while_the_plots_are_drawn_stops_the_plot_workers(tmp_path):
     assert pngs and all(p.read_bytes()[-12:-4] == b"\x00\x00\x00\x00IEND" for p in pngs)
 
 
+def test_the_interrupt_guard_takes_sigterm_and_remembers_it():
+    from fresh_process import run_fresh
+
+    # in a fresh process: were SIGTERM not taken, it would end that process, not the tests
+    code = ("import os, signal\n"
+            "from tolerance.runner import InterruptGuard, Terminated\n"
+            "with InterruptGuard() as guard:\n"
+            "    try:\n"
+            "        os.kill(os.getpid(), signal.SIGTERM)\n"
+            "        [None for _ in range(3)]\n"
+            "    except Terminated:\n"
+            "        print('raised')\n"
+            "    try:\n"
+            "        guard.check()\n"
+            "    except Terminated:\n"
+            "        print('remembered')\n"
+            "print(signal.getsignal(signal.SIGTERM) is signal.SIG_DFL)\n")
+    proc = run_fresh(code, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.split() == ["raised", "remembered", "True"]
+
+
 class _InterruptInFinalizer:
     """Sends the process SIGINT from its finalizer: Python's handler then raises
     KeyboardInterrupt inside ``__del__``, where the interpreter ignores it (it only reports it
@@ -243,7 +265,9 @@ def test_resume_never_replaces_another_run(write_study, tmp_path, change, told):
     assert comparable(replaced.summary) != comparable(first.summary)
 
 
-def test_resume_keeps_the_plan_of_the_run_it_continues(write_study, tmp_path, monkeypatch):
+@pytest.mark.parametrize("force", [False, True])
+def test_resume_keeps_the_plan_of_the_run_it_continues(write_study, tmp_path, monkeypatch,
+                                                       force):
     from tolerance import runner
 
     study = load_study(write_study(LINEAR.format(samples=9000, chunk=4000)))
@@ -260,7 +284,8 @@ def test_resume_keeps_the_plan_of_the_run_it_continues(write_study, tmp_path, mo
                         lambda spec, i, s, e, f: done.append((i, s, e)) or plain(spec, i, s, e, f))
     # resumed on one worker, whose own plan would be chunks of 4,000: the folder's plan is
     # kept and only the missing chunk is computed
-    resumed = run(study, jobs=1, out=tmp_path / "r", resume=True)
+    # (--force beside --resume replaces only another run's chunks)
+    resumed = run(study, jobs=1, out=tmp_path / "r", resume=True, force=force)
     assert done == [(2, 4500, 6750)]
     assert comparable(resumed.summary) == comparable(whole.summary)
 

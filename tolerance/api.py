@@ -303,8 +303,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
             raise UsageError(f"{out}: holds the samples of another run ({differs}); --resume "
                              "continues the same run only: choose another --out, or --force "
                              "to replace it")
-        if stop_rule is None:
-            chunk = runner.resumable_chunk_size(folder, spec) or chunk
+    if resume and stop_rule is None:
+        chunk = runner.resumable_chunk_size(folder, spec) or chunk
     try:
         runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler,
                        stop_rule=stop_rule)
