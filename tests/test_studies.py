@@ -45,3 +45,20 @@ def test_readme_names_every_metric():
         for metric in load_study(path).stage.metrics:
             generic = re.sub(r"_(RB|RPD|RBE1|RBE2)$", "_<R>", metric)
             assert generic in table, f"README metrics table lacks {metric} ({path.name})"
+
+
+def test_readme_python_examples_run_as_written(monkeypatch):
+    # common practice, no source: documentation examples are executed, so a renamed study or
+    # a changed API breaks the test rather than the reader's first try (the example once named
+    # a study that did not exist)
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    blocks = re.findall(r"^```python\n(.*?)^```", readme, flags=re.M | re.S)
+    assert blocks
+    monkeypatch.chdir(ROOT)
+    for i, code in enumerate(blocks):
+        names: dict = {}
+        exec(compile(code, f"README.md, Python example {i + 1}", "exec"), names)  # noqa: S102
+        if "result" in names:
+            result = names["result"]
+            assert len(result.samples) == result.summary["samples"]
+            assert set(result.criteria.index) == set(result.summary["criteria"])
