@@ -101,6 +101,33 @@ def test_frontier_non_dominated():
     assert frontier(pts, "a", "b", 1, 1) == [0, 1, 3]
 
 
+def test_frontier_leaves_out_candidates_without_a_value():
+    # common practice, no source: a candidate whose trade-off figure has no finite value (the
+    # summary writes None; every sample's stress infinite in a hot study) is on no frontier and
+    # beats no other candidate; it raised a TypeError in the value-choice command
+    from tolerance.choose import frontier
+
+    pts = [{"a": None, "b": 9}, {"a": 1, "b": 5}, {"a": float("nan"), "b": 6},
+           {"a": 2, "b": 4}, {"a": 1.5, "b": 3}]
+    assert frontier(pts, "a", "b", 1, 1) == [1, 3]
+    assert frontier([{"a": None, "b": None}], "a", "b", 1, -1) == []
+
+
+def test_choose_refuses_a_temperature_and_names_the_twice_varied_part(study):
+    from tolerance.choose import check_request
+
+    # preferred numbers are ratios; the demo's ambient (degC, kept in K) gave 220 K and 470 K
+    with pytest.raises(UsageError, match="ambient.temperature: a temperature has no preferred"):
+        check_request(load_study(), ["ambient.temperature=E3:-60..300"])
+
+    with pytest.raises(UsageError, match="x2: the same part is varied twice"):
+        check_request(study, ["x2=E12:0.47..2.2", "x2=E6:1..2.2"])
+    with pytest.raises(UsageError, match="got 3"):
+        check_request(study, ["x2=E12:1..2"] * 3)
+    with pytest.raises(UsageError, match="--tradeoff w: not a metric.*metrics: y, z"):
+        check_request(study, ["x2=E12:1..2"], ("y", "w"))
+
+
 def test_worst_case_of_linear_stage_is_exact(study):
     from tolerance.analysis import study_worst_case
 
@@ -135,6 +162,25 @@ def test_target_ci_stops_early_and_deterministically(study):
     c = a.summary["criteria"]["y_positive"]
     assert (c["ci_high"] - c["ci_low"]) / 2 < 0.002
     assert a.summary["criteria"] == b.summary["criteria"]
+    t = a.summary["target_ci"]
+    assert t["reached"] and t["widest"] < 0.002 and t["samples"] == a.summary["samples"]
+
+
+def test_target_ci_not_reached_is_said(study):
+    # a cap of 200 samples cannot give a 100 ppm interval: the run said nothing of it
+    from tolerance import stats
+    from tolerance.report import build_document
+
+    res = run(study, samples=200, target_ci=1e-4)
+    t = res.summary["target_ci"]
+    assert not t["reached"] and t["samples"] == t["planned_samples"] == 200
+    # common practice, no source: the status reports the stopping rule's own measure
+    c = res.summary["criteria"][t["widest_criterion"]]
+    assert t["widest"] == pytest.approx(float(stats.half_width(c["failures"], 200)), rel=1e-12)
+    assert t["widest"] == max(float(stats.half_width(k["failures"], k["evaluated"]))
+                              for k in res.summary["criteria"].values())
+    text = " ".join(b.text or "" for b in build_document(res.summary, {}, []))
+    assert "NOT reached within the 200 samples" in text
 
 
 def test_run_summary_carries_insights(write_study):
@@ -188,3 +234,38 @@ def test_end_of_life_drift_widens_the_worst_case_bounds(write_study):
     # ECSS-Q-HB-30-01A practice: initial tolerance and ageing add linearly at the extremes;
     # x2 in 1 -/+ (0.3 + 0.1), so y spans -1 + 2 * 0.6 .. 3 + 2 * 1.4 (exact for a linear model)
     assert_allclose([y["eva_min"], y["eva_max"]], [0.2, 5.8], rtol=1e-12)
+
+
+@pytest.mark.parametrize("command", ["run", "whatif", "worstcase", "sensitivity", "choose"])
+def test_every_command_passes_sampler_and_chunk_size_to_its_monte_carlo_run(
+        command, write_study, tmp_path, monkeypatch, capsys):
+    # common practice, no source: an option a command offers must act; worstcase and
+    # sensitivity ran their Monte Carlo with the study's own sampler whatever --sampler said,
+    # and whatif and choose ignored --chunk-size
+    import tolerance.api
+    from tolerance import choose as choose_module
+    from tolerance import whatif as whatif_module
+    from tolerance.cli import main
+
+    seen = []
+    real_run = tolerance.api.run
+
+    def spy(*args, **kwargs):
+        seen.append((kwargs.get("sampler"), kwargs.get("chunk_size")))
+        return real_run(*args, **kwargs)
+
+    for module in (tolerance.api, whatif_module, choose_module):
+        monkeypatch.setattr(module, "run", spy)
+    monkeypatch.setattr("tolerance.cli.run", spy)
+    path = write_study(LINEAR.format(x1=SPREAD))
+    extra = {"run": [], "whatif": ["--pin", "x1=max"], "worstcase": [],
+             "sensitivity": ["--sobol-samples", "64"], "choose": ["--vary", "x2=E6:1..1.5"]}
+    argv = [command, str(path), "--samples", "300", "--sampler", "random", "--chunk-size",
+            "128", "--quiet", "--out", str(tmp_path / "o"), *extra[command]]
+    assert main(argv) in (0, 1)
+    assert seen and all(s == ("random", 128) for s in seen), seen
+    if command in ("worstcase", "sensitivity", "choose", "whatif"):
+        import json
+
+        saved = json.loads((tmp_path / "o" / f"{command}.json").read_text())
+        assert saved["sampler"] == "random"

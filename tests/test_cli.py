@@ -122,15 +122,47 @@ def test_checking_or_refusing_a_study_loads_no_statistics_stack(tmp_path):
     assert not (tmp_path / "o").exists()
 
 
-def test_bad_option_values_exit_2(tmp_path, capsys):
+def test_bad_option_values_exit_2(tmp_path, capsys, write_study):
+    fixed = write_study(FIXED_DEMO)
     for argv in (["run", "--samples", "0"], ["run", "--sampler", "grid"],
                  ["run", "--jobs", "-1"], ["whatif", "--pin", "Q9.hfe=min"],
-                 ["choose", "--vary", "RB=E25:100..1k"], ["report", str(tmp_path)]):
+                 ["choose", "--vary", "RB=E25:100..1k"], ["report", str(tmp_path)],
+                 # found by probing the analysis commands: each was refused only after the
+                 # output folder was made (left empty), or ended in a traceback
+                 ["whatif", "--pin", "load.resistance=0"], ["whatif", "--pin", "Q1.hfe=0"],
+                 ["choose", "--vary", "RB=E12:100..220", "--tradeoff", "foo,bar"],
+                 ["choose", "--vary", "RB=E12:100..220", "--vary", "RB=E6:100..220"],
+                 ["choose", "--vary", "RB=E12:100..220", "--tradeoff", ","],
+                 ["choose", "--vary", "ambient.temperature=E3:-60..300"],
+                 ["sensitivity", "--sobol-samples", "1"],
+                 ["sensitivity", "--sobol-samples", "32"],
+                 ["sensitivity", str(fixed), "--sobol-samples", "64"]):
         with pytest.raises(SystemExit) as exc:
             code = main(argv + ["--out", str(tmp_path / "o")] if argv[0] != "report" else argv)
             raise SystemExit(code)
         assert exc.value.code == 2, argv
-        assert "Traceback" not in capsys.readouterr().err
+        err = capsys.readouterr().err
+        assert "Traceback" not in err and err.count("\n") == 1, argv
+        assert not (tmp_path / "o").exists(), argv
+
+
+# the demo with nothing that varies (every part and condition fixed)
+FIXED_DEMO = """
+stage = "single"
+[supply]
+voltage = "12 V"
+[drive]
+high = "3.3 V"
+[parts.RB]
+value = "150R"
+[parts.Q1]
+device = "medium_power_npn"
+hfe = "100"
+icbo = "10 nA"
+[load]
+kind = "resistor"
+resistance = "68 ohm"
+"""
 
 
 def test_demo_runs_and_jobs_do_not_change_the_summary(tmp_path, capsys):
@@ -244,3 +276,13 @@ def test_default_output_folder_is_never_overwritten(tmp_path, monkeypatch, capsy
     assert main(["run", "--samples", "200", "--quiet"]) == 0
     assert (tmp_path / "results" / "demo" / "summary.json").is_file()
     assert (tmp_path / "results" / "demo-2" / "summary.json").is_file()
+
+
+def test_whatif_pin_that_leaves_a_metric_without_a_finite_value(tmp_path, capsys):
+    # at 200 degC every stress metric of the demo is infinite in the pinned run: the overlay
+    # plot raised, and the command ended in a traceback with no report
+    out = tmp_path / "w"
+    code = main(["whatif", "--samples", "40", "--pin", "ambient.temperature=200 degC",
+                 "--out", str(out), "--quiet"])
+    assert code == 1 and "Traceback" not in capsys.readouterr().err
+    assert (out / "report.md").is_file() and (out / "plots" / "whatif-tj_output.png").is_file()

@@ -203,6 +203,23 @@ def test_whatif_overlay_has_two_line_styles_and_limits():
     assert len(_patches(fig, "fail-region:")) == 1
 
 
+@pytest.mark.parametrize("empty", ["baseline", "pinned"])
+def test_whatif_overlay_of_a_run_without_a_finite_value(empty, tmp_path):
+    # a pin at 200 degC made every stress metric infinite: the overlay raised a matplotlib
+    # ValueError for the empty side, and the what-if command ended in a traceback
+    rng = np.random.default_rng(0)
+    values = {"baseline": rng.normal(1, 0.1, 300), "pinned": rng.normal(1.2, 0.1, 300)}
+    values[empty] = np.full(300, np.inf)
+    fig = plots.whatif_overlay(values["baseline"], values["pinned"], "stress", "1",
+                               {"max": 1.0})
+    (gone,) = _lines(fig, f"ecdf:{empty}")
+    assert len(gone.get_xdata()) == 0 and "no finite value" in gone.get_label()
+    (kept,) = _lines(fig, "ecdf:" + ({"baseline", "pinned"} - {empty}).pop())
+    assert len(kept.get_xdata()) == 301  # one step per sample and the zero at the first
+    plots.save(fig, tmp_path / "overlay.png")
+    assert (tmp_path / "overlay.png").stat().st_size > 0
+
+
 def test_yield_map_one_part_error_bars():
     df = pd.DataFrame({"R1": [1e3, 2.2e3, 4.7e3], "yield": [0.9, 0.99, 0.95],
                        "ci_low": [0.85, 0.97, 0.92], "ci_high": [0.94, 1.0, 0.97]})

@@ -219,11 +219,29 @@ def test_force_never_empties_a_folder_that_holds_other_files(write_study, tmp_pa
     (work / "notes").mkdir()
     (work / "notes" / "bench.txt").write_text("measured 12 mA")
     before = sorted(p.relative_to(work) for p in work.rglob("*"))
-    for extra in ([], ["--force"]):
+    # --resume too: it wrote a whole run beside the files of a folder with no run to continue
+    for extra in ([], ["--force"], ["--resume"], ["--resume", "--force"]):
         code, err = _cli_in_process(["run", study, "--out", work, "--quiet", *extra], capsys)
         assert code == 2 and "Traceback" not in err
         assert "not results of a study" in err and "notes" in err and study.name in err
     assert sorted(p.relative_to(work) for p in work.rglob("*")) == before
+
+
+def test_resume_refuses_the_folder_of_another_command(tmp_path, capsys):
+    # resuming a run into a what-if folder added a run beside it, and the rebuilt report put
+    # another study's what-if under this study's title
+    demo = ROOT / "tolerance" / "demo" / "demo.toml"
+    out = tmp_path / "w"
+    assert _cli_in_process(["whatif", demo, "--pin", "RB=min", "--samples", "100", "--out",
+                            out, "--quiet"], capsys)[0] in (0, 1)
+    files = {p: p.read_bytes() for p in out.rglob("*") if p.is_file()}
+    for extra in ([], ["--force"]):
+        code, err = _cli_in_process(["run", ROOT / "studies" / "beacon_lamp_darlington.toml",
+                                     "--samples", "100", "--out", out, "--resume", "--quiet",
+                                     *extra], capsys)
+        assert code == 2 and "Traceback" not in err
+        assert "results of another command (whatif.json, whatif_samples.parquet)" in err
+    assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file()} == files
 
 
 def test_force_replaces_every_result_a_command_writes(tmp_path, capsys):
@@ -628,6 +646,32 @@ def test_a_damaged_sample_file_is_named_and_mended_by_resume(write_study, tmp_pa
     assert sorted((out / "samples.parquet").glob("part-*.parquet"))[0].stat().st_mtime_ns == kept
     assert comparable(json.loads((out / "summary.json").read_text())) == comparable(whole)
     assert _cli_in_process(["report", out], capsys)[0] == 0
+
+
+@pytest.mark.parametrize("name, text, told", [
+    ("summary.json", "{", "not valid JSON"),
+    ("summary.json", "", "not valid JSON"),
+    ("summary.json", "[]", "expected a JSON object, found a list"),
+    ("summary.json", "{}", "lacks study, seed, samples, criteria, metrics, verdict"),
+    ("summary.json", b"\xff\xfe", "not UTF-8 text"),
+    ("whatif.json", "{}", "lacks criteria, metrics"),
+    ("waveforms.json", "[]", "expected a JSON object"),
+])
+def test_a_damaged_result_file_is_named_and_the_folder_left_as_it_was(
+        write_study, tmp_path, capsys, name, text, told):
+    # common practice, no source: a truncated or edited result file gave a JSON traceback, or
+    # (an empty object) an empty report with exit 0; the report's plots were removed first
+    study = write_study(LINEAR.format(samples=300, chunk=300))
+    out = tmp_path / "r"
+    assert _cli_in_process(["run", study, "--out", out, "--quiet"], capsys)[0] == 0
+    before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file()}
+    damaged = out / name
+    (damaged.write_bytes if isinstance(text, bytes) else damaged.write_text)(text)
+    before[damaged] = damaged.read_bytes()
+    code, err = _cli_in_process(["report", out], capsys)
+    assert code == 2 and "Traceback" not in err
+    assert str(damaged) in err and told in err and "--resume" not in err
+    assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file()} == before
 
 
 def test_dask_backend_without_dask_installed_is_refused(write_study, tmp_path, capsys,

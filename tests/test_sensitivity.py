@@ -382,3 +382,12 @@ def test_failure_driver_statistics_equal_scipy_ks_2samp(n, threads):
         # one label alone gives what it gives among several
         assert failure_drivers(x, f) == out[key]
     assert out["none"]["text"] == "no failures" and out["all"]["text"] == "all samples failed"
+
+
+def test_sobol_refuses_a_design_too_small_to_mean_anything():
+    # N = 2 gave S1 = 3.4 and ST = 9.6 without a word, N = 1 a bootstrap ValueError
+    from tolerance.sensitivity import MIN_SOBOL_N
+
+    for n in (1, 2, MIN_SOBOL_N // 2):
+        with pytest.raises(ValueError, match=f"at least {MIN_SOBOL_N}"):
+            sobol_analysis(_ishigami, ISHIGAMI_PPF, ["y"], n=n, seed=0)

@@ -157,8 +157,20 @@ def _records(df: pd.DataFrame) -> list[dict]:
     return out
 
 
+def check_varies(study: Study) -> list:
+    """The parameters that vary, or a UsageError when none does (nothing to rank)."""
+    from tolerance.api import UsageError
+
+    varying = [p for p in study.parameters if p.varies]
+    if not varying:
+        raise UsageError(f"{study.path}: no parameter varies, so there is no sensitivity to "
+                         "rank; give a part or a condition a tolerance or a range")
+    return varying
+
+
 def study_sensitivity(study: Study, samples: int, seed: int, sobol_n: int,
-                      bootstrap: int = 200) -> dict:
+                      bootstrap: int = 200, sampler: str | None = None,
+                      chunk_size: int | None = None) -> dict:
     """Rank sensitivities on a Monte Carlo run and Sobol indices on a dedicated design.
 
     Sobol indices assume independent inputs: correlations of the study are not applied to the
@@ -166,9 +178,9 @@ def study_sensitivity(study: Study, samples: int, seed: int, sobol_n: int,
     """
     from tolerance.api import run
 
-    res = run(study, samples=samples, seed=seed)
+    varying = check_varies(study)
+    res = run(study, samples=samples, seed=seed, sampler=sampler, chunk_size=chunk_size)
     df = res.samples
-    varying = [p for p in study.parameters if p.varies]
     rank = sensitivity.rank_sensitivity(df[[p.name for p in varying]],
                                         df[list(study.stage.metrics)])
     ppf = {p.name: p.distribution.ppf for p in varying}
@@ -180,6 +192,7 @@ def study_sensitivity(study: Study, samples: int, seed: int, sobol_n: int,
                      "correlations are used only in the rank measures")
     return {
         "study": study.path, "study_hash": study.study_hash, "seed": seed,
+        "sampler": res.summary["sampler"],
         "samples": samples, "rank": _records(rank),
         "sobol": {k: v for k, v in sob.items() if k not in ("evaluations", "nan_replaced")},
         "sobol_n": sobol_n, "sobol_evaluations": sob.get("evaluations"),
@@ -188,11 +201,14 @@ def study_sensitivity(study: Study, samples: int, seed: int, sobol_n: int,
     }
 
 
-def study_worst_case(study: Study, samples: int, seed: int) -> dict:
-    """Extreme-value, RSS and optimizer extremes per metric beside the Monte Carlo extremes."""
+def study_worst_case(study: Study, samples: int, seed: int, sampler: str | None = None,
+                     chunk_size: int | None = None) -> dict:
+    """Extreme-value, RSS and optimizer extremes per metric beside the Monte Carlo extremes
+    (the Monte Carlo run drawn with ``sampler`` in chunks of ``chunk_size``, the study's own
+    when None)."""
     from tolerance.api import run
 
-    res = run(study, samples=samples, seed=seed)
+    res = run(study, samples=samples, seed=seed, sampler=sampler, chunk_size=chunk_size)
     mc = {m: {k: res.summary["metrics"][m][k] for k in ("min", "max", "p001", "p999")}
           for m in study.stage.metrics}
     bounds = bounds_for(study)
@@ -206,6 +222,7 @@ def study_worst_case(study: Study, samples: int, seed: int) -> dict:
     evaluations = table.pop("evaluations")
     return {
         "study": study.path, "study_hash": study.study_hash, "seed": seed,
+        "sampler": res.summary["sampler"],
         "monte_carlo_samples": samples,
         "bounds": [{"name": b.name, "nominal": b.nominal, "low": b.low, "high": b.high}
                    for b in bounds],

@@ -34,6 +34,10 @@ SAMPLES_DIR = "samples.parquet"
 RESULT_NAMES = frozenset({SUMMARY_FILE, SAMPLES_DIR, "plots", "report.html", "report.md",
                           "sensitivity.json", "worstcase.json", "whatif.json",
                           "whatif_samples.parquet", "choose.json", "waveforms.json"})
+#: What the analysis commands write and a Monte Carlo run does not: a folder holding any of
+#: them is not a run that ``--resume`` can continue.
+ANALYSIS_NAMES = frozenset({"sensitivity.json", "worstcase.json", "whatif.json",
+                            "whatif_samples.parquet", "choose.json"})
 
 
 class UsageError(ValueError):
@@ -159,18 +163,26 @@ def _is_result(name: str) -> bool:
 
 
 def _prepare_folder(out: Path, force: bool, resume: bool) -> None:
-    """Make ``out`` ready for results: new or empty; with ``resume`` as it is; with
-    ``force`` a result folder whose results are removed. A folder that holds anything the
-    commands do not write is never emptied, ``--force`` or not."""
+    """Make ``out`` ready for results: new or empty; with ``resume`` a run's folder as it is;
+    with ``force`` a result folder whose results are removed. A folder that holds anything the
+    commands do not write is never used, ``--force``, ``--resume`` or not, and ``resume``
+    refuses a folder of another command's results."""
     if out.exists() and not out.is_dir():
         raise UsageError(f"{out}: exists and is not a folder")
     try:
         entries = sorted(p.name for p in out.iterdir()) if out.exists() else []
         foreign = [name for name in entries if not _is_result(name)]
-        if foreign and not resume:
+        if foreign:
             shown = ", ".join(foreign[:5]) + (" ..." if len(foreign) > 5 else "")
             raise UsageError(f"{out}: holds files that are not results of a study ({shown}); "
                              "choose another --out (--force replaces a result folder only)")
+        analyses = [name for name in entries if name in ANALYSIS_NAMES]
+        if resume and analyses:
+            # resuming there wrote a run beside another command's results, and the report
+            # then mixed the two (another study's what-if under this study's title)
+            raise UsageError(f"{out}: holds the results of another command "
+                             f"({', '.join(analyses)}), not a run to continue; choose another "
+                             "--out, or --force without --resume to replace them")
         if entries and not (force or resume):
             raise UsageError(f"{out}: already holds results; choose another --out, add --resume "
                              "to continue that run, or --force to replace it")
@@ -271,8 +283,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     stop_rule = None
     if target_ci is not None:
         if not 0 < target_ci < 0.5:
-            raise UsageError(f"target interval half-width must lie between 0 and 0.5, got "
-                             f"{target_ci}")
+            raise UsageError(f"--target-ci: the interval half-width must lie between 0 and "
+                             f"0.5 (a failure rate, e.g. 0.001 or 100ppm), got {target_ci:g}")
         stop_rule = _half_width_rule(spec, target_ci)
     # here, not at the top: scipy.stats and pandas are a second of the command line's start
     from tolerance.summary import summarize
@@ -291,7 +303,9 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
             after_samples()
         column = lambda name: df[name].to_numpy()  # noqa: E731
         summary = summarize(spec, column, **meta, threads=threads,
-                            extra=_extra(study, column, insights, target_ci, threads))
+                            extra=_extra(study, column, insights, threads))
+        if target_ci is not None:
+            summary["target_ci"] = target_status(summary, target_ci)
         return RunResult(study, summary, None, df)
     out = Path(out)
     made = not out.exists()
@@ -316,19 +330,32 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         after_samples()
     with runner.ChunkColumns(folder) as column:
         summary = summarize(spec, column, **meta, threads=threads,
-                            extra=_extra(study, column, insights, target_ci, threads))
+                            extra=_extra(study, column, insights, threads))
+    if target_ci is not None:
+        summary["target_ci"] = target_status(summary, target_ci)
     write_json(out / SUMMARY_FILE, summary)
     return RunResult(study, summary, out)
 
 
-def _extra(study: Study, column, insights: bool, target_ci: float | None,
-           threads: int = 1) -> dict:
+def _extra(study: Study, column, insights: bool, threads: int = 1) -> dict:
     from tolerance.analysis import insights as _insights
 
-    extra = _insights(study, column, threads) if insights else {}
-    if target_ci is not None:
-        extra["target_ci"] = target_ci
-    return extra
+    return _insights(study, column, threads) if insights else {}
+
+
+def target_status(summary: dict, width: float) -> dict:
+    """Whether a run with ``--target-ci`` reached its target: the widest 95 % interval
+    half-width of any criterion (the stopping rule's own measure) and where it lies."""
+    from tolerance import stats
+
+    widest, name = 0.0, None
+    for cname, c in summary["criteria"].items():
+        h = float(stats.half_width(c["failures"], max(c["evaluated"], 1)))
+        if name is None or h > widest:
+            widest, name = h, cname
+    return {"half_width": width, "reached": bool(widest < width), "widest": widest,
+            "widest_criterion": name, "samples": summary["samples"],
+            "planned_samples": summary.get("planned_samples", summary["samples"])}
 
 
 def _half_width_rule(spec: RunSpec, width: float):

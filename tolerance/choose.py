@@ -31,6 +31,10 @@ def parse_vary(study: Study, text: str) -> tuple[str, np.ndarray]:
     except KeyError:
         raise UsageError(f"--vary {name}: not a parameter of {study.path}; parameters: "
                          f"{', '.join(study.parameter_names)}") from None
+    if p.unit == "temperature":
+        # preferred numbers are ratios; a temperature is on an offset scale (degC, K)
+        raise UsageError(f"--vary {name}: a temperature has no preferred values; pin one "
+                         "with whatif --pin instead")
     if not p.nominal > 0:
         raise UsageError(f"--vary {name}: only parameters with a positive nominal can be swept")
     try:
@@ -56,36 +60,53 @@ def _direction(study: Study, metric: str) -> int:
 def frontier(points: list[dict], x: str, y: str, dx: int, dy: int) -> list[int]:
     """Indices of the non-dominated points (better = larger after applying the directions)."""
     keep = []
+    def finite(v):  # a summary writes a figure without a finite value as None
+        return v is not None and math.isfinite(v)
+
     for i, a in enumerate(points):
-        ax, ay = dx * a[x], dy * a[y]
-        if not (math.isfinite(ax) and math.isfinite(ay)):
+        if not (finite(a[x]) and finite(a[y])):
             continue
+        ax, ay = dx * a[x], dy * a[y]
         dominated = any(
             (dx * b[x] >= ax and dy * b[y] >= ay) and (dx * b[x] > ax or dy * b[y] > ay)
-            for j, b in enumerate(points) if j != i
+            for j, b in enumerate(points) if j != i and finite(b[x]) and finite(b[y])
         )
         if not dominated:
             keep.append(i)
     return keep
 
 
-def choose(study: Study, varies: list[str], samples: int | None = None, seed: int | None = None,
-           sampler: str | None = None, jobs: int = 1, tradeoff: tuple[str, str] | None = None
-           ) -> dict:
-    """Sweep candidate values; see the module docstring."""
+def check_request(study: Study, varies: list[str], tradeoff: tuple[str, ...] | None = None
+                  ) -> tuple[list[tuple[str, np.ndarray]], tuple[str, ...]]:
+    """The sweeps and the trade-off metrics of a value choice, or a UsageError naming what is
+    wrong (called before anything is written)."""
     if not 1 <= len(varies) <= 2:
-        raise UsageError("choose takes one or two --vary NAME=SERIES:LOW..HIGH")
+        raise UsageError(f"choose takes one or two --vary NAME=SERIES:LOW..HIGH, got {len(varies)}")
     sweeps = [parse_vary(study, v) for v in varies]
     names = [n for n, _ in sweeps]
     if len(set(names)) != len(names):
-        raise UsageError("choose: the same part is varied twice")
+        raise UsageError(f"--vary {names[0]}: the same part is varied twice")
     metrics = study.stage.metrics
     if tradeoff is None:
         limited = list(dict.fromkeys(c.metric for c in study.criteria))
         tradeoff = tuple((limited + [m for m in metrics if m not in limited])[:2])
+    elif len(tradeoff) != 2:
+        raise UsageError("--tradeoff takes two metrics separated by a comma, e.g. "
+                         f"{','.join(list(metrics)[:2])}")
     for m in tradeoff:
         if m not in metrics:
-            raise UsageError(f"--tradeoff {m}: not a metric of this stage")
+            raise UsageError(f"--tradeoff {m or '(empty)'}: not a metric of this stage; "
+                             f"metrics: {', '.join(metrics)}")
+    return sweeps, tuple(tradeoff)
+
+
+def choose(study: Study, varies: list[str], samples: int | None = None, seed: int | None = None,
+           sampler: str | None = None, jobs: int = 1, tradeoff: tuple[str, str] | None = None,
+           chunk_size: int | None = None) -> dict:
+    """Sweep candidate values; see the module docstring."""
+    sweeps, tradeoff = check_request(study, varies, tradeoff)
+    names = [n for n, _ in sweeps]
+    metrics = study.stage.metrics
     # robust end of each trade-off metric: the low tail when larger is better, else the high
     ends = {m: ("p001" if _direction(study, m) > 0 else "p999") for m in tradeoff}
 
@@ -94,7 +115,7 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
         overrides = {n: Override("scale", float(v) / study.parameter(n).nominal)
                      for n, v in zip(names, combo)}
         res = run(study, samples=samples, seed=seed, sampler=sampler, jobs=jobs,
-                  overrides=overrides)
+                  chunk_size=chunk_size, overrides=overrides)
         s = res.summary
         row = {"values": {n: float(v) for n, v in zip(names, combo)},
                "yield": s["yield"]["estimate"], "ci_low": s["yield"]["ci_low"],
@@ -116,10 +137,11 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
                          _direction(study, tradeoff[1]))
     first = candidates[0]
     n_samples = run_samples = samples if samples is not None else study.settings.samples
+    used_sampler = sampler or study.settings.sampler
     return {
         "study": study.path, "study_hash": study.study_hash,
         "seed": study.settings.seed if seed is None else seed, "samples": n_samples,
-        "vary": {n: [float(v) for v in vals] for n, vals in sweeps},
+        "sampler": used_sampler, "vary": {n: [float(v) for v in vals] for n, vals in sweeps},
         "units": {n: study.parameter(n).unit for n in names},
         "tradeoff": {m: {"statistic": ends[m], "unit": metrics[m].unit} for m in tradeoff},
         "candidates": candidates,

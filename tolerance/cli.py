@@ -16,7 +16,7 @@ from pathlib import Path
 
 from tolerance import __version__
 from tolerance.api import UsageError, load_study, run
-from tolerance.files import atomic_path, os_error_text
+from tolerance.files import DamagedFile, atomic_path, os_error_text
 from tolerance.limits import exit_status
 from tolerance.runner import Terminated, UnreadableChunk
 from tolerance.study import SAMPLERS, StudyError
@@ -74,10 +74,13 @@ def _fraction(text: str) -> float:
         raise argparse.ArgumentTypeError(str(exc)) from None
 
 
-def _power_of_two(text: str) -> int:
+def _sobol_rows(text: str) -> int:
+    from tolerance.sensitivity import MIN_SOBOL_N
+
     n = _positive_int(text)
-    if n & (n - 1):
-        raise argparse.ArgumentTypeError(f"expected a power of two (e.g. 1024), got {n}")
+    if n & (n - 1) or n < MIN_SOBOL_N:
+        raise argparse.ArgumentTypeError(
+            f"expected a power of two of at least {MIN_SOBOL_N} (e.g. 1024), got {n}")
     return n
 
 
@@ -116,7 +119,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("sensitivity", help="rank sensitivities and Sobol indices")
     _add_run_options(p, "output folder (default: results/<study>-sensitivity)")
-    p.add_argument("--sobol-samples", type=_power_of_two, default=1024, metavar="N",
+    p.add_argument("--sobol-samples", type=_sobol_rows, default=1024, metavar="N",
                    help="base size of the Sobol design (a power of two; costs N*(d+2) "
                         "evaluations)")
 
@@ -189,6 +192,10 @@ def print_summary(summary: dict, study, out) -> None:
       f"{100 * y['ci_high']:.4f} %)   not converged: {summary['not_converged']}\n")
     if summary.get("saturation_failure_rate") is not None:
         w(f"saturation-failure rate {_ppm(summary['saturation_failure_rate'])} ppm\n")
+    if isinstance(summary.get("target_ci"), dict):
+        from tolerance.report import target_sentence
+
+        w(target_sentence(summary["target_ci"], lambda r: f"{_ppm(r)} ppm") + "\n")
     rows = []
     for name, c in summary["criteria"].items():
         unit = summary["metrics"][c["metric"]]["unit"]
@@ -285,7 +292,7 @@ def cmd_whatif(args) -> int:
     parse_pins(study, args.pin)  # validate before creating the output folder
     out = _analysis_out(args, study, "-whatif")
     result, base, pinned = whatif(study, args.pin, args.samples, args.seed, args.sampler,
-                                  args.jobs)
+                                  args.jobs, args.chunk_size)
     write_json(out / "whatif.json", result)
     _save_pair(out, study, base.samples, pinned.samples)
     _write_report(out, args.jobs)
@@ -329,7 +336,7 @@ def cmd_worstcase(args) -> int:
     study = _load(args.study)
     out = _analysis_out(args, study, "-worstcase")
     result = study_worst_case(study, _samples(args, study), args.seed if args.seed is not None
-                              else study.settings.seed)
+                              else study.settings.seed, args.sampler, args.chunk_size)
     write_json(out / "worstcase.json", result)
     _write_report(out, args.jobs)
     if not args.quiet:
@@ -350,13 +357,15 @@ def cmd_worstcase(args) -> int:
 
 
 def cmd_sensitivity(args) -> int:
-    from tolerance.analysis import study_sensitivity
+    from tolerance.analysis import check_varies, study_sensitivity
     from tolerance.api import write_json
 
     study = _load(args.study)
+    check_varies(study)  # before creating the output folder
     out = _analysis_out(args, study, "-sensitivity")
     result = study_sensitivity(study, _samples(args, study), args.seed if args.seed is not None
-                               else study.settings.seed, args.sobol_samples)
+                               else study.settings.seed, args.sobol_samples,
+                               sampler=args.sampler, chunk_size=args.chunk_size)
     write_json(out / "sensitivity.json", result)
     _write_report(out, args.jobs)
     if not args.quiet:
@@ -380,20 +389,18 @@ def cmd_sensitivity(args) -> int:
 
 def cmd_choose(args) -> int:
     from tolerance.api import write_json
-    from tolerance.choose import choose, parse_vary
+    from tolerance.choose import check_request, choose
 
     study = _load(args.study)
     if not args.vary:
         raise UsageError("choose needs --vary NAME=SERIES:LOW..HIGH (once or twice)")
-    for v in args.vary:
-        parse_vary(study, v)
     tradeoff = None
-    if args.tradeoff:
+    if args.tradeoff is not None:
         tradeoff = tuple(t.strip() for t in args.tradeoff.split(","))
-        if len(tradeoff) != 2:
-            raise UsageError("--tradeoff takes two metrics separated by a comma")
+    check_request(study, args.vary, tradeoff)  # before creating the output folder
     out = _analysis_out(args, study, "-choose")
-    result = choose(study, args.vary, args.samples, args.seed, args.sampler, args.jobs, tradeoff)
+    result = choose(study, args.vary, args.samples, args.seed, args.sampler, args.jobs, tradeoff,
+                    args.chunk_size)
     write_json(out / "choose.json", result)
     _write_report(out, args.jobs)
     if not args.quiet:
@@ -539,7 +546,9 @@ def _command(args) -> int:
     except OSError as exc:
         # a file that cannot be read or written (disk full, a folder removed or read-only):
         # every output file is written whole or not at all, so what exists is complete
-        done = ("" if isinstance(exc, UnreadableChunk) else
+        # (not for a damaged file, which the message says how to mend, nor for a scheduler
+        # that could not be reached before anything was written)
+        done = ("" if isinstance(exc, (UnreadableChunk, DamagedFile, ConnectionError)) else
                 "; the files already written are complete (a run continues with --resume)")
         sys.stderr.write(f"tolerance: error: {os_error_text(exc)}{done}\n")
         return 2

@@ -9,6 +9,7 @@ crash never leaves a half-written result, and what exists is complete.
 from __future__ import annotations
 
 import contextlib
+import errno
 import os
 from pathlib import Path
 from typing import Iterator
@@ -45,3 +46,11 @@ def os_error_text(exc: OSError) -> str:
     space left on device``."""
     text = exc.strerror or str(exc)
     return f"{exc.filename}: {text}" if exc.filename is not None else text
+
+
+class DamagedFile(OSError):
+    """A saved result file that is not what the command wrote (truncated, edited, another
+    kind of file); its message names the file and how to mend it."""
+
+    def __init__(self, path, what: str):
+        super().__init__(errno.EIO, what, str(path))

@@ -401,6 +401,8 @@ def _ecdf_ranks(x: np.ndarray, most: int = ECDF_POINTS) -> tuple[np.ndarray, np.
     and the last included) where it has more: exact values of the ECDF, (rank + 1) / n."""
     xs = np.sort(x)
     n = xs.size
+    if n == 0:  # nothing to draw: no steps, not one step at an undefined value
+        return xs, np.zeros(0)
     if n <= most:
         return np.concatenate([xs[:1], xs]), np.concatenate([[0.0], np.arange(1, n + 1) / n])
     ranks = np.unique(np.linspace(0, n - 1, most).round().astype(np.int64))
@@ -439,10 +441,13 @@ def whatif_overlay(baseline: np.ndarray, pinned: np.ndarray, metric: str, unit: 
     with sns.axes_style(_STYLE):
         fig = _figure(7.0, 4.4)
         ax = fig.subplots()
-        ax.step(b, fb, where="post", linestyle=LINESTYLES[0], color=PALETTE[0], linewidth=1.8,
-                label=f"{labels[0]} ({base.size})", gid="ecdf:baseline")
-        ax.step(p, fp, where="post", linestyle=LINESTYLES[1], color=PALETTE[1], linewidth=1.8,
-                label=f"{labels[1]} ({pin.size})", gid="ecdf:pinned")
+        # a run whose samples all lack a finite value (a pin that makes the metric infinite,
+        # every sample not converged) keeps its legend entry, saying so, and draws no curve
+        for k, (xs, fs, n, gid) in enumerate(((b, fb, base.size, "ecdf:baseline"),
+                                              (p, fp, pin.size, "ecdf:pinned"))):
+            ax.step(xs, fs, where="post", linestyle=LINESTYLES[k], color=PALETTE[k],
+                    linewidth=1.8, gid=gid,
+                    label=f"{labels[k]} ({n})" if n else f"{labels[k]} (no finite value)")
         handles = _draw_limits([ax], [(f"limit {i + 1}", lim) for i, lim in enumerate(lims)],
                                lo_edge, hi_edge, unit)
         ax.set_xlim(lo_edge, hi_edge)

@@ -14,6 +14,7 @@ consumes (so unknown keys are reported with a did-you-mean).
 from __future__ import annotations
 
 import importlib
+import math
 from dataclasses import dataclass, field
 from typing import Callable, Protocol
 
@@ -44,6 +45,9 @@ class Parameter:
         End-of-life drift, relative [1]: worst-case analysis widens the tolerance bounds by it
         (initial tolerance plus ageing, ECSS-Q-HB-30-01A practice); the Monte Carlo run samples
         the initial spread.
+    positive, minimum, maximum : bool, float or None
+        The values the study file accepts for it (in its SI unit); a what-if pin or a value
+        choice outside them is refused as the study file would refuse it.
     """
 
     name: str
@@ -52,6 +56,15 @@ class Parameter:
     description: str = ""
     key: str = ""
     drift: float = 0.0
+    positive: bool = False
+    minimum: float | None = None
+    maximum: float | None = None
+
+    def out_of_range(self, value: float) -> str | None:
+        """Why ``value`` is not a value of this parameter, or None when it is one."""
+        if not math.isfinite(value):
+            return f"expected a finite value, got {value:g}"
+        return range_problem(value, self.unit, self.positive, self.minimum, self.maximum)
 
     @property
     def nominal(self) -> float:
@@ -68,6 +81,18 @@ class Parameter:
     @property
     def varies(self) -> bool:
         return self.distribution.varies
+
+
+def range_problem(value: float, unit: str, positive: bool, minimum: float | None,
+                  maximum: float | None) -> str | None:
+    """Why ``value`` lies outside the accepted values of a quantity, or None."""
+    if positive and not value > 0:
+        return f"must be positive, got {value:g} ({unit})"
+    if minimum is not None and value < minimum:
+        return f"must be at least {minimum:g} ({unit}), got {value:g}"
+    if maximum is not None and value > maximum:
+        return f"must be at most {maximum:g} ({unit}), got {value:g}"
+    return None
 
 
 @dataclass(frozen=True)

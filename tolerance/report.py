@@ -25,7 +25,7 @@ import pandas as pd
 
 from tolerance import runner
 from tolerance.cli import SAFETY
-from tolerance.files import TMP_SUFFIX, write_atomic
+from tolerance.files import TMP_SUFFIX, DamagedFile, write_atomic
 from tolerance.units import UnitError, format_quantity, spread_unit
 
 __all__ = [
@@ -318,8 +318,37 @@ def generic_blocks(data, title: str | None = None, depth: int = 0) -> list[Block
 
 # --- reading the run ----------------------------------------------------------------------------
 
-def _read_json(path: Path):
-    return json.loads(path.read_text(encoding="utf-8"))
+#: Top-level keys a saved result file cannot lack (the summary's sections; an analysis
+#: file's tables, which are otherwise rendered as they come); a file without them was not
+#: written by a command (``{}``, a list, another program's JSON).
+REQUIRED_KEYS = {
+    SUMMARY_FILE: ("study", "seed", "samples", "criteria", "metrics", "verdict"),
+    "sensitivity.json": ("rank",),
+    "worstcase.json": ("metrics",),
+    "whatif.json": ("criteria", "metrics"),
+    "choose.json": ("candidates",),
+    WAVEFORMS_FILE: ("samples",),
+}
+
+
+def _read_json(path: Path) -> dict:
+    """A saved result file, or :class:`DamagedFile` naming it when it is not valid JSON or
+    lacks what the command writes."""
+    mend = "run the command again to write it anew"
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except UnicodeDecodeError:
+        raise DamagedFile(path, f"not UTF-8 text; {mend}") from None
+    except json.JSONDecodeError as exc:
+        raise DamagedFile(path, f"not valid JSON ({exc.msg} at line {exc.lineno} column "
+                                f"{exc.colno}); {mend}") from None
+    if not isinstance(data, dict):
+        raise DamagedFile(path, f"expected a JSON object, found a {type(data).__name__}; {mend}")
+    missing = [k for k in REQUIRED_KEYS.get(path.name, ()) if k not in data]
+    if missing:
+        raise DamagedFile(path, f"lacks {', '.join(missing)}: not a result file of this "
+                                f"tool; {mend}")
+    return data
 
 
 def _safe_name(text: str) -> str:
@@ -618,6 +647,19 @@ def _per_criterion_table(data: dict, caption: str) -> Table:
     return _keyed_table(data, "criterion", caption)
 
 
+def target_sentence(target: dict, rate) -> str:
+    """One sentence on a run's ``--target-ci``: reached or not, with the widest interval."""
+    head = (f"Target 95 % interval half-width {rate(target.get('half_width'))}: "
+            + ("reached" if target.get("reached") else "NOT reached"))
+    widest = (f"the widest is {rate(target.get('widest'))} "
+              f"({target.get('widest_criterion')})")
+    n, planned = target.get("samples"), target.get("planned_samples")
+    if target.get("reached"):
+        return f"{head} after {format_number(n)} of at most {format_number(planned)} samples; {widest}."
+    return (f"{head} within the {format_number(planned)} samples allowed (--samples); {widest}; "
+            "more samples would narrow it.")
+
+
 def _summary_blocks(summary: dict) -> list[Block]:
     doc: list[Block] = []
     doc.append(Block("h2", "Verdict"))
@@ -639,6 +681,9 @@ def _summary_blocks(summary: dict) -> list[Block]:
     doc.append(Block("p", f"Allowed failure rate per criterion: {format_rate(allowed)}{rule}"
                           f" Samples not converged: {format_number(summary.get('not_converged'))}"
                           " (they count against the yield, never as passes)."))
+    target = summary.get("target_ci")
+    if isinstance(target, dict):
+        doc.append(Block("p", target_sentence(target, format_rate)))
     doc.append(Block("table", table=verdict_table(summary)))
     if summary.get("overrides"):
         doc.append(Block("table", table=Table(
@@ -903,6 +948,10 @@ def write_reports(folder, jobs: int = 1) -> dict:
     extras = {name: _read_json(folder / name) for name in EXTRA_FILES
               if (folder / name).is_file()}
     summary = _read_json(summary_path) if summary_path.is_file() else None
+    # every saved file is read before anything is removed or written, so a damaged one is
+    # refused with the folder as it was
+    waveforms = (_read_json(folder / WAVEFORMS_FILE) if (folder / WAVEFORMS_FILE).is_file()
+                 else None)
     if summary is None and not extras:
         raise FileNotFoundError(f"{folder}: holds neither {SUMMARY_FILE} nor an analysis file "
                                 f"({', '.join(EXTRA_FILES)}); run the study first")
@@ -919,8 +968,8 @@ def write_reports(folder, jobs: int = 1) -> dict:
         made += _whatif_plots(folder, extras["whatif.json"], summary, plot_dir)
     if "choose.json" in extras:
         made += _choose_plots(extras["choose.json"], plot_dir)
-    if (folder / WAVEFORMS_FILE).is_file():
-        made += _waveform_plots(_read_json(folder / WAVEFORMS_FILE), plot_dir)
+    if waveforms is not None:
+        made += _waveform_plots(waveforms, plot_dir)
     paths = render_plots(made, jobs)
     figures = [(f"{PLOTS_DIR}/{p.name}", p.read_bytes(), t.caption) for p, t in zip(paths, made)]
     doc = build_document(summary, extras, figures)

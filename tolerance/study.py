@@ -22,7 +22,8 @@ from typing import Any
 import numpy as np
 
 from tolerance import distributions as dist
-from tolerance.protocol import ConfiguredStage, Criterion, Parameter, get_stage, stage_names
+from tolerance.protocol import (ConfiguredStage, Criterion, Parameter, get_stage, range_problem,
+                                stage_names)
 from tolerance.units import UnitError, parse_quantity
 
 SAMPLERS = ("random", "lhs", "sobol")
@@ -168,12 +169,9 @@ class Reader:
 
     def _check_range(self, name: str, value: float, unit: str, positive: bool,
                      minimum: float | None, maximum: float | None) -> None:
-        if positive and not value > 0:
-            raise self.error(name, f"must be positive, got {value:g} ({unit})")
-        if minimum is not None and value < minimum:
-            raise self.error(name, f"must be at least {minimum:g} ({unit}), got {value:g}")
-        if maximum is not None and value > maximum:
-            raise self.error(name, f"must be at most {maximum:g} ({unit}), got {value:g}")
+        problem = range_problem(value, unit, positive, minimum, maximum)
+        if problem:
+            raise self.error(name, problem)
 
     def quantity(self, name: str, unit: str, default=_MISSING, positive: bool = False,
                  minimum: float | None = None, maximum: float | None = None) -> float:
@@ -238,7 +236,8 @@ class Reader:
             distribution = dist.Fixed(value)
         if parameter_name in self._ctx.parameters:
             raise self.error(name, f"defines parameter '{parameter_name}' a second time")
-        param = Parameter(parameter_name, unit, distribution, description, key, drift)
+        param = Parameter(parameter_name, unit, distribution, description, key, drift,
+                          positive, minimum, maximum)
         self._ctx.parameters[parameter_name] = param
         return param
 
@@ -442,20 +441,24 @@ class Study:
 
         return whatif(self, list(pins), **kwargs)
 
-    def worstcase(self, samples: int | None = None, seed: int | None = None) -> dict:
+    def worstcase(self, samples: int | None = None, seed: int | None = None,
+                  sampler: str | None = None, chunk_size: int | None = None) -> dict:
         """Extreme-value, RSS and optimizer worst case beside the Monte Carlo extremes."""
         from tolerance.analysis import study_worst_case
 
         return study_worst_case(self, samples or self.settings.samples,
-                                self.settings.seed if seed is None else seed)
+                                self.settings.seed if seed is None else seed, sampler, chunk_size)
 
     def sensitivity(self, samples: int | None = None, seed: int | None = None,
-                    sobol_samples: int = 1024) -> dict:
-        """Rank sensitivities and Sobol indices (``sobol_samples`` a power of two)."""
+                    sobol_samples: int = 1024, sampler: str | None = None,
+                    chunk_size: int | None = None) -> dict:
+        """Rank sensitivities and Sobol indices (``sobol_samples`` a power of two of at least
+        64)."""
         from tolerance.analysis import study_sensitivity
 
         return study_sensitivity(self, samples or self.settings.samples,
-                                 self.settings.seed if seed is None else seed, sobol_samples)
+                                 self.settings.seed if seed is None else seed, sobol_samples,
+                                 sampler=sampler, chunk_size=chunk_size)
 
     def choose(self, *vary: str, **kwargs) -> dict:
         """Preferred-value sweep, e.g. ``study.choose("RBE2=E24:47..1k")``; see

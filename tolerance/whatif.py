@@ -21,7 +21,16 @@ _PERCENTILE = re.compile(r"^p(\d+(?:\.\d+)?)$")
 
 def pin_value(study: Study, name: str, spec: str) -> float:
     """Value of a pin: ``min``, ``max``, ``nominal``, ``pNN`` (a percentile of the parameter's
-    distribution) or a quantity in the parameter's unit."""
+    distribution) or a quantity in the parameter's unit, within the values the study file
+    accepts for the parameter (a zero load resistance is refused here as it is there)."""
+    value = _pin_value(study, name, spec)
+    problem = study.parameter(name).out_of_range(value)
+    if problem:
+        raise UsageError(f"--pin {name}={spec.strip()}: {problem}")
+    return value
+
+
+def _pin_value(study: Study, name: str, spec: str) -> float:
     try:
         p = study.parameter(name)
     except KeyError:
@@ -85,7 +94,7 @@ def compare(base: dict, pinned: dict) -> dict:
 
 
 def whatif(study: Study, pins: list[str], samples: int | None = None, seed: int | None = None,
-           sampler: str | None = None, jobs: int = 1):
+           sampler: str | None = None, jobs: int = 1, chunk_size: int | None = None):
     """Baseline and pinned runs with common random numbers.
 
     Returns
@@ -96,9 +105,10 @@ def whatif(study: Study, pins: list[str], samples: int | None = None, seed: int 
     if not pins:
         raise UsageError("whatif needs at least one --pin NAME=VALUE|min|max|pNN")
     overrides = parse_pins(study, pins)
-    base = run(study, samples=samples, seed=seed, sampler=sampler, jobs=jobs)
+    base = run(study, samples=samples, seed=seed, sampler=sampler, jobs=jobs,
+               chunk_size=chunk_size)
     pinned = run(study, samples=samples, seed=seed, sampler=sampler, jobs=jobs,
-                 overrides=overrides)
+                 chunk_size=chunk_size, overrides=overrides)
     result = {
         "study": study.path, "study_hash": study.study_hash,
         "seed": base.summary["seed"], "samples": base.summary["samples"],
