@@ -278,6 +278,18 @@ def test_default_output_folder_is_never_overwritten(tmp_path, monkeypatch, capsy
     assert (tmp_path / "results" / "demo-2" / "summary.json").is_file()
 
 
+
+def test_default_output_folder_keeps_a_study_name_with_spaces(tmp_path, monkeypatch):
+    # "my heater.toml" ran into results/heater: the name was split at its space
+    monkeypatch.chdir(tmp_path)
+    study = tmp_path / "my heater.toml"
+    study.write_text((ROOT / "tolerance" / "demo" / "demo.toml").read_text(encoding="utf-8"),
+                     encoding="utf-8")
+    assert main(["check", str(study)]) == 0
+    assert main(["run", str(study), "--samples", "100", "--quiet"]) == 0
+    assert sorted(p.name for p in (tmp_path / "results").iterdir()) == ["my heater"]
+
+
 def test_whatif_pin_that_leaves_a_metric_without_a_finite_value(tmp_path, capsys):
     # at 200 degC every stress metric of the demo is infinite in the pinned run: the overlay
     # plot raised, and the command ended in a traceback with no report

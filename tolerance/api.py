@@ -40,6 +40,10 @@ ANALYSIS_NAMES = frozenset({"sensitivity.json", "worstcase.json", "whatif.json",
                             "whatif_samples.parquet", "choose.json"})
 
 
+#: How the built-in demo's path reads in messages and reports.
+BUILT_IN = "(built-in) "
+
+
 class UsageError(ValueError):
     """A bad command-line or API argument (exit status 2)."""
 
@@ -54,7 +58,7 @@ DEMO_NAME = "demo.toml"
 def load_study(path=None) -> Study:
     """Load a study file; with no path, the built-in demo study."""
     if path is None:
-        return _load_study_file(f"(built-in) {DEMO_NAME}", text=demo_text())
+        return _load_study_file(BUILT_IN + DEMO_NAME, text=demo_text())
     return _load_study_file(path)
 
 

@@ -150,7 +150,10 @@ def _load(path):
 
 
 def _default_out(study, suffix: str = "") -> Path:
-    stem = Path(study.path.split()[-1]).stem + suffix
+    from tolerance.api import BUILT_IN
+
+    # the study file's own name, spaces and all ("my heater.toml" -> results/my heater)
+    stem = Path(study.path.removeprefix(BUILT_IN)).stem + suffix
     base = Path("results") / stem
     candidate, k = base, 2
     while candidate.exists() and any(candidate.iterdir()):
