@@ -433,3 +433,19 @@ def test_report_opens_in_headless_chromium(folder, tmp_path):
     res = _chromium(exe, tmp_path, "--enable-logging=stderr", "--v=0",
                     "--virtual-time-budget=5000", "--dump-dom", bad.as_uri())
     assert any(":CONSOLE" in line and "probe error" in line for line in res.stderr.splitlines())
+
+
+def test_whatif_pins_appear_in_their_units(tmp_path):
+    # a pin of -40 degC read "233.1" (kelvin, without a unit) in the pins table and captions
+    from tolerance.cli import main
+
+    out = tmp_path / "w"
+    assert main(["whatif", "--samples", "40", "--pin", "ambient.temperature=-40 degC",
+                 "--pin", "RB=max", "--out", str(out), "--quiet"]) in (0, 1)
+    saved = json.loads((out / "whatif.json").read_text())
+    # the SI values stay for programs: -40 degC is 233.15 K (ITS-90 offset)
+    assert saved["pins"]["ambient.temperature"] == pytest.approx(233.15)
+    assert saved["pinned_values"]["ambient.temperature"] == "-40 degC"
+    md = (out / "report.md").read_text(encoding="utf-8")
+    assert "| ambient.temperature | -40 degC |" in md and "233.1" not in md
+    assert "What-if ambient.temperature = -40 degC, RB = " in md

@@ -575,7 +575,10 @@ def _whatif_plots(folder: Path, whatif: dict, summary: dict | None,
         for c in summary.get("criteria", {}).values():
             limits.setdefault(c["metric"], []).append(c["limit"])
     made = []
-    pins = ", ".join(f"{k} = {format_number(v)}" for k, v in (whatif.get("pins") or {}).items())
+    # the values in their units (-40 degC, not 233.1); a file without them gives the SI values
+    shown = whatif.get("pinned_values") or whatif.get("pins") or {}
+    pins = ", ".join(f"{k} = {v if isinstance(v, str) else format_number(v)}"
+                     for k, v in shown.items())
     for metric in wanted:
         b, q = f"baseline.{metric}", f"pinned.{metric}"
         if b not in frame or q not in frame:
@@ -762,7 +765,12 @@ def build_document(summary: dict | None, extras: dict,
     for fname, section in EXTRA_FILES.items():
         if fname in extras:
             doc.append(Block("h2", f"{section} ({fname})"))
-            doc.extend(generic_blocks(extras[fname]))
+            data = extras[fname]
+            if isinstance(data, dict) and "pinned_values" in data:
+                # the pins in their units stand for the SI values (K, not degC) kept for
+                # programs in the same file
+                data = {k: v for k, v in data.items() if k != "pins"}
+            doc.extend(generic_blocks(data))
 
     if figures:
         doc.append(Block("h2", "Plots"))

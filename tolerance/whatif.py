@@ -14,7 +14,7 @@ import numpy as np
 from tolerance.api import UsageError, run
 from tolerance.runner import Override
 from tolerance.study import Study
-from tolerance.units import UnitError, parse_quantity
+from tolerance.units import UnitError, format_quantity, parse_quantity
 
 _PERCENTILE = re.compile(r"^p(\d+(?:\.\d+)?)$")
 
@@ -113,7 +113,9 @@ def whatif(study: Study, pins: list[str], samples: int | None = None, seed: int 
         "study": study.path, "study_hash": study.study_hash,
         "seed": base.summary["seed"], "samples": base.summary["samples"],
         "sampler": base.summary["sampler"],
-        "pins": {n: o.value for n, o in overrides.items()},
+        "pins": {n: o.value for n, o in overrides.items()},  # SI values (K for temperatures)
+        "pinned_values": {n: format_quantity(o.value, study.parameter(n).unit)
+                          for n, o in overrides.items()},
         "pin_text": pins,
         **compare(base.summary, pinned.summary),
         "evaluations": 2 * base.summary["samples"],
