@@ -449,3 +449,19 @@ def test_whatif_pins_appear_in_their_units(tmp_path):
     md = (out / "report.md").read_text(encoding="utf-8")
     assert "| ambient.temperature | -40 degC |" in md and "233.1" not in md
     assert "What-if ambient.temperature = -40 degC, RB = " in md
+
+
+def test_infinite_metric_values_are_counted_and_named(write_study, tmp_path):
+    # a metric whose every sample was infinite showed '-' everywhere without a word
+    import numpy as np
+
+    from tolerance import summary as summary_module
+
+    values = np.array([1.0, np.inf, 2.0, -np.inf, np.nan])
+    spread = summary_module._spread(values)
+    assert spread["infinite"] == 2 and spread["max"] == 2.0  # NaN: not converged, elsewhere
+    s = {"samples": 5, "metrics": {"m": {**spread, "unit": "1"},
+                                   "k": {**summary_module._spread(np.ones(5)), "unit": "1"}}}
+    note = report.infinite_note(s)
+    assert "m 2 of 5" in note and "k " not in note
+    assert report.infinite_note({"samples": 5, "metrics": {"k": s["metrics"]["k"]}}) is None

@@ -542,3 +542,14 @@ def test_capability_of_a_spread_far_below_its_window():
     z = float(stats.norm.ppf(0.975))
     assert cap["cpk_low"] == pytest.approx(cap["cpk"] * (1 - z / math.sqrt(78)), rel=1e-12)
     assert cap["cpk_high"] == pytest.approx(cap["cpk"] * (1 + z / math.sqrt(78)), rel=1e-12)
+
+
+def test_tail_estimate_says_why_a_margin_without_finite_values_has_none():
+    # every sample's stress infinite (a hot study): the method read "no samples", though
+    # 50 samples were there and all failed
+    from tolerance.stats import tail_estimate
+
+    out = tail_estimate(np.full(50, -np.inf))
+    assert out["n"] == 0 and math.isnan(out["tail_ppm"])
+    assert out["method"].startswith("no finite margin among 50 samples")
+    assert tail_estimate(np.array([]))["method"] == "no samples: nothing to estimate"

@@ -227,6 +227,20 @@ def test_optimizer_survives_nan_region():
     assert 0.25 <= res["value"] <= 0.9
 
 
+def test_a_metric_infinite_everywhere_gives_nan_bounds_without_a_warning():
+    # a stress beyond its rating's temperature range is infinite at every point: inf - inf in
+    # the central differences printed a RuntimeWarning on the worst-case command's terminal
+    # (the test run turns warnings into errors, so this test fails on it)
+    def model(s):
+        return {"y": s["a"] + s["b"], "stress": np.full(np.shape(s["a"]), np.inf)}
+
+    bounds = [Bound("a", 0.5, 0.0, 1.0), Bound("b", 0.5, 0.0, 1.0)]
+    table = worst_case_table(model, bounds, ["y", "stress"], seed=1, optimize_metrics=["y"])
+    # exact: y = a + b over the unit square
+    assert table["y"]["eva_max"] == pytest.approx(2.0) and table["y"]["eva_min"] == 0.0
+    assert np.isnan(table["stress"]["rss_high"]) and np.isnan(table["stress"]["eva_max"])
+
+
 def test_worst_case_table_combines_methods():
     mc = {"y": {"min": -1.0, "max": 2.0, "p001": -0.9, "p999": 1.9}}
     table = worst_case_table(linear_model, LINEAR_BOUNDS, ["y"], mc_extremes=mc, seed=5)

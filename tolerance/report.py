@@ -209,6 +209,19 @@ def metrics_table(summary: dict) -> Table:
     return Table(header, rows, "metrics-table", "Metric percentiles (not converged left out)")
 
 
+def infinite_note(summary: dict) -> str | None:
+    """A sentence naming the metrics with infinite samples, which the percentiles leave out
+    (a figure without any finite sample reads '-')."""
+    n = summary.get("samples")
+    parts = [f"{name} {format_number(m['infinite'])} of {format_number(n)}"
+             for name, m in summary.get("metrics", {}).items() if m.get("infinite")]
+    if not parts:
+        return None
+    return ("Infinite values, outside the model's range (a stress above its rating's maximum "
+            "temperature, where the derated rating is zero), are left out of the percentiles "
+            "and fail any criterion on their metric: " + ", ".join(parts) + ".")
+
+
 def parameter_table(parameters: list[dict]) -> Table:
     header = ["Parameter", "Nominal", "Low", "High", "Distribution", "Unit"]
     rows = []
@@ -696,6 +709,9 @@ def _summary_blocks(summary: dict) -> list[Block]:
 
     doc.append(Block("h2", "Metrics"))
     doc.append(Block("table", table=metrics_table(summary)))
+    note = infinite_note(summary)
+    if note:
+        doc.append(Block("note", note))
 
     if summary.get("parameters"):
         doc.append(Block("h2", "Parameters"))

@@ -503,7 +503,10 @@ def tail_estimate(margin, confidence: float = 0.95) -> dict:
         "n": n,
     }
     if n == 0:
-        out["method"] = "no samples: nothing to estimate"
+        total = int(np.asarray(margin).size)
+        out["method"] = ("no samples: nothing to estimate" if total == 0 else
+                         f"no finite margin among {total} samples (infinite or not converged): "
+                         "nothing to extrapolate; the counted rate is the answer")
         return out
     mean, s = mean_std(data)
     s = s if n > 1 else 0.0

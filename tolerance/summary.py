@@ -18,6 +18,15 @@ from tolerance.threads import thread_map
 CONFIDENCE = 0.95
 
 
+def _spread(values) -> dict:
+    """The spread figures of a metric and how many of its samples are infinite (outside
+    the model's range, e.g. a stress above its rating's maximum temperature), which the
+    figures leave out."""
+    values = np.asarray(values, dtype=float)
+    return {**stats.percentile_summary(values),
+            "infinite": int(np.count_nonzero(np.isinf(values)))}
+
+
 def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path: str,
               title: str, stage_name: str, allowed_rate: float,
               extra: dict | None = None, threads: int = 1) -> dict:
@@ -67,8 +76,7 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
         }
 
     metrics = {}
-    spreads = thread_map(stats.percentile_summary,
-                         (column(name) for name in spec.stage.metrics), threads)
+    spreads = thread_map(_spread, (column(name) for name in spec.stage.metrics), threads)
     for (name, info), spread in zip(spec.stage.metrics.items(), spreads):
         metrics[name] = {"unit": info.unit, "description": info.description, **spread}
 
