@@ -126,6 +126,9 @@ def test_choose_refuses_a_temperature_and_names_the_twice_varied_part(study):
         check_request(study, ["x2=E12:1..2"] * 3)
     with pytest.raises(UsageError, match="--tradeoff w: not a metric.*metrics: y, z"):
         check_request(study, ["x2=E12:1..2"], ("y", "w"))
+    # two sweeps multiply: 17 E24 values from 1 to 4.7 (IEC 60063) each, 289 whole runs
+    with pytest.raises(UsageError, match="17 x 17 = 289 candidates"):
+        check_request(study, ["x2=E24:1..4.7", "x1=E24:1..4.7"])
 
 
 def test_worst_case_of_linear_stage_is_exact(study):

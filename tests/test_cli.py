@@ -136,7 +136,9 @@ def test_bad_option_values_exit_2(tmp_path, capsys, write_study):
                  ["choose", "--vary", "ambient.temperature=E3:-60..300"],
                  ["sensitivity", "--sobol-samples", "1"],
                  ["sensitivity", "--sobol-samples", "32"],
-                 ["sensitivity", str(fixed), "--sobol-samples", "64"]):
+                 ["sensitivity", str(fixed), "--sobol-samples", "64"],
+                 ["run", ""], ["report", ""], ["report", str(tmp_path / "none")],
+                 ["report", str(fixed)]):
         with pytest.raises(SystemExit) as exc:
             code = main(argv + ["--out", str(tmp_path / "o")] if argv[0] != "report" else argv)
             raise SystemExit(code)
@@ -144,6 +146,11 @@ def test_bad_option_values_exit_2(tmp_path, capsys, write_study):
         err = capsys.readouterr().err
         assert "Traceback" not in err and err.count("\n") == 1, argv
         assert not (tmp_path / "o").exists(), argv
+    # the two that are not there or not a folder say so, not "holds no saved results"
+    for argv, told in ((["report", str(tmp_path / "none")], "does not exist"),
+                       (["report", str(fixed)], "is not a folder"),
+                       (["run", ""], "the study argument is empty")):
+        assert main(argv) == 2 and told in capsys.readouterr().err
 
 
 # the demo with nothing that varies (every part and condition fixed)

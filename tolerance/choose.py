@@ -21,6 +21,10 @@ from tolerance.study import Study
 from tolerance.units import UnitError, parse_series_range, preferred_values
 
 
+#: The most candidates of one value choice, one part or two (each is a whole Monte Carlo run;
+#: an E24 decade holds 24, two parts over a decade each 576 runs).
+MAX_CANDIDATES = 200
+
 def parse_vary(study: Study, text: str) -> tuple[str, np.ndarray]:
     """``NAME=SERIES:LOW..HIGH`` -> (name, candidate values)."""
     if "=" not in text:
@@ -44,8 +48,9 @@ def parse_vary(study: Study, text: str) -> tuple[str, np.ndarray]:
         raise UsageError(f"--vary {name}={spec}: {exc}") from None
     if values.size == 0:
         raise UsageError(f"--vary {name}={spec}: no {series} value lies in that range")
-    if values.size > 200:
-        raise UsageError(f"--vary {name}={spec}: {values.size} candidates; narrow the range")
+    if values.size > MAX_CANDIDATES:
+        raise UsageError(f"--vary {name}={spec}: {values.size} candidates; narrow the range "
+                         f"(at most {MAX_CANDIDATES})")
     return name, values
 
 
@@ -86,6 +91,11 @@ def check_request(study: Study, varies: list[str], tradeoff: tuple[str, ...] | N
     names = [n for n, _ in sweeps]
     if len(set(names)) != len(names):
         raise UsageError(f"--vary {names[0]}: the same part is varied twice")
+    total = math.prod(len(v) for _, v in sweeps)
+    if total > MAX_CANDIDATES:
+        raise UsageError(f"--vary: {' x '.join(str(len(v)) for _, v in sweeps)} = {total} "
+                         f"candidates, each a whole Monte Carlo run; narrow the ranges (at "
+                         f"most {MAX_CANDIDATES})")
     metrics = study.stage.metrics
     if tradeoff is None:
         limited = list(dict.fromkeys(c.metric for c in study.criteria))

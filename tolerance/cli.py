@@ -146,6 +146,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _load(path):
+    if path is not None and not str(path).strip():
+        # an empty argument (a shell variable that was not set) read as the current folder
+        raise UsageError("the study argument is empty; give a study file, or leave it out "
+                         "for the built-in demo")
     return load_study(path)
 
 
@@ -436,7 +440,13 @@ def cmd_choose(args) -> int:
 def cmd_report(args) -> int:
     from tolerance import report
 
+    if not args.folder.strip():
+        raise UsageError("the folder argument is empty; give a result folder")
     folder = Path(args.folder)
+    if not folder.is_dir():
+        raise UsageError(f"{folder}: {'is not a folder' if folder.exists() else 'does not exist'}"
+                         "; give a result folder written by run, whatif, worstcase, "
+                         "sensitivity or choose")
     if not (folder / "summary.json").is_file() and not any(
         (folder / f).is_file() for f in ("whatif.json", "worstcase.json", "sensitivity.json",
                                          "choose.json")
