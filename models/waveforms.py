@@ -187,4 +187,4 @@ def record_waveforms(study, samples_df: pd.DataFrame, k: int, seed: int) -> dict
                                "vce": vce[keep].tolist()}
         entries.append(entry)
     return {"samples": entries, "units": dict(UNITS), "device_temperature": "ambient",
-            "seed": int(seed), "max_points": MAX_POINTS}
+            "seed": int(seed), "max_points": MAX_POINTS, "asked": int(k)}

@@ -171,3 +171,14 @@ def test_two_panel_waveforms_keep_one_style_per_trace():
         plots.waveforms([t], [t], ["a"], "V", time_scale="log")
     with pytest.raises(ValueError, match="lower traces"):
         plots.waveforms([t], [t], ["a"], "V", lower_traces=[t, t])
+
+
+def test_fewer_waveforms_than_asked_are_noted(tmp_path, capsys):
+    # --waveforms 5 on a run of 2 samples stored 3 without a word
+    out = tmp_path / "o"
+    assert main(["run", str(STUDY), "--samples", "2", "--waveforms", "5", "--out", str(out),
+                 "--quiet"]) in (0, 1)
+    stored = json.loads((out / "waveforms.json").read_text())
+    assert stored["asked"] == 5 and len(stored["samples"]) == 3
+    err = capsys.readouterr().err
+    assert "holds 3 of the 5 waveforms asked for: the run has 2 samples" in err

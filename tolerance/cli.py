@@ -271,7 +271,12 @@ def _write_waveforms(study, out: Path, k: int, seed: int) -> None:
     columns = ["sample", *study.parameter_names, "turn_off_delay"]
     with runner.ChunkColumns(folder) as read:
         frame = pd.DataFrame({c: read(c) for c in columns})
-    write_json(out / "waveforms.json", record_waveforms(study, frame, k, seed))
+    data = record_waveforms(study, frame, k, seed)
+    write_json(out / "waveforms.json", data)
+    if len(data["samples"]) < k:  # the run had fewer units (or converged ones) than asked for
+        sys.stderr.write(f"tolerance: note: {out / 'waveforms.json'} holds "
+                         f"{len(data['samples'])} of the {k} waveforms asked for: the run has "
+                         f"{len(frame)} samples besides the nominal point\n")
 
 
 def _analysis_out(args, study, suffix: str) -> Path:
