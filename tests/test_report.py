@@ -465,3 +465,18 @@ def test_infinite_metric_values_are_counted_and_named(write_study, tmp_path):
     note = report.infinite_note(s)
     assert "m 2 of 5" in note and "k " not in note
     assert report.infinite_note({"samples": 5, "metrics": {"k": s["metrics"]["k"]}}) is None
+
+
+def test_whatif_folder_without_its_samples_says_why_there_are_no_overlays(tmp_path):
+    # the report removed the old overlay plots and drew none, without a word
+    from tolerance.cli import main
+
+    out = tmp_path / "w"
+    assert main(["whatif", "--samples", "40", "--pin", "RB=max", "--out", str(out),
+                 "--quiet"]) in (0, 1)
+    assert any((out / "plots").glob("whatif-*.png"))
+    (out / "whatif_samples.parquet").unlink()
+    assert main(["report", str(out)]) == 0
+    assert not any((out / "plots").glob("whatif-*.png"))
+    md = (out / "report.md").read_text(encoding="utf-8")
+    assert "whatif_samples.parquet is missing from this folder" in md

@@ -747,7 +747,8 @@ def _summary_blocks(summary: dict) -> list[Block]:
 
 
 def build_document(summary: dict | None, extras: dict,
-                   figures: list[tuple[str, bytes, str]]) -> list[Block]:
+                   figures: list[tuple[str, bytes, str]],
+                   section_notes: dict[str, str] | None = None) -> list[Block]:
     """The report as a list of blocks, shared by the HTML and the Markdown renderer.
 
     Parameters
@@ -758,6 +759,8 @@ def build_document(summary: dict | None, extras: dict,
         File name -> parsed JSON of the analysis files present.
     figures : list of (str, bytes, str)
         Relative PNG path, PNG bytes and caption of every plot.
+    section_notes : dict, optional
+        Analysis file name -> a sentence shown under its section heading (what is missing).
 
     Returns
     -------
@@ -781,6 +784,8 @@ def build_document(summary: dict | None, extras: dict,
     for fname, section in EXTRA_FILES.items():
         if fname in extras:
             doc.append(Block("h2", f"{section} ({fname})"))
+            if section_notes and fname in section_notes:
+                doc.append(Block("note", section_notes[fname]))
             data = extras[fname]
             if isinstance(data, dict) and "pinned_values" in data:
                 # the pins in their units stand for the SI values (K, not degC) kept for
@@ -996,7 +1001,12 @@ def write_reports(folder, jobs: int = 1) -> dict:
         made += _waveform_plots(waveforms, plot_dir)
     paths = render_plots(made, jobs)
     figures = [(f"{PLOTS_DIR}/{p.name}", p.read_bytes(), t.caption) for p, t in zip(paths, made)]
-    doc = build_document(summary, extras, figures)
+    notes = {}
+    if "whatif.json" in extras and not (folder / WHATIF_SAMPLES).is_file():
+        notes["whatif.json"] = (f"{WHATIF_SAMPLES} is missing from this folder, so the overlay "
+                                "plots of the two runs are not drawn; run the what-if again to "
+                                "have them.")
+    doc = build_document(summary, extras, figures, notes)
     title = doc[0].text
     html_path, md_path = folder / HTML_FILE, folder / MD_FILE
     write_atomic(html_path, render_html(doc, title))
