@@ -418,6 +418,55 @@ def test_mutated_studies_never_crash(table, key, value):
     assert res.summary["samples"] == 20
 
 
+# what an engineer's typo or a script could put in an analysis command's options (common
+# practice, no source); an earlier hand probe of these found tracebacks and folders made
+# before a refusal
+PIN_SPECS = ["min", "max", "nominal", "typ", "p0", "p50", "p99.9", "p100", "p-1", "pnan", "",
+             "1 V", "-5 V", "0", "0 V", "1e400", "1e-300", "abc", "3.3 mV", "25 degC", "5%"]
+VARY_SPECS = ["E12:0.47..2.2", "E6:1..1.5", "E24:2.2..1", "E3:1..1", "E7:1..2", "E12:0..1",
+              "E12:-1..1", "E192:0.1..10", "E12:1e300..1e308", "E12:1", "", "E12:1V..2V"]
+
+
+@settings(max_examples=40, deadline=None,
+          suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
+@given(command=st.sampled_from(["whatif", "choose", "sensitivity"]),
+       names=st.lists(st.sampled_from(["x1", "x2", "x9", "", "X1"]), min_size=1, max_size=3),
+       pins=st.lists(st.sampled_from(PIN_SPECS), min_size=3, max_size=3),
+       varies=st.lists(st.sampled_from(VARY_SPECS), min_size=3, max_size=3),
+       tradeoff=st.sampled_from([None, "y,z", "y", "y,y", "q,z", ",", "", "z, y"]),
+       sobol=st.sampled_from(["0", "1", "2", "32", "64", "100", "-64"]))
+def test_fuzzed_analysis_options_never_crash(write_study, capsys, command, names, pins, varies,
+                                             tradeoff, sobol):
+    # common practice, no source: whatever the options, a command ends with 0 or 1 and a
+    # report, or with 2, one line naming what is wrong, and no output folder
+    import tempfile
+
+    from tolerance.cli import main
+
+    study = write_study(LINEAR.format(samples=30, chunk=30))
+    with tempfile.TemporaryDirectory() as tmp:
+        out = Path(tmp) / "o"
+        argv = [command, str(study), "--out", str(out), "--quiet"]
+        if command == "whatif":
+            argv += [a for n, p in zip(names, pins) for a in ("--pin", f"{n}={p}")]
+        elif command == "choose":
+            argv += [a for n, v in zip(names, varies) for a in ("--vary", f"{n}={v}")]
+            argv += [] if tradeoff is None else ["--tradeoff", tradeoff]
+        else:
+            argv += ["--sobol-samples", sobol]
+        try:
+            code = main(argv)
+        except SystemExit as exc:  # argparse's own refusals
+            code = exc.code
+        err = capsys.readouterr().err
+        assert code in (0, 1, 2), (argv, err)
+        if code == 2:
+            assert err.startswith("tolerance") and err.count("\n") == 1, (argv, err)
+            assert not out.exists(), argv
+        else:
+            assert (out / "report.md").is_file() and not err, (argv, err)
+
+
 SHIPPED = sorted((ROOT / "studies").glob("*.toml"))
 # values an engineer's typo or a generator could put anywhere in a study (common practice,
 # no source): zero, negative, non-finite, huge, empty, the wrong type or unit, inverted ranges

@@ -48,6 +48,13 @@ def parse_vary(study: Study, text: str) -> tuple[str, np.ndarray]:
         raise UsageError(f"--vary {name}={spec}: {exc}") from None
     if values.size == 0:
         raise UsageError(f"--vary {name}={spec}: no {series} value lies in that range")
+    # each candidate scales the parameter's spread by value / nominal: its extremes must stay
+    # within double precision (about 1.8e308), as a value in the study file must
+    with np.errstate(over="ignore"):
+        reach = max(abs(p.low), abs(p.high)) * (float(values[-1]) / p.nominal)
+    if not math.isfinite(reach):
+        raise UsageError(f"--vary {name}={spec}: the candidates scale {name} beyond double "
+                         "precision (about 1.8e308); narrow the range")
     if values.size > MAX_CANDIDATES:
         raise UsageError(f"--vary {name}={spec}: {values.size} candidates; narrow the range "
                          f"(at most {MAX_CANDIDATES})")

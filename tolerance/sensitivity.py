@@ -578,13 +578,16 @@ def _best_threshold(x: np.ndarray, failed: np.ndarray, side: str) -> tuple[float
     j = tpr - fpr
     best = int(np.argmax(j))
     kb = int(k[best])
-    span = float(xs[-1] - xs[0]) or 1.0
+    # in Python floats, halves taken first: values near the end of double precision (a
+    # part swept up to 1e308) must not overflow on the way to a threshold between them
+    lo, hi = float(xs[0]), float(xs[-1])
+    span = (0.5 * hi - 0.5 * lo) or 0.5
     if kb == 0:
-        thr = float(xs[0]) - 0.5 * span / xs.size
+        thr = lo - span / xs.size
     elif kb == xs.size:
-        thr = float(xs[-1]) + 0.5 * span / xs.size
+        thr = hi + span / xs.size
     else:
-        thr = 0.5 * float(xs[kb - 1] + xs[kb])
+        thr = 0.5 * float(xs[kb - 1]) + 0.5 * float(xs[kb])
     return thr, float(j[best])
 
 

@@ -412,9 +412,12 @@ def _scaled(mantissa: np.ndarray, exponent: np.ndarray) -> np.ndarray:
     """``mantissa * 10**exponent`` correctly rounded for integer mantissas and exponents."""
     mantissa = np.asarray(mantissa, dtype=float)
     exponent = np.asarray(exponent, dtype=np.int64)
-    pos = np.power(10.0, np.maximum(exponent, 0))
-    neg = np.power(10.0, np.maximum(-exponent, 0))
-    return np.where(exponent >= 0, mantissa * pos, mantissa / neg)
+    # beyond double precision (a range up to 1e308) a power of ten is inf, its value inf or
+    # 0, and the caller's range test drops it: no overflow warning for that
+    with np.errstate(over="ignore"):
+        pos = np.power(10.0, np.maximum(exponent, 0))
+        neg = np.power(10.0, np.maximum(-exponent, 0))
+        return np.where(exponent >= 0, mantissa * pos, mantissa / neg)
 
 
 def preferred_values(series: str, low: float, high: float) -> np.ndarray:
