@@ -219,6 +219,11 @@ class ResistorState(LoadState):
         """``i R(T)`` [V] (exact)."""
         return _arr(current) * self.resistance
 
+    def metrics(self, v_on, i_on):
+        """``load_power`` [W]: ``v i`` in the on-state (with a PWM drive the rating, of the
+        average, is met at or below it)."""
+        return {"load_power": _arr(v_on) * _arr(i_on)}
+
 
 class LampState(LoadState):
     """Tungsten filament lamp, steady-state (thermal equilibrium) current-voltage law.
@@ -389,6 +394,21 @@ class CoilState(LoadState):
         """Magnetic energy ``0.5 L I^2`` [J] at coil current ``current`` [A]."""
         return 0.5 * self.inductance * _arr(current) ** 2
 
+    def decay_time(self, current, fraction: float, reverse_voltage=None) -> np.ndarray:
+        """Time for the winding's current to fall from ``current`` [A] to ``fraction`` of it
+        once the switch is off, the coil held at the clamp's reverse voltage [s].
+
+        ``L di/dt = -(R i + V_c)`` gives ``i(t) = (i_0 + V_c/R) exp(-t/tau) - V_c/R`` with
+        ``tau = L/R`` (first-order circuit, any circuits textbook), so the time to
+        ``f i_0`` is ``tau ln((i_0 + V_c/R) / (f i_0 + V_c/R))``. ``reverse_voltage``
+        replaces the clamp's (the switch's breakdown less the supply without a clamp).
+        """
+        vc = self.clamp_voltage if reverse_voltage is None else _arr(reverse_voltage)
+        i0 = np.abs(_arr(current))
+        hold = vc / self.resistance
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return self.time_constant * np.log((i0 + hold) / (fraction * i0 + hold))
+
     def turn_off_peak_voltage(self, supply_voltage) -> np.ndarray:
         """Switch voltage while the clamp conducts, ``V_supply + V_clamp`` [V] (inf: no clamp)."""
         return _arr(supply_voltage) + self.clamp_voltage
@@ -543,12 +563,18 @@ class ResistorLoad(LoadSpec):
     """A resistor (heater, or any resistive load), see :class:`ResistorState`."""
 
     kind = "resistor"
-    METRICS: dict[str, MetricInfo] = {}
+    METRICS = {"load_power": MetricInfo("W", "dissipation of the resistive load in the "
+                                             "on-state")}
 
     def __init__(self, parameters, tempco: float, power_rating: float | None):
         super().__init__(parameters)
         self.tempco = tempco
         self.power_rating = power_rating
+        if power_rating is not None:
+            # the key was read and then used by nothing: a heater above its rating passed
+            self.criteria = [Criterion("load_rating", "load_power", maximum=power_rating,
+                                       source="rating",
+                                       description="load within its power rating")]
 
     def at(self, samples, temperature, supply_voltage):
         t, vs, r = self._inputs(samples, temperature, supply_voltage, ["load.resistance"])
