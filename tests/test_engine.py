@@ -72,13 +72,44 @@ def test_lognormal_between_min_and_max():
     assert_allclose(np.median(x), 200.0, rtol=0.005)
 
 
-def test_lognormal_with_typical_keeps_both_limits_at_or_beyond_k_sigma():
-    d = dist.LogNormal(100.0, 400.0, typical=150.0)
-    assert_allclose(d.nominal, 150.0)
-    z_hi = (np.log(400) - np.log(150)) / d.sigma_ln
-    z_lo = (np.log(150) - np.log(100)) / d.sigma_ln
-    assert_allclose(max(z_hi, z_lo), 3.0)
-    assert min(z_hi, z_lo) < 3.0
+@pytest.mark.parametrize("lo, typ, hi", [(100.0, 200.0, 300.0), (40.0, 80.0, 200.0),
+                                          (100.0, 150.0, 400.0)])
+def test_lognormal_with_typical_puts_each_limit_at_three_sigma(lo, typ, hi):
+    # a datasheet's min/typ/max of h_FE: one spread for both sides (the wider) put 4 % of a
+    # 100/200/300 class above its maximum (up to 539) and 1.2 % of a 40/80/200 class below
+    # its minimum; each side has its own spread now (two-piece lognormal), so both limits
+    # sit at 3 sigma: scipy.stats.norm.cdf(-3) of the units beyond each, half below typ
+    d = dist.LogNormal(lo, hi, typical=typ)
+    assert_allclose(d.nominal, typ)
+    x = d.ppf(np.random.default_rng(5).random(2_000_000))
+    assert_allclose([np.mean(x < lo), np.mean(x > hi)], sps.norm.cdf(-3), rtol=0.08)
+    assert_allclose(np.mean(x < typ), 0.5, atol=2e-3)
+    assert_allclose(d.cdf(np.array([lo, typ, hi])), [sps.norm.cdf(-3), 0.5, sps.norm.cdf(3)],
+                    rtol=1e-12)
+    assert_allclose(d.cdf(d.ppf(np.array([0.01, 0.3, 0.9]))), [0.01, 0.3, 0.9], rtol=1e-12)
+
+
+def test_normal_range_with_typical_keeps_its_limits():
+    # {min = -20 degC, max = 55 degC, typ = 20 degC, distribution = "normal"} was one normal
+    # with the wider side's spread, listed (and taken by the worst case) as -20 .. 60 degC
+    from tolerance.study import load_study
+
+    text = LINEAR_TYP.replace("X1", '{min = "-2 V", max = "5.5 V", typ = "2 V", '
+                                    'distribution = "normal"}')
+    p = load_study("typ.toml", text=text).parameter("x1")
+    assert (p.low, p.nominal, p.high) == (-2.0, 2.0, 5.5)
+    x = p.distribution.ppf(np.random.default_rng(6).random(1_000_000))
+    # scipy.stats.norm.cdf(-3) beyond each limit, half below the typical value
+    assert_allclose([np.mean(x < -2.0), np.mean(x > 5.5)], sps.norm.cdf(-3), rtol=0.1)
+    assert_allclose(np.mean(x < 2.0), 0.5, atol=2e-3)
+
+
+LINEAR_TYP = """
+stage = "linear_test"
+[inputs]
+x1 = X1
+x2 = "1 V"
+"""
 
 
 def test_discrete_weights():
@@ -278,12 +309,45 @@ def test_study_limits_replace_stage_default(linear):
     assert len(study.criteria) == 2
 
 
+def test_a_one_sided_study_limit_keeps_the_other_side_of_the_default(linear, write_study):
+    # common practice, no source: a maximum on the saturation metric removed the default's
+    # minimum, so a unit that never saturated passed ("always present" in the README)
+    study = linear("random", '[limits]\ny = {max = "9 V"}\n')
+    (c,) = [c for c in study.criteria if c.metric == "y"]
+    assert (c.name, c.minimum, c.maximum, c.source) == ("y_positive", 0.0, 9.0, "stage")
+    # on a real stage: the demo with a weak drive (RB 47k) never saturates; with only a
+    # maximum on drive_margin in its [limits] every unit must still fail saturation
+    from tolerance.api import demo_text
+
+    text = demo_text().replace('drive_margin = {min = 1.2, description = "fully on with 20 % '
+                               'overdrive"}', "drive_margin = {max = 50}")
+    text = text.replace('value = "150R"', 'value = "47k"', 1)
+    demo = load_study(write_study(text, "weak.toml"))
+    s = run(demo, samples=200).summary["criteria"]["saturation"]
+    assert s["limit"] == {"min": 1.0, "max": 50.0} and s["failures"] == 200
+
+    with pytest.raises(StudyError, match="limits.y.max.*window is empty"):
+        linear("random", '[limits]\ny = {max = "-1 V"}\n')
+
+
 def test_correlation_between_parameters(linear):
     study = linear("random", '[[correlation]]\nparameters = ["x1", "x2"]\ncoefficient = 0.9\n')
     df = run(study, samples=20_000).samples
     # rank correlation of a Gaussian copula: rho_s = (6/pi) asin(r/2) (Kruskal 1958)
     assert_allclose(sps.spearmanr(df["x1"], df["x2"]).statistic,
                     6 / np.pi * np.arcsin(0.45), atol=0.01)
+
+
+def test_a_pair_correlated_twice_or_a_parameter_listed_twice_is_refused(linear):
+    # the second of two entries on one pair silently won (0.8, then -0.5: measured -0.50),
+    # and ["x1", "x1"] was accepted and did nothing
+    twice = ('[[correlation]]\nparameters = ["x1", "x2"]\ncoefficient = 0.8\n'
+             '[[correlation]]\nparameters = ["x2", "x1"]\ncoefficient = -0.5\n')
+    with pytest.raises(StudyError, match=r"correlation\[1\]\.parameters: 'x2' and 'x1' are "
+                                         r"already correlated in correlation\[0\]"):
+        linear("random", twice)
+    with pytest.raises(StudyError, match=r"correlation\[0\]\.parameters: 'x1' is listed twice"):
+        linear("random", '[[correlation]]\nparameters = ["x1", "x1"]\ncoefficient = 0.5\n')
 
 
 def test_engine_errors_name_key(linear):
@@ -298,3 +362,24 @@ def test_engine_errors_name_key(linear):
 
     with pytest.raises(StudyError, match=r"inputs\.x3: unknown key"):
         load_text("s.toml", text=text)
+
+
+def test_a_normal_spread_that_reaches_zero_is_refused_for_a_positive_quantity():
+    # a 50 % tolerance at 1 sigma sampled 2 % negative resistors, solved as converged with
+    # negative dissipations that passed their ratings; 6 sigma is about 1e-9 of the units
+    # (scipy.stats.norm.cdf(-6) = 9.9e-10)
+    from tolerance.api import demo_text
+    from tolerance.study import load_study as load_text
+
+    base = demo_text()
+    assert 'tolerance = "5%"' in base
+    for tol, sigmas, refused in (("50%", 1, True), ("60%", 3, True), ("45%", 3, False),
+                                 ("50%", 3, True)):
+        text = base.replace('tolerance = "5%"', f'tolerance = "{tol}"\nsigmas = {sigmas}', 1)
+        if refused:
+            with pytest.raises(StudyError, match="parts.RB.tolerance: this normal spread "
+                                                 "reaches zero within 6 sigma"):
+                load_text("wide.toml", text=text)
+        else:
+            p = load_text("wide.toml", text=text).parameter("RB")
+            assert p.distribution.ppf(np.array([1e-9]))[0] > 0

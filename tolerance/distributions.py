@@ -200,14 +200,69 @@ class TruncatedNormal(Distribution):
         return f"normal at {self.sigmas:g} sigma, truncated at the tolerance"
 
 
+def _split_ppf(centre, sigma_low, sigma_high, u):
+    """Inverse CDF of a two-piece normal: below the centre the spread ``sigma_low``, above it
+    ``sigma_high``, half the probability on each side."""
+    z = special.ndtri(_clip(np.asarray(u, dtype=float)))
+    return centre + np.where(z < 0, sigma_low, sigma_high) * z
+
+
+def _split_cdf(centre, sigma_low, sigma_high, x):
+    d = np.asarray(x, dtype=float) - centre
+    # a side without spread (the typical value at a limit) is a step there
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = np.where(d == 0, 0.0, d / np.where(d < 0, sigma_low, sigma_high))
+    return special.ndtr(z)
+
+
+@dataclass(frozen=True)
+class SplitNormal(Distribution):
+    """Normal about a typical value with a spread of its own on each side, so that the
+    minimum and the maximum both sit at ``sigmas`` sigma (a two-piece normal: half the
+    probability on each side of ``centre``, which is its median and mode).
+
+    A range with a typical value off its middle (``{min, max, typ}``) is not symmetric; one
+    spread for both sides put one limit at fewer than ``sigmas`` sigma and moved the
+    worst-case bounds beyond the stated limit.
+    """
+
+    centre: float
+    sigma_low: float
+    sigma_high: float
+    sigmas: float = 3.0
+    kind = "normal"
+
+    @property
+    def nominal(self) -> float:
+        return self.centre
+
+    @property
+    def low(self) -> float:
+        return self.centre - self.sigmas * self.sigma_low
+
+    @property
+    def high(self) -> float:
+        return self.centre + self.sigmas * self.sigma_high
+
+    def ppf(self, u):
+        return _split_ppf(self.centre, self.sigma_low, self.sigma_high, u)
+
+    def cdf(self, x):
+        return _split_cdf(self.centre, self.sigma_low, self.sigma_high, x)
+
+    def describe(self) -> str:
+        return f"normal about the typical value, min and max each at {self.sigmas:g} sigma"
+
+
 @dataclass(frozen=True)
 class LogNormal(Distribution):
     """Lognormal between a minimum and a maximum placed at -/+ ``sigmas`` sigma of ln(x).
 
     The usual description of current gain between a datasheet's minimum and maximum: the
     median is the geometric mean sqrt(min * max) unless a typical value is given, in which case
-    the median is the typical value and the wider side sets sigma (so both limits stay at or
-    beyond ``sigmas`` sigma).
+    the median is the typical value and each side of it has the spread that puts its own limit
+    at ``sigmas`` sigma of ln(x) (a two-piece lognormal: half the units below the typical
+    value, as many below the minimum as above the maximum, 0.135 % each at 3 sigma).
     """
 
     lower: float
@@ -223,9 +278,14 @@ class LogNormal(Distribution):
         return float(np.sqrt(self.lower * self.upper))
 
     @property
-    def sigma_ln(self) -> float:
-        m = np.log(self.median)
-        return float(max(m - np.log(self.lower), np.log(self.upper) - m) / self.sigmas)
+    def sigma_low_ln(self) -> float:
+        """Spread of ln(x) below the median."""
+        return float((np.log(self.median) - np.log(self.lower)) / self.sigmas)
+
+    @property
+    def sigma_high_ln(self) -> float:
+        """Spread of ln(x) above the median."""
+        return float((np.log(self.upper) - np.log(self.median)) / self.sigmas)
 
     @property
     def nominal(self) -> float:
@@ -240,14 +300,13 @@ class LogNormal(Distribution):
         return self.upper
 
     def ppf(self, u):
-        z = special.ndtri(_clip(np.asarray(u, dtype=float)))
-        return np.exp(np.log(self.median) + self.sigma_ln * z)
+        return np.exp(_split_ppf(np.log(self.median), self.sigma_low_ln, self.sigma_high_ln, u))
 
     def cdf(self, x):
         x = np.asarray(x, dtype=float)
         with np.errstate(divide="ignore"):
-            z = (np.log(np.maximum(x, 0.0)) - np.log(self.median)) / self.sigma_ln
-        return special.ndtr(z)
+            return _split_cdf(np.log(self.median), self.sigma_low_ln, self.sigma_high_ln,
+                              np.log(np.maximum(x, 0.0)))
 
     def describe(self) -> str:
         return f"lognormal, min/max at {self.sigmas:g} sigma"
