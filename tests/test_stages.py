@@ -4,8 +4,10 @@ relations, monotonic behaviour, failure flagging."""
 from __future__ import annotations
 
 import math
+import re
 import pickle
 import textwrap
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -842,3 +844,43 @@ def test_every_load_kind_through_every_stage(tmp_path, stage_text, load_table):
     assert full["converged"].all()
     for key in study.stage.metrics:
         assert full[key].shape == (300,)
+
+
+@pytest.mark.parametrize("study_name, table, line, key", [
+    ("engine_bay_heater_darlington.toml", "Q1", 'heatsink = "2 K/W"', "parts.Q1.heatsink"),
+    ("engine_bay_heater_darlington.toml", "Q1", 'device = "small_signal_npn"',
+     "parts.Q1.device"),
+    ("unclamped_valve_single.toml", "Q1", 'pulse_energy = "1 uJ"', "parts.Q1.pulse_energy"),
+    ("beacon_lamp_darlington.toml", "Q1", 'pulse_energy = "1 J"', "parts.Q1.pulse_energy"),
+])
+def test_part_keys_that_would_have_no_effect_are_refused(study_name, table, line, key):
+    # common practice, no source: a key the stage cannot use was accepted and ignored (a
+    # heatsink on the driver of a one-die pair, a single-pulse rating on a part no check uses)
+    from tolerance.study import StudyError
+    from tolerance.study import load_study as load_text
+
+    root = Path(__file__).resolve().parent.parent
+    text = (root / "studies" / study_name).read_text(encoding="utf-8")
+    header = f"[parts.{table}]\n"
+    text = text.replace(header, header + line + "\n", 1) if header in text else (
+        text + "\n" + header + line + "\n")
+    with pytest.raises(StudyError, match=re.escape(key)):
+        load_text("edited.toml", text=text)
+
+
+def test_a_resistive_load_rating_is_checked():
+    # [load] power_rating was read and used by nothing: a 2 W heater on a 0.5 W rating passed
+    from tolerance.api import demo_text, run
+    from tolerance.study import load_study as load_text
+
+    text = demo_text().replace('kind = "resistor"\n', 'kind = "resistor"\npower_rating = "0.5 W"\n', 1)
+    res = run(load_text("rated.toml", text=text), samples=100)
+    df = res.samples
+    # Joule's law on the load's own voltage and current (exact)
+    np.testing.assert_allclose(df["load_power"], df["load_voltage"] * df["load_current"],
+                               rtol=1e-12)
+    c = res.summary["criteria"]["load_rating"]
+    assert c["limit"]["max"] == 0.5 and c["failures"] == int((df["load_power"] > 0.5).sum())
+    assert c["failures"] == 100  # about 2 W in every unit
+    plain = load_text("plain.toml", text=demo_text())
+    assert "load_rating" not in {k.name for k in plain.criteria}

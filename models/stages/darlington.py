@@ -226,6 +226,14 @@ def configure(reader):
             raise q2_table.error("device", f"'{device}' is not a monolithic Darlington of the "
                                            f"library (one of: {', '.join(choices)})")
         internal1, internal2 = _read_internal(q2_table, entry, "Q2")
+        q1_table = parts.table("Q1")
+        for key in ("device", "heatsink", "case_to_sink", "pulse_energy"):
+            if q1_table.has(key):
+                # one package: the driver die is the library entry's, and the package's
+                # mounting is given once, on [parts.Q2] (these were accepted and ignored)
+                raise q1_table.error(key, "a monolithic Darlington is one part: its driver "
+                                          "die comes with [parts.Q2]'s device, and its "
+                                          "mounting is given on [parts.Q2]")
         q1 = read_transistor(parts, "Q1", "Darlington driver", polarity="npn",
                              base_figures=entry.dies["driver"],
                              supply_minimum=env.supply_minimum, required=False)
