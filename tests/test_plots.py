@@ -304,3 +304,16 @@ def test_write_reports_plots_every_limited_metric(result):
     assert {f"hist-{m}.png" for m in limited} <= names
     for p in paths["plots"]:
         assert p.parent == result.folder / "plots" and p.read_bytes()[:4] == b"\x89PNG"
+
+
+def test_a_dollar_sign_in_a_label_is_drawn_as_written(tmp_path):
+    # a study titled "Heater switch, $10 % cheaper than the $11 module" ended the run in a
+    # traceback from matplotlib's formula parser after its results were written
+    rng = np.random.default_rng(0)
+    label = "Heater switch, $10 % cheaper than the $11 module"
+    fig = plots.whatif_overlay(rng.normal(1, 0.1, 50), rng.normal(1.1, 0.1, 50), label, "V",
+                               {"max": 1.3, "description": label})
+    plots.save(fig, tmp_path / "dollar.png")
+    assert (tmp_path / "dollar.png").read_bytes()[:4] == b"\x89PNG"
+    assert any(t.get_text() == f"What-if: {label}" for t in fig.findobj(
+        lambda a: hasattr(a, "get_text")))

@@ -20,6 +20,7 @@ import numpy as np
 import pandas as pd
 import seaborn as sns
 from matplotlib.figure import Figure
+from matplotlib.text import Text
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from matplotlib.ticker import FuncFormatter
@@ -698,6 +699,10 @@ def save(fig: Figure, path) -> Path:
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
+    # every text is shown as written: a "$" in a study's title or a limit's description began
+    # matplotlib's formula notation, garbled the text or raised while the figure was drawn
+    for text in fig.findobj(Text):
+        text.set_parse_math(False)
     with atomic_path(path) as tmp:
         fig.savefig(tmp, dpi=DPI, format="png", metadata={"Software": None})
     return path
