@@ -884,3 +884,17 @@ def test_a_resistive_load_rating_is_checked():
     assert c["failures"] == 100  # about 2 W in every unit
     plain = load_text("plain.toml", text=demo_text())
     assert "load_rating" not in {k.name for k in plain.criteria}
+
+
+def test_breakdown_rating_names_the_part_that_sets_it():
+    # the beacon pair's limit is its driver's 40 V (the output has 60 V), but the criterion
+    # said "below V_(BR)CEO of Q2"
+    from tolerance.api import load_study
+
+    study = load_study(Path(__file__).resolve().parent.parent / "studies"
+                       / "beacon_lamp_darlington.toml")
+    (c,) = [c for c in study.criteria if c.name == "breakdown"]
+    ratings = {n: p.device.datasheet.breakdown_vceo for n, p in study.stage.transistors().items()}
+    weakest = min(ratings, key=ratings.get)
+    assert c.maximum == ratings[weakest] and c.description.endswith(f"of {weakest}")
+    assert ratings["Q1"] < ratings["Q2"] and weakest == "Q1"

@@ -169,8 +169,11 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
     crit.append(Criterion("thermal_runaway", "thermal_runaway", maximum=0.0, source="rating",
                           description="electro-thermal loop settles"))
     out = output_device(stage)
-    crit.append(Criterion("breakdown", "vce_peak", maximum=min(setup.breakdown.values()),
-                          source="rating", description=f"below V_(BR)CEO of {out}"))
+    # the lowest V_(BR)CEO of the parts across the switch (a Darlington's driver sees the
+    # output's collector too), named for the part that sets it (it named the output always)
+    weakest = min(setup.breakdown, key=setup.breakdown.get)
+    crit.append(Criterion("breakdown", "vce_peak", maximum=setup.breakdown[weakest],
+                          source="rating", description=f"below V_(BR)CEO of {weakest}"))
     crit.append(Criterion("collector_current", "peak_current", maximum=setup.ic_max[out],
                           source="rating", description=f"within I_C max of {out}"))
     if stage.load.kind == "lamp":
