@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import json
 
+import re
+
 import numpy as np
 import pytest
 from numpy.testing import assert_allclose
@@ -383,3 +385,21 @@ def test_a_normal_spread_that_reaches_zero_is_refused_for_a_positive_quantity():
         else:
             p = load_text("wide.toml", text=text).parameter("RB")
             assert p.distribution.ppf(np.array([1e-9]))[0] > 0
+
+
+@pytest.mark.parametrize("x1, key, told", [
+    ('{min = "-1 V", max = "3 V", sigmas = 6}', "inputs.x1.sigmas", "no meaning for a uniform"),
+    ('{min = "-1 V", max = "3 V", typ = "1 V", nominal = "0 V"}', "inputs.x1.nominal",
+     "typ or nominal, not both"),
+    ('{nominal = "1 V", tolerance = "10%", distribution = "fixed"}', "inputs.x1.distribution",
+     "takes no tolerance"),
+    ('{nominal = "1 V", tolerance = "10%", distribution = "uniform", sigmas = 2}',
+     "inputs.x1.sigmas", "no meaning for a uniform"),
+])
+def test_keys_a_distribution_would_ignore_are_refused(write_study, x1, key, told):
+    # common practice, no source: each was accepted and silently ignored (the tolerance
+    # dropped, typ overridden by nominal, sigmas without effect)
+    text = LINEAR.format(sampler="random").replace('x1 = {min = "-1 V", max = "3 V"}',
+                                                   f"x1 = {x1}")
+    with pytest.raises(StudyError, match=re.escape(key) + ".*" + told):
+        load_study(write_study(text))

@@ -299,6 +299,9 @@ class Reader:
             self._check_range("max", hi, unit, positive, minimum, maximum)
             if lo > hi:
                 raise self.error("min", f"min ({lo:g}) is above max ({hi:g})")
+            if self.has("typ") and self.has("nominal"):
+                raise self.error("nominal", "give typ or nominal, not both (they mean the same "
+                                            "here)")
             typ = None
             for tkey in ("typ", "nominal"):
                 if self.has(tkey):
@@ -306,6 +309,7 @@ class Reader:
                     if not lo <= typ <= hi:
                         raise self.error(tkey, f"{typ:g} lies outside min..max ({lo:g}..{hi:g})")
             kind = kind or "uniform"
+            self._check_sigmas_used(kind)
             if lo == hi or kind == "fixed":
                 return dist.Fixed(typ if typ is not None else 0.5 * (lo + hi))
             if kind == "uniform":
@@ -337,8 +341,11 @@ class Reader:
             if kind not in (None, "fixed"):
                 raise self.error("tolerance", f"is required for a {kind} distribution")
             return dist.Fixed(nominal)
+        if kind == "fixed":
+            raise self.error("distribution", '"fixed" takes no tolerance; remove one of them')
         half = self._tolerance(nominal, unit)
         kind = kind or default_distribution
+        self._check_sigmas_used(kind)
         lo, hi = nominal - half, nominal + half
         if half == 0 or kind == "fixed":
             return dist.Fixed(nominal)
@@ -364,6 +371,13 @@ class Reader:
     #: common practice, no source): a 50 % tolerance at 1 sigma gave 2 % negative resistors,
     #: solved as converged, with negative dissipations that passed their ratings.
     NORMAL_TAIL_SIGMAS = 6.0
+
+    def _check_sigmas_used(self, kind: str) -> None:
+        """``sigmas`` places the limits of a normal or lognormal spread; elsewhere it was
+        accepted and ignored."""
+        if self.has("sigmas") and kind not in ("normal", "truncnormal", "lognormal"):
+            raise self.error("sigmas", f"has no meaning for a {kind} distribution (it places "
+                                       "the limits of a normal or lognormal spread)")
 
     def _check_normal_tail(self, key: str, centre: float, sigma: float, unit: str,
                            positive: bool, minimum: float | None) -> None:
