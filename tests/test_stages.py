@@ -898,3 +898,45 @@ def test_breakdown_rating_names_the_part_that_sets_it():
     weakest = min(ratings, key=ratings.get)
     assert c.maximum == ratings[weakest] and c.description.endswith(f"of {weakest}")
     assert ratings["Q1"] < ratings["Q2"] and weakest == "Q1"
+
+
+HEATSINKED = """
+stage = "single"
+[supply]
+voltage = "12 V"
+[drive]
+high = "5 V"
+[parts.RB]
+value = "1k5"
+[parts.Q1]
+device = "medium_power_npn"
+hfe = 100
+icbo = "100 nA"
+{mount}
+[load]
+kind = "resistor"
+resistance = "20 ohm"
+"""
+
+
+def test_a_heatsinked_part_is_rated_on_its_case():
+    # a medium-power part on a 5 K/W sink dissipating 1.8 W at a 53 degC junction failed its
+    # power rating (stress 1.44): the free-air P_tot of 1.25 W was derated on the ambient.
+    # On a heatsink the rating is the case rating (T_j max - 25 degC) / theta_jc derated on
+    # the case temperature (datasheet practice), i.e. P theta_jc / (T_j max - T_case)
+    from tolerance.api import run
+    from tolerance.study import load_study as load_text
+
+    study = load_text("sink.toml", text=HEATSINKED.format(mount='heatsink = "5 K/W"'))
+    ds = study.stage.transistors()["Q1"].device.datasheet
+    r = run(study, samples=1).samples.iloc[0]
+    p, tj = r["power_output"], r["tj_output"]
+    t_case = tj - ds.theta_jc * p
+    assert r["power_stress_output"] == pytest.approx(p * ds.theta_jc / (ds.tj_max - t_case),
+                                                     rel=1e-9)
+    assert r["power_stress_output"] < 0.3 and r["pass.power_rating_output"]
+    # in free air the stated P_tot derated on the ambient still applies
+    free = run(load_text("free.toml", text=HEATSINKED.format(mount="")), samples=1)
+    f = free.samples.iloc[0]
+    assert f["power_stress_output"] == pytest.approx(f["power_output"] / ds.power_rating,
+                                                     rel=1e-9)  # at 25 degC, full rating

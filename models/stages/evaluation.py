@@ -85,6 +85,9 @@ class ThermalSetup:
         self.margin = margin
         self.self_heating = self_heating
         self.pulse_energy = dict(pulse_energy or {})
+        #: junction-to-case resistance of each part on a heatsink, whose rating is then
+        #: referred to its case (read_thermal)
+        self.case_theta: dict[str, float] = {}
 
 
 def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
@@ -102,6 +105,7 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
     self_heating = table.boolean("self_heating", default=True)
     margin = table.quantity("tj_margin", "K", default=0.0, minimum=0.0, maximum=100.0)
     theta, tj_max, rating, breakdown, ic_max, pulse_energy = {}, {}, {}, {}, {}, {}
+    case_theta: dict[str, float] = {}
     for name, part in stage.transistors().items():
         ds = part.device.datasheet
         t = parts_reader.table(name)
@@ -111,6 +115,7 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
                 raise t.error("heatsink", "needs the part's theta_jc (junction to case)")
             cs = t.quantity("case_to_sink", "K/W", default=0.5, minimum=0.0)
             theta[name] = float(thermal.heatsink_resistance(ds.theta_jc, cs, sink))
+            case_theta[name] = float(ds.theta_jc)
         else:
             if t.has("case_to_sink"):
                 raise t.error("case_to_sink", "only applies with a heatsink")
@@ -125,10 +130,17 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
             pulse_energy[name] = pulse
         tj_max[name] = float(ds.tj_max)
         rating[name] = float(ds.power_rating)
+        if name in case_theta:
+            # on a heatsink the free-air P_tot does not apply: the rating is the case
+            # rating, P_tot(25 degC case) = (T_j max - 25 degC) / theta_jc, derated on the
+            # case temperature (datasheet practice for a mounted part; a 1.25 W free-air
+            # rating on a 5 K/W sink failed parts running at 53 degC)
+            rating[name] = (float(ds.tj_max) - POWER_RATING_AMBIENT) / case_theta[name]
         breakdown[name] = float(ds.breakdown_vceo)
         ic_max[name] = float(ds.ic_max)
     setup = ThermalSetup(theta, tj_max, rating, breakdown, ic_max, dict(shared or {}), roles,
                          margin, self_heating, pulse_energy)
+    setup.case_theta = case_theta
     stage.thermal = setup
     _add_metrics_and_ratings(stage, setup)
 
@@ -140,7 +152,8 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
                                              "period, at its junction temperature")
         m[f"tj_{role}"] = MetricInfo("temperature", f"junction temperature of {dev} ({role})")
         m[f"power_stress_{role}"] = MetricInfo("1", f"dissipation of {dev} over its P_tot "
-                                                    "derated to the ambient")
+                                                    "derated to the ambient (on a heatsink: "
+                                                    "its case rating, to the case)")
         limit = setup.tj_max[dev] - setup.margin
         crit.append(Criterion(f"tj_max_{role}", f"tj_{role}", maximum=limit, source="rating",
                               description=f"{dev} junction below T_j max"
@@ -502,7 +515,11 @@ def evaluate_stage(stage, samples):
         else:  # one pass at the ambient: the DC solution does not see its own heating
             tj = ambient + setup.theta[carrier] * heat[carrier]
         out[f"tj_{role}"] = tj
-        allowed = thermal.derated_power(setup.power_rating[d], ambient, POWER_RATING_AMBIENT,
+        # the rating's reference point: the ambient in free air, the case on a heatsink
+        # (the junction less theta_jc times the package's dissipation)
+        reference = (ambient if d not in setup.case_theta else
+                     tj - setup.case_theta[d] * heat[carrier])
+        allowed = thermal.derated_power(setup.power_rating[d], reference, POWER_RATING_AMBIENT,
                                         setup.tj_max[d])
         with np.errstate(divide="ignore", invalid="ignore"):
             out[f"power_stress_{role}"] = p / allowed
