@@ -402,3 +402,23 @@ def test_keys_a_distribution_would_ignore_are_refused(write_study, x1, key, told
                                                    f"x1 = {x1}")
     with pytest.raises(StudyError, match=re.escape(key) + ".*" + told):
         load_study(write_study(text))
+
+
+@pytest.mark.parametrize("spec, key", [
+    ('{nominal = "0 degC", tolerance = "10%"}', "ambient.temperature.tolerance"),
+    ('{nominal = "0 degC", tolerance = 0.1}', "ambient.temperature.tolerance"),
+    ('{min = "-20 degC", max = "55 degC", drift = "2%"}', "ambient.temperature.drift"),
+])
+def test_a_share_of_an_absolute_temperature_is_refused(spec, key):
+    # 10 % of 0 degC was taken of 273.15 K: +-27.3 K; a drift widened it the same way
+    from tolerance.api import demo_text
+    from tolerance.study import load_study as load_text
+
+    text = demo_text().replace('temperature = {min = "-20 degC", max = "55 degC"}',
+                               f"temperature = {spec}")
+    with pytest.raises(StudyError, match=re.escape(key)):
+        load_text("t.toml", text=text)
+    ok = demo_text().replace('temperature = {min = "-20 degC", max = "55 degC"}',
+                             'temperature = {nominal = "0 degC", tolerance = "5 K"}')
+    p = load_text("t.toml", text=ok).parameter("ambient.temperature")
+    assert (p.low, p.high) == pytest.approx((268.15, 278.15))

@@ -217,6 +217,9 @@ class Reader:
         if isinstance(raw, dict) and "drift" in raw:
             # read by its own reader over the same table: the table's keys count as one
             drift = self._drift(Reader(raw, key, self._ctx), "drift")
+        if drift and unit == "temperature":
+            raise StudyError(self.file, f"{key}.drift", "a temperature does not age; its "
+                                                        "range is given directly")
         if allow_tolerance_key and not isinstance(raw, dict) and (
             self.has("tolerance") or self.has("distribution") or self.has("sigmas")
         ):
@@ -416,6 +419,11 @@ class Reader:
                 ) from None
             if not 0 <= rel < 1:
                 raise self.error("tolerance", f"must be at least 0 and below 100 %, got {rel:g}")
+            if unit == "temperature" and rel > 0:
+                # a share of an absolute temperature: 10 % of 0 degC was +-27.3 K
+                raise self.error("tolerance", f"{raw!r} would be a share of the absolute "
+                                              "temperature (kelvin); give the tolerance in "
+                                              'kelvin, e.g. "5 K"')
             half = abs(nominal) * rel
         return half
 
