@@ -25,6 +25,7 @@ from tolerance.units import UnitError, parse_series_range, preferred_values
 #: an E24 decade holds 24, two parts over a decade each 576 runs).
 MAX_CANDIDATES = 200
 
+
 def parse_vary(study: Study, text: str) -> tuple[str, np.ndarray]:
     """``NAME=SERIES:LOW..HIGH`` -> (name, candidate values)."""
     if "=" not in text:
@@ -71,10 +72,10 @@ def _direction(study: Study, metric: str) -> int:
 
 def frontier(points: list[dict], x: str, y: str, dx: int, dy: int) -> list[int]:
     """Indices of the non-dominated points (better = larger after applying the directions)."""
-    keep = []
     def finite(v):  # a summary writes a figure without a finite value as None
         return v is not None and math.isfinite(v)
 
+    keep = []
     for i, a in enumerate(points):
         if not (finite(a[x]) and finite(a[y])):
             continue
