@@ -282,10 +282,16 @@ def test_resistor_tempco():
     # Ohm's law
     assert_allclose(i, 24.0 / state.resistance, rtol=1e-14)
     assert_allclose(di, 1.0 / state.resistance, rtol=1e-14)
-    assert state.power_rating == 2.0 and spec.metrics == {} and spec.criteria == []
+    # the rating is a criterion on the load's own dissipation (it was read and used by nothing)
+    assert state.power_rating == 2.0 and set(spec.metrics) == {"load_power"}
+    (rating,) = spec.criteria
+    assert (rating.name, rating.metric, rating.maximum, rating.source) == (
+        "load_rating", "load_power", 2.0, "rating")
     # demand at the switch voltage: Ohm's law across supply - vce
     assert_allclose(state.demand(24.0, 0.2), 23.8 / state.resistance, rtol=1e-14)
-    assert state.metrics(i, i) == {}
+    # Joule's law: P = v i
+    v_on = np.full(3, 23.8)
+    assert_allclose(state.metrics(v_on, i)["load_power"], 23.8 * i, rtol=1e-14)
 
 
 def test_resistor_tempco_outside_its_range_is_nan():
