@@ -388,8 +388,9 @@ class Reader:
         if floor is None or sigma <= 0:
             return
         reach = centre - self.NORMAL_TAIL_SIGMAS * sigma
+        bound = "zero" if positive else f"{floor:g} ({unit})"
         if reach <= floor if positive else reach < floor:
-            raise self.error(key, f"this normal spread reaches {'zero' if positive else f'{floor:g} ({unit})'} "
+            raise self.error(key, f"this normal spread reaches {bound} "
                                   f"within {self.NORMAL_TAIL_SIGMAS:g} sigma, so some units "
                                   "would get impossible values; narrow it, give more "
                                   '"sigmas", or use distribution = "truncnormal" or '
