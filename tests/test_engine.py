@@ -422,3 +422,16 @@ def test_a_share_of_an_absolute_temperature_is_refused(spec, key):
                              'temperature = {nominal = "0 degC", tolerance = "5 K"}')
     p = load_text("t.toml", text=ok).parameter("ambient.temperature")
     assert (p.low, p.high) == pytest.approx((268.15, 278.15))
+
+
+def test_a_limit_on_a_switching_metric_says_how_to_compute_it():
+    # a turn_off_delay limit on a static stage was refused as "not a metric of this stage"
+    from tolerance.api import demo_text
+    from tolerance.study import load_study as load_text
+
+    text = demo_text().replace("[limits]\n", '[limits]\nturn_off_delay = {max = "1 us"}\n', 1)
+    with pytest.raises(StudyError, match=r"limits\.turn_off_delay: is computed only with "
+                                         r"\[switching\] enabled = true"):
+        load_text("t.toml", text=text)
+    on = load_text("t.toml", text=text + "\n[switching]\nenabled = true\n")
+    assert any(c.metric == "turn_off_delay" and c.maximum == 1e-6 for c in on.criteria)

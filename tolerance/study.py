@@ -622,6 +622,9 @@ def _read_limits(r: Reader, stage: ConfiguredStage) -> tuple[Criterion, ...]:
     study_criteria = []
     for metric in r.keys():
         if metric not in stage.metrics:
+            how = getattr(stage, "dormant_metrics", {}).get(metric)
+            if how:  # a metric the stage computes once a table asks for it
+                raise r.error(metric, f"is computed only with {how}")
             raise r.error(metric, "is not a metric of this stage" +
                           _did_you_mean(metric, stage.metrics))
         spec = r.table(metric)

@@ -290,6 +290,11 @@ def read_switching(reader, parts_reader, stage, topology: str, roles: dict[str, 
         charges[name] = base.replace(collector_emitter_breakdown=float(ds.breakdown_vceo))
     setup = SwitchingSetup(enabled, topology, charges, roles, {"relative_tolerance": rtol})
     stage.switching = setup
+    if not enabled:
+        # a limit on one of these is refused with how to compute it (the study reader asks)
+        stage.dormant_metrics = {key: "[switching] enabled = true" for key in SWITCHING_METRICS}
+        if stage.load.kind == "coil":
+            stage.dormant_metrics["release_time"] = "[switching] enabled = true"
     if enabled:
         pair = len(roles) > 1
         for key, text in SWITCHING_METRICS.items():
