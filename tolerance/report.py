@@ -671,7 +671,8 @@ def target_sentence(target: dict, rate) -> str:
               f"({target.get('widest_criterion')})")
     n, planned = target.get("samples"), target.get("planned_samples")
     if target.get("reached"):
-        return f"{head} after {format_number(n)} of at most {format_number(planned)} samples; {widest}."
+        return (f"{head} after {format_number(n)} of at most {format_number(planned)} "
+                f"samples; {widest}.")
     return (f"{head} within the {format_number(planned)} samples allowed (--samples); {widest}; "
             "more samples would narrow it.")
 

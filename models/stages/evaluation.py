@@ -74,7 +74,7 @@ class ThermalSetup:
     """
 
     def __init__(self, theta, tj_max, power_rating, breakdown, ic_max, shared, roles, margin,
-                 self_heating, pulse_energy=None):
+                 self_heating, pulse_energy=None, case_theta=None):
         self.theta = theta
         self.tj_max = tj_max
         self.power_rating = power_rating
@@ -87,7 +87,7 @@ class ThermalSetup:
         self.pulse_energy = dict(pulse_energy or {})
         #: junction-to-case resistance of each part on a heatsink, whose rating is then
         #: referred to its case (read_thermal)
-        self.case_theta: dict[str, float] = {}
+        self.case_theta: dict[str, float] = dict(case_theta or {})
 
 
 def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
@@ -139,8 +139,7 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
         breakdown[name] = float(ds.breakdown_vceo)
         ic_max[name] = float(ds.ic_max)
     setup = ThermalSetup(theta, tj_max, rating, breakdown, ic_max, dict(shared or {}), roles,
-                         margin, self_heating, pulse_energy)
-    setup.case_theta = case_theta
+                         margin, self_heating, pulse_energy, case_theta)
     stage.thermal = setup
     _add_metrics_and_ratings(stage, setup)
 
@@ -290,23 +289,20 @@ def read_switching(reader, parts_reader, stage, topology: str, roles: dict[str, 
         charges[name] = base.replace(collector_emitter_breakdown=float(ds.breakdown_vceo))
     setup = SwitchingSetup(enabled, topology, charges, roles, {"relative_tolerance": rtol})
     stage.switching = setup
-    if not enabled:
-        # a limit on one of these is refused with how to compute it (the study reader asks)
-        stage.dormant_metrics = {key: "[switching] enabled = true" for key in SWITCHING_METRICS}
-        if stage.load.kind == "coil":
-            stage.dormant_metrics["release_time"] = "[switching] enabled = true"
+    pair = len(roles) > 1
+    metrics = {key: MetricInfo(METRIC_UNITS_SWITCHING[key], text)
+               for key, text in SWITCHING_METRICS.items()
+               if pair or not key.endswith("_driver")}
+    if stage.load.kind == "coil":
+        metrics["release_time"] = MetricInfo(
+            "s", "turn-off drive edge (50 %) to the coil current at 10 % of its on-state "
+                 "value: storage time, then the decay through the clamp (L/R with the "
+                 "clamp's voltage, closed form)")
     if enabled:
-        pair = len(roles) > 1
-        for key, text in SWITCHING_METRICS.items():
-            if key.endswith("_driver") and not pair:
-                continue
-            stage.metrics[key] = MetricInfo(METRIC_UNITS_SWITCHING[key], text)
-        if stage.load.kind == "coil":
-            stage.metrics["release_time"] = MetricInfo(
-                "s", "turn-off drive edge (50 %) to the coil current at 10 % of its on-state "
-                     "value: storage time, then the decay through the clamp (L/R with the "
-                     "clamp's voltage, closed form)")
-
+        stage.metrics.update(metrics)
+    else:
+        # a limit on one of these is refused with how to compute it (the study reader asks)
+        stage.dormant_metrics = dict.fromkeys(metrics, "[switching] enabled = true")
 
 def switching_inputs(stage, samples: dict, temps: dict, ambient: np.ndarray):
     """Positional arguments of :func:`tolerance.models.switching.simulate_switching` (and
