@@ -41,12 +41,20 @@ Transport current and base charge, Gummel & Poon [1]_::
     I_C  = I_CT - I_BC + I_gen,        I_B = I_BE + I_BC - I_gen
 
 The non-ideal base currents I_SE, I_SC give the gain roll-off at low current. The extra
-collector-base generation current ``I_gen = I_CBO(T) tanh(V_CB / (2 V_T))`` represents the
-leakage that the ideal diode terms understate: it follows the Shockley-Read-Hall factor
-``(1 - exp(-V_CB/V_T)) / (1 + exp(-V_CB/V_T))``, so it saturates at I_CBO under reverse bias,
-vanishes smoothly at zero bias and stays bounded under forward bias (where the diode terms
-dominate by many decades); it doubles every ``leakage_doubling`` kelvin (common practice, see
-the project's reference list).
+collector-base generation current represents the leakage that the ideal diode terms
+understate. Under reverse bias (V_CB >= 0) it is ``I_gen = I_CBO(T) tanh(V_CB / (2 V_T))``,
+the Shockley-Read-Hall factor ``(1 - exp(-V_CB/V_T)) / (1 + exp(-V_CB/V_T))``: it saturates at
+I_CBO within a few V_T and vanishes at zero bias. A generation current has no source under
+forward bias (the recombination there is the non-ideal I_SC term), so for V_CB < 0 it is
+``I_gen = r I_CBO (exp(V_CB / (2 r V_T)) - 1)`` with a remainder r = 0.02: within 1 mV of
+forward bias it levels off at -0.02 I_CBO, continuous with its slope at zero bias, monotonic
+and passive (I_gen V_CB >= 0). It cannot fall all the way to zero: a leakage that rose and
+then fell again would be a negative differential conductance, which folds the DC solution
+of a stage (the per-sample reference's source stepping stopped at such a fold). Without
+the limit a saturated transistor's collector-base junction carried the full -I_CBO, which
+at the hot corner (leakage in milliamperes) raised a Darlington's on-voltage with
+temperature instead of lowering it. I_CBO doubles every ``leakage_doubling`` kelvin (common
+practice, see the project's reference list).
 
 Temperature (T in kelvin, T_0 = 298.15 K, V_T = k T / q)::
 
@@ -101,6 +109,7 @@ REFERENCE_TEMPERATURE = 298.15
 
 _EXP_MAX = 80.0  # argument above which exp() is continued linearly
 _Q1_DENOMINATOR_MIN = 0.1  # q_1 denominator below which q_1 is continued linearly
+_FORWARD_LEAKAGE_REMAINDER = 0.02  # I_CBO fraction left at forward bias (module Notes)
 #: a junction biased above this many emission thermal voltages counts as forward-biased in
 #: :meth:`TransistorParameters.carry_junctions` (e^10 I_S: where its own law sets its voltage;
 #: common practice, no source)
@@ -471,10 +480,15 @@ def junction_currents(p: ScaledTransistor, v_be, v_bc) -> JunctionCurrents:
     dib_be = dibe
     dib_bc = dibc
     if not _is_zero(p.cbo_leakage):
-        # generation current from collector to base: I_CBO tanh(V_CB / 2V_T), V_CB = -V_BC
-        th = np.tanh(vbc * -p.inv_two_vt)
-        gen = p.cbo_leakage * th
-        dgen_bc = (th * th - 1.0) * (p.cbo_leakage * p.inv_two_vt)
+        # generation current from collector to base, a = V_CB / V_T = -V_BC / V_T:
+        # I_CBO tanh(a/2) under reverse bias, I_CBO r (exp(a / 2r) - 1) under forward bias
+        # (r = _FORWARD_LEAKAGE_REMAINDER); both from one exponential of z <= 0
+        a = vbc * (-2.0 * p.inv_two_vt)
+        rev = a >= 0.0
+        e = np.exp(np.where(rev, -a, a * (0.5 / _FORWARD_LEAKAGE_REMAINDER)))
+        t = (1.0 - e) / (1.0 + e)  # tanh(a/2) where rev
+        gen = p.cbo_leakage * np.where(rev, t, _FORWARD_LEAKAGE_REMAINDER * (e - 1.0))
+        dgen_bc = (p.cbo_leakage * p.inv_two_vt) * np.where(rev, t * t - 1.0, -e)
         ic = ic + gen
         ib = ib - gen
         dic_bc = dic_bc + dgen_bc

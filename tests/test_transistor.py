@@ -240,6 +240,40 @@ def test_cbo_leakage_doubles_every_ten_kelvin_and_vanishes_at_zero_bias():
     assert np.all(z.collector == 0) and np.all(z.base == 0)
 
 
+def test_cbo_leakage_levels_off_under_forward_bias():
+    # Sah, Noyce & Shockley (Proc. IRE 45, 1957): the depletion-region generation current
+    # exists under reverse bias; under forward bias the region recombines instead (the
+    # non-ideal I_SC term), so the leakage term must not carry I_CBO through a saturated
+    # junction; the model keeps 2 % of it there (module Notes). Leakage alone (I_S
+    # negligible), 25 degC.
+    p = TransistorParameters(saturation_current=1e-30, cbo_leakage=1e-3)
+    vt = thermal_voltage(REFERENCE_TEMPERATURE)
+    v_cb = np.array([-0.6, -0.3, -0.01, -0.001, -1e-4, 0.0, vt, 0.2, 5.0])
+    s = p.at_temperature(np.full(v_cb.size, REFERENCE_TEMPERATURE))
+    c = junction_currents(s, np.zeros(v_cb.size), -v_cb)
+    a = v_cb / vt
+    expected = 1e-3 * np.where(a >= 0, np.tanh(a / 2), 0.02 * np.expm1(np.minimum(a, 0) / 0.04))
+    # (atol: the 1e-30 A diode terms reach 1e-20 A at 0.6 V)
+    assert_allclose(c.collector, expected, rtol=1e-12, atol=1e-18)
+    # beyond 10 mV of forward bias 2 % of I_CBO (it was the full -I_CBO before)
+    assert_allclose(c.collector[v_cb <= -0.01], -2e-5, rtol=1e-4)
+    # monotonic (no negative differential conductance) and passive at every bias
+    fine = np.linspace(-0.05, 0.05, 20001)
+    sf = p.at_temperature(np.full(fine.size, REFERENCE_TEMPERATURE))
+    cf = junction_currents(sf, np.zeros(fine.size), -fine)
+    assert np.all(np.diff(cf.collector) >= 0) and np.all(cf.dcollector_dvbc <= 0)
+    assert np.all(cf.collector * fine >= 0)
+    # continuous in value and slope at zero bias (central differences, common practice,
+    # no source): the slope on either side is I_CBO / (2 V_T)
+    h = 1e-8
+    for v in (-1e-6, 1e-6):
+        s3 = p.at_temperature(np.full(3, REFERENCE_TEMPERATURE))
+        c3 = junction_currents(s3, np.zeros(3), -np.array([v - h, v, v + h]))
+        fd = (c3.collector[2] - c3.collector[0]) / (2 * h)
+        assert_allclose(-c3.dcollector_dvbc[1], fd, rtol=1e-5)
+        assert_allclose(fd, 1e-3 / (2 * vt), rtol=2e-3)
+
+
 def test_early_effect_raises_collector_current_with_vce():
     # Gummel & Poon q1 with only V_A: I_C = I_S e^(V_BE/V_T)(1 - V_BC/V_A) in forward active
     # (reverse terms e^(V_BC/V_T) are below 1e-80 at V_BC = -5 V), so I_C(V_CE) is linear in V_CE

@@ -575,7 +575,12 @@ class PairStage:
 
         def zero_drive_current(idx):
             zero = make_off(np.zeros(n), "on").subset(idx)
-            r = solve_with_restarts(zero, [g[idx] for g in off_starts], **opts)
+            # the off state (drive low, a few hundred millivolts at most) first, then the
+            # off-state guesses at zero drive
+            near = np.where(r_off.converged[idx, None], r_off.x[idx], off_starts[0][idx])
+            zero_starts = self.guesses("off", q1_off, q2_off, vs, demand_guess, g_be2,
+                                       **circuit(np.zeros(n)))
+            r = solve_with_restarts(zero, [near] + [g[idx] for g in zero_starts], **opts)
             return r.converged, zero.state(np.nan_to_num(r.x))["i_out"]
 
         v_threshold, thr_ok = threshold_voltage(solve_threshold, zero_drive_current, target,

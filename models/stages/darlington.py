@@ -140,7 +140,7 @@ class DarlingtonStage(PairStage):
             plain = np.stack([vbe, 2 * vbe - vs, vbe, vbe - vs], axis=1)
             if load is None:
                 return [plain]
-            return [self._off_guess(q1, q2, vs, g_be2, v_in, g_in, g_be1, load), plain]
+            return self._off_guess(q1, q2, vs, g_be2, v_in, g_in, g_be1, load) + [plain]
         vbe2 = vbe_guess(q2, current)
         # the driver carries the output's base current (at its ideal gain) and the current of
         # the output's base-emitter resistor
@@ -162,10 +162,11 @@ class DarlingtonStage(PairStage):
 
     @staticmethod
     def _off_guess(q1, q2, vs, g_be2, v_in, g_in, g_be1, load):
-        """Off-state starting point: RB, RBE1 and RBE2 as a divider from the drive's low level,
+        """Off-state starting points: RB, RBE1 and RBE2 as a divider from the drive's low level,
         each junction a 1 nS leak, the output's collector-base leakage into its base node;
         junction voltages capped where the junction would carry that leakage; the collector
-        where the load passes the leakage of both transistors."""
+        where the load passes the leakage of both transistors, but not below the bases; then
+        the same with the collector at the output's base."""
         g1 = g_be1 + JUNCTION_LEAK
         g2 = g_be2 + JUNCTION_LEAK
         chain = v_in / (1.0 / g_in + 1.0 / g1 + 1.0 / g2)  # divider current [A]
@@ -175,9 +176,17 @@ class DarlingtonStage(PairStage):
         pol = q1.polarity
         vbe1 = np.minimum(pol * chain / g1, cap1)
         vbe2 = np.minimum(pol * chain / g2 + np.abs(q2.cbo_leakage) / g2, cap2)
-        vc = vs - pol * load.voltage_guess(i_cbo)
+        # not below the bases: a load that cannot pass the leakage at any voltage (an LED
+        # string above the supply) would put the guess below ground, both collector junctions
+        # forward-biased by volts, where Newton crawls at a junction-limited step
+        vc = np.maximum(pol * vs - load.voltage_guess(i_cbo), vbe1 + vbe2)
         vbe1, vbe2 = pol * vbe1, pol * vbe2
-        return np.stack([vbe1, vbe1 + vbe2 - vc, vbe2, vbe2 - vc], axis=1)
+        vc = pol * vc
+        passing = np.stack([vbe1, vbe1 + vbe2 - vc, vbe2, vbe2 - vc], axis=1)
+        # such a starved collector settles where the output's leakage fades, near its base:
+        # the second guess puts it there (the driver's collector junction forward-biased)
+        starved = np.stack([vbe1, vbe1, vbe2, np.zeros_like(vbe2)], axis=1)
+        return [passing, starved]
 
 
 def _read_internal(part: Reader, entry, name: str) -> tuple[ResistorPart, ResistorPart]:

@@ -57,6 +57,13 @@ def _junction_columns(q, vbe_col, vbc_col):
     return cols
 
 
+def _starved(vb_off):
+    """Off-state start for a load that cannot pass the collector-base leakage at any voltage
+    (an LED string above the supply): the collector at the base, where the leakage fades,
+    instead of at the supply."""
+    return np.stack([vb_off, np.zeros_like(vb_off)], axis=1)
+
+
 class SingleSystem(Subsettable):
     """Equations of the single-NPN stage for one mode (``on``, ``edge``, ``threshold``).
 
@@ -229,7 +236,8 @@ class SingleStage:
         if not full:
             off = SingleSystem(q_off, load, vs, v_low, g_in, g_pd, "on")
             vb_off = np.minimum(np.abs(v_low) * g_in / (g_in + g_pd), 0.3) * q.polarity
-            off_starts = [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0]
+            off_starts = [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0,
+                          _starved(vb_off)]
             r_off = solve_with_restarts(off, warm_guesses(start, "off", off_starts), **opts)
             c_off, o_off, i_l_off, _ = off.state(np.nan_to_num(r_off.x))
             return {"converged": r_on.converged & r_off.converged, "x_on": r_on.x,
@@ -248,7 +256,7 @@ class SingleStage:
         # off-state: from cut-off, else from the on-state (a hot unit may conduct)
         off = SingleSystem(q_off, load, vs, v_low, g_in, g_pd, "on")
         vb_off = pol * np.minimum(np.abs(v_low) * g_in / (g_in + g_pd), 0.3)
-        off_starts = [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0]
+        off_starts = [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0, _starved(vb_off)]
         r_off = solve_with_restarts(off, warm_guesses(start, "off", off_starts), **opts)
         # the transistor's collector current (equal to the load's at the solution) keeps its
         # relative accuracy where the load voltage is a tiny difference of two large ones
@@ -261,7 +269,6 @@ class SingleStage:
         vbe_t = vbe_guess(q_off, target)
         thr_starts = [np.stack([vbe_t, vbe_t - 0.9 * vs], axis=1),
                       np.stack([vbe_t, vbe_t - 0.5 * vs], axis=1)]
-        off_starts = [np.stack([vb_off, vb_off - vs], axis=1), x_on, act0]
 
         def solve_threshold():
             r = solve_with_restarts(thr, thr_starts, slow=False, **opts)
@@ -271,7 +278,13 @@ class SingleStage:
 
         def zero_drive_current(idx):
             zero = SingleSystem(q_off, load, vs, np.zeros(n), g_in, g_pd, "on").subset(idx)
-            r = solve_with_restarts(zero, [g[idx] for g in off_starts], **opts)
+            # the off state (drive low, a few hundred millivolts at most) first, then cut-off
+            # and the starved collector at zero drive, then the off state's guesses
+            near = np.where(r_off.converged[idx, None], r_off.x[idx], off_starts[0][idx])
+            base = np.zeros(idx.size)
+            cut = np.stack([base, -vs[idx]], axis=1)
+            r = solve_with_restarts(zero, [near, cut, _starved(base)]
+                                    + [g[idx] for g in off_starts], **opts)
             return r.converged, zero.state(np.nan_to_num(r.x))[0].collector
 
         v_threshold, thr_ok = threshold_voltage(solve_threshold, zero_drive_current, target,

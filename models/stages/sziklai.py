@@ -119,7 +119,8 @@ class SziklaiStage(PairStage):
 
         With the circuit (``v_in``, ``g_in``, ``g_be1``, ``load``) the ``off`` guess is the
         driver's base divider (RB, RBE1, the junction a 1 nS leak), the output node where the
-        load passes the collector-base leakage and the output's base at its emitter; the
+        load passes the collector-base leakage (its base not below the driver's) and the
+        output's base at its emitter, then the same with the output's base at ground; the
         ``threshold`` guess puts the output node where the load carries the target
         ``current``.
         """
@@ -133,13 +134,21 @@ class SziklaiStage(PairStage):
             i_cbo = np.abs(q1.cbo_leakage) + np.abs(q2.cbo_leakage) + 1e-12
             vbe1 = np.minimum(v_in * g_in / (g_in + g_be1 + JUNCTION_LEAK),
                               vbe_guess(q1, i_cbo))
-            v_out = vs - load.voltage_guess(i_cbo)
             # Q1's leakage through RBE2, or through Q2's emitter junction without it (PNP:
             # negative)
             vbe2 = np.maximum(-np.abs(q1.cbo_leakage) / (g_be2 + JUNCTION_LEAK),
                               vbe_guess(q2, i_cbo))
+            # the output's base not below the driver's: a load that cannot pass the leakage
+            # at any voltage (an LED string above the supply) would put the guess below
+            # ground, the collector junctions forward-biased by volts
+            v_out = np.maximum(vs - load.voltage_guess(i_cbo), vbe1 - vbe2)
             v_b2 = v_out + vbe2
-            return [np.stack([vbe1, vbe1 - v_b2, vbe2, v_b2], axis=1), plain]
+            passing = np.stack([vbe1, vbe1 - v_b2, vbe2, v_b2], axis=1)
+            # such a starved output node settles where the output's collector-base leakage
+            # fades: its base near ground (its collector), the driver's collector junction
+            # forward-biased
+            starved = np.stack([vbe1, vbe1, vbe2, np.zeros(n)], axis=1)
+            return [passing, starved, plain]
         vbe2 = vbe_guess(q2, current)  # negative: PNP
         # the driver carries the output's base current (at its ideal gain) and the current of
         # the output's base-emitter resistor
