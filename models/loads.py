@@ -639,6 +639,10 @@ class CoilLoad(LoadSpec):
                          self.clamp_forward_voltage, zener)
 
 
+#: fraction of the LED's test current below which the default check calls a string unlit
+LED_LIT_FRACTION = 0.1
+
+
 class LedLoad(LoadSpec):
     """A string of LEDs with its series resistor, see :class:`LedState`."""
 
@@ -656,6 +660,14 @@ class LedLoad(LoadSpec):
         self.test_current = test_current
         self.ideality = ideality
         self.forward_voltage_tempco = forward_voltage_tempco
+        # without a study window on led_current a string that never lights (its forward
+        # voltage above the supply) passed every check; a tenth of the test current is
+        # dimly but visibly lit for an indicator LED (from memory). A study's led_current
+        # limit replaces this side, or both.
+        self.criteria = [Criterion("led_current", "led_current",
+                                   minimum=LED_LIT_FRACTION * test_current, source="stage",
+                                   description="the string lights: at least a tenth of "
+                                               "the LED's test current")]
 
     def at(self, samples, temperature, supply_voltage):
         t, vs, vf, rs = self._inputs(samples, temperature, supply_voltage,
