@@ -465,6 +465,14 @@ def test_infinite_metric_values_are_counted_and_named(write_study, tmp_path):
     note = report.infinite_note(s)
     assert "m 2 of 5" in note and "k " not in note
     assert report.infinite_note({"samples": 5, "metrics": {"k": s["metrics"]["k"]}}) is None
+    # the reason follows the metric: a switching time never completed, a stress beyond its
+    # rating's temperature
+    delay = {**spread, "unit": "s"}
+    note = report.infinite_note({"samples": 5, "metrics": {"turn_off_delay": delay}})
+    assert "transition never completes" in note and "derated" not in note
+    stress = {"power_stress_output": s["metrics"]["m"]}
+    note = report.infinite_note({"samples": 5, "metrics": stress})
+    assert "derated rating is zero" in note and "transition" not in note
 
 
 def test_whatif_folder_without_its_samples_says_why_there_are_no_overlays(tmp_path):
@@ -480,3 +488,13 @@ def test_whatif_folder_without_its_samples_says_why_there_are_no_overlays(tmp_pa
     assert not any((out / "plots").glob("whatif-*.png"))
     md = (out / "report.md").read_text(encoding="utf-8")
     assert "whatif_samples.parquet is missing from this folder" in md
+
+
+def test_sobol_run_off_a_power_of_two_says_so():
+    # scipy.stats.qmc.Sobol: the balance properties of Sobol' points require n to be a
+    # power of 2 (its documentation); a run of another size said nothing of it
+    note = report.sampler_note({"sampler": "sobol", "samples": 1000})
+    assert "--samples 1024 (or 512)" in note
+    assert report.sampler_note({"sampler": "sobol", "samples": 1024}) is None
+    assert report.sampler_note({"sampler": "lhs", "samples": 1000}) is None
+    assert "--samples 4 (or 2)" in report.sampler_note({"sampler": "sobol", "samples": 3})

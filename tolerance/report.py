@@ -217,9 +217,32 @@ def infinite_note(summary: dict) -> str | None:
              for name, m in summary.get("metrics", {}).items() if m.get("infinite")]
     if not parts:
         return None
-    return ("Infinite values, outside the model's range (a stress above its rating's maximum "
-            "temperature, where the derated rating is zero), are left out of the percentiles "
-            "and fail any criterion on their metric: " + ", ".join(parts) + ".")
+    reasons = []
+    infinite = [(name, m) for name, m in summary.get("metrics", {}).items()
+                if m.get("infinite")]
+    if any(m.get("unit") == "s" or name == "transition_fraction" for name, m in infinite):
+        reasons.append("a switching time where the transition never completes (the switch "
+                       "current never crosses its 10 % or 90 % level, e.g. a load that does "
+                       "not conduct)")
+    if any("stress" in name for name, _ in infinite):
+        reasons.append("a stress above its rating's maximum temperature, where the derated "
+                       "rating is zero")
+    why = "; ".join(reasons) if reasons else "outside the model's range"
+    return (f"Infinite values ({why}) are left out of the percentiles and fail any criterion "
+            "on their metric: " + ", ".join(parts) + ".")
+
+
+def sampler_note(summary: dict) -> str | None:
+    """A sentence for a Sobol run whose sample count is not a power of two, where the
+    sequence loses the balance it is chosen for."""
+    n = summary.get("samples")
+    if summary.get("sampler") != "sobol" or not isinstance(n, int) or n < 1 or n & (n - 1) == 0:
+        return None
+    below = 1 << (n.bit_length() - 1)
+    return (f"The Sobol sequence keeps its balance (every elementary interval holds its "
+            f"share of points) only at a power of two samples; {format_number(n)} is not one: "
+            f"--samples {2 * below} (or {below}) gives the "
+            f"balanced design.")
 
 
 def parameter_table(parameters: list[dict]) -> Table:
@@ -701,6 +724,9 @@ def _summary_blocks(summary: dict) -> list[Block]:
     target = summary.get("target_ci")
     if isinstance(target, dict):
         doc.append(Block("p", target_sentence(target, format_rate)))
+    note = sampler_note(summary)
+    if note:
+        doc.append(Block("p", note))
     doc.append(Block("table", table=verdict_table(summary)))
     if summary.get("overrides"):
         doc.append(Block("table", table=Table(
