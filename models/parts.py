@@ -345,6 +345,12 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
         key = exc.key if part.has(exc.key) or device is None else "device"
         if exc.key.startswith("hfe") and part.has("hfe"):
             key = "hfe"
+        elif (exc.key == "hfe_min" and part.has("hfe_max") and not part.has("hfe_min")
+              and figures["hfe_min"] > figures["hfe_max"]):
+            # the study's own hfe_max against the class's hfe_min: the study's key is wrong
+            raise part.error("hfe_max", f"{figures['hfe_max']:g} is below the device class's "
+                                        f"hfe_min ({figures['hfe_min']:g}); give hfe_min as "
+                                        f"well") from None
         raise part.error(key, exc.message if key == exc.key else f"{exc.key}: {exc.message}") \
             from None
     try:

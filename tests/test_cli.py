@@ -78,6 +78,18 @@ MALFORMED = [
     ("negative leakage", _replace('device = "medium_power_npn"',
                                   'device = "medium_power_npn"\nicbo_max = "-1 nA"'),
      "parts.Q1", "icbo"),
+    # a pair stage's name for the base-emitter resistor suggested 'RB', the closest spelling
+    # a study's hfe_max below its class's hfe_min was blamed on the device and hfe_min
+    ("hfe_max below the class's hfe_min", _replace('device = "medium_power_npn"',
+                                                   'device = "medium_power_npn"\nhfe_max = 30'),
+     "parts.Q1.hfe_max", "below the device class's hfe_min"),
+    # "100 K" for 100 degC: a limit no unit could meet, accepted without a word
+    ("temperature limit in kelvin", _replace('off_current = {max = "10 uA"}',
+                                             'off_current = {max = "10 uA"}\n'
+                                             'tj_output = {max = "100 K"}'),
+     "limits.tj_output.max", "-173.15 degC (100 K) is below any operating temperature"),
+    ("pair stage's resistor name", _replace("[parts.RPD]", "[parts.RBE1]"), "parts.RBE1",
+     "the single stage's base-emitter resistor is 'RPD'"),
 ]
 
 
@@ -305,3 +317,11 @@ def test_whatif_pin_that_leaves_a_metric_without_a_finite_value(tmp_path, capsys
                  "--out", str(out), "--quiet"])
     assert code == 1 and "Traceback" not in capsys.readouterr().err
     assert (out / "report.md").is_file() and (out / "plots" / "whatif-tj_output.png").is_file()
+
+
+def test_sobol_run_off_a_power_of_two_notes_it_in_console_and_report(tmp_path, capsys):
+    # scipy.stats.qmc.Sobol documentation: the balance needs a power of two samples
+    out = tmp_path / "o"
+    assert main(["run", "--samples", "300", "--sampler", "sobol", "--out", str(out)]) == 0
+    assert "--samples 512 (or 256) gives the balanced design" in capsys.readouterr().out
+    assert "--samples 512 (or 256)" in (out / "report.md").read_text(encoding="utf-8")

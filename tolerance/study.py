@@ -46,6 +46,23 @@ def _did_you_mean(word: str, candidates) -> str:
     return f"; did you mean '{close[0]}'?" if close else ""
 
 
+#: names a base-emitter (pull-down) resistor goes by in the stages
+_BASE_EMITTER_NAMES = ("RPD", "RBE1", "RBE2")
+
+
+def _part_role_hint(key: str, roles: set, stage_name: str) -> str | None:
+    """For a base-emitter resistor named as in another stage (``RBE1`` on the single stage,
+    ``RPD`` on a pair), the names this stage uses; None otherwise."""
+    if key.upper() not in _BASE_EMITTER_NAMES + ("RBE",):
+        return None
+    names = [n for n in _BASE_EMITTER_NAMES if n in roles]
+    if not names or key in names:
+        return None
+    return (f"; the {stage_name} stage's base-emitter resistor"
+            + ("s are " if len(names) > 1 else " is ")
+            + " and ".join(f"'{n}'" for n in names))
+
+
 def _type_name(value: Any) -> str:
     if isinstance(value, bool):
         return "a true/false value"
@@ -598,7 +615,13 @@ def build_study(data: dict, file: str, text: str) -> Study:
                 known = set(used)
                 if reader.path == "":
                     known |= set(ENGINE_KEYS)
-                raise StudyError(file, reader.key(k), "unknown key" + _did_you_mean(k, known))
+                hint = None
+                if reader.path == "parts":
+                    roles = set(stage.resistors()) | set(stage.devices)
+                    known |= roles
+                    hint = _part_role_hint(k, roles, stage_name)
+                raise StudyError(file, reader.key(k),
+                                 "unknown key" + (hint or _did_you_mean(k, known)))
 
     study_hash = hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
     return Study(file, study_hash, title, description, stage_name, stage, parameters,
@@ -615,6 +638,10 @@ def _read_run(r: Reader) -> RunSettings:
         max_failure_rate=r.quantity("max_failure_rate", "1", default=d.max_failure_rate,
                                     minimum=0.0, maximum=0.5),
     )
+
+
+#: a temperature limit below this [K] (-100 degC) is taken for a slip of the unit
+LOWEST_TEMPERATURE_LIMIT = 173.15
 
 
 def _read_limits(r: Reader, stage: ConfiguredStage) -> tuple[Criterion, ...]:
@@ -635,6 +662,13 @@ def _read_limits(r: Reader, stage: ConfiguredStage) -> tuple[Criterion, ...]:
         hi = spec.optional_quantity("max", unit)
         if lo is not None and hi is not None and lo > hi:
             raise spec.error("min", f"min ({lo:g}) is above max ({hi:g})")
+        if unit == "temperature":
+            # "100 K" meant as 100 degC (or as a rise) would fail every unit without a word
+            for side, value in (("min", lo), ("max", hi)):
+                if value is not None and value < LOWEST_TEMPERATURE_LIMIT:
+                    raise spec.error(side, f"{value - 273.15:g} degC ({value:g} K) is "
+                                           f"below any operating temperature (-100 degC); "
+                                           f"a temperature limit reads e.g. '125 degC'")
         desc = spec.string("description", default="")
         study_criteria.append(Criterion(metric, metric, lo, hi, "study", desc))
     # a study limit on a metric replaces the stage's default or the rating on that metric on
