@@ -331,7 +331,8 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
                 hfe_spec["sigmas"] = t.quantity("sigmas", "1")
     if polarity is not None and figures.get("polarity", polarity) != polarity:
         key = "polarity" if part.has("polarity") else "device"
-        raise part.error(key, f"this position needs a {polarity.upper()} transistor")
+        article = "an" if polarity == "npn" else "a"
+        raise part.error(key, f"this position needs {article} {polarity.upper()} transistor")
     figures.setdefault("polarity", polarity or "npn")
 
     vce_sat = figures.get("vce_sat_max")
