@@ -691,6 +691,32 @@ def simulate_switching(topology, devices, resistors, drive, supply, load_state, 
         return res_dc.x, res_dc.converged
 
     x_dc, ok_dc = solve_dc(x_guess)
+    retry = np.flatnonzero(~ok_dc)
+    if retry.size:
+        # second starts. An off state whose load passes little current near the supply (an
+        # LED string near or above its forward voltage) ran from the supply to below ground
+        # and back: its nodes that start at the supply start where the load passes the
+        # transistors' leakage instead. An on state far from saturation (a base resistor
+        # a thousand times too large) starts with its switch node at half the supply.
+        leak = 1e-12 + sum(np.abs(_arr(q.cbo_leakage, s)) for q, _ in devices.values())
+        v_leak = np.clip(supply - load_state.voltage_guess(leak), 0.0, supply)[two]
+        alt = np.where((np.arange(n) != coil_index) & (x_guess == vs[:, None]) & ~on[:, None],
+                       v_leak[:, None], x_guess)
+        alt[on, switch] = 0.5 * vs[on]
+        if topology == "sziklai":  # the output's base a junction below its emitter
+            alt[on, 1] = np.maximum(0.5 * vs[on] - 0.7, 0.0)
+        system = _DCSystem(circuit, current_scale)
+        again = newton_solve(system.subset(retry), alt[retry], max_iterations=100)
+        x_dc[retry] = again.x
+        ok_dc[retry] = again.converged
+        slow = np.flatnonzero(~ok_dc)
+        if slow.size:
+            # and short steps, as the stages' DC solves end (a Newton two-cycle between two
+            # collector voltages on either side of the solution)
+            last = newton_solve(system.subset(slow), alt[slow], max_iterations=300,
+                                max_step=0.05)
+            x_dc[slow] = last.x
+            ok_dc[slow] = last.converged
     if kind == "lamp":
         # hot operating resistance: fixed point of R = v / i(v) at the on-state
         for _ in range(4):

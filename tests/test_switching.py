@@ -566,3 +566,37 @@ def test_a_relay_releases_on_its_coil_current_not_the_switch_current():
     text = "\n".join(ln for ln in text.splitlines() if not ln.startswith("clamp_voltage"))
     slow = run(load_text("diode.toml", text=text + "\n"), samples=32, seed=3).samples
     assert (slow["release_time"] > 3 * df["release_time"]).all()
+
+
+def test_transient_dc_states_of_a_dim_string_and_a_starved_base_converge():
+    # two units of the shipped PWM dimmer found by a mutation campaign, whose transient's
+    # DC end states did not converge, so the whole unit counted as not converged: a supply
+    # of 9.6 V against three white LEDs (the off state ran from the supply to below ground
+    # and back) and a 2.2 Mohm base resistor (the on state, far from saturation, cycled
+    # between two collector voltages). The stage's DC solves converge for both (common
+    # practice, no source: a unit with a DC solution has end states for its transient).
+    from pathlib import Path
+
+    from tolerance.api import load_study
+
+    study = load_study(Path(__file__).resolve().parents[1] / "studies"
+                       / "pwm_led_dimmer_darlington.toml")
+    units = [
+        {"ambient.temperature": 310.236, "supply.voltage": 9.64956, "drive.high": 3.14644,
+         "drive.low": 0.210228, "drive.source_resistance": 42.5401, "RB": 4671.36,
+         "RBE2": 9966.89, "Q1.hfe": 145.722, "Q1.icbo": 1.53968e-08, "Q2.hfe": 150.99,
+         "Q2.icbo": 1.84444e-08, "load.forward_voltage": 3.20572,
+         "load.series_resistance": 151.034},
+        {"ambient.temperature": 321.497, "supply.voltage": 11.9744, "drive.high": 3.25454,
+         "drive.low": 0.149847, "drive.source_resistance": 44.7827, "RB": 2230680.0,
+         "RBE2": 10000.9, "Q1.hfe": 211.683, "Q1.icbo": 3.12594e-08, "Q2.hfe": 116.495,
+         "Q2.icbo": 1.72981e-08, "load.forward_voltage": 3.028,
+         "load.series_resistance": 150.153},
+    ]
+    values = {p.name: np.array([u.get(p.name, p.nominal) for u in units])
+              for p in study.parameters}
+    res = study.stage.evaluate(values)
+    assert res["converged"].all()
+    assert np.all(np.isfinite(res["turn_off_delay"])) and np.all(res["turn_off_delay"] > 0)
+    # the dim string carries about a milliampere, the starved base about 13 mA
+    assert_allclose(res["led_current"], [1.05e-3, 13.2e-3], rtol=0.05)
