@@ -328,3 +328,19 @@ def test_sobol_run_off_a_power_of_two_notes_it_in_console_and_report(tmp_path, c
     assert main(["run", "--samples", "300", "--sampler", "sobol", "--out", str(out)]) == 0
     assert "--samples 512 (or 256) gives the balanced design" in capsys.readouterr().out
     assert "--samples 512 (or 256)" in (out / "report.md").read_text(encoding="utf-8")
+
+
+def test_ambient_above_a_transistor_tj_max_is_noted_by_check_and_run(tmp_path, capsys):
+    # a transistor above its T_j max fails the rating whatever the circuit does (the
+    # datasheet's absolute maximum; common practice, no source): the study is valid, so
+    # check and run accept it, and both say so before any result
+    hot = _replace('temperature = {min = "-20 degC", max = "55 degC"}',
+                   'temperature = {min = "140 degC", max = "160 degC"}')
+    path = _study(tmp_path, hot)
+    assert main(["check", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "note: The ambient reaches 160 degC, above the T_j max of Q1 (150 degC)" in out
+    assert main(["run", str(path), "--samples", "50", "--out", str(tmp_path / "o")]) == 1
+    assert "above the T_j max of Q1" in capsys.readouterr().err
+    # the shipped demo says nothing of it
+    assert main(["check"]) == 0 and "note:" not in capsys.readouterr().out

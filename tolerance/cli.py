@@ -240,6 +240,8 @@ def cmd_run(args) -> int:
         except ValueError as exc:
             raise UsageError(f"--waveforms: {exc}") from None
     progress = (not args.quiet) and sys.stderr.isatty()
+    for note in study.notes():
+        sys.stderr.write(f"tolerance: note: {note}\n")
 
     def warm_plot_workers() -> None:
         from tolerance import report
@@ -479,6 +481,8 @@ def cmd_check(args) -> int:
         unit = study.stage.metrics[c.metric].unit
         rows.append((c.name, c.metric, c.limit_text(lambda x, u=unit: _fmt(x, u)), c.source))
     w("\n" + _table(("criterion", "metric", "limit", "from"), rows, "<<<<"))
+    for note in study.notes():
+        w(f"\nnote: {note}\n")
     return 0
 
 

@@ -495,6 +495,25 @@ class Study:
                 return p
         raise KeyError(name)
 
+    def notes(self) -> list[str]:
+        """Sentences on a valid study that a reviewer should read before its results: an
+        ambient range reaching above a transistor's T_j max (where no circuit helps and the
+        device models leave their range)."""
+        out = []
+        thermal = getattr(self.stage, "thermal", None)
+        env = getattr(self.stage, "env", None)
+        if thermal is None or env is None or env.temperature not in self.parameter_names:
+            return out
+        amb = self.parameter(env.temperature)
+        hottest = amb.high if amb.varies else amb.nominal
+        over = {d: t for d, t in thermal.tj_max.items() if hottest > t}
+        if over:
+            names = ", ".join(f"{d} ({t - 273.15:g} degC)" for d, t in over.items())
+            out.append(f"The ambient reaches {hottest - 273.15:g} degC, above the T_j max of "
+                       f"{names}: units there fail T_j max whatever the circuit does, and the "
+                       f"device models work outside their range (some may not converge).")
+        return out
+
     def run(self, **kwargs):
         """Run the Monte Carlo analysis; see :func:`tolerance.api.run` for the arguments."""
         from tolerance.api import run
