@@ -211,15 +211,13 @@ def metrics_table(summary: dict) -> Table:
 
 def infinite_note(summary: dict) -> str | None:
     """A sentence naming the metrics with infinite samples, which the percentiles leave out
-    (a figure without any finite sample reads '-')."""
+    (a figure without any finite sample reads '-'), and why such values arise."""
     n = summary.get("samples")
-    parts = [f"{name} {format_number(m['infinite'])} of {format_number(n)}"
-             for name, m in summary.get("metrics", {}).items() if m.get("infinite")]
-    if not parts:
-        return None
-    reasons = []
     infinite = [(name, m) for name, m in summary.get("metrics", {}).items()
                 if m.get("infinite")]
+    if not infinite:
+        return None
+    reasons = []
     if any(m.get("unit") == "s" or name == "transition_fraction" for name, m in infinite):
         reasons.append("a switching time where the transition never completes (the switch "
                        "current never crosses its 10 % or 90 % level, e.g. a load that does "
@@ -228,6 +226,8 @@ def infinite_note(summary: dict) -> str | None:
         reasons.append("a stress above its rating's maximum temperature, where the derated "
                        "rating is zero")
     why = "; ".join(reasons) if reasons else "outside the model's range"
+    parts = [f"{name} {format_number(m['infinite'])} of {format_number(n)}"
+             for name, m in infinite]
     return (f"Infinite values ({why}) are left out of the percentiles and fail any criterion "
             "on their metric: " + ", ".join(parts) + ".")
 
@@ -241,8 +241,7 @@ def sampler_note(summary: dict) -> str | None:
     below = 1 << (n.bit_length() - 1)
     return (f"The Sobol sequence keeps its balance (every elementary interval holds its "
             f"share of points) only at a power of two samples; {format_number(n)} is not one: "
-            f"--samples {2 * below} (or {below}) gives the "
-            f"balanced design.")
+            f"--samples {2 * below} (or {below}) gives the balanced design.")
 
 
 def parameter_table(parameters: list[dict]) -> Table:
