@@ -87,7 +87,7 @@ MALFORMED = [
     ("temperature limit in kelvin", _replace('off_current = {max = "10 uA"}',
                                              'off_current = {max = "10 uA"}\n'
                                              'tj_output = {max = "100 K"}'),
-     "limits.tj_output.max", "-173.15 degC (100 K) is below any operating temperature"),
+     "limits.tj_output.max", "-173 degC (100 K) is below any operating temperature"),
     ("PNP where an NPN belongs", _replace('device = "medium_power_npn"',
                                           'device = "small_signal_pnp"'),
      "parts.Q1.device", "this position needs an NPN transistor"),

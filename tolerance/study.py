@@ -25,7 +25,7 @@ import numpy as np
 from tolerance import distributions as dist
 from tolerance.protocol import (ConfiguredStage, Criterion, Parameter, get_stage, range_problem,
                                 stage_names)
-from tolerance.units import UnitError, parse_quantity
+from tolerance.units import UnitError, format_quantity, parse_quantity
 
 SAMPLERS = ("random", "lhs", "sobol")
 _MISSING = object()
@@ -508,8 +508,10 @@ class Study:
         hottest = amb.high if amb.varies else amb.nominal
         over = {d: t for d, t in thermal.tj_max.items() if hottest > t}
         if over:
-            names = ", ".join(f"{d} ({t - 273.15:g} degC)" for d, t in over.items())
-            out.append(f"The ambient reaches {hottest - 273.15:g} degC, above the T_j max of "
+            names = ", ".join(f"{d} ({format_quantity(t, 'temperature')})"
+                              for d, t in over.items())
+            out.append(f"The ambient reaches {format_quantity(hottest, 'temperature')}, above "
+                       f"the T_j max of "
                        f"{names}: units there fail T_j max whatever the circuit does, and the "
                        f"device models work outside their range (some may not converge).")
         return out
@@ -685,9 +687,10 @@ def _read_limits(r: Reader, stage: ConfiguredStage) -> tuple[Criterion, ...]:
             # "100 K" meant as 100 degC (or as a rise) would fail every unit without a word
             for side, value in (("min", lo), ("max", hi)):
                 if value is not None and value < LOWEST_TEMPERATURE_LIMIT:
-                    raise spec.error(side, f"{value - 273.15:g} degC ({value:g} K) is "
-                                           f"below any operating temperature (-100 degC); "
-                                           f"a temperature limit reads e.g. '125 degC'")
+                    shown = format_quantity(value, "temperature")
+                    raise spec.error(side, f"{shown} ({value:g} K) is below any operating "
+                                           f"temperature (-100 degC); a temperature limit "
+                                           f"reads e.g. '125 degC'")
         desc = spec.string("description", default="")
         study_criteria.append(Criterion(metric, metric, lo, hi, "study", desc))
     # a study limit on a metric replaces the stage's default or the rating on that metric on

@@ -304,6 +304,7 @@ def read_switching(reader, parts_reader, stage, topology: str, roles: dict[str, 
         # a limit on one of these is refused with how to compute it (the study reader asks)
         stage.dormant_metrics = dict.fromkeys(metrics, "[switching] enabled = true")
 
+
 def switching_inputs(stage, samples: dict, temps: dict, ambient: np.ndarray):
     """Positional arguments of :func:`tolerance.models.switching.simulate_switching` (and
     ``switching_metrics``) for a batch of samples.
