@@ -41,18 +41,18 @@ Transport current and base charge, Gummel & Poon [1]_::
     I_C  = I_CT - I_BC + I_gen,        I_B = I_BE + I_BC - I_gen
 
 The non-ideal base currents I_SE, I_SC give the gain roll-off at low current. The extra
-collector-base generation current represents the leakage that the ideal diode terms
-understate. Under reverse bias (V_CB >= 0) it is ``I_gen = I_CBO(T) tanh(V_CB / (2 V_T))``,
-the Shockley-Read-Hall factor ``(1 - exp(-V_CB/V_T)) / (1 + exp(-V_CB/V_T))``: it saturates at
+collector-base generation current represents the leakage that the ideal diode terms understate.
+Under reverse bias (V_CB >= 0) it is ``I_gen = I_CBO(T) tanh(V_CB / (2 V_T))``, the
+Shockley-Read-Hall factor ``(1 - exp(-V_CB/V_T)) / (1 + exp(-V_CB/V_T))``: it saturates at
 I_CBO within a few V_T and vanishes at zero bias. A generation current has no source under
 forward bias (the recombination there is the non-ideal I_SC term), so for V_CB < 0 it is
-``I_gen = r I_CBO (exp(V_CB / (2 r V_T)) - 1)`` with a remainder r = 0.02: a few
-millivolts into forward bias it levels off at -0.02 I_CBO, continuous with its slope at zero
-bias, monotonic and passive (I_gen V_CB >= 0). It cannot fall all the way to zero: a leakage that rose and
-then fell again would be a negative differential conductance, which folds the DC solution
-of a stage (the per-sample reference's source stepping stopped at such a fold). Without
-the limit a saturated transistor's collector-base junction carried the full -I_CBO, which
-at the hot corner (leakage in milliamperes) raised a Darlington's on-voltage with
+``I_gen = r I_CBO (exp(V_CB / (2 r V_T)) - 1)`` with a remainder r = 0.02: a few millivolts
+into forward bias it levels off at -0.02 I_CBO, continuous with its slope at zero bias,
+monotonic and passive (I_gen V_CB >= 0). It cannot fall all the way to zero: a leakage that
+rose and then fell again would be a negative differential conductance, which folds the DC
+solution of a stage (the per-sample reference's source stepping stopped at such a fold).
+Without the limit a saturated transistor's collector-base junction carried the full -I_CBO,
+which at the hot corner (leakage in milliamperes) raised a Darlington's on-voltage with
 temperature instead of lowering it. I_CBO doubles every ``leakage_doubling`` kelvin (common
 practice, see the project's reference list).
 
