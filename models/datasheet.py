@@ -240,6 +240,10 @@ class Datasheet:
             raise DatasheetError("vbe_sat_max", "must be above vce_sat_max")
         if self.icbo_spread < 1:
             raise DatasheetError("icbo_spread", "must be at least 1")
+        if self.theta_jc is not None and self.theta_jc >= self.theta_ja:
+            raise DatasheetError("theta_jc", f"{self.theta_jc:g} K/W must be below theta_ja "
+                                             f"({self.theta_ja:g} K/W): the case lies on the "
+                                             "junction's way to the air")
 
 
 @dataclass(frozen=True)

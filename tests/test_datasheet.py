@@ -108,7 +108,8 @@ def test_inconsistent_figures_are_rejected_by_name():
     base = dict(library()["small_signal_npn"].figures)
     for key, value, match in (("hfe_min", 400.0, "hfe_min"), ("icbo_max", -1e-9, "icbo_max"),
                               ("vce_sat_ib", 1e-4, "vce_sat_ib"),
-                              ("hfe_low_current", 0.5, "hfe_low_current")):
+                              ("hfe_low_current", 0.5, "hfe_low_current"),
+                              ("theta_jc", 250.0, "theta_jc")):
         with pytest.raises(DatasheetError) as info:
             Datasheet.from_figures(dict(base, **{key: value}))
         assert info.value.key == match

@@ -26,6 +26,21 @@ def test_heatsink_chain():
     assert_allclose(thermal.junction_temperature(15.0, C0 + 40, theta), C0 + 115.0)
 
 
+def test_heatsink_parallels_the_package_path():
+    # JESD51 steady network: theta_JC, then theta_CS + theta_SA in parallel with the
+    # package's own theta_CA = theta_JA - theta_JC. Constructed: theta_JC 2, theta_JA 62,
+    # sink 0.5 + 9.5 = 10 against 60 gives 2 + 600 / 70 = 10.571 K/W (hand calculation)
+    assert_allclose(thermal.heatsink_resistance(2.0, 0.5, 9.5, 62.0), 2.0 + 600.0 / 70.0)
+    sinks = np.array([0.1, 1.0, 6.0, 100.0, 1e4])
+    theta = thermal.heatsink_resistance(2.0, 0.5, sinks, 62.0)
+    # common practice, no source: any sink cools the part, the better sink the more; a sink
+    # poorer than free air leaves it a little below its free-air figure (the series chain
+    # put it at 102.5 K/W on a 100 K/W sink), and an ideal one leaves theta_JC + theta_CS
+    assert np.all(theta < 62.0) and np.all(np.diff(theta) > 0)
+    assert theta[-1] == pytest.approx(62.0, rel=0.01)
+    assert_allclose(thermal.heatsink_resistance(2.0, 0.5, 0.0, 62.0), 2.0 + 0.5 * 60 / 60.5)
+
+
 def test_derating_curve_break_points():
     # MIL-PRF-39017 / IEC 60115-1 practice: full power to the rated ambient (70 degC),
     # linear to zero at the maximum element temperature (155 degC here)

@@ -95,8 +95,9 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
     """Read ``[thermal]`` and each transistor's heatsink; add thermal metrics and ratings.
 
     Keys: ``[thermal] self_heating`` (default true), ``tj_margin`` [K] (default 0);
-    ``[parts.Qn] heatsink`` [K/W] (sink to ambient; absent: free air with the part's
-    ``theta_ja``) and ``case_to_sink`` [K/W] (default 0.5 K/W with a heatsink, a greased
+    ``[parts.Qn] heatsink`` [K/W] (sink to ambient, in parallel with the package's own path
+    to the air, see :func:`models.thermal.heatsink_resistance`; absent: free air with the
+    part's ``theta_ja``) and ``case_to_sink`` [K/W] (default 0.5 K/W with a heatsink, a greased
     insulating washer, typical value from memory); ``pulse_energy`` [J], the single-pulse
     energy the part may absorb (from its safe-operating-area or single-pulse figure), which
     becomes a rating on a lamp's ``inrush_energy``.
@@ -114,7 +115,7 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
             if ds.theta_jc is None:
                 raise t.error("heatsink", "needs the part's theta_jc (junction to case)")
             cs = t.quantity("case_to_sink", "K/W", default=0.5, minimum=0.0)
-            theta[name] = float(thermal.heatsink_resistance(ds.theta_jc, cs, sink))
+            theta[name] = float(thermal.heatsink_resistance(ds.theta_jc, cs, sink, ds.theta_ja))
             case_theta[name] = float(ds.theta_jc)
         else:
             if t.has("case_to_sink"):
