@@ -91,7 +91,8 @@ DATASHEET_FIGURES: dict[str, tuple[str, str]] = {
     "icbo_vcb": ("V", "collector-base voltage of the I_CBO figure*"),
     "breakdown_vceo": ("V", "collector-emitter breakdown voltage, base open*"),
     "ic_max": ("A", "maximum continuous collector current*"),
-    "power_rating": ("W", "total dissipation at 25 degC ambient*"),
+    "power_rating": ("W", "total dissipation at 25 degC ambient, free air*"),
+    "power_rating_case": ("W", "total dissipation at 25 degC case (a power package's P_tot)"),
     "tj_max": ("temperature", "maximum junction temperature*"),
     "theta_ja": ("K/W", "thermal resistance junction to ambient*"),
     "theta_jc": ("K/W", "thermal resistance junction to case"),
@@ -116,6 +117,9 @@ CLASS_DEFAULTS: dict[str, float] = {
     "leakage_doubling": 10.0,
     "icbo_spread": 30.0,
 }
+
+#: the temperature a P_tot is stated at, ambient or case (datasheet practice) [K]
+RATING_TEMPERATURE = 298.15
 
 REQUIRED = tuple(k for k, (_, d) in DATASHEET_FIGURES.items() if d.endswith("*"))
 
@@ -153,6 +157,7 @@ class Datasheet:
     hfe_low_min: float | None = None
     vbe_sat_max: float | None = None
     theta_jc: float | None = None
+    power_rating_case: float | None = None
     early_voltage: float = CLASS_DEFAULTS["early_voltage"]
     reverse_beta: float = CLASS_DEFAULTS["reverse_beta"]
     beta_exponent: float = CLASS_DEFAULTS["beta_exponent"]
@@ -240,6 +245,11 @@ class Datasheet:
             raise DatasheetError("vbe_sat_max", "must be above vce_sat_max")
         if self.icbo_spread < 1:
             raise DatasheetError("icbo_spread", "must be at least 1")
+        if self.power_rating_case is not None:
+            if self.power_rating_case < self.power_rating:
+                raise DatasheetError("power_rating_case", f"{self.power_rating_case:g} W is "
+                                                          f"below the free-air power_rating "
+                                                          f"({self.power_rating:g} W)")
         if self.theta_jc is not None and self.theta_jc >= self.theta_ja:
             raise DatasheetError("theta_jc", f"{self.theta_jc:g} K/W must be below theta_ja "
                                              f"({self.theta_ja:g} K/W): the case lies on the "

@@ -176,6 +176,47 @@ def test_heatsink_chain_lowers_theta():
     assert study.stage.thermal.theta["Q1"] == pytest.approx(26.6968, abs=1e-4)
 
 
+def test_a_free_air_rating_cannot_exceed_what_theta_ja_allows():
+    # a P_tot is a thermal figure: T_j = T_a + theta_JA P (JESD51-1/-2) at its 25 degC
+    # reference must not pass T_j max, so a 30 W figure (a case rating) entered as the
+    # medium-power part's free-air power_rating leaves its 1.25 W = 125 K / 100 K/W in force
+    plain = run(load_text("a.toml", text=_demo_with()), samples=40).samples
+    inflated = run(load_text("b.toml", text=_demo_with('power_rating = "30 W"')),
+                   samples=40).samples
+    np.testing.assert_array_equal(inflated["power_stress_output"], plain["power_stress_output"])
+    # a higher theta_ja than the class's lowers the rating with it, to 125 K / 160 K/W, derated
+    # linearly from 25 degC to T_j max: above 25 degC the power stress is then the junction's
+    # rise over the rise allowed at this ambient (T_j settled to 0.05 K)
+    warm = run(load_text("c.toml", text=_demo_with('theta_ja = "160 K/W"')), samples=40).samples
+    ta = warm["ambient.temperature"]
+    np.testing.assert_allclose(warm["power_stress_output"],
+                               warm["power_output"] * 160.0 / (423.15 - np.maximum(ta, 298.15)),
+                               rtol=1e-12)
+    hot = ta > 298.15
+    assert hot.sum() > 5
+    np.testing.assert_allclose(warm["power_stress_output"][hot],
+                               ((warm["tj_output"] - ta) / (423.15 - ta))[hot], atol=0.05 / 100)
+    assert (warm["power_stress_output"] > plain["power_stress_output"]).all()
+
+
+def test_a_shared_die_is_rated_on_both_transistors():
+    # the engine-bay pair is one die in free air (monolithic class: 2 W in free air, 62.5 K/W,
+    # T_j max 150 degC, typical class values from memory): its P_tot covers both
+    # transistors' dissipation, T_j = T_a + theta_JA (P_driver + P_output) (JESD51-1/-2), so
+    # above 25 degC the stress equals the junction rise over the rise allowed, for either role
+    study = load_study(ROOT / "studies" / "engine_bay_heater_darlington.toml")
+    df = run(study, samples=60).samples
+    ta = df["ambient.temperature"]
+    die = df["power_driver"] + df["power_output"]
+    np.testing.assert_allclose(df["power_stress_output"],
+                               die * 62.5 / (423.15 - np.maximum(ta, 298.15)), rtol=1e-12)
+    np.testing.assert_array_equal(df["power_stress_driver"], df["power_stress_output"])
+    hot = ta > 298.15
+    assert hot.sum() > 10
+    np.testing.assert_allclose(df["power_stress_output"][hot],
+                               ((df["tj_output"] - ta) / (423.15 - ta))[hot], atol=0.05 / 100)
+
+
 def test_ratings_are_criteria_and_a_study_limit_replaces_one():
     study = load_study()
     names = {c.name: c for c in study.criteria}

@@ -937,6 +937,13 @@ def test_a_heatsinked_part_is_rated_on_its_case():
     assert r["power_stress_output"] == pytest.approx(p * ds.theta_jc / (ds.tj_max - t_case),
                                                      rel=1e-9)
     assert r["power_stress_output"] < 0.3 and r["pass.power_rating_output"]
+    # a stated case rating below (T_j max - 25 degC) / theta_jc = 12.5 W applies instead
+    low = load_text("low.toml", text=HEATSINKED.format(mount='heatsink = "5 K/W"\n'
+                                                         'power_rating_case = "5 W"'))
+    q = run(low, samples=1).samples.iloc[0]
+    t_case = q["tj_output"] - ds.theta_jc * q["power_output"]
+    assert q["power_stress_output"] == pytest.approx(
+        q["power_output"] / (5.0 * (ds.tj_max - t_case) / (ds.tj_max - 298.15)), rel=1e-9)
     # in free air the stated P_tot derated on the ambient still applies
     free = run(load_text("free.toml", text=HEATSINKED.format(mount="")), samples=1)
     f = free.samples.iloc[0]

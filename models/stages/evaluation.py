@@ -36,6 +36,7 @@ from __future__ import annotations
 import numpy as np
 
 from tolerance.models import thermal
+from tolerance.models.datasheet import RATING_TEMPERATURE
 from tolerance.protocol import Criterion, MetricInfo
 
 #: a DC solve starts from the sample's earlier solution, its forward-biased junctions carried
@@ -51,7 +52,7 @@ from tolerance.protocol import Criterion, MetricInfo
 WARM_START_KELVIN = 100.0
 
 #: reference temperature of a transistor's total power rating P_tot [K]
-POWER_RATING_AMBIENT = 298.15
+POWER_RATING_AMBIENT = RATING_TEMPERATURE
 
 
 class ThermalSetup:
@@ -130,13 +131,21 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
                                               "for this part")
             pulse_energy[name] = pulse
         tj_max[name] = float(ds.tj_max)
-        rating[name] = float(ds.power_rating)
+        rise = max(float(ds.tj_max) - POWER_RATING_AMBIENT, 0.0)
+        # a P_tot is a thermal figure: at its 25 degC reference it may not take the junction
+        # beyond T_j max through the part's path (T_j = T_a + theta P, JESD51-1/-2), so the
+        # rating used is the lower of the stated one and rise / theta. In free air a case
+        # rating entered as power_rating (a TO-220's 65 W against its 2 W in free air) or a
+        # study's higher theta_ja no longer leaves the derated P_tot lenient.
         if name in case_theta:
             # on a heatsink the free-air P_tot does not apply: the rating is the case
-            # rating, P_tot(25 degC case) = (T_j max - 25 degC) / theta_jc, derated on the
+            # rating (power_rating_case, and (T_j max - 25 degC) / theta_jc), derated on the
             # case temperature (datasheet practice for a mounted part; a 1.25 W free-air
             # rating on a 5 K/W sink failed parts running at 53 degC)
-            rating[name] = (float(ds.tj_max) - POWER_RATING_AMBIENT) / case_theta[name]
+            stated = ds.power_rating_case if ds.power_rating_case is not None else np.inf
+            rating[name] = min(float(stated), rise / case_theta[name])
+        else:
+            rating[name] = min(float(ds.power_rating), rise / float(ds.theta_ja))
         breakdown[name] = float(ds.breakdown_vceo)
         ic_max[name] = float(ds.ic_max)
     setup = ThermalSetup(theta, tj_max, rating, breakdown, ic_max, dict(shared or {}), roles,
@@ -151,9 +160,15 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
         m[f"power_{role}"] = MetricInfo("W", f"dissipation of {dev} ({role}) averaged over the "
                                              "period, at its junction temperature")
         m[f"tj_{role}"] = MetricInfo("temperature", f"junction temperature of {dev} ({role})")
-        m[f"power_stress_{role}"] = MetricInfo("1", f"dissipation of {dev} over its P_tot "
-                                                    "derated to the ambient (on a heatsink: "
-                                                    "its case rating, to the case)")
+        m[f"power_stress_{role}"] = MetricInfo("1", f"dissipation of {dev} (of the die it "
+                                                    "shares) over its P_tot derated to the "
+                                                    "ambient (on a heatsink: its case "
+                                                    "rating, to the case)"
+                                               if dev in setup.shared.values() or
+                                               dev in setup.shared else
+                                               f"dissipation of {dev} over its P_tot "
+                                               "derated to the ambient (on a heatsink: "
+                                               "its case rating, to the case)")
         limit = setup.tj_max[dev] - setup.margin
         crit.append(Criterion(f"tj_max_{role}", f"tj_{role}", maximum=limit, source="rating",
                               description=f"{dev} junction below T_j max"
@@ -525,7 +540,9 @@ def evaluate_stage(stage, samples):
         allowed = thermal.derated_power(setup.power_rating[d], reference, POWER_RATING_AMBIENT,
                                         setup.tj_max[d])
         with np.errstate(divide="ignore", invalid="ignore"):
-            out[f"power_stress_{role}"] = p / allowed
+            # the rating is the package's: on a monolithic pair's one die, both transistors'
+            # dissipation (heat[carrier] is the device's own power otherwise)
+            out[f"power_stress_{role}"] = heat[carrier] / allowed
             rise = (tj - ambient) / (setup.tj_max[d] - setup.margin - ambient)
         stresses += [rise, out[f"power_stress_{role}"]]
     for name, r in stage.resistors().items():
