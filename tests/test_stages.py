@@ -1002,3 +1002,75 @@ def test_darlington_on_voltage_falls_with_temperature_up_to_the_hot_corner():
     assert res["converged"].all()
     slope = np.diff(res["vce_on"]) / np.diff(t)
     assert np.all((slope > -2.5e-3) & (slope < -1.0e-3)), slope
+
+
+_LATCHED_PAIR = """
+stage = "sziklai"
+[ambient]
+temperature = "113 degC"
+[supply]
+voltage = "58 V"
+[drive]
+high = "3.23 V"
+low = "0.3 V"
+source_resistance = "49 ohm"
+[parts.RB]
+value = "486k"
+[parts.RBE2]
+value = "2k28"
+[parts.Q1]
+device = "small_signal_npn"
+hfe = 265
+icbo = "13.5 nA"
+[parts.Q2]
+device = "small_signal_pnp"
+hfe = 238
+icbo = "10.4 nA"
+[load]
+part = "led_white_5mm"
+count = 5
+series_resistance = "330 ohm"
+"""
+
+_LATCHED_VALVE = """
+stage = "single"
+[ambient]
+temperature = "200 degC"
+[supply]
+voltage = "65.5 V"
+[drive]
+high = "3.04 V"
+low = "0.12 V"
+source_resistance = "33.7 ohm"
+[parts.RB]
+value = "69R"
+[parts.RPD]
+value = "2M2"
+[parts.Q1]
+device = "medium_power_npn"
+hfe = 112.7
+icbo = "100 nA"
+[load]
+part = "valve_coil_24v"
+"""
+
+
+@pytest.mark.parametrize("text", [_LATCHED_PAIR, _LATCHED_VALVE], ids=["sziklai", "valve"])
+def test_a_unit_the_leakage_holds_on_converges_and_fails_off(text):
+    # Hot units whose off state the leakage holds on. The complementary pair at 113 degC: the
+    # driver's I_CBO, some 6 uA, times its gain of about 265 with its base open through
+    # 486 kohm, drops volts across RBE2 and turns the output on (leakage multiplied by the
+    # gain, common practice). The valve driver at 200 degC (above its T_j max): I_CBO some
+    # 37 mA turns it on through its 69 ohm base resistor. Full Newton steps cycled between
+    # two collector voltages from every start (the pair's stage DC, the valve's transient end
+    # state), and short steps from the far start walked into the same cycle: both units
+    # counted as not converged. From the nearer starts they converge: a unit that still
+    # carries most of its on-current when off, whose delays are infinite (it never completes
+    # a 90 % -> 10 % transition).
+    from tolerance.api import run
+
+    r = run(load_study("latched.toml", text=text), samples=1).samples.iloc[0]
+    assert r["converged"]
+    assert r["off_current"] > 0.5 * r["load_current"] > 0
+    if "turn_off_delay" in r:
+        assert math.isinf(r["turn_off_delay"]) and math.isinf(r["release_time"])

@@ -264,10 +264,14 @@ def warm_guesses(start, key, guesses):
     return ordered
 
 
+#: iterations of each short-step retry after the first (0.05 V steps: 5 V of travel)
+SLOW_RETRY_ITERATIONS = 100
+
+
 def solve_with_restarts(system, guesses, slow=True, **options):
     """Newton from the first guess; samples that fail retry from the next guesses in turn,
     and finally (``slow``) with a short maximum step (0.05 V, up to 300 iterations) from the
-    first.
+    first, then from each of the others (up to :data:`SLOW_RETRY_ITERATIONS` each).
 
     Parameters
     ----------
@@ -287,6 +291,12 @@ def solve_with_restarts(system, guesses, slow=True, **options):
     attempts = [(g, options) for g in guesses[1:]]
     if slow and options.get("max_iterations", 60) >= 20:
         attempts.append((guesses[0], dict(options, max_step=0.05, max_iterations=300)))
+        # full steps can cycle between two states (a collector junction swinging by volts
+        # each iteration) from every start, and short steps from a far start walk into the
+        # same cycle; from a nearer one they settle (a latched-on complementary pair's off
+        # state: 30 short steps from the starved guess, 9 from the on-state solution)
+        attempts += [(g, dict(options, max_step=0.05, max_iterations=SLOW_RETRY_ITERATIONS))
+                     for g in guesses[1:]]
     for guess, opts in attempts:
         bad = np.flatnonzero(~res.converged)
         if bad.size == 0:
