@@ -1066,11 +1066,27 @@ def test_a_unit_the_leakage_holds_on_converges_and_fails_off(text):
     # state), and short steps from the far start walked into the same cycle: both units
     # counted as not converged. From the nearer starts they converge: a unit that still
     # carries most of its on-current when off, whose delays are infinite (it never completes
-    # a 90 % -> 10 % transition).
+    # a 90 % -> 10 % transition) and which fails the stays-off check.
     from tolerance.api import run
 
     r = run(load_study("latched.toml", text=text), samples=1).samples.iloc[0]
     assert r["converged"]
     assert r["off_current"] > 0.5 * r["load_current"] > 0
+    # the default stays-off check (load current with the drive low below 1 % of its
+    # on-value) fails it; without it, a study with no off_current window passed the pair
+    assert r["off_fraction"] == pytest.approx(r["off_current"] / r["load_current"], rel=1e-12)
+    assert not r["pass.stays_off"] and not r["pass"]
     if "turn_off_delay" in r:
         assert math.isinf(r["turn_off_delay"]) and math.isinf(r["release_time"])
+
+
+def test_a_working_stage_stays_off():
+    # the demo's heater switch: its off-state leakage is microamperes against tens of
+    # milliamperes on, far below the default stays-off fraction of 1 % (common practice, no
+    # source); off_fraction is the ratio of the two load currents
+    from tolerance.api import demo_text, run
+
+    df = run(load_study("demo.toml", text=demo_text()), samples=50).samples
+    np.testing.assert_allclose(df["off_fraction"], df["off_current"] / df["load_current"],
+                               rtol=1e-12)
+    assert df["pass.stays_off"].all() and (df["off_fraction"] < 1e-3).all()

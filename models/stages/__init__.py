@@ -78,12 +78,23 @@ COMMON_METRICS: dict[str, MetricInfo] = {
     "off_current": MetricInfo("A", "load current, drive low (leakage)"),
     "off_margin": MetricInfo("V", "input voltage giving 1 % of the on-state load current, "
                                   "minus the drive's low level"),
+    "off_fraction": MetricInfo("1", "load current with the drive low over the load current "
+                                    "with the drive high"),
 }
 
 
 def saturation_criterion() -> Criterion:
     return Criterion("saturation", "drive_margin", minimum=1.0, source="stage",
                      description="output fully on (saturation)")
+
+
+def stays_off_criterion() -> Criterion:
+    """The load current with the drive low below 1 % of its on-value (the fraction that
+    defines ``off_margin``'s threshold): a stage the leakage holds on, or whose low drive level
+    turns it on, fails. A study's ``off_current`` or ``off_fraction`` window tightens it."""
+    return Criterion("stays_off", "off_fraction", maximum=THRESHOLD_FRACTION, source="stage",
+                     description="output off at the drive's low level (load current below "
+                                 f"{100 * THRESHOLD_FRACTION:g} % of its on-value)")
 
 
 class Subsettable:
@@ -464,7 +475,7 @@ class PairStage:
         self.metrics = dict(COMMON_METRICS)
         self.metrics.update(PAIR_METRICS)
         self.metrics.update(load.metrics)
-        self.criteria = [saturation_criterion()] + list(load.criteria)
+        self.criteria = [saturation_criterion(), stays_off_criterion()] + list(load.criteria)
         self.solver_options = {}
 
     devices = ("Q1", "Q2")
@@ -611,6 +622,7 @@ class PairStage:
                 "power_output": s_on["p2"],
                 "off_current": s_off["i_out"],
                 "off_margin": v_threshold - v_low,
+                "off_fraction": np.abs(s_off["i_out"]) / np.abs(s_on["i_load"]),
             }
             out.update(load.metrics(vs - s_on["v_out"], s_on["i_load"]))
         for key, value in out.items():

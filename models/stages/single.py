@@ -37,6 +37,7 @@ from tolerance.models.stages import (
     read_resistor,
     saturation_criterion,
     solve_with_restarts,
+    stays_off_criterion,
     threshold_voltage,
     vbe_guess,
     warm_guesses,
@@ -158,7 +159,7 @@ class SingleStage:
         self.parameters = parameters
         self.metrics = dict(COMMON_METRICS)
         self.metrics.update(load.metrics)
-        self.criteria = [saturation_criterion()] + list(load.criteria)
+        self.criteria = [saturation_criterion(), stays_off_criterion()] + list(load.criteria)
         self.solver_options = {}
 
     devices = ("Q1",)
@@ -301,6 +302,7 @@ class SingleStage:
                 "power_output": c.collector * o.collector + c.base * o.base,
                 "off_current": i_off,
                 "off_margin": v_threshold - v_low,
+                "off_fraction": np.abs(i_off) / np.abs(i_on),
             }
             out.update(load.metrics(vs - o.collector, i_on))
         for key, value in out.items():
