@@ -228,6 +228,9 @@ def test_ratings_are_criteria_and_a_study_limit_replaces_one():
     assert names["breakdown"].maximum == pytest.approx(45.0)
     relaxed = load_text("r.toml", text=demo_text() + '\n# relax\n').criteria
     assert len(relaxed) == len(study.criteria)
+    # the demo's drive_margin window replaces the saturation default in its place, first
+    assert [c.name for c in study.criteria][:2] == ["saturation", "stays_off"]
+    assert study.criteria[0].minimum == pytest.approx(1.2)
     text = demo_text().replace('[limits]', '[limits]\ntj_output = {max = "120 degC"}')
     tightened = {c.name: c for c in load_text("t.toml", text=text).criteria}
     assert tightened["tj_max_output"].maximum == pytest.approx(393.15)

@@ -713,8 +713,10 @@ def _read_limits(r: Reader, stage: ConfiguredStage) -> tuple[Criterion, ...]:
                                   c.description or (d.description if d else "")))
     overridden = {c.metric for c in replaced}
     kept = [c for c in stage.criteria if c.metric not in overridden]
-    ordered = ([c for c in kept if c.source == "stage"]
-               + [c for c in replaced if c.source != "rating"]
+    # a stage default keeps its place when a study window replaces it (saturation first)
+    in_place = {c.metric: c for c in replaced if c.source == "stage"}
+    ordered = ([in_place.get(c.metric, c) for c in stage.criteria if c.source == "stage"]
+               + [c for c in replaced if c.source == "study"]
                + [c for c in kept if c.source == "rating"]
                + [c for c in replaced if c.source == "rating"])
     seen, out = set(), []
