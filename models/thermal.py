@@ -79,9 +79,8 @@ def heatsink_resistance(theta_jc, theta_cs, theta_sa, theta_ja=None):
     useful sink (a few K/W against tens) it carries under a tenth of the heat either way,
     and only a sink poorer than free air made the series chain absurd.
     """
-    sink = np.asarray(theta_jc) + np.asarray(theta_cs) + np.asarray(theta_sa)
     if theta_ja is None:
-        return sink
+        return np.asarray(theta_jc) + np.asarray(theta_cs) + np.asarray(theta_sa)
     own = np.asarray(theta_ja) - np.asarray(theta_jc)
     path = np.asarray(theta_cs) + np.asarray(theta_sa)
     return np.asarray(theta_jc) + path * own / (path + own)

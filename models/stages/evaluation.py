@@ -160,15 +160,11 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
         m[f"power_{role}"] = MetricInfo("W", f"dissipation of {dev} ({role}) averaged over the "
                                              "period, at its junction temperature")
         m[f"tj_{role}"] = MetricInfo("temperature", f"junction temperature of {dev} ({role})")
-        m[f"power_stress_{role}"] = MetricInfo("1", f"dissipation of {dev} (of the die it "
-                                                    "shares) over its P_tot derated to the "
-                                                    "ambient (on a heatsink: its case "
-                                                    "rating, to the case)"
-                                               if dev in setup.shared.values() or
-                                               dev in setup.shared else
-                                               f"dissipation of {dev} over its P_tot "
-                                               "derated to the ambient (on a heatsink: "
-                                               "its case rating, to the case)")
+        whose = (f"{dev} (of the die it shares)"
+                 if dev in setup.shared or dev in setup.shared.values() else dev)
+        m[f"power_stress_{role}"] = MetricInfo("1", f"dissipation of {whose} over its P_tot "
+                                                    "derated to the ambient (on a heatsink: "
+                                                    "its case rating, to the case)")
         limit = setup.tj_max[dev] - setup.margin
         crit.append(Criterion(f"tj_max_{role}", f"tj_{role}", maximum=limit, source="rating",
                               description=f"{dev} junction below T_j max"
