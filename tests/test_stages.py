@@ -1081,8 +1081,8 @@ def test_a_unit_the_leakage_holds_on_converges_and_fails_off(text):
 
 
 def test_a_working_stage_stays_off():
-    # the demo's heater switch: its off-state leakage is microamperes against tens of
-    # milliamperes on, far below the default stays-off fraction of 1 % (common practice, no
+    # the demo's heater switch: its off-state leakage is at most microamperes against some
+    # 150 to 200 mA on, far below the default stays-off fraction of 1 % (common practice, no
     # source); off_fraction is the ratio of the two load currents
     from tolerance.api import demo_text, run
 

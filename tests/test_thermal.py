@@ -35,7 +35,8 @@ def test_heatsink_parallels_the_package_path():
     theta = thermal.heatsink_resistance(2.0, 0.5, sinks, 62.0)
     # common practice, no source: any sink cools the part, the better sink the more; a sink
     # poorer than free air leaves it a little below its free-air figure (the series chain
-    # put it at 102.5 K/W on a 100 K/W sink), and an ideal one leaves theta_JC + theta_CS
+    # put it at 102.5 K/W on a 100 K/W sink), and an ideal one (theta_SA = 0) leaves theta_JC
+    # plus theta_CS in parallel with the package's own path
     assert np.all(theta < 62.0) and np.all(np.diff(theta) > 0)
     assert theta[-1] == pytest.approx(62.0, rel=0.01)
     assert_allclose(thermal.heatsink_resistance(2.0, 0.5, 0.0, 62.0), 2.0 + 0.5 * 60 / 60.5)
