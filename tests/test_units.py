@@ -347,6 +347,18 @@ def test_extreme_plain_numbers_in_scientific_notation(x, unit):
     assert parse_quantity(text, unit) == pytest.approx(x, rel=5e-3)
 
 
+@pytest.mark.parametrize(("x", "expected"), [
+    (7.28e-10, "7.28e-10"), (1.71e-5, "1.71e-05"), (9.99e-5, "9.99e-05"), (1e-4, "0.0001"),
+    (3.24e-3, "0.00324"), (-2.5e-7, "-2.5e-07"),
+])
+def test_small_plain_numbers_switch_to_scientific_where_printf_g_does(x, expected):
+    # Python's format specification, "g" presentation (scientific below 1e-4), from memory:
+    # an off-current fraction of 7e-10 reads in a few characters and still reads back
+    text = format_quantity(x, "1")
+    assert text == expected
+    assert parse_quantity(text, "1") == pytest.approx(x, rel=5e-3)
+
+
 @settings(max_examples=200, deadline=None)
 @given(
     x=st.floats(min_value=1e-14, max_value=1e11, allow_nan=False, allow_infinity=False),

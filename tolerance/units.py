@@ -273,7 +273,9 @@ def _plain(x: float, digits: int) -> str:
     rounded = float(f"{x:.{digits}g}")
     if rounded == 0:
         return "0"
-    if abs(rounded) < 1e-15 or abs(rounded) >= 1e12:  # as the prefixed units: scientific
+    # scientific beyond the prefixed units' range, and below 1e-4 as printf's %g does, so
+    # a fraction of 7e-10 reads "7e-10", not "0.0000000007"
+    if abs(rounded) < 1e-4 or abs(rounded) >= 1e12:
         return f"{x:.{digits}g}"
     decimals = max(digits - 1 - math.floor(math.log10(abs(rounded))), 0)
     text = f"{rounded:.{decimals}f}"
