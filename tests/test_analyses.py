@@ -57,6 +57,24 @@ def test_whatif_pin_forms(study):
         pin_value(study, "x1", "3 ohm")
 
 
+def test_a_parameter_typed_without_its_part_or_case_is_pointed_to():
+    # common practice, no source: a name typed without its part ("hfe"), in another case
+    # ("rb") or shared by two parts ("tempco") is answered with the parameters it can mean
+    from tolerance.study import parameter_hint
+    from tolerance.whatif import pin_value
+
+    names = ["supply.voltage", "RB", "RB.tempco", "RPD", "RPD.tempco", "Q1.hfe"]
+    assert parameter_hint("hfe", names) == "; did you mean 'Q1.hfe'?"
+    assert parameter_hint("rb", names) == "; did you mean 'RB'?"
+    assert parameter_hint("q1.hfe", names) == "; did you mean 'Q1.hfe'?"
+    assert parameter_hint("tempco", names) == "; did you mean one of 'RB.tempco', 'RPD.tempco'?"
+    assert parameter_hint("suply.voltage", names) == "; did you mean 'supply.voltage'?"
+    assert parameter_hint("gain", names) == ""
+    demo = load_study(None)
+    with pytest.raises(UsageError, match=r"--pin hfe: .*did you mean 'Q1\.hfe'\?"):
+        pin_value(demo, "hfe", "min")
+
+
 def test_whatif_at_minimum_raises_failures(study):
     from tolerance.whatif import whatif
 

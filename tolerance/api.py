@@ -20,7 +20,7 @@ import numpy as np
 from tolerance import runner
 from tolerance.files import TMP_SUFFIX, os_error_text, write_atomic
 from tolerance.runner import Override, RunSpec
-from tolerance.study import SAMPLERS, Study, StudyError
+from tolerance.study import SAMPLERS, Study, StudyError, parameter_hint
 from tolerance.study import load_study as _load_study_file
 from tolerance.threads import parent_threads
 
@@ -226,7 +226,8 @@ def make_spec(study: Study, samples: int | None = None, seed: int | None = None,
     overrides = overrides or {}
     for name in overrides:
         if name not in study.parameter_names:
-            raise UsageError(f"'{name}' is not a parameter of {study.path}; "
+            raise UsageError(f"'{name}' is not a parameter of {study.path}"
+                             f"{parameter_hint(name, study.parameter_names)}; "
                              f"parameters: {', '.join(study.parameter_names)}")
     corr = study.correlation_matrix() if study.correlations else None
     return RunSpec(study.stage, study.parameters, study.criteria, corr, sampler, seed, samples,

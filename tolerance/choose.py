@@ -17,7 +17,7 @@ import numpy as np
 
 from tolerance.api import UsageError, run
 from tolerance.runner import Override
-from tolerance.study import Study
+from tolerance.study import Study, parameter_hint
 from tolerance.units import UnitError, parse_series_range, preferred_values
 
 
@@ -34,7 +34,8 @@ def parse_vary(study: Study, text: str) -> tuple[str, np.ndarray]:
     try:
         p = study.parameter(name)
     except KeyError:
-        raise UsageError(f"--vary {name}: not a parameter of {study.path}; parameters: "
+        raise UsageError(f"--vary {name}: not a parameter of {study.path}"
+                         f"{parameter_hint(name, study.parameter_names)}; parameters: "
                          f"{', '.join(study.parameter_names)}") from None
     if p.unit == "temperature":
         # preferred numbers are ratios; a temperature is on an offset scale (degC, K)

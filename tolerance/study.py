@@ -46,6 +46,25 @@ def _did_you_mean(word: str, candidates) -> str:
     return f"; did you mean '{close[0]}'?" if close else ""
 
 
+def parameter_hint(word: str, names) -> str:
+    """"; did you mean 'Q1.hfe'?" for a parameter name typed without its part or misspelt.
+
+    Case is ignored. A name that is the last part of exactly one parameter's name (``hfe``
+    for ``Q1.hfe``) points to that parameter (to each, where several end so); otherwise the
+    closest spelling, if any.
+    """
+    names = list(names)
+    lowered = word.lower()
+    for candidates in ([n for n in names if n.lower() == lowered],
+                       [n for n in names if n.lower().endswith("." + lowered)]):
+        if len(candidates) == 1:
+            return f"; did you mean '{candidates[0]}'?"
+        if candidates:
+            return f"; did you mean one of {', '.join(repr(c) for c in candidates)}?"
+    close = difflib.get_close_matches(lowered, [n.lower() for n in names], n=1, cutoff=0.6)
+    return f"; did you mean '{names[[n.lower() for n in names].index(close[0])]}'?" if close else ""
+
+
 #: names a base-emitter (pull-down) resistor goes by in the stages
 _BASE_EMITTER_NAMES = ("RPD", "RBE1", "RBE2")
 
@@ -746,7 +765,7 @@ def _read_correlations(top: Reader, ctx: _Context) -> tuple[Correlation, ...]:
         for p in plist:
             if p not in ctx.parameters:
                 raise r.error("parameters", f"'{p}' is not a parameter of this study" +
-                              _did_you_mean(p, ctx.parameters))
+                              parameter_hint(p, ctx.parameters))
             if not ctx.parameters[p].varies:
                 raise r.error("parameters", f"'{p}' has no spread, so it cannot be correlated")
         if len(set(plist)) != len(plist):

@@ -13,7 +13,7 @@ import numpy as np
 
 from tolerance.api import UsageError, run
 from tolerance.runner import Override
-from tolerance.study import Study
+from tolerance.study import Study, parameter_hint
 from tolerance.units import UnitError, format_quantity, parse_quantity
 
 _PERCENTILE = re.compile(r"^p(\d+(?:\.\d+)?)$")
@@ -34,7 +34,8 @@ def _pin_value(study: Study, name: str, spec: str) -> float:
     try:
         p = study.parameter(name)
     except KeyError:
-        raise UsageError(f"--pin {name}: not a parameter of {study.path}; parameters: "
+        raise UsageError(f"--pin {name}: not a parameter of {study.path}"
+                         f"{parameter_hint(name, study.parameter_names)}; parameters: "
                          f"{', '.join(study.parameter_names)}") from None
     spec = spec.strip()
     if spec == "min":
