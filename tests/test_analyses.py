@@ -3,12 +3,16 @@ sensitivity, target interval, run insights."""
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
 from tolerance.api import UsageError, load_study, run
 from tolerance.runner import Override
+
+ROOT = Path(__file__).resolve().parent.parent
 
 LINEAR = """
 stage = "linear_test"
@@ -147,6 +151,52 @@ def test_choose_refuses_a_temperature_and_names_the_twice_varied_part(study):
     # two sweeps multiply: 17 E24 values from 1 to 4.7 (IEC 60063) each, 289 whole runs
     with pytest.raises(UsageError, match="17 x 17 = 289 candidates"):
         check_request(study, ["x2=E24:1..4.7", "x1=E24:1..4.7"])
+
+
+def test_default_tradeoff_weighs_the_first_check_against_what_the_choice_moves():
+    # common practice, no source: a value choice is weighed against what it costs, so the
+    # default pair is the first limited metric and the one failing most over the candidates,
+    # else the one whose robust end moves most relative to its limit
+    from types import SimpleNamespace
+
+    from tolerance.choose import default_tradeoff
+    from tolerance.protocol import Criterion, MetricInfo
+
+    criteria = [Criterion("sat", "margin", minimum=1.2), Criterion("off", "fraction", maximum=0.01),
+                Criterion("hot", "stress", maximum=1.0), Criterion("amps", "peak", maximum=2.0)]
+    study = SimpleNamespace(criteria=criteria, stage=SimpleNamespace(
+        metrics={m: MetricInfo("1", m) for m in ("margin", "fraction", "stress", "peak")}))
+
+    def summary(rates, ends):
+        return {"criteria": {k: {"rate": r} for k, r in rates.items()},
+                "metrics": {m: {("p001" if m == "margin" else "p999"): v}
+                            for m, v in ends.items()}}
+
+    quiet = {"sat": 0.0, "off": 0.0, "hot": 0.0, "amps": 0.0}
+    ends = [{"margin": 2.0, "fraction": 3.36e-5, "stress": 0.2, "peak": 1.0},
+            {"margin": 1.5, "fraction": 3.37e-5, "stress": 0.5, "peak": 1.2}]
+    # no failures: the stress moves 0.3 of its limit, the peak 0.1, the fraction 1e-5
+    assert default_tradeoff(study, [summary(quiet, e) for e in ends]) == ("margin", "stress")
+    # failures come first, whatever moves most
+    failing = dict(quiet, amps=0.25)
+    assert default_tradeoff(study, [summary(failing, ends[0]), summary(quiet, ends[1])]) == (
+        "margin", "peak")
+    # a figure no sample produced (None) and a rate of a run with nothing converged (NaN)
+    blank = summary({**quiet, "hot": float("nan")}, {**ends[0], "stress": None})
+    assert default_tradeoff(study, [blank, summary(quiet, ends[1])]) == ("margin", "peak")
+
+
+def test_choose_on_the_beacon_weighs_drive_against_the_lamp_inrush():
+    # the cold filament's inrush grows as the base resistor falls (a tungsten lamp's cold
+    # resistance is about a tenth of its hot one, from memory): the default trade-off is the
+    # drive margin against the peak current, which fails below some RB
+    from tolerance.choose import choose
+
+    study = load_study(ROOT / "studies" / "beacon_lamp_darlington.toml")
+    result = choose(study, ["RB=E6:100..220"], samples=300)
+    assert list(result["tradeoff"]) == ["drive_margin", "peak_current"]
+    peaks = [c["peak_current"] for c in result["candidates"]]
+    assert all(b < a for a, b in zip(peaks, peaks[1:]))
 
 
 def test_worst_case_of_linear_stage_is_exact(study):

@@ -91,9 +91,10 @@ def frontier(points: list[dict], x: str, y: str, dx: int, dy: int) -> list[int]:
 
 
 def check_request(study: Study, varies: list[str], tradeoff: tuple[str, ...] | None = None
-                  ) -> tuple[list[tuple[str, np.ndarray]], tuple[str, ...]]:
+                  ) -> tuple[list[tuple[str, np.ndarray]], tuple[str, ...] | None]:
     """The sweeps and the trade-off metrics of a value choice, or a UsageError naming what is
-    wrong (called before anything is written)."""
+    wrong (called before anything is written). Without ``tradeoff`` the second element is
+    None: the default pair depends on the candidates' results (:func:`default_tradeoff`)."""
     if not 1 <= len(varies) <= 2:
         raise UsageError(f"choose takes one or two --vary NAME=SERIES:LOW..HIGH, got {len(varies)}")
     sweeps = [parse_vary(study, v) for v in varies]
@@ -107,9 +108,8 @@ def check_request(study: Study, varies: list[str], tradeoff: tuple[str, ...] | N
                          f"most {MAX_CANDIDATES})")
     metrics = study.stage.metrics
     if tradeoff is None:
-        limited = list(dict.fromkeys(c.metric for c in study.criteria))
-        tradeoff = tuple((limited + [m for m in metrics if m not in limited])[:2])
-    elif len(tradeoff) != 2:
+        return sweeps, None  # chosen from the candidates' results (default_tradeoff)
+    if len(tradeoff) != 2:
         raise UsageError("--tradeoff takes two metrics separated by a comma, e.g. "
                          f"{','.join(list(metrics)[:2])}")
     for m in tradeoff:
@@ -119,6 +119,45 @@ def check_request(study: Study, varies: list[str], tradeoff: tuple[str, ...] | N
     return sweeps, tuple(tradeoff)
 
 
+def _robust_end(study: Study, metric: str) -> str:
+    """The percentile a trade-off reads: the low tail when larger is better, else the high."""
+    return "p001" if _direction(study, metric) > 0 else "p999"
+
+
+def default_tradeoff(study: Study, summaries: list[dict]) -> tuple[str, ...]:
+    """The trade-off pair when none is asked for, from the candidates' summaries.
+
+    The first limited metric (the saturation check's drive margin on every stage) against the
+    limited metric the choice moves most: the one whose criteria fail most often summed over
+    the candidates, then the one whose robust end (``p001`` or ``p999``) spans the widest range
+    over the candidates relative to its limit; ties keep the criteria's order. A choice of base
+    resistor is thus weighed against what it costs (on the beacon study: the resistor's
+    stress or the driver's current), not against a check it never moves.
+    """
+    metrics = study.stage.metrics
+    limited = list(dict.fromkeys(c.metric for c in study.criteria))
+    if len(limited) < 2:
+        return tuple((limited + [m for m in metrics if m not in limited])[:2])
+
+    def score(metric):
+        rates = [s["criteria"][c.name]["rate"] for s in summaries for c in study.criteria
+                 if c.metric == metric and c.name in s["criteria"]]
+        failures = sum(r for r in rates if r is not None and math.isfinite(r))
+        ends = np.array([s["metrics"].get(metric, {}).get(_robust_end(study, metric))
+                         for s in summaries], dtype=float)
+        ends = ends[np.isfinite(ends)]
+        span = float(ends.max() - ends.min()) if ends.size else 0.0
+        limit = next((c.minimum if _direction(study, metric) > 0 else c.maximum
+                      for c in study.criteria if c.metric == metric), None)
+        scale = abs(limit) if limit is not None and math.isfinite(limit) and limit != 0 else 1.0
+        return failures, span / scale
+
+    rest = limited[1:]
+    scores = [score(m) for m in rest]
+    best = max(range(len(rest)), key=lambda i: (scores[i], -i))
+    return limited[0], rest[best]
+
+
 def choose(study: Study, varies: list[str], samples: int | None = None, seed: int | None = None,
            sampler: str | None = None, jobs: int = 1, tradeoff: tuple[str, str] | None = None,
            chunk_size: int | None = None) -> dict:
@@ -126,10 +165,7 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
     sweeps, tradeoff = check_request(study, varies, tradeoff)
     names = [n for n, _ in sweeps]
     metrics = study.stage.metrics
-    # robust end of each trade-off metric: the low tail when larger is better, else the high
-    ends = {m: ("p001" if _direction(study, m) > 0 else "p999") for m in tradeoff}
-
-    candidates = []
+    candidates, summaries = [], []
     for combo in itertools.product(*[vals for _, vals in sweeps]):
         overrides = {n: Override("scale", float(v) / study.parameter(n).nominal)
                      for n, v in zip(names, combo)}
@@ -141,9 +177,15 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
                "ci_high": s["yield"]["ci_high"], "verdict": s["verdict"],
                "not_converged": s["not_converged"],
                "criteria": {k: c["rate"] for k, c in s["criteria"].items()}}
+        candidates.append(row)
+        summaries.append(s)
+    if tradeoff is None:
+        tradeoff = default_tradeoff(study, summaries)
+    # robust end of each trade-off metric: the low tail when larger is better, else the high
+    ends = {m: _robust_end(study, m) for m in tradeoff}
+    for row, s in zip(candidates, summaries):
         for m in tradeoff:
             row[m] = s["metrics"][m][ends[m]]
-        candidates.append(row)
 
     def rank_key(row):
         dist = sum(abs(math.log(row["values"][n] / study.parameter(n).nominal)) for n in names)

@@ -128,8 +128,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--vary", action="append", default=[], metavar="NAME=SERIES:LOW..HIGH",
                    help="e.g. RBE2=E24:47..1k; once or twice")
     p.add_argument("--tradeoff", metavar="METRIC,METRIC",
-                   help="two metrics for the trade-off frontier (default: the first two "
-                        "limited metrics)")
+                   help="two metrics for the trade-off frontier (default: the first limited "
+                        "metric against the limited metric the choice moves most)")
 
     p = sub.add_parser("report", help="rebuild the reports of a result folder from its saved "
                        "results")
