@@ -319,27 +319,91 @@ def test_text_is_escaped(folder, tmp_path):
     assert '<script>alert("x")</script> & | pipe' in " ".join(page.text)
     md = (copy / "report.md").read_text(encoding="utf-8")
     rows = md_table_after(md, "## Worst case (worstcase.json)")
-    assert ["name", "nominal", "eva_min"] == rows[0] and rows[1] == ["<b>y</b>", "3", "0.5"]
+    assert rows[0][:3] == ["metric", "nominal", "EVA min .. max"]
+    assert rows[1][:3] == ["<b>y</b>", "3", "0.5 .. -"]
+    assert ["x|1", "-", "-1", "-"] in md_table_after(md, BOUNDS_CAPTION)
 
 
-def test_extra_files_render_generically_as_tables(folder, tmp_path):
+BOUNDS_CAPTION = "*Parameter ranges searched (tolerance, widened by any drift)*"
+
+
+def test_analysis_files_render_as_their_tables_or_as_saved(folder, tmp_path):
+    # common practice, no source: a reviewer reads the ranking, not the file's nesting; a
+    # file this version cannot lay out (written by hand, another version) shows as saved
     copy = tmp_path / "extra"
     shutil.copytree(folder, copy)
     (copy / "sensitivity.json").write_text(json.dumps({
         "seed": 3,
-        "rank": [{"input": "x1", "metric": "y", "spearman": 0.9, "srrc": 0.8, "prcc": 0.95},
-                 {"input": "x2", "metric": "y", "spearman": -0.1, "srrc": -0.2, "prcc": -0.3}],
+        "rank": [{"input": "x2", "metric": "y", "spearman": -0.1, "srrc": -0.2, "prcc": -0.3},
+                 {"input": "x1", "metric": "y", "spearman": 0.9, "srrc": 0.8, "prcc": 0.95}],
         "sobol": {"y": {"x1": {"first": 0.7, "total": 0.8}, "x2": {"first": 0.1,
                                                                   "total": 0.12}}},
         "notes": ["one", "two"]}))
     report.write_reports(copy)
     page = parse_html((copy / "report.html").read_text(encoding="utf-8"))
     tables = list(page.tables.values())
-    assert [["input", "metric", "spearman", "srrc", "prcc"],
-            ["x1", "y", "0.9", "0.8", "0.95"],
-            ["x2", "y", "-0.1", "-0.2", "-0.3"]] in tables
-    assert [["name", "first", "total"], ["x1", "0.7", "0.8"], ["x2", "0.1", "0.12"]] in tables
-    assert "one, two" in " ".join(page.text)
+    # ranked by the size of the Spearman coefficient
+    assert [["input", "spearman", "srrc", "prcc", "sobol S1", "sobol ST"],
+            ["x1", "0.900", "0.800", "0.950", "0.700", "0.800"],
+            ["x2", "-0.100", "-0.200", "-0.300", "0.100", "0.120"]] in tables
+    text = " ".join(page.text)
+    assert "one" in text and "two" in text and "not laid out" not in text
+
+    (copy / "sensitivity.json").write_text(json.dumps({"rank": ["junk"], "seed": 3}))
+    report.write_reports(copy)
+    page = parse_html((copy / "report.html").read_text(encoding="utf-8"))
+    assert "not laid out as this version writes it" in " ".join(page.text)
+    assert [["key", "value"], ["seed", "3"]] in list(page.tables.values())
+
+
+def test_analysis_sections_show_the_console_tables_in_units(tmp_path):
+    # the report's sections of a worst case, a what-if, a sensitivity ranking and a value
+    # choice are the tables the console prints, in engineering units (degC, not kelvin)
+    from tolerance.cli import main
+
+    for args in (["worstcase", "--samples", "60"],
+                 ["whatif", "--samples", "60", "--pin", "Q1.hfe=min"],
+                 ["sensitivity", "--samples", "60", "--sobol-samples", "64"],
+                 ["choose", "--samples", "60", "--vary", "RB=E6:100..220"]):
+        out = tmp_path / args[0]
+        assert main([*args, "--out", str(out), "--quiet"]) in (0, 1)
+        md = (out / "report.md").read_text(encoding="utf-8")
+        data = json.loads(next(out.glob("*.json")).read_text())
+        assert "not laid out" not in md and "Seed-tray heater switch (demo)" in md
+        if args[0] == "worstcase":
+            rows = md_table_after(md, "*Worst case of every metric*")
+            assert rows[0][-2:] == ["limit", "worst case within"]
+            assert ["vce_on", "<= 400 mV", "yes"] == [rows[[r[0] for r in rows].index(
+                "vce_on")][i] for i in (0, -2, -1)]
+            bounds = md_table_after(md, BOUNDS_CAPTION)
+            assert ["ambient.temperature", "17.5 degC", "-20 degC", "55 degC"] in bounds
+        elif args[0] == "whatif":
+            rows = md_table_after(md, "*Counted failure rate per criterion*")
+            assert rows[0] == ["criterion", "limit", "baseline ppm", "pinned ppm", "baseline",
+                               "pinned"]
+            assert ["saturation", ">= 1.2"] == rows[1][:2]
+            pins = md_table_after(md, "*Parameters pinned (the rest keep their samples)*")
+            assert ["Q1.hfe", "40"] in pins
+        elif args[0] == "sensitivity":
+            assert data["limited"][0] == "drive_margin"
+            assert md_table_after(md, "*drive_margin*")[0][0] == "input"
+        else:
+            rows = md_table_after(md, "*Candidates (common random numbers)*")
+            assert [r[0] for r in rows[1:]] == ["100 Ohm", "150 Ohm", "220 Ohm"]
+            assert sum("best" in r[-1] for r in rows[1:]) == 1
+
+
+def test_worst_case_within_compares_the_worst_extremes_with_every_limit():
+    # common practice, no source: the classic worst-case sign-off holds when the extremes of
+    # the corners and of the search lie inside the limits; the Monte Carlo extremes and the
+    # RSS band do not decide it
+    m = {"eva_min": 1.3, "eva_max": 12.0, "opt_min": 1.25, "opt_max": None, "rss_low": 0.9,
+         "mc_min": 1.8}
+    assert report.worst_case_within(m, [{"min": 1.2, "max": None}]) == "yes"
+    assert report.worst_case_within(m, [{"min": 1.26, "max": None}]) == "no"
+    assert report.worst_case_within(m, [{"min": None, "max": 11.0}]) == "no"
+    assert report.worst_case_within(m, []) == "-"
+    assert report.worst_case_within({"eva_min": float("nan")}, [{"min": 0, "max": None}]) == "-"
 
 
 def test_analysis_only_folders(write_study, tmp_path):

@@ -200,7 +200,7 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
     n_samples = run_samples = samples if samples is not None else study.settings.samples
     used_sampler = sampler or study.settings.sampler
     return {
-        "study": study.path, "study_hash": study.study_hash,
+        "study": study.path, "study_hash": study.study_hash, "title": study.title,
         "seed": study.settings.seed if seed is None else seed, "samples": n_samples,
         "sampler": used_sampler, "vary": {n: [float(v) for v in vals] for n, vals in sweeps},
         "units": {n: study.parameter(n).unit for n in names},

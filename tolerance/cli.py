@@ -190,6 +190,12 @@ def _table(header, rows, align: str, indent: str = "") -> str:
     return "".join(lines)
 
 
+def _text_table(table, indent: str = "") -> str:
+    """A report table (:class:`tolerance.report.Table`) as console text: the first column
+    left-aligned, the others right-aligned."""
+    return _table(table.header, table.rows, "<" + ">" * (len(table.header) - 1), indent)
+
+
 def print_summary(summary: dict, study, out) -> None:
     w = sys.stdout.write
     w(f"\n{summary['title']}  ({summary['stage']} stage, {summary['samples']:,} samples, "
@@ -319,21 +325,12 @@ def cmd_whatif(args) -> int:
         w = sys.stdout.write
         w(f"\nwhat if {', '.join(args.pin)}  ({result['samples']:,} samples, common random "
           "numbers)\n")
+        from tolerance.report import whatif_tables
+
         yb, yp = result["yield"]["baseline"], result["yield"]["pinned"]
         w(f"yield  baseline {100 * yb['estimate']:.4f} %   pinned {100 * yp['estimate']:.4f} %\n\n")
-        rows = [(name, _ppm(c["baseline"]["rate"]), _ppm(c["pinned"]["rate"]),
-                 c["baseline"]["verdict"], c["pinned"]["verdict"])
-                for name, c in result["criteria"].items()]
-        w(_table(("criterion", "baseline ppm", "pinned ppm", "baseline", "pinned"), rows,
-                 "<>>>>"))
-        rows = []
-        for name, m in result["metrics"].items():
-            u = m["unit"]
-            rows.append((name,
-                         f"{_fmt(m['baseline']['p001'], u)} / {_fmt(m['baseline']['p999'], u)}",
-                         f"{_fmt(m['pinned']['p001'], u)} / {_fmt(m['pinned']['p999'], u)}"))
-        w("\n" + _table(("metric", "baseline p0.1 / p99.9", "pinned p0.1 / p99.9"), rows,
-                        "<>>"))
+        _, _, criteria, spread = whatif_tables(result)
+        w(_text_table(criteria) + "\n" + _text_table(spread))
         w(f"\nresults in {out}\n\nCaution: {SAFETY}\n")
     return exit_status(result["verdict"]["pinned"])
 
@@ -361,16 +358,9 @@ def cmd_worstcase(args) -> int:
     if not args.quiet:
         w = sys.stdout.write
         w(f"\nworst case of {study.title}  ({result['evaluations']:,} evaluations)\n\n")
-        rows = []
-        for name, m in result["metrics"].items():
-            u = result["units"][name]
-            rows.append((name, _fmt(m["nominal"], u),
-                         f"{_fmt(m['eva_min'], u)} .. {_fmt(m['eva_max'], u)}",
-                         f"{_fmt(m['rss_low'], u)} .. {_fmt(m['rss_high'], u)}",
-                         f"{_fmt(m['opt_min'], u)} .. {_fmt(m['opt_max'], u)}",
-                         f"{_fmt(m.get('mc_min'), u)} .. {_fmt(m.get('mc_max'), u)}"))
-        w(_table(("metric", "nominal", "EVA min .. max", "RSS band", "optimizer min .. max",
-                  "Monte Carlo min .. max"), rows, "<>>>>>"))
+        from tolerance.report import worstcase_tables
+
+        w(_text_table(worstcase_tables(result)[0]))
         w(f"\nresults in {out}\n\nCaution: {SAFETY}\n")
     return 0
 
@@ -390,18 +380,10 @@ def cmd_sensitivity(args) -> int:
     if not args.quiet:
         w = sys.stdout.write
         w(f"\nsensitivity of {study.title}  ({result['evaluations']:,} evaluations)\n")
-        for metric in [c.metric for c in study.criteria]:
-            rows = sorted((r for r in result["rank"] if r["metric"] == metric),
-                          key=lambda r: -abs(r["spearman"] or 0))[:6]
-            sob = result["sobol"].get(metric, {})
-            cells = []
-            for r in rows:
-                s = sob.get(r["input"], {})
-                cells.append((r["input"], *(f"{v:.3f}" if isinstance(v, float) else "-" for v in
-                                            (r["spearman"], r["srrc"], r["prcc"],
-                                             s.get("first"), s.get("total")))))
-            w(f"\n{metric}\n" + _table(("input", "spearman", "srrc", "prcc", "sobol S1",
-                                          "sobol ST"), cells, "<>>>>>", indent="  "))
+        from tolerance.report import sensitivity_tables
+
+        for table in sensitivity_tables(result):
+            w(f"\n{table.caption}\n" + _text_table(table, indent="  "))
         w(f"\nresults in {out}\n")
     return 0
 
@@ -427,16 +409,9 @@ def cmd_choose(args) -> int:
         names = list(result["vary"])
         w(f"\nvalue choice for {', '.join(names)}  ({result['samples']:,} samples per "
           "candidate, common random numbers)\n\n")
-        tm = list(result["tradeoff"])
-        w("  ".join(f"{n:>12}" for n in names) + f" {'yield %':>10} {'95 % interval':>22} "
-          + " ".join(f"{m + ' ' + result['tradeoff'][m]['statistic']:>24}" for m in tm) + "\n")
-        for i, c in enumerate(result["candidates"]):
-            mark = " *" if c is result["best"] or c == result["best"] else ""
-            front = " frontier" if i in result["frontier"] else ""
-            w("  ".join(f"{_fmt(c['values'][n], result['units'][n]):>12}" for n in names)
-              + f" {100 * c['yield']:>10.3f} {100 * c['ci_low']:>10.3f} .. {100 * c['ci_high']:<9.3f}"
-              + " ".join(f"{_fmt(c[m], result['tradeoff'][m]['unit']):>24}" for m in tm)
-              + mark + front + "\n")
+        from tolerance.report import choose_table
+
+        w(_text_table(choose_table(result)))
         best = result["best"]
         w("\nbest: " + ", ".join(f"{n} = {_fmt(best['values'][n], result['units'][n])}"
                                   for n in names)

@@ -351,6 +351,235 @@ def generic_blocks(data, title: str | None = None, depth: int = 0) -> list[Block
     return out
 
 
+# --- analysis sections: the tables the console prints and the reports show ----------------------
+
+def format_ppm(rate) -> str:
+    """A rate in parts per million to one decimal, e.g. ``"184.4"``; ``"-"`` for none."""
+    if rate is None:
+        return "-"
+    rate = float(rate)
+    return "nan" if math.isnan(rate) else f"{1e6 * rate:.1f}"
+
+
+def _span(low, high, unit) -> str:
+    return f"{format_value(low, unit)} .. {format_value(high, unit)}"
+
+
+def _finite(*values) -> list[float]:
+    return [float(v) for v in values if isinstance(v, (int, float)) and math.isfinite(v)]
+
+
+def worst_case_within(m: dict, limits: list[dict]) -> str:
+    """"yes" when the worst case (the extreme-value and optimizer extremes) lies within every
+    limit of its metric, "no" when it does not, "-" without a limit or a finite extreme."""
+    lows, highs = _finite(m.get("eva_min"), m.get("opt_min")), _finite(m.get("eva_max"),
+                                                                         m.get("opt_max"))
+    if not limits or not (lows or highs):
+        return "-"
+    for c in limits:
+        if c.get("min") is not None and (not lows or min(lows) < c["min"]):
+            return "no"
+        if c.get("max") is not None and (not highs or max(highs) > c["max"]):
+            return "no"
+    return "yes"
+
+
+def worstcase_tables(data: dict) -> list[Table]:
+    """The worst-case analysis as tables: every metric's nominal, extreme-value (EVA), RSS,
+    optimizer and Monte Carlo extremes beside its limits, then the parameter bounds."""
+    units = data.get("units") or {}
+    limits: dict[str, list[dict]] = {}
+    for c in data.get("criteria") or []:
+        limits.setdefault(c["metric"], []).append(c)
+    rows, classes = [], []
+    for name, m in data["metrics"].items():
+        u = units.get(name)
+        within = worst_case_within(m, limits.get(name, []))
+        rows.append([name, format_value(m.get("nominal"), u),
+                     _span(m.get("eva_min"), m.get("eva_max"), u),
+                     _span(m.get("rss_low"), m.get("rss_high"), u),
+                     _span(m.get("opt_min"), m.get("opt_max"), u),
+                     _span(m.get("mc_min"), m.get("mc_max"), u),
+                     "; ".join(_limits_text(c, u) for c in limits.get(name, [])) or "-",
+                     within])
+        classes.append([""] * 7 + ["v-fail" if within == "no" else ""])
+    metrics = Table(["metric", "nominal", "EVA min .. max", "RSS band", "optimizer min .. max",
+                     "Monte Carlo min .. max", "limit", "worst case within"], rows,
+                    "worstcase-table", "Worst case of every metric", classes)
+    bounds = Table(["parameter", "nominal", "low", "high"],
+                   [[b["name"], format_value(b.get("nominal"), b.get("unit")),
+                     format_value(b.get("low"), b.get("unit")),
+                     format_value(b.get("high"), b.get("unit"))]
+                    for b in data.get("bounds") or []],
+                   "bounds-table", "Parameter ranges searched (tolerance, widened by any drift)")
+    return [metrics, bounds]
+
+
+WORST_CASE_METHODS = (
+    "EVA: every parameter at an end of its range (all corners, or the corners the "
+    "sensitivities at nominal point to where there are too many). RSS: the sensitivities at "
+    "nominal times the half-ranges, added in quadrature; it takes the metric as linear and the "
+    "parameters as independent, so for a metric exponential in its inputs (leakage, off "
+    "current) the band can reach values the circuit cannot (a negative current). Optimizer: "
+    "bounded searches from several starts for the limited metrics, which finds an extreme "
+    "inside the ranges that no corner shows. Monte Carlo: the extremes of the samples drawn. "
+    "'worst case within' compares the EVA and optimizer extremes with the metric's limits.")
+
+
+def whatif_tables(data: dict) -> list[Table]:
+    """A what-if as tables: the pins, yield and verdict of the baseline and the pinned run,
+    each criterion's counted rate, and each metric's 0.1 % and 99.9 % points."""
+    pins = Table(["parameter", "pinned at"],
+                 [[n, str(v)] for n, v in (data.get("pinned_values") or {}).items()],
+                 "pins-table", "Parameters pinned (the rest keep their samples)")
+    yb, yp = data["yield"]["baseline"], data["yield"]["pinned"]
+    verdicts = data.get("verdict") or {}
+    nc = data.get("not_converged") or {}
+    runs = Table(["", "baseline", "pinned"], [
+        ["yield", format_rate(yb.get("estimate")), format_rate(yp.get("estimate"))],
+        ["95 % exact interval", format_interval(yb.get("ci_low"), yb.get("ci_high")),
+         format_interval(yp.get("ci_low"), yp.get("ci_high"))],
+        ["verdict", *(VERDICT_WORDS.get(verdicts.get(k), str(verdicts.get(k, "-")).upper())
+                      for k in ("baseline", "pinned"))],
+        ["not converged", format_number(nc.get("baseline")), format_number(nc.get("pinned"))],
+    ], "whatif-yield-table", "Baseline and pinned run")
+    metrics = data.get("metrics") or {}
+    rows, classes = [], []
+    for name, c in data["criteria"].items():
+        unit = (metrics.get(c.get("metric")) or {}).get("unit")
+        b, q = c["baseline"], c["pinned"]
+        rows.append([name, _limits_text(c.get("limit") or {}, unit), format_ppm(b.get("rate")),
+                     format_ppm(q.get("rate")),
+                     VERDICT_WORDS.get(b.get("verdict"), str(b.get("verdict")).upper()),
+                     VERDICT_WORDS.get(q.get("verdict"), str(q.get("verdict")).upper())])
+        classes.append([""] * 4 + [f"v-{b.get('verdict')}", f"v-{q.get('verdict')}"])
+    criteria = Table(["criterion", "limit", "baseline ppm", "pinned ppm", "baseline",
+                      "pinned"], rows, "whatif-criteria-table",
+                     "Counted failure rate per criterion", classes)
+    rows = []
+    for name, m in metrics.items():
+        u = m.get("unit")
+        b, q = m["baseline"], m["pinned"]
+        rows.append([name, f"{format_value(b.get('p001'), u)} / {format_value(b.get('p999'), u)}",
+                     f"{format_value(q.get('p001'), u)} / {format_value(q.get('p999'), u)}"])
+    spread = Table(["metric", "baseline p0.1 / p99.9", "pinned p0.1 / p99.9"], rows,
+                   "whatif-metrics-table", "Spread of every metric")
+    return [pins, runs, criteria, spread]
+
+
+def sensitivity_tables(data: dict, top: int = 6) -> list[Table]:
+    """One ranking per limited metric (all metrics for a file without that list): the
+    ``top`` inputs by the size of their Spearman coefficient, with SRRC, PRCC and the Sobol
+    first and total indices."""
+    rank = data["rank"]
+    order = data.get("limited") or list(dict.fromkeys(r["metric"] for r in rank))
+    sobol = data.get("sobol") or {}
+
+    def cell(v):
+        return f"{v:.3f}" if isinstance(v, (int, float)) and math.isfinite(v) else "-"
+
+    tables = []
+    for metric in order:
+        rows = sorted((r for r in rank if r["metric"] == metric),
+                      key=lambda r: -abs(r["spearman"]) if isinstance(r["spearman"], (int, float))
+                      and math.isfinite(r["spearman"]) else 0.0)[:top]
+        if not rows:
+            continue
+        sob = sobol.get(metric) or {}
+        tables.append(Table(
+            ["input", "spearman", "srrc", "prcc", "sobol S1", "sobol ST"],
+            [[r["input"], cell(r["spearman"]), cell(r.get("srrc")), cell(r.get("prcc")),
+              cell((sob.get(r["input"]) or {}).get("first")),
+              cell((sob.get(r["input"]) or {}).get("total"))] for r in rows],
+            None, metric))
+    return tables
+
+
+def choose_table(data: dict) -> Table:
+    """A value choice as a table: each candidate's values, yield with its exact interval and
+    the trade-off metrics; the best candidate marked "best", the frontier "frontier"."""
+    names = list(data["vary"])
+    units = data.get("units") or {}
+    trade = data.get("tradeoff") or {}
+    front = set(data.get("frontier") or [])
+    best = data.get("best")
+    rows, classes = [], []
+    for i, c in enumerate(data["candidates"]):
+        marks = (["best"] if c == best else []) + (["frontier"] if i in front else [])
+        rows.append([*(format_value(c["values"][n], units.get(n)) for n in names),
+                     f"{100 * c['yield']:.3f}",
+                     f"{100 * c['ci_low']:.3f} .. {100 * c['ci_high']:.3f}",
+                     *(format_value(c.get(m), t.get("unit")) for m, t in trade.items()),
+                     ", ".join(marks)])
+        classes.append([""] * (len(names) + 2 + len(trade)) + ["v-pass" if c == best else ""])
+    return Table([*names, "yield %", "95 % interval %",
+                  *(f"{m} {t.get('statistic', '')}".strip() for m, t in trade.items()), ""],
+                 rows, "choose-table", "Candidates (common random numbers)", classes)
+
+
+def _worstcase_blocks(data: dict) -> list[Block]:
+    metrics, bounds = worstcase_tables(data)
+    failing = [row[0] for row in metrics.rows if row[-1] == "no"]
+    out = [Block("p", f"{format_number(data.get('evaluations'))} evaluations, beside a "
+                      f"{format_number(data.get('monte_carlo_samples'))}-sample Monte Carlo run."
+                      + (f" Worst case beyond a limit: {', '.join(failing)}." if failing else
+                         " Every limited metric's worst case lies within its limits."
+                         if any(row[-1] == "yes" for row in metrics.rows) else "")),
+           Block("table", table=metrics), Block("p", WORST_CASE_METHODS),
+           Block("table", table=bounds)]
+    return out
+
+
+def _whatif_blocks(data: dict) -> list[Block]:
+    return [Block("p", f"{format_number(data.get('samples'))} samples each, common random "
+                       "numbers: the pinned run differs from the baseline only by the pins.")
+            ] + [Block("table", table=t) for t in whatif_tables(data)]
+
+
+def _sensitivity_blocks(data: dict) -> list[Block]:
+    out = [Block("p", f"Rank coefficients from {format_number(data.get('samples'))} samples; "
+                      f"Sobol indices from {format_number(data.get('sobol_n'))} rows "
+                      f"({format_number(data.get('sobol_evaluations'))} evaluations). The six "
+                      "inputs with the largest Spearman coefficient per metric; every "
+                      "input's figures are in sensitivity.json.")]
+    out += [Block("table", table=t) for t in sensitivity_tables(data)]
+    out += [Block("note", str(n)) for n in data.get("notes") or []]
+    return out
+
+
+def _choose_blocks(data: dict) -> list[Block]:
+    best = data.get("best") or {}
+    units = data.get("units") or {}
+    text = ", ".join(f"{n} = {format_value(v, units.get(n))}"
+                     for n, v in (best.get("values") or {}).items())
+    return [Block("p", f"{format_number(data.get('samples'))} samples per candidate. Best: "
+                       f"{text} (yield {format_rate(best.get('yield'))}); the frontier holds "
+                       "the candidates no other beats on both trade-off metrics."),
+            Block("table", table=choose_table(data))]
+
+
+#: the section builder of each analysis file; a file they cannot read (written by hand or by
+#: another version) is shown as saved
+ANALYSIS_BLOCKS = {"worstcase.json": _worstcase_blocks, "whatif.json": _whatif_blocks,
+                   "sensitivity.json": _sensitivity_blocks, "choose.json": _choose_blocks}
+
+
+def analysis_blocks(fname: str, data) -> list[Block]:
+    """The report section of one analysis file: its tables, or its contents as saved."""
+    build = ANALYSIS_BLOCKS.get(fname)
+    if build is not None and isinstance(data, dict):
+        try:
+            return build(data)
+        except (KeyError, TypeError, ValueError, AttributeError, IndexError):
+            pass
+    if isinstance(data, dict) and "pinned_values" in data:
+        # the pins in their units stand for the SI values (K, not degC) kept for programs
+        data = {k: v for k, v in data.items() if k != "pins"}
+    return [Block("note", "This file is not laid out as this version writes it; its "
+                          "contents follow as saved.")] * (build is not None) + \
+        generic_blocks(data)
+
+
 # --- reading the run ----------------------------------------------------------------------------
 
 #: Top-level keys a saved result file cannot lack (the summary's sections; an analysis
@@ -812,12 +1041,7 @@ def build_document(summary: dict | None, extras: dict,
             doc.append(Block("h2", f"{section} ({fname})"))
             if section_notes and fname in section_notes:
                 doc.append(Block("note", section_notes[fname]))
-            data = extras[fname]
-            if isinstance(data, dict) and "pinned_values" in data:
-                # the pins in their units stand for the SI values (K, not degC) kept for
-                # programs in the same file
-                data = {k: v for k, v in data.items() if k != "pins"}
-            doc.extend(generic_blocks(data))
+            doc.extend(analysis_blocks(fname, extras[fname]))
 
     if figures:
         doc.append(Block("h2", "Plots"))

@@ -111,7 +111,7 @@ def whatif(study: Study, pins: list[str], samples: int | None = None, seed: int 
     pinned = run(study, samples=samples, seed=seed, sampler=sampler, jobs=jobs,
                  chunk_size=chunk_size, overrides=overrides)
     result = {
-        "study": study.path, "study_hash": study.study_hash,
+        "study": study.path, "study_hash": study.study_hash, "title": study.title,
         "seed": base.summary["seed"], "samples": base.summary["samples"],
         "sampler": base.summary["sampler"],
         "pins": {n: o.value for n, o in overrides.items()},  # SI values (K for temperatures)
