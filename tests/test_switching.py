@@ -600,3 +600,39 @@ def test_transient_dc_states_of_a_dim_string_and_a_starved_base_converge():
     assert np.all(np.isfinite(res["turn_off_delay"])) and np.all(res["turn_off_delay"] > 0)
     # the dim string carries about a milliampere, the starved base about 13 mA
     assert_allclose(res["led_current"], [1.05e-3, 13.2e-3], rtol=0.05)
+
+
+def test_a_coil_pwm_faster_than_its_l_over_r_fails_transitions_fit_and_never_cools():
+    # a valve coil (L/R of milliseconds) driven at 1 kHz never reaches the steady states the
+    # period's loss D P_on + (1 - D) P_off + f (E_on + E_off) is built on: its turn-on energy
+    # beyond the on-state dissipation is negative (the slow current rise dissipates less),
+    # and f E_on outweighed D P_on, so the transistor "dissipated" -0.33 W and its junction
+    # sat 33 K below the ambient with every check passed. Conservation of energy: a passive
+    # part dissipates at least nothing on average, so its junction is never below the
+    # ambient (any thermodynamics textbook); the new criterion fails every such unit.
+    from pathlib import Path
+
+    from tolerance.study import load_study as load_text
+
+    path = Path(__file__).resolve().parent.parent / "studies" / "irrigation_valve_single.toml"
+    text = path.read_text(encoding="utf-8")
+
+    def pwm(frequency):
+        study = load_text("pwm.toml", text=text.replace(
+            "[drive]\n", f'[drive]\nfrequency = "{frequency}"\nduty = 0.5\n', 1))
+        values = {p.name: np.full(3, p.nominal) for p in study.parameters}
+        values["ambient.temperature"] = np.array([253.15, 298.15, 333.15])
+        return study, study.stage.evaluate(values), values
+
+    study, fast, values = pwm("1 kHz")
+    assert "transitions_fit" in [c.name for c in study.criteria]
+    assert fast["converged"].all()
+    assert (fast["edge_fill"] > 1).all()  # about 14: a 7 ms rise in a 0.5 ms on-time
+    assert (fast["power_output"] > 0).all()
+    assert (fast["tj_output"] >= values["ambient.temperature"]).all()
+    # where the transitions fit (20 Hz, 25 ms halves) the negative turn-on energy stands: the
+    # loss is the on-state half less the energy the slow rise saves, exactly as documented
+    _, slow, _ = pwm("20 Hz")
+    assert (slow["edge_fill"] < 1).all() and (slow["energy_on"] < 0).all()
+    assert (slow["power_output"] > 0).all()
+    assert (slow["power_output"] < fast["power_output"]).all()

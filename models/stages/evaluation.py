@@ -310,8 +310,21 @@ def read_switching(reader, parts_reader, stage, topology: str, roles: dict[str, 
             "s", "turn-off drive edge (50 %) to the coil current at 10 % of its on-state "
                  "value: storage time, then the decay through the clamp (L/R with the "
                  "clamp's voltage, closed form)")
+    if stage.drive.pwm:
+        metrics["edge_fill"] = MetricInfo(
+            "1", "the larger of the turn-on time (delay + rise) over the PWM on-time and the "
+                 "turn-off time (storage + fall) over the off-time; above 1 a transition does "
+                 "not complete before the next edge")
     if enabled:
         stage.metrics.update(metrics)
+        if stage.drive.pwm:
+            # the period's loss D P_on + (1 - D) P_off + f (E_on + E_off) and the 10 %/90 %
+            # times take each transient as settled before the next edge (a coil's L/R of
+            # milliseconds at 1 kHz never does: its turn-on energy beyond the on-state
+            # dissipation, negative, then outweighed D P_on)
+            stage.criteria.append(Criterion(
+                "transitions_fit", "edge_fill", maximum=1.0, source="stage",
+                description="each switching transition completes within its PWM half"))
     else:
         # a limit on one of these is refused with how to compute it (the study reader asks)
         stage.dormant_metrics = dict.fromkeys(metrics, "[switching] enabled = true")
@@ -370,12 +383,25 @@ def _average(on, off, duty):
     return duty * np.asarray(on) + (1.0 - duty) * np.asarray(off)
 
 
+def edge_fill(times, frequency, duty):
+    """The larger share of its own part of the PWM period a transition takes: (turn-on
+    delay + rise time) over the on-time ``duty / frequency``, (storage + fall time) over the
+    off-time. Above 1 a transient does not settle before the next edge, so the period's loss
+    is not ``D P_on + (1 - D) P_off + f (E_on + E_off)`` (NaN where the times are)."""
+    with np.errstate(invalid="ignore"):  # a stuck unit's infinite times give inf
+        return np.maximum(
+            (np.asarray(times["turn_on_delay"]) + times["rise_time"]) * frequency / duty,
+            (np.asarray(times["storage_time"]) + times["fall_time"]) * frequency / (1.0 - duty))
+
+
 def _device_power(res, duty, extra=None):
     p = {d: _average(res["power_on"]["devices"][d], res["power_off"]["devices"][d], duty)
          for d in res["power_on"]["devices"]}
     if extra:
+        # a passive device dissipates on average no less than nothing; a negative sum means
+        # the transients do not settle within the period (criterion transitions_fit)
         for d, e in extra.items():
-            p[d] = p[d] + e
+            p[d] = np.maximum(p[d] + e, 0.0)
     return p
 
 
@@ -493,12 +519,16 @@ def evaluate_stage(stage, samples):
         sw_metrics = _switching(stage, samples, at, ambient)
         if stage.drive.pwm:
             f = stage.drive.frequency
+            fits = edge_fill(sw_metrics, f, duty) <= 1.0
             switching_power = {}
             for d in devices:
                 role = sw.roles[d]
                 e = (np.nan_to_num(sw_metrics[f"energy_on_{role}"])
                      + np.nan_to_num(sw_metrics[f"energy_off_{role}"]))
-                switching_power[d] = f * e
+                # a transient cut short by the next edge does not save what its unfinished
+                # part would have (a coil's slow current rise dissipates less than the on
+                # state): there only the heat it adds counts (criterion transitions_fit)
+                switching_power[d] = np.where(fits, f * e, np.maximum(f * e, 0.0))
             if setup.self_heating:
                 settled, temps = settle()
 
@@ -582,6 +612,8 @@ def evaluate_stage(stage, samples):
                     value = np.where(stuck, np.inf, value)
                 out[key] = value
         out["vce_peak"] = np.fmax(out["vce_peak"], np.abs(sw_metrics["vce_peak"]))
+        if "edge_fill" in stage.metrics:
+            out["edge_fill"] = edge_fill(out, stage.drive.frequency, duty)
     load_state = res["load_state"]
     if "release_time" in stage.metrics:
         # the switching times follow the switch current, which a clamp takes over in
