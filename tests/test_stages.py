@@ -1090,3 +1090,55 @@ def test_a_working_stage_stays_off():
     np.testing.assert_allclose(df["off_fraction"], df["off_current"] / df["load_current"],
                                rtol=1e-12)
     assert df["pass.stays_off"].all() and (df["off_fraction"] < 1e-3).all()
+
+
+def test_lamp_inrush_energy_integrates_to_the_operating_point():
+    # first-order filament warm-up R(t) = R_f - (R_f - R_cold) exp(-t / tau) with the output
+    # holding the current at its capability I while V_CE = V_S - I R(t) stays above the
+    # on-voltage, i.e. until I R(t1) = V_L, the lamp's voltage in the on state; checked by
+    # numerical quadrature (scipy.integrate.quad, scipy.optimize.brentq)
+    from types import SimpleNamespace
+
+    from scipy import integrate
+
+    from tolerance.models.stages.evaluation import lamp_inrush_energy
+
+    r_cold, tau, vs = 0.55, 0.06, 14.4
+    lamp = SimpleNamespace(cold_resistance=np.full(4, r_cold),
+                           thermal_time_constant=np.full(4, tau))
+    v_lamp = np.array([12.7, 12.7, 13.9, 12.7])  # a Darlington's 1.7 V on-voltage; a single's
+    i_lamp = np.array([1.80, 1.80, 1.95, 1.80])
+    cap = np.array([1.824, 3.0, 2.5, 30.0])  # just above, well above, above; carries it all
+    e = lamp_inrush_energy(lamp, np.full(4, vs), cap, v_lamp, i_lamp)
+    for k in range(3):
+        r_f = v_lamp[k] / i_lamp[k]
+
+        def resistance(t):
+            return r_f - (r_f - r_cold) * math.exp(-t / tau)
+
+        t1 = optimize.brentq(lambda t: cap[k] * resistance(t) - v_lamp[k], 0.0, 50 * tau,
+                             xtol=1e-15)
+        ref, _ = integrate.quad(lambda t: (vs - cap[k] * resistance(t)) * cap[k], 0.0, t1,
+                                epsabs=0, epsrel=1e-12)
+        assert e[k] == pytest.approx(ref, rel=1e-9)
+    assert e[3] == 0.0  # 30 A carries the 26 A cold demand: the output stays saturated
+    # a stage that cannot carry even its operating current never leaves the linear region
+    below = lamp_inrush_energy(lamp, np.full(4, vs), np.full(4, 1.7), v_lamp, i_lamp)
+    assert np.isinf(below[:2]).all()
+
+
+def test_a_saturated_beacon_unit_has_a_finite_inrush_energy():
+    # a unit at -25 degC on 14.4 V with a driver gain of 100 and an output gain of 32 is
+    # saturated (drive margin above 1) but its operating resistance (7.04 ohm, the lamp on
+    # 12.7 V) lies above the rated-voltage R_hot (6.86 ohm): ending the warm-up at V_CE = 0
+    # and R_hot called it "never leaves the linear region", an infinite energy that failed
+    # pulse_energy; it is about 2 J (a hand integration of the same first-order law)
+    study = load_study(Path(__file__).resolve().parent.parent / "studies"
+                       / "beacon_lamp_darlington.toml")
+    values = {p.name: np.array([p.nominal]) for p in study.parameters}
+    values.update({"ambient.temperature": np.array([248.15]),
+                   "supply.voltage": np.array([14.4]), "drive.high": np.array([3.1]),
+                   "Q1.hfe": np.array([100.0]), "Q2.hfe": np.array([32.0])})
+    res = study.stage.evaluate(values)
+    assert res["converged"].all() and res["drive_margin"][0] > 1.0
+    assert 1.0 < res["inrush_energy"][0] < 3.0

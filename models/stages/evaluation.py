@@ -405,33 +405,42 @@ def _device_power(res, duty, extra=None):
     return p
 
 
-def lamp_inrush_energy(load_state, supply, capability):
+def lamp_inrush_energy(load_state, supply, capability, lamp_voltage, lamp_current):
     """Energy the output absorbs while it limits a cold filament's current [J].
 
     While the cold filament asks for more than the stage can carry (``capability``, the
     collector current at the edge of saturation), the output runs in its linear region at that
-    current and V_CE = V_S - I R(t); the filament warms as R(t) = R_hot - (R_hot - R_cold)
-    exp(-t / tau) until I R(t1) = V_S. The energy integral of V_CE I over [0, t1] is
+    current and V_CE = V_S - I R(t). The filament warms towards its resistance at the stage's
+    operating point, R_f = ``lamp_voltage`` / ``lamp_current`` (the on state: not the rated
+    voltage's R_hot, since the lamp sees the supply less the stage's on-voltage), as
+    R(t) = R_f - (R_f - R_cold) exp(-t / tau), and the output saturates again when the lamp
+    takes its operating voltage, I R(t1) = V_L (V_CE down to the on-voltage, a Darlington's
+    volt or two, not zero). The energy integral of V_CE I over [0, t1] is
 
-        E = I [(V_S - I R_hot) t1 + I (R_hot - R_cold) tau (1 - exp(-t1 / tau))]
+        E = I [(V_S - I R_f) t1 + I (R_f - R_cold) tau (1 - exp(-t1 / tau))]
 
-    with t1 = -tau ln((R_hot - V_S / I) / (R_hot - R_cold)). Zero when the stage carries the
-    whole inrush (the transistor stays saturated). A first-order estimate (common practice,
-    no source): the filament's warm-up is taken as exponential with its thermal time constant.
+    with t1 = -tau ln((R_f - V_L / I) / (R_f - R_cold)). Zero when the stage carries the
+    whole inrush (the transistor stays saturated); infinite when it cannot carry even the
+    operating current (it never leaves the linear region). A first-order estimate (common
+    practice, no source): the filament's warm-up is taken as exponential with its thermal
+    time constant.
     """
     r_cold = np.asarray(load_state.cold_resistance, dtype=float)
-    r_hot = np.asarray(load_state.hot_resistance, dtype=float)
     tau = np.asarray(load_state.thermal_time_constant, dtype=float)
     i = np.asarray(capability, dtype=float)
     vs = np.asarray(supply, dtype=float)
+    v_lamp = np.asarray(lamp_voltage, dtype=float)
     with np.errstate(divide="ignore", invalid="ignore"):
-        r_end = vs / i
-        limited = (r_end > r_cold) & (r_end < r_hot) & (i > 0)
-        ratio = np.where(limited, (r_hot - r_end) / (r_hot - r_cold), 1.0)
+        r_final = v_lamp / np.asarray(lamp_current, dtype=float)
+        r_end = v_lamp / i
+        limited = (r_end > r_cold) & (r_end < r_final) & (i > 0)
+        ratio = np.where(limited, (r_final - r_end) / (r_final - r_cold), 1.0)
         t1 = -tau * np.log(ratio)
-        e = i * ((vs - i * r_hot) * t1 + i * (r_hot - r_cold) * tau * (1 - np.exp(-t1 / tau)))
-        # the stage cannot even reach the hot current: it never leaves the linear region
-        never = (r_end >= r_hot) & (i > 0)
+        e = i * ((vs - i * r_final) * t1
+                 + i * (r_final - r_cold) * tau * (1 - np.exp(-t1 / tau)))
+        # the stage cannot even carry the operating current: it never leaves the linear
+        # region
+        never = (r_end >= r_final) & (i > 0)
     return np.where(limited, e, np.where(never, np.inf, 0.0))
 
 
@@ -629,7 +638,8 @@ def evaluate_stage(stage, samples):
         capability = np.abs(res["capability"])
         out["peak_current"] = np.minimum(demand, capability)
         out["inrush_energy"] = lamp_inrush_energy(
-            load_state, np.asarray(samples[stage.env.supply], dtype=float), capability)
+            load_state, np.asarray(samples[stage.env.supply], dtype=float), capability,
+            res["load_voltage"], np.abs(res["load_current"]))
         with np.errstate(divide="ignore", invalid="ignore"):
             out["inrush_margin"] = capability / demand
     else:
