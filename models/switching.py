@@ -66,7 +66,9 @@ Energies are the integral of v_CE i_C (static collector current, the avalanche c
 included) in excess of the power of the final steady state, from the drive edge until the
 sample has settled: ``E = int_0^T (p - p_final) dt``. So the mean loss over a PWM period is
 ``D P_on + (1 - D) P_off + f (E_on + E_off)`` when the on and off times are counted from the
-drive edges, whatever the end of the integration window (common practice, no source).
+drive edges, whatever the end of the integration window, provided each transient settles
+before the next edge (common practice, no source; the stage's ``edge_fill`` and criterion
+``transitions_fit`` check that).
 """
 
 from __future__ import annotations

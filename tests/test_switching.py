@@ -636,3 +636,24 @@ def test_a_coil_pwm_faster_than_its_l_over_r_fails_transitions_fit_and_never_coo
     assert (slow["edge_fill"] < 1).all() and (slow["energy_on"] < 0).all()
     assert (slow["power_output"] > 0).all()
     assert (slow["power_output"] < fast["power_output"]).all()
+
+
+def test_the_study_edge_time_is_the_drive_ramps_10_to_90_percent_time():
+    # a logic datasheet's rise time runs from 10 % to 90 % of the swing (common practice, no
+    # source); the study documents edge_time so, but the linear ramp took it from 0 to 100 %,
+    # so the real 10 %/90 % edge was 0.8 of the stated one
+    from pathlib import Path
+
+    from tolerance.api import load_study
+    from tolerance.models.stages.evaluation import switching_inputs
+
+    study = load_study(Path(__file__).resolve().parents[1] / "studies"
+                       / "pwm_led_dimmer_darlington.toml")
+    values = {p.name: np.full(2, p.nominal) for p in study.parameters}
+    ambient = values["ambient.temperature"]
+    temps = {d: ambient for d in study.stage.thermal.theta}
+    drive = switching_inputs(study.stage, values, temps, ambient)[3]
+    ramp = drive["edge_time"]
+    # the ramp clip(t / ramp, 0, 1) crosses 10 % at 0.1 ramp and 90 % at 0.9 ramp
+    assert_allclose(0.9 * ramp - 0.1 * ramp, study.stage.drive.edge_time, rtol=1e-12)
+    assert study.stage.drive.edge_time == pytest.approx(20e-9)

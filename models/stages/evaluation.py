@@ -248,6 +248,10 @@ _CHARGE_KEYS = {
 }
 
 
+#: The share of a linear drive ramp between its 10 % and 90 % points: the ramp of a study's
+#: ``edge_time`` (a 10 %/90 % time, as logic datasheets give it) lasts edge_time / 0.8.
+EDGE_SPAN = 0.8
+
 #: A coil counts as released when its current has fallen to this fraction of the on-state
 #: current (the 10 % of the 90 %/10 % times; relays drop out at 10 to 30 % of their rated
 #: voltage, so this is the slow end; common practice, no source).
@@ -355,7 +359,9 @@ def switching_inputs(stage, samples: dict, temps: dict, ambient: np.ndarray):
             resistors[name] = 1.0 / g
     high, low, r_s = stage.drive.levels(samples)
     drive = {"high": high, "low": low, "source_resistance": r_s,
-             "edge_time": np.full(n, stage.drive.edge_time)}
+             # a study's edge time is the 10 % to 90 % time a logic datasheet gives; the
+             # linear ramp between the levels takes 1 / 0.8 of it
+             "edge_time": np.full(n, stage.drive.edge_time / EDGE_SPAN)}
     if stage.drive.pwm:
         drive["frequency"] = np.full(n, stage.drive.frequency)
         drive["duty"] = np.full(n, stage.drive.duty)
