@@ -426,20 +426,33 @@ def integrate(system: ChargeSystem, x0, t_end, *, absolute_tolerance, relative_t
             ok &= finite
             xi = xi + step
             q_i = q + dq_step
-            # everything of this iteration is stored; a converged sample keeps it
-            if it_idx.size == gidx.size:  # the whole working set: plain copies
-                x[...] = xi
-                q_new[...] = q_i
-                f_new[...] = f
-                aux[...] = auxi
+            # this iteration is stored for the samples that had not converged before it; a
+            # converged sample keeps the iterate it converged at, whatever the others in its
+            # batch still need (further iterations moved its last digits, so a result
+            # depended on the chunk it was computed in)
+            if it_idx.size == gidx.size:  # the whole working set
+                if it == 0 or not conv.any():
+                    x[...] = xi
+                    q_new[...] = q_i
+                    f_new[...] = f
+                    aux[...] = auxi
+                else:
+                    fresh = ~conv[:, None]
+                    np.copyto(x, xi, where=fresh)
+                    np.copyto(q_new, q_i, where=fresh)
+                    np.copyto(f_new, f, where=fresh)
+                    np.copyto(aux, auxi, where=fresh)
                 conv |= ok
+                still = ~conv
             else:
-                x[it_idx] = xi
-                q_new[it_idx] = q_i
-                f_new[it_idx] = f
-                aux[it_idx] = auxi
+                fresh = ~conv[it_idx]
+                rows = it_idx[fresh]
+                x[rows] = xi[fresh]
+                q_new[rows] = q_i[fresh]
+                f_new[rows] = f[fresh]
+                aux[rows] = auxi[fresh]
                 conv[it_idx[ok]] = True
-            still = ~ok
+                still = ~conv[it_idx]
             n_still = int(np.count_nonzero(still))
             if n_still == 0:
                 break
