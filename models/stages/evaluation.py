@@ -293,15 +293,24 @@ def read_switching(reader, parts_reader, stage, topology: str, roles: dict[str, 
         base = CHARGE_CLASS_DEFAULTS[cls]
         t = parts_reader.table(name)
         given = {arg: t.quantity(key, unit, positive=True)
-                 for key, (unit, arg) in _CHARGE_KEYS.items() if t.has(key)}
+                 for key, (unit, arg) in _CHARGE_KEYS.items()
+                 if t.has(key) and key != "storage_ib_off"}
+        if t.has("storage_ib_off"):
+            # datasheets state the turn-off base current as I_B1 = -I_B2 = 1 mA or as
+            # I_B2 = -1 mA: either way its size, drawn out of the base (zero: an open base)
+            given["storage_ib_off"] = -abs(t.quantity("storage_ib_off", "A"))
         if given:
             try:
                 base = charge_parameters_from_datasheet(
                     defaults=base, forward_beta=ds.hfe_median, reverse_beta=ds.reverse_beta,
                     be_on_voltage=ds.vbe_on, **given)
             except ValueError as exc:
-                raise t.error(next(k for k, (_, a) in _CHARGE_KEYS.items() if a in given),
-                              str(exc)) from None
+                # a storage-time figure that cannot hold is the storage time's; any other,
+                # the transition frequency's
+                about = ("storage_time" if "storage" in str(exc) and t.has("storage_time")
+                         else next(k for k, (_, a) in _CHARGE_KEYS.items() if a in given))
+                raise t.error(about, str(exc).replace(
+                    "the given forward_beta", f"the typical h_FE {ds.hfe_median:.3g}")) from None
         charges[name] = base.replace(collector_emitter_breakdown=float(ds.breakdown_vceo))
     setup = SwitchingSetup(enabled, topology, charges, roles, {"relative_tolerance": rtol})
     stage.switching = setup
