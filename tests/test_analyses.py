@@ -142,6 +142,11 @@ def test_choose_refuses_a_temperature_and_names_the_twice_varied_part(study):
     with pytest.raises(UsageError, match="ambient.temperature: a temperature has no preferred"):
         check_request(load_study(), ["ambient.temperature=E3:-60..300"])
 
+    # a candidate must be a value the study file accepts: a tempco of 100 to 220 per kelvin
+    # ran as if it were one (the study and --pin refuse it)
+    with pytest.raises(UsageError, match=r"RB.tempco=E12:100..220: must be at most 0.005"):
+        check_request(load_study(), ["RB.tempco=E12:100..220"])
+
     with pytest.raises(UsageError, match="x2: the same part is varied twice"):
         check_request(study, ["x2=E12:0.47..2.2", "x2=E6:1..2.2"])
     with pytest.raises(UsageError, match="got 3"):

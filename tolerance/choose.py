@@ -18,7 +18,7 @@ import numpy as np
 from tolerance.api import UsageError, run
 from tolerance.runner import Override
 from tolerance.study import Study, parameter_hint
-from tolerance.units import UnitError, parse_series_range, preferred_values
+from tolerance.units import UnitError, format_quantity, parse_series_range, preferred_values
 
 
 #: The most candidates of one value choice, one part or two (each is a whole Monte Carlo run;
@@ -57,6 +57,16 @@ def parse_vary(study: Study, text: str) -> tuple[str, np.ndarray]:
     if not math.isfinite(reach):
         raise UsageError(f"--vary {name}={spec}: the candidates scale {name} beyond double "
                          "precision (about 1.8e308); narrow the range")
+    # each candidate must be a value the study file accepts for the part, over its whole
+    # spread (a tempco of 100 to 220 per kelvin ran as if it were one)
+    for v in values:
+        scale = float(v) / p.nominal
+        for x in (float(v), p.low * scale, p.high * scale):
+            problem = p.out_of_range(x)
+            if problem:
+                where = "" if x == float(v) else ", at an end of its spread"
+                raise UsageError(f"--vary {name}={spec}: {problem} (candidate "
+                                 f"{format_quantity(float(v), p.unit)}{where})")
     if values.size > MAX_CANDIDATES:
         raise UsageError(f"--vary {name}={spec}: {values.size} candidates; narrow the range "
                          f"(at most {MAX_CANDIDATES})")
