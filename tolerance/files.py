@@ -26,6 +26,14 @@ def atomic_path(path) -> Iterator[Path]:
     try:
         yield tmp
         os.replace(tmp, path)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+        if exc.filename is None or exc.filename == str(tmp):
+            # a full disk reported by write() or by a library names no file: name the
+            # result the write was for
+            raise OSError(exc.errno, exc.strerror or str(exc), str(path)) from exc
+        raise
     except BaseException:
         with contextlib.suppress(OSError):
             tmp.unlink()
