@@ -93,6 +93,16 @@ MALFORMED = [
      "parts.Q1.device", "this position needs an NPN transistor"),
     ("pair stage's resistor name", _replace("[parts.RPD]", "[parts.RBE1]"), "parts.RBE1",
      "the single stage's base-emitter resistor is 'RPD'"),
+    # a misspelt key was offered only the keys the file holds, so a key it lacks (the run's
+    # seed, a part's hfe_min) was never suggested
+    ("misspelt run key the file lacks", _replace("seed = 2026", "sed = 2026"), "run.sed",
+     "did you mean 'seed'"),
+    ("misspelt table", _replace("[ambient]", "[ambiant]"), "ambiant", "did you mean 'ambient'"),
+    ("misspelt part key", _replace('device = "medium_power_npn"',
+                                   'device = "medium_power_npn"\nhfe_mim = 30'),
+     "parts.Q1.hfe_mim", "did you mean 'hfe_min'"),
+    ("misspelt toleranced key", _replace('tempco = "200 ppm/K"', 'tempcoo = "200 ppm/K"'),
+     "parts.RB.tempcoo", "did you mean 'tempco'"),
 ]
 
 

@@ -119,6 +119,8 @@ class Reader:
         self.path = path
         self._ctx = context
         self._used: set[str] = set()
+        # every key asked for, present or not: the keys an unknown key may be a misspelling of
+        self._asked: set[str] = set()
         self.exists = exists
         context.readers.append(self)
 
@@ -134,12 +136,14 @@ class Reader:
         return StudyError(self.file, self.key(name) if name else self.path, message)
 
     def has(self, name: str) -> bool:
+        self._asked.add(name)
         return name in self._data
 
     def keys(self) -> list[str]:
         return list(self._data)
 
     def _get(self, name: str, default):
+        self._asked.add(name)
         if name in self._data:
             self._used.add(name)
             return self._data[name]
@@ -153,6 +157,7 @@ class Reader:
 
     # -- plain values ----------------------------------------------------------------------
     def table(self, name: str, required: bool = False) -> "Reader":
+        self._asked.add(name)
         if name not in self._data:
             if required:
                 raise self.error(name, "is required but missing; expected a table")
@@ -243,6 +248,7 @@ class Reader:
         ``[parts.RB] value = "4k7"  tolerance = "1%"``).
         """
         key = self.key(name)
+        self._asked.add(name)
         if name not in self._data and default is not _MISSING:
             raw = default
         else:
@@ -644,15 +650,19 @@ def build_study(data: dict, file: str, text: str) -> Study:
     # several readers may read one table (a stage and a helper each take their keys): a key
     # is known when any reader of that table consumed it
     used_by_table: dict[int, set[str]] = {}
+    asked_by_table: dict[int, set[str]] = {}
     for reader in ctx.readers:
         used_by_table.setdefault(id(reader._data), set()).update(reader._used)
+        asked_by_table.setdefault(id(reader._data), set()).update(reader._asked)
     for reader in ctx.readers:
         if not reader.exists:
             continue
         used = used_by_table[id(reader._data)]
         for k in reader._data:
             if k not in used:
-                known = set(used)
+                # the keys read and the keys the readers asked for but the file lacks
+                # ("sed" for the run's "seed", "tempcoo" for a resistor's "tempco")
+                known = used | asked_by_table[id(reader._data)]
                 if reader.path == "":
                     known |= set(ENGINE_KEYS)
                 hint = None
