@@ -431,17 +431,17 @@ def integrate(system: ChargeSystem, x0, t_end, *, absolute_tolerance, relative_t
             # batch still need (further iterations moved its last digits, so a result
             # depended on the chunk it was computed in)
             if it_idx.size == gidx.size:  # the whole working set
-                if it == 0 or not conv.any():
-                    x[...] = xi
-                    q_new[...] = q_i
-                    f_new[...] = f
-                    aux[...] = auxi
-                else:
-                    fresh = ~conv[:, None]
-                    np.copyto(x, xi, where=fresh)
-                    np.copyto(q_new, q_i, where=fresh)
-                    np.copyto(f_new, f, where=fresh)
-                    np.copyto(aux, auxi, where=fresh)
+                # (at most a quarter of the set has converged here, compact_fraction: the
+                # plain copies and the few converged rows put back cost less than a masked
+                # copy of every row)
+                done = np.flatnonzero(conv) if it else np.empty(0, dtype=np.intp)
+                kept = [a[done] for a in (x, q_new, f_new, aux)] if done.size else None
+                x[...] = xi
+                q_new[...] = q_i
+                f_new[...] = f
+                aux[...] = auxi
+                if kept is not None:
+                    x[done], q_new[done], f_new[done], aux[done] = kept
                 conv |= ok
                 still = ~conv
             else:
