@@ -228,6 +228,11 @@ def test_check_prints_parameter_table(capsys):
     out = capsys.readouterr().out
     for name in ("RB", "Q1.hfe", "supply.voltage", "ambient.temperature", "saturation"):
         assert name in out
+    # the metrics with their units and meaning, as the README says (the hot-spot codes)
+    metrics = _block(out, "metric ")
+    assert len(metrics) == 1 + 22
+    assert any(r.startswith("hot_spot ") and "0=Q1, 1=RB, 2=RPD" in r for r in metrics)
+    assert any(r.split()[:2] == ["tj_output", "degC"] for r in metrics)
 
 
 def _block(out: str, header_start: str) -> list[str]:

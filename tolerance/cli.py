@@ -456,6 +456,9 @@ def cmd_check(args) -> int:
         unit = study.stage.metrics[c.metric].unit
         rows.append((c.name, c.metric, c.limit_text(lambda x, u=unit: _fmt(x, u)), c.source))
     w("\n" + _table(("criterion", "metric", "limit", "from"), rows, "<<<<"))
+    rows = [(name, "degC" if m.unit == "temperature" else m.unit, m.description)
+            for name, m in study.stage.metrics.items()]
+    w("\n" + _table(("metric", "unit", "what it is"), rows, "<<<"))
     for note in study.notes():
         w(f"\nnote: {note}\n")
     return 0
