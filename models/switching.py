@@ -835,7 +835,9 @@ def simulate_switching(topology, devices, resistors, drive, supply, load_state, 
     metrics["energy_off_load"] = e_off[:, _P_LOAD]
     metrics["energy_off_supply"] = e_off[:, _P_SUPPLY]
     metrics["vce_peak"] = result.peak_voltage[s:]
-    metrics["avalanche_energy"] = e_off[:, _P_AVALANCHE]
+    # absorbed energy, never below zero: a clamped coil's leftover is the final state's
+    # vanishing avalanche power times the run's length taken off a zero integral (-4e-41 J)
+    metrics["avalanche_energy"] = np.maximum(e_off[:, _P_AVALANCHE], 0.0)
     freq = drive.get("frequency")
     total = (metrics["turn_on_delay"] + metrics["rise_time"] + metrics["storage_time"]
              + metrics["fall_time"])

@@ -59,6 +59,12 @@ def test_whatif_pin_forms(study):
         pin_value(study, "x9", "min")
     with pytest.raises(UsageError, match="x1=3 ohm"):
         pin_value(study, "x1", "3 ohm")
+    # a misspelt percentile was answered "is not a fraction"; p0 and p100 are the ends
+    with pytest.raises(UsageError, match="a percentile is p and a number between 0 and 100"):
+        pin_value(study, "x1", "pXY")
+    with pytest.raises(UsageError, match="write min or max"):
+        pin_value(study, "x1", "p0")
+    assert_allclose(pin_value(study, "x1", "P10"), -0.6)
 
 
 def test_a_parameter_typed_without_its_part_or_case_is_pointed_to():

@@ -359,3 +359,21 @@ def test_ambient_above_a_transistor_tj_max_is_noted_by_check_and_run(tmp_path, c
     assert "above the T_j max of Q1" in capsys.readouterr().err
     # the shipped demo says nothing of it
     assert main(["check"]) == 0 and "note:" not in capsys.readouterr().out
+
+
+def test_messages_point_to_what_the_command_can_do(tmp_path, capsys):
+    # an analysis has no --resume, so its messages do not suggest it; a monolithic pair
+    # named without monolithic = true was answered "parts.Q1: is required but missing"
+    out = tmp_path / "w"
+    assert main(["whatif", "--pin", "Q1.hfe=min", "--samples", "20", "--out", str(out),
+                 "--quiet"]) in (0, 1)
+    capsys.readouterr()
+    assert main(["whatif", "--pin", "Q1.hfe=max", "--samples", "20", "--out", str(out),
+                 "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "already holds results" in err and "--force" in err and "--resume" not in err
+    text = (ROOT / "studies" / "engine_bay_heater_darlington.toml").read_text(encoding="utf-8")
+    path = _study(tmp_path, text.replace("monolithic = true\n", ""), "mono.toml")
+    assert main(["check", str(path)]) == 2
+    err = capsys.readouterr().err
+    assert "parts.Q2.device" in err and "add monolithic = true" in err

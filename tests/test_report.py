@@ -14,6 +14,7 @@ from html.parser import HTMLParser
 import pytest
 from matplotlib import image as mpl_image
 
+import tolerance
 from tolerance import report
 from tolerance.api import load_study, run
 from tolerance.cli import SAFETY
@@ -370,6 +371,9 @@ def test_analysis_sections_show_the_console_tables_in_units(tmp_path):
         md = (out / "report.md").read_text(encoding="utf-8")
         data = json.loads(next(out.glob("*.json")).read_text())
         assert "not laid out" not in md and "Seed-tray heater switch (demo)" in md
+        # the stamp says which version wrote the analysis and when (it read "-")
+        stamp = dict(md_table_after(md, "*Reproducibility stamp*")[1:])
+        assert stamp["tool_version"] == tolerance.__version__ and stamp["created"] != "-"
         if args[0] == "worstcase":
             rows = md_table_after(md, "*Worst case of every metric*")
             assert rows[0][-2:] == ["limit", "worst case within"]

@@ -345,6 +345,8 @@ def test_inductive_turn_off_with_clamp_diode():
     # nothing avalanches (common practice, no source: the purpose of a clamp diode)
     assert np.all(m["energy_off_clamp"] + m["energy_off_load"] > 0.5 * stored)
     assert np.all(m["avalanche_energy"] < 1e-6 * stored)
+    # an absorbed energy is never negative (a clamped run read -4e-41 J)
+    assert np.all(m["avalanche_energy"] >= 0.0)
 
 
 def test_inductive_turn_off_with_zener_clamp():

@@ -166,11 +166,12 @@ def _is_result(name: str) -> bool:
                                     and name[:-len(TMP_SUFFIX)] in RESULT_NAMES)
 
 
-def _prepare_folder(out: Path, force: bool, resume: bool) -> None:
+def _prepare_folder(out: Path, force: bool, resume: bool, resumable: bool = True) -> None:
     """Make ``out`` ready for results: new or empty; with ``resume`` a run's folder as it is;
     with ``force`` a result folder whose results are removed. A folder that holds anything the
     commands do not write is never used, ``--force``, ``--resume`` or not, and ``resume``
-    refuses a folder of another command's results."""
+    refuses a folder of another command's results. ``resumable`` False: the command has no
+    ``--resume`` to suggest (the analyses)."""
     if out.exists() and not out.is_dir():
         raise UsageError(f"{out}: exists and is not a folder")
     try:
@@ -188,8 +189,9 @@ def _prepare_folder(out: Path, force: bool, resume: bool) -> None:
                              f"({', '.join(analyses)}), not a run to continue; choose another "
                              "--out, or --force without --resume to replace them")
         if entries and not (force or resume):
-            raise UsageError(f"{out}: already holds results; choose another --out, add --resume "
-                             "to continue that run, or --force to replace it")
+            resume_hint = " add --resume to continue that run," if resumable else ""
+            raise UsageError(f"{out}: already holds results; choose another --out,{resume_hint} "
+                             "or --force to replace it")
         if force and not resume:
             for name in entries:
                 child = out / name

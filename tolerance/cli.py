@@ -291,8 +291,17 @@ def _analysis_out(args, study, suffix: str) -> Path:
     from tolerance.api import _prepare_folder
 
     out = Path(args.out) if args.out else _default_out(study, suffix)
-    _prepare_folder(out, args.force, False)
+    _prepare_folder(out, args.force, False, resumable=False)
     return out
+
+
+def _stamped(result: dict) -> dict:
+    """An analysis result with the version that wrote it and when, for the report's
+    reproducibility stamp (as summary.json carries them)."""
+    import datetime
+
+    created = datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")
+    return {"tool_version": __version__, **result, "created": created}
 
 
 def _write_report(out: Path, jobs: int = 1) -> None:
@@ -318,7 +327,7 @@ def cmd_whatif(args) -> int:
     out = _analysis_out(args, study, "-whatif")
     result, base, pinned = whatif(study, args.pin, args.samples, args.seed, args.sampler,
                                   args.jobs, args.chunk_size)
-    write_json(out / "whatif.json", result)
+    write_json(out / "whatif.json", _stamped(result))
     _save_pair(out, study, base.samples, pinned.samples)
     _write_report(out, args.jobs)
     if not args.quiet:
@@ -353,7 +362,7 @@ def cmd_worstcase(args) -> int:
     out = _analysis_out(args, study, "-worstcase")
     result = study_worst_case(study, _samples(args, study), args.seed if args.seed is not None
                               else study.settings.seed, args.sampler, args.chunk_size)
-    write_json(out / "worstcase.json", result)
+    write_json(out / "worstcase.json", _stamped(result))
     _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write
@@ -375,7 +384,7 @@ def cmd_sensitivity(args) -> int:
     result = study_sensitivity(study, _samples(args, study), args.seed if args.seed is not None
                                else study.settings.seed, args.sobol_samples,
                                sampler=args.sampler, chunk_size=args.chunk_size)
-    write_json(out / "sensitivity.json", result)
+    write_json(out / "sensitivity.json", _stamped(result))
     _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write
@@ -402,7 +411,7 @@ def cmd_choose(args) -> int:
     out = _analysis_out(args, study, "-choose")
     result = choose(study, args.vary, args.samples, args.seed, args.sampler, args.jobs, tradeoff,
                     args.chunk_size)
-    write_json(out / "choose.json", result)
+    write_json(out / "choose.json", _stamped(result))
     _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write
@@ -528,8 +537,11 @@ def _command(args) -> int:
         return 2
     except KeyboardInterrupt as exc:
         terminated = isinstance(exc, Terminated)
+        # only a run keeps its chunks to continue from; an analysis starts again
+        kept = ("finished chunks are kept (continue with --resume)" if args.command == "run"
+                else "nothing is kept to continue from; run the command again")
         sys.stderr.write(f"\ntolerance: {'stopped (SIGTERM)' if terminated else 'interrupted'}; "
-                         "finished chunks are kept (continue with --resume)\n")
+                         f"{kept}\n")
         # common practice, no source: 128 + the signal's number, as a shell reports it
         return 143 if terminated else 130
     except BrokenPipeError:
@@ -544,9 +556,10 @@ def _command(args) -> int:
         return 141
     except BrokenExecutor as exc:
         # a worker process ended without a word: killed for memory, or a crash in a library
-        sys.stderr.write(f"tolerance: error: a worker process died ({_first_line(exc)}); the "
-                         "finished chunks are kept: continue with --resume (a smaller "
-                         "--chunk-size or fewer --jobs needs less memory)\n")
+        kept = ("the finished chunks are kept: continue with --resume" if args.command == "run"
+                else "run the command again")
+        sys.stderr.write(f"tolerance: error: a worker process died ({_first_line(exc)}); "
+                         f"{kept} (a smaller --chunk-size or fewer --jobs needs less memory)\n")
         return 2
     except OSError as exc:
         # a file that cannot be read or written (disk full, a folder removed or read-only):
@@ -554,7 +567,8 @@ def _command(args) -> int:
         # (not for a damaged file, which the message says how to mend, nor for a scheduler
         # that could not be reached before anything was written)
         done = ("" if isinstance(exc, (UnreadableChunk, DamagedFile, ConnectionError)) else
-                "; the files already written are complete (a run continues with --resume)")
+                "; the files already written are complete" + (
+                    " (a run continues with --resume)" if args.command == "run" else ""))
         sys.stderr.write(f"tolerance: error: {os_error_text(exc)}{done}\n")
         return 2
 

@@ -16,7 +16,7 @@ from tolerance.runner import Override
 from tolerance.study import Study, parameter_hint
 from tolerance.units import UnitError, format_quantity, parse_quantity
 
-_PERCENTILE = re.compile(r"^p(\d+(?:\.\d+)?)$")
+_PERCENTILE = re.compile(r"^p(\d+(?:\.\d+)?)$", re.IGNORECASE)
 
 
 def pin_value(study: Study, name: str, spec: str) -> float:
@@ -48,8 +48,12 @@ def _pin_value(study: Study, name: str, spec: str) -> float:
     if m:
         q = float(m.group(1))
         if not 0 < q < 100:
-            raise UsageError(f"--pin {name}={spec}: a percentile lies between p0 and p100")
+            raise UsageError(f"--pin {name}={spec}: a percentile lies strictly between p0 and "
+                             "p100; for the ends of the spread write min or max")
         return float(p.distribution.ppf(np.array([q / 100.0]))[0])
+    if spec[:1] in ("p", "P"):
+        raise UsageError(f"--pin {name}={spec}: a percentile is p and a number between 0 and "
+                         "100, e.g. p10 or p99.9; or write min, max, nominal or a value")
     try:
         return parse_quantity(spec, p.unit)
     except UnitError as exc:

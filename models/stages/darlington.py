@@ -251,6 +251,13 @@ def configure(reader):
                              supply_minimum=env.supply_minimum, read_device=False,
                              table=q2_table)
     else:
+        device = q2_table.string("device", default="") if q2_table.has("device") else ""
+        entry = library().get(device)
+        if entry is not None and entry.kind == "darlington" and not parts.has("Q1"):
+            # a monolithic pair named as a discrete output left [parts.Q1] "required"
+            raise q2_table.error("device", f"'{device}' is a monolithic Darlington (driver "
+                                           "and output in one part): add monolithic = true "
+                                           "to [parts.Q2]")
         q1 = read_transistor(parts, "Q1", "Darlington driver", polarity="npn",
                              supply_minimum=env.supply_minimum)
         q2 = read_transistor(parts, "Q2", "Darlington output", polarity="npn",
