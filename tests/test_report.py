@@ -395,6 +395,9 @@ def test_analysis_sections_show_the_console_tables_in_units(tmp_path):
             rows = md_table_after(md, "*Candidates (common random numbers)*")
             assert [r[0] for r in rows[1:]] == ["100 Ohm", "150 Ohm", "220 Ohm"]
             assert sum("best" in r[-1] for r in rows[1:]) == 1
+            # the criterion each candidate fails most, which the console did not show
+            assert rows[0][-2] == "fails most"
+            assert all(r[-2] == "-" or r[-2].split()[0] in data["criteria"] for r in rows[1:])
 
 
 def test_worst_case_within_compares_the_worst_extremes_with_every_limit():

@@ -496,8 +496,9 @@ def sensitivity_tables(data: dict, top: int = 6) -> list[Table]:
 
 
 def choose_table(data: dict) -> Table:
-    """A value choice as a table: each candidate's values, yield with its exact interval and
-    the trade-off metrics; the best candidate marked "best", the frontier "frontier"."""
+    """A value choice as a table: each candidate's values, yield with its exact interval, the
+    trade-off metrics and the criterion that fails most often (with its rate); the best
+    candidate marked "best", the frontier "frontier"."""
     names = list(data["vary"])
     units = data.get("units") or {}
     trade = data.get("tradeoff") or {}
@@ -506,14 +507,19 @@ def choose_table(data: dict) -> Table:
     rows, classes = [], []
     for i, c in enumerate(data["candidates"]):
         marks = (["best"] if c == best else []) + (["frontier"] if i in front else [])
+        rates = {k: r for k, r in (c.get("criteria") or {}).items()
+                 if isinstance(r, (int, float)) and r > 0}
+        worst = max(rates, key=rates.get) if rates else None
         rows.append([*(format_value(c["values"][n], units.get(n)) for n in names),
                      f"{100 * c['yield']:.3f}",
                      f"{100 * c['ci_low']:.3f} .. {100 * c['ci_high']:.3f}",
                      *(format_value(c.get(m), t.get("unit")) for m, t in trade.items()),
+                     f"{worst} {format_rate(rates[worst])}" if worst else "-",
                      ", ".join(marks)])
-        classes.append([""] * (len(names) + 2 + len(trade)) + ["v-pass" if c == best else ""])
+        classes.append([""] * (len(names) + 3 + len(trade)) + ["v-pass" if c == best else ""])
     return Table([*names, "yield %", "95 % interval %",
-                  *(f"{m} {t.get('statistic', '')}".strip() for m, t in trade.items()), ""],
+                  *(f"{m} {t.get('statistic', '')}".strip() for m, t in trade.items()),
+                  "fails most", ""],
                  rows, "choose-table", "Candidates (common random numbers)", classes)
 
 
