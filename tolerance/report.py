@@ -161,6 +161,11 @@ class Block:
     extra: dict = field(default_factory=dict)
 
 
+def verdict_word(v) -> str:
+    """PASS, FAIL or UNDECIDED for a saved verdict; anything else in capitals, "-" for none."""
+    return "-" if v is None else VERDICT_WORDS.get(v, str(v).upper())
+
+
 def _limits_text(limit: dict, unit: str | None) -> str:
     lo, hi = limit.get("min"), limit.get("max")
     if lo is not None and hi is not None:
@@ -186,7 +191,7 @@ def verdict_table(summary: dict) -> Table:
                      format_number(c["failures"]), format_number(c["evaluated"]),
                      format_rate(c["rate"]), format_interval(c["ci_low"], c["ci_high"]),
                      format_rate(zfu) if zfu is not None else "-",
-                     VERDICT_WORDS.get(v, str(v).upper())])
+                     verdict_word(v)])
         classes.append([""] * 8 + [f"v-{v}"])
     return Table(header, rows, "verdict-table", "Counted failures per criterion", classes)
 
@@ -439,8 +444,7 @@ def whatif_tables(data: dict) -> list[Table]:
         ["yield", format_rate(yb.get("estimate")), format_rate(yp.get("estimate"))],
         ["95 % exact interval", format_interval(yb.get("ci_low"), yb.get("ci_high")),
          format_interval(yp.get("ci_low"), yp.get("ci_high"))],
-        ["verdict", *(VERDICT_WORDS.get(verdicts.get(k), str(verdicts.get(k, "-")).upper())
-                      for k in ("baseline", "pinned"))],
+        ["verdict", *(verdict_word(verdicts.get(k)) for k in ("baseline", "pinned"))],
         ["not converged", format_number(nc.get("baseline")), format_number(nc.get("pinned"))],
     ], "whatif-yield-table", "Baseline and pinned run")
     metrics = data.get("metrics") or {}
@@ -450,8 +454,7 @@ def whatif_tables(data: dict) -> list[Table]:
         b, q = c["baseline"], c["pinned"]
         rows.append([name, _limits_text(c.get("limit") or {}, unit), format_ppm(b.get("rate")),
                      format_ppm(q.get("rate")),
-                     VERDICT_WORDS.get(b.get("verdict"), str(b.get("verdict")).upper()),
-                     VERDICT_WORDS.get(q.get("verdict"), str(q.get("verdict")).upper())])
+                     verdict_word(b.get("verdict")), verdict_word(q.get("verdict"))])
         classes.append([""] * 4 + [f"v-{b.get('verdict')}", f"v-{q.get('verdict')}"])
     criteria = Table(["criterion", "limit", "baseline ppm", "pinned ppm", "baseline",
                       "pinned"], rows, "whatif-criteria-table",
@@ -938,7 +941,7 @@ def _summary_blocks(summary: dict) -> list[Block]:
     doc: list[Block] = []
     doc.append(Block("h2", "Verdict"))
     v = summary.get("verdict", "")
-    word = VERDICT_WORDS.get(v, str(v).upper())
+    word = verdict_word(v)
     doc.append(Block("verdict", f"Overall verdict: {word} ({VERDICT_MEANING.get(v, v)})",
                      extra={"verdict": v}))
     y = summary.get("yield", {})

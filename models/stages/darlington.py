@@ -251,10 +251,11 @@ def configure(reader):
                              supply_minimum=env.supply_minimum, read_device=False,
                              table=q2_table)
     else:
-        device = q2_table.string("device", default="") if q2_table.has("device") else ""
-        entry = library().get(device)
-        if entry is not None and entry.kind == "darlington" and not parts.has("Q1"):
-            # a monolithic pair named as a discrete output left [parts.Q1] "required"
+        entry = library().get(q2_table.string("device", default=""))
+        if entry is not None and entry.kind == "darlington":
+            # a monolithic pair named as a discrete output: [parts.Q1] "required but
+            # missing", or "a darlington, not a single transistor"
+            device = q2_table.string("device")
             raise q2_table.error("device", f"'{device}' is a monolithic Darlington (driver "
                                            "and output in one part): add monolithic = true "
                                            "to [parts.Q2]")
