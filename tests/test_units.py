@@ -12,6 +12,7 @@ from hypothesis import strategies as st
 from tolerance.units import (
     E_SERIES,
     UnitError,
+    format_ppm,
     format_quantity,
     parse_quantity,
     parse_series_range,
@@ -298,6 +299,15 @@ def test_format_quantity(x, unit, expected):
     # label layout from the project brief
     assert format_quantity(x, unit) == expected
 
+
+
+def test_format_ppm_one_decimal_and_missing_rates():
+    # common practice, no source: 1 ppm = 1e-6; one decimal as the console and reports print
+    assert format_ppm(1.844e-4) == "184.4"
+    assert format_ppm(0) == "0.0"
+    assert format_ppm(1.0) == "1000000.0"
+    assert format_ppm(None) == "-"
+    assert format_ppm(float("nan")) == "nan"
 
 def test_format_digits():
     # common practice, no source: significant digits then trailing zeros trimmed

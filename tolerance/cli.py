@@ -20,7 +20,7 @@ from tolerance.files import DamagedFile, atomic_path, os_error_text
 from tolerance.limits import exit_status
 from tolerance.runner import Terminated, UnreadableChunk
 from tolerance.study import SAMPLERS, StudyError
-from tolerance.units import format_quantity
+from tolerance.units import format_ppm, format_quantity
 
 SAFETY = ("Results are estimates from models and the tolerances you entered: confirm on the bench "
           "before release. Hot transistors and resistors burn; mains-connected loads and "
@@ -166,10 +166,6 @@ def _default_out(study, suffix: str = "") -> Path:
     return candidate
 
 
-def _ppm(rate) -> str:
-    return "-" if rate is None else f"{1e6 * rate:.1f}"
-
-
 def _fmt(value, unit):
     if value is None:
         return "-"
@@ -204,19 +200,20 @@ def print_summary(summary: dict, study, out) -> None:
     w(f"yield {100 * y['estimate']:.4f} %  (95 % interval {100 * y['ci_low']:.4f} .. "
       f"{100 * y['ci_high']:.4f} %)   not converged: {summary['not_converged']}\n")
     if summary.get("saturation_failure_rate") is not None:
-        w(f"saturation-failure rate {_ppm(summary['saturation_failure_rate'])} ppm\n")
+        w(f"saturation-failure rate {format_ppm(summary['saturation_failure_rate'])} ppm\n")
     if isinstance(summary.get("target_ci"), dict):
         from tolerance.report import target_sentence
 
-        w(target_sentence(summary["target_ci"], lambda r: f"{_ppm(r)} ppm") + "\n")
+        w(target_sentence(summary["target_ci"], lambda r: f"{format_ppm(r)} ppm") + "\n")
     rows = []
     for name, c in summary["criteria"].items():
         unit = summary["metrics"][c["metric"]]["unit"]
         lim = " and ".join(
             f"{op} {_fmt(v, unit)}" for op, v in ((">=", c["limit"]["min"]),
                                                   ("<=", c["limit"]["max"])) if v is not None)
-        rows.append((name, c["metric"], lim, c["failures"], _ppm(c["rate"]),
-                     f"{_ppm(c['ci_low'])} .. {_ppm(c['ci_high'])}", c["verdict"].upper()))
+        interval = f"{format_ppm(c['ci_low'])} .. {format_ppm(c['ci_high'])}"
+        rows.append((name, c["metric"], lim, c["failures"], format_ppm(c["rate"]), interval,
+                     c["verdict"].upper()))
     w("\n" + _table(("criterion", "metric", "limit", "failures", "rate ppm",
                      "95 % interval ppm", "verdict"), rows, "<<<>>><"))
     rows = [(name, *(_fmt(m[k], m["unit"]) for k in ("min", "p001", "p50", "p999", "max")))

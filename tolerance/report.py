@@ -26,7 +26,7 @@ import pandas as pd
 from tolerance import runner
 from tolerance.cli import SAFETY
 from tolerance.files import TMP_SUFFIX, DamagedFile, write_atomic
-from tolerance.units import UnitError, format_quantity, spread_unit
+from tolerance.units import UnitError, format_ppm, format_quantity, spread_unit
 
 __all__ = [
     "EXTRA_FILES",
@@ -357,14 +357,6 @@ def generic_blocks(data, title: str | None = None, depth: int = 0) -> list[Block
 
 
 # --- analysis sections: the tables the console prints and the reports show ----------------------
-
-def format_ppm(rate) -> str:
-    """A rate in parts per million to one decimal, e.g. ``"184.4"``; ``"-"`` for none."""
-    if rate is None:
-        return "-"
-    rate = float(rate)
-    return "nan" if math.isnan(rate) else f"{1e6 * rate:.1f}"
-
 
 def _span(low, high, unit) -> str:
     return f"{format_value(low, unit)} .. {format_value(high, unit)}"

@@ -291,6 +291,14 @@ def spread_unit(unit: str | None) -> str | None:
     return "K" if unit == "temperature" else unit
 
 
+def format_ppm(rate) -> str:
+    """A rate in parts per million to one decimal, e.g. ``"184.4"``; ``"-"`` for none."""
+    if rate is None:
+        return "-"
+    rate = float(rate)
+    return "nan" if math.isnan(rate) else f"{1e6 * rate:.1f}"
+
+
 def format_quantity(x: float, unit: str, digits: int = 3) -> str:
     """Format an SI value in engineering notation with an ASCII unit.
 
