@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 from numpy.testing import assert_allclose
 
+from tolerance import stats
 from tolerance.api import UsageError, load_study, run
 from tolerance.runner import Override
 
@@ -278,6 +279,11 @@ def test_run_summary_carries_insights(write_study):
     assert drivers["ranking"][0]["input"] == "x1"
     assert drivers["ranking"][0]["direction"] == "low"
     assert "y_positive" in s["capability"] and "y_positive" in s["tail"]
+    # the model figures are held against the failures counted on the same samples
+    c = s["criteria"]["y_positive"]
+    assert c["evaluated"] == s["tail"]["y_positive"]["n"]
+    assert s["tail"]["y_positive"]["count_check"] == stats.tail_check(
+        s["tail"]["y_positive"], c["failures"], c["evaluated"])
 
 
 def test_pin_override_reproduces_baseline_columns(study):

@@ -197,6 +197,18 @@ def test_not_converged_is_counted_never_passed(linear):
     assert res.summary["verdict"] == "fail"
 
 
+def test_a_criterion_no_sample_reached_is_undecided_not_passed(linear):
+    # no sample converged: nothing is known of the failure rate, so the interval is the
+    # whole of [0, 1] and the criterion cannot pass (Clopper-Pearson with n = 0; common
+    # practice, no source)
+    res = run(linear("random", '[solver]\ndiverge_above = "-2 V"\n'), samples=50)
+    c = res.summary["criteria"]["y_positive"]
+    assert res.summary["not_converged"] == 50 and c["evaluated"] == 0
+    assert (c["ci_low"], c["ci_high"], c["zero_failure_upper"]) == (0.0, 1.0, 1.0)
+    assert c["verdict"] == "undecided" and res.summary["verdict"] == "fail"
+    assert c["rate"] is None  # NaN in the summary is written as null
+
+
 @pytest.mark.parametrize("sampler", ["random", "lhs", "sobol"])
 def test_same_seed_same_summary_whatever_jobs_and_chunks(linear, tmp_path, sampler):
     from tolerance.summary import comparable

@@ -303,6 +303,24 @@ def test_undecided_verdict_is_explained(write_study, tmp_path):
         assert "UNDECIDED (not enough samples to tell)" in md
 
 
+def test_the_verdict_says_what_it_rests_on():
+    # zero failures in n samples bound the rate below 1 - 0.05**(1/n) (Clopper-Pearson,
+    # one-sided; 95 % for one sample, 150 ppm for 20,000); a positive allowed rate passes
+    # on the top of the two-sided 95 % interval, i.e. at 97.5 % one-sided
+    one = {"verdict": "pass", "max_failure_rate": 0.0, "samples": 1,
+           "zero_failure_upper": 0.95, "criteria": {}}
+    assert "No failure in 1 sample:" in report.verdict_basis(one)
+    assert "below 95 % at 95 % confidence" in report.verdict_basis(one)
+    many = dict(one, samples=20000, zero_failure_upper=1 - 0.05 ** (1 / 20000))
+    assert "below 149.8 ppm" in report.verdict_basis(many)
+    allowed = dict(one, max_failure_rate=1e-4)
+    assert "97.5 % confidence" in report.verdict_basis(allowed)
+    open_ = dict(allowed, verdict="undecided",
+                 criteria={"a": {"verdict": "pass"}, "b": {"verdict": "undecided"}})
+    assert report.verdict_basis(open_).startswith("Undecided: the exact 95 % interval of b ")
+    assert report.verdict_basis(dict(one, verdict="fail")) is None
+
+
 def test_text_is_escaped(folder, tmp_path):
     copy = tmp_path / "esc"
     shutil.copytree(folder, copy)

@@ -13,6 +13,7 @@ from tolerance.stats import (
     clopper_pearson,
     half_width,
     percentile_summary,
+    tail_check,
     tail_estimate,
     zero_failure_upper,
 )
@@ -248,6 +249,10 @@ def test_capability_degenerate_and_errors():
     assert point["cp"] == 0.0 and point["cpk"] == pytest.approx(0.0)
     assert capability([0.0, 0.0], lower=1.0, upper=1.0)["cpk"] == -math.inf
     assert math.isnan(capability([1.0, 1.0], lower=1.0, upper=1.0)["cp"])
+    # every value exactly on its limit with no spread: 0 / 0, not 0 (which would read as
+    # a process centred on its limit, half out); textbook Cpk definition, from memory
+    assert math.isnan(capability([1.0, 1.0], lower=1.0, upper=1.0)["cpk"])
+    assert math.isnan(capability([0.0, 0.0, 0.0], upper=0.0)["cpk"])
 
 
 # ---------------------------------------------------------------------------------------------
@@ -272,6 +277,20 @@ def test_tail_estimate_normal_fit():
     # the GPD fit on a normal tail is also reasonable at 3 sigma (common practice, no source)
     assert out["tail_ppm"] == pytest.approx(1e6 * stats.norm.sf(3.0), rel=0.5)
     assert out["method"].startswith("generalized Pareto fit")
+
+
+def test_tail_check_flags_a_model_outside_the_counted_interval():
+    # Clopper-Pearson: 0 of 20,000 gives 0 .. 184.4 ppm (two-sided 95 %, scipy.stats.binomtest)
+    assert tail_check({"normal_ppm": 1504.5, "tail_ppm": 0.0}, 0, 20000).startswith(
+        "normal_ppm above the counted 95 % interval 0 .. 184 ppm")
+    assert tail_check({"normal_ppm": 12.0, "tail_ppm": 13.4}, 0, 20000).startswith(
+        "agrees with the count")
+    # 50 of 10,000 counted (3,711 .. 6,582 ppm): a tail fit of 100 ppm lies below it
+    assert "tail_ppm below" in tail_check({"normal_ppm": 5000.0, "tail_ppm": 100.0}, 50,
+                                          10000)
+    assert "normal_ppm" not in tail_check({"normal_ppm": float("nan"), "tail_ppm": 1e6},
+                                          10, 10).split("the counted")[0]
+    assert tail_check({}, 0, 0) == "no samples counted"
 
 
 def test_tail_estimate_normal_upper_bound_matches_tolerance_factor():

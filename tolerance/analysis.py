@@ -133,8 +133,11 @@ def insights(study: Study, column, threads: int = 1) -> dict:
 
     for c, (cap, fit) in zip(study.criteria, thread_map(fits, criterion_values(), threads)):
         capability[c.name], tail[c.name] = cap, fit
+    counted = int(converged.sum())
     for c in study.criteria:
         failed = converged & ~column(f"pass.{c.name}")[head].astype(bool)
+        tail[c.name]["count_check"] = stats.tail_check(tail[c.name], int(failed.sum()),
+                                                       counted)
         if failed.any() and varying:
             failing[c.name] = failed[converged]
     if failing:

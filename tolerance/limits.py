@@ -30,11 +30,11 @@ def verdict(failures: int, ci_low: float, ci_high: float, allowed_rate: float) -
 
 def overall(verdicts: list[str], not_converged: int) -> str:
     """Overall verdict: every criterion must pass and every sample must have converged."""
-    if FAIL in verdicts:
-        return FAIL
+    if FAIL in verdicts or not_converged:
+        return FAIL  # a unit the model cannot solve is not shown to work
     if UNDECIDED in verdicts:
         return UNDECIDED
-    return FAIL if not_converged else PASS
+    return PASS
 
 
 def exit_status(overall_verdict: str) -> int:

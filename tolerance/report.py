@@ -237,6 +237,34 @@ def infinite_note(summary: dict) -> str | None:
             "on their metric: " + ", ".join(parts) + ".")
 
 
+def verdict_basis(summary: dict) -> str | None:
+    """A sentence saying what the overall verdict rests on: how strong a PASS is (no failure
+    in n samples only bounds the rate, 950,000 ppm for one sample), or why it is UNDECIDED."""
+    v = summary.get("verdict")
+    allowed = summary.get("max_failure_rate") or 0.0
+    n = summary.get("samples")
+    criteria = summary.get("criteria", {})
+    if v == "pass" and allowed <= 0:
+        bound = summary.get("zero_failure_upper")
+        if not isinstance(n, int) or bound is None:
+            return None
+        rate = format_rate(bound) if bound >= 1e-3 else f"{format_ppm(bound)} ppm"
+        units = "sample" if n == 1 else "samples"
+        return (f"No failure in {format_number(n)} {units}: that shows each criterion's failure "
+                f"rate below {rate} at 95 % confidence (one-sided), and no lower rate; more "
+                f"samples lower that bound.")
+    if v == "pass":
+        return (f"Every criterion's exact 95 % interval lies at or below the allowed "
+                f"{format_ppm(allowed)} ppm: each rate is below it at 97.5 % confidence "
+                f"(one-sided).")
+    if v == "undecided":
+        open_ = [k for k, c in criteria.items() if c.get("verdict") == "undecided"]
+        if open_:
+            return (f"Undecided: the exact 95 % interval of {', '.join(open_)} holds the "
+                    f"allowed {format_ppm(allowed)} ppm; more samples would decide.")
+    return None
+
+
 def sampler_note(summary: dict) -> str | None:
     """A sentence for a Sobol run whose sample count is not a power of two, where the
     sequence loses the balance it is chosen for."""
@@ -936,6 +964,9 @@ def _summary_blocks(summary: dict) -> list[Block]:
     word = verdict_word(v)
     doc.append(Block("verdict", f"Overall verdict: {word} ({VERDICT_MEANING.get(v, v)})",
                      extra={"verdict": v}))
+    basis = verdict_basis(summary)
+    if basis:
+        doc.append(Block("p", basis))
     y = summary.get("yield", {})
     if y:
         doc.append(Block("p", f"Yield {format_rate(y.get('estimate'))} "

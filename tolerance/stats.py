@@ -18,6 +18,7 @@ __all__ = [
     "gpd_fit",
     "half_width",
     "percentile_summary",
+    "tail_check",
     "tail_estimate",
     "zero_failure_upper",
 ]
@@ -235,7 +236,7 @@ def capability(x, lower=None, upper=None, confidence: float = 0.95) -> dict[str,
         ``cpk_low``, ``cpk_high`` [1], the normal-approximation interval of Bissell (1990),
         Cpk +- z * sqrt(1 / (9 n) + Cpk**2 / (2 (n - 1))); ``n`` [count] as an int. With
         fewer than two samples every index is NaN; with zero spread the indices are +-inf
-        and the interval NaN. Equal limits (a metric that must take one value) are allowed:
+        (NaN where every value lies on a limit, 0 / 0) and the interval NaN. Equal limits (a metric that must take one value) are allowed:
         Cp is then 0 (NaN with zero spread as well).
 
     Notes
@@ -270,7 +271,8 @@ def capability(x, lower=None, upper=None, confidence: float = 0.95) -> dict[str,
         cp = ((math.inf if float(upper) > float(lower) else nan)
               if (lower is not None and upper is not None) else nan)
         worst = min(sides)
-        cpk = math.inf if worst > 0 else (-math.inf if worst < 0 else 0.0)
+        # every value on a limit is 0 / 0: no index (0 would read as half the units out)
+        cpk = math.inf if worst > 0 else (-math.inf if worst < 0 else nan)
         return {"cp": cp, "cpk": cpk, "cpk_low": nan, "cpk_high": nan, "n": n}
     cp = (float(upper) - float(lower)) / (6.0 * s) if len(sides) == 2 else nan
     cpk = min(sides) / (3.0 * s)
@@ -451,6 +453,49 @@ def gpd_fit(excess) -> tuple[float, float]:
         return 0.0, float(np.mean(x))
     shape = shape_of(t)
     return shape, shape / t * top
+
+
+def tail_check(fit: dict, failures: int, n: int, confidence: float = 0.95) -> str:
+    """Whether the model-based figures of :func:`tail_estimate` agree with the counted rate.
+
+    Parameters
+    ----------
+    fit : dict
+        A result of :func:`tail_estimate` (``normal_ppm``, ``tail_ppm`` [ppm]).
+    failures, n : int
+        Failures counted among the ``n`` samples the fit used [count].
+    confidence : float, optional
+        Two-sided level [1] of the counted rate's exact interval, default 0.95.
+
+    Returns
+    -------
+    str
+        ``"agrees with the count ..."`` when every figure lies inside the counted rate's
+        Clopper-Pearson interval, else which figure lies above or below it: the model does
+        not describe this margin's tail, and the count is the answer.
+    """
+    if n < 1:
+        return "no samples counted"
+    lo, hi = (1e6 * float(v) for v in clopper_pearson(failures, n, confidence))
+    counted = (f"counted {100 * confidence:g} % interval {_ppm_text(lo)} .. {_ppm_text(hi)} "
+               "ppm")
+    off = []
+    for key, label in (("normal_ppm", "normal_ppm"), ("tail_ppm", "tail_ppm")):
+        v = fit.get(key)
+        if v is None or not math.isfinite(v):
+            continue
+        if v > hi:
+            off.append(f"{label} above")
+        elif v < lo:
+            off.append(f"{label} below")
+    if not off:
+        return f"agrees with the count ({counted})"
+    return (f"{' and '.join(off)} the {counted}: the model does not describe this margin's "
+            "tail; the count is the answer")
+
+
+def _ppm_text(x: float) -> str:
+    return f"{x:.3g}" if x < 1e4 else f"{x:,.0f}"
 
 
 def tail_estimate(margin, confidence: float = 0.95) -> dict:

@@ -57,8 +57,12 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
         ok = column(criterion_column(c.name)).astype(bool)
         failures = int(np.count_nonzero(converged & ~ok))
         denom = max(n_conv, 1)
-        lo, hi = stats.clopper_pearson(failures, denom, CONFIDENCE)
-        v = limits.verdict(failures, float(lo), float(hi), allowed_rate)
+        if n_conv:
+            lo, hi = stats.clopper_pearson(failures, denom, CONFIDENCE)
+            v = limits.verdict(failures, float(lo), float(hi), allowed_rate)
+        else:
+            # no sample converged: nothing is known of the rate, so no pass either
+            lo, hi, v = 0.0, 1.0, limits.UNDECIDED
         verdicts.append(v)
         criteria[c.name] = {
             "metric": c.metric,
@@ -70,8 +74,8 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
             "rate": failures / denom if n_conv else float("nan"),
             "ci_low": float(lo),
             "ci_high": float(hi),
-            "zero_failure_upper": float(stats.zero_failure_upper(denom, CONFIDENCE))
-            if failures == 0 else None,
+            "zero_failure_upper": (float(stats.zero_failure_upper(n_conv, CONFIDENCE))
+                                   if n_conv else 1.0) if failures == 0 else None,
             "verdict": v,
         }
 
