@@ -225,6 +225,28 @@ def test_worst_case_of_linear_stage_is_exact(study):
     assert result["evaluations"] > 2000
 
 
+def test_worst_case_counts_units_beyond_its_box_and_unsolved_corners(write_study):
+    from tolerance.analysis import study_worst_case
+    from tolerance.report import worst_case_within, worstcase_notes
+
+    study = load_study(write_study(LINEAR.format(x1=SPREAD)))
+    result = study_worst_case(study, 2000, 1)
+    df = run(study, samples=2000, seed=1).samples
+    # x2 is an uncut normal with its 30 % tolerance at 3 sigma: the units beyond it are
+    # counted exactly (the same draws as the worst case's Monte Carlo run)
+    assert result["monte_carlo_outside"] == int(((df["x2"] < 0.7) | (df["x2"] > 1.3)).sum())
+    assert result["monte_carlo_outside"] > 0
+    # x1 above 2.5 V does not solve: the corners at x1 = 3 have no value, so a limit the
+    # solved corners meet is not shown to hold
+    unsolved = load_study(write_study(LINEAR.format(x1=SPREAD)
+                                      + '[solver]\ndiverge_above = "2.5 V"\n'))
+    y = study_worst_case(unsolved, 500, 1)["metrics"]["y"]
+    assert y["eva_dropped"] == 2  # of the four corners of (x1, x2)
+    assert worst_case_within(dict(y, mc_min=None, mc_max=None),
+                             [{"min": -10.0, "max": 10.0}]) == "unknown"
+    assert "2 corners did not solve" in worstcase_notes({"metrics": {"y": y}})[0]
+
+
 def test_sensitivity_of_linear_stage(study):
     from tolerance.analysis import study_sensitivity
 

@@ -419,9 +419,10 @@ def test_analysis_sections_show_the_console_tables_in_units(tmp_path):
 
 
 def test_worst_case_within_compares_the_worst_extremes_with_every_limit():
-    # common practice, no source: the classic worst-case sign-off holds when the extremes of
-    # the corners and of the search lie inside the limits; the Monte Carlo extremes and the
-    # RSS band do not decide it
+    # common practice, no source: the worst-case sign-off holds when the extremes of the
+    # corners, of the search and of every unit drawn lie inside the limits (Monte Carlo units
+    # can lie beyond the ranges searched); the RSS band, a statistical estimate, does not
+    # decide it
     m = {"eva_min": 1.3, "eva_max": 12.0, "opt_min": 1.25, "opt_max": None, "rss_low": 0.9,
          "mc_min": 1.8}
     assert report.worst_case_within(m, [{"min": 1.2, "max": None}]) == "yes"
@@ -429,6 +430,20 @@ def test_worst_case_within_compares_the_worst_extremes_with_every_limit():
     assert report.worst_case_within(m, [{"min": None, "max": 11.0}]) == "no"
     assert report.worst_case_within(m, []) == "-"
     assert report.worst_case_within({"eva_min": float("nan")}, [{"min": 0, "max": None}]) == "-"
+    # a Monte Carlo unit past a limit the corners stay inside (a gain below the datasheet
+    # minimum, drawn from an uncut lognormal)
+    assert report.worst_case_within(dict(m, mc_max=12.5), [{"min": None, "max": 12.2}]) == "no"
+    assert report.monte_carlo_beyond(dict(m, mc_max=12.5))
+    assert not report.monte_carlo_beyond(m)
+    # an infinite extreme (a transition that never ends), as a worst-case file writes it
+    assert report.worst_case_within(dict(m, eva_max="inf"), [{"min": None, "max": 1e9}]) == "no"
+    # unsolved corners: within the limits as far as it goes, but not shown
+    assert report.worst_case_within(dict(m, eva_dropped=3), [{"min": 1.2, "max": None}]) \
+        == "unknown"
+    notes = report.worstcase_notes({"metrics": {"y": dict(m, eva_dropped=3, mc_max=13.0)},
+                                    "monte_carlo_outside": 27, "monte_carlo_samples": 10000})
+    assert notes[0].startswith("3 corners did not solve (no value) for y:")
+    assert "27 of 10000 Monte Carlo samples drew a parameter outside" in notes[1]
 
 
 def test_analysis_only_folders(write_study, tmp_path):

@@ -367,9 +367,11 @@ def cmd_worstcase(args) -> int:
     if not args.quiet:
         w = sys.stdout.write
         w(f"\nworst case of {study.title}  ({result['evaluations']:,} evaluations)\n\n")
-        from tolerance.report import worstcase_tables
+        from tolerance.report import worstcase_notes, worstcase_tables
 
         w(_text_table(worstcase_tables(result)[0]))
+        for note in worstcase_notes(result):
+            w(f"\n{note}\n")
         w(f"\nresults in {out}\n\nCaution: {SAFETY}\n")
     return 0
 

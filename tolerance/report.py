@@ -390,15 +390,25 @@ def _span(low, high, unit) -> str:
     return f"{format_value(low, unit)} .. {format_value(high, unit)}"
 
 
-def _finite(*values) -> list[float]:
-    return [float(v) for v in values if isinstance(v, (int, float)) and math.isfinite(v)]
+def _extremes(*values) -> list[float]:
+    """The numbers among ``values``, infinities included ("inf" and "-inf" as a worst-case
+    file writes them); None, NaN and other text are no value."""
+    out = []
+    for v in values:
+        if isinstance(v, str) and v in ("inf", "-inf"):
+            v = float(v)
+        if isinstance(v, (int, float)) and not isinstance(v, bool) and not math.isnan(v):
+            out.append(float(v))
+    return out
 
 
 def worst_case_within(m: dict, limits: list[dict]) -> str:
-    """"yes" when the worst case (the extreme-value and optimizer extremes) lies within every
-    limit of its metric, "no" when it does not, "-" without a limit or a finite extreme."""
-    lows, highs = _finite(m.get("eva_min"), m.get("opt_min")), _finite(m.get("eva_max"),
-                                                                         m.get("opt_max"))
+    """"yes" when every worst-case extreme (extreme-value corners, optimizer, and the Monte
+    Carlo samples, which can reach beyond the ranges searched) lies within every limit of its
+    metric; "no" when one does not; "unknown" when they do but corners went unsolved
+    (``eva_dropped``); "-" without a limit or an extreme."""
+    lows = _extremes(m.get("eva_min"), m.get("opt_min"), m.get("mc_min"))
+    highs = _extremes(m.get("eva_max"), m.get("opt_max"), m.get("mc_max"))
     if not limits or not (lows or highs):
         return "-"
     for c in limits:
@@ -406,7 +416,43 @@ def worst_case_within(m: dict, limits: list[dict]) -> str:
             return "no"
         if c.get("max") is not None and (not highs or max(highs) > c["max"]):
             return "no"
-    return "yes"
+    return "unknown" if m.get("eva_dropped") else "yes"
+
+
+def monte_carlo_beyond(m: dict) -> bool:
+    """True when the Monte Carlo extremes reach past the corners' and the optimizer's."""
+    lows = _extremes(m.get("eva_min"), m.get("opt_min"))
+    highs = _extremes(m.get("eva_max"), m.get("opt_max"))
+    mc_lo, mc_hi = _extremes(m.get("mc_min")), _extremes(m.get("mc_max"))
+    return bool((lows and mc_lo and mc_lo[0] < min(lows))
+                or (highs and mc_hi and mc_hi[0] > max(highs)))
+
+
+def worstcase_notes(data: dict) -> list[str]:
+    """Sentences on what the worst-case table cannot show by itself: corners the model did
+    not solve, and Monte Carlo units beyond the ranges searched."""
+    notes = []
+    metrics = data.get("metrics") or {}
+    unsolved = {name: m["eva_dropped"] for name, m in metrics.items()
+                if isinstance(m, dict) and m.get("eva_dropped")}
+    if unsolved:
+        counts = sorted(set(unsolved.values()))
+        notes.append(
+            f"{'/'.join(format_number(c) for c in counts)} corners did not solve (no value) "
+            f"for {', '.join(unsolved)}: the extremes there are of the solved corners only, so "
+            "their worst case is unknown until those corners are solved (a supply below the "
+            "stage's turn-on, a part outside its model's range).")
+    beyond = [name for name, m in metrics.items() if isinstance(m, dict)
+              and monte_carlo_beyond(m)]
+    outside = data.get("monte_carlo_outside")
+    if beyond:
+        why = (f"{format_number(outside)} of {format_number(data.get('monte_carlo_samples'))} "
+               "Monte Carlo samples drew a parameter outside the ranges searched (normal and "
+               "lognormal spreads are not cut at their tolerance: truncnormal is)"
+               if outside else "the corners and the search missed an inner extreme")
+        notes.append(f"The Monte Carlo samples reach beyond the worst-case extremes for "
+                     f"{', '.join(beyond)}: {why}; 'worst case within' counts them.")
+    return notes
 
 
 def worstcase_tables(data: dict) -> list[Table]:
@@ -427,7 +473,7 @@ def worstcase_tables(data: dict) -> list[Table]:
                      _span(m.get("mc_min"), m.get("mc_max"), u),
                      "; ".join(_limits_text(c, u) for c in limits.get(name, [])) or "-",
                      within])
-        classes.append([""] * 7 + ["v-fail" if within == "no" else ""])
+        classes.append([""] * 7 + ["v-fail" if within in ("no", "unknown") else ""])
     metrics = Table(["metric", "nominal", "EVA min .. max", "RSS band", "optimizer min .. max",
                      "Monte Carlo min .. max", "limit", "worst case within"], rows,
                     "worstcase-table", "Worst case of every metric", classes)
@@ -447,8 +493,10 @@ WORST_CASE_METHODS = (
     "parameters as independent, so for a metric exponential in its inputs (leakage, off "
     "current) the band can reach values the circuit cannot (a negative current). Optimizer: "
     "bounded searches from several starts for the limited metrics, which finds an extreme "
-    "inside the ranges that no corner shows. Monte Carlo: the extremes of the samples drawn. "
-    "'worst case within' compares the EVA and optimizer extremes with the metric's limits.")
+    "inside the ranges that no corner shows. Monte Carlo: the extremes of the samples drawn, "
+    "which can lie beyond the ranges searched. 'worst case within' compares the EVA, optimizer "
+    "and Monte Carlo extremes with the metric's limits; it reads 'unknown' where corners did "
+    "not solve.")
 
 
 def whatif_tables(data: dict) -> list[Table]:
@@ -549,13 +597,20 @@ def choose_table(data: dict) -> Table:
 def _worstcase_blocks(data: dict) -> list[Block]:
     metrics, bounds = worstcase_tables(data)
     failing = [row[0] for row in metrics.rows if row[-1] == "no"]
+    unknown = [row[0] for row in metrics.rows if row[-1] == "unknown"]
+    said = []
+    if failing:
+        said.append(f"Worst case beyond a limit: {', '.join(failing)}.")
+    if unknown:
+        said.append(f"Worst case unknown (corners unsolved): {', '.join(unknown)}.")
+    if not said and any(row[-1] == "yes" for row in metrics.rows):
+        said.append("Every limited metric's worst case lies within its limits.")
     out = [Block("p", f"{format_number(data.get('evaluations'))} evaluations, beside a "
-                      f"{format_number(data.get('monte_carlo_samples'))}-sample Monte Carlo run."
-                      + (f" Worst case beyond a limit: {', '.join(failing)}." if failing else
-                         " Every limited metric's worst case lies within its limits."
-                         if any(row[-1] == "yes" for row in metrics.rows) else "")),
-           Block("table", table=metrics), Block("p", WORST_CASE_METHODS),
-           Block("table", table=bounds)]
+                      f"{format_number(data.get('monte_carlo_samples'))}-sample Monte Carlo "
+                      "run. " + " ".join(said)),
+           Block("table", table=metrics)]
+    out += [Block("note", n) for n in worstcase_notes(data)]
+    out += [Block("p", WORST_CASE_METHODS), Block("table", table=bounds)]
     return out
 
 

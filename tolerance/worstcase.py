@@ -190,7 +190,8 @@ def extreme_value(
         ``argmax`` (dict name -> value, all parameters; empty when every vertex is NaN),
         ``method`` (``"full factorial"`` or
         ``"sensitivity-directed"``), ``evaluations`` (model samples used, shared by all
-        metrics of the call) and ``dropped`` (evaluated points whose value was NaN).
+        metrics of the call) and ``dropped`` (evaluated points whose value was NaN; an
+        infinite value is a value and can be the extreme).
 
     Notes
     -----
@@ -253,7 +254,7 @@ def extreme_value(
     result: dict = {}
     for m in metrics:
         pts, vals = candidates[m]
-        finite = np.isfinite(vals)
+        finite = ~np.isnan(vals)  # an infinite value (a transition that never ends) counts
         entry = {
             "nominal": y_nom[m],
             "method": method,
@@ -846,7 +847,8 @@ def worst_case_table(
     -------
     dict
         ``result[metric]`` is a flat, table-ready dict with ``nominal``, ``eva_min``,
-        ``eva_max``, ``eva_argmin``, ``eva_argmax``, ``eva_method``, ``rss_low``,
+        ``eva_max``, ``eva_argmin``, ``eva_argmax``, ``eva_method``, ``eva_dropped`` (corners
+        without a value, NaN: not solved), ``rss_low``,
         ``rss_high``, ``linear_low``, ``linear_high``, ``opt_min``, ``opt_max``,
         ``opt_argmin``, ``opt_argmax`` and, with ``mc_extremes``, the ``mc_*`` entries.
         ``result["evaluations"]`` is the total number of model samples used by all methods
@@ -886,6 +888,7 @@ def worst_case_table(
             "eva_argmin": e["argmin"],
             "eva_argmax": e["argmax"],
             "eva_method": e["method"],
+            "eva_dropped": e["dropped"],
             "rss_low": r["rss_low"],
             "rss_high": r["rss_high"],
             "linear_low": r["linear_low"],
