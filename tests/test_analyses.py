@@ -46,6 +46,45 @@ def test_whatif_pin_equals_fixed_parameter(study, write_study):
     assert result["yield"]["baseline"]["estimate"] == base.summary["yield"]["estimate"]
 
 
+def test_whatif_pin_moves_a_correlated_partner_to_its_conditional_distribution(write_study):
+    from scipy import special
+
+    from tolerance.whatif import whatif
+
+    corr = '[[correlation]]\nparameters = ["x1", "x2"]\ncoefficient = 0.8\n'
+    study = load_study(write_study(LINEAR.format(x1=SPREAD) + corr))
+    _, base, pinned = whatif(study, ["x1=p90"])
+    # Gaussian copula: normal scores z1, z2 with correlation 0.8; given z1 = t the partner's
+    # score is 0.8 t + (z2 - 0.8 z1), each sample keeping its own residual (conditional
+    # normal, any multivariate text, from memory). x1 = U(-1, 3), x2 = N(1, 0.1).
+    t = special.ndtri(0.9)
+    z1 = special.ndtri((base.samples["x1"].to_numpy() + 1) / 4)
+    z2 = (base.samples["x2"].to_numpy() - 1) / 0.1
+    got = (pinned.samples["x2"].to_numpy() - 1) / 0.1
+    assert_allclose(got, 0.8 * t + (z2 - 0.8 * z1), atol=1e-7)
+    assert_allclose(got.mean(), 0.8 * t, atol=0.03)
+    assert_allclose(got.std(), np.sqrt(1 - 0.8**2), rtol=0.05)
+    # the pin itself takes its value; without a correlation the partner keeps every bit
+    assert_allclose(pinned.samples["x1"], 2.6, rtol=1e-12)  # -1 + 0.9 * 4
+    result, _, _ = whatif(study, ["x1=p90"])
+    assert result["followers"] == ["x2"]
+    plain = load_study(write_study(LINEAR.format(x1=SPREAD), "plain.toml"))
+    _, b0, p0 = whatif(plain, ["x1=p90"])
+    assert np.array_equal(p0.samples["x2"], b0.samples["x2"])
+
+
+def test_a_pin_at_a_uniform_end_counts_as_a_three_sigma_score(write_study):
+    from tolerance.whatif import whatif
+
+    corr = '[[correlation]]\nparameters = ["x1", "x2"]\ncoefficient = -0.5\n'
+    study = load_study(write_study(LINEAR.format(x1=SPREAD) + corr))
+    _, base, pinned = whatif(study, ["x1=max"])
+    # the end of a uniform is an infinite normal score; the pin stands for a tolerance limit
+    # (3 sigma, tolerance.sampling.PIN_SCORE): mean score -0.5 * 3 (common practice, no source)
+    got = (pinned.samples["x2"].to_numpy() - 1) / 0.1
+    assert_allclose(got.mean(), -1.5, atol=0.03)
+
+
 def test_whatif_pin_forms(study):
     from tolerance.whatif import pin_value
 

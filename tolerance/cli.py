@@ -336,6 +336,8 @@ def cmd_whatif(args) -> int:
           "numbers)\n")
         from tolerance.report import whatif_tables
 
+        if result.get("followers"):
+            w(f"correlated with a pin, drawn given it: {', '.join(result['followers'])}\n")
         yb, yp = result["yield"]["baseline"], result["yield"]["pinned"]
         w(f"yield  baseline {100 * yb['estimate']:.4f} %   pinned {100 * yp['estimate']:.4f} %\n\n")
         _, _, criteria, spread = whatif_tables(result)

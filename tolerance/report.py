@@ -615,8 +615,12 @@ def _worstcase_blocks(data: dict) -> list[Block]:
 
 
 def _whatif_blocks(data: dict) -> list[Block]:
+    followers = data.get("followers") or []
+    moved = (f" and their correlated partners {', '.join(followers)}, drawn given the pins "
+             "(each unit keeps its own deviation from the conditional mean)" if followers else "")
     return [Block("p", f"{format_number(data.get('samples'))} samples each, common random "
-                       "numbers: the pinned run differs from the baseline only by the pins.")
+                       f"numbers: the pinned run differs from the baseline only by the pins"
+                       f"{moved}.")
             ] + [Block("table", table=t) for t in whatif_tables(data)]
 
 

@@ -29,7 +29,7 @@ import pyarrow.parquet as pq
 
 from tolerance.files import TMP_SUFFIX, atomic_path
 from tolerance.protocol import Criterion, Parameter
-from tolerance.sampling import draw
+from tolerance.sampling import condition_on_pins, draw
 
 if TYPE_CHECKING:  # pandas is imported where a frame is built: a worker writing chunks
     import pandas as pd  # never needs it, and it costs a worker's start a third of a second
@@ -152,8 +152,11 @@ def chunk_columns(spec: RunSpec, start: int, stop: int) -> dict[str, np.ndarray]
     """Draw, evaluate and judge samples ``start:stop``: one array per column (sample index,
     parameters, metrics, ``converged``, a ``pass.<criterion>`` column per criterion and
     ``pass``), one row per sample."""
-    _, values = draw(spec.parameters, spec.correlation, spec.sampler, spec.seed, spec.samples,
+    u, values = draw(spec.parameters, spec.correlation, spec.sampler, spec.seed, spec.samples,
                      start, stop)
+    # a pinned parameter's correlated partners follow it (their conditional distribution)
+    values.update(condition_on_pins(spec.parameters, spec.correlation, u,
+                                    {n: o.value for n, o in spec.overrides if o.kind == "pin"}))
     for name, override in spec.overrides:
         if override.kind == "pin":
             values[name] = np.full(stop - start, override.value)

@@ -118,6 +118,61 @@ def apply_copula(u: np.ndarray, correlation: np.ndarray | None) -> np.ndarray:
     return out
 
 
+#: largest normal score a pin stands for in :func:`condition_on_pins`: a tolerance limit's
+#: (limits sit at 3 sigma); a uniform's end or a value beyond its range would be infinite
+PIN_SCORE = 3.0
+
+
+def condition_on_pins(parameters, correlation: np.ndarray | None, u: np.ndarray,
+                      pins: dict[str, float]) -> dict[str, np.ndarray]:
+    """Values of the parameters correlated with pinned ones, drawn given the pins.
+
+    With a Gaussian copula the normal scores z are jointly normal with ``correlation`` S;
+    pinning parameters P at scores t makes the others' scores z_R + S_RP S_PP^-1 (t - z_P):
+    their part independent of z_P (each sample's own random numbers) is kept and their mean
+    moves with the pin, which is the conditional distribution of z_R given z_P = t (any text
+    on the multivariate normal, e.g. Anderson, "An Introduction to Multivariate Statistical
+    Analysis", theorem 2.5.1, from memory). A pin's score is Phi^-1(F(value)), at most
+    ``PIN_SCORE`` in size.
+
+    Parameters
+    ----------
+    parameters : sequence of Parameter
+        The study's parameters, in the columns' order of ``u``.
+    correlation : ndarray or None
+        Correlation of the normal scores [1]; None: nothing is correlated.
+    u : ndarray
+        The correlated uniform design rows (:func:`apply_copula`), one column per parameter.
+    pins : dict
+        Pinned parameter -> value [SI].
+
+    Returns
+    -------
+    dict
+        New values [SI] of every unpinned parameter correlated with a pinned one; the other
+        parameters keep their values bit for bit.
+    """
+    if correlation is None or not pins:
+        return {}
+    names = [p.name for p in parameters]
+    pinned = [names.index(n) for n in pins]
+    rest = [j for j in range(len(names))
+            if j not in pinned and np.any(correlation[j, pinned] != 0.0)]
+    if not rest:
+        return {}
+    with np.errstate(divide="ignore"):
+        t = np.array([float(special.ndtri(parameters[i].distribution.cdf(np.array(pins[n]))))
+                      for i, n in zip(pinned, pins)])
+    t = np.clip(np.nan_to_num(t, nan=0.0), -PIN_SCORE, PIN_SCORE)
+    z_p = special.ndtri(np.clip(u[:, pinned], 1e-15, 1 - 1e-15))
+    z_r = special.ndtri(np.clip(u[:, rest], 1e-15, 1 - 1e-15))
+    gain = np.linalg.solve(correlation[np.ix_(pinned, pinned)],
+                           correlation[np.ix_(pinned, rest)])  # S_PP^-1 S_PR
+    u_r = special.ndtr(z_r + (t[None, :] - z_p) @ gain)
+    return {names[j]: np.asarray(parameters[j].distribution.ppf(u_r[:, k]), dtype=float)
+            for k, j in enumerate(rest)}
+
+
 def values(parameters: list[Parameter] | tuple[Parameter, ...], u: np.ndarray) -> dict[str, np.ndarray]:
     """Map uniform columns to parameter values through each inverse CDF."""
     return {p.name: np.asarray(p.distribution.ppf(u[:, i]), dtype=float)

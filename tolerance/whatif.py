@@ -122,6 +122,9 @@ def whatif(study: Study, pins: list[str], samples: int | None = None, seed: int 
         "pinned_values": {n: format_quantity(o.value, study.parameter(n).unit)
                           for n, o in overrides.items()},
         "pin_text": pins,
+        # partners of a pinned parameter are drawn given the pin (sampling.condition_on_pins)
+        "followers": sorted({n for c in study.correlations if set(c.parameters) & set(overrides)
+                             for n in c.parameters if n not in overrides}),
         **compare(base.summary, pinned.summary),
         "evaluations": 2 * base.summary["samples"],
     }
