@@ -244,6 +244,26 @@ def test_a_metric_infinite_everywhere_has_infinite_corners_and_no_band_without_a
     assert table["stress"]["eva_dropped"] == 0
 
 
+def test_dropped_counts_unsolved_corners_not_undefined_figures():
+    # a figure the stage does not define (NaN at a solved point) is no unsolved corner;
+    # a point the model did not solve is (common practice, no source)
+    from tolerance.worstcase import SOLVED, extreme_value
+
+    def model(s):
+        a = s["a"]
+        return {"y": a + s["b"], "undefined": np.full(a.shape, np.nan), SOLVED: a < 0.9}
+
+    bounds = [Bound("a", 0.5, 0.0, 1.0), Bound("b", 0.5, 0.0, 1.0)]
+    eva = extreme_value(model, bounds)
+    assert set(eva) == {"y", "undefined"}
+    # the corners with a = 1 (two of four) are unsolved, for every metric
+    assert eva["y"]["dropped"] == 2 and eva["undefined"]["dropped"] == 2
+    assert eva["y"]["max"] == pytest.approx(1.0)  # a = 0, b = 1; the unsolved a = 1 is out
+    solved = extreme_value(lambda s: {**model(s), SOLVED: np.ones(s["a"].shape, bool)},
+                           bounds)
+    assert solved["undefined"]["dropped"] == 0 and np.isnan(solved["undefined"]["max"])
+
+
 def test_worst_case_table_combines_methods():
     mc = {"y": {"min": -1.0, "max": 2.0, "p001": -0.9, "p999": 1.9}}
     table = worst_case_table(linear_model, LINEAR_BOUNDS, ["y"], mc_extremes=mc, seed=5)

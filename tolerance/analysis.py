@@ -41,7 +41,10 @@ def model_for(study: Study):
         with np.errstate(all="ignore"):
             out = stage.evaluate(full)
         ok = np.asarray(out.pop("converged"), dtype=bool)
-        return {m: np.where(ok, np.asarray(out[m], dtype=float), np.nan) for m in stage.metrics}
+        result = {m: np.where(ok, np.asarray(out[m], dtype=float), np.nan)
+                  for m in stage.metrics}
+        result[worstcase.SOLVED] = ok
+        return result
 
     return model
 

@@ -96,6 +96,12 @@ def _check_bounds(bounds: Sequence[Bound]) -> list[Bound]:
     return bounds
 
 
+#: optional boolean output of a model: which points it solved. With it, a point that was
+#: solved but has a NaN metric (a figure the stage does not define there) is not counted as
+#: unsolved in ``dropped``.
+SOLVED = "solved"
+
+
 def _evaluate(
     model: Model, bounds: list[Bound], x: np.ndarray, metrics: list[str] | None
 ) -> tuple[dict[str, np.ndarray], list[str]]:
@@ -103,7 +109,7 @@ def _evaluate(
     x = np.atleast_2d(np.asarray(x, dtype=float))
     out = model({b.name: x[:, i].copy() for i, b in enumerate(bounds)})
     if metrics is None:
-        metrics = list(out)
+        metrics = [k for k in out if k != SOLVED]
     missing = [m for m in metrics if m not in out]
     if missing:
         raise KeyError(f"model did not return metric(s) {missing}")
@@ -115,6 +121,8 @@ def _evaluate(
                 f"model returned {y.size} values of {m!r} for a batch of {x.shape[0]}"
             )
         result[m] = y
+    if SOLVED in out:
+        result[SOLVED] = np.asarray(out[SOLVED], dtype=bool).reshape(-1)
     return result, list(metrics)
 
 
@@ -190,8 +198,9 @@ def extreme_value(
         ``argmax`` (dict name -> value, all parameters; empty when every vertex is NaN),
         ``method`` (``"full factorial"`` or
         ``"sensitivity-directed"``), ``evaluations`` (model samples used, shared by all
-        metrics of the call) and ``dropped`` (evaluated points whose value was NaN; an
-        infinite value is a value and can be the extreme).
+        metrics of the call) and ``dropped`` (evaluated points the model did not solve, by
+        its ``SOLVED`` output, else whose value was NaN; an infinite value is a value and
+        can be the extreme).
 
     Notes
     -----
@@ -229,6 +238,7 @@ def extreme_value(
         evaluations = int(batch.shape[0])
         y_nom = {m: float(y[m][0]) for m in metrics}
         candidates = {m: (batch[1:], y[m][1:]) for m in metrics}
+        solved = y[SOLVED][1:] if SOLVED in y else None
     else:
         method = "sensitivity-directed"
         sens, _, metrics, n_fd = _central_differences(model, bounds, metrics, 1e-3)
@@ -250,16 +260,19 @@ def extreme_value(
         )
         y_nom = {m: float(y[m][is_nominal][0]) for m in metrics}
         candidates = {m: (batch[on_vertex], y[m][on_vertex]) for m in metrics}
+        solved = y[SOLVED][on_vertex] if SOLVED in y else None
 
     result: dict = {}
     for m in metrics:
         pts, vals = candidates[m]
         finite = ~np.isnan(vals)  # an infinite value (a transition that never ends) counts
+        if solved is not None:
+            finite &= solved  # an unsolved point's figures are no extreme
         entry = {
             "nominal": y_nom[m],
             "method": method,
             "evaluations": evaluations,
-            "dropped": int((~finite).sum()),
+            "dropped": int((~finite).sum() if solved is None else (~solved).sum()),
         }
         if finite.any():
             masked_lo = np.where(finite, vals, np.inf)
