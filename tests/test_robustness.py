@@ -283,6 +283,38 @@ def test_resume_never_replaces_another_run(write_study, tmp_path, change, told):
     assert comparable(replaced.summary) != comparable(first.summary)
 
 
+def test_resume_never_mixes_chunks_of_another_version_of_the_tool(write_study, tmp_path,
+                                                                 monkeypatch):
+    from tolerance import api, runner
+
+    study = load_study(write_study(LINEAR.format(samples=3000, chunk=500)))
+    run(study, out=tmp_path / "r")
+    (tmp_path / "r" / "summary.json").unlink()  # as if killed before the summary
+    # the same study and seed with changed code (an upgrade between the kill and the resume)
+    monkeypatch.setattr(api, "code_digest", lambda: "0" * 16)
+    with pytest.raises(UsageError, match=r"another run \(another version of the tool"):
+        run(study, out=tmp_path / "r", resume=True)
+    # the digest covers every source file: a changed byte anywhere changes it
+    assert runner.code_digest() != "0" * 16 and len(runner.code_digest()) == 16
+
+
+def test_only_chunk_files_are_read_as_chunks(write_study, tmp_path):
+    from tolerance import runner
+
+    study = load_study(write_study(LINEAR.format(samples=3000, chunk=500)))
+    whole = run(study, out=tmp_path / "r")
+    folder = tmp_path / "r" / "samples.parquet"
+    chunks = runner.chunk_files(folder)
+    # a copy a file manager made beside the chunks is no chunk: not read, not deleted
+    stray = folder / "part-000003 (copy).parquet"
+    stray.write_bytes(chunks[3].read_bytes())
+    assert runner.chunk_files(folder) == chunks
+    chunks[5].unlink()
+    (tmp_path / "r" / "summary.json").unlink()
+    resumed = run(study, out=tmp_path / "r", resume=True)
+    assert comparable(resumed.summary) == comparable(whole.summary) and stray.exists()
+
+
 @pytest.mark.parametrize("force", [False, True])
 def test_resume_keeps_the_plan_of_the_run_it_continues(write_study, tmp_path, monkeypatch,
                                                        force):
@@ -798,3 +830,41 @@ def test_a_worker_that_dies_ends_the_run_with_a_clear_message(write_study, tmp_p
     # in this process the stage works: the run resumes to the plain run's result
     resumed = run(dying, out=out, resume=True)
     assert comparable(resumed.summary) == comparable(run(study).summary)
+
+
+def test_a_study_that_is_no_file_is_refused_before_it_is_read(tmp_path, capsys):
+    # /dev/zero never ends and a folder is no file: both refused at once, naming the path
+    for path in ("/dev/zero", tmp_path):
+        code, err = _cli_in_process(["check", path], capsys)
+        assert code == 2 and f"{path}: is not a regular file" in err
+    # a file far larger than any study is refused unread (common practice, no source)
+    big = tmp_path / "big.toml"
+    big.write_bytes(b"#" * (5 * 2**20))
+    code, err = _cli_in_process(["check", big], capsys)
+    assert code == 2 and "big.toml: is larger than 4 MiB" in err
+
+
+def test_a_byte_order_mark_is_read_as_nothing(tmp_path, capsys):
+    demo = ROOT / "tolerance" / "demo" / "demo.toml"
+    bom = tmp_path / "bom.toml"
+    bom.write_bytes(b"\xef\xbb\xbf" + demo.read_bytes())
+    assert load_study(bom).title == load_study(demo).title
+    assert _cli_in_process(["check", bom], capsys)[0] == 0
+
+
+def test_jobs_and_out_that_cannot_be_meant_are_refused(tmp_path, capsys):
+    import os
+
+    from tolerance.cli import JOBS_PER_CORE
+
+    too_many = JOBS_PER_CORE * (os.cpu_count() or 1) + 1
+    # refused as argparse refuses any bad argument: exit status 2 and a usage line
+    with pytest.raises(SystemExit) as stop:
+        _cli_in_process(["run", "--jobs", too_many, "--samples", "8", "--out",
+                         tmp_path / "o"], capsys)
+    err = capsys.readouterr().err
+    assert stop.value.code == 2 and "argument --jobs: at most" in err
+    assert not (tmp_path / "o").exists()
+    with pytest.raises(SystemExit) as stop:
+        _cli_in_process(["run", "--out", "", "--samples", "8"], capsys)
+    assert stop.value.code == 2 and "argument --out: expected a folder" in capsys.readouterr().err

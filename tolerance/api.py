@@ -19,7 +19,7 @@ import numpy as np
 
 from tolerance import runner
 from tolerance.files import TMP_SUFFIX, os_error_text, write_atomic
-from tolerance.runner import Override, RunSpec
+from tolerance.runner import Override, RunSpec, code_digest
 from tolerance.study import SAMPLERS, Study, StudyError, parameter_hint
 from tolerance.study import load_study as _load_study_file
 from tolerance.threads import parent_threads
@@ -233,7 +233,7 @@ def make_spec(study: Study, samples: int | None = None, seed: int | None = None,
                              f"parameters: {', '.join(study.parameter_names)}")
     corr = study.correlation_matrix() if study.correlations else None
     return RunSpec(study.stage, study.parameters, study.criteria, corr, sampler, seed, samples,
-                   study.study_hash, tuple(sorted(overrides.items())))
+                   study.study_hash, tuple(sorted(overrides.items())), code_digest())
 
 
 def run(study: Study, samples: int | None = None, seed: int | None = None,

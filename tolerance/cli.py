@@ -514,6 +514,7 @@ def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     argv = sys.argv[1:] if argv is None else argv
     args = parser.parse_args(argv)
+    _check_args(parser, args)
     # SIGTERM (a batch system's time limit, `timeout`) ends the command as Ctrl-C does, in
     # every phase: with its default the process ended at once and left the --jobs workers
     # behind, idle, holding the command's output open until their idle timeout
@@ -526,6 +527,30 @@ def main(argv: list[str] | None = None) -> int:
     finally:
         if previous is not None:
             signal.signal(signal.SIGTERM, previous)
+
+
+#: local workers per core at most: each is a process of some 100 MB, and the results do not
+#: depend on their number (common practice, no source)
+JOBS_PER_CORE = 4
+#: workers at most on a cluster (--scheduler)
+CLUSTER_JOBS = 4096
+
+
+def _check_args(parser, args) -> None:
+    """Refusals argparse cannot make alone (exit 2): a --jobs that would start more
+    processes than the machine can hold, an empty --out."""
+    jobs = getattr(args, "jobs", None)
+    if jobs is not None:
+        cores = os.cpu_count() or 1
+        if getattr(args, "scheduler", None):
+            if jobs > CLUSTER_JOBS:
+                parser.error(f"argument --jobs: at most {CLUSTER_JOBS} on a cluster, got {jobs}")
+        elif jobs > JOBS_PER_CORE * cores:
+            parser.error(f"argument --jobs: at most {JOBS_PER_CORE * cores} on this machine "
+                         f"({JOBS_PER_CORE} per core, {cores} cores), got {jobs}; each worker "
+                         "is a process, and the results do not depend on their number")
+    if getattr(args, "out", None) == "":
+        parser.error("argument --out: expected a folder, got an empty name")
 
 
 def _terminate(signum, frame):

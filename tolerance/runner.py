@@ -13,7 +13,10 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import functools
+import hashlib
 import json
+import re
 import signal
 import sys
 import threading
@@ -35,6 +38,7 @@ if TYPE_CHECKING:  # pandas is imported where a frame is built: a worker writing
     import pandas as pd  # never needs it, and it costs a worker's start a third of a second
 
 CHUNK_PREFIX = "part-"
+_CHUNK_NAME = re.compile(re.escape(CHUNK_PREFIX) + r"\d{6,}\.parquet")
 
 
 @dataclass(frozen=True)
@@ -63,6 +67,7 @@ class RunSpec:
     samples: int
     study_hash: str
     overrides: tuple[tuple[str, Override], ...] = ()
+    code: str = ""  # digest of the code that computes the samples (code_digest)
 
     @property
     def signature(self) -> dict:
@@ -72,7 +77,25 @@ class RunSpec:
             "samples": self.samples,
             "sampler": self.sampler,
             "overrides": [[n, o.kind, o.value] for n, o in self.overrides],
+            "code": self.code,
         }
+
+
+@functools.lru_cache(maxsize=1)
+def code_digest() -> str:
+    """Digest of every source and library file of the tool (``tolerance`` and its models):
+    chunks stamped with another digest were computed by other code, and a resumed run does
+    not mix them with its own."""
+    import tolerance
+    import tolerance.models
+
+    digest = hashlib.sha256(tolerance.__version__.encode())
+    for top in (Path(tolerance.__file__).parent, *map(Path, tolerance.models.__path__)):
+        for path in sorted(top.rglob("*")):
+            if path.suffix in (".py", ".toml") and "__pycache__" not in path.parts:
+                digest.update(path.relative_to(top).as_posix().encode())
+                digest.update(path.read_bytes())
+    return digest.hexdigest()[:16]
 
 
 #: with a stop rule, the rule is checked at every multiple of this many samples
@@ -120,7 +143,8 @@ def resumable_chunk_size(folder: Path, spec: RunSpec) -> int | None:
 
 
 #: how a difference of the signature's entries is told when a resumed run is refused
-_OTHER = {"study_hash": "another version of the study", "overrides": "other pinned values"}
+_OTHER = {"study_hash": "another version of the study", "overrides": "other pinned values",
+          "code": "another version of the tool (its results are not mixed with this one's)"}
 
 
 def other_run(folder: Path, spec: RunSpec) -> str | None:
@@ -443,7 +467,10 @@ class _backend:
 
 
 def chunk_files(folder: Path) -> list[Path]:
-    return sorted(Path(folder).glob(f"{CHUNK_PREFIX}*.parquet"))
+    """The run's chunk files, in order: ``part-NNNNNN.parquet`` only (a copy such as
+    ``part-000003 (copy).parquet`` is no chunk and is never read)."""
+    return sorted(p for p in Path(folder).glob(f"{CHUNK_PREFIX}*.parquet")
+                  if _CHUNK_NAME.fullmatch(p.name))
 
 
 def _chunk_column(path: Path, name: str, metadata=None) -> np.ndarray:

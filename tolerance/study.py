@@ -596,6 +596,10 @@ class Study:
 ENGINE_KEYS = ("stage", "title", "description", "run", "limits", "correlation")
 
 
+#: the largest study file read (common practice, no source: a study is a page or two)
+MAX_STUDY_BYTES = 4 * 2**20
+
+
 def load_study(path, text: str | None = None) -> Study:
     """Read, validate and configure a study file.
 
@@ -615,15 +619,25 @@ def load_study(path, text: str | None = None) -> Study:
     file = str(path)
     if text is None:
         try:
-            raw_bytes = path.read_bytes()
+            if not path.is_file():  # a folder, a pipe or a device such as /dev/zero
+                if not path.exists():
+                    raise FileNotFoundError
+                raise StudyError(file, "", "is not a regular file (a study is a TOML file)")
+            with path.open("rb") as f:
+                raw_bytes = f.read(MAX_STUDY_BYTES + 1)
         except FileNotFoundError:
             raise StudyError(file, "", "no such study file") from None
         except OSError as exc:
             raise StudyError(file, "", f"cannot be read ({exc.strerror})") from None
+        if len(raw_bytes) > MAX_STUDY_BYTES:
+            raise StudyError(file, "", f"is larger than {MAX_STUDY_BYTES // 2**20} MiB; a study "
+                                       "is a short TOML file")
         try:
             text = raw_bytes.decode("utf-8")
         except UnicodeDecodeError:
             raise StudyError(file, "", "is not UTF-8 text") from None
+        # a byte-order mark, which some editors put first, is no TOML
+        text = text.removeprefix("\ufeff")
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
