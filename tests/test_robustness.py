@@ -868,3 +868,25 @@ def test_jobs_and_out_that_cannot_be_meant_are_refused(tmp_path, capsys):
     with pytest.raises(SystemExit) as stop:
         _cli_in_process(["run", "--out", "", "--samples", "8"], capsys)
     assert stop.value.code == 2 and "argument --out: expected a folder" in capsys.readouterr().err
+
+
+@pytest.mark.skipif(sys.platform == "win32", reason="advisory folder locks are POSIX flock")
+def test_a_folder_another_command_writes_is_refused(write_study, tmp_path):
+    # two resumes of one folder at once deleted each other's temporary files; the second now
+    # stops at once, and the lock goes with the process that held it (common practice, no
+    # source)
+    study = load_study(write_study(LINEAR.format(samples=3000, chunk=500)))
+    run(study, out=tmp_path / "r")
+    holder = subprocess.Popen(
+        [sys.executable, "-c", "import fcntl, os, sys, time\n"
+         "fd = os.open(sys.argv[1], os.O_RDONLY); fcntl.flock(fd, fcntl.LOCK_EX)\n"
+         "print('held', flush=True); time.sleep(60)", str(tmp_path / "r")],
+        stdout=subprocess.PIPE, text=True)
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        with pytest.raises(UsageError, match=r"r: is being written by another command"):
+            run(study, out=tmp_path / "r", resume=True)
+    finally:
+        holder.kill()
+        holder.communicate()
+    assert run(study, out=tmp_path / "r", resume=True).summary["samples"] == 3000

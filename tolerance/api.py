@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from tolerance import runner
-from tolerance.files import TMP_SUFFIX, os_error_text, write_atomic
+from tolerance.files import TMP_SUFFIX, FolderBusy, FolderLock, os_error_text, write_atomic
 from tolerance.runner import Override, RunSpec, code_digest
 from tolerance.study import SAMPLERS, Study, StudyError, parameter_hint
 from tolerance.study import load_study as _load_study_file
@@ -315,8 +315,29 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
             summary["target_ci"] = target_status(summary, target_ci)
         return RunResult(study, summary, None, df)
     out = Path(out)
-    made = not out.exists()
-    _prepare_folder(out, force, resume)
+    with FolderLock(out) as lock:
+        _lock(lock)  # before --force removes anything, when the folder exists
+        made = not out.exists()
+        _prepare_folder(out, force, resume)
+        _lock(lock)
+        return _run_into(study, spec, out, made, chunk, jobs, progress, resume, force,
+                         backend, scheduler, stop_rule, after_samples, meta, threads,
+                         insights, target_ci)
+
+
+def _lock(lock: FolderLock) -> None:
+    try:
+        lock.acquire()
+    except FolderBusy as exc:
+        raise UsageError(f"{exc.filename}: {exc.strerror} (a run or report of it has not "
+                         "ended); wait for it, or choose another --out") from None
+
+
+def _run_into(study, spec, out, made, chunk, jobs, progress, resume, force, backend,
+              scheduler, stop_rule, after_samples, meta, threads, insights, target_ci):
+    """The part of :func:`run` that writes into ``out``, which the caller has locked."""
+    from tolerance.summary import summarize
+
     folder = out / SAMPLES_DIR
     if resume and not force:  # with --force another run's chunks are replaced
         differs = runner.other_run(folder, spec)

@@ -254,14 +254,17 @@ def cmd_run(args) -> int:
 
         report.warm_plot_workers(args.jobs)
 
-    result = run(study, samples=args.samples, seed=args.seed, sampler=args.sampler,
-                 jobs=args.jobs, chunk_size=args.chunk_size, out=out, progress=progress,
-                 resume=args.resume, force=args.force, backend=args.backend,
-                 scheduler=args.scheduler, target_ci=args.target_ci,
-                 after_samples=warm_plot_workers)
-    if args.waveforms is not None:
-        _write_waveforms(study, out, args.waveforms, result.summary["seed"])
-    _write_report(out, args.jobs)
+    from tolerance.files import FolderLock
+
+    with FolderLock(out):  # the run takes it; held here through the reports
+        result = run(study, samples=args.samples, seed=args.seed, sampler=args.sampler,
+                     jobs=args.jobs, chunk_size=args.chunk_size, out=out, progress=progress,
+                     resume=args.resume, force=args.force, backend=args.backend,
+                     scheduler=args.scheduler, target_ci=args.target_ci,
+                     after_samples=warm_plot_workers)
+        if args.waveforms is not None:
+            _write_waveforms(study, out, args.waveforms, result.summary["seed"])
+        _write_report(out, args.jobs)
     if not args.quiet:
         print_summary(result.summary, study, out)
     return exit_status(result.summary["verdict"])
@@ -447,7 +450,12 @@ def cmd_report(args) -> int:
                                          "choose.json")
     ):
         raise UsageError(f"{folder}: holds no saved results (summary.json or an analysis file)")
-    paths = report.write_reports(folder, args.jobs)
+    from tolerance.api import _lock
+    from tolerance.files import FolderLock
+
+    with FolderLock(folder) as lock:
+        _lock(lock)  # not while a run still writes the folder
+        paths = report.write_reports(folder, args.jobs)
     sys.stdout.write(f"wrote {paths['html']} and {paths['md']}\n")
     return 0
 

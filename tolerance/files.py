@@ -62,3 +62,59 @@ class DamagedFile(OSError):
 
     def __init__(self, path, what: str):
         super().__init__(errno.EIO, what, str(path))
+
+
+class FolderBusy(OSError):
+    """A result folder another process is writing (see :class:`FolderLock`)."""
+
+
+try:
+    import fcntl
+except ImportError:  # no advisory locks on this system: folders are not locked
+    fcntl = None
+
+#: folders this process holds: resolved path -> [holders, descriptor or None]
+_HELD: dict[str, list] = {}
+
+
+class FolderLock:
+    """An advisory lock on a result folder for as long as a command writes it.
+
+    Two commands writing one folder at once (two ``--resume`` of the same run) deleted each
+    other's temporary files. The lock is ``flock`` on the folder itself, so no lock file is
+    left behind and the kernel drops it when the process ends, however it ends (SIGKILL
+    included). Within one process the holders of a folder share one lock: the command
+    line's run holds it from the run through its reports. ``acquire`` takes it once the
+    folder exists; a folder another process holds raises :class:`FolderBusy`.
+    """
+
+    def __init__(self, folder):
+        self.key = str(Path(folder).resolve())
+        self.folder = Path(folder)
+
+    def __enter__(self) -> "FolderLock":
+        _HELD.setdefault(self.key, [0, None])[0] += 1
+        return self
+
+    def acquire(self) -> None:
+        entry = _HELD[self.key]
+        if entry[1] is not None or fcntl is None or not self.folder.is_dir():
+            return
+        fd = os.open(self.folder, os.O_RDONLY)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError as exc:
+            os.close(fd)
+            if exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
+                raise FolderBusy(exc.errno, "is being written by another command",
+                                 str(self.folder)) from None
+            return  # a file system without locks: go on unlocked
+        entry[1] = fd
+
+    def __exit__(self, *exc) -> None:
+        entry = _HELD[self.key]
+        entry[0] -= 1
+        if entry[0] == 0:
+            if entry[1] is not None:
+                os.close(entry[1])  # closing the descriptor drops the lock
+            del _HELD[self.key]
