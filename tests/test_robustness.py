@@ -890,3 +890,21 @@ def test_a_folder_another_command_writes_is_refused(write_study, tmp_path):
         holder.kill()
         holder.communicate()
     assert run(study, out=tmp_path / "r", resume=True).summary["samples"] == 3000
+
+
+def test_an_interrupt_while_plots_are_drawn_leaves_no_temporary_file(tmp_path, monkeypatch,
+                                                                      capsys):
+    # a plot worker stopped by Ctrl-C cannot remove its own temporary file; the command does
+    from tolerance import report
+
+    def interrupted(out, jobs=1):
+        (Path(out) / "plots").mkdir(exist_ok=True)
+        (Path(out) / "plots" / "hist-vce_on.png.tmp").write_bytes(b"half a picture")
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(report, "write_reports", interrupted)
+    code, err = _cli_in_process(["run", "--samples", "50", "--out", tmp_path / "o",
+                                 "--quiet"], capsys)
+    assert code == 130 and "interrupted" in err
+    assert not list((tmp_path / "o").rglob("*.tmp"))
+    assert (tmp_path / "o" / "summary.json").is_file()

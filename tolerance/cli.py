@@ -256,6 +256,7 @@ def cmd_run(args) -> int:
 
     from tolerance.files import FolderLock
 
+    args.written = out  # an interrupt clears its temporary files
     with FolderLock(out):  # the run takes it; held here through the reports
         result = run(study, samples=args.samples, seed=args.seed, sampler=args.sampler,
                      jobs=args.jobs, chunk_size=args.chunk_size, out=out, progress=progress,
@@ -295,6 +296,7 @@ def _analysis_out(args, study, suffix: str) -> Path:
 
     out = Path(args.out) if args.out else _default_out(study, suffix)
     _prepare_folder(out, args.force, False, resumable=False)
+    args.written = out  # an interrupt clears its temporary files
     return out
 
 
@@ -561,6 +563,21 @@ def _check_args(parser, args) -> None:
         parser.error("argument --out: expected a folder, got an empty name")
 
 
+def _drop_temporaries(folder) -> None:
+    """Remove the temporary files an interrupted command left in its result folder: a plot
+    worker stopped by the interrupt cannot remove its own (the parent's writes remove
+    theirs), and what is left must be whole results only."""
+    from tolerance.files import TMP_SUFFIX
+
+    if folder is None:
+        return
+    for path in Path(folder).rglob("*" + TMP_SUFFIX):
+        try:
+            path.unlink()
+        except OSError:
+            pass
+
+
 def _terminate(signum, frame):
     raise Terminated
 
@@ -574,6 +591,7 @@ def _command(args) -> int:
         return 2
     except KeyboardInterrupt as exc:
         terminated = isinstance(exc, Terminated)
+        _drop_temporaries(getattr(args, "written", None))
         # only a run keeps its chunks to continue from; an analysis starts again
         kept = ("finished chunks are kept (continue with --resume)" if args.command == "run"
                 else "nothing is kept to continue from; run the command again")
