@@ -364,7 +364,17 @@ def test_dask_backend_matches_local(write_study, tmp_path):
     pytest.importorskip("distributed")
     study = load_study(write_study(LINEAR.format(samples=20_000, chunk=3_000)))
     local = run(study, jobs=1, out=tmp_path / "local")
-    on_dask = run(study, jobs=2, backend="dask", out=tmp_path / "dask")
+    # the local cluster takes no fixed port: with the usual dashboard port taken it warned
+    # (an error in this test run, which turns warnings into errors)
+    import socket
+
+    with socket.socket() as taken:
+        try:
+            taken.bind(("127.0.0.1", 8787))
+            taken.listen()
+        except OSError:
+            pass  # taken already: the case itself
+        on_dask = run(study, jobs=2, backend="dask", out=tmp_path / "dask")
     assert comparable(local.summary) == comparable(on_dask.summary)
     a = (tmp_path / "local" / "summary.json").read_text()
     b = (tmp_path / "dask" / "summary.json").read_text()

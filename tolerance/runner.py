@@ -445,7 +445,8 @@ class _backend:
                                           f"{self.scheduler!r} ({exc})") from None
             else:
                 cluster = LocalCluster(n_workers=max(self.jobs, 1), threads_per_worker=1,
-                                       processes=True, host="127.0.0.1", dashboard_address=None)
+                                       processes=True, host="127.0.0.1",
+                                       dashboard_address="127.0.0.1:0")  # no fixed port
                 self._stack.append(cluster)
                 client = Client(cluster)
             self._stack.append(client)
