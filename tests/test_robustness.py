@@ -918,3 +918,13 @@ def test_an_interrupt_while_plots_are_drawn_leaves_no_temporary_file(tmp_path, m
     assert code == 130 and "interrupted" in err
     assert not list((tmp_path / "o").rglob("*.tmp"))
     assert (tmp_path / "o" / "summary.json").is_file()
+
+
+@pytest.mark.parametrize("title", ["x" * 201, "line\\nbreak", "nul\\u0000here"])
+def test_a_title_that_is_no_heading_is_refused(write_study, title):
+    # a 2 MB title kept the plots drawing for minutes; a NUL went raw into the reports
+    text = LINEAR.format(samples=10, chunk=10).replace(
+        'stage = "linear_test"', f'stage = "linear_test"\ntitle = "{title}"')
+    load_study(write_study(text.replace(title, "x" * 200)))  # the longest one allowed
+    with pytest.raises(StudyError, match=r"title: expected one line of at most 200"):
+        load_study(write_study(text))

@@ -596,6 +596,8 @@ class Study:
 ENGINE_KEYS = ("stage", "title", "description", "run", "limits", "correlation")
 
 
+#: the longest title (common practice, no source: a heading of one line)
+MAX_TITLE = 200
 #: the largest study file read (common practice, no source: a study is a page or two)
 MAX_STUDY_BYTES = 4 * 2**20
 
@@ -651,6 +653,11 @@ def build_study(data: dict, file: str, text: str) -> Study:
     names = stage_names()
     stage_name = top.string("stage", choices=names)
     title = top.string("title", default=Path(file).stem)
+    # the title heads every report, plot and table: one printable line of a sensible length
+    if len(title) > MAX_TITLE or any(ord(ch) < 32 or ord(ch) == 127 for ch in title):
+        raise top.error("title", f"expected one line of at most {MAX_TITLE} characters "
+                                 "without control characters (a longer text goes in "
+                                 "description)")
     description = top.string("description", default="")
     run = _read_run(top.table("run"))
 
