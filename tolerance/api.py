@@ -316,16 +316,17 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         return RunResult(study, summary, None, df)
     out = Path(out)
     with FolderLock(out) as lock:
-        _lock(lock)  # before --force removes anything, when the folder exists
+        take_folder(lock)  # before --force removes anything, when the folder exists
         made = not out.exists()
         _prepare_folder(out, force, resume)
-        _lock(lock)
+        take_folder(lock)
         return _run_into(study, spec, out, made, chunk, jobs, progress, resume, force,
                          backend, scheduler, stop_rule, after_samples, meta, threads,
                          insights, target_ci)
 
 
-def _lock(lock: FolderLock) -> None:
+def take_folder(lock: FolderLock) -> None:
+    """Take the lock of a result folder, or refuse the command (another one writes it)."""
     try:
         lock.acquire()
     except FolderBusy as exc:

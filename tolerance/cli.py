@@ -452,11 +452,11 @@ def cmd_report(args) -> int:
                                          "choose.json")
     ):
         raise UsageError(f"{folder}: holds no saved results (summary.json or an analysis file)")
-    from tolerance.api import _lock
+    from tolerance.api import take_folder
     from tolerance.files import FolderLock
 
     with FolderLock(folder) as lock:
-        _lock(lock)  # not while a run still writes the folder
+        take_folder(lock)  # not while a run still writes the folder
         paths = report.write_reports(folder, args.jobs)
     sys.stdout.write(f"wrote {paths['html']} and {paths['md']}\n")
     return 0
