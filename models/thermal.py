@@ -187,8 +187,10 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     settled = np.zeros(n, dtype=bool)
     runaway = np.zeros(n, dtype=bool)
     iterations = np.zeros(n, dtype=np.int64)
-    relax = np.ones(n)
-    last_step = np.full(n, np.inf)
+    # each device's relaxation factor: halved where its step grows and changes sign (a loop
+    # that swings ever wider, F' < -1), kept where it grows on one side (F' > 1: the plain
+    # step heads for a stable point above, or for a runaway that is then flagged sooner)
+    relax = {d: np.ones(n) for d in names}
     # each device's previous iterate and its residual theta P(T) + T_a - T, for the secant
     prev_t = {d: np.full(n, np.nan) for d in names}
     prev_r = {d: np.full(n, np.nan) for d in names}
@@ -204,7 +206,6 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
             heat[carrier] = heat[carrier] + heat[d]
         step_max = np.zeros(idx.size)
         new = {}
-        rel = relax[idx]
         for d in names:
             carrier = shared.get(d, d)
             target = np.asarray(ambient)[idx] + _at(theta[carrier], idx) * heat[carrier]
@@ -221,8 +222,11 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
                 secant_w = np.clip(1.0 / (1.0 - gain), 1.0 / 64.0, MAX_EXTRAPOLATION)
                 # an extrapolation moves at most EXTRAPOLATION_KELVIN beyond the plain step
                 reach = np.maximum(1.0, 1.0 + EXTRAPOLATION_KELVIN / np.abs(delta))
+            rel = relax[d][idx]
             w = np.where(usable, np.minimum(secant_w, reach), rel)
             new[d] = t_now + w * delta
+            widening = (np.abs(delta) > np.abs(prev_r[d][idx])) & (delta * prev_r[d][idx] < 0.0)
+            relax[d][idx] = np.where(widening, np.maximum(rel * 0.5, 1 / 64), rel)
             prev_t[d][idx] = t_now
             prev_r[d][idx] = delta
             step_max = np.maximum(step_max, np.abs(delta))
@@ -231,9 +235,6 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
             bad |= new[d] > RUNAWAY_KELVIN
             if limit is not None and d in limit:
                 bad |= new[d] > _at(limit[d], idx) + 100.0
-        growing = step_max > last_step[idx]
-        relax[idx] = np.where(growing, np.maximum(rel * 0.5, 1 / 64), rel)
-        last_step[idx] = step_max
         for d in names:
             temps[d][idx] = np.where(bad, temps[d][idx], new[d])
         runaway[idx] |= bad

@@ -267,3 +267,56 @@ def test_pwm_switching_losses_heat_the_junction():
     extra = 100e3 * (out["energy_on_output"] + out["energy_off_output"])
     np.testing.assert_allclose(out["power_output"], static + extra, rtol=1e-3)
     assert np.all(extra > 0)
+
+
+_EDGE_OF_TURN_ON = """stage = "darlington"
+[ambient]
+temperature = "21.4 degC"
+[supply]
+voltage = "14.76 V"
+[drive]
+high = "{high} V"
+[parts.RB]
+value = "2188R"
+[parts.RBE2]
+value = "1024R"
+[parts.Q1]
+device = "small_signal_npn"
+hfe = 254
+icbo = "6.7 nA"
+[parts.Q2]
+device = "medium_power_npn"
+hfe = 58
+icbo = "12.5 nA"
+[load]
+kind = "resistor"
+resistance = "46.14R"
+"""
+
+
+@pytest.mark.parametrize("high", [1.2056, 1.21])
+def test_self_heating_into_the_linear_region_settles(high):
+    # a drive just above the pair's turn-on: the output's gain and falling V_BE carry it from
+    # a few milliamperes through a region where dissipation grows faster than theta can shed
+    # it (loop slope F' > 1) to an equilibrium beyond V_s / 2R where it falls again (F' < 0,
+    # stable). The damping that halved on every growing step crept up on it by 0.3 K a step
+    # and called the unit a runaway after 60 iterations, with the metrics of that iterate
+    # (306 mA, saturation PASS).
+    study = load_text("edge.toml", text=_EDGE_OF_TURN_ON.format(high=high))
+    stage = study.stage
+    samples = _samples(study, 1)
+    res = stage.evaluate(samples)
+    assert res["thermal_runaway"][0] == 0
+    tj = {"Q1": res["tj_driver"], "Q2": res["tj_output"]}
+    ta = samples["ambient.temperature"]
+    # JESD51-1 relation T_j = T_a + theta_JA P(T_j) at the returned temperatures, each die
+    # on its own
+    dc = stage.dc(samples, tj, {d: ta for d in tj}, full=False)
+    for d in tj:
+        p = dc["power_on"]["devices"][d]
+        assert tj[d][0] == pytest.approx(ta[0] + stage.thermal.theta[d] * p[0], abs=0.1)
+    # beyond V_s / 2R the unit is hot and linear: a saturation failure, as a hand calculation
+    # at the same temperature gives (V_CE = V_s - I_C R of volts, not a saturation voltage)
+    assert res["load_current"][0] > 14.76 / (2 * 46.14)
+    assert res["vce_on"][0] > 1.0
+    assert res["drive_margin"][0] < 1.0
