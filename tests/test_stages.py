@@ -1142,3 +1142,88 @@ def test_a_saturated_beacon_unit_has_a_finite_inrush_energy():
     res = study.stage.evaluate(values)
     assert res["converged"].all() and res["drive_margin"][0] > 1.0
     assert 1.0 < res["inrush_energy"][0] < 3.0
+
+
+_HARD_DRIVEN_PAIR = """
+stage = "darlington"
+[supply]
+voltage = "12 V"
+[drive]
+high = "5 V"
+[parts.RB]
+value = "{rb}"
+[parts.RBE2]
+value = "47R"
+[parts.Q1]
+device = "small_signal_npn"
+[parts.Q2]
+device = "power_npn"
+heatsink = "3 K/W"
+[load]
+kind = "resistor"
+resistance = "2.7R"
+"""
+
+
+@pytest.mark.parametrize(("stage", "output", "load", "through_emitter"), [
+    ("darlington", "power_npn", "2.7R", True), ("sziklai", "small_signal_pnp", "150R", False)])
+def test_the_driver_current_is_the_output_base_and_rbe2_currents(stage, output, load,
+                                                                  through_emitter):
+    # Kirchhoff's current law at the output's base (common practice, no source): the
+    # output's base current and RBE2's, V_BE2 / RBE2 (here from RBE2's dissipation
+    # V_BE2^2 / RBE2, a fixed 47 ohm without tempco), flow in a Darlington's driver from its
+    # emitter (its collector's current plus its base's), in a Sziklai pair's into its
+    # collector
+    from tolerance.study import load_study as load_text
+
+    text = _HARD_DRIVEN_PAIR.format(rb="1k0").replace('"darlington"', f'"{stage}"')
+    text = text.replace('"power_npn"\nheatsink = "3 K/W"', f'"{output}"')
+    study = load_text("pair.toml", text=text.replace('"2.7R"', f'"{load}"'))
+    samples = draw(study, 50, 4)
+    res = study.stage.dc(samples)
+    assert res["converged"].all()
+    i_rbe2 = np.sqrt(res["power_on"]["resistors"]["RBE2"] / 47.0)
+    driver = res["ic_driver"] + (res["base_current_driver"] if through_emitter else 0.0)
+    np.testing.assert_allclose(driver, res["base_current_output"] + i_rbe2, rtol=1e-9)
+    assert (i_rbe2 > 0.1 * res["ic_driver"]).all()  # the RBE2 share is there to be seen
+
+
+def test_a_driver_above_its_current_rating_fails():
+    # a small-signal driver (I_C max 200 mA) feeding a power output on a 1.8 ohm load (some
+    # 6 A, h_FE of 20 to 40 there) and 15 mA into RBE2: no check looked at the driver's own
+    # rating
+    from tolerance.api import run
+    from tolerance.study import load_study as load_text
+
+    heavy = load_text("heavy.toml", text=_HARD_DRIVEN_PAIR.format(rb="220R").replace(
+        '"2.7R"', '"1.8R"'))
+    assert {c.name: c.maximum for c in heavy.criteria}["collector_current_driver"] == 0.2
+    res = run(heavy, samples=40)
+    df = res.samples
+    over = int((df["peak_current_driver"] > 0.2).sum())
+    assert 0 < over == res.summary["criteria"]["collector_current_driver"]["failures"]
+    # the driver's current follows the output's base current: a 4.7 ohm load (2.5 A) asks
+    # for less than half of it
+    light = run(load_text("light.toml", text=_HARD_DRIVEN_PAIR.format(rb="220R").replace(
+        '"2.7R"', '"4.7R"')), samples=40)
+    assert light.samples["peak_current_driver"].max() < 0.5 * df["peak_current_driver"].max()
+    assert light.summary["criteria"]["collector_current_driver"]["failures"] == 0
+    single = load_text("single.toml", text=SINGLE_WIDE)
+    assert "collector_current_driver" not in {c.name for c in single.criteria}
+
+
+def test_a_lamp_driver_is_rated_on_what_it_gives_during_the_inrush():
+    # while the cold filament asks for more than the pair can carry, the driver gives what
+    # it can at the edge of its saturation: at least its on-state current
+    from tolerance.api import load_study as load_file, run
+
+    beacon = load_file(Path(__file__).resolve().parent.parent / "studies"
+                       / "beacon_lamp_darlington.toml")
+    res = run(beacon, samples=200)
+    df = res.samples
+    assert (df["peak_current_driver"] >= df["base_current_output"]).all()
+    limited = df["inrush_margin"] < 1
+    assert limited.any()
+    # the driver's current at the output's capability exceeds the settled on-state's
+    assert (df.loc[limited, "peak_current_driver"]
+            > df.loc[limited, "base_current_output"] * 1.2).all()

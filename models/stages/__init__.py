@@ -632,6 +632,11 @@ class PairStage:
         out["power_off"] = self._powers(samples, v_low, g_in, g_be1, g_be2, s_off, vs)
         out["vce_off"] = s_off["v_out"]
         out["capability"] = s_edge["i_out"]
+        # the driver's collector current (the output's base current and RBE2's) on, and
+        # where the output carries that capability (the driver at the edge of saturation,
+        # its most: a saturated driver gives less for the same base current)
+        out["ic_driver"] = np.abs(s_on["ic1"])
+        out["capability_driver"] = np.abs(s_edge["ic1"])
         out["load_state"] = load
         return out
 

@@ -104,7 +104,7 @@ class DarlingtonSystem(PairSystem):
         state = {
             "v_b1": v_b1, "v_b2": v_b2, "v_out": v_c, "i_load": i_load,
             "i_out": c1.collector + c2.collector,
-            "ib1": c1.base, "ib2": c2.base,
+            "ib1": c1.base, "ib2": c2.base, "ic1": c1.collector,
             "i_rb_out": i_be1 + c1.base,
             "p1": transistor_power(c1.collector, c1.base, v_c1 - v_b2, v_b1 - v_b2),
             "p2": transistor_power(c2.collector, c2.base, v_c, v_b2),

@@ -200,6 +200,18 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
                           source="rating", description=f"below V_(BR)CEO of {weakest}"))
     crit.append(Criterion("collector_current", "peak_current", maximum=setup.ic_max[out],
                           source="rating", description=f"within I_C max of {out}"))
+    # a discrete driver's own I_C max (a monolithic pair's driver has no rating of its own:
+    # the package's is the output's)
+    driver = [d for d, role in setup.roles.items()
+              if role == "driver" and d not in setup.shared]
+    if driver:
+        m["peak_current_driver"] = MetricInfo("A", "highest collector current the driver "
+                                                   "carries: the output's base current and "
+                                                   "RBE2's (with a lamp, as far as the drive "
+                                                   "allows during the inrush)")
+        crit.append(Criterion("collector_current_driver", "peak_current_driver",
+                              maximum=setup.ic_max[driver[0]], source="rating",
+                              description=f"within I_C max of {driver[0]}"))
     if stage.load.kind == "lamp":
         m["inrush_energy"] = MetricInfo("J", "energy the output absorbs while it limits the "
                                              "cold filament's current")
@@ -659,6 +671,9 @@ def evaluate_stage(stage, samples):
             out["inrush_margin"] = capability / demand
     else:
         out["peak_current"] = np.abs(res["load_current"])
+    if "peak_current_driver" in stage.metrics:
+        out["peak_current_driver"] = (np.fmax(res["ic_driver"], res["capability_driver"])
+                                      if stage.load.kind == "lamp" else res["ic_driver"])
     for key in list(out):
         out[key] = np.where(converged, np.asarray(out[key], dtype=float), np.nan)
     missing = set(stage.metrics) - set(out)

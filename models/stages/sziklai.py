@@ -93,7 +93,7 @@ class SziklaiSystem(PairSystem):
             "v_b1": v_b1, "v_b2": v_b2, "v_out": v_out, "i_load": i_load,
             # current the stage takes from the output node: the PNP's emitter and RBE2
             "i_out": -(c2.base + c2.collector) + i_be2,
-            "ib1": c1.base, "ib2": c2.base,
+            "ib1": c1.base, "ib2": c2.base, "ic1": c1.collector,
             "i_rb_out": v_b1 * g1 + c1.base,
             "p1": transistor_power(c1.collector, c1.base, v_c1, v_b1),
             "p2": transistor_power(c2.collector, c2.base, -v_out, v_b2 - v_out),
