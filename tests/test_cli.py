@@ -213,6 +213,10 @@ def test_demo_runs_and_jobs_do_not_change_the_summary(tmp_path, capsys):
     assert {"estimate", "ci_low", "ci_high", "confidence"} <= set(sa["yield"])
     assert {"unit", "mean", "std", "min", "max", "p001", "p50", "p999"} <= set(
         sa["metrics"]["drive_margin"])
+    # the file says what its figures are in: a junction of the demo (-20 to 55 degC ambient)
+    # sits between 250 and 400 K, as the unit note says kelvin
+    assert "kelvin" in sa["units"] and sa["metrics"]["tj_output"]["unit"] == "temperature"
+    assert 250.0 < sa["metrics"]["tj_output"]["min"] < sa["metrics"]["tj_output"]["max"] < 400.0
     assert (a / "samples.parquet").is_dir() and (a / "report.html").is_file()
     assert out == ""  # --quiet printed nothing
 

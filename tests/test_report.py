@@ -444,6 +444,17 @@ def test_worst_case_within_compares_the_worst_extremes_with_every_limit():
                                     "monte_carlo_outside": 27, "monte_carlo_samples": 10000})
     assert notes[0].startswith("3 corners did not solve (no value) for y:")
     assert "27 of 10000 Monte Carlo samples drew a parameter outside" in notes[1]
+    # the unit behind the extreme decides the reason: one inside the box searched means an
+    # inner extreme the corners cannot reach (a coil's output stress lowest at 25 degC, where
+    # derating starts, and the note blamed 44 units drawn outside)
+    inner = dict(m, mc_min=1.0, mc_min_inside=True)
+    notes = report.worstcase_notes({"metrics": {"y": inner}, "monte_carlo_outside": 44,
+                                    "monte_carlo_samples": 2000})
+    assert len(notes) == 1 and "inside the ranges searched" in notes[0]
+    assert "drew a parameter outside" not in notes[0]
+    notes = report.worstcase_notes({"metrics": {"y": dict(inner, mc_min_inside=False)},
+                                    "monte_carlo_outside": 44, "monte_carlo_samples": 2000})
+    assert len(notes) == 1 and "44 of 2000 Monte Carlo samples drew" in notes[0]
 
 
 def test_analysis_only_folders(write_study, tmp_path):
@@ -562,10 +573,12 @@ def test_infinite_metric_values_are_counted_and_named(write_study, tmp_path):
     from tolerance import summary as summary_module
 
     values = np.array([1.0, np.inf, 2.0, -np.inf, np.nan])
-    spread = summary_module._spread(values)
+    spread = summary_module._spread(values, np.array([True, True, True, True, False]))
     assert spread["infinite"] == 2 and spread["max"] == 2.0  # NaN: not converged, elsewhere
+    assert spread["undefined"] == 0
     s = {"samples": 5, "metrics": {"m": {**spread, "unit": "1"},
-                                   "k": {**summary_module._spread(np.ones(5)), "unit": "1"}}}
+                                   "k": {**summary_module._spread(np.ones(5), np.ones(5, bool)),
+                                         "unit": "1"}}}
     note = report.infinite_note(s)
     assert "m 2 of 5" in note and "k " not in note
     assert report.infinite_note({"samples": 5, "metrics": {"k": s["metrics"]["k"]}}) is None
@@ -577,6 +590,25 @@ def test_infinite_metric_values_are_counted_and_named(write_study, tmp_path):
     stress = {"power_stress_output": s["metrics"]["m"]}
     note = report.infinite_note({"samples": 5, "metrics": stress})
     assert "derated rating is zero" in note and "transition" not in note
+
+
+def test_converged_units_without_a_value_are_counted_and_named():
+    # a unit in thermal runaway has no junction temperature: the metric table showed nothing
+    # above 137 degC beside a T_j max criterion failing 10 units, without a word
+    import numpy as np
+
+    from tolerance import summary as summary_module
+
+    tj = np.array([300.0, np.nan, 310.0, np.nan])
+    converged = np.array([True, True, True, False])
+    spread = summary_module._spread(tj, converged)
+    assert spread["undefined"] == 1 and spread["max"] == 310.0  # the last: not converged
+    s = {"samples": 4, "metrics": {"tj_output": {**spread, "unit": "K"},
+                                   "k": {**summary_module._spread(np.ones(4), converged),
+                                         "unit": "1"}}}
+    note = report.undefined_note(s)
+    assert "tj_output 1 of 4" in note and "thermal runaway" in note and "k " not in note
+    assert report.undefined_note({"samples": 4, "metrics": {"k": s["metrics"]["k"]}}) is None
 
 
 def test_whatif_folder_without_its_samples_says_why_there_are_no_overlays(tmp_path):

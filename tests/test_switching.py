@@ -344,9 +344,9 @@ def test_inductive_turn_off_with_clamp_diode():
     # most of the stored energy ends in the clamp and the winding, not the transistor, and
     # nothing avalanches (common practice, no source: the purpose of a clamp diode)
     assert np.all(m["energy_off_clamp"] + m["energy_off_load"] > 0.5 * stored)
-    assert np.all(m["avalanche_energy"] < 1e-6 * stored)
-    # an absorbed energy is never negative (a clamped run read -4e-41 J)
-    assert np.all(m["avalanche_energy"] >= 0.0)
+    # an absorbed energy is never negative (a clamped run read -4e-41 J), and the law's
+    # 1e-50 A tens of volts below V_(BR)CEO is none at all (7e-60 J was printed)
+    assert np.all(m["avalanche_energy"] == 0.0)
 
 
 def test_inductive_turn_off_with_zener_clamp():

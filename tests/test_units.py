@@ -359,11 +359,13 @@ def test_extreme_plain_numbers_in_scientific_notation(x, unit):
 
 @pytest.mark.parametrize(("x", "expected"), [
     (7.28e-10, "7.28e-10"), (1.71e-5, "1.71e-05"), (9.99e-5, "9.99e-05"), (1e-4, "0.0001"),
-    (3.24e-3, "0.00324"), (-2.5e-7, "-2.5e-07"),
+    (3.24e-3, "0.00324"), (-2.5e-7, "-2.5e-07"), (999_400.0, "999000"), (1.31e10, "1.31e+10"),
+    (-2.5e6, "-2.5e+06"),
 ])
 def test_small_plain_numbers_switch_to_scientific_where_printf_g_does(x, expected):
     # Python's format specification, "g" presentation (scientific below 1e-4), from memory:
-    # an off-current fraction of 7e-10 reads in a few characters and still reads back
+    # an off-current fraction of 7e-10 reads in a few characters and still reads back; from
+    # a million up (common practice, no source) a drive margin of 1.31e10 does too
     text = format_quantity(x, "1")
     assert text == expected
     assert parse_quantity(text, "1") == pytest.approx(x, rel=5e-3)

@@ -237,6 +237,15 @@ def study_worst_case(study: Study, samples: int, seed: int, sampler: str | None 
             values = res.samples[b.name].to_numpy()
             slack = 1e-12 * max(abs(b.low), abs(b.high))
             outside |= (values < b.low - slack) | (values > b.high + slack)
+    # whether each metric's Monte Carlo extreme comes from a unit inside the box searched:
+    # one that does and lies beyond the corners is an inner extreme they missed
+    for name, row in table.items():
+        values = res.samples[name].to_numpy(dtype=float)
+        finite = np.isfinite(values)
+        if finite.any():
+            pick = np.flatnonzero(finite)
+            row["mc_min_inside"] = bool(~outside[pick[np.argmin(values[pick])]])
+            row["mc_max_inside"] = bool(~outside[pick[np.argmax(values[pick])]])
     for row in table.values():  # JSON has no infinity: an infinite extreme is written "inf"
         for key, value in row.items():
             if isinstance(value, float) and math.isinf(value):

@@ -219,9 +219,9 @@ def print_summary(summary: dict, study, out) -> None:
     rows = [(name, *(_fmt(m[k], m["unit"]) for k in ("min", "p001", "p50", "p999", "max")))
             for name, m in summary["metrics"].items()]
     w("\n" + _table(("metric", "min", "p0.1", "median", "p99.9", "max"), rows, "<>>>>>"))
-    from tolerance.report import infinite_note, sampler_note, verdict_basis
+    from tolerance.report import infinite_note, sampler_note, undefined_note, verdict_basis
 
-    for note in (infinite_note(summary), sampler_note(summary)):
+    for note in (infinite_note(summary), undefined_note(summary), sampler_note(summary)):
         if note:
             w(note + "\n")
     w(f"\nverdict: {summary['verdict'].upper()}")

@@ -237,6 +237,24 @@ def infinite_note(summary: dict) -> str | None:
             "on their metric: " + ", ".join(parts) + ".")
 
 
+def undefined_note(summary: dict) -> str | None:
+    """A sentence naming the metrics that have no value in some converged samples (a unit in
+    thermal runaway settles at no junction temperature), which the percentiles leave out
+    while the counted criteria fail them."""
+    n = summary.get("samples")
+    missing = [(name, m) for name, m in summary.get("metrics", {}).items()
+               if m.get("undefined")]
+    if not missing:
+        return None
+    parts = [f"{name} {format_number(m['undefined'])} of {format_number(n)}"
+             for name, m in missing]
+    why = (" (a unit in thermal runaway settles at no junction temperature)"
+           if any(name.startswith(("tj_", "hot_spot")) for name, _ in missing) else "")
+    return (f"Units without a value{why} are left out of the percentiles, so the extremes "
+            "above do not show them; they fail any criterion on their metric: "
+            + ", ".join(parts) + ".")
+
+
 def verdict_basis(summary: dict) -> str | None:
     """A sentence saying what the overall verdict rests on: how strong a PASS is (no failure
     in n samples only bounds the rate, 950,000 ppm for one sample), or why it is UNDECIDED."""
@@ -419,13 +437,23 @@ def worst_case_within(m: dict, limits: list[dict]) -> str:
     return "unknown" if m.get("eva_dropped") else "yes"
 
 
-def monte_carlo_beyond(m: dict) -> bool:
-    """True when the Monte Carlo extremes reach past the corners' and the optimizer's."""
+def monte_carlo_beyond_sides(m: dict) -> list[str]:
+    """The sides (``"min"``, ``"max"``) on which the Monte Carlo extreme reaches past the
+    corners' and the optimizer's."""
     lows = _extremes(m.get("eva_min"), m.get("opt_min"))
     highs = _extremes(m.get("eva_max"), m.get("opt_max"))
     mc_lo, mc_hi = _extremes(m.get("mc_min")), _extremes(m.get("mc_max"))
-    return bool((lows and mc_lo and mc_lo[0] < min(lows))
-                or (highs and mc_hi and mc_hi[0] > max(highs)))
+    sides = []
+    if lows and mc_lo and mc_lo[0] < min(lows):
+        sides.append("min")
+    if highs and mc_hi and mc_hi[0] > max(highs):
+        sides.append("max")
+    return sides
+
+
+def monte_carlo_beyond(m: dict) -> bool:
+    """True when the Monte Carlo extremes reach past the corners' and the optimizer's."""
+    return bool(monte_carlo_beyond_sides(m))
 
 
 def worstcase_notes(data: dict) -> list[str]:
@@ -442,16 +470,34 @@ def worstcase_notes(data: dict) -> list[str]:
             f"for {', '.join(unsolved)}: the extremes there are of the solved corners only, so "
             "their worst case is unknown until those corners are solved (a supply below the "
             "stage's turn-on, a part outside its model's range).")
-    beyond = [name for name, m in metrics.items() if isinstance(m, dict)
-              and monte_carlo_beyond(m)]
     outside = data.get("monte_carlo_outside")
-    if beyond:
-        why = (f"{format_number(outside)} of {format_number(data.get('monte_carlo_samples'))} "
-               "Monte Carlo samples drew a parameter outside the ranges searched (normal and "
-               "lognormal spreads are not cut at their tolerance: truncnormal is)"
-               if outside else "the corners and the search missed an inner extreme")
-        notes.append(f"The Monte Carlo samples reach beyond the worst-case extremes for "
-                     f"{', '.join(beyond)}: {why}; 'worst case within' counts them.")
+    # a beyond extreme is an inner one when the unit that gave it lies inside the box
+    # searched (as every unit does without normal or lognormal spreads); an older file
+    # without the flags puts it down to the units outside when there are any
+    inner, drawn_out = [], []
+    for name, m in metrics.items():
+        if not isinstance(m, dict):
+            continue
+        sides = monte_carlo_beyond_sides(m)
+        if not sides:
+            continue
+        inside = [m.get(f"mc_{side}_inside", not outside) for side in sides]
+        (inner if any(inside) else drawn_out).append(name)
+    if drawn_out:
+        notes.append(
+            f"The Monte Carlo samples reach beyond the worst-case extremes for "
+            f"{', '.join(drawn_out)}: {format_number(outside)} of "
+            f"{format_number(data.get('monte_carlo_samples'))} Monte Carlo samples drew a "
+            "parameter outside the ranges searched (normal and lognormal spreads are not cut "
+            "at their tolerance: truncnormal is), and the extreme is one of them; 'worst case "
+            "within' counts them.")
+    if inner:
+        notes.append(
+            f"The Monte Carlo samples reach beyond the worst-case extremes for "
+            f"{', '.join(inner)} with a unit inside the ranges searched: an extreme inside "
+            "the box (a metric that turns around within a parameter's range, e.g. a derating "
+            "that starts at 25 degC) that the corners cannot reach and the search missed; "
+            "'worst case within' counts it.")
     return notes
 
 
@@ -1055,9 +1101,9 @@ def _summary_blocks(summary: dict) -> list[Block]:
 
     doc.append(Block("h2", "Metrics"))
     doc.append(Block("table", table=metrics_table(summary)))
-    note = infinite_note(summary)
-    if note:
-        doc.append(Block("note", note))
+    for note in (infinite_note(summary), undefined_note(summary)):
+        if note:
+            doc.append(Block("note", note))
 
     if summary.get("parameters"):
         doc.append(Block("h2", "Parameters"))

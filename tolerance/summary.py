@@ -16,15 +16,21 @@ from tolerance.runner import RunSpec, criterion_column
 from tolerance.threads import thread_map
 
 CONFIDENCE = 0.95
+#: what the figures of a summary (and the samples beside it) are in
+UNITS_NOTE = ("SI: ohm, V, A, W, s, J, K/W; unit 'temperature' is an absolute temperature in "
+              "kelvin (subtract 273.15 for degC), unit 'K' a temperature difference, unit '1' "
+              "a ratio")
 
 
-def _spread(values) -> dict:
-    """The spread figures of a metric and how many of its samples are infinite (outside
-    the model's range, e.g. a stress above its rating's maximum temperature), which the
-    figures leave out."""
+def _spread(values, converged) -> dict:
+    """The spread figures of a metric, how many of its samples are infinite (outside the
+    model's range, e.g. a stress above its rating's maximum temperature) and how many
+    converged samples have no value at all (``undefined``: the junction temperature of a
+    unit in thermal runaway), both of which the figures leave out."""
     values = np.asarray(values, dtype=float)
     return {**stats.percentile_summary(values),
-            "infinite": int(np.count_nonzero(np.isinf(values)))}
+            "infinite": int(np.count_nonzero(np.isinf(values))),
+            "undefined": int(np.count_nonzero(np.isnan(values) & converged))}
 
 
 def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path: str,
@@ -80,7 +86,8 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
         }
 
     metrics = {}
-    spreads = thread_map(_spread, (column(name) for name in spec.stage.metrics), threads)
+    spreads = thread_map(lambda values: _spread(values, converged),
+                         (column(name) for name in spec.stage.metrics), threads)
     for (name, info), spread in zip(spec.stage.metrics.items(), spreads):
         metrics[name] = {"unit": info.unit, "description": info.description, **spread}
 
@@ -98,6 +105,7 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
         "sampler": spec.sampler,
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "confidence": CONFIDENCE,
+        "units": UNITS_NOTE,
         "max_failure_rate": allowed_rate,
         "verdict": overall,
         "yield": {

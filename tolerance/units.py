@@ -273,9 +273,10 @@ def _plain(x: float, digits: int) -> str:
     rounded = float(f"{x:.{digits}g}")
     if rounded == 0:
         return "0"
-    # scientific beyond the prefixed units' range, and below 1e-4 as printf's %g does, so
-    # a fraction of 7e-10 reads "7e-10", not "0.0000000007"
-    if abs(rounded) < 1e-4 or abs(rounded) >= 1e12:
+    # scientific below 1e-4 as printf's %g does, so a fraction of 7e-10 reads "7e-10", not
+    # "0.0000000007", and from a million up, so a drive margin of 1.31e10 (a load that never
+    # conducts) does not read "13100000000"
+    if abs(rounded) < 1e-4 or abs(rounded) >= 1e6:
         return f"{x:.{digits}g}"
     decimals = max(digits - 1 - math.floor(math.log10(abs(rounded))), 0)
     text = f"{rounded:.{decimals}f}"
