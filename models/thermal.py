@@ -30,7 +30,7 @@ import numpy as np
 #: the electro-thermal loop stops when no junction temperature moves by more than this [K]
 SETTLE_KELVIN = 0.05
 #: most fixed-point iterations before a sample is called a runaway
-MAX_ITERATIONS = 60
+MAX_ITERATIONS = 100
 #: a junction above this is beyond any model (and any silicon): the loop has run away [K]
 RUNAWAY_KELVIN = 1000.0
 
@@ -118,11 +118,23 @@ def derated_power(rated_power, ambient, rated_ambient, zero_power_temperature):
 
 @dataclass
 class FixedPointResult:
-    """Junction temperatures [K] per device (NaN where runaway), settled flag, iterations."""
+    """Junction temperatures [K] per device (NaN where runaway or failed), settled flag,
+    iterations, and ``failed``: samples whose circuit did not solve at a trial temperature
+    (neither settled nor a runaway: not converged)."""
 
     temperatures: dict[str, np.ndarray]
     settled: np.ndarray
     iterations: np.ndarray
+    failed: np.ndarray | None = None
+
+
+#: times a trial temperature whose circuit did not solve is moved half way back towards the
+#: last one that did, before the sample is given up as not converged
+MAX_RETREATS = 6
+#: a step is taken as settled when the distance it leaves to the fixed point, the step times
+#: 1 / (1 - F'), is below ``settle``; that factor is counted up to this much where F' nears or
+#: passes 1 (a loop that creeps along a nearly tangent curve has not settled)
+MAX_DISTANCE_FACTOR = 100.0
 
 
 def _at(value, idx):
@@ -139,31 +151,45 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
                    ) -> FixedPointResult:
     """Electro-thermal fixed point of every sample, vectorized.
 
-    Iterates T_j = T_a + theta P(T_j) for every device until no temperature moves by more than
-    ``settle`` kelvin. ``power_at(temperatures)`` evaluates the whole chunk's dissipation per
-    device at the given junction temperatures (one vectorized call per iteration; samples that
-    have settled keep their temperatures). Devices listed in ``shared`` (device -> the device
-    whose junction it shares, e.g. the two transistors of a monolithic Darlington) take the
-    sum of both powers through the shared thermal resistance.
+    Iterates T_j = T_a + theta P(T_j) for every device until no temperature is further than
+    ``settle`` kelvin from its fixed point. ``power_at(temperatures)`` evaluates the whole
+    chunk's dissipation per device at the given junction temperatures (one vectorized call per
+    iteration; samples that have settled keep their temperatures). Devices listed in
+    ``shared`` (device -> the device whose junction it shares, e.g. the two transistors of a
+    monolithic Darlington) take the sum of both powers through the shared thermal resistance.
 
-    The iteration is damped (a relaxation factor that halves for a sample whose step grows),
-    so a stable electro-thermal loop converges even when d(theta P)/dT approaches 1. From the
-    second iteration on, each device's step is the secant step on T - T_a - theta P(T):
-    the plain step times 1 / (1 - F'), with the loop slope F' = d(theta P)/dT estimated from
-    the device's last two iterates. Where the dissipation falls steeply with temperature (a
-    stage at the edge of saturation that saturates as its gain rises with T) F' nears -1
-    and the plain iteration would swing between two temperatures for dozens of steps; where
-    it rises steeply (leakage and gain growing with T) F' nears 1 and the plain iteration
-    creeps up on its fixed point by a factor F' per step. The secant step converges
-    superlinearly in both; it extrapolates (F' > 0) only while the approach stays on one side,
-    by at most :data:`MAX_EXTRAPOLATION` plain steps and :data:`EXTRAPOLATION_KELVIN` beyond
-    the plain step, and is not used where F' is unknown (the first step, a device whose
-    temperature did not move) or near and above 1 (the damped plain step takes over, and a
-    runaway heats on until it is flagged). A sample whose
-    temperature is still moving after ``max_iterations``, whose temperature exceeds
-    ``limit`` + 100 K (the loop would only go on heating), or whose power is not finite, is
-    returned with ``settled = False``: thermal runaway. So is one that passes
-    :data:`RUNAWAY_KELVIN`.
+    The fixed point sought is the first one above the ambient, where a unit switched on cold
+    stops heating: below it the residual r(T) = T_a + theta P(T) - T is positive, above it
+    negative. From the second iteration on, each device's step is the secant step on r: the
+    plain step r times 1 / (1 - F'), with the loop slope F' = d(theta P)/dT estimated from the
+    device's last two iterates. Where the dissipation falls steeply with temperature (a stage
+    at the edge of saturation, or one past V_s / 2R whose dissipation falls as its current
+    rises) F' is negative and the plain iteration would swing; where it rises steeply
+    (leakage and gain growing with T) F' nears 1 and the plain iteration creeps up on its
+    fixed point by a factor F' per step. The secant step converges superlinearly in both; it
+    extrapolates (F' > 0) only while the approach stays on one side, by at most
+    :data:`MAX_EXTRAPOLATION` plain steps and :data:`EXTRAPOLATION_KELVIN` beyond the plain
+    step, and is not used where F' is unknown (the first step, a device whose temperature did
+    not move) or near and above 1: there the plain step is taken, relaxed (halved, down to
+    1/64) only where a device's step grows and changes sign, a swing that widens, and
+    doubled at each step (up to :data:`MAX_EXTRAPOLATION` times, and
+    :data:`EXTRAPOLATION_KELVIN` beyond the plain step) while it creeps on one side with F'
+    near or above 1, where the curve nearly touches the diagonal and the residual is
+    millikelvin (it may pass the diagonal by, with the fixed point degrees further on). Each device
+    keeps a bracket, the highest temperature seen with r > 0 below the lowest seen with
+    r < 0; a step that would leave it bisects it instead (a sharp knee in P(T), with F' of
+    -10 or steeper, otherwise locks the secant into a cycle, on one die or two). With two dice
+    a point's residual moves with the other die, so an old bracket can shut the fixed point
+    out: a bracket that has shrunk to a thousandth of ``settle`` while the residual stays
+    above a fifth of ``settle`` is dropped. No step goes beyond the cap,
+    ``limit`` + 100 K (or :data:`RUNAWAY_KELVIN`): a first plain step from a hot ambient can
+    overshoot far past a stable point, and only a unit still heating at the cap is a runaway.
+
+    A trial temperature where ``power_at`` gives no finite power (the circuit did not solve
+    there) is moved half way back towards the last solved one, up to :data:`MAX_RETREATS`
+    times; then, or when the ambient itself does not solve, the sample is ``failed``: not
+    converged, neither settled nor a runaway. A sample still moving after ``max_iterations``,
+    or heating on at the cap, is returned with ``settled = False``: thermal runaway.
 
     Parameters
     ----------
@@ -176,70 +202,129 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     shared : dict, optional
         Devices on one die: name -> name of the device that carries the junction.
     limit : dict, optional
-        Maximum junction temperature per device [K]; far beyond it a sample is declared a
-        runaway without more iterations.
+        Maximum junction temperature per device [K]; a sample still heating 100 K beyond it
+        is declared a runaway without more iterations.
     """
     shared = shared or {}
     names = list(theta)
     n = len(ambient)
-    temps = {d: np.array(ambient, dtype=float) for d in names}
     ambient = np.asarray(ambient, dtype=float)
+    temps = {d: ambient.copy() for d in names}
     settled = np.zeros(n, dtype=bool)
     runaway = np.zeros(n, dtype=bool)
+    failed = np.zeros(n, dtype=bool)
     iterations = np.zeros(n, dtype=np.int64)
-    # each device's relaxation factor: halved where its step grows and changes sign (a loop
-    # that swings ever wider, F' < -1), kept where it grows on one side (F' > 1: the plain
-    # step heads for a stable point above, or for a runaway that is then flagged sooner)
+    cap = {}  # no step goes above this [K]
+    for d in names:
+        cap[d] = np.full(n, RUNAWAY_KELVIN)
+        if limit is not None and d in limit:
+            cap[d] = np.minimum(cap[d], np.asarray(limit[d], dtype=float) + 100.0)
     relax = {d: np.ones(n) for d in names}
+    boost = {d: np.ones(n) for d in names}  # the creeping plain step's growing multiple
     # each device's previous iterate and its residual theta P(T) + T_a - T, for the secant
     prev_t = {d: np.full(n, np.nan) for d in names}
     prev_r = {d: np.full(n, np.nan) for d in names}
+    # each device's bracket of the crossing: highest T seen heating, lowest T seen cooling
+    lo = {d: np.full(n, np.nan) for d in names}
+    hi = {d: np.full(n, np.nan) for d in names}
+    # the last temperatures whose circuit solved, and how often a sample has backed off
+    good = {d: np.full(n, np.nan) for d in names}
+    retreats = np.zeros(n, dtype=np.int64)
     for it in range(1, max_iterations + 1):
-        active = ~(settled | runaway)
+        active = ~(settled | runaway | failed)
         if not active.any():
             break
         idx = np.flatnonzero(active)
+        iterations[idx] = it
         # only the samples still moving are evaluated: the cost follows the active set
         power = power_at({d: temps[d][idx] for d in names}, idx)
         heat = {d: np.asarray(power[d], dtype=float) for d in names}
         for d, carrier in shared.items():
             heat[carrier] = heat[carrier] + heat[d]
-        step_max = np.zeros(idx.size)
+        unsolved = np.zeros(idx.size, dtype=bool)
+        for d in names:
+            unsolved |= ~np.isfinite(heat[d])
+        if unsolved.any():
+            u = idx[unsolved]
+            give_up = ~np.isfinite(good[names[0]][u]) | (retreats[u] >= MAX_RETREATS)
+            failed[u[give_up]] = True
+            back = u[~give_up]
+            retreats[back] += 1
+            for d in names:
+                temps[d][back] = 0.5 * (temps[d][back] + good[d][back])
+        keep = np.flatnonzero(~unsolved)
+        jdx = idx[keep]
+        if not jdx.size:
+            continue
+        distance = np.zeros(jdx.size)
+        hot = np.zeros(jdx.size, dtype=bool)
         new = {}
         for d in names:
             carrier = shared.get(d, d)
-            target = np.asarray(ambient)[idx] + _at(theta[carrier], idx) * heat[carrier]
-            t_now = temps[d][idx]
+            target = ambient[jdx] + _at(theta[carrier], jdx) * heat[carrier][keep]
+            t_now = temps[d][jdx]
+            good[d][jdx] = t_now
             delta = target - t_now
             with np.errstate(divide="ignore", invalid="ignore"):
-                slope = (delta - prev_r[d][idx]) / (t_now - prev_t[d][idx])  # F' - 1
+                slope = (delta - prev_r[d][jdx]) / (t_now - prev_t[d][jdx])  # F' - 1
             gain = slope + 1.0  # F' = d(theta P)/dT along the last step
             # the secant step where F' is known and below 1: damping where the loop swings
             # (F' < 0), extrapolation where it creeps up on its fixed point from one side
             usable = (np.isfinite(gain) & (gain < 1.0 - 1.0 / MAX_EXTRAPOLATION)
-                      & ((gain < 0.0) | (delta * prev_r[d][idx] > 0.0)))
+                      & ((gain < 0.0) | (delta * prev_r[d][jdx] > 0.0)))
             with np.errstate(divide="ignore", invalid="ignore"):
                 secant_w = np.clip(1.0 / (1.0 - gain), 1.0 / 64.0, MAX_EXTRAPOLATION)
                 # an extrapolation moves at most EXTRAPOLATION_KELVIN beyond the plain step
                 reach = np.maximum(1.0, 1.0 + EXTRAPOLATION_KELVIN / np.abs(delta))
-            rel = relax[d][idx]
-            w = np.where(usable, np.minimum(secant_w, reach), rel)
-            new[d] = t_now + w * delta
-            widening = (np.abs(delta) > np.abs(prev_r[d][idx])) & (delta * prev_r[d][idx] < 0.0)
-            relax[d][idx] = np.where(widening, np.maximum(rel * 0.5, 1 / 64), rel)
-            prev_t[d][idx] = t_now
-            prev_r[d][idx] = delta
-            step_max = np.maximum(step_max, np.abs(delta))
-        bad = ~np.isfinite(step_max)
+                # how far the fixed point still is: the step itself where F' is unknown or
+                # negative, up to MAX_DISTANCE_FACTOR steps where F' nears or passes 1
+                factor = np.where(np.isfinite(gain),
+                                  np.clip(1.0 / np.maximum(1.0 - gain, 1e-300), 1.0,
+                                          MAX_DISTANCE_FACTOR), 1.0)
+            rel = relax[d][jdx]
+            # creeping: F' near or above 1 and the residual keeping its sign, so the plain
+            # step shrinks to millikelvin where the curve nearly touches the diagonal (and
+            # may pass it by: a near-tangency with the fixed point degrees further on); the
+            # plain step doubles while that lasts, within the extrapolation's reach
+            creeping = (~usable & np.isfinite(gain) & (gain >= 1.0 - 1.0 / MAX_EXTRAPOLATION)
+                        & (delta * prev_r[d][jdx] > 0.0))
+            push = np.where(creeping, np.minimum(boost[d][jdx] * 2.0, MAX_EXTRAPOLATION), 1.0)
+            boost[d][jdx] = push
+            plain = np.where(creeping, np.minimum(rel * push, reach), rel)
+            step = t_now + np.where(usable, np.minimum(secant_w, reach), plain) * delta
+            widening = (np.abs(delta) > np.abs(prev_r[d][jdx])) & (delta * prev_r[d][jdx] < 0.0)
+            relax[d][jdx] = np.where(widening, np.maximum(rel * 0.5, 1 / 64), rel)
+            prev_t[d][jdx] = t_now
+            prev_r[d][jdx] = delta
+            # the bracket: a point heating above one seen cooling (or cooling below one seen
+            # heating) belongs to another crossing, or the other die moved the curve: that
+            # side starts afresh
+            heating, cooling = delta > 0.0, delta < 0.0
+            low, high = lo[d][jdx], hi[d][jdx]
+            high = np.where(heating & (t_now >= high), np.nan, high)
+            low = np.where(cooling & (t_now <= low), np.nan, low)
+            low = np.where(heating, np.fmax(low, t_now), low)
+            high = np.where(cooling, np.fmin(high, t_now), high)
+            lo[d][jdx], hi[d][jdx] = low, high
+            # with two dice a point's residual moves with the other die's temperature, so an
+            # old bracket can shut the fixed point out: one that has shrunk to a thousandth
+            # of ``settle`` around a residual still above a fifth of ``settle`` holds no
+            # crossing (at the steepest slope seen, F' of -25, a crossing inside leaves an
+            # eighth of that; a driver die's residual of 0.046 K in a stale bracket left its
+            # output 1.1 K off, so the bracket must go before the residual passes as settled)
+            stale = (high - low < 1e-3 * settle) & (np.abs(delta) > 0.2 * settle)
+            low, high = np.where(stale, np.nan, low), np.where(stale, np.nan, high)
+            lo[d][jdx], hi[d][jdx] = low, high
+            closed = np.isfinite(low) & np.isfinite(high)
+            step = np.where(closed & ~((step > low) & (step < high)), 0.5 * (low + high), step)
+            top = cap[d][jdx]
+            hot |= heating & (t_now >= top)
+            new[d] = np.minimum(step, top)
+            distance = np.maximum(distance, np.abs(delta) * factor)
         for d in names:
-            bad |= new[d] > RUNAWAY_KELVIN
-            if limit is not None and d in limit:
-                bad |= new[d] > _at(limit[d], idx) + 100.0
-        for d in names:
-            temps[d][idx] = np.where(bad, temps[d][idx], new[d])
-        runaway[idx] |= bad
-        iterations[idx] = it
-        settled[idx] |= ~bad & (step_max < settle)
-    runaway |= ~settled
-    out = {d: np.where(runaway, np.nan, t) for d, t in temps.items()}
-    return FixedPointResult(out, ~runaway, iterations)
+            temps[d][jdx] = np.where(hot, temps[d][jdx], new[d])
+        runaway[jdx] |= hot
+        settled[jdx] |= ~hot & (distance < settle)
+    runaway |= ~settled & ~failed
+    out = {d: np.where(runaway | failed, np.nan, t) for d, t in temps.items()}
+    return FixedPointResult(out, ~runaway & ~failed, iterations, failed)

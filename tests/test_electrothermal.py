@@ -320,3 +320,150 @@ def test_self_heating_into_the_linear_region_settles(high):
     assert res["load_current"][0] > 14.76 / (2 * 46.14)
     assert res["vce_on"][0] > 1.0
     assert res["drive_margin"][0] < 1.0
+
+
+# units an audit of the loop found wrongly flagged or missed (2026-12-04): each study is
+# drawn once for its parameter names, then every value is pinned
+_HOT_SINGLE = """stage = "single"
+[ambient]
+temperature = {{min = "25 degC", max = "150 degC"}}
+[supply]
+voltage = {{min = "10 V", max = "27 V"}}
+[drive]
+high = {{min = "0.2 V", max = "1.1 V"}}
+source_resistance = {{min = "0 ohm", max = "60 ohm"}}
+[parts.RB]
+value = {{min = "900R", max = "110k"}}
+[parts.Q1]
+device = "{device}"
+theta_ja = "{theta}"
+{extra}
+[load]
+kind = "resistor"
+resistance = {{min = "60R", max = "1100R"}}
+"""
+
+_HOT_PAIR = """stage = "darlington"
+[ambient]
+temperature = {min = "25 degC", max = "150 degC"}
+[supply]
+voltage = {min = "10 V", max = "14 V"}
+[drive]
+high = {min = "0.9 V", max = "1.6 V"}
+[parts.RB]
+value = {min = "4k", max = "5k"}
+[parts.Q1]
+device = "small_signal_npn"
+theta_ja = "2000 K/W"
+[parts.Q2]
+device = "medium_power_npn"
+theta_ja = "300 K/W"
+[load]
+kind = "resistor"
+resistance = {min = "60R", max = "75R"}
+"""
+
+_AUDIT_UNITS = {
+    # the first plain step from a hot ambient overshoots the cap (T_j max + 100 K) where the
+    # dissipation falls with temperature (past V_s / 2R): it was flagged at once
+    "overshoot": ("medium_power_npn", "300 K/W", "", {
+        "ambient.temperature": 380.42052149347387, "supply.voltage": 12.273512514764231,
+        "drive.high": 1.0374598975138325, "drive.source_resistance": 23.944221316973348,
+        "RB": 997.1265355691094, "Q1.hfe": 163.6790037690528,
+        "Q1.icbo": 3.776136041938501e-08, "load.resistance": 67.47726800336774}),
+    # a sharp knee at the edge of saturation (F' of -11 at the fixed point) locked the secant
+    # into a four-cycle until the iterations ran out
+    "knee": ("medium_power_npn", "300 K/W", "", {
+        "ambient.temperature": 323.7789524423138, "supply.voltage": 12.669544431126136,
+        "drive.high": 0.830943310572476, "drive.source_resistance": 57.6629600404854,
+        "RB": 1005.3540002989273, "Q1.hfe": 151.53453764191005,
+        "Q1.icbo": 5.243767979550724e-08, "load.resistance": 69.299950781487}),
+    # an almost open base whose circuit does not solve at a trial temperature far above the
+    # fixed point: the failed solve was taken for a runaway
+    "unsolved": ("small_signal_npn", "1000 K/W", 'icbo_max = "2 uA"', {
+        "ambient.temperature": 371.1145352539053, "supply.voltage": 23.538925296013346,
+        "drive.high": 0.2365104852550708, "drive.source_resistance": 0.0,
+        "RB": 100061.52545912443, "Q1.hfe": 222.4411439465383,
+        "Q1.icbo": 1.7804652421477775e-07, "load.resistance": 1022.5835144159778}),
+}
+
+
+def _pinned(study, values):
+    samples = _samples(study, 1)
+    for name in samples:
+        if name in values:
+            samples[name] = np.array([values[name]])
+        elif name.endswith(".tempco") or name == "drive.low":
+            samples[name] = np.zeros(1)
+    return samples
+
+
+@pytest.mark.parametrize("case", sorted(_AUDIT_UNITS))
+def test_the_loop_finds_the_first_stable_point_of_a_hard_unit(case):
+    device, theta, extra, values = _AUDIT_UNITS[case]
+    study = load_text(f"{case}.toml", text=_HOT_SINGLE.format(device=device, theta=theta,
+                                                              extra=extra))
+    stage = study.stage
+    s = _pinned(study, values)
+    res = stage.evaluate(s)
+    ta = s["ambient.temperature"][0]
+    th = stage.thermal.theta["Q1"]
+
+    def excess(tj):
+        t = {"Q1": np.array([tj])}
+        dc = stage.dc(s, t, {"Q1": np.array([ta])}, full=False)
+        return ta + th * dc["power_on"]["devices"]["Q1"][0] - tj if dc["converged"][0] else np.nan
+
+    # the first crossing above the ambient from heating (r > 0) to cooling (r < 0): where a
+    # unit switched on cold stops; scipy.optimize.brentq on T_a + theta_JA P(T_j) - T_j
+    # (JESD51-1 relation) inside the first 1 K step of the scan that changes sign
+    grid = ta + np.arange(0.0, 120.0, 1.0)
+    r = np.array([excess(t) for t in grid])
+    k = int(np.flatnonzero((r[:-1] > 0) & (r[1:] < 0))[0])
+    ref = optimize.brentq(excess, grid[k], grid[k + 1], xtol=1e-9)
+    assert ref < stage.thermal.tj_max["Q1"]
+    assert res["converged"][0] and res["thermal_runaway"][0] == 0
+    # the loop stops when the distance left to the fixed point is under 0.05 K
+    assert res["tj_output"][0] == pytest.approx(ref, abs=0.05)
+
+
+def test_a_pair_settles_where_its_first_step_overshoots_and_a_creeping_one_runs_away():
+    study = load_text("pair.toml", text=_HOT_PAIR)
+    stage = study.stage
+    common = {"drive.source_resistance": 0.0, "RB.tempco": 0.0}
+    # two dice: the output's first plain step overshot the cap; the one equilibrium is stable
+    # at 372.5 K and 419.8 K (the audit's scipy.optimize.root from a grid of starts)
+    hot = _pinned(study, {**common, "ambient.temperature": 372.0107576971251,
+                          "supply.voltage": 12.423992519494819,
+                          "drive.high": 0.9493139055333524, "RB": 4740.69420916127,
+                          "Q1.hfe": 211.81697815841738, "Q1.icbo": 1.3441475706835454e-08,
+                          "load.resistance": 68.43661949629396, "Q2.hfe": 158.7064197180187,
+                          "Q2.icbo": 1.7086356219133458e-08})
+    res = stage.evaluate(hot)
+    assert res["thermal_runaway"][0] == 0
+    t = {"Q1": res["tj_driver"], "Q2": res["tj_output"]}
+    ta = hot["ambient.temperature"]
+
+    def residual(x):
+        tt = {"Q1": np.array([x[0]]), "Q2": np.array([x[1]])}
+        dc = stage.dc(hot, tt, {d: ta for d in tt}, full=False)
+        return [ta[0] + stage.thermal.theta[d] * dc["power_on"]["devices"][d][0] - tt[d][0]
+                for d in ("Q1", "Q2")]
+
+    # scipy.optimize.root of the JESD51-1 relation on both dice from the loop's answer
+    root = optimize.root(residual, [t["Q1"][0], t["Q2"][0]], method="hybr")
+    assert root.success
+    assert_close = np.testing.assert_allclose
+    assert_close([t["Q1"][0], t["Q2"][0]], root.x, atol=0.3)
+    assert_close(root.x, [372.51, 419.78], atol=0.1)
+    # creeping along a nearly tangent stretch (residual about 0.07 K from 325 to 336 K) was
+    # taken for a fixed point at 329 K; the only equilibrium is 424.2 K, above T_j max
+    creep = _pinned(study, {**common, "ambient.temperature": 305.4221964920254,
+                            "supply.voltage": 12.674666489960005,
+                            "drive.high": 1.0629684300264293, "RB": 4823.277018318919,
+                            "Q1.hfe": 289.616854982322, "Q1.icbo": 1.0683643650201072e-08,
+                            "load.resistance": 67.99448687239419, "Q2.hfe": 100.5523717042908,
+                            "Q2.icbo": 5.9045081298362584e-08})
+    res = stage.evaluate(creep)
+    assert res["thermal_runaway"][0] == 1
+    assert np.isnan(res["tj_output"][0]) or res["tj_output"][0] > stage.thermal.tj_max["Q2"]

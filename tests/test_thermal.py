@@ -135,3 +135,41 @@ def test_shared_junction_sums_the_powers():
     # one die: both dissipations through one theta_JA (JESD51 relation on the sum)
     assert_allclose(res.temperatures["a"], C0 + 25 + 50 * 0.4)
     assert_allclose(res.temperatures["b"], C0 + 25 + 50 * 0.4)
+
+
+def test_a_trial_temperature_that_does_not_solve_is_backed_off_not_called_a_runaway():
+    # P = P0 - k (T - T_a) with theta k = 1 (F' = -1): the fixed point is half the first plain
+    # step above the ambient (T_a + 20 K, exact); the circuit "does not solve" above
+    # T_a + 30 K, where that first step lands; a sample that never solves is not converged
+    ta = np.full(3, C0 + 60.0)
+    theta = np.full(3, 100.0)
+    p0 = np.array([0.4, 0.4, 0.4])
+    k = 1.0 / theta
+
+    def power_at(t, i):
+        p = p0[i] - k[i] * (t["q"] - ta[i])
+        out = np.where(t["q"] > ta[i] + 30.0, np.nan, p)
+        return {"q": np.where(i == 2, np.nan, out)}
+
+    res = thermal.electrothermal(power_at, ta, {"q": theta}, limit={"q": np.full(3, C0 + 150)})
+    assert res.settled.tolist() == [True, True, False]
+    assert res.failed.tolist() == [False, False, True]
+    assert_allclose(res.temperatures["q"][:2], ta[:2] + 20.0, atol=0.05)
+    assert np.isnan(res.temperatures["q"][2])
+
+
+def test_a_first_step_past_the_cap_comes_back_to_a_stable_point():
+    # F' = -3 (dissipation falling steeply past V_s / 2R): the first plain step lands 150 K
+    # above a 110 degC ambient, beyond T_j max + 100 K, and was flagged at once; the fixed
+    # point is T_a + 150 / 4 = T_a + 37.5 K (exact), below T_j max
+    ta = np.full(1, C0 + 110.0)
+    theta = np.full(1, 300.0)
+    p0, k = 0.5, 3.0 / 300.0
+    res = thermal.electrothermal(lambda t, i: {"q": p0 - k * (t["q"] - ta[i])}, ta,
+                                 {"q": theta}, limit={"q": np.full(1, C0 + 150)})
+    assert res.settled.all()
+    assert_allclose(res.temperatures["q"], ta + 37.5, atol=0.05)
+    # a true runaway still heating at the cap is flagged there
+    res = thermal.electrothermal(lambda t, i: {"q": np.full(i.size, 1.0)}, ta, {"q": theta},
+                                 limit={"q": np.full(1, C0 + 150)})
+    assert not res.settled.any() and res.iterations[0] < 10

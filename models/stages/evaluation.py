@@ -544,10 +544,12 @@ def evaluate_stage(stage, samples):
         theta = {d: np.full(n, setup.theta[d]) for d in devices}
         limit = {d: np.full(n, setup.tj_max[d]) for d in devices}
         fp = thermal.electrothermal(power_at, ambient, theta, setup.shared, limit)
-        return fp.settled, fp.temperatures
+        return fp.settled, fp.temperatures, fp.failed
 
+    # samples whose circuit did not solve on the way to their fixed point: not converged
+    unsolved = np.zeros(n, dtype=bool)
     if setup.self_heating:
-        settled, temps = settle()
+        settled, temps, unsolved = settle()
     sw_metrics = None
     sw = getattr(stage, "switching", None)
     if sw is not None and sw.enabled:
@@ -566,13 +568,13 @@ def evaluate_stage(stage, samples):
                 # state): there only the heat it adds counts (criterion transitions_fit)
                 switching_power[d] = np.where(fits, f * e, np.maximum(f * e, 0.0))
             if setup.self_heating:
-                settled, temps = settle()
+                settled, temps, unsolved = settle()
 
     eval_temps = {d: np.where(settled, temps[d], setup.tj_max[d]) for d in devices}
     res = stage.dc(samples, eval_temps, off_temps(eval_temps), full=True, params=params,
                    start=warm_start({"on": eval_temps, "off": off_temps(eval_temps)},
                                     np.arange(n), params))
-    converged = np.asarray(res["converged"], dtype=bool)
+    converged = np.asarray(res["converged"], dtype=bool) & ~unsolved
     # a loop that does not settle, or settles above T_j max, is a thermal runaway
     over = np.zeros(n, dtype=bool)
     for d in devices:
