@@ -453,9 +453,8 @@ def test_a_pair_settles_where_its_first_step_overshoots_and_a_creeping_one_runs_
     # scipy.optimize.root of the JESD51-1 relation on both dice from the loop's answer
     root = optimize.root(residual, [t["Q1"][0], t["Q2"][0]], method="hybr")
     assert root.success
-    assert_close = np.testing.assert_allclose
-    assert_close([t["Q1"][0], t["Q2"][0]], root.x, atol=0.3)
-    assert_close(root.x, [372.51, 419.78], atol=0.1)
+    np.testing.assert_allclose([t["Q1"][0], t["Q2"][0]], root.x, atol=0.3)
+    np.testing.assert_allclose(root.x, [372.51, 419.78], atol=0.1)
     # creeping along a nearly tangent stretch (residual about 0.07 K from 325 to 336 K) was
     # taken for a fixed point at 329 K; the only equilibrium is 424.2 K, above T_j max
     creep = _pinned(study, {**common, "ambient.temperature": 305.4221964920254,
