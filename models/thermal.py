@@ -305,7 +305,6 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
             low = np.where(cooling & (t_now <= low), np.nan, low)
             low = np.where(heating, np.fmax(low, t_now), low)
             high = np.where(cooling, np.fmin(high, t_now), high)
-            lo[d][jdx], hi[d][jdx] = low, high
             # with two dice a point's residual moves with the other die's temperature, so an
             # old bracket can shut the fixed point out: one that has shrunk to a thousandth
             # of ``settle`` around a residual still above a fifth of ``settle`` holds no
