@@ -466,3 +466,39 @@ def test_a_pair_settles_where_its_first_step_overshoots_and_a_creeping_one_runs_
     res = stage.evaluate(creep)
     assert res["thermal_runaway"][0] == 1
     assert np.isnan(res["tj_output"][0]) or res["tj_output"][0] > stage.thermal.tj_max["Q2"]
+
+
+_HOT_MONOLITHIC = """stage = "darlington"
+[ambient]
+temperature = {min = "40 degC", max = "150 degC"}
+[supply]
+voltage = {min = "21 V", max = "27 V"}
+[drive]
+high = {min = "0.8 V", max = "1.5 V"}
+[parts.RB]
+value = {min = "9k", max = "11k"}
+[parts.Q2]
+monolithic = true
+device = "monolithic_darlington"
+theta_ja = "150 K/W"
+[load]
+kind = "resistor"
+resistance = {min = "90R", max = "110R"}
+"""
+
+
+def test_a_unit_whose_circuit_does_not_solve_in_the_loop_is_not_converged_not_a_runaway():
+    # a leaky monolithic pair at 131 degC whose DC does not solve at the loop's trial
+    # temperatures, nor half way back (the audit's own solve failed there too): it was
+    # counted as a thermal runaway; it is not converged, so counted and reported as such
+    study = load_text("mono.toml", text=_HOT_MONOLITHIC)
+    values = {"ambient.temperature": 404.0142666266209, "supply.voltage": 23.183483863410984,
+              "drive.high": 1.3718690186971005, "RB": 9909.463241216436,
+              "Q2.rbe_driver": 8510.049907113967, "Q2.rbe_output": 108.9028484544792,
+              "Q1.hfe": 173.65916612741734, "Q1.icbo": 1.3715279299132125e-07,
+              "Q2.hfe": 50.28810732439863, "Q2.icbo": 1.5467130407303284e-06,
+              "load.resistance": 101.20076522705632}
+    assert set(values) <= set(study.stage.parameters)
+    res = study.stage.evaluate(_pinned(study, values))
+    assert not res["converged"][0]
+    assert np.isnan(res["thermal_runaway"][0])
