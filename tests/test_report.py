@@ -455,6 +455,12 @@ def test_worst_case_within_compares_the_worst_extremes_with_every_limit():
     notes = report.worstcase_notes({"metrics": {"y": dict(inner, mc_min_inside=False)},
                                     "monte_carlo_outside": 44, "monte_carlo_samples": 2000})
     assert len(notes) == 1 and "44 of 2000 Monte Carlo samples drew" in notes[0]
+    assert "the extreme is one of them" in notes[0]
+    # a file of an older version, without the flags, is not told more than it knows
+    notes = report.worstcase_notes({"metrics": {"y": dict(m, mc_min=1.0)},
+                                    "monte_carlo_outside": 44, "monte_carlo_samples": 2000})
+    assert len(notes) == 1 and "44 of 2000" in notes[0]
+    assert "the extreme is one of them" not in notes[0]
 
 
 def test_analysis_only_folders(write_study, tmp_path):

@@ -1227,3 +1227,35 @@ def test_a_lamp_driver_is_rated_on_what_it_gives_during_the_inrush():
     # the driver's current at the output's capability exceeds the settled on-state's
     assert (df.loc[limited, "peak_current_driver"]
             > df.loc[limited, "base_current_output"] * 1.2).all()
+
+
+def test_a_lamp_drivers_inrush_current_follows_the_filaments_demand():
+    # common practice, no source: where the cold filament asks for less than the pair can
+    # carry, the driver gives what the output's demand needs, between its on-state current and
+    # its current at the output's capability (linear in the output's current between the
+    # two solved states); where it asks for more, its current at the capability
+    from tolerance.models.stages.evaluation import inrush_driver_current
+
+    on, edge = np.array([0.01, 0.01, 0.01]), np.array([0.3, 0.3, 0.3])
+    got = inrush_driver_current(on, edge, np.full(3, 0.1), np.full(3, 4.1),
+                                np.array([0.1, 2.1, 6.0]))
+    np.testing.assert_allclose(got, [0.01, 0.01 + 0.5 * 0.29, 0.3], rtol=1e-12)
+    # a strongly driven pair (RB 100 ohm from 5 V) on a 3 W panel lamp: the inrush asks for
+    # 0.5 to 1.3 A of a capability of 4 to 9 A; rated at its capability the driver failed
+    # its 200 mA in every unit
+    from tolerance.api import run
+    from tolerance.study import load_study as load_text
+
+    text = (Path(__file__).resolve().parent.parent / "studies"
+            / "beacon_lamp_darlington.toml").read_text(encoding="utf-8")
+    text = text.replace('high = {min = "2.9 V", max = "3.3 V"}',
+                        'high = {min = "4.8 V", max = "5 V"}')
+    text = re.sub(r'(\[parts\.RB\]\nvalue = )"470R"', r'\1"100R"', text)
+    text = re.sub(r'(?m)^part = ".*"$', 'part = "panel_lamp_24v_3w"', text)
+    study = load_text("strong.toml", text=text)
+    assert {p.name for p in study.parameters} >= {"RB"}
+    res = run(study, samples=100)
+    df = res.samples
+    assert (df["inrush_margin"] > 1).all()
+    assert res.summary["criteria"]["collector_current_driver"]["failures"] == 0
+    assert (df["peak_current_driver"] < 0.2).all()

@@ -173,3 +173,20 @@ def test_a_first_step_past_the_cap_comes_back_to_a_stable_point():
     res = thermal.electrothermal(lambda t, i: {"q": np.full(i.size, 1.0)}, ta, {"q": theta},
                                  limit={"q": np.full(1, C0 + 150)})
     assert not res.settled.any() and res.iterations[0] < 10
+
+
+def test_a_runaway_whose_circuit_stops_solving_above_its_limit_is_still_a_runaway():
+    # exponential dissipation: still heating when solved at 436 K and 480 K, above the 423 K
+    # limit, then the circuit does not solve above 480 K; it was given up as not converged,
+    # which took it out of the runaway count (common practice, no source: a junction seen
+    # heating above T_j max has run away whatever its circuit does further up)
+    def power_at(t, i):
+        return {"q": np.where(t["q"] > 480.0, np.nan, np.exp((t["q"] - 300.0) / 30.0))}
+
+    res = thermal.electrothermal(power_at, np.array([300.0]), {"q": np.array([50.0])},
+                                 limit={"q": np.array([423.0])})
+    assert not res.settled[0] and not res.failed[0]
+    # a constant dissipation given as a scalar broadcasts over the samples
+    res = thermal.electrothermal(lambda t, i: {"a": 0.5}, np.array([300.0, 310.0]),
+                                 {"a": np.array([10.0, 10.0])})
+    assert_allclose(res.temperatures["a"], [305.0, 315.0])

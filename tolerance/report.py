@@ -475,12 +475,14 @@ def worstcase_notes(data: dict) -> list[str]:
     # searched (as every unit does without normal or lognormal spreads); an older file
     # without the flags puts it down to the units outside when there are any
     inner, drawn_out = [], []
+    known = True  # whether the file says where each extreme's unit lies
     for name, m in metrics.items():
         if not isinstance(m, dict):
             continue
         sides = monte_carlo_beyond_sides(m)
         if not sides:
             continue
+        known &= all(f"mc_{side}_inside" in m for side in sides)
         inside = [m.get(f"mc_{side}_inside", not outside) for side in sides]
         (inner if any(inside) else drawn_out).append(name)
     if drawn_out:
@@ -489,8 +491,9 @@ def worstcase_notes(data: dict) -> list[str]:
             f"{', '.join(drawn_out)}: {format_number(outside)} of "
             f"{format_number(data.get('monte_carlo_samples'))} Monte Carlo samples drew a "
             "parameter outside the ranges searched (normal and lognormal spreads are not cut "
-            "at their tolerance: truncnormal is), and the extreme is one of them; 'worst case "
-            "within' counts them.")
+            "at their tolerance: truncnormal is)"
+            + (", and the extreme is one of them" if known else "")
+            + "; 'worst case within' counts them.")
     if inner:
         notes.append(
             f"The Monte Carlo samples reach beyond the worst-case extremes for "

@@ -224,6 +224,23 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
                                   f"energy of {out}"))
 
 
+def inrush_driver_current(on, at_capability, on_current, capability, demand):
+    """A pair's driver current at the peak of a cold lamp's inrush [A].
+
+    Where the filament asks for at least what the output carries at the edge of saturation,
+    the output limits it there and the driver gives its current of that solved state
+    (``at_capability``). Where it asks for less, the output carries the demand, and the
+    driver's current lies between its on-state value (``on``, at ``on_current``) and that
+    edge value: interpolated linearly in the output's current between the two solved
+    states (the driver feeds the output's base current, about proportional to its collector
+    current, and RBE2's, nearly constant; common practice, no source). Never below ``on``.
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        share = np.clip((demand - on_current) / (capability - on_current), 0.0, 1.0)
+    share = np.where(demand >= capability, 1.0, np.nan_to_num(share, nan=1.0))
+    return np.fmax(on, on + share * (at_capability - on))
+
+
 # the 10 %/90 % times follow the switch current (the output's collector current, the load
 # current less a clamp's): for a coil its clamp takes the current over at turn-off, so
 # they end in nanoseconds while the winding's current decays for milliseconds
@@ -674,8 +691,11 @@ def evaluate_stage(stage, samples):
     else:
         out["peak_current"] = np.abs(res["load_current"])
     if "peak_current_driver" in stage.metrics:
-        out["peak_current_driver"] = (np.fmax(res["ic_driver"], res["capability_driver"])
-                                      if stage.load.kind == "lamp" else res["ic_driver"])
+        out["peak_current_driver"] = res["ic_driver"]
+        if stage.load.kind == "lamp":
+            out["peak_current_driver"] = inrush_driver_current(
+                res["ic_driver"], res["capability_driver"], np.abs(res["load_current"]),
+                capability, demand)
     for key in list(out):
         out[key] = np.where(converged, np.asarray(out[key], dtype=float), np.nan)
     missing = set(stage.metrics) - set(out)
