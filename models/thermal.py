@@ -125,7 +125,7 @@ class FixedPointResult:
     temperatures: dict[str, np.ndarray]
     settled: np.ndarray
     iterations: np.ndarray
-    failed: np.ndarray | None = None
+    failed: np.ndarray
 
 
 #: times a trial temperature whose circuit did not solve is moved half way back towards the
@@ -152,21 +152,14 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     """Electro-thermal fixed point of every sample, vectorized.
 
     Iterates T_j = T_a + theta P(T_j) for every device until no temperature is further than
-    ``settle`` kelvin from its fixed point, as far as the loop slope read across the last
-    step tells: a residual curve that bends sharply within that step (one that nearly
-    touches zero between two crossings, F' near 1 there while the step's secant says F' < 0)
-    can pass as settled off the point. Seen only in synthetic laws (1.7 K off on a parabola
-    touching the diagonal); a guard costs a further iteration on most real units, whose
-    dissipation falls gently with temperature, and an audit of 8,800 real units found none. ``power_at(temperatures)`` evaluates the whole
+    ``settle`` kelvin from its fixed point. ``power_at(temperatures)`` evaluates the whole
     chunk's dissipation per device at the given junction temperatures (one vectorized call per
     iteration; samples that have settled keep their temperatures). Devices listed in
     ``shared`` (device -> the device whose junction it shares, e.g. the two transistors of a
     monolithic Darlington) take the sum of both powers through the shared thermal resistance.
 
     The fixed point sought is the first one above the ambient, where a unit switched on cold
-    stops heating (the first plain step can jump a stable crossing and its unstable partner
-    when they lie close together beyond a large first residual; the audit of real units saw
-    the lowest one taken wherever there were several): below it the residual r(T) = T_a + theta P(T) - T is positive, above it
+    stops heating: below it the residual r(T) = T_a + theta P(T) - T is positive, above it
     negative. From the second iteration on, each device's step is the secant step on r: the
     plain step r times 1 / (1 - F'), with the loop slope F' = d(theta P)/dT estimated from the
     device's last two iterates. Where the dissipation falls steeply with temperature (a stage
@@ -177,27 +170,36 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     extrapolates (F' > 0) only while the approach stays on one side, by at most
     :data:`MAX_EXTRAPOLATION` plain steps and :data:`EXTRAPOLATION_KELVIN` beyond the plain
     step, and is not used where F' is unknown (the first step, a device whose temperature did
-    not move) or near and above 1: there the plain step is taken, relaxed (halved, down to
-    1/64) only where a device's step grows and changes sign, a swing that widens, and
-    doubled at each step (up to :data:`MAX_EXTRAPOLATION` times, and
-    :data:`EXTRAPOLATION_KELVIN` beyond the plain step) while it creeps on one side with F'
-    near or above 1, where the curve nearly touches the diagonal and the residual is
-    millikelvin (it may pass the diagonal by, with the fixed point degrees further on). Each device
-    keeps a bracket, the highest temperature seen with r > 0 below the lowest seen with
-    r < 0; a step that would leave it bisects it instead (a sharp knee in P(T), with F' of
-    -10 or steeper, otherwise locks the secant into a cycle, on one die or two). With two dice
-    a point's residual moves with the other die, so an old bracket can shut the fixed point
-    out: a bracket that has shrunk to a thousandth of ``settle`` while the residual stays
-    above a fifth of ``settle`` is dropped. No step goes beyond the cap,
-    ``limit`` + 100 K (or :data:`RUNAWAY_KELVIN`): a first plain step from a hot ambient can
-    overshoot far past a stable point, and only a unit still heating at the cap is a runaway.
+    not move) or near and above 1. There the plain step is taken: relaxed (halved, down to
+    1/64) only where a device's step grows and changes sign, a swing that widens; doubled at
+    each step (up to :data:`MAX_EXTRAPOLATION` times, within the extrapolation's reach) while
+    it creeps on one side with F' near or above 1, where the curve nearly touches the
+    diagonal and the residual is millikelvin (it may pass the diagonal by, with the fixed
+    point degrees further on).
+
+    Each device keeps a bracket, the highest temperature seen with r > 0 below the lowest
+    seen with r < 0; a step that would leave it bisects it instead (a sharp knee in P(T), with
+    F' of -10 or steeper, otherwise locks the secant into a cycle, on one die or two). With
+    two dice a point's residual moves with the other die, so an old bracket can shut the fixed
+    point out: a bracket that has shrunk to a thousandth of ``settle`` while the residual
+    stays above a fifth of ``settle`` is dropped. No step goes beyond the cap, ``limit`` +
+    100 K (or :data:`RUNAWAY_KELVIN`): a first plain step from a hot ambient can overshoot far
+    past a stable point, and only a unit still heating at the cap is a runaway. A sample
+    still moving after ``max_iterations`` is one too (``settled = False``).
 
     A trial temperature where ``power_at`` gives no finite power (the circuit did not solve
     there) is moved half way back towards the last solved one, up to :data:`MAX_RETREATS`
     times; then, or when the ambient itself does not solve, or when the iterations end on
     such a trial, the sample is ``failed``: not converged, neither settled nor a runaway,
-    unless it was already seen heating at or above its ``limit``, which makes it a runaway. A sample still moving after ``max_iterations``,
-    or heating on at the cap, is returned with ``settled = False``: thermal runaway.
+    unless it was already seen heating at or above its ``limit``, which makes it a runaway.
+
+    Limits, as found: the distance to the fixed point is read from the slope across the last
+    step, so a residual that bends sharply within a long step (nearly touching zero between
+    two crossings: F' near 1 there while the step's secant says F' < 0) can pass as settled
+    off the point, 1.7 K on a synthetic parabola; a guard costs a further iteration on most
+    real units, and an audit of 8,800 real units found no such case. The first plain step can
+    likewise jump a stable crossing and its unstable partner lying close together beyond a
+    large first residual; the audit saw the lowest one taken wherever there were several.
 
     Parameters
     ----------
@@ -227,9 +229,15 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
         cap[d] = np.full(n, RUNAWAY_KELVIN)
         if limit is not None and d in limit:
             cap[d] = np.minimum(cap[d], np.asarray(limit[d], dtype=float) + 100.0)
-    # a sample seen still heating at or above this (its limit) is a runaway whatever happens
-    # to its circuit further up [K]
-    hot_limit = {d: cap[d] - 100.0 for d in names}
+
+    def seen_hot(sel):
+        """Whether samples ``sel`` were seen still heating at or above a limit: runaways,
+        whatever their circuit does further up."""
+        out = np.zeros(np.size(lo[names[0]][sel]), dtype=bool)
+        for d in names:
+            out |= lo[d][sel] >= cap[d][sel] - 100.0
+        return out
+
     relax = {d: np.ones(n) for d in names}
     boost = {d: np.ones(n) for d in names}  # the creeping plain step's growing multiple
     # each device's previous iterate and its residual theta P(T) + T_a - T, for the secant
@@ -263,9 +271,7 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
             give_up = ~np.isfinite(good[names[0]][u]) | (retreats[u] >= MAX_RETREATS)
             # one already seen heating at or above its limit runs away, whether or not its
             # circuit solves further up; the others are not converged
-            above = np.zeros(u.size, dtype=bool)
-            for d in names:
-                above |= lo[d][u] >= hot_limit[d][u]
+            above = seen_hot(u)
             runaway[u[give_up & above]] = True
             failed[u[give_up & ~above]] = True
             pending[u[give_up]] = False
@@ -347,10 +353,7 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
         settled[jdx] |= ~hot & (distance < settle)
     # a sample whose last trial did not solve ends as one that gave up would
     stuck = pending & ~(settled | runaway | failed)
-    above = np.zeros(n, dtype=bool)
-    for d in names:
-        above |= lo[d] >= hot_limit[d]
-    failed |= stuck & ~above
+    failed |= stuck & ~seen_hot(slice(None))
     runaway |= ~settled & ~failed
     out = {d: np.where(runaway | failed, np.nan, t) for d, t in temps.items()}
     return FixedPointResult(out, ~runaway & ~failed, iterations, failed)

@@ -207,8 +207,8 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
     if driver:
         m["peak_current_driver"] = MetricInfo("A", "highest collector current the driver "
                                                    "carries: the output's base current and "
-                                                   "RBE2's (with a lamp, as far as the drive "
-                                                   "allows during the inrush)")
+                                                   "RBE2's (with a lamp, at the peak of the "
+                                                   "cold filament's inrush)")
         crit.append(Criterion("collector_current_driver", "peak_current_driver",
                               maximum=setup.ic_max[driver[0]], source="rating",
                               description=f"within I_C max of {driver[0]}"))
