@@ -85,6 +85,35 @@ def test_a_pin_at_a_uniform_end_counts_as_a_three_sigma_score(write_study):
     assert_allclose(got.mean(), -1.5, atol=0.03)
 
 
+def test_a_pin_on_a_discrete_value_draws_its_partners_given_that_value(write_study):
+    # x1 takes -1, 1 or 3 V with equal weights, correlated at 0.8 with x2 = N(1, 0.1). The
+    # copula maps the scores below Phi^-1(1/3) = -0.431 to -1 V and those above 0.431 to 3 V;
+    # given x1 = 3 V the partner's score has mean 0.8 E[Z | Z > 0.431] = 0.8 * 1.091 = 0.873
+    # (scipy.stats.truncnorm), as the baseline units with x1 = 3 V show. The stratum's edge
+    # as the pin's score gave 2.4 at the top value and -0.35 at the bottom one.
+    from scipy import stats as sps
+
+    from tolerance.whatif import whatif
+
+    corr = '[[correlation]]\nparameters = ["x1", "x2"]\ncoefficient = 0.8\n'
+    discrete = '{values = ["-1 V", "1 V", "3 V"]}'
+    study = load_study(write_study(LINEAR.format(x1=discrete) + corr))
+    edge = sps.norm.ppf(2 / 3)
+    mean_top = sps.truncnorm(edge, np.inf).mean()
+    for pin, expected in (("max", 0.8 * mean_top), ("min", -0.8 * mean_top)):
+        _, base, pinned = whatif(study, [f"x1={pin}"])
+        got = (pinned.samples["x2"].to_numpy() - 1) / 0.1
+        assert_allclose(got.mean(), expected, atol=0.03)
+        same = base.samples["x1"].to_numpy() == (3.0 if pin == "max" else -1.0)
+        seen = (base.samples["x2"].to_numpy()[same] - 1) / 0.1
+        assert_allclose(got.mean(), seen.mean(), atol=0.06)
+        # the conditional spread: 1 - r^2 + r^2 Var(Z | stratum) (law of total variance)
+        var = 1 - 0.64 + 0.64 * sps.truncnorm(edge, np.inf).var()
+        assert_allclose(got.var(), var, rtol=0.08)
+    # the middle value is the nominal of an equally weighted set, not the first listed
+    assert study.parameter("x1").nominal == 1.0
+
+
 def test_whatif_pin_forms(study):
     from tolerance.whatif import pin_value
 
@@ -428,3 +457,29 @@ def test_every_command_passes_sampler_and_chunk_size_to_its_monte_carlo_run(
 
         saved = json.loads((tmp_path / "o" / f"{command}.json").read_text())
         assert saved["sampler"] == "random"
+
+
+def test_units_failing_without_a_finite_value_count_in_the_tail_and_are_named(write_study):
+    # y = -inf where x1 < -0.5 V (uniform -1 .. 3 V: 12.5 % of units, all failing
+    # y_positive): the capability indices and the tail fits left them out and reported the
+    # finite units' figures, some 2,000 ppm where 12.5 % fail
+    from tolerance.report import build_document, capability_note
+
+    study = load_study(write_study(LINEAR.format(x1=SPREAD) + '[solver]\ninfinite_below = '
+                                   '"-0.5 V"\n'))
+    s = run(study).summary
+    c = s["criteria"]["y_positive"]
+    infinite = int(np.count_nonzero(run(study).samples["y"] == -np.inf))
+    assert infinite == pytest.approx(0.125 * 4000, abs=60)
+    tail = s["tail"]["y_positive"]
+    assert tail["counted_directly"] == infinite
+    assert tail["n"] == c["evaluated"] - infinite
+    # law of total probability (from memory): the counted share plus the fit's weighted
+    assert tail["normal_ppm"] >= 1e6 * infinite / c["evaluated"]
+    assert tail["tail_ppm"] >= 1e6 * infinite / c["evaluated"]
+    assert s["capability"]["y_positive"]["failing_not_finite"] == infinite
+    note = capability_note(s["capability"])
+    assert f"y_positive {infinite:,}" in note
+    text = " ".join(b.text or "" for b in build_document(s, {}, []))
+    assert "left out of the indices" in text
+    assert capability_note({"a": {"failing_not_finite": 0}}) == ""

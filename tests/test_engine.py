@@ -105,6 +105,33 @@ def test_normal_range_with_typical_keeps_its_limits():
     assert_allclose(np.mean(x < 2.0), 0.5, atol=2e-3)
 
 
+def test_truncated_range_with_typical_cuts_both_sides_at_three_sigma():
+    # {min = 40, typ = 100, max = 250, distribution = "truncnormal"}: one spread for both
+    # sides (the wider) cut the lower side at 1.2 sigma: 43.6 % of the units below typ,
+    # 4.9 % below 50. Each side its own spread, then the cut: half below typ and below 50
+    # the two-piece normal's Phi((50 - 100) / 20) less the cut's Phi(-3), over 1 - 2 Phi(-3)
+    # (scipy.stats.norm.cdf)
+    from tolerance.study import load_study
+
+    text = LINEAR_TYP.replace("X1", '{min = "40 V", max = "250 V", typ = "100 V", '
+                                    'distribution = "truncnormal"}')
+    p = load_study("typ.toml", text=text).parameter("x1")
+    assert (p.low, p.nominal, p.high) == (40.0, 100.0, 250.0)
+    x = p.distribution.ppf(np.random.default_rng(7).random(1_000_000))
+    assert x.min() >= 40.0 and x.max() <= 250.0
+    cut = sps.norm.cdf(-3)
+    assert_allclose(np.mean(x < 100.0), 0.5, atol=2e-3)
+    assert_allclose(np.mean(x < 50.0), (sps.norm.cdf(-2.5) - cut) / (1 - 2 * cut), rtol=0.03)
+    d = p.distribution
+    assert_allclose(d.cdf(np.array([40.0, 100.0, 250.0])), [0.0, 0.5, 1.0], atol=1e-12)
+    assert_allclose(d.cdf(d.ppf(np.array([0.01, 0.3, 0.9]))), [0.01, 0.3, 0.9], rtol=1e-12)
+    # a centred typical value keeps the plain truncated normal
+    text = LINEAR_TYP.replace("X1", '{min = "40 V", max = "160 V", typ = "100 V", '
+                                    'distribution = "truncnormal"}')
+    assert isinstance(load_study("c.toml", text=text).parameter("x1").distribution,
+                      dist.TruncatedNormal)
+
+
 LINEAR_TYP = """
 stage = "linear_test"
 [inputs]

@@ -8,6 +8,7 @@ import pytest
 from scipy import integrate, stats
 
 from tolerance.sensitivity import (
+    EXACT_KS_PAIRS,
     as_array_function,
     average_ranks,
     failure_drivers,
@@ -370,8 +371,8 @@ def test_failure_driver_statistics_equal_scipy_ks_2samp(n, threads):
         ranking = {r["input"]: r for r in out[key]["ranking"]}
         for name in x.columns:
             # scipy.stats.ks_2samp is the reference: statistic, sign and p-value
-            ref = stats.ks_2samp(x[name][f], x[name][~f],
-                                 method="exact" if n <= 200 else "asymp")
+            few = n <= 200 or f.sum() * (~f).sum() <= EXACT_KS_PAIRS
+            ref = stats.ks_2samp(x[name][f], x[name][~f], method="exact" if few else "asymp")
             got = ranking.get(name)
             if got is None:  # beyond the top 5: not the case with three inputs
                 raise AssertionError(name)
@@ -382,6 +383,27 @@ def test_failure_driver_statistics_equal_scipy_ks_2samp(n, threads):
         # one label alone gives what it gives among several
         assert failure_drivers(x, f) == out[key]
     assert out["none"]["text"] == "no failures" and out["all"]["text"] == "all samples failed"
+
+
+@pytest.mark.parametrize("failures, n", [(1, 20_000), (2, 20_000), (5, 20_000), (1, 300_000),
+                                         (3, 300_000), (5, 300_000)])
+def test_failure_driver_p_values_of_a_few_failures_are_not_zero(failures, n):
+    # every failure at the top of one input: D = 1, whose asymptotic p-value with an
+    # effective size of 1 or 2 is 0. Exact: the chance that the failures are the largest or
+    # the smallest of all units, 2 / C(n, failures) (exchangeability, from memory), which
+    # scipy.stats.ks_2samp(method="exact") also gives where it is cheap
+    from math import comb
+
+    x = pd.DataFrame({"input": np.arange(n, dtype=float),
+                      "other": np.random.default_rng(failures).normal(size=n)})
+    failed = np.zeros(n, dtype=bool)
+    failed[-failures:] = True
+    top = failure_drivers(x, failed)["ranking"][0]
+    assert top["input"] == "input" and top["ks"] == 1.0
+    assert top["p_value"] == pytest.approx(2 / comb(n, failures), rel=1e-9)
+    if failures * n <= EXACT_KS_PAIRS:
+        ref = stats.ks_2samp(x["input"][failed], x["input"][~failed], method="exact")
+        assert top["p_value"] == pytest.approx(float(ref.pvalue), rel=1e-6)
 
 
 def test_sobol_refuses_a_design_too_small_to_mean_anything():

@@ -274,9 +274,62 @@ def test_tail_estimate_normal_fit():
     )
     assert out["normal_ppm"] < out["normal_ppm_upper"]
     assert "Extrapolation" in out["assumption"]
-    # the GPD fit on a normal tail is also reasonable at 3 sigma (common practice, no source)
-    assert out["tail_ppm"] == pytest.approx(1e6 * stats.norm.sf(3.0), rel=0.5)
+    # the tail fit on a normal tail reads it as exponential (a fitted shape below 0 taken as
+    # 0): at 3 sigma above the true rate by a factor under 2 (common practice, no source;
+    # the exponential's decay against the normal's, worked out in the next test)
+    assert 1e6 * stats.norm.sf(3.0) < out["tail_ppm"] < 2e6 * stats.norm.sf(3.0)
     assert out["method"].startswith("generalized Pareto fit")
+
+
+@pytest.mark.parametrize("k, most", [(4.0, 10.0), (5.0, 100.0)])
+def test_tail_estimate_reads_a_light_tail_conservatively(k, most):
+    # A normal's exceedances over its 5 % quantile fit generalized Pareto shapes near -0.15,
+    # whose tail ends about 4.7 sigma from the mean: the fit put a 5-sigma margin at 4e-5 ppm
+    # against the true 0.287 ppm (scipy.stats.norm.sf). With the shape taken as 0 the mean
+    # exceedance of a standard normal over z = 1.645, phi(z) / 0.05 - z = 0.418 (from
+    # memory), gives 0.05 exp(-(k - z) / 0.418): 179 ppm at 4 sigma (5.6x), 16 ppm at 5 sigma
+    # (56x), never below the true rate.
+    true = 1e6 * stats.norm.sf(k)
+    for seed in range(5):
+        out = tail_estimate(np.random.default_rng(seed).normal(k, 1.0, 20000))
+        assert true < out["tail_ppm"] < most * true
+        assert "shape taken as 0" in out["method"]
+
+
+def test_tail_estimate_fits_the_two_limits_of_a_window_apart():
+    # A metric centred in a window of +-4 sigma fails on either side: 2 Phi(-4) = 63.3 ppm
+    # (scipy.stats.norm.sf). The smaller of the two distances, fitted as one normal, gave
+    # 0.04 ppm: its mean is 3.2 sigma and its spread 0.6 of the metric's.
+    rng = np.random.default_rng(8)
+    x = rng.normal(0.0, 1.0, 20000)
+    s = np.std(x)
+    out = tail_estimate([(x + 4.0) / s, (4.0 - x) / s])
+    assert out["normal_ppm"] == pytest.approx(2e6 * stats.norm.sf(4.0), rel=0.2)
+    assert out["normal_ppm"] > out["tail_ppm"] / 10
+    # each side's bound at 97.5 % (Bonferroni): above the sum of the fits
+    assert out["normal_ppm_upper"] > out["normal_ppm"]
+    assert out["method"].startswith("lower limit: ") and "; upper limit: " in out["method"]
+    one = tail_estimate(np.minimum(x + 4.0, 4.0 - x) / s)
+    assert one["normal_ppm"] < 1.0  # the old reading, three orders of magnitude low
+
+
+def test_tail_estimate_counts_units_without_a_finite_value():
+    # 100 failing units with no finite value beside 900 modelled at 4 sigma: the rate is
+    # (100 + 900 p) / 1000 by the law of total probability (from memory)
+    rng = np.random.default_rng(4)
+    x = rng.normal(4.0, 1.0, 900)
+    fit = tail_estimate(x)
+    out = tail_estimate(x, counted_failures=100, counted_passes=0)
+    assert out["normal_ppm"] == pytest.approx((100e6 + 900 * fit["normal_ppm"]) / 1000,
+                                              rel=1e-12)
+    assert out["counted_directly"] == 100 and out["n"] == 900
+    # the counted part's bound alone: Clopper-Pearson one-sided at 97.5 % (scipy.stats.beta)
+    assert out["normal_ppm_upper"] > 1e6 * stats.beta.ppf(0.975, 101, 900)
+    # units passing with no finite value dilute the model's part
+    diluted = tail_estimate(x, counted_passes=100)
+    assert diluted["normal_ppm"] == pytest.approx(0.9 * fit["normal_ppm"], rel=1e-12)
+    with pytest.raises(ValueError, match="must not be negative"):
+        tail_estimate(x, counted_failures=-1)
 
 
 def test_tail_check_flags_a_model_outside_the_counted_interval():

@@ -90,10 +90,17 @@ def test_linear_band_with_off_centre_nominal():
     model = lambda s: {"y": 2.0 * s["r1"] - 3.0 * s["r2"]}  # noqa: E731
     band = root_sum_square(model, bounds)["y"]
     y0 = 2.0 * 1.05 - 3.0 * 1.5
-    # exact derivation: nominal +- (|2| * 0.1 + |-3| * 0.5) and sqrt(0.2^2 + 1.5^2)
-    assert band["linear_high"] == pytest.approx(y0 + 1.7, abs=1e-9)
-    assert band["linear_low"] == pytest.approx(y0 - 1.7, abs=1e-9)
-    assert band["rss_high"] == pytest.approx(y0 + np.hypot(0.2, 1.5), abs=1e-9)
+    # exact derivation: each parameter moves from its nominal to the end that lowers or
+    # raises y: up by 2 * 0.05 (r1 to 1.1; r2 has no room below 1.5), down by 2 * 0.15 +
+    # 3 * 1.0 (r1 to 0.9, r2 to 2.5); the extreme-value corners say the same. Half the range
+    # on both sides gave y0 +- 1.7, a band reaching 1.6 above the largest value y takes.
+    eva = extreme_value(model, bounds)["y"]
+    assert band["linear_high"] == pytest.approx(y0 + 0.1, abs=1e-9)
+    assert band["linear_low"] == pytest.approx(y0 - 3.3, abs=1e-9)
+    assert [band["linear_low"], band["linear_high"]] == pytest.approx([eva["min"], eva["max"]],
+                                                                      abs=1e-9)
+    assert band["rss_high"] == pytest.approx(y0 + 0.1, abs=1e-9)
+    assert band["rss_low"] == pytest.approx(y0 - np.hypot(0.3, 3.0), abs=1e-9)
 
 
 def test_full_factorial_finds_exact_corners_d3():

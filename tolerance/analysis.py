@@ -72,8 +72,9 @@ def parameters_table(study: Study) -> list[dict]:
             for p in study.parameters]
 
 
-def _margin(values: np.ndarray, lo, hi) -> np.ndarray:
-    """Signed distance to the nearest limit, scaled by the spread: negative fails."""
+def _margins(values: np.ndarray, lo, hi) -> list[np.ndarray]:
+    """Signed distance to each limit, scaled by the spread: negative fails. One array per
+    limit given, since the tail of the smaller of two distances is not that of either."""
     values = np.where(np.isfinite(values), values, np.nan)  # out-of-range entries: no margin
     scale = stats.mean_std(values, ddof=0, nan=True)[1] if np.isfinite(values).sum() > 1 \
         else 1.0
@@ -86,7 +87,7 @@ def _margin(values: np.ndarray, lo, hi) -> np.ndarray:
             parts.append((values - lo) / scale)
         if hi is not None:
             parts.append((hi - values) / scale)
-    return np.minimum.reduce(parts) if len(parts) > 1 else parts[0]
+    return parts
 
 
 def insights(study: Study, column, threads: int = 1) -> dict:
@@ -131,8 +132,15 @@ def insights(study: Study, column, threads: int = 1) -> dict:
 
     def fits(item):
         c, values = item
-        return (stats.capability(values, c.minimum, c.maximum),
-                stats.tail_estimate(_margin(values, c.minimum, c.maximum)))
+        # units without a finite value (infinite, or undefined in a runaway) are outside
+        # every fit: their failures count as they are, and the capability says how many
+        outside = ~np.isfinite(values)
+        failing = int(np.count_nonzero(outside & ~c.passes(values)))
+        cap = stats.capability(values, c.minimum, c.maximum)
+        cap["failing_not_finite"] = failing
+        return (cap, stats.tail_estimate(_margins(values, c.minimum, c.maximum),
+                                         counted_failures=failing,
+                                         counted_passes=int(outside.sum()) - failing))
 
     for c, (cap, fit) in zip(study.criteria, thread_map(fits, criterion_values(), threads)):
         capability[c.name], tail[c.name] = cap, fit

@@ -52,6 +52,11 @@ class Distribution:
     def cdf(self, x: np.ndarray) -> np.ndarray:  # pragma: no cover - overridden
         raise AttributeError("cdf")
 
+    def cdf_below(self, x: np.ndarray) -> np.ndarray:
+        """P(X < x): the CDF less the probability of ``x`` itself, which only a discrete set
+        gives a value."""
+        return self.cdf(x)
+
     def describe(self) -> str:  # pragma: no cover - overridden
         raise AttributeError("describe")
 
@@ -255,6 +260,55 @@ class SplitNormal(Distribution):
 
 
 @dataclass(frozen=True)
+class TruncatedSplitNormal(Distribution):
+    """:class:`SplitNormal` cut at ``[lower, upper]``: a screened part whose typical value
+    lies off the middle of its limits, each side with the spread that puts its limit at
+    ``sigmas`` sigma, so that the cut removes as much on each side (0.135 % at 3 sigma)
+    and half the units stay below the typical value. One spread for both sides, the
+    larger, put the nearer limit at 1.2 sigma of a gain of 40 .. 100 .. 250 and shifted
+    the median to 107."""
+
+    centre: float
+    sigma_low: float
+    sigma_high: float
+    lower: float
+    upper: float
+    sigmas: float = 3.0
+    kind = "truncnormal"
+
+    @property
+    def nominal(self) -> float:
+        return self.centre
+
+    @property
+    def low(self) -> float:
+        return self.lower
+
+    @property
+    def high(self) -> float:
+        return self.upper
+
+    def _cut(self) -> tuple[float, float]:
+        return (float(_split_cdf(self.centre, self.sigma_low, self.sigma_high, self.lower)),
+                float(_split_cdf(self.centre, self.sigma_low, self.sigma_high, self.upper)))
+
+    def ppf(self, u):
+        a, b = self._cut()
+        x = _split_ppf(self.centre, self.sigma_low, self.sigma_high,
+                       a + (b - a) * np.asarray(u, dtype=float))
+        return np.clip(x, self.lower, self.upper)
+
+    def cdf(self, x):
+        a, b = self._cut()
+        f = _split_cdf(self.centre, self.sigma_low, self.sigma_high, x)
+        return np.clip((f - a) / (b - a), 0.0, 1.0)
+
+    def describe(self) -> str:
+        return (f"normal about the typical value, min and max each at {self.sigmas:g} sigma, "
+                "truncated at them")
+
+
+@dataclass(frozen=True)
 class LogNormal(Distribution):
     """Lognormal between a minimum and a maximum placed at -/+ ``sigmas`` sigma of ln(x).
 
@@ -322,8 +376,12 @@ class Discrete(Distribution):
 
     @property
     def nominal(self) -> float:
-        w = np.asarray(self.weights) / np.sum(self.weights)
-        return float(self.values[int(np.argmax(w))])
+        """The most likely value; of several equally likely ones the middle one in size (the
+        lower middle of an even count), not the first listed: -20, 25 and 55 degC at equal
+        weights have 25 degC as their nominal."""
+        w = np.asarray(self.weights, dtype=float)
+        tied = np.sort(np.asarray(self.values, dtype=float)[w == w.max()])
+        return float(tied[(len(tied) - 1) // 2])
 
     @property
     def low(self) -> float:
@@ -344,6 +402,12 @@ class Discrete(Distribution):
         w = np.asarray(self.weights, dtype=float) / np.sum(self.weights)
         v = np.asarray(self.values, dtype=float)
         return np.sum(w * (x[..., None] >= v), axis=-1)
+
+    def cdf_below(self, x):
+        x = np.asarray(x, dtype=float)
+        w = np.asarray(self.weights, dtype=float) / np.sum(self.weights)
+        v = np.asarray(self.values, dtype=float)
+        return np.sum(w * (x[..., None] > v), axis=-1)
 
     def describe(self) -> str:
         return f"discrete set of {len(self.values)}"

@@ -1047,6 +1047,20 @@ def _stamp(summary: dict | None, extras: dict) -> Table:
     return Table(["item", "value"], rows, "stamp", "Reproducibility stamp")
 
 
+def capability_note(capability: dict) -> str:
+    """A sentence on the units the capability indices leave out (no finite value, failing),
+    or an empty string."""
+    left = {name: int(c.get("failing_not_finite") or 0) for name, c in capability.items()
+            if isinstance(c, dict)}
+    left = {name: k for name, k in left.items() if k}
+    if not left:
+        return ""
+    listed = ", ".join(f"{name} {format_number(k)}" for name, k in left.items())
+    return (f"Units that fail with no finite value (an infinite metric, or none in a "
+            f"runaway) are left out of the indices, which describe only the others: "
+            f"{listed}. The tail estimates count them as failures.")
+
+
 def _per_criterion_table(data: dict, caption: str) -> Table:
     return _keyed_table(data, "criterion", caption)
 
@@ -1118,6 +1132,9 @@ def _summary_blocks(summary: dict) -> list[Block]:
                               "(Pp/Ppk in SPC terms); the interval assumes normal data."))
         doc.append(Block("table", table=_per_criterion_table(summary["capability"],
                                                              "Capability per criterion")))
+        note = capability_note(summary["capability"])
+        if note:
+            doc.append(Block("note", note))
     if summary.get("tail"):
         doc.append(Block("h2", "Tail estimates (model-based extrapolation, not counted)"))
         doc.append(Block("note", "These figures extrapolate fitted distributions beyond the "

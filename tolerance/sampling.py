@@ -133,7 +133,13 @@ def condition_on_pins(parameters, correlation: np.ndarray | None, u: np.ndarray,
     moves with the pin, which is the conditional distribution of z_R given z_P = t (any text
     on the multivariate normal, e.g. Anderson, "An Introduction to Multivariate Statistical
     Analysis", theorem 2.5.1, from memory). A pin's score is Phi^-1(F(value)), at most
-    ``PIN_SCORE`` in size.
+    ``PIN_SCORE`` in size. A value of a discrete set stands for a stratum of scores,
+    Phi^-1(F(value-)) .. Phi^-1(F(value)), the values the copula maps to it: each sample
+    takes its score there from its own uniform number (a truncated normal draw), so that
+    the partners follow the conditional distribution given the value, not given one edge
+    of its stratum (the edge put the upper end of three equally likely temperatures at a
+    score of 3 and moved a partner correlated at 0.8 by 2.4 sigma instead of the 0.87 of
+    the truncated normal's mean).
 
     Parameters
     ----------
@@ -160,15 +166,23 @@ def condition_on_pins(parameters, correlation: np.ndarray | None, u: np.ndarray,
             if j not in pinned and np.any(correlation[j, pinned] != 0.0)]
     if not rest:
         return {}
-    with np.errstate(divide="ignore"):
-        t = np.array([float(special.ndtri(parameters[i].distribution.cdf(np.array(pins[n]))))
-                      for i, n in zip(pinned, pins)])
-    t = np.clip(np.nan_to_num(t, nan=0.0), -PIN_SCORE, PIN_SCORE)
+    t = np.empty((u.shape[0], len(pinned)))
+    for k, (i, n) in enumerate(zip(pinned, pins)):
+        d = parameters[i].distribution
+        top = float(d.cdf(np.array(pins[n])))
+        bottom = float(d.cdf_below(np.array(pins[n])))
+        if top > bottom:  # a discrete value: a score in its stratum, from the sample's own u
+            t[:, k] = special.ndtri(np.clip(bottom + (top - bottom) * u[:, i], 1e-15,
+                                            1 - 1e-15))
+        else:
+            with np.errstate(divide="ignore"):
+                score = float(special.ndtri(top))
+            t[:, k] = np.clip(np.nan_to_num(score, nan=0.0), -PIN_SCORE, PIN_SCORE)
     z_p = special.ndtri(np.clip(u[:, pinned], 1e-15, 1 - 1e-15))
     z_r = special.ndtri(np.clip(u[:, rest], 1e-15, 1 - 1e-15))
     gain = np.linalg.solve(correlation[np.ix_(pinned, pinned)],
                            correlation[np.ix_(pinned, rest)])  # S_PP^-1 S_PR
-    u_r = special.ndtr(z_r + (t[None, :] - z_p) @ gain)
+    u_r = special.ndtr(z_r + (t - z_p) @ gain)
     return {names[j]: np.asarray(parameters[j].distribution.ppf(u_r[:, k]), dtype=float)
             for k, j in enumerate(rest)}
 

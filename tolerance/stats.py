@@ -362,8 +362,9 @@ def _noncentrality_low(t_obs: float, df: int, confidence: float) -> float:
 
 _ASSUMPTION_GPD = (
     "Extrapolation: assumes the lower tail of the margin beyond its 5 % quantile follows a "
-    "generalized Pareto distribution and the bulk follows a normal distribution for "
-    "normal_ppm; neither is checked against the circuit physics."
+    "generalized Pareto distribution of shape 0 or above (a fitted negative shape is "
+    "taken as 0) and the bulk follows a normal distribution for normal_ppm, each limit "
+    "fitted apart; neither is checked against the circuit physics."
 )
 
 
@@ -498,44 +499,94 @@ def _ppm_text(x: float) -> str:
     return f"{x:.3g}" if x < 1e4 else f"{x:,.0f}"
 
 
-def tail_estimate(margin, confidence: float = 0.95) -> dict:
+def tail_estimate(margin, confidence: float = 0.95, *, counted_failures: int = 0,
+                  counted_passes: int = 0) -> dict:
     """Model-based failure probability of a margin metric, for rare failures.
 
     Parameters
     ----------
-    margin : array_like
+    margin : array_like, or a sequence of array_like
         Margin samples [any unit]: negative means failure (e.g. metric minus lower limit,
-        scaled). NaN entries are dropped.
+        scaled). NaN entries are dropped. A criterion with two limits gives one array per
+        limit (the distance to each): the sides are fitted apart and their probabilities
+        added, since the smaller of two distances is not normal even where the metric is.
     confidence : float, optional
         One-sided confidence level [1] of ``normal_ppm_upper``, default 0.95.
+    counted_failures, counted_passes : int, optional
+        Units outside every model [count]: a criterion's units without a finite value (a
+        metric that is infinite, or undefined in a runaway) that fail or pass it. They enter
+        as counted, the fits cover the others: ``p = (k + n p_fit) / (k + j + n)``.
 
     Returns
     -------
     dict
         ``normal_ppm`` [ppm]
-            ``1e6 * Phi(-mean / std)`` from a normal fit (std with ddof = 1).
+            ``1e6 * Phi(-mean / std)`` from a normal fit (std with ddof = 1), per side.
         ``normal_ppm_upper`` [ppm]
             Upper confidence bound on ``normal_ppm`` allowing for the sampling error of mean
-            and std (noncentral t), at ``confidence``.
+            and std (noncentral t), at ``confidence``; with two sides or counted units each
+            part's bound is taken at ``1 - (1 - confidence) / parts`` and the bounds added
+            (Bonferroni), the counted part's from Clopper-Pearson.
         ``tail_ppm`` [ppm]
             From a generalized Pareto fit (location fixed at the threshold) to the samples
             below the 5 % quantile ``u`` of the margin: ``1e6 * 0.05 * sf(u)`` of the fitted
-            distribution of the distance below ``u``. When ``u <= 0`` the observed failure
-            fraction is returned instead (no extrapolation needed). NaN with fewer than 50
-            samples.
+            distribution of the distance below ``u``. A fitted shape below 0 ends the tail
+            at a finite distance, which samples of a light tail also give (a normal's
+            exceedances fit shapes near -0.2 and would put every failure beyond 4.7 sigma
+            at 0); the shape is then taken as 0, the exponential tail with the mean
+            exceedance as its scale, which reads such a tail conservatively. When ``u <=
+            0`` the observed failure fraction is returned instead (no extrapolation
+            needed). NaN with fewer than 50 samples.
         ``method`` : str
             How ``tail_ppm`` was obtained, or why it could not be.
         ``assumption`` : str
             One sentence stating the model assumption.
         ``n`` : int
-            Samples used [count].
+            Finite samples used [count].
+        ``counted_directly`` : int
+            ``counted_failures`` [count]: failures counted, not modelled.
 
     Notes
     -----
-    Both figures are extrapolations beyond the data and are only as good as the assumed
+    Every figure is an extrapolation beyond the data and only as good as the assumed
     distribution; an observed count with :func:`clopper_pearson` is the model-free answer.
     """
     confidence = _check_confidence(confidence)
+    if isinstance(margin, (list, tuple)) and margin and np.ndim(margin[0]) == 1:
+        sides = [np.asarray(m, dtype=float) for m in margin]
+    else:
+        sides = [np.asarray(margin, dtype=float)]
+    k, j = int(counted_failures), int(counted_passes)
+    if k < 0 or j < 0:
+        raise ValueError(f"counted units must not be negative, got {k} and {j}")
+    parts = len(sides) + (1 if k + j else 0)
+    level = 1.0 - (1.0 - confidence) / parts  # Bonferroni (common practice, no source)
+    fits = [_tail_one_side(side, level) for side in sides]
+    out = dict(fits[0])
+    n = out["n"]
+    if len(fits) > 1:
+        for key in ("normal_ppm", "normal_ppm_upper", "tail_ppm"):
+            out[key] = float(sum(f[key] for f in fits))  # NaN in one side: NaN
+        out["method"] = "; ".join(f"{label}: {f['method']}" for label, f in
+                                  zip(("lower limit", "upper limit"), fits))
+        if len({f["assumption"] for f in fits}) > 1:
+            out["assumption"] = " ".join(dict.fromkeys(f["assumption"] for f in fits))
+    out["counted_directly"] = k
+    total = n + k + j
+    if k + j and total:
+        share = n / total
+        for key in ("normal_ppm", "tail_ppm"):
+            out[key] = (1e6 * k + n * out[key]) / total if n else 1e6 * k / total
+        upper = (float(stats.beta.ppf(level, k + 1, total - k)) if k < total else 1.0)
+        out["normal_ppm_upper"] = 1e6 * upper + share * out["normal_ppm_upper"] \
+            if n else 1e6 * upper
+        out["method"] += (f"; {k} failing and {j} passing units without a finite value "
+                          "counted directly, the fit weighted by the other units' share")
+    return out
+
+
+def _tail_one_side(margin: np.ndarray, confidence: float) -> dict:
+    """:func:`tail_estimate` of one one-sided margin."""
     data = _clean(margin)
     n = int(data.size)
     nan = math.nan
@@ -595,10 +646,17 @@ def tail_estimate(margin, confidence: float = 0.95) -> dict:
     if not (math.isfinite(shape) and math.isfinite(scale) and scale > 0):
         out["method"] = "not fitted: the generalized Pareto fit did not converge"
         return out
+    fitted = f"shape {shape:.3g}, scale {scale:.3g}"
+    if shape < 0.0:
+        # a light tail cannot be told from one that ends by some hundred exceedances: the
+        # exponential (shape 0, maximum-likelihood scale the mean exceedance) reads it
+        # conservatively (common practice, no source)
+        shape, scale = 0.0, float(np.mean(excess))
+        fitted += f"; shape taken as 0, scale {scale:.3g}"
     sf = float(stats.genpareto.sf(threshold, shape, loc=0.0, scale=scale))
     out["tail_ppm"] = 1e6 * _TAIL_FRACTION * sf
     out["method"] = (
         f"generalized Pareto fit to the {excess.size} samples below the 5 % quantile "
-        f"{threshold:.4g} (shape {shape:.3g}, scale {scale:.3g}), extrapolated to 0"
+        f"{threshold:.4g} ({fitted}), extrapolated to 0"
     )
     return out

@@ -374,6 +374,9 @@ class Reader:
                                             (hi - centre) / sigmas, sigmas)
                 return dist.Normal(centre, sigma, sigmas)
             if kind == "truncnormal":
+                if typ is not None and centre - lo != hi - centre:
+                    return dist.TruncatedSplitNormal(centre, (centre - lo) / sigmas,
+                                                     (hi - centre) / sigmas, lo, hi, sigmas)
                 return dist.TruncatedNormal(centre, sigma, lo, hi, sigmas)
             raise self.error("distribution", f"'{kind}' needs a list of values")
 

@@ -325,15 +325,23 @@ def root_sum_square(
 
     Notes
     -----
-    With sensitivities ``s_i = dy/dx_i`` and half-ranges ``h_i``:
+    With sensitivities ``s_i = dy/dx_i`` and each parameter's room below and above its
+    nominal, ``d_i = nominal_i - low_i`` and ``u_i = high_i - nominal_i``, the metric falls
+    by ``f_i = s_i d_i`` (``|s_i| u_i`` for a negative slope) where the parameter moves to
+    the end that lowers it, and rises by ``r_i = s_i u_i`` (``|s_i| d_i``) at the other:
 
-    * linear extreme-value band: ``nominal +- sum_i |s_i| h_i`` -- the worst case of the
-      linearised model, exact for a model that is linear over the box;
-    * RSS band: ``nominal +- sqrt(sum_i (s_i h_i)^2)``.
+    * linear extreme-value band: ``nominal - sum_i f_i .. nominal + sum_i r_i`` -- the worst
+      case of the linearised model, exact for a model that is linear over the box;
+    * RSS band: ``nominal - sqrt(sum_i f_i^2) .. nominal + sqrt(sum_i r_i^2)``.
 
-    The RSS band treats every half-range as the same multiple of the parameter's standard
-    deviation (for example 3 sigma) and the parameters as independent, so it estimates the
-    output spread at that same multiple of sigma. It is a statistical estimate, not a
+    A nominal off the middle of its range (a gain's typical value, a lognormal's median)
+    has its own room on each side; half the range on both sides put a band of a gain of
+    40 .. 100 .. 250 at -5 .. 205. With a centred nominal both forms are the familiar
+    ``nominal +- sum_i |s_i| h_i`` and ``nominal +- sqrt(sum_i (s_i h_i)^2)``.
+
+    The RSS band treats every room as the same multiple of the parameter's standard
+    deviation on that side (for example 3 sigma) and the parameters as independent, so it
+    estimates the output spread at that same multiple of sigma. It is a statistical estimate, not a
     guarantee: a fraction of real units lies outside it, more so when the distributions are
     not normal, the model is not linear, or the half-ranges correspond to different sigma
     multiples.
@@ -345,22 +353,25 @@ def root_sum_square(
     sens, nominal, metrics, evaluations = _central_differences(
         model, bounds, metrics, rel_step
     )
-    h = np.array([b.half_range for b in bounds])
+    down = np.array([b.nominal - b.low for b in bounds])
+    up = np.array([b.high - b.nominal for b in bounds])
+    fixed = np.array([b.fixed for b in bounds], dtype=bool)
     result = {}
     for m in metrics:
         s = sens[m]
-        contrib = s * h
-        # Fixed parameters have h = 0 and contribute nothing, even if their slope is NaN.
-        contrib = np.where(h > 0, contrib, 0.0)
-        rss = float(np.sqrt(np.sum(contrib**2)))
-        lin = float(np.sum(np.abs(contrib)))
+        # Fixed parameters have no room and contribute nothing, even if their slope is NaN.
+        with np.errstate(invalid="ignore"):
+            fall = np.where(fixed, 0.0, np.where(s >= 0, s * down, -s * up))
+            rise = np.where(fixed, 0.0, np.where(s >= 0, s * up, -s * down))
+        fall = np.where(np.isnan(s) & ~fixed, np.nan, fall)
+        rise = np.where(np.isnan(s) & ~fixed, np.nan, rise)
         y0 = nominal[m]
         result[m] = {
             "nominal": y0,
-            "rss_low": y0 - rss,
-            "rss_high": y0 + rss,
-            "linear_low": y0 - lin,
-            "linear_high": y0 + lin,
+            "rss_low": y0 - float(np.sqrt(np.sum(fall**2))),
+            "rss_high": y0 + float(np.sqrt(np.sum(rise**2))),
+            "linear_low": y0 - float(np.sum(fall)),
+            "linear_high": y0 + float(np.sum(rise)),
             "sensitivities": {b.name: float(v) for b, v in zip(bounds, s)},
             "evaluations": int(evaluations),
         }
