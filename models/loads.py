@@ -220,8 +220,8 @@ class ResistorState(LoadState):
         return _arr(current) * self.resistance
 
     def metrics(self, v_on, i_on):
-        """``load_power`` [W]: ``v i`` in the on-state (with a PWM drive the rating, of the
-        average, is met at or below it)."""
+        """``load_power`` [W]: ``v i`` in the on-state (with a PWM drive the stage's
+        evaluation replaces it by the period's average, what the rating is about)."""
         return {"load_power": _arr(v_on) * _arr(i_on)}
 
 
@@ -564,7 +564,8 @@ class ResistorLoad(LoadSpec):
 
     kind = "resistor"
     METRICS = {"load_power": MetricInfo("W", "dissipation of the resistive load in the "
-                                             "on-state")}
+                                             "on-state, averaged over the period with a "
+                                             "PWM drive")}
 
     def __init__(self, parameters, tempco: float, power_rating: float | None):
         super().__init__(parameters)

@@ -90,6 +90,18 @@ def test_histogram_axis_uses_engineering_units(result):
     assert fmt(0.5, 0) == "500 mV" and fmt(2.0, 0) == "2 V"
 
 
+def test_histogram_of_values_equal_but_for_rounding_is_one_bar(result, tmp_path):
+    # a clamp's peak of 2.4999998999970083 V and 2.49999989999701 V in the units of a run:
+    # numpy.histogram_bin_edges(bins="auto") cannot cut 1e-15 V into finite bins and raised,
+    # which lost the run's report
+    df = result.samples[["y"]].copy()
+    df["y"] = np.where(np.arange(len(df)) % 2, 2.4999998999970083, 2.49999989999701)
+    fig = plots.histogram(df, "y", result.summary)
+    heights = [p.get_height() for p in fig.axes[0].patches if p.get_gid() == "histogram"]
+    assert heights == [len(df)]
+    assert plots.save(fig, tmp_path / "y.png").read_bytes()[:4] == b"\x89PNG"
+
+
 def test_histogram_of_a_margin_beyond_any_prefix_saves_cleanly(result, tmp_path):
     # common practice, no source: a dimensionless margin of 2e301 (a limit typed as 1e-300)
     # once wrote its tick labels in three hundred digits, and the layout collapsed with a

@@ -237,6 +237,32 @@ def test_plots_drawn_by_two_workers_are_byte_identical(folder, tmp_path):
         report.render_plots([], 0)
 
 
+def test_a_figure_that_cannot_be_drawn_is_named_and_the_report_is_written(folder, tmp_path,
+                                                                          monkeypatch,
+                                                                          capsys):
+    # common practice, no source: a histogram that numpy could not bin (values equal but for
+    # rounding) raised through the report, which a run then lost with a traceback; a figure
+    # that fails now costs that figure alone, named in the report and on stderr
+    from tolerance import plots
+
+    copy = tmp_path / "broken"
+    shutil.copytree(folder, copy)
+    shutil.rmtree(copy / "plots")
+
+    def refuse(*args, **kwargs):
+        raise ValueError("Too many bins for data range")
+
+    monkeypatch.setattr(plots, "ecdf_overlay", refuse, raising=False)
+    monkeypatch.setattr(plots, "histogram", refuse)
+    report.write_reports(copy)
+    md = (copy / "report.md").read_text(encoding="utf-8")
+    assert "Not drawn (the figures' data defeated the plotting" in md
+    assert "ValueError: Too many bins for data range" in md
+    assert "warning: figure not drawn:" in capsys.readouterr().err
+    drawn = sorted(p.name for p in (copy / "plots").glob("*.png"))
+    assert drawn and len(drawn) < len(list((folder / "plots").glob("*.png")))
+
+
 def test_the_report_module_leaves_the_plotting_stack_to_whoever_draws(tmp_path):
     # with workers drawing the plots the parent process never needs matplotlib or seaborn
     # (about 3 s of imports); checked in a fresh interpreter

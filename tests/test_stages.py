@@ -289,7 +289,9 @@ def reference_single(stage, samples, k):
     xe = _stepped(edge, v_high, [0.0, 0.0, 0.0])[-1][1]
     ib, ic, _, _ = dev(xe[1], xe[1], xe[2])
     vc_edge = xe[1] + rc * ic
-    out["drive_margin"] = ic / i_load(vc_edge)[0]
+    # over the larger of the load's demand at the edge and its on-state current (the usual
+    # overdrive factor of a saturated unit; stages.drive_demand)
+    out["drive_margin"] = ic / max(i_load(vc_edge)[0], i_on)
 
     x = _stepped(on_eqs, v_low, rest)[-1][1]
     out["off_current"] = dev(x[1], x[2], x[3])[1]
@@ -595,7 +597,7 @@ def reference_pair(stage, samples, k, kind):
     else:
         ib2e, ic2e = circ.device(xe, 1)
         i_edge = -(ib2e + ic2e) + (xe[circ.index["c"]] - xe[circ.index["n1"]]) * g2
-    res["drive_margin"] = i_edge / circ.current_into(xe, "c")
+    res["drive_margin"] = i_edge / max(circ.current_into(xe, "c"), i_on)
 
     xo = _stepped(make, v_low, rest)[-1][1]
     if kind == "darlington":
@@ -1092,38 +1094,68 @@ def test_a_working_stage_stays_off():
     assert df["pass.stays_off"].all() and (df["off_fraction"] < 1e-3).all()
 
 
-def test_lamp_inrush_energy_integrates_to_the_operating_point():
-    # first-order filament warm-up R(t) = R_f - (R_f - R_cold) exp(-t / tau) with the output
-    # holding the current at its capability I while V_CE = V_S - I R(t) stays above the
-    # on-voltage, i.e. until I R(t1) = V_L, the lamp's voltage in the on state; checked by
-    # numerical quadrature (scipy.integrate.quad, scipy.optimize.brentq)
+def test_lamp_inrush_energy_follows_the_filaments_energy_balance():
+    # The filament as one thermal mass (common practice, no source): heat C T with R =
+    # R_f (T / T_f)^1.2 (tungsten, from memory) and a loss P_f (T / T_f)^(1.2 m), m = (1 + p)
+    # / (1 - p) from the hot law I ~ V^p, exact at the operating point (V_L, I_L). C is set
+    # so that switched onto V_L the filament makes 1 - 1/e of its resistance rise in one
+    # thermal time constant (scipy.optimize.brentq on scipy.integrate.solve_ivp); then held
+    # at the capability I, the output absorbs the integral of (V_S - I R) I until I R = V_L.
+    # The earlier estimate kept the free-running warm-up whatever the current: 0.24 J
+    # against 0.38 J at 9.3 A, and at a tenth of the inrush about a ninth of the energy.
     from types import SimpleNamespace
 
     from scipy import integrate
 
     from tolerance.models.stages.evaluation import lamp_inrush_energy
 
-    r_cold, tau, vs = 0.55, 0.06, 14.4
-    lamp = SimpleNamespace(cold_resistance=np.full(4, r_cold),
-                           thermal_time_constant=np.full(4, tau))
-    v_lamp = np.array([12.7, 12.7, 13.9, 12.7])  # a Darlington's 1.7 V on-voltage; a single's
-    i_lamp = np.array([1.80, 1.80, 1.95, 1.80])
-    cap = np.array([1.824, 3.0, 2.5, 30.0])  # just above, well above, above; carries it all
-    e = lamp_inrush_energy(lamp, np.full(4, vs), cap, v_lamp, i_lamp)
-    for k in range(3):
-        r_f = v_lamp[k] / i_lamp[k]
+    r_cold, tau, p, vs = 0.5665, 0.05, 0.55, 13.0
+    lamp = SimpleNamespace(cold_resistance=np.full(5, r_cold),
+                           thermal_time_constant=np.full(5, tau), exponent=p)
+    v_lamp = np.array([12.405, 12.405, 11.3, 12.405, 12.405])
+    i_lamp = np.array([1.782, 1.782, 1.70, 1.782, 1.782])
+    cap = np.array([9.27, 2.35, 2.0, 1.79, 40.0])  # limited (strongly to barely); carries all
+    e = lamp_inrush_energy(lamp, np.full(5, vs), cap, v_lamp, i_lamp)
+    g, m = 1.2, (1 + p) / (1 - p)
+    for k in range(4):
+        r_f, p_f = v_lamp[k] / i_lamp[k], v_lamp[k] * i_lamp[k]
+        t_f = 2500.0  # any scale: only T / T_f enters
+        t_cold = t_f * (r_cold / r_f) ** (1 / g)
 
         def resistance(t):
-            return r_f - (r_f - r_cold) * math.exp(-t / tau)
+            return r_f * (t / t_f) ** g
 
-        t1 = optimize.brentq(lambda t: cap[k] * resistance(t) - v_lamp[k], 0.0, 50 * tau,
-                             xtol=1e-15)
-        ref, _ = integrate.quad(lambda t: (vs - cap[k] * resistance(t)) * cap[k], 0.0, t1,
-                                epsabs=0, epsrel=1e-12)
-        assert e[k] == pytest.approx(ref, rel=1e-9)
-    assert e[3] == 0.0  # 30 A carries the 26 A cold demand: the output stays saturated
+        def warm(heat, power):
+            def rate(_, y):
+                return [(power(resistance(y[0])) - p_f * (y[0] / t_f) ** (g * m)) / heat]
+            return rate
+
+        r63 = r_cold + (1 - math.exp(-1)) * (r_f - r_cold)
+
+        def t63(heat):
+            hit = lambda t, y: resistance(y[0]) - r63  # noqa: E731
+            hit.terminal = True
+            sol = integrate.solve_ivp(warm(heat, lambda r: v_lamp[k] ** 2 / r), [0, 100],
+                                      [t_cold], events=hit, rtol=1e-10, atol=1e-9)
+            return sol.t_events[0][0]
+
+        heat = optimize.brentq(lambda c: math.log(t63(c) / tau), 1e-7, 1.0, xtol=1e-16,
+                               rtol=1e-10)
+        t_end = t_f * (v_lamp[k] / cap[k] / r_f) ** (1 / g)
+
+        def held(t, y):
+            r = resistance(y[0])
+            return [warm(heat, lambda r: cap[k] ** 2 * r)(t, y)[0], (vs - cap[k] * r) * cap[k]]
+
+        done = lambda t, y: y[0] - t_end  # noqa: E731
+        done.terminal = True
+        sol = integrate.solve_ivp(held, [0, 100], [t_cold, 0.0], events=done, rtol=1e-10,
+                                  atol=1e-12)
+        assert e[k] == pytest.approx(sol.y_events[0][0][1], rel=1e-5)
+    assert e[1] > 5 * e[0]  # the weakly held filament takes far longer
+    assert e[4] == 0.0  # 40 A carries the 23 A cold demand: the output stays saturated
     # a stage that cannot carry even its operating current never leaves the linear region
-    below = lamp_inrush_energy(lamp, np.full(4, vs), np.full(4, 1.7), v_lamp, i_lamp)
+    below = lamp_inrush_energy(lamp, np.full(5, vs), np.full(5, 1.7), v_lamp, i_lamp)
     assert np.isinf(below[:2]).all()
 
 
@@ -1132,7 +1164,10 @@ def test_a_saturated_beacon_unit_has_a_finite_inrush_energy():
     # saturated (drive margin above 1) but its operating resistance (7.04 ohm, the lamp on
     # 12.7 V) lies above the rated-voltage R_hot (6.86 ohm): ending the warm-up at V_CE = 0
     # and R_hot called it "never leaves the linear region", an infinite energy that failed
-    # pulse_energy; it is about 2 J (a hand integration of the same first-order law)
+    # pulse_energy. It is finite: some 18 J by the filament's energy balance (the output
+    # holds about 2 A, which heats the cold filament with a hundredth of what its voltage
+    # would, so it warms for most of a second; test above), 2 J by the earlier estimate that
+    # let it warm at its free-running rate
     study = load_study(Path(__file__).resolve().parent.parent / "studies"
                        / "beacon_lamp_darlington.toml")
     values = {p.name: np.array([p.nominal]) for p in study.parameters}
@@ -1141,7 +1176,7 @@ def test_a_saturated_beacon_unit_has_a_finite_inrush_energy():
                    "Q1.hfe": np.array([100.0]), "Q2.hfe": np.array([32.0])})
     res = study.stage.evaluate(values)
     assert res["converged"].all() and res["drive_margin"][0] > 1.0
-    assert 1.0 < res["inrush_energy"][0] < 3.0
+    assert 10.0 < res["inrush_energy"][0] < 30.0
 
 
 _HARD_DRIVEN_PAIR = """
@@ -1259,3 +1294,151 @@ def test_a_lamp_drivers_inrush_current_follows_the_filaments_demand():
     assert (df["inrush_margin"] > 1).all()
     assert res.summary["criteria"]["collector_current_driver"]["failures"] == 0
     assert (df["peak_current_driver"] < 0.2).all()
+
+
+LOW_SUPPLY = """
+stage = "{stage}"
+[supply]
+voltage = "{supply}"
+[drive]
+high = "5 V"
+[parts.RB]
+value = {{values = ["47R", "100R", "220R", "470R", "1k", "2k2"]}}
+{pair}
+[parts.Q1]
+device = "{q1}"
+hfe = {hfe1}
+icbo = "10 nA"
+[load]
+kind = "resistor"
+resistance = "10R"
+[thermal]
+self_heating = false
+"""
+
+
+@pytest.mark.parametrize("stage, supply, pair, q1, hfe1", [
+    ("single", "2.5 V", "", "medium_power_npn", 100),
+    ("darlington", "1.2 V", '[parts.Q2]\ndevice = "medium_power_npn"\nhfe = 100\nicbo = "10 nA"',
+     "small_signal_npn", 200),
+])
+def test_drive_margin_of_a_hard_driven_low_supply_stage_is_its_overdrive(stage, supply, pair,
+                                                                          q1, hfe1):
+    # A 10 ohm load on a low rail driven hard from 5 V: the edge of saturation's collector
+    # voltage (V_BE and the collector resistance's drop at a capability of amperes) reached
+    # the supply, where the load's demand is zero or negative: the 47 ohm single stage read
+    # -126 and failed saturation at 0.03 V across its junctions, and the Darlington at 1.2 V
+    # read -15. A saturated unit's margin is its capability over its on-state current, the
+    # usual overdrive factor (common practice, no source): positive, falling as RB rises
+    # (from 220 ohm: below it the pair's capability at the edge bends over with the current).
+    from tolerance.api import run
+    from tolerance.study import load_study as load_text
+
+    text = LOW_SUPPLY.format(stage=stage, supply=supply, pair=pair, q1=q1, hfe1=hfe1)
+    df = run(load_text("low.toml", text=text), samples=60, seed=2).samples
+    by_rb = df.groupby("RB")["drive_margin"].agg(["min", "max"])
+    assert len(by_rb) == 6 and np.allclose(by_rb["min"], by_rb["max"])
+    margins = by_rb["min"].to_numpy()
+    assert (margins > 0).all() and (np.diff(margins[2:]) < 0).all()
+    strong = df["RB"] <= 1000.0
+    assert (df["drive_margin"][strong] > 1.5).all() and df["pass.saturation"][strong].all()
+
+
+MONOLITHIC = """
+stage = "darlington"
+[ambient]
+temperature = {{min = "-30 degC", max = "85 degC"}}
+[supply]
+voltage = {{min = "11 V", max = "14.5 V"}}
+[drive]
+high = {{min = "3.0 V", max = "3.3 V"}}
+source_resistance = "30 ohm"
+[parts.RB]
+value = "1k0"
+{extra}
+[parts.Q2]
+monolithic = true
+device = "monolithic_darlington"
+{mount}
+[load]
+kind = "resistor"
+resistance = "9.6 ohm"
+"""
+
+
+def test_a_monolithic_die_on_a_heatsink_is_rated_once_by_its_package():
+    # Both roles of a monolithic pair carry the die's dissipation; the driver's role kept the
+    # free-air rating (derated on the ambient) while the output's was the case rating on its
+    # heatsink: 0.44 to 1.05 against 0.035, and 7 in 2,000 units failed power_rating_driver.
+    # One die, one rating (JESD51 thermal network, datasheet practice for a mounted part),
+    # and the hot spot names the part the study lists, the output.
+    from tolerance.api import run
+    from tolerance.study import load_study as load_text
+
+    text = MONOLITHIC.format(extra="", mount='heatsink = "5 K/W"')
+    df = run(load_text("mono.toml", text=text), samples=400, seed=23).samples
+    np.testing.assert_allclose(df["power_stress_driver"], df["power_stress_output"],
+                               rtol=1e-12)
+    assert df["power_stress_output"].max() < 0.1
+    assert df["pass.power_rating_driver"].all()
+    assert (df["hot_spot"] == 1.0).all()  # Q2, not Q1 (the order of the hot-spot codes)
+
+
+def test_monolithic_internal_resistors_heat_the_die_not_the_external_ones():
+    # An external 1 kohm beside the die's internal base-emitter resistor dissipates V_BE^2 /
+    # 1 kohm (Ohm's law); lumped with the internal one it read about nine times that. The
+    # internal resistors' power is the die's: the supply's power still balances (first law).
+    from tolerance.api import run
+    from tolerance.study import load_study as load_text
+
+    text = MONOLITHIC.format(extra='[parts.RBE1]\nvalue = "10k"\n[parts.RBE2]\nvalue = "1k0"',
+                             mount="")
+    study = load_text("mono.toml", text=text)
+    values = {p.name: np.array([p.nominal] * 3) for p in study.parameters}
+    values["ambient.temperature"] = np.array([243.15, 298.15, 358.15])
+    res = study.stage.dc(values)
+    on = res["power_on"]
+    v_be2 = np.sqrt(on["resistors"]["RBE2"] * 1000.0)
+    assert ((v_be2 > 0.5) & (v_be2 < 0.9)).all()  # a junction's voltage over 1 kohm
+    parts = sum(on["devices"].values()) + sum(on["resistors"].values())
+    np.testing.assert_allclose(on["supply"] + on["drive"],
+                               on["load"] + parts + on["source"], rtol=1e-9)
+
+
+def test_a_junction_above_its_limit_at_a_hot_ambient_is_the_hot_spot():
+    # With the ambient above T_j max less the margin the allowed rise is negative, and the
+    # ratio (T_j - T_a) / (T_j,lim - T_a) came out negative: units failing tj_max showed a
+    # hot-spot margin of +0.64 to +0.81. Any junction above its limit is overstressed
+    # (common practice, no source): margin below 0.
+    from tolerance.api import run
+    from tolerance.study import load_study as load_text
+
+    text = ('stage = "single"\n[ambient]\ntemperature = {min = "100 degC", max = "140 degC"}\n'
+            '[supply]\nvoltage = "12 V"\n[drive]\nhigh = "5 V"\n[parts.RB]\nvalue = "1k0"\n'
+            '[parts.Q1]\ndevice = "medium_power_npn"\n[load]\nkind = "resistor"\n'
+            'resistance = "240 ohm"\n[thermal]\ntj_margin = "30 K"\n')
+    df = run(load_text("hot.toml", text=text), samples=200, seed=8).samples
+    failing = ~df["pass.tj_max_output"]
+    assert 50 < failing.sum() < 200
+    assert (df["hot_spot_margin"][failing] < 0).all()
+    assert (df["hot_spot_margin"][~failing] > 0).all()
+
+
+def test_a_pwm_heater_is_rated_on_its_average_power():
+    # A 12 ohm, 4 W heater at 30 % duty from 11 to 13 V: 10 to 14 W while on, 3.0 to 4.2 W
+    # averaged over the period (D V^2 / R less the switch's drop), what the rating is about
+    # (a resistor's rating is thermal; its time constant spans many periods at 1 kHz); the
+    # on-state power failed every unit.
+    from tolerance.api import run
+    from tolerance.study import load_study as load_text
+
+    text = ('stage = "single"\n[supply]\nvoltage = {min = "11 V", max = "13 V"}\n[drive]\n'
+            'high = "5 V"\nsource_resistance = "20 ohm"\nfrequency = "1 kHz"\nduty = 0.3\n'
+            '[parts.RB]\nvalue = "47R"\n[parts.Q1]\ndevice = "medium_power_npn"\n[load]\n'
+            'kind = "resistor"\nresistance = "12 ohm"\npower_rating = "4 W"\n')
+    df = run(load_text("pwm.toml", text=text), samples=200, seed=8).samples
+    v = df["load_voltage"]
+    np.testing.assert_allclose(df["load_power"], 0.3 * v * df["load_current"], rtol=1e-3)
+    assert (v * df["load_current"] > 8.0).all()  # the on-state's power, twice the rating
+    assert df["pass.load_rating"].mean() > 0.5
+    assert (df["pass.load_rating"] == (df["load_power"] <= 4.0)).all()

@@ -570,6 +570,42 @@ def test_a_relay_releases_on_its_coil_current_not_the_switch_current():
     assert (slow["release_time"] > 3 * df["release_time"]).all()
 
 
+def test_an_unclamped_coil_releases_once_the_switch_current_is_down():
+    # Without a clamp the switch avalanches and carries the winding's current: the storage
+    # time, which ends at 90 % of the switch current, already holds the winding's first tenth
+    # of its decay, and the rest runs against V_(BR)CEO less the supply, from 0.9 i0 to
+    # 0.1 i0 (first-order RL circuit, any circuits textbook). Counting the first tenth twice
+    # made the release 8 % longer than the transient's own turn-off delay, which follows the
+    # same current; a zener whose voltage on top of the supply reaches the breakdown is
+    # never reached, and the switch avalanches as if there were none.
+    from pathlib import Path
+
+    from tolerance.api import load_study, run
+    from tolerance.study import load_study as load_text
+
+    path = Path(__file__).resolve().parent.parent / "studies" / "unclamped_valve_single.toml"
+    study = load_study(path)
+    df = run(study, samples=24, seed=5).samples
+    breakdown = study.stage.thermal.breakdown["Q1"]
+
+    def decay(df):
+        # hot winding: IEC 60028 copper, 0.00393/K from 20 degC (the study adds no rise)
+        r = df["load.resistance"] * (1 + 0.00393 * (df["ambient.temperature"] - 293.15))
+        hold = (breakdown - df["supply.voltage"]) / r
+        i0 = df["coil_current"]
+        return df["load.inductance"] / r * np.log((0.9 * i0 + hold) / (0.1 * i0 + hold))
+
+    assert_allclose(df["release_time"] - df["storage_time"], decay(df), rtol=1e-9)
+    # the transient's turn-off delay follows the same current down to 10 %; the closed form
+    # holds the switch at V_(BR)CEO, the transient a little above it (its avalanche slope)
+    assert_allclose(df["release_time"], df["turn_off_delay"], rtol=0.05)
+    # a zener far above the breakdown: the same release as no clamp at all
+    text = path.read_text(encoding="utf-8").replace('clamp = "none"',
+                                                    'clamp = "zener"\nclamp_voltage = "60 V"')
+    high = run(load_text("zener.toml", text=text + "\n"), samples=24, seed=5).samples
+    assert_allclose(high["release_time"] - high["storage_time"], decay(high), rtol=1e-9)
+
+
 def test_transient_dc_states_of_a_dim_string_and_a_starved_base_converge():
     # two units of the shipped PWM dimmer found by a mutation campaign, whose transient's
     # DC end states did not converge, so the whole unit counted as not converged: a supply

@@ -93,9 +93,12 @@ def _bin_edges(x: np.ndarray, max_bins: int = 80) -> np.ndarray:
     if x.size == 0:
         return np.array([0.0, 1.0])
     lo, hi = float(x.min()), float(x.max())
-    if hi <= lo:
-        half = abs(lo) * 1e-6 if lo != 0 else 1e-12
-        return np.array([lo - half, lo + half])
+    # values equal but for rounding (a clamp's 2.4999999 V in every unit, spread over 1e-15
+    # V) are one bar: numpy cannot cut a few ulps into finite bins and raised
+    if hi - lo <= 1e-9 * max(abs(lo), abs(hi)):
+        mid = 0.5 * (lo + hi)
+        half = abs(mid) * 1e-6 if mid != 0 else 1e-12
+        return np.array([mid - half, mid + half])
     edges = np.histogram_bin_edges(x, bins="auto")
     if edges.size - 1 > max_bins:
         edges = np.linspace(lo, hi, max_bins + 1)

@@ -16,6 +16,7 @@ import html
 import json
 import math
 import re
+import sys
 import threading
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -833,15 +834,28 @@ def _join_warm_up() -> None:
         _warm_up = None
 
 
-def _render(task: PlotTask) -> Path:
+#: key of :func:`build_document`'s ``section_notes`` for the figures that could not be drawn
+NOT_DRAWN = "plots"
+
+
+def _render(task: PlotTask) -> Path | str:
+    """The saved figure's path, or why it could not be drawn: one figure that fails (data
+    no plot foresaw) costs that figure, named in the report, not the whole report."""
     # imported here: with workers drawing, the parent never pays for matplotlib and seaborn
     from tolerance import plots
 
-    return plots.save(getattr(plots, task.draw)(*task.args, **task.kwargs), task.path)
+    try:
+        return plots.save(getattr(plots, task.draw)(*task.args, **task.kwargs), task.path)
+    except (ValueError, TypeError, ArithmeticError, IndexError) as exc:
+        import matplotlib.pyplot as plt
+
+        plt.close("all")
+        return f"{task.path.name}: {type(exc).__name__}: {exc}"
 
 
-def render_plots(tasks: list[PlotTask], jobs: int = 1) -> list[Path]:
+def render_plots(tasks: list[PlotTask], jobs: int = 1) -> list[Path | str]:
     """Draw and save every task's figure, in ``jobs`` joblib workers (loky) when more than one.
+    Each entry is the figure's path, or a line saying why it could not be drawn.
 
     Each figure depends only on its own task, and matplotlib's Agg rendering is the same in
     every process, so the PNG files are byte-identical whatever the number of workers
@@ -1200,8 +1214,11 @@ def build_document(summary: dict | None, extras: dict,
                 doc.append(Block("note", section_notes[fname]))
             doc.extend(analysis_blocks(fname, extras[fname]))
 
-    if figures:
+    not_drawn = (section_notes or {}).get(NOT_DRAWN)
+    if figures or not_drawn:
         doc.append(Block("h2", "Plots"))
+        if not_drawn:
+            doc.append(Block("note", not_drawn))
         for rel, data, caption in figures:
             doc.append(Block("figure", caption, path=rel, data=data))
 
@@ -1407,8 +1424,15 @@ def write_reports(folder, jobs: int = 1) -> dict:
     if waveforms is not None:
         made += _waveform_plots(waveforms, plot_dir)
     paths = render_plots(made, jobs)
-    figures = [(f"{PLOTS_DIR}/{p.name}", p.read_bytes(), t.caption) for p, t in zip(paths, made)]
+    figures = [(f"{PLOTS_DIR}/{p.name}", p.read_bytes(), t.caption)
+               for p, t in zip(paths, made) if isinstance(p, Path)]
     notes = {}
+    failed = [p for p in paths if not isinstance(p, Path)]
+    if failed:
+        notes[NOT_DRAWN] = ("Not drawn (the figures' data defeated the plotting; the tables "
+                            "above hold the same figures): " + "; ".join(failed) + ".")
+        for line in failed:
+            print(f"warning: figure not drawn: {line}", file=sys.stderr)
     if "whatif.json" in extras and not (folder / WHATIF_SAMPLES).is_file():
         notes["whatif.json"] = (f"{WHATIF_SAMPLES} is missing from this folder, so the overlay "
                                 "plots of the two runs are not drawn; run the what-if again to "

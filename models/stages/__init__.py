@@ -9,9 +9,11 @@ chunk, four DC problems with the batched Newton solver of :mod:`tolerance.models
 ``edge``
     the same drive with the (driver) transistor held at the edge of saturation, intrinsic
     V_BC = 0, and the load removed: the collector current the drive can sustain there, which
-    ``drive_margin`` divides by the load's demand at that collector voltage. Because both
-    operating points coincide when the on-state sits exactly at the edge, ``drive_margin > 1``
-    is the same statement as "the on-state is saturated";
+    ``drive_margin`` divides by the load's current (:func:`drive_demand`): the on-state
+    current of a saturated unit (the usual overdrive factor), the load's demand at the
+    edge's collector voltage of one that is not. Because both operating points coincide when
+    the on-state sits exactly at the edge, ``drive_margin > 1`` is the same statement as "the
+    on-state is saturated";
 ``off``
     the drive at its low level: the off-state leakage through the load;
 ``threshold``
@@ -73,7 +75,9 @@ COMMON_METRICS: dict[str, MetricInfo] = {
     "base_current": MetricInfo("A", "base current of the (driver) transistor, drive high"),
     "drive_current": MetricInfo("A", "current the drive output sources, drive high"),
     "drive_margin": MetricInfo("1", "collector current sustainable at the edge of saturation "
-                                    "over the load's demand; > 1 means fully on"),
+                                    "over the load's current (on-state where saturated: the "
+                                    "overdrive factor; else its demand at the edge's "
+                                    "voltage); > 1 means fully on"),
     "power_output": MetricInfo("W", "dissipation of the output transistor, drive high"),
     "off_current": MetricInfo("A", "load current, drive low (leakage)"),
     "off_margin": MetricInfo("V", "input voltage giving 1 % of the on-state load current, "
@@ -81,6 +85,24 @@ COMMON_METRICS: dict[str, MetricInfo] = {
     "off_fraction": MetricInfo("1", "load current with the drive low over the load current "
                                     "with the drive high"),
 }
+
+
+def drive_demand(at_edge, on_state):
+    """The load current ``drive_margin`` divides the edge-of-saturation capability by [A]:
+    the larger of the load's demand at the edge's collector voltage and its on-state
+    current.
+
+    A saturated unit sits below the edge's voltage and draws more than its demand there: its
+    on-state current, so that the margin is the usual overdrive factor (capability over the
+    current carried). A unit in its active region sits above that voltage, where the
+    transistor limits its current; the load's demand at the edge says how much it would
+    draw, and the margin how far the drive falls short. The two meet at the edge, where both
+    equal the capability. The demand at the edge alone went through zero where the edge's
+    voltage (its V_BE and the collector resistance's drop at a capability of amperes)
+    reached the supply: a 2.5 V stage driven hard read -126 and failed saturation at 0.03 V
+    across its junctions, and one just below read 177 against an overdrive of 30.
+    """
+    return np.maximum(at_edge, on_state)
 
 
 def saturation_criterion() -> Criterion:
@@ -509,15 +531,22 @@ class PairStage:
     def _powers(self, samples, v_in, g_in, g_be1, g_be2, state, vs):
         """Dissipation of every part and the source powers of one solved state [W].
 
-        A monolithic pair's internal resistors count with the external ones they parallel.
+        A monolithic pair's internal resistors heat its die: their power counts with the
+        output's (the die's), not with the external resistors they parallel, whose ratings
+        see only their own V^2 / R (lumped, a 1 kohm beside an internal 120 ohm read nine
+        times its dissipation).
         """
         r_s = self.drive.levels(samples)[2]
         i_in = (v_in - state["v_b1"]) * g_in
         v_be1, v_be2 = self.resistor_voltages(state)
+        t = np.asarray(samples[self.env.temperature], dtype=float)
+        g_ext1 = self.rbe1.conductance(samples, t) if self.internal_rbe1 is not None else g_be1
+        g_ext2 = self.rbe2.conductance(samples, t) if self.internal_rbe2 is not None else g_be2
+        internal = v_be1 ** 2 * (g_be1 - g_ext1) + v_be2 ** 2 * (g_be2 - g_ext2)
         return {
-            "devices": {"Q1": state["p1"], "Q2": state["p2"]},
-            "resistors": {"RB": i_in ** 2 * (1.0 / g_in - r_s), "RBE1": v_be1 ** 2 * g_be1,
-                          "RBE2": v_be2 ** 2 * g_be2},
+            "devices": {"Q1": state["p1"], "Q2": state["p2"] + internal},
+            "resistors": {"RB": i_in ** 2 * (1.0 / g_in - r_s), "RBE1": v_be1 ** 2 * g_ext1,
+                          "RBE2": v_be2 ** 2 * g_ext2},
             "source": i_in ** 2 * r_s,
             "load": (vs - state["v_out"]) * state["i_load"],
             "supply": vs * state["i_load"],
@@ -575,7 +604,7 @@ class PairStage:
         cols = [0, 2, 3]
         r_edge = solve_with_restarts(edge, [x_on[:, cols]] + [g[:, cols] for g in starts], **opts)
         s_edge = edge.state(np.nan_to_num(r_edge.x))
-        demand = load.current(vs - s_edge["v_out"])[0]
+        demand = drive_demand(load.current(vs - s_edge["v_out"])[0], s_on["i_load"])
 
         off = make_off(v_low, "on")
         off_starts = self.guesses("off", q1_off, q2_off, vs, demand_guess, g_be2,

@@ -28,6 +28,7 @@ from tolerance.models.parts import read_transistor
 from tolerance.models.stages import (
     device_parameters,
     COMMON_METRICS,
+    drive_demand,
     THRESHOLD_FRACTION,
     Subsettable,
     junction_limit,
@@ -252,7 +253,7 @@ class SingleStage:
         r_edge = solve_with_restarts(edge, [x_on[:, :1], vbe0[:, None],
                                             np.full((n, 1), pol * 0.6)], **opts)
         ce, oe, _, _ = edge.state(np.nan_to_num(r_edge.x))
-        demand = load.current(vs - oe.collector)[0]
+        demand = pol * drive_demand(pol * load.current(vs - oe.collector)[0], pol * i_on)
 
         # off-state: from cut-off, else from the on-state (a hot unit may conduct)
         off = SingleSystem(q_off, load, vs, v_low, g_in, g_pd, "on")
