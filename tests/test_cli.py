@@ -162,6 +162,13 @@ def test_bad_option_values_exit_2(tmp_path, capsys, write_study):
                  ["sensitivity", "--sobol-samples", "1"],
                  ["sensitivity", "--sobol-samples", "32"],
                  ["sensitivity", str(fixed), "--sobol-samples", "64"],
+                 # found by probing: 2^40 rows asked for 208 TiB and ended in a traceback
+                 # (after making the folder); the command line took any sample count the
+                 # study file refuses (a run of 10^9 + 1 wrote 3.4 GB in 8 minutes)
+                 ["sensitivity", "--sobol-samples", str(2**40)],
+                 ["sensitivity", "--sobol-samples", str(2**19)],
+                 ["run", "--samples", str(10**9 + 1)], ["whatif", "--samples", "2e9"],
+                 ["run", "--chunk-size", str(10**7 + 1)],
                  ["run", ""], ["report", ""], ["report", str(tmp_path / "none")],
                  ["report", str(fixed)]):
         with pytest.raises(SystemExit) as exc:
@@ -317,6 +324,12 @@ def test_default_output_folder_is_never_overwritten(tmp_path, monkeypatch, capsy
     assert main(["run", "--samples", "200", "--quiet"]) == 0
     assert (tmp_path / "results" / "demo" / "summary.json").is_file()
     assert (tmp_path / "results" / "demo-2" / "summary.json").is_file()
+    # common practice, no source: --resume without --out continues the last of them (the
+    # folder an interrupt left), where it started a third run afresh in demo-3
+    stamp = (tmp_path / "results" / "demo-2" / "summary.json").stat().st_mtime_ns
+    assert main(["run", "--samples", "200", "--quiet", "--resume"]) == 0
+    assert not (tmp_path / "results" / "demo-3").exists()
+    assert (tmp_path / "results" / "demo-2" / "summary.json").stat().st_mtime_ns != stamp
 
 
 
@@ -381,3 +394,24 @@ def test_messages_point_to_what_the_command_can_do(tmp_path, capsys):
     assert main(["check", str(path)]) == 2
     err = capsys.readouterr().err
     assert "parts.Q2.device" in err and "add monolithic = true" in err
+
+
+def test_an_interrupted_analysis_leaves_no_empty_folder(tmp_path, capsys, monkeypatch,
+                                                        write_study):
+    # found by probing: a what-if, worst case, sensitivity or choice stopped before its first
+    # file left an empty --out folder, which the next command took for a result folder
+    import tolerance.whatif
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(tolerance.whatif, "whatif", interrupted)
+    out = tmp_path / "w"
+    study = str(write_study(FIXED_DEMO.replace('hfe = "100"', 'hfe = {min = 50, max = 200}')))
+    assert main(["whatif", study, "--pin", "Q1.hfe=min", "--out", str(out)]) == 130
+    assert "nothing is kept" in capsys.readouterr().err
+    assert not out.exists()
+    # a folder that was there before stays
+    out.mkdir()
+    assert main(["whatif", study, "--pin", "Q1.hfe=min", "--out", str(out)]) == 130
+    assert out.is_dir()

@@ -567,3 +567,15 @@ def test_parse_series_range_rejections(text, match):
     # format defined by the project brief
     with pytest.raises(UnitError, match=match):
         parse_series_range(text, "ohm")
+
+
+def test_digits_of_other_scripts_are_refused():
+    # found by probing: Python's float() reads Arabic-Indic digits, so "١٢ V" was 12 V; a
+    # quantity is written with 0-9 (common practice, no source), the micro and ohm signs
+    # stay units
+    with pytest.raises(UnitError, match="digits are written 0-9"):
+        parse_quantity("\u0661\u0662 V", "V")
+    with pytest.raises(UnitError, match="digits are written 0-9"):
+        parse_quantity("4\u0667k", "ohm")
+    assert parse_quantity("4.7 \u00b5V", "V") == pytest.approx(4.7e-6)
+    assert parse_quantity("4.7 k\u03a9", "ohm") == pytest.approx(4700.0)

@@ -193,18 +193,23 @@ def _prepare_folder(out: Path, force: bool, resume: bool, resumable: bool = True
             raise UsageError(f"{out}: already holds results; choose another --out,{resume_hint} "
                              "or --force to replace it")
         if force and not resume:
-            for name in entries:
-                child = out / name
-                if child.is_dir() and not child.is_symlink():
-                    shutil.rmtree(child)
-                else:
-                    child.unlink()
+            _empty(out, entries)
         out.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
         detail = (exc.strerror if exc.strerror and str(exc.filename) == str(out)
                   else os_error_text(exc))
         raise UsageError(f"{out}: cannot be used as the result folder ({detail}); choose "
                          "another --out") from None
+
+
+def _empty(out: Path, entries) -> None:
+    """Remove the results ``entries`` of ``out`` (the folder itself stays, and its lock)."""
+    for name in entries:
+        child = out / name
+        if child.is_dir() and not child.is_symlink():
+            shutil.rmtree(child)
+        else:
+            child.unlink()
 
 
 def write_json(path: Path, data: dict) -> None:
@@ -340,14 +345,35 @@ def _run_into(study, spec, out, made, chunk, jobs, progress, resume, force, back
     from tolerance.summary import summarize
 
     folder = out / SAMPLES_DIR
-    if resume and not force:  # with --force another run's chunks are replaced
+    if resume:
         differs = runner.other_run(folder, spec)
-        if differs is not None:
+        if differs is not None and not force:
             raise UsageError(f"{out}: holds the samples of another run ({differs}); --resume "
                              "continues the same run only: choose another --out, or --force "
                              "to replace it")
+        if differs is not None:
+            # --force replaces another run whole: its summary, reports and chunks went on
+            # beside this run's first chunks, and an interrupt left a folder of two studies
+            try:
+                _empty(out, sorted(p.name for p in out.iterdir()))
+            except OSError as exc:
+                raise UsageError(f"{out}: cannot be emptied for the new run "
+                                 f"({os_error_text(exc)}); choose another --out") from None
     if resume and stop_rule is None:
         chunk = runner.resumable_chunk_size(folder, spec) or chunk
+    elif resume:
+        # --target-ci cuts its chunks at every CHECK_EVERY samples; a run planned without it
+        # whose chunks cross those marks would be computed again on the new plan (its
+        # finished chunks rewritten or deleted), not continued
+        planned = runner.resumable_chunk_size(folder, spec)
+        if planned is not None:
+            plain = runner.chunk_ranges(spec.samples, planned)
+            if plain != runner.chunk_ranges(spec.samples, planned, runner.CHECK_EVERY):
+                raise UsageError(
+                    f"{out}: holds a run planned in chunks of {planned:,} samples, which "
+                    f"--target-ci would cut at every {runner.CHECK_EVERY:,} and compute "
+                    "again; continue it with --resume alone, or start it again with --force")
+            chunk = planned
     try:
         runner.execute(spec, chunk, jobs, folder, progress, resume, backend, scheduler,
                        stop_rule=stop_rule)

@@ -32,14 +32,27 @@ class _Parser(argparse.ArgumentParser):
         self.exit(2, f"{self.prog}: error: {message}\n")
 
 
-def _positive_int(text: str) -> int:
+def _positive_int(text: str, most: int | None = None) -> int:
     try:
         value = int(text.replace("_", ""))
     except ValueError:
         raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
     if value < 1:
         raise argparse.ArgumentTypeError(f"expected at least 1, got {value}")
+    if most is not None and value > most:
+        raise argparse.ArgumentTypeError(f"expected at most {most:,}, got {value:,}")
     return value
+
+
+def _sample_count(text: str) -> int:
+    """``--samples``: as ``[run] samples`` of a study, at most 10^9 (a run beyond that
+    writes terabytes of chunks; the option took any number the file refuses)."""
+    return _positive_int(text, 10**9)
+
+
+def _chunk_count(text: str) -> int:
+    """``--chunk-size``: as ``[run] chunk_size``, at most 10^7."""
+    return _positive_int(text, 10**7)
 
 
 def _seed(text: str) -> int:
@@ -54,11 +67,11 @@ def _seed(text: str) -> int:
 
 def _add_run_options(p: argparse.ArgumentParser, out_help: str) -> None:
     p.add_argument("study", nargs="?", help="study file (TOML); none: the built-in demo")
-    p.add_argument("--samples", type=_positive_int, help="number of Monte Carlo samples")
+    p.add_argument("--samples", type=_sample_count, help="number of Monte Carlo samples")
     p.add_argument("--seed", type=_seed, help="random seed (same seed, same results)")
     p.add_argument("--sampler", choices=SAMPLERS, help="sampling design")
     p.add_argument("--jobs", type=_positive_int, default=1, help="parallel workers")
-    p.add_argument("--chunk-size", type=_positive_int,
+    p.add_argument("--chunk-size", type=_chunk_count,
                    help="the most samples per chunk (several workers get equal chunks)")
     p.add_argument("--out", help=out_help)
     p.add_argument("--force", action="store_true", help="replace an existing result folder")
@@ -78,10 +91,18 @@ def _sobol_rows(text: str) -> int:
     from tolerance.sensitivity import MIN_SOBOL_N
 
     n = _positive_int(text)
-    if n & (n - 1) or n < MIN_SOBOL_N:
+    if n & (n - 1) or n < MIN_SOBOL_N or n > MAX_SOBOL_N:
         raise argparse.ArgumentTypeError(
-            f"expected a power of two of at least {MIN_SOBOL_N} (e.g. 1024), got {n}")
+            f"expected a power of two from {MIN_SOBOL_N} to {MAX_SOBOL_N:,} (e.g. 1024), "
+            f"got {n:,}")
     return n
+
+
+#: the largest ``--sobol-samples``: its design holds N (d + 2) points of d numbers beside
+#: the d N of its B-in-A columns, some 3 GB at 2^18 and 26 parameters
+#: (sensitivity.sobol_analysis), and costs N (d + 2) evaluations of the stage, 7.3 million
+#: there; 2^40 asked for 208 TiB and ended in a traceback
+MAX_SOBOL_N = 2**18
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -153,17 +174,21 @@ def _load(path):
     return load_study(path)
 
 
-def _default_out(study, suffix: str = "") -> Path:
+def _default_out(study, suffix: str = "", resume: bool = False) -> Path:
+    """``results/<study><suffix>``, or the first of ``-2``, ``-3``, ... that is new or empty;
+    with ``resume`` the last one that holds something, the run an interrupt left (a resumed
+    run without ``--out`` started afresh in the next free folder)."""
     from tolerance.api import BUILT_IN
 
     # the study file's own name, spaces and all ("my heater.toml" -> results/my heater)
     stem = Path(study.path.removeprefix(BUILT_IN)).stem + suffix
     base = Path("results") / stem
-    candidate, k = base, 2
+    candidate, k, last = base, 2, None
     while candidate.exists() and any(candidate.iterdir()):
+        last = candidate
         candidate = base.with_name(f"{stem}-{k}")
         k += 1
-    return candidate
+    return last if resume and last is not None else candidate
 
 
 def _fmt(value, unit):
@@ -235,7 +260,7 @@ def print_summary(summary: dict, study, out) -> None:
 
 def cmd_run(args) -> int:
     study = _load(args.study)
-    out = Path(args.out) if args.out else _default_out(study)
+    out = Path(args.out) if args.out else _default_out(study, resume=args.resume)
     if args.scheduler and args.backend != "dask":
         raise UsageError("--scheduler needs --backend dask")
     if args.waveforms is not None:
@@ -295,6 +320,7 @@ def _analysis_out(args, study, suffix: str) -> Path:
     from tolerance.api import _prepare_folder
 
     out = Path(args.out) if args.out else _default_out(study, suffix)
+    args.made = not out.exists()
     _prepare_folder(out, args.force, False, resumable=False)
     args.written = out  # an interrupt clears its temporary files
     return out
@@ -578,6 +604,17 @@ def _drop_temporaries(folder) -> None:
             pass
 
 
+def _drop_if_empty(folder, made: bool) -> None:
+    """Remove a result folder this command made and an interrupt left empty (an analysis
+    stopped before its first file), so that no empty folder is taken for a result."""
+    if folder is None or not made:
+        return
+    try:
+        Path(folder).rmdir()  # only an empty folder goes
+    except OSError:
+        pass
+
+
 def _terminate(signum, frame):
     raise Terminated
 
@@ -592,6 +629,8 @@ def _command(args) -> int:
     except KeyboardInterrupt as exc:
         terminated = isinstance(exc, Terminated)
         _drop_temporaries(getattr(args, "written", None))
+        if args.command != "run":  # a run's folder is kept for --resume, even empty
+            _drop_if_empty(getattr(args, "written", None), getattr(args, "made", False))
         # only a run keeps its chunks to continue from; an analysis starts again
         kept = ("finished chunks are kept (continue with --resume)" if args.command == "run"
                 else "nothing is kept to continue from; run the command again")

@@ -12,6 +12,7 @@ reports.
 from __future__ import annotations
 
 import base64
+import errno
 import html
 import json
 import math
@@ -750,7 +751,24 @@ def _read_json(path: Path) -> dict:
     if missing:
         raise DamagedFile(path, f"lacks {', '.join(missing)}: not a result file of this "
                                 f"tool; {mend}")
+    # the summary's counts and tables as the run writes them ("samples": "many" was
+    # printed as "194048 of many samples")
+    kinds = REQUIRED_TYPES.get(path.name, {})
+    wrong = [f"{k} ({kind.__name__} expected)" for k, kind in kinds.items()
+             if k in data and (not isinstance(data[k], kind) or isinstance(data[k], bool))]
+    if wrong:
+        raise DamagedFile(path, f"holds {', '.join(wrong)} of another kind: not as this tool "
+                                f"writes it; {mend}")
     return data
+
+
+#: the types of the required keys a command writes
+REQUIRED_TYPES = {
+    SUMMARY_FILE: {"study": str, "seed": int, "samples": int, "criteria": dict,
+                   "metrics": dict, "verdict": str},
+    "whatif.json": {"criteria": dict, "metrics": dict},
+    "choose.json": {"candidates": list},
+}
 
 
 def _safe_name(text: str) -> str:
@@ -1411,6 +1429,13 @@ def write_reports(folder, jobs: int = 1) -> dict:
     if summary is not None and not runner.chunk_files(folder / SAMPLES_DIR):
         raise FileNotFoundError(f"{folder / SAMPLES_DIR}: no sample files next to "
                                 f"{SUMMARY_FILE}; run the study again")
+    if summary is not None:
+        wrong = runner.summary_mismatch(folder / SAMPLES_DIR, summary)
+        if wrong is not None:
+            raise runner.UnreadableChunk(
+                errno.EINVAL, f"does not hold the samples {SUMMARY_FILE} describes: {wrong}; "
+                "continue the run with --resume, or run it again with --force",
+                str(folder / SAMPLES_DIR))
     plot_dir = folder / PLOTS_DIR
     plot_dir.mkdir(exist_ok=True)
     _remove_stale_plots(plot_dir)

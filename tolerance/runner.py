@@ -234,7 +234,9 @@ def _write_chunk(columns: dict[str, np.ndarray], path: Path, signature: dict, st
     meta = {b"tolerance": json.dumps({**signature, "start": start, "stop": stop}).encode()}
     table = table.replace_schema_metadata(meta)
     with atomic_path(path) as tmp:
-        pq.write_table(table, tmp)
+        # a CRC per page: a flipped bit in a chunk is an error when it is read, not a
+        # silently different sample (a footer stamp says only which run wrote the file)
+        pq.write_table(table, tmp, write_page_checksum=True)
 
 
 def _chunk_stamp(path: Path) -> dict | None:
@@ -251,8 +253,16 @@ def _chunk_stamp(path: Path) -> dict | None:
 
 
 def chunk_is_complete(path: Path, signature: dict, start: int, stop: int) -> bool:
-    """True when ``path`` holds this chunk of this very run (same study, seed, plan)."""
-    return _chunk_stamp(path) == {**signature, "start": start, "stop": stop}
+    """True when ``path`` holds this chunk of this very run (same study, seed, plan), whole
+    and readable: a file whose footer is intact but whose data is damaged is computed again
+    (kept, it failed every later read, and every resume kept it)."""
+    if _chunk_stamp(path) != {**signature, "start": start, "stop": stop}:
+        return False
+    try:
+        with pq.ParquetFile(path, page_checksum_verification=True) as f:
+            return f.read(use_threads=False).num_rows == stop - start
+    except (OSError, ValueError, pa.ArrowException):
+        return False
 
 
 def run_chunk_to_file(spec: RunSpec, index: int, start: int, stop: int, folder: str) -> int:
@@ -467,6 +477,39 @@ class _backend:
         return False
 
 
+def summary_mismatch(folder: Path, summary: dict) -> str | None:
+    """Why the chunk files in ``folder`` do not hold the samples ``summary`` (a parsed
+    summary.json) describes, or None: a chunk of another run (another seed, study, sampler
+    or plan: an interrupted ``--resume --force`` leaves the old summary beside the new
+    chunks), or samples no chunk holds (a file removed). A report drawn from them showed
+    the summary's figures over plots of other samples."""
+    want = {"study_hash": summary.get("study_hash"), "seed": summary.get("seed"),
+            "samples": summary.get("planned_samples", summary.get("samples")),
+            "sampler": summary.get("sampler")}
+    spans = []
+    for path in chunk_files(folder):
+        stamp = _chunk_stamp(path)
+        if stamp is None:
+            continue  # unreadable: the read names it and how to mend it
+        differ = [k for k, v in want.items() if v is not None and k in stamp and stamp[k] != v]
+        if differ:
+            told = "; ".join(_OTHER.get(k) or f"{k} {stamp[k]}, not {want[k]}" for k in differ)
+            return f"{path.name} holds the samples of another run ({told})"
+        if isinstance(stamp.get("start"), int) and isinstance(stamp.get("stop"), int):
+            spans.append((stamp["start"], stamp["stop"]))
+    total = summary.get("samples")
+    if not spans or not isinstance(total, int):
+        return None
+    reached = 0
+    for start, stop in sorted(spans):
+        if start > reached:
+            return f"no chunk holds samples {reached} to {start - 1} (a file removed?)"
+        reached = max(reached, stop)
+    if reached < total:
+        return f"no chunk holds samples {reached} to {total - 1} (a file removed?)"
+    return None
+
+
 def chunk_files(folder: Path) -> list[Path]:
     """The run's chunk files, in order: ``part-NNNNNN.parquet`` only (a copy such as
     ``part-000003 (copy).parquet`` is no chunk and is never read)."""
@@ -477,7 +520,7 @@ def chunk_files(folder: Path) -> list[Path]:
 def _chunk_column(path: Path, name: str, metadata=None) -> np.ndarray:
     """One column of one chunk file, the file opened for this read only (see
     :class:`ChunkColumns`)."""
-    with pq.ParquetFile(path, metadata=metadata) as f:
+    with pq.ParquetFile(path, metadata=metadata, page_checksum_verification=True) as f:
         return _read_column(f, name)
 
 
@@ -496,7 +539,8 @@ def _readable(path: Path):
     try:
         yield
     except (OSError, KeyError, pa.ArrowException) as exc:
-        raise UnreadableChunk(errno.EIO, f"cannot be read ({exc}); continue the run with "
+        detail = " ".join(str(exc).split())  # one line: Arrow's own messages span several
+        raise UnreadableChunk(errno.EIO, f"cannot be read ({detail}); continue the run with "
                               "--resume to compute this chunk again", str(path)) from None
 
 
@@ -536,7 +580,8 @@ class ChunkColumns:
                     parts.append(_chunk_column(path, name, self._metadata[k]))
                     continue
                 if self._open[k] is None:
-                    self._open[k] = pq.ParquetFile(path, metadata=self._metadata[k])
+                    self._open[k] = pq.ParquetFile(path, metadata=self._metadata[k],
+                                                   page_checksum_verification=True)
                 parts.append(_read_column(self._open[k], name))
         return np.concatenate(parts) if parts else np.empty(0)
 
@@ -561,5 +606,6 @@ def read_samples(folder: Path) -> pd.DataFrame:
     frames = []
     for path in chunk_files(folder):
         with _readable(path):
-            frames.append(pq.read_table(path).to_pandas())
+            with pq.ParquetFile(path, page_checksum_verification=True) as f:
+                frames.append(f.read(use_threads=False).to_pandas())
     return pd.concat(frames, ignore_index=True)

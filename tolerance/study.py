@@ -657,7 +657,9 @@ def build_study(data: dict, file: str, text: str) -> Study:
     stage_name = top.string("stage", choices=names)
     title = top.string("title", default=Path(file).stem)
     # the title heads every report, plot and table: one printable line of a sensible length
-    if len(title) > MAX_TITLE or any(ord(ch) < 32 or ord(ch) == 127 for ch in title):
+    # (str.isprintable: no control, format or separator character other than the space,
+    # such as a right-to-left override that reverses what follows it in every report)
+    if len(title) > MAX_TITLE or not title.isprintable():
         raise top.error("title", f"expected one line of at most {MAX_TITLE} characters "
                                  "without control characters (a longer text goes in "
                                  "description)")

@@ -173,6 +173,12 @@ def _parse_text(text: str, unit: str) -> float:
     stripped = text.strip()
     if not stripped:
         raise _reject(text, unit, "empty")
+    if not stripped.isascii():
+        # Python's float() reads other scripts' digits ("١٢ V" was 12 V) and their spaces;
+        # a quantity is written in ASCII (the micro sign and ohm sign are units, read below)
+        digits = [ch for ch in stripped if ch.isdigit() and not ch.isascii()]
+        if digits:
+            raise _reject(text, unit, f"digits are written 0-9 (found {digits[0]!r})")
 
     if unit == "ohm":
         rkm = _RKM_RE.fullmatch(stripped)
