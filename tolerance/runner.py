@@ -486,11 +486,12 @@ def summary_mismatch(folder: Path, summary: dict) -> str | None:
     want = {"study_hash": summary.get("study_hash"), "seed": summary.get("seed"),
             "samples": summary.get("planned_samples", summary.get("samples")),
             "sampler": summary.get("sampler")}
-    spans = []
+    spans, unreadable = [], False
     for path in chunk_files(folder):
         stamp = _chunk_stamp(path)
         if stamp is None:
-            continue  # unreadable: the read names it and how to mend it
+            unreadable = True  # the read names it and how to mend it
+            continue
         differ = [k for k, v in want.items() if v is not None and k in stamp and stamp[k] != v]
         if differ:
             told = "; ".join(_OTHER.get(k) or f"{k} {stamp[k]}, not {want[k]}" for k in differ)
@@ -498,7 +499,7 @@ def summary_mismatch(folder: Path, summary: dict) -> str | None:
         if isinstance(stamp.get("start"), int) and isinstance(stamp.get("stop"), int):
             spans.append((stamp["start"], stamp["stop"]))
     total = summary.get("samples")
-    if not spans or not isinstance(total, int):
+    if unreadable or not spans or not isinstance(total, int):
         return None
     reached = 0
     for start, stop in sorted(spans):
