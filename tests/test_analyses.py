@@ -85,7 +85,8 @@ def test_a_pin_at_a_uniform_end_counts_as_a_three_sigma_score(write_study):
     assert_allclose(got.mean(), -1.5, atol=0.03)
 
 
-def test_a_pin_on_a_discrete_value_draws_its_partners_given_that_value(write_study):
+@pytest.mark.parametrize("listed", ['"-1 V", "1 V", "3 V"', '"3 V", "-1 V", "1 V"'])
+def test_a_pin_on_a_discrete_value_draws_its_partners_given_that_value(write_study, listed):
     # x1 takes -1, 1 or 3 V with equal weights, correlated at 0.8 with x2 = N(1, 0.1). The
     # copula maps the scores below Phi^-1(1/3) = -0.431 to -1 V and those above 0.431 to 3 V;
     # given x1 = 3 V the partner's score has mean 0.8 E[Z | Z > 0.431] = 0.8 * 1.091 = 0.873
@@ -96,7 +97,9 @@ def test_a_pin_on_a_discrete_value_draws_its_partners_given_that_value(write_stu
     from tolerance.whatif import whatif
 
     corr = '[[correlation]]\nparameters = ["x1", "x2"]\ncoefficient = 0.8\n'
-    discrete = '{values = ["-1 V", "1 V", "3 V"]}'
+    # (values listed out of order drew by their listing, the pin by their size: the review
+    # found the partner moved the other way)
+    discrete = '{values = [' + listed + ']}'
     study = load_study(write_study(LINEAR.format(x1=discrete) + corr))
     edge = sps.norm.ppf(2 / 3)
     mean_top = sps.truncnorm(edge, np.inf).mean()

@@ -330,6 +330,14 @@ def test_default_output_folder_is_never_overwritten(tmp_path, monkeypatch, capsy
     assert main(["run", "--samples", "200", "--quiet", "--resume"]) == 0
     assert not (tmp_path / "results" / "demo-3").exists()
     assert (tmp_path / "results" / "demo-2" / "summary.json").stat().st_mtime_ns != stamp
+    # an interrupt keeps even an empty folder: that one is the run to continue, not the
+    # finished run before it; and --force never empties a default folder
+    (tmp_path / "results" / "demo-3").mkdir()
+    assert main(["run", "--samples", "200", "--quiet", "--resume", "--force"]) == 2
+    assert "--resume --force needs --out" in capsys.readouterr().err
+    assert main(["run", "--samples", "300", "--quiet", "--resume"]) == 0
+    assert (tmp_path / "results" / "demo-3" / "summary.json").is_file()
+    assert (tmp_path / "results" / "demo-2" / "summary.json").stat().st_mtime_ns != stamp
 
 
 

@@ -796,6 +796,33 @@ def test_resume_with_target_ci_keeps_or_refuses_the_runs_plan(write_study, tmp_p
     assert _cli_in_process(["run", study, "--out", fits, "--resume", "--target-ci", "0.4",
                             "--quiet"], capsys)[0] in (0, 1)
     assert (fits / "samples.parquet" / "part-000000.parquet").stat().st_mtime_ns == kept
+    # an interrupted --target-ci run of its own plan (chunks of 7,000 cut at 32,768)
+    # continues with the same options: the review found it refused
+    cut = tmp_path / "cut"
+    assert _cli_in_process(["run", study, "--out", cut, "--target-ci", "1e-9", "--quiet"],
+                           capsys)[0] in (0, 1)
+    parts = sorted((cut / "samples.parquet").glob("part-*.parquet"))
+    assert len(parts) == 7  # 0, 7000, ..., 28000, 32768, 35000
+    parts[-1].unlink()
+    kept = parts[0].stat().st_mtime_ns
+    assert _cli_in_process(["run", study, "--out", cut, "--resume", "--target-ci", "1e-9",
+                            "--quiet"], capsys)[0] in (0, 1)
+    assert parts[0].stat().st_mtime_ns == kept and parts[-1].is_file()
+
+
+def test_report_reads_an_early_stopped_run_of_a_summary_without_its_plan(write_study,
+                                                                        tmp_path, capsys):
+    # summaries written before planned_samples existed count the samples a --target-ci run
+    # stopped at while its chunks carry the plan's count: the review found report refusing
+    # such a complete folder as "another run"
+    study = write_study(LINEAR.format(samples=40000, chunk=7000))
+    out = tmp_path / "r"
+    assert _cli_in_process(["run", study, "--out", out, "--target-ci", "0.4", "--quiet"],
+                           capsys)[0] in (0, 1)
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["samples"] == 32768 and summary.pop("planned_samples") == 40000
+    (out / "summary.json").write_text(json.dumps(summary))
+    assert _cli_in_process(["report", out], capsys)[0] == 0
 
 
 def test_report_refuses_chunks_that_are_not_the_summarys_samples(write_study, tmp_path,
@@ -1041,5 +1068,6 @@ def test_a_title_that_is_no_heading_is_refused(write_study, title):
     text = LINEAR.format(samples=10, chunk=10).replace(
         'stage = "linear_test"', f'stage = "linear_test"\ntitle = "{title}"')
     load_study(write_study(text.replace(title, "x" * 200)))  # the longest one allowed
+    load_study(write_study(text.replace(title, "12\u00a0V heater")))  # a no-break space
     with pytest.raises(StudyError, match=r"title: expected one line of at most 200"):
         load_study(write_study(text))

@@ -406,6 +406,20 @@ def test_failure_driver_p_values_of_a_few_failures_are_not_zero(failures, n):
         assert top["p_value"] == pytest.approx(float(ref.pvalue), rel=1e-6)
 
 
+@pytest.mark.parametrize("m", [2, 5])
+def test_ks_p_value_at_d_one_of_equal_groups_counts_both_arrangements(m):
+    # all failures above every pass, or all below: two arrangements for equal group sizes
+    # too, 2 / C(2m, m) (scipy.stats.ks_2samp(method="exact"): 1/3 for two against two)
+    from math import comb
+
+    from tolerance.sensitivity import _ks_p_value
+
+    x = np.arange(2 * m, dtype=float)
+    ref = stats.ks_2samp(x[m:], x[:m], method="exact").pvalue
+    assert _ks_p_value(1.0, m, m) == pytest.approx(2 / comb(2 * m, m), rel=1e-12)
+    assert _ks_p_value(1.0, m, m) == pytest.approx(float(ref), rel=1e-9)
+
+
 def test_sobol_refuses_a_design_too_small_to_mean_anything():
     # N = 2 gave S1 = 3.4 and ST = 9.6 without a word, N = 1 a bootstrap ValueError
     from tolerance.sensitivity import MIN_SOBOL_N

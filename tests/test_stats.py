@@ -328,6 +328,9 @@ def test_tail_estimate_counts_units_without_a_finite_value():
     # units passing with no finite value dilute the model's part
     diluted = tail_estimate(x, counted_passes=100)
     assert diluted["normal_ppm"] == pytest.approx(0.9 * fit["normal_ppm"], rel=1e-12)
+    # and only dilute: no counted part joins the bound (one passing unit added 184 ppm)
+    assert diluted["normal_ppm_upper"] == pytest.approx(0.9 * fit["normal_ppm_upper"],
+                                                        rel=1e-12)
     with pytest.raises(ValueError, match="must not be negative"):
         tail_estimate(x, counted_failures=-1)
 

@@ -367,8 +367,7 @@ def _run_into(study, spec, out, made, chunk, jobs, progress, resume, force, back
         # finished chunks rewritten or deleted), not continued
         planned = runner.resumable_chunk_size(folder, spec)
         if planned is not None:
-            plain = runner.chunk_ranges(spec.samples, planned)
-            if plain != runner.chunk_ranges(spec.samples, planned, runner.CHECK_EVERY):
+            if not runner.chunks_fit_plan(folder, spec, planned, runner.CHECK_EVERY):
                 raise UsageError(
                     f"{out}: holds a run planned in chunks of {planned:,} samples, which "
                     f"--target-ci would cut at every {runner.CHECK_EVERY:,} and compute "

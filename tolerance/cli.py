@@ -176,8 +176,9 @@ def _load(path):
 
 def _default_out(study, suffix: str = "", resume: bool = False) -> Path:
     """``results/<study><suffix>``, or the first of ``-2``, ``-3``, ... that is new or empty;
-    with ``resume`` the last one that holds something, the run an interrupt left (a resumed
-    run without ``--out`` started afresh in the next free folder)."""
+    with ``resume`` the newest of them: that first free one where it exists (an interrupt
+    keeps even an empty folder), else the last that holds something (a resumed run without
+    ``--out`` started afresh in the next free folder)."""
     from tolerance.api import BUILT_IN
 
     # the study file's own name, spaces and all ("my heater.toml" -> results/my heater)
@@ -188,7 +189,9 @@ def _default_out(study, suffix: str = "", resume: bool = False) -> Path:
         last = candidate
         candidate = base.with_name(f"{stem}-{k}")
         k += 1
-    return last if resume and last is not None else candidate
+    if resume and not candidate.exists() and last is not None:
+        return last
+    return candidate
 
 
 def _fmt(value, unit):
@@ -260,6 +263,10 @@ def print_summary(summary: dict, study, out) -> None:
 
 def cmd_run(args) -> int:
     study = _load(args.study)
+    if args.resume and args.force and not args.out:
+        # a default folder is never replaced: --force names the folder it may empty
+        raise UsageError("--resume --force needs --out (the default folders are never "
+                         "replaced)")
     out = Path(args.out) if args.out else _default_out(study, resume=args.resume)
     if args.scheduler and args.backend != "dask":
         raise UsageError("--scheduler needs --backend dask")

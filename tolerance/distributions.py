@@ -368,11 +368,19 @@ class LogNormal(Distribution):
 
 @dataclass(frozen=True)
 class Discrete(Distribution):
-    """A finite set of values with weights (corners, temperature profiles, bins)."""
+    """A finite set of values with weights (corners, temperature profiles, bins), kept in
+    ascending order of value: the inverse CDF then maps low uniform numbers to low values,
+    as the CDF and the copula's scores assume (values listed out of order gave a pinned
+    value's partners the conditional of another value's stratum, in the other direction)."""
 
     values: tuple[float, ...]
     weights: tuple[float, ...]
     kind = "discrete"
+
+    def __post_init__(self):
+        order = sorted(range(len(self.values)), key=lambda k: self.values[k])
+        object.__setattr__(self, "values", tuple(self.values[k] for k in order))
+        object.__setattr__(self, "weights", tuple(self.weights[k] for k in order))
 
     @property
     def nominal(self) -> float:

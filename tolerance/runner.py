@@ -142,6 +142,23 @@ def resumable_chunk_size(folder: Path, spec: RunSpec) -> int | None:
     return stop
 
 
+def chunks_fit_plan(folder: Path, spec: RunSpec, chunk_size: int, align: int | None) -> bool:
+    """True when every chunk of this very run in ``folder`` lies where the plan of
+    ``chunk_size`` (cut at every ``align`` samples) puts it: a run planned that way, such as
+    an interrupted ``--target-ci`` run, is continued, one planned without the cuts is not."""
+    plan = {i: (s, e) for i, s, e in chunk_ranges(spec.samples, chunk_size, align)}
+    for path in chunk_files(folder):
+        stored = _chunk_stamp(path)
+        if stored is None:
+            continue  # unreadable: computed again
+        start, stop = stored.pop("start", None), stored.pop("stop", None)
+        if stored != spec.signature:
+            continue  # another run's: other_run refused it, or --force replaced it
+        if plan.get(int(path.stem[len(CHUNK_PREFIX):])) != (start, stop):
+            return False
+    return True
+
+
 #: how a difference of the signature's entries is told when a resumed run is refused
 _OTHER = {"study_hash": "another version of the study", "overrides": "other pinned values",
           "code": "another version of the tool (its results are not mixed with this one's)"}
@@ -483,9 +500,10 @@ def summary_mismatch(folder: Path, summary: dict) -> str | None:
     or plan: an interrupted ``--resume --force`` leaves the old summary beside the new
     chunks), or samples no chunk holds (a file removed). A report drawn from them showed
     the summary's figures over plots of other samples."""
+    # (a summary without planned_samples, written before it was, may count the samples of
+    # a --target-ci run that stopped early, its chunks the plan's: no count compared then)
     want = {"study_hash": summary.get("study_hash"), "seed": summary.get("seed"),
-            "samples": summary.get("planned_samples", summary.get("samples")),
-            "sampler": summary.get("sampler")}
+            "samples": summary.get("planned_samples"), "sampler": summary.get("sampler")}
     spans, unreadable = [], False
     for path in chunk_files(folder):
         stamp = _chunk_stamp(path)

@@ -680,12 +680,13 @@ def _ks_p_value(d: float, n_fail: int, n_pass: int) -> float:
     At ``d = 1`` (every failure beyond every pass) that form gives 0 when the failures are
     few (an effective size of 1 or 2, whose statistic cannot exceed 1); the exact value is
     the chance that the ``m`` failures are the ``m`` largest or smallest of the ``m + n``
-    units, ``2 / C(m + n, m)`` (at most 1; exchangeability, from memory; equal group sizes
-    count once): one failure among 20,000 units gives 1e-4, not 0."""
+    units, ``2 / C(m + n, m)`` (at most 1; exchangeability, from memory; two arrangements
+    for equal group sizes too, as scipy.stats.ks_2samp's exact method gives: 1/3 for two
+    against two): one failure among 20,000 units gives 1e-4, not 0."""
     m, k = sorted([float(n_fail), float(n_pass)], reverse=True)
     if d >= 1.0:
         ways = (math.lgamma(m + k + 1) - math.lgamma(m + 1) - math.lgamma(k + 1))
-        return float(min(1.0, (1.0 if m == k else 2.0) * math.exp(-ways)))
+        return float(min(1.0, 2.0 * math.exp(-ways)))
     return float(np.clip(stats.kstwo.sf(d, np.round(m * k / (m + k))), 0.0, 1.0))
 
 

@@ -559,7 +559,7 @@ def tail_estimate(margin, confidence: float = 0.95, *, counted_failures: int = 0
     k, j = int(counted_failures), int(counted_passes)
     if k < 0 or j < 0:
         raise ValueError(f"counted units must not be negative, got {k} and {j}")
-    parts = len(sides) + (1 if k + j else 0)
+    parts = len(sides) + (1 if k else 0)  # passes without a value only dilute the fit
     level = 1.0 - (1.0 - confidence) / parts  # Bonferroni (common practice, no source)
     fits = [_tail_one_side(side, level) for side in sides]
     out = dict(fits[0])
@@ -577,7 +577,8 @@ def tail_estimate(margin, confidence: float = 0.95, *, counted_failures: int = 0
         share = n / total
         for key in ("normal_ppm", "tail_ppm"):
             out[key] = (1e6 * k + n * out[key]) / total if n else 1e6 * k / total
-        upper = (float(stats.beta.ppf(level, k + 1, total - k)) if k < total else 1.0)
+        upper = (0.0 if k == 0 else
+                 float(stats.beta.ppf(level, k + 1, total - k)) if k < total else 1.0)
         out["normal_ppm_upper"] = 1e6 * upper + share * out["normal_ppm_upper"] \
             if n else 1e6 * upper
         out["method"] += (f"; {k} failing and {j} passing units without a finite value "

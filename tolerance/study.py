@@ -16,6 +16,7 @@ import hashlib
 import itertools
 import math
 import tomllib
+import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -599,6 +600,11 @@ class Study:
 ENGINE_KEYS = ("stage", "title", "description", "run", "limits", "correlation")
 
 
+#: Unicode categories a title may not hold: control, format, surrogate, private-use and
+#: unassigned characters, line and paragraph separators (the Unicode standard's general
+#: categories, from memory)
+_NOT_IN_A_TITLE = frozenset({"Cc", "Cf", "Cs", "Co", "Cn", "Zl", "Zp"})
+
 #: the longest title (common practice, no source: a heading of one line)
 MAX_TITLE = 200
 #: the largest study file read (common practice, no source: a study is a page or two)
@@ -657,12 +663,14 @@ def build_study(data: dict, file: str, text: str) -> Study:
     stage_name = top.string("stage", choices=names)
     title = top.string("title", default=Path(file).stem)
     # the title heads every report, plot and table: one printable line of a sensible length
-    # (str.isprintable: no control, format or separator character other than the space,
-    # such as a right-to-left override that reverses what follows it in every report)
-    if len(title) > MAX_TITLE or not title.isprintable():
+    # (no control or format character, such as a right-to-left override that reverses what
+    # follows it in every report, and no line or paragraph separator; a no-break space is
+    # a space)
+    if len(title) > MAX_TITLE or any(unicodedata.category(ch) in _NOT_IN_A_TITLE
+                                     for ch in title):
         raise top.error("title", f"expected one line of at most {MAX_TITLE} characters "
-                                 "without control characters (a longer text goes in "
-                                 "description)")
+                                 "without control or format characters (a longer text goes "
+                                 "in description)")
     description = top.string("description", default="")
     run = _read_run(top.table("run"))
 
