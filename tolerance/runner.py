@@ -133,13 +133,21 @@ def resumable_chunk_size(folder: Path, spec: RunSpec) -> int | None:
     """The chunk size of the run that left ``folder``: the length of its first chunk when
     that chunk belongs to this very run (a resumed run keeps that plan, whatever its
     number of workers, so no finished chunk is computed again); None otherwise."""
-    stored = _chunk_stamp(_chunk_path(folder, 0))
-    if stored is None:
+    split = _split_stamp(_chunk_path(folder, 0))
+    if split is None:
         return None
-    start, stop = stored.pop("start", None), stored.pop("stop", None)
+    stored, start, stop = split
     if stored != spec.signature or start != 0 or not isinstance(stop, int) or stop < 1:
         return None
     return stop
+
+
+def _split_stamp(path: Path) -> tuple[dict, object, object] | None:
+    """A chunk's stamp as its run's signature, start and stop (None: no readable chunk)."""
+    stored = _chunk_stamp(path)
+    if stored is None:
+        return None
+    return stored, stored.pop("start", None), stored.pop("stop", None)
 
 
 def chunks_fit_plan(folder: Path, spec: RunSpec, chunk_size: int, align: int | None) -> bool:
@@ -148,10 +156,10 @@ def chunks_fit_plan(folder: Path, spec: RunSpec, chunk_size: int, align: int | N
     an interrupted ``--target-ci`` run, is continued, one planned without the cuts is not."""
     plan = {i: (s, e) for i, s, e in chunk_ranges(spec.samples, chunk_size, align)}
     for path in chunk_files(folder):
-        stored = _chunk_stamp(path)
-        if stored is None:
+        split = _split_stamp(path)
+        if split is None:
             continue  # unreadable: computed again
-        start, stop = stored.pop("start", None), stored.pop("stop", None)
+        stored, start, stop = split
         if stored != spec.signature:
             continue  # another run's: other_run refused it, or --force replaced it
         if plan.get(int(path.stem[len(CHUNK_PREFIX):])) != (start, stop):
@@ -169,11 +177,10 @@ def other_run(folder: Path, spec: RunSpec) -> str | None:
     22"``), or None when every readable chunk belongs to this very run (or there is none).
     A resumed run continues only the same run, so it never replaces another's results."""
     for path in chunk_files(folder):
-        stored = _chunk_stamp(path)
-        if stored is None:
+        split = _split_stamp(path)
+        if split is None:
             continue  # unreadable: recomputed like a missing chunk
-        stored.pop("start", None)
-        stored.pop("stop", None)
+        stored = split[0]
         mine = spec.signature
         differ = [key for key in mine if stored.get(key) != mine[key]]
         if len(differ) > 1 and "study_hash" in differ:
@@ -506,16 +513,17 @@ def summary_mismatch(folder: Path, summary: dict) -> str | None:
             "samples": summary.get("planned_samples"), "sampler": summary.get("sampler")}
     spans, unreadable = [], False
     for path in chunk_files(folder):
-        stamp = _chunk_stamp(path)
-        if stamp is None:
+        split = _split_stamp(path)
+        if split is None:
             unreadable = True  # the read names it and how to mend it
             continue
+        stamp, start, stop = split
         differ = [k for k, v in want.items() if v is not None and k in stamp and stamp[k] != v]
         if differ:
             told = "; ".join(_OTHER.get(k) or f"{k} {stamp[k]}, not {want[k]}" for k in differ)
             return f"{path.name} holds the samples of another run ({told})"
-        if isinstance(stamp.get("start"), int) and isinstance(stamp.get("stop"), int):
-            spans.append((stamp["start"], stamp["stop"]))
+        if isinstance(start, int) and isinstance(stop, int):
+            spans.append((start, stop))
     total = summary.get("samples")
     if unreadable or not spans or not isinstance(total, int):
         return None

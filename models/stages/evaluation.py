@@ -548,6 +548,7 @@ def lamp_inrush_energy(load_state, supply, capability, lamp_voltage, lamp_curren
         limited = (r_end > r_cold) & (r_end < r_final) & (i > 0)
         never = (r_end >= r_final) & (i > 0)
         m = ((1.0 + p) / (1.0 - p)) * np.ones_like(r_final)
+        # units the output does not limit get harmless bounds; np.where drops their sums
         rc = np.where(limited, r_cold / r_final, 0.5)
         r1 = np.where(limited, r_end / r_final, 0.75)
         # the free-running warm-up to WARM_UP_SHARE of the rise fixes the time scale
