@@ -5,6 +5,7 @@ from __future__ import annotations
 import base64
 import io
 import json
+import math
 import re
 import shutil
 import subprocess
@@ -345,6 +346,11 @@ def test_the_verdict_says_what_it_rests_on():
                  criteria={"a": {"verdict": "pass"}, "b": {"verdict": "undecided"}})
     assert report.verdict_basis(open_).startswith("Undecided: the exact 95 % interval of b ")
     assert report.verdict_basis(dict(one, verdict="fail")) is None
+    # 1e8 units without a failure bound the rate below 1 - 0.05**(1e-8) = 0.0300 ppm
+    huge = dict(one, samples=10**8, zero_failure_upper=-math.expm1(math.log(0.05) / 1e8))
+    assert "below 0.03 ppm" in report.verdict_basis(huge)
+    tiny = dict(open_, max_failure_rate=4e-8)
+    assert "allowed 0.04 ppm" in report.verdict_basis(tiny)
 
 
 def test_text_is_escaped(folder, tmp_path):
@@ -516,6 +522,11 @@ def test_missing_results_are_reported(tmp_path):
 def test_number_helpers():
     assert report.format_rate(0.0) == "0 %" and report.format_rate(0.000599) == "0.0599 %"
     assert report.format_interval(0.0, 0.5) == "0 % .. 50 %"
+    # common practice, no source: 19,999 of 20,000 units pass, a yield of 99.995 %, and
+    # 1 failure in 1e7, 99.99999 %; neither may read 100 %
+    assert report.format_rate(0.99995) == "99.995 %"
+    assert report.format_rate(1 - 1e-7) == "99.99999 %"
+    assert report.format_rate(1.0) == "100 %" and report.format_rate(0.5) == "50 %"
     assert report.format_number(None) == "-" and report.format_number(True) == "yes"
     assert report.format_number(3) == "3" and report.format_number(242800.0) == "2.428e+05"
     assert report.format_value(4700.0, "ohm") == "4.7 kOhm"

@@ -13,6 +13,7 @@ from tolerance.units import (
     E_SERIES,
     UnitError,
     format_ppm,
+    format_yield,
     format_quantity,
     parse_quantity,
     parse_series_range,
@@ -308,6 +309,26 @@ def test_format_ppm_one_decimal_and_missing_rates():
     assert format_ppm(1.0) == "1000000.0"
     assert format_ppm(None) == "-"
     assert format_ppm(float("nan")) == "nan"
+
+
+def test_format_ppm_keeps_rates_below_a_tenth_of_a_ppm():
+    # common practice, no source: a bound of 0.03 ppm (zero failures in 1e8 units at 95 %,
+    # -ln(0.05) / 1e8) must not read "0.0"; 3 significant digits below 1 ppm
+    assert format_ppm(2.9957e-8) == "0.03"
+    assert format_ppm(2.53178e-11) == "2.53e-05"
+    assert format_ppm(4e-8) == "0.04"
+    assert format_ppm(1e-6) == "1.0"
+
+
+def test_format_yield_never_rounds_a_failure_away():
+    # common practice, no source: 1 failure in 1e7 units is a yield of 99.99999 %
+    assert format_yield(1 - 1e-7) == "99.99999"
+    assert format_yield(1.0) == "100.0000"
+    assert format_yield(0.999816) == "99.9816"
+    assert format_yield(1e-9) == "0.0000001"
+    assert format_yield(0.0) == "0.0000"
+    assert format_yield(None) == "-"
+    assert format_yield(0.5, 3) == "50.000"
 
 def test_format_digits():
     # common practice, no source: significant digits then trailing zeros trimmed

@@ -20,7 +20,7 @@ from tolerance.files import DamagedFile, atomic_path, os_error_text
 from tolerance.limits import exit_status
 from tolerance.runner import Terminated, UnreadableChunk
 from tolerance.study import SAMPLERS, StudyError
-from tolerance.units import format_ppm, format_quantity
+from tolerance.units import format_ppm, format_quantity, format_yield
 
 SAFETY = ("Results are estimates from models and the tolerances you entered: confirm on the bench "
           "before release. Hot transistors and resistors burn; mains-connected loads and "
@@ -225,8 +225,8 @@ def print_summary(summary: dict, study, out) -> None:
     w(f"\n{summary['title']}  ({summary['stage']} stage, {summary['samples']:,} samples, "
       f"{summary['sampler']}, seed {summary['seed']})\n")
     y = summary["yield"]
-    w(f"yield {100 * y['estimate']:.4f} %  (95 % interval {100 * y['ci_low']:.4f} .. "
-      f"{100 * y['ci_high']:.4f} %)   not converged: {summary['not_converged']}\n")
+    w(f"yield {format_yield(y['estimate'])} %  (95 % interval {format_yield(y['ci_low'])} .. "
+      f"{format_yield(y['ci_high'])} %)   not converged: {summary['not_converged']}\n")
     if summary.get("saturation_failure_rate") is not None:
         w(f"saturation-failure rate {format_ppm(summary['saturation_failure_rate'])} ppm\n")
     if isinstance(summary.get("target_ci"), dict):
@@ -377,7 +377,8 @@ def cmd_whatif(args) -> int:
         if result.get("followers"):
             w(f"correlated with a pin, drawn given it: {', '.join(result['followers'])}\n")
         yb, yp = result["yield"]["baseline"], result["yield"]["pinned"]
-        w(f"yield  baseline {100 * yb['estimate']:.4f} %   pinned {100 * yp['estimate']:.4f} %\n\n")
+        w(f"yield  baseline {format_yield(yb['estimate'])} %   pinned "
+          f"{format_yield(yp['estimate'])} %\n\n")
         _, _, criteria, spread = whatif_tables(result)
         w(_text_table(criteria) + "\n" + _text_table(spread))
         w(f"\nresults in {out}\n\nCaution: {SAFETY}\n")
@@ -466,7 +467,7 @@ def cmd_choose(args) -> int:
         best = result["best"]
         w("\nbest: " + ", ".join(f"{n} = {_fmt(best['values'][n], result['units'][n])}"
                                   for n in names)
-          + f" (yield {100 * best['yield']:.3f} %)\nresults in {out}\n")
+          + f" (yield {format_yield(best['yield'], 3)} %)\nresults in {out}\n")
     return 0
 
 

@@ -28,7 +28,7 @@ import pandas as pd
 from tolerance import runner
 from tolerance.cli import SAFETY
 from tolerance.files import TMP_SUFFIX, DamagedFile, write_atomic
-from tolerance.units import UnitError, format_ppm, format_quantity, spread_unit
+from tolerance.units import UnitError, format_ppm, format_quantity, format_yield, spread_unit
 
 __all__ = [
     "EXTRA_FILES",
@@ -117,7 +117,13 @@ def format_rate(p) -> str:
         return "nan"
     if p == 0:
         return "0 %"
-    return f"{100.0 * p:.3g} %"
+    digits = 3
+    text = f"{100.0 * p:.{digits}g}"
+    # a yield of 99.99999 % must not read 100 %
+    while digits < 12 and p < 1 and float(text) >= 100.0:
+        digits += 1
+        text = f"{100.0 * p:.{digits}g}"
+    return f"{text} %"
 
 
 def format_interval(low, high) -> str:
@@ -633,8 +639,8 @@ def choose_table(data: dict) -> Table:
                  if isinstance(r, (int, float)) and r > 0}
         worst = max(rates, key=rates.get) if rates else None
         rows.append([*(format_value(c["values"][n], units.get(n)) for n in names),
-                     f"{100 * c['yield']:.3f}",
-                     f"{100 * c['ci_low']:.3f} .. {100 * c['ci_high']:.3f}",
+                     format_yield(c["yield"], 3),
+                     f"{format_yield(c['ci_low'], 3)} .. {format_yield(c['ci_high'], 3)}",
                      *(format_value(c.get(m), t.get("unit")) for m, t in trade.items()),
                      f"{worst} {format_rate(rates[worst])}" if worst else "-",
                      ", ".join(marks)])

@@ -299,11 +299,38 @@ def spread_unit(unit: str | None) -> str | None:
 
 
 def format_ppm(rate) -> str:
-    """A rate in parts per million to one decimal, e.g. ``"184.4"``; ``"-"`` for none."""
+    """A rate in parts per million, e.g. ``"184.4"``; ``"-"`` for none.
+
+    One decimal from 1 ppm up; below it three significant digits (``"0.0253"``,
+    ``"2.53e-05"``), so a rate or a bound under 0.05 ppm never reads as ``"0.0"``.
+    """
     if rate is None:
         return "-"
     rate = float(rate)
-    return "nan" if math.isnan(rate) else f"{1e6 * rate:.1f}"
+    if math.isnan(rate):
+        return "nan"
+    ppm = 1e6 * rate
+    if ppm == 0 or abs(ppm) >= 1:
+        return f"{ppm:.1f}"
+    return f"{ppm:.3g}"
+
+
+def format_yield(y, decimals: int = 4) -> str:
+    """A yield as a percentage, e.g. ``"99.9816"``; ``"-"`` for none.
+
+    ``decimals`` places, more where they would round a yield below 1 up to 100 or one
+    above 0 down to 0 (1 failure in 1e7 reads ``"99.99999"``, not ``"100.0000"``).
+    """
+    if y is None:
+        return "-"
+    y = float(y)
+    if math.isnan(y):
+        return "nan"
+    text = f"{100.0 * y:.{decimals}f}"
+    while decimals < 12 and ((0 < y < 1 and float(text) in (0.0, 100.0))):
+        decimals += 1
+        text = f"{100.0 * y:.{decimals}f}"
+    return text
 
 
 def format_quantity(x: float, unit: str, digits: int = 3) -> str:
