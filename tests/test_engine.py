@@ -177,6 +177,20 @@ def test_latin_hypercube_draws_what_scipy_draws(seed, block, size, dim):
     assert np.array_equal(sampling.latin_hypercube(seed, block, size, dim), expected)
 
 
+def test_copula_keeps_the_strata_of_the_first_correlated_column_only():
+    # the Cholesky factor is lower triangular, so the first correlated column's normal
+    # scores pass unchanged (z' = z L^T, L[0] = e_0) and its Latin hypercube strata stay
+    # (McKay, Beckman & Conover 1979); the later columns mix and lose them (README's
+    # sampler row and DEVELOPERS.md say so)
+    total = 4096
+    u = sampling.uniforms("lhs", 3, total, 0, total, 3)
+    c = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 0.6], [0.0, 0.6, 1.0]])
+    v = sampling.apply_copula(u, c)
+    filled = [np.unique(np.floor(v[:, j] * total)).size for j in range(3)]
+    assert filled[0] == total and filled[1] == total
+    assert filled[2] < 0.7 * total  # about 1 - 1/e of the strata, as random draws fill
+
+
 def test_seeds_differ():
     a = sampling.uniforms("random", 1, 100, 0, 100, 2)
     b = sampling.uniforms("random", 2, 100, 0, 100, 2)
