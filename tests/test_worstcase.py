@@ -504,3 +504,66 @@ def test_exception_in_a_search_thread_reaches_the_caller_and_unwinds_the_others(
     assert model.calls == 1
     # common practice, no source: no search thread is left running
     assert threading.active_count() == before
+
+
+# --- discrete sets --------------------------------------------------------------------------
+
+
+def test_a_discrete_set_validates_its_members():
+    b = Bound("d", 0.65, 0.65, 2.0, (0.65, 2.0))
+    assert b.discrete and b.values == (0.65, 2.0)
+    assert not Bound("d", 2.0, 2.0, 2.0, (2.0,)).discrete  # one member: fixed
+    for values in [(2.0, 0.65), (0.65, 1.0), (0.7, 2.0), (0.65, 0.65, 2.0), ()]:
+        with pytest.raises(ValueError, match="discrete set"):
+            Bound("d", 0.65, 0.65, 2.0, values)
+    with pytest.raises(ValueError, match="nominal among"):
+        Bound("d", 1.0, 0.65, 2.0, (0.65, 2.0))
+
+
+def _bump(samples):
+    # exact derivation: between the members 0 and 3 the bump -(d - 1.5)^2 peaks at 0 with
+    # d = 1.5, which no unit takes; at the members it is -2.25, and x adds 0 .. 1
+    d, x = samples["d"], samples["x"]
+    return {"y": -((d - 1.5) ** 2) + x, "z": d + x}
+
+
+def test_the_optimizer_searches_a_discrete_parameter_at_its_members_only():
+    bounds = [Bound("d", 0.0, 0.0, 3.0, (0.0, 3.0)), Bound("x", 0.5, 0.0, 1.0)]
+    res = optimize_extreme(_bump, bounds, "y", "max", starts=3, seed=2)
+    # exact derivation (see _bump): the largest y a unit can have is -2.25 + 1 at either
+    # member; the continuous range would give 1 at d = 1.5
+    assert res["value"] == pytest.approx(-1.25, abs=1e-9)
+    assert res["at"]["d"] in (0.0, 3.0) and res["at"]["x"] == pytest.approx(1.0)
+    # one search group's starts at each member
+    assert res["starts"] == 2 * 3
+    plain = optimize_extreme(_bump, [Bound("d", 0.0, 0.0, 3.0), bounds[1]], "y", "max",
+                             starts=3, seed=2)
+    assert plain["value"] == pytest.approx(1.0, abs=1e-6)
+
+
+def test_the_bands_of_a_discrete_parameter_take_its_changes_to_the_set_ends():
+    bounds = [Bound("d", 0.0, 0.0, 3.0, (0.0, 3.0)), Bound("x", 0.5, 0.0, 1.0)]
+    rss = root_sum_square(_bump, bounds, ["y", "z"])
+    # exact derivation: y changes by 0 towards d = 0 (the nominal) and by 0 towards d = 3
+    # (-2.25 both), so d adds nothing; x moves y = -1.75 by -0.5 / +0.5
+    assert rss["y"]["linear_low"] == pytest.approx(-2.25, abs=1e-9)
+    assert rss["y"]["linear_high"] == pytest.approx(-1.25, abs=1e-9)
+    # z = d + x: the set's high end adds 3, its low end (the nominal) nothing
+    assert rss["z"]["linear_high"] == pytest.approx(0.5 + 3.0 + 0.5, abs=1e-9)
+    assert rss["z"]["rss_high"] == pytest.approx(0.5 + math.hypot(3.0, 0.5), abs=1e-9)
+    assert rss["z"]["linear_low"] == pytest.approx(0.0, abs=1e-9)
+    assert rss["z"]["sensitivities"]["d"] == pytest.approx(1.0)  # the secant
+    eva = extreme_value(_bump, bounds, ["y"])["y"]
+    assert eva["max"] == pytest.approx(-1.25) and eva["argmax"]["d"] in (0.0, 3.0)
+
+
+def test_many_discrete_combinations_fall_back_to_each_sets_ends_and_nominal():
+    from tolerance.worstcase import MAX_DISCRETE_COMBINATIONS, discrete_combinations
+
+    five = tuple(float(v) for v in range(5))
+    bounds = [Bound(f"d{k}", 2.0, 0.0, 4.0, five) for k in range(3)]
+    combos, complete = discrete_combinations(bounds)
+    assert 5**3 > MAX_DISCRETE_COMBINATIONS and not complete
+    assert len(combos) == 27 and set(itertools.chain(*combos)) == {0.0, 2.0, 4.0}
+    combos, complete = discrete_combinations(bounds[:2])
+    assert complete and len(combos) == 25

@@ -59,9 +59,13 @@ def bounds_for(study: Study) -> list[worstcase.Bound]:
     out = []
     for p in study.parameters:
         lo, hi, nom = p.low, p.high, p.nominal
+        values = None
         if p.drift:
             lo, hi = lo - abs(nom) * p.drift, hi + abs(nom) * p.drift
-        out.append(worstcase.Bound(p.name, nom, min(lo, nom), max(hi, nom)))
+        elif p.distribution.kind == "discrete" and lo < hi:
+            # a set (variants, bins, a temperature profile): the methods take its members
+            values = tuple(sorted(set(float(v) for v in p.distribution.values)))
+        out.append(worstcase.Bound(p.name, nom, min(lo, nom), max(hi, nom), values))
     return out
 
 
@@ -232,7 +236,11 @@ def study_worst_case(study: Study, samples: int, seed: int, sampler: str | None 
     # the optimizer (the costly part: its searches run in lockstep, but each start's L-BFGS-B
     # steps are sequential) searches the metrics the design is judged on: the stage's and the
     # study's own criteria; ratings get EVA and RSS like every metric
-    limited = list(dict.fromkeys(c.metric for c in study.criteria if c.source != "rating"))
+    # (a rating whose limit the study's [limits] table changed is the study's criterion too)
+    defaults = {c.metric: (c.minimum, c.maximum) for c in study.stage.criteria}
+    limited = list(dict.fromkeys(
+        c.metric for c in study.criteria
+        if c.source != "rating" or defaults.get(c.metric) != (c.minimum, c.maximum)))
     table = worstcase.worst_case_table(model_for(study), bounds, list(study.stage.metrics),
                                        mc_extremes=mc, seed=seed, optimize_metrics=limited,
                                        starts=3, maxiter=60)
@@ -270,6 +278,10 @@ def study_worst_case(study: Study, samples: int, seed: int, sampler: str | None 
         "metrics": table,
         "evaluations": int(evaluations) + samples,
         "optimized_metrics": limited,
+        "notes": (["the corners, bands and searches take every input independent of the "
+                   "others: the study's correlations act in the Monte Carlo run only, so a "
+                   "corner may join values that correlated parts seldom take together (the "
+                   "safe side)"] if study.correlations else []),
         "criteria": [{"name": c.name, "metric": c.metric, "min": c.minimum, "max": c.maximum}
                      for c in study.criteria],
     }

@@ -467,7 +467,7 @@ def monte_carlo_beyond(m: dict) -> bool:
 def worstcase_notes(data: dict) -> list[str]:
     """Sentences on what the worst-case table cannot show by itself: corners the model did
     not solve, and Monte Carlo units beyond the ranges searched."""
-    notes = []
+    notes = [str(n)[:1].upper() + str(n)[1:] + "." for n in data.get("notes") or []]
     metrics = data.get("metrics") or {}
     unsolved = {name: m["eva_dropped"] for name, m in metrics.items()
                 if isinstance(m, dict) and m.get("eva_dropped")}

@@ -22,6 +22,7 @@ ignored (and counted) when searching for extremes.
 
 from __future__ import annotations
 
+import itertools
 import math
 import threading
 from collections.abc import Callable, Sequence
@@ -55,12 +56,19 @@ class Bound:
     low, high : float
         Interval limits, ``low <= nominal <= high``. ``low == high`` marks a fixed
         parameter, which every method keeps at its nominal value.
+    values : tuple of float, optional
+        The only values the parameter takes (a discrete set: variants, bins, a temperature
+        profile), ascending, from ``low`` to ``high`` with ``nominal`` among them. The
+        methods then evaluate the parameter at its members only: the corners take its
+        ends, the bands its changes to them, and the optimizer searches the other
+        parameters at each member (see :func:`optimize_extreme`). None: a continuous range.
     """
 
     name: str
     nominal: float
     low: float
     high: float
+    values: tuple[float, ...] | None = None
 
     def __post_init__(self) -> None:
         values = (self.nominal, self.low, self.high)
@@ -71,6 +79,22 @@ class Bound:
                 f"{self.name}: need low <= nominal <= high, got "
                 f"{self.low} <= {self.nominal} <= {self.high}"
             )
+        if self.values is not None:
+            members = tuple(float(v) for v in self.values)
+            if (not members or list(members) != sorted(set(members))
+                    or members[0] != self.low or members[-1] != self.high
+                    or self.nominal not in members):
+                raise ValueError(
+                    f"{self.name}: a discrete set must be ascending and distinct, from low "
+                    f"to high, with the nominal among its values; got {members} for "
+                    f"{self.low} <= {self.nominal} <= {self.high}"
+                )
+            object.__setattr__(self, "values", members)
+
+    @property
+    def discrete(self) -> bool:
+        """True for a varying parameter that takes only the values of a set."""
+        return self.values is not None and not self.fixed
 
     @property
     def fixed(self) -> bool:
@@ -145,26 +169,37 @@ def _fd_steps(bounds: list[Bound], rel_step: float) -> np.ndarray:
 
 def _central_differences(
     model: Model, bounds: list[Bound], metrics: list[str] | None, rel_step: float
-) -> tuple[dict[str, np.ndarray], dict[str, float], list[str], int]:
+) -> tuple[dict[str, np.ndarray], dict[str, float], list[str], int, dict]:
     """Sensitivities dy/dx_i at nominal from one batch of 2d + 1 points.
 
+    A discrete parameter (``Bound.values``) steps to the ends of its set instead, values it
+    takes (a step between two variants' drive levels may land where the stage behaves like
+    neither): its sensitivity is the secant across the set, and ``ends[m]`` holds the
+    metric's changes from nominal at its high and low end (NaN for the other parameters).
+
     Returns the sensitivities per metric (array over all bounds), the nominal value per
-    metric, the metric list and the number of evaluations.
+    metric, the metric list, the number of evaluations and ``ends``.
     """
     d = len(bounds)
     x0 = _nominal(bounds)
     steps = _fd_steps(bounds, rel_step)
+    discrete = np.array([b.discrete for b in bounds], dtype=bool)
+    highs = np.array([b.high for b in bounds])
+    lows = np.array([b.low for b in bounds])
     batch = np.repeat(x0[None, :], 2 * d + 1, axis=0)
     idx = np.arange(d)
-    batch[1 + idx, idx] += steps
-    batch[1 + d + idx, idx] -= steps
+    batch[1 + idx, idx] = np.where(discrete, highs, x0 + steps)
+    batch[1 + d + idx, idx] = np.where(discrete, lows, x0 - steps)
+    span = np.where(discrete, highs - lows, 2.0 * steps)
     y, metrics = _evaluate(model, bounds, batch, metrics)
     # a metric infinite at both neighbours (a stress beyond its rating's temperature range)
     # has no derivative: NaN, as the table shows it, not a warning on the terminal
     with np.errstate(invalid="ignore"):
-        sens = {m: (y[m][1 : 1 + d] - y[m][1 + d :]) / (2.0 * steps) for m in metrics}
+        sens = {m: (y[m][1 : 1 + d] - y[m][1 + d :]) / span for m in metrics}
+        ends = {m: (np.where(discrete, y[m][1 : 1 + d] - y[m][0], np.nan),
+                    np.where(discrete, y[m][1 + d :] - y[m][0], np.nan)) for m in metrics}
     nominal = {m: float(y[m][0]) for m in metrics}
-    return sens, nominal, metrics, 2 * d + 1
+    return sens, nominal, metrics, 2 * d + 1, ends
 
 
 # ---------------------------------------------------------------------------------------------
@@ -241,7 +276,7 @@ def extreme_value(
         solved = y[SOLVED][1:] if SOLVED in y else None
     else:
         method = "sensitivity-directed"
-        sens, _, metrics, n_fd = _central_differences(model, bounds, metrics, 1e-3)
+        sens, _, metrics, n_fd, _ = _central_differences(model, bounds, metrics, 1e-3)
         rows = []
         for m in metrics:
             up = sens[m][vidx] > 0
@@ -347,15 +382,20 @@ def root_sum_square(
     multiples.
 
     Central differences have truncation error of order ``rel_step^2`` times the curvature;
-    the step lies inside the box unless the nominal sits on a bound.
+    the step lies inside the box unless the nominal sits on a bound. A discrete parameter
+    (``Bound.values``) is not differentiated between its members: its ``f_i`` and ``r_i``
+    are the metric's own changes when it moves from its nominal to the low and the high
+    end of its set (the larger fall and the larger rise of the two, none below zero), and
+    its sensitivity is the secant across the set.
     """
     bounds = _check_bounds(bounds)
-    sens, nominal, metrics, evaluations = _central_differences(
+    sens, nominal, metrics, evaluations, ends = _central_differences(
         model, bounds, metrics, rel_step
     )
     down = np.array([b.nominal - b.low for b in bounds])
     up = np.array([b.high - b.nominal for b in bounds])
     fixed = np.array([b.fixed for b in bounds], dtype=bool)
+    discrete = np.array([b.discrete for b in bounds], dtype=bool)
     result = {}
     for m in metrics:
         s = sens[m]
@@ -363,6 +403,10 @@ def root_sum_square(
         with np.errstate(invalid="ignore"):
             fall = np.where(fixed, 0.0, np.where(s >= 0, s * down, -s * up))
             rise = np.where(fixed, 0.0, np.where(s >= 0, s * up, -s * down))
+            # a discrete parameter moves the metric by its own changes at the set's ends
+            to_high, to_low = ends[m]
+            fall = np.where(discrete, np.maximum(0.0, -np.minimum(to_high, to_low)), fall)
+            rise = np.where(discrete, np.maximum(0.0, np.maximum(to_high, to_low)), rise)
         fall = np.where(np.isnan(s) & ~fixed, np.nan, fall)
         rise = np.where(np.isnan(s) & ~fixed, np.nan, rise)
         y0 = nominal[m]
@@ -523,12 +567,59 @@ class _Search:
         )
 
 
+#: most combinations of discrete members the optimizer searches one by one; beyond it
+#: each discrete parameter keeps its low end, nominal and high end only
+MAX_DISCRETE_COMBINATIONS = 64
+
+
+def discrete_combinations(bounds: list[Bound]) -> tuple[list[tuple[float, ...]], bool]:
+    """The combinations of the discrete parameters' members the optimizer searches at.
+
+    Every combination of every member while there are at most
+    :data:`MAX_DISCRETE_COMBINATIONS`, else of each set's ends and nominal, else the
+    nominal combination and the all-low and all-high ones. Returns the combinations (in
+    the order of the discrete bounds) and whether they are every combination.
+    """
+    sets = [b.values for b in bounds if b.discrete]
+    if math.prod(len(v) for v in sets) <= MAX_DISCRETE_COMBINATIONS:
+        return list(itertools.product(*sets)), True
+    ends = [tuple(sorted({b.low, b.nominal, b.high})) for b in bounds if b.discrete]
+    if math.prod(len(v) for v in ends) <= MAX_DISCRETE_COMBINATIONS:
+        return list(itertools.product(*ends)), False
+    picks = [tuple(b.nominal for b in bounds if b.discrete),
+             tuple(b.low for b in bounds if b.discrete),
+             tuple(b.high for b in bounds if b.discrete)]
+    return list(dict.fromkeys(picks)), False
+
+
 def _start_searches(bounds: list[Bound], group: _SearchGroup) -> list[_Search]:
     """The starts of one search group, in order: nominal, vertex, then random points.
 
     Draws the random start points from ``group.rng`` (one ``(n, d)`` draw). Without varying
-    parameters there is a single start at nominal.
+    parameters there is a single start at nominal. With discrete parameters the starts are
+    made for each combination of their members (:func:`discrete_combinations`), the
+    discrete parameters held there, since a point between two members is no unit that can
+    be built.
     """
+    if not any(b.discrete for b in bounds):
+        return _starts_at(bounds, group)
+    combos, _ = discrete_combinations(bounds)
+    searches = []
+    for combo in combos:
+        held = iter(combo)
+        at = []
+        for b in bounds:
+            if b.discrete:
+                v = next(held)
+                at.append(Bound(b.name, v, v, v))
+            else:
+                at.append(b)
+        searches.extend(_starts_at(at, group))
+    return searches
+
+
+def _starts_at(bounds: list[Bound], group: _SearchGroup) -> list[_Search]:
+    """The starts of one search group in a box without discrete parameters."""
     if group.sense not in ("min", "max"):
         raise ValueError(f"sense must be 'min' or 'max', got {group.sense!r}")
     sign = 1.0 if group.sense == "min" else -1.0
