@@ -137,6 +137,31 @@ def test_whatif_pin_forms(study):
     with pytest.raises(UsageError, match="write min or max"):
         pin_value(study, "x1", "p0")
     assert_allclose(pin_value(study, "x1", "P10"), -0.6)
+    assert pin_value(study, "x1", "MIN") == -1.0 and pin_value(study, "x1", "Max") == 3.0
+    # a refused pin speaks in the study's units (a temperature in degC, not kelvin)
+    with pytest.raises(UsageError, match="at most 226.85 degC, got 300 degC"):
+        pin_value(load_study(None), "ambient.temperature", "300 degC")
+
+
+def test_whatif_compares_the_yields_unit_by_unit(study):
+    from scipy import stats as sps
+
+    from tolerance.whatif import whatif
+
+    # x2 pinned below its spread: y = x1 + 0.9 fails for x1 < -0.9, some 2.5 % of units
+    result, base, pinned = whatif(study, ["x2=0.45 V"])
+    a = base.samples["pass"].to_numpy(bool)
+    b = pinned.samples["pass"].to_numpy(bool)
+    change = result["yield_change"]
+    assert change["only_first"] == int((a & ~b).sum())
+    assert change["only_second"] == int((b & ~a).sum())
+    assert change["difference"] == pytest.approx(b.mean() - a.mean(), abs=1e-12)
+    # exact McNemar test: scipy.stats.binomtest on the discordant units at 1/2
+    m = change["only_first"] + change["only_second"]
+    assert m > 0
+    assert change["p_value"] == pytest.approx(
+        sps.binomtest(change["only_second"], m, 0.5).pvalue, rel=1e-12)
+    assert change["ci_low"] <= change["difference"] <= change["ci_high"]
 
 
 def test_a_parameter_typed_without_its_part_or_case_is_pointed_to():
@@ -169,7 +194,7 @@ def test_whatif_at_minimum_raises_failures(study):
 def test_choose_scales_with_common_random_numbers(study):
     from tolerance.choose import choose
 
-    result = choose(study, ["x2=E12:0.47..2.2"], tradeoff=("y", "z"))
+    result = choose(study, ["x2=E12:0.47..2.2"], tradeoff=("y", "z:higher"))
     values = [c["values"]["x2"] for c in result["candidates"]]
     # IEC 60063 E12 values between 0.47 and 2.2
     assert_allclose(values, [0.47, 0.56, 0.68, 0.82, 1.0, 1.2, 1.5, 1.8, 2.2])
@@ -182,6 +207,39 @@ def test_choose_scales_with_common_random_numbers(study):
     assert result["best"]["values"]["x2"] == min(top, key=lambda v: abs(np.log(v)))
     assert result["evaluations"] == 9 * 4000
     assert result["frontier"]
+    assert result["tradeoff"]["z"] == {"statistic": "p001", "unit": "1", "better": "higher"}
+    # each candidate against the best, unit by unit: a larger x2 passes every unit the
+    # smaller one passes, so the smaller candidates only lose units (exact McNemar test)
+    best = result["best"]
+    for c, y in zip(result["candidates"], ylds):
+        v = c["vs_best"]
+        assert v["difference"] == pytest.approx(y - best["yield"], abs=1e-12)
+        if c["values"]["x2"] < best["values"]["x2"]:
+            assert v["only_second"] == 0 and v["only_first"] == round(-v["difference"] * 4000)
+    assert best["vs_best"]["p_value"] == 1.0
+
+
+def test_choose_trade_off_on_a_metric_without_a_limit_says_which_end_is_better(study):
+    from tolerance.choose import check_request, choose
+
+    # common practice, no source: z has no criterion, so neither end is known to be better
+    # (a dissipation taken as larger-is-better made the coolest candidate dominated)
+    with pytest.raises(UsageError, match="z: no criterion limits it.*z:lower or z:higher"):
+        check_request(study, ["x2=E12:1..2"], ("y", "z"))
+    with pytest.raises(UsageError, match="after the colon write lower or higher"):
+        check_request(study, ["x2=E12:1..2"], ("y", "z:smaller"))
+    with pytest.raises(UsageError, match="two different metrics"):
+        check_request(study, ["x2=E12:1..2"], ("y", "y:lower"))
+    low = choose(study, ["x2=E12:0.47..2.2"], samples=500, tradeoff=("y", "z:lower"))
+    high = choose(study, ["x2=E12:0.47..2.2"], samples=500, tradeoff=("y", "z:higher"))
+    assert low["tradeoff"]["z"]["statistic"] == "p999"
+    assert high["tradeoff"]["z"]["statistic"] == "p001"
+    # the frontier reads each metric's robust end in the direction given
+    from tolerance.choose import frontier
+
+    for result, sign in ((low, -1), (high, 1)):
+        assert result["frontier"] == frontier(result["candidates"], "y", "z", 1, sign)
+    assert [c["z"] for c in low["candidates"]] != [c["z"] for c in high["candidates"]]
 
 
 def test_choose_rejects_bad_sweeps(study):
@@ -222,7 +280,7 @@ def test_choose_refuses_a_temperature_and_names_the_twice_varied_part(study):
 
     # a candidate must be a value the study file accepts: a tempco of 100 to 220 per kelvin
     # ran as if it were one (the study and --pin refuse it)
-    with pytest.raises(UsageError, match=r"RB.tempco=E12:100..220: must be at most 0.005"):
+    with pytest.raises(UsageError, match=r"RB.tempco=E12:100..220: must be at most 5000 ppm/K"):
         check_request(load_study(), ["RB.tempco=E12:100..220"])
 
     with pytest.raises(UsageError, match="x2: the same part is varied twice"):

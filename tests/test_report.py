@@ -446,8 +446,11 @@ def test_analysis_sections_show_the_console_tables_in_units(tmp_path):
             assert [r[0] for r in rows[1:]] == ["100 Ohm", "150 Ohm", "220 Ohm"]
             assert sum("best" in r[-1] for r in rows[1:]) == 1
             # the criterion each candidate fails most, which the console did not show
-            assert rows[0][-2] == "fails most"
-            assert all(r[-2] == "-" or r[-2].split()[0] in data["criteria"] for r in rows[1:])
+            assert rows[0][-3] == "fails most"
+            assert all(r[-3] == "-" or r[-3].split()[0] in data["criteria"] for r in rows[1:])
+            # and its yield against the best's on the same units, with the McNemar p-value
+            assert rows[0][-2] == "yield vs best, paired"
+            assert all((r[-2] == "-") == ("best" in r[-1]) for r in rows[1:])
 
 
 def test_worst_case_within_compares_the_worst_extremes_with_every_limit():

@@ -628,3 +628,31 @@ def test_tail_estimate_says_why_a_margin_without_finite_values_has_none():
     assert out["n"] == 0 and math.isnan(out["tail_ppm"])
     assert out["method"].startswith("no finite margin among 50 samples")
     assert tail_estimate(np.array([]))["method"] == "no samples: nothing to estimate"
+
+
+def test_paired_difference_of_two_yields_on_the_same_units():
+    from tolerance.stats import paired_difference
+
+    # 5,000 units: 21 pass only in the first run, 7 only in the second. Exact McNemar test:
+    # scipy.stats.binomtest(7, 28, 0.5); the interval maps the Clopper-Pearson interval of
+    # 7 / 28 (scipy's exact proportion_ci) to (m / n)(2 pi - 1)
+    first = np.zeros(5000, bool)
+    second = np.zeros(5000, bool)
+    first[:1200] = second[:1200] = True
+    first[1200:1221] = True
+    second[2000:2007] = True
+    got = paired_difference(first, second)
+    assert got["only_first"] == 21 and got["only_second"] == 7
+    assert got["difference"] == pytest.approx(-14 / 5000)
+    assert got["p_value"] == pytest.approx(stats.binomtest(7, 28, 0.5).pvalue, rel=1e-12)
+    assert got["p_value"] < 0.05
+    ci = stats.binomtest(7, 28).proportion_ci(method="exact")
+    assert got["ci_low"] == pytest.approx(28 / 5000 * (2 * ci.low - 1), rel=1e-7)
+    assert got["ci_high"] == pytest.approx(28 / 5000 * (2 * ci.high - 1), rel=1e-7)
+    # the runs' own exact intervals overlap entirely; unit by unit they differ
+    assert got["ci_high"] < 0
+    same = paired_difference(first, first)
+    assert same == {"difference": 0.0, "ci_low": 0.0, "ci_high": 0.0, "only_first": 0,
+                    "only_second": 0, "p_value": 1.0}
+    with pytest.raises(ValueError, match="same units"):
+        paired_difference(first, second[:10])

@@ -87,6 +87,14 @@ class RunResult:
             self._samples = runner.read_samples(self.folder / SAMPLES_DIR)
         return self._samples
 
+    def column(self, name: str) -> np.ndarray:
+        """One column of the per-sample table, in sample order, without reading the others
+        from the run's folder."""
+        if self._samples is None and self.folder is not None:
+            with runner.ChunkColumns(self.folder / SAMPLES_DIR) as columns:
+                return columns(name)
+        return self.samples[name].to_numpy()
+
     @property
     def criteria(self) -> pd.DataFrame:
         """One row per criterion: metric, limits, failures, rate and interval, verdict."""

@@ -73,12 +73,38 @@ def parse_vary(study: Study, text: str) -> tuple[str, np.ndarray]:
     return name, values
 
 
-def _direction(study: Study, metric: str) -> int:
-    """+1 when larger is better for ``metric`` (it has a lower limit), -1 for an upper limit."""
+#: how a trade-off metric says which end is better: ``power_output:lower``
+BETTER = {"higher": 1, "lower": -1}
+
+
+def _direction(study: Study, metric: str, given: dict[str, int] | None = None) -> int:
+    """+1 when larger is better for ``metric`` (it has a lower limit), -1 for an upper limit;
+    ``given`` (from ``--tradeoff METRIC:lower``) first."""
+    if given and metric in given:
+        return given[metric]
     for c in study.criteria:
         if c.metric == metric:
             return 1 if c.minimum is not None else -1
     return 1
+
+
+def tradeoff_item(study: Study, text: str) -> tuple[str, int | None]:
+    """``METRIC`` or ``METRIC:lower`` / ``METRIC:higher`` (which end is better) -> (metric,
+    direction or None); a metric no criterion limits must say which end is better."""
+    metrics = study.stage.metrics
+    name, _, better = (t.strip() for t in text.partition(":"))
+    if name not in metrics:
+        raise UsageError(f"--tradeoff {name or '(empty)'}: not a metric of this stage; "
+                         f"metrics: {', '.join(metrics)}")
+    if better:
+        if better.lower() not in BETTER:
+            raise UsageError(f"--tradeoff {text}: after the colon write lower or higher (the "
+                             "end that is better)")
+        return name, BETTER[better.lower()]
+    if not any(c.metric == name for c in study.criteria):
+        raise UsageError(f"--tradeoff {name}: no criterion limits it in this study, so which "
+                         f"end is better is not known; write {name}:lower or {name}:higher")
+    return name, None
 
 
 def frontier(points: list[dict], x: str, y: str, dx: int, dy: int) -> list[int]:
@@ -122,10 +148,9 @@ def check_request(study: Study, varies: list[str], tradeoff: tuple[str, ...] | N
     if len(tradeoff) != 2:
         raise UsageError("--tradeoff takes two metrics separated by a comma, e.g. "
                          f"{','.join(list(metrics)[:2])}")
-    for m in tradeoff:
-        if m not in metrics:
-            raise UsageError(f"--tradeoff {m or '(empty)'}: not a metric of this stage; "
-                             f"metrics: {', '.join(metrics)}")
+    names = [tradeoff_item(study, m)[0] for m in tradeoff]
+    if names[0] == names[1]:
+        raise UsageError(f"--tradeoff {names[0]}: a trade-off takes two different metrics")
     return sweeps, tuple(tradeoff)
 
 
@@ -175,7 +200,9 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
     sweeps, tradeoff = check_request(study, varies, tradeoff)
     names = [n for n, _ in sweeps]
     metrics = study.stage.metrics
-    candidates, summaries = [], []
+    from tolerance.stats import paired_difference  # scipy.stats: only where candidates run
+
+    candidates, summaries, passes = [], [], []
     for combo in itertools.product(*[vals for _, vals in sweeps]):
         overrides = {n: Override("scale", float(v) / study.parameter(n).nominal)
                      for n, v in zip(names, combo)}
@@ -189,10 +216,16 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
                "criteria": {k: c["rate"] for k, c in s["criteria"].items()}}
         candidates.append(row)
         summaries.append(s)
+        passes.append(np.packbits(res.column("pass").astype(bool)))  # 1 bit a unit
+    given = {}
     if tradeoff is None:
         tradeoff = default_tradeoff(study, summaries)
+    else:
+        items = [tradeoff_item(study, t) for t in tradeoff]
+        tradeoff = tuple(m for m, _ in items)
+        given = {m: d for m, d in items if d is not None}
     # robust end of each trade-off metric: the low tail when larger is better, else the high
-    ends = {m: _robust_end(study, m) for m in tradeoff}
+    ends = {m: "p001" if _direction(study, m, given) > 0 else "p999" for m in tradeoff}
     for row, s in zip(candidates, summaries):
         for m in tradeoff:
             row[m] = s["metrics"][m][ends[m]]
@@ -202,10 +235,18 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
         return (row["yield"], row["ci_low"], -dist)
 
     best = max(range(len(candidates)), key=lambda i: rank_key(candidates[i]))
+    # each candidate against the best on the same units (common random numbers): whether
+    # the best is better than the others, or only drawn so
+    units = int(summaries[best]["samples"])
+    best_pass = np.unpackbits(passes[best], count=units).astype(bool)
+    for row, packed in zip(candidates, passes):
+        row["vs_best"] = paired_difference(best_pass,
+                                           np.unpackbits(packed, count=units).astype(bool))
     front = []
     if len(tradeoff) == 2:
-        front = frontier(candidates, tradeoff[0], tradeoff[1], _direction(study, tradeoff[0]),
-                         _direction(study, tradeoff[1]))
+        front = frontier(candidates, tradeoff[0], tradeoff[1],
+                         _direction(study, tradeoff[0], given),
+                         _direction(study, tradeoff[1], given))
     first = candidates[0]
     n_samples = run_samples = samples if samples is not None else study.settings.samples
     used_sampler = sampler or study.settings.sampler
@@ -214,7 +255,9 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
         "seed": study.settings.seed if seed is None else seed, "samples": n_samples,
         "sampler": used_sampler, "vary": {n: [float(v) for v in vals] for n, vals in sweeps},
         "units": {n: study.parameter(n).unit for n in names},
-        "tradeoff": {m: {"statistic": ends[m], "unit": metrics[m].unit} for m in tradeoff},
+        "tradeoff": {m: {"statistic": ends[m], "unit": metrics[m].unit,
+                         "better": "higher" if _direction(study, m, given) > 0 else "lower"}
+                     for m in tradeoff},
         "candidates": candidates,
         "best": candidates[best],
         "frontier": front,

@@ -150,7 +150,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="e.g. RBE2=E24:47..1k; once or twice")
     p.add_argument("--tradeoff", metavar="METRIC,METRIC",
                    help="two metrics for the trade-off frontier (default: the first limited "
-                        "metric against the limited metric the choice moves most)")
+                        "metric against the limited metric the choice moves most); a metric "
+                        "without a limit says which end is better, e.g. power_output:lower")
 
     p = sub.add_parser("report", help="rebuild the reports of a result folder from its saved "
                        "results")
@@ -378,7 +379,12 @@ def cmd_whatif(args) -> int:
             w(f"correlated with a pin, drawn given it: {', '.join(result['followers'])}\n")
         yb, yp = result["yield"]["baseline"], result["yield"]["pinned"]
         w(f"yield  baseline {format_yield(yb['estimate'])} %   pinned "
-          f"{format_yield(yp['estimate'])} %\n\n")
+          f"{format_yield(yp['estimate'])} %\n")
+        from tolerance.report import paired_sentence
+
+        change = paired_sentence(result.get("yield_change"), "the pin", "in the baseline",
+                                 "pinned")
+        w((change + "\n" if change else "") + "\n")
         _, _, criteria, spread = whatif_tables(result)
         w(_text_table(criteria) + "\n" + _text_table(spread))
         w(f"\nresults in {out}\n\nCaution: {SAFETY}\n")
@@ -467,7 +473,11 @@ def cmd_choose(args) -> int:
         best = result["best"]
         w("\nbest: " + ", ".join(f"{n} = {_fmt(best['values'][n], result['units'][n])}"
                                   for n in names)
-          + f" (yield {format_yield(best['yield'], 3)} %)\nresults in {out}\n")
+          + f" (yield {format_yield(best['yield'], 3)} %)\n")
+        from tolerance.report import choose_separation
+
+        separation = choose_separation(result)
+        w((separation + "\n" if separation else "") + f"results in {out}\n")
     return 0
 
 

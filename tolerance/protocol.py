@@ -85,13 +85,22 @@ class Parameter:
 
 def range_problem(value: float, unit: str, positive: bool, minimum: float | None,
                   maximum: float | None) -> str | None:
-    """Why ``value`` lies outside the accepted values of a quantity, or None."""
+    """Why ``value`` lies outside the accepted values of a quantity, or None; the figures in
+    the quantity's own unit (a temperature in degC, as a study writes it, not in kelvin)."""
+    from tolerance.units import UnitError, format_quantity
+
+    def text(x: float) -> str:
+        try:
+            return format_quantity(x, unit, 6)
+        except UnitError:
+            return f"{x:g} ({unit})"
+
     if positive and not value > 0:
-        return f"must be positive, got {value:g} ({unit})"
+        return f"must be positive, got {text(value)}"
     if minimum is not None and value < minimum:
-        return f"must be at least {minimum:g} ({unit}), got {value:g}"
+        return f"must be at least {text(minimum)}, got {text(value)}"
     if maximum is not None and value > maximum:
-        return f"must be at most {maximum:g} ({unit}), got {value:g}"
+        return f"must be at most {text(maximum)}, got {text(value)}"
     return None
 
 

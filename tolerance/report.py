@@ -556,6 +556,22 @@ WORST_CASE_METHODS = (
     "not solve.")
 
 
+def paired_sentence(change: dict | None, what: str, first: str, second: str) -> str | None:
+    """One sentence on a yield change measured unit by unit (:func:`stats.paired_difference`)
+    between the runs named ``first`` and ``second``."""
+    if not isinstance(change, dict) or "difference" not in change:
+        return None
+    p = change.get("p_value")
+    shown = ("a change at 5 % significance" if isinstance(p, (int, float)) and p < 0.05
+             else "no change shown at 5 % significance")
+    return (f"Unit by unit (the same units in both runs) {what} changes the yield by "
+            f"{format_rate(change['difference'])} (95 % interval "
+            f"{format_interval(change.get('ci_low'), change.get('ci_high'))}): "
+            f"{format_number(change.get('only_first'))} units pass only {first}, "
+            f"{format_number(change.get('only_second'))} only {second}; exact McNemar "
+            f"p = {p:.2g}, {shown}.")
+
+
 def whatif_tables(data: dict) -> list[Table]:
     """A what-if as tables: the pins, yield and verdict of the baseline and the pinned run,
     each criterion's counted rate, and each metric's 0.1 % and 99.9 % points."""
@@ -643,12 +659,42 @@ def choose_table(data: dict) -> Table:
                      f"{format_yield(c['ci_low'], 3)} .. {format_yield(c['ci_high'], 3)}",
                      *(format_value(c.get(m), t.get("unit")) for m, t in trade.items()),
                      f"{worst} {format_rate(rates[worst])}" if worst else "-",
+                     _versus_best(c, c == best),
                      ", ".join(marks)])
-        classes.append([""] * (len(names) + 3 + len(trade)) + ["v-pass" if c == best else ""])
+        classes.append([""] * (len(names) + 4 + len(trade)) + ["v-pass" if c == best else ""])
     return Table([*names, "yield %", "95 % interval %",
                   *(f"{m} {t.get('statistic', '')}".strip() for m, t in trade.items()),
-                  "fails most", ""],
+                  "fails most", "yield vs best, paired", ""],
                  rows, "choose-table", "Candidates (common random numbers)", classes)
+
+
+def _versus_best(candidate: dict, is_best: bool) -> str:
+    """A candidate's yield change against the best one, unit by unit, and its p-value."""
+    v = candidate.get("vs_best")
+    if is_best or not isinstance(v, dict) or "difference" not in v:
+        return "-"
+    return f"{format_rate(v['difference'])} (p {v['p_value']:.2g})"
+
+
+def choose_separation(data: dict) -> str | None:
+    """Whether the best candidate's lead is more than the draw: the candidates whose yield
+    an exact McNemar test on the same units does not tell from the best's at 5 %."""
+    best = data.get("best") or {}
+    units = data.get("units") or {}
+    close = [c for c in data.get("candidates") or []
+             if c != best and isinstance(c.get("vs_best"), dict)
+             and c["vs_best"].get("p_value", 0.0) >= 0.05]
+    if not any(isinstance(c.get("vs_best"), dict) for c in data.get("candidates") or []):
+        return None
+    if not close:
+        return ("Unit by unit (the same units for every candidate) the best candidate's yield "
+                "is ahead of every other at 5 % significance (exact McNemar test).")
+    names = ["; ".join(f"{n} = {format_value(v, units.get(n))}"
+                       for n, v in (c.get("values") or {}).items()) for c in close]
+    return (f"Unit by unit (the same units for every candidate) the best candidate's yield is "
+            f"not told apart at 5 % significance (exact McNemar test) from {', '.join(names)}: "
+            "the choice among them is not settled by this run; more samples would settle it, "
+            "or take the one the other figures favour.")
 
 
 def _worstcase_blocks(data: dict) -> list[Block]:
@@ -675,10 +721,13 @@ def _whatif_blocks(data: dict) -> list[Block]:
     followers = data.get("followers") or []
     moved = (f" and their correlated partners {', '.join(followers)}, drawn given the pins "
              "(each unit keeps its own deviation from the conditional mean)" if followers else "")
-    return [Block("p", f"{format_number(data.get('samples'))} samples each, common random "
-                       f"numbers: the pinned run differs from the baseline only by the pins"
-                       f"{moved}.")
-            ] + [Block("table", table=t) for t in whatif_tables(data)]
+    change = paired_sentence(data.get("yield_change"), "the pin", "in the baseline",
+                             "pinned")
+    return ([Block("p", f"{format_number(data.get('samples'))} samples each, common random "
+                        f"numbers: the pinned run differs from the baseline only by the pins"
+                        f"{moved}.")]
+            + ([Block("p", change)] if change else [])
+            + [Block("table", table=t) for t in whatif_tables(data)])
 
 
 def _sensitivity_blocks(data: dict) -> list[Block]:
@@ -697,10 +746,12 @@ def _choose_blocks(data: dict) -> list[Block]:
     units = data.get("units") or {}
     text = ", ".join(f"{n} = {format_value(v, units.get(n))}"
                      for n, v in (best.get("values") or {}).items())
-    return [Block("p", f"{format_number(data.get('samples'))} samples per candidate. Best: "
-                       f"{text} (yield {format_rate(best.get('yield'))}); the frontier holds "
-                       "the candidates no other beats on both trade-off metrics."),
-            Block("table", table=choose_table(data))]
+    separation = choose_separation(data)
+    return ([Block("p", f"{format_number(data.get('samples'))} samples per candidate. Best: "
+                        f"{text} (yield {format_rate(best.get('yield'))}); the frontier holds "
+                        "the candidates no other beats on both trade-off metrics.")]
+            + ([Block("p", separation)] if separation else [])
+            + [Block("table", table=choose_table(data))])
 
 
 #: the section builder of each analysis file; a file they cannot read (written by hand or by

@@ -85,6 +85,52 @@ def clopper_pearson(failures, n, confidence: float = 0.95):
     return low, high
 
 
+def paired_difference(first_passes, second_passes, confidence: float = 0.95) -> dict:
+    """Difference of two yields measured on the same units (common random numbers).
+
+    Parameters
+    ----------
+    first_passes, second_passes : array_like of bool
+        Whether each unit passes in the first and in the second run, unit by unit.
+    confidence : float, optional
+        Two-sided confidence level [1], default 0.95.
+
+    Returns
+    -------
+    dict
+        ``difference`` (second yield minus first [1]), ``ci_low``, ``ci_high`` (its
+        interval [1]), ``only_first`` and ``only_second`` (units passing in one run only
+        [count]) and ``p_value`` (exact two-sided McNemar test of equal yields [1]).
+
+    Notes
+    -----
+    Only the units that pass in one run and fail in the other tell the runs apart; given
+    their number m, those passing only in the second run are Binomial(m, pi), pi = 1/2
+    when the yields are equal (McNemar 1947; the exact conditional test). The interval
+    takes the Clopper-Pearson interval of pi and maps it to the difference
+    (m / n)(2 pi - 1): the exact conditional interval (Agresti, "Categorical Data
+    Analysis", section on matched pairs, from memory). Paired, two yields of 23.5 % and
+    23.3 % over the same 5,000 units can differ significantly where their own intervals,
+    each 2.4 % wide, overlap entirely.
+    """
+    a = np.asarray(first_passes, dtype=bool).reshape(-1)
+    b = np.asarray(second_passes, dtype=bool).reshape(-1)
+    if a.size != b.size or a.size == 0:
+        raise ValueError(f"need two pass columns of the same units, got {a.size} and {b.size}")
+    n = a.size
+    only_first = int(np.count_nonzero(a & ~b))
+    only_second = int(np.count_nonzero(b & ~a))
+    m = only_first + only_second
+    if m == 0:
+        return {"difference": 0.0, "ci_low": 0.0, "ci_high": 0.0, "only_first": 0,
+                "only_second": 0, "p_value": 1.0}
+    low, high = clopper_pearson(only_second, m, confidence)
+    p_value = float(stats.binomtest(only_second, m, 0.5).pvalue)
+    return {"difference": (only_second - only_first) / n,
+            "ci_low": m / n * (2.0 * low - 1.0), "ci_high": m / n * (2.0 * high - 1.0),
+            "only_first": only_first, "only_second": only_second, "p_value": min(p_value, 1.0)}
+
+
 def half_width(failures, n, confidence: float = 0.95):
     """Half the width of the Clopper-Pearson interval.
 

@@ -38,11 +38,12 @@ def _pin_value(study: Study, name: str, spec: str) -> float:
                          f"{parameter_hint(name, study.parameter_names)}; parameters: "
                          f"{', '.join(study.parameter_names)}") from None
     spec = spec.strip()
-    if spec == "min":
+    word = spec.lower()  # MIN, Max and p50, P50 alike
+    if word == "min":
         return p.low
-    if spec == "max":
+    if word == "max":
         return p.high
-    if spec in ("nominal", "nom", "typ"):
+    if word in ("nominal", "nom", "typ"):
         return p.nominal
     m = _PERCENTILE.match(spec)
     if m:
@@ -107,6 +108,8 @@ def whatif(study: Study, pins: list[str], samples: int | None = None, seed: int 
     (dict, RunResult, RunResult)
         The comparison (written as whatif.json), the baseline and the pinned run.
     """
+    from tolerance.stats import paired_difference  # scipy.stats: only where a run compares
+
     if not pins:
         raise UsageError("whatif needs at least one --pin NAME=VALUE|min|max|pNN")
     overrides = parse_pins(study, pins)
@@ -126,6 +129,9 @@ def whatif(study: Study, pins: list[str], samples: int | None = None, seed: int 
         "followers": sorted({n for c in study.correlations if set(c.parameters) & set(overrides)
                              for n in c.parameters if n not in overrides}),
         **compare(base.summary, pinned.summary),
+        # the same units in both runs: their yields compared unit by unit, which resolves
+        # differences far inside either run's own interval
+        "yield_change": paired_difference(base.column("pass"), pinned.column("pass")),
         "evaluations": 2 * base.summary["samples"],
     }
     return result, base, pinned
