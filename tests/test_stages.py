@@ -1442,3 +1442,37 @@ def test_a_pwm_heater_is_rated_on_its_average_power():
     assert (v * df["load_current"] > 8.0).all()  # the on-state's power, twice the rating
     assert df["pass.load_rating"].mean() > 0.5
     assert (df["pass.load_rating"] == (df["load_power"] <= 4.0)).all()
+
+
+@pytest.mark.parametrize("study_file, expected", [
+    ("unclamped_valve_single.toml", "inf"),
+    ("door_relay_zener_single.toml", "clamp"),
+])
+def test_a_coil_without_the_transient_still_meets_its_turn_off_kick(tmp_path, study_file,
+                                                                     expected):
+    # common practice, no source: at turn-off a coil holds its current, so the switch rises
+    # to the supply plus the clamp's reverse voltage (diode forward + zener), and without a
+    # clamp into breakdown; with the transient off the off-state V_S alone passed an
+    # unclamped valve's breakdown check in every unit
+    root = Path(__file__).resolve().parent.parent / "studies"
+    text = (root / study_file).read_text(encoding="utf-8")
+    text = text.replace("[supply]", "[switching]\nenabled = false\n\n[supply]", 1)
+    # limits on the transient's own metrics are refused without it
+    text = re.sub(r"(?m)^(avalanche_energy|release_time|storage_time|turn_off_delay) =.*$",
+                  "", text)
+    path = tmp_path / study_file
+    path.write_text(text, encoding="utf-8")
+    study = load_study(path)
+    assert "storage_time" not in study.stage.metrics
+    from tolerance.api import run
+
+    res = run(study, samples=64, seed=3)
+    peak = res.samples["vce_peak"].to_numpy()
+    supply = res.samples["supply.voltage"].to_numpy()
+    if expected == "inf":
+        assert np.all(np.isinf(peak)) and res.summary["criteria"]["breakdown"]["failures"] == 64
+    else:
+        clamp = res.samples["load.clamp_voltage"].to_numpy()
+        forward = study.stage.load.clamp_forward_voltage
+        np.testing.assert_allclose(peak, supply + clamp + forward, rtol=1e-12)
+        assert np.all(peak > supply + 10.0)

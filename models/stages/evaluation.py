@@ -187,7 +187,8 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
     m["thermal_runaway"] = MetricInfo("1", "1 when the electro-thermal loop does not settle or "
                                            "settles above T_j max")
     m["vce_peak"] = MetricInfo("V", "highest collector-emitter voltage of the output (off-state "
-                                    "or transient)")
+                                    "or transient; a coil with the transient off: V_S + V_clamp, "
+                                    "infinite without a clamp)")
     m["peak_current"] = MetricInfo("A", "highest collector current the output carries (a "
                                         "lamp's inrush as far as the drive allows)")
     crit.append(Criterion("thermal_runaway", "thermal_runaway", maximum=0.0, source="rating",
@@ -757,6 +758,14 @@ def evaluate_stage(stage, samples):
         if "edge_fill" in stage.metrics:
             out["edge_fill"] = edge_fill(out, stage.drive.frequency, duty)
     load_state = res["load_state"]
+    if sw_metrics is None and stage.load.kind == "coil":
+        # without the transient a coil's turn-off still drives the switch to the clamp's
+        # level, V_S + V_clamp (closed form, Coil.turn_off_peak_voltage), and without a
+        # clamp into breakdown (infinite: the winding's energy has no other way out); the
+        # off-state voltage alone passed an unclamped valve's breakdown check
+        kick = load_state.turn_off_peak_voltage(np.asarray(samples[stage.env.supply],
+                                                           dtype=float))
+        out["vce_peak"] = np.fmax(out["vce_peak"], kick)
     if "release_time" in stage.metrics:
         # the switching times follow the switch current, which a clamp takes over in
         # nanoseconds; a relay or valve releases on the winding's current, which decays
