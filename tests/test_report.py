@@ -179,6 +179,42 @@ def test_report_is_self_contained_and_images_decode(folder):
         assert img.shape[0] > 100 and img.shape[1] > 100
 
 
+def test_the_caution_and_the_studys_notes_stand_by_the_verdict(tmp_path):
+    # common practice, no source: a review reads the verdict and stops; the caution and a
+    # rating the study loosened (a T_j limit of 200 degC on a 150 degC part) stand there,
+    # before the metrics and the figures
+    path = tmp_path / "loose.toml"
+    path.write_text(textwrap.dedent("""
+        stage = "single"
+        title = "a loosened rating"
+        [run]
+        samples = 200
+        [supply]
+        voltage = "12 V"
+        [drive]
+        high = "3.3 V"
+        [parts.RB]
+        value = "1k"
+        [parts.Q1]
+        device = "medium_power_npn"
+        [load]
+        kind = "resistor"
+        resistance = "150 ohm"
+        [limits]
+        tj_output = {max = "200 degC"}
+        """), encoding="utf-8")
+    study = load_study(path)
+    [note] = study.notes()
+    assert "loosen the rating tj_max_output" in note and "<= 150 degC" in note
+    res = run(study, out=tmp_path / "r")
+    assert res.summary["study_notes"] == [note]
+    report.write_reports(res.folder)
+    md = (res.folder / "report.md").read_text(encoding="utf-8")
+    assert md.index("Overall verdict") < md.index(SAFETY) < md.index("## Metrics")
+    assert md.index("Overall verdict") < md.index("loosen the rating tj_max_output") \
+        < md.index("## Metrics")
+
+
 def test_sections_caution_and_stamp(folder):
     summary = json.loads((folder / "summary.json").read_text())
     html_text = (folder / "report.html").read_text(encoding="utf-8")

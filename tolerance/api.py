@@ -402,7 +402,9 @@ def _run_into(study, spec, out, made, chunk, jobs, progress, resume, force, back
 def _extra(study: Study, column, insights: bool, threads: int = 1) -> dict:
     from tolerance.analysis import insights as _insights
 
-    return _insights(study, column, threads) if insights else {}
+    extra = _insights(study, column, threads) if insights else {}
+    extra["study_notes"] = study.notes()
+    return extra
 
 
 def target_status(summary: dict, width: float) -> dict:

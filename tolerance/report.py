@@ -1178,6 +1178,11 @@ def _summary_blocks(summary: dict) -> list[Block]:
     basis = verdict_basis(summary)
     if basis:
         doc.append(Block("p", basis))
+    # next to the verdict, where a reader stops: not after the figures
+    doc.append(Block("note", "Caution: " + SAFETY))
+    # what the study itself asks a reviewer to read first (Study.notes)
+    for note in summary.get("study_notes") or []:
+        doc.append(Block("note", str(note)))
     y = summary.get("yield", {})
     if y:
         doc.append(Block("p", f"Yield {format_rate(y.get('estimate'))} "
@@ -1281,6 +1286,7 @@ def build_document(summary: dict | None, extras: dict,
     else:
         doc.append(Block("p", f"Study {info.get('study', '-')}; analysis files: "
                               f"{', '.join(extras)}."))
+        doc.append(Block("note", "Caution: " + SAFETY))
 
     for fname, section in EXTRA_FILES.items():
         if fname in extras:
@@ -1297,8 +1303,6 @@ def build_document(summary: dict | None, extras: dict,
         for rel, data, caption in figures:
             doc.append(Block("figure", caption, path=rel, data=data))
 
-    doc.append(Block("h2", "Caution"))
-    doc.append(Block("note", SAFETY))
     doc.append(Block("h2", "Reproducibility"))
     doc.append(Block("p", "Re-running the study file with this seed, sample count and sampler "
                           "reproduces every counted figure; the command \"tolerance report\" on "

@@ -525,10 +525,11 @@ class Study:
         raise KeyError(name)
 
     def notes(self) -> list[str]:
-        """Sentences on a valid study that a reviewer should read before its results: an
-        ambient range reaching above a transistor's T_j max (where no circuit helps and the
-        device models leave their range)."""
-        out = []
+        """Sentences on a valid study that a reviewer should read before its results: a
+        rating the study's [limits] loosen, and an ambient range reaching above a
+        transistor's T_j max (where no circuit helps and the device models leave their
+        range)."""
+        out = self._relaxed_ratings()
         thermal = getattr(self.stage, "thermal", None)
         env = getattr(self.stage, "env", None)
         if thermal is None or env is None or env.temperature not in self.parameter_names:
@@ -543,6 +544,31 @@ class Study:
                        f"the T_j max of "
                        f"{names}: units there fail T_j max whatever the circuit does, and the "
                        f"device models work outside their range (some may not converge).")
+        return out
+
+    def _relaxed_ratings(self) -> list[str]:
+        """A sentence per rating whose limit the study's [limits] table loosens: the study's
+        limit is what the verdict judges, which a reviewer must see (a T_j limit of 200 degC
+        on a 150 degC part passed units that thermal_runaway, still on the rating, failed)."""
+        out = []
+        ratings = {c.metric: c for c in self.stage.criteria if c.source == "rating"}
+        for c in self.criteria:
+            d = ratings.get(c.metric)
+            if d is None or c.source != "rating":
+                continue
+            looser = ((d.maximum is not None and (c.maximum is None or c.maximum > d.maximum))
+                      or (d.minimum is not None and (c.minimum is None or c.minimum < d.minimum)))
+            if not looser:
+                continue
+            unit = self.stage.metrics[c.metric].unit
+
+            def fmt(x, unit=unit):
+                return format_quantity(x, unit)
+
+            out.append(f"The study's [limits] loosen the rating {c.name}: {c.metric} "
+                       f"{c.limit_text(fmt)} where the part allows {d.limit_text(fmt)}. The "
+                       f"verdict judges the study's limit; the part's other checks (thermal "
+                       f"runaway, stresses) keep its rating.")
         return out
 
     def run(self, **kwargs):
