@@ -346,6 +346,11 @@ def test_choose_on_the_beacon_weighs_drive_against_the_lamp_inrush():
     assert driver[0] > 0.5 and all(b < a for a, b in zip(driver, driver[1:]))
     pulse = [c["criteria"]["pulse_energy"] for c in result["candidates"]]
     assert all(b > a for a, b in zip(pulse, pulse[1:]))
+    # every candidate fails a criterion: the report says the best is only the least bad
+    from tolerance.report import choose_separation
+
+    assert all(c["verdict"] == "fail" for c in result["candidates"])
+    assert choose_separation(result).startswith("No candidate passes every criterion")
 
 
 def test_worst_case_of_linear_stage_is_exact(study):

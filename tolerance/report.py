@@ -678,7 +678,20 @@ def _versus_best(candidate: dict, is_best: bool) -> str:
 
 def choose_separation(data: dict) -> str | None:
     """Whether the best candidate's lead is more than the draw: the candidates whose yield
-    an exact McNemar test on the same units does not tell from the best's at 5 %."""
+    an exact McNemar test on the same units does not tell from the best's at 5 %; and, when
+    no candidate passes, that the best is only the least bad."""
+    failing = [c for c in data.get("candidates") or [] if isinstance(c, dict)]
+    if failing and all(c.get("verdict") == "fail" for c in failing):
+        lead = ("No candidate passes every criterion: the best is the one with the highest "
+                "yield, not a design that passes; the choice alone does not make this stage "
+                "pass. ")
+    else:
+        lead = ""
+    text = _choose_separation(data)
+    return (lead + (text or "")).strip() or None
+
+
+def _choose_separation(data: dict) -> str | None:
     best = data.get("best") or {}
     units = data.get("units") or {}
     close = [c for c in data.get("candidates") or []
