@@ -691,6 +691,13 @@ def test_converged_units_without_a_value_are_counted_and_named():
     note = report.undefined_note(s)
     assert "tj_output 1 of 4" in note and "thermal runaway" in note and "k " not in note
     assert report.undefined_note({"samples": 4, "metrics": {"k": s["metrics"]["k"]}}) is None
+    # a metric the study does not define (no PWM frequency) is no failure of every unit
+    absent = {"samples": 4, "not_converged": 1, "criteria": {},
+              "metrics": {"transition_fraction": {"undefined": 3, "unit": "1"}}}
+    note = report.undefined_note(absent)
+    assert note.startswith("Not defined for this study") and "fail" not in note
+    judged = dict(absent, criteria={"c": {"metric": "transition_fraction"}})
+    assert "fail any criterion" in report.undefined_note(judged)
 
 
 def test_whatif_folder_without_its_samples_says_why_there_are_no_overlays(tmp_path):

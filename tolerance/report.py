@@ -250,17 +250,31 @@ def undefined_note(summary: dict) -> str | None:
     thermal runaway settles at no junction temperature), which the percentiles leave out
     while the counted criteria fail them."""
     n = summary.get("samples")
+    limited = {c.get("metric") for c in (summary.get("criteria") or {}).values()
+               if isinstance(c, dict)}
     missing = [(name, m) for name, m in summary.get("metrics", {}).items()
                if m.get("undefined")]
-    if not missing:
-        return None
-    parts = [f"{name} {format_number(m['undefined'])} of {format_number(n)}"
-             for name, m in missing]
-    why = (" (a unit in thermal runaway settles at no junction temperature)"
-           if any(name.startswith(("tj_", "hot_spot")) for name, _ in missing) else "")
-    return (f"Units without a value{why} are left out of the percentiles, so the extremes "
-            "above do not show them; they fail any criterion on their metric: "
-            + ", ".join(parts) + ".")
+    # a metric no unit has and no criterion judges is one the study does not define (the
+    # transition fraction without a PWM frequency), not a failure of every unit
+    solved = (n - (summary.get("not_converged") or 0)) if isinstance(n, int) else None
+    absent = [name for name, m in missing
+              if name not in limited and solved and m["undefined"] >= solved]
+    missing = [(name, m) for name, m in missing if name not in absent]
+    said = []
+    if missing:
+        parts = [f"{name} {format_number(m['undefined'])} of {format_number(n)}"
+                 for name, m in missing]
+        why = (" (a unit in thermal runaway settles at no junction temperature)"
+               if any(name.startswith(("tj_", "hot_spot")) for name, _ in missing) else "")
+        said.append(f"Units without a value{why} are left out of the percentiles, so the "
+                    "extremes above do not show them; they fail any criterion on their "
+                    "metric: " + ", ".join(parts) + ".")
+    if absent:
+        why = (" (the transition fraction needs a PWM frequency in [drive])"
+               if "transition_fraction" in absent else "")
+        said.append(f"Not defined for this study{why}, so no unit has a value and no "
+                    f"criterion judges it: {', '.join(absent)}.")
+    return " ".join(said) or None
 
 
 def verdict_basis(summary: dict) -> str | None:
@@ -546,7 +560,9 @@ def worstcase_tables(data: dict) -> list[Table]:
 WORST_CASE_METHODS = (
     "EVA: every parameter at an end of its range (all corners, or the corners the "
     "sensitivities at nominal point to where there are too many). RSS: the sensitivities at "
-    "nominal times the half-ranges, added in quadrature; it takes the metric as linear and the "
+    "nominal times each parameter's room to its own limit on each side, added in quadrature "
+    "(a discrete set: the metric's change at the set's ends); it takes the metric as linear "
+    "and the "
     "parameters as independent, so for a metric exponential in its inputs (leakage, off "
     "current) the band can reach values the circuit cannot (a negative current). Optimizer: "
     "bounded searches from several starts for the limited metrics, which finds an extreme "
