@@ -339,7 +339,9 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
     if supply_minimum is not None and vce_sat is not None and vce_sat >= supply_minimum:
         key = "vce_sat_max" if part.has("vce_sat_max") else "device"
         raise part.error(key, f"the saturation voltage {vce_sat:g} V is at or above the "
-                              f"lowest supply {supply_minimum:g} V")
+                              f"lowest supply {supply_minimum:g} V ([supply] voltage): the "
+                              f"stage could never saturate; check the supply's value and "
+                              f"unit")
     try:
         ds = Datasheet.from_figures(figures)
     except DatasheetError as exc:
@@ -357,8 +359,18 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
     try:
         fitted = device_for(ds.figures())
     except DatasheetError as exc:
-        raise part.error(exc.key if part.has(exc.key) else "device",
-                         f"{exc.key}: {exc.message}") from None
+        if part.has(exc.key):
+            raise part.error(exc.key, exc.message) from None
+        given = [k for k in figures if part.has(k)] + (["hfe"] if part.has("hfe") else [])
+        if device is None or not given:
+            raise part.error("device", f"{exc.key}: {exc.message}") from None
+        # a class figure the study did not write, against one it did (hfe_min = 60 on a
+        # class whose gain at high current is 20: the model's fall-off cannot join them)
+        value = figures.get(exc.key)
+        shown = f" = {value:g}" if isinstance(value, (int, float)) else ""
+        raise part.error(given[0], f"with {', '.join(given)} as given, the device class's "
+                                   f"{exc.key}{shown} {exc.message}; give {exc.key} for "
+                                   f"this part as well (its datasheet's figure)") from None
 
     if hfe_spec is None:
         hfe_spec = {"min": ds.hfe_min, "max": ds.hfe_max, "distribution": "lognormal"}

@@ -15,6 +15,7 @@ import difflib
 import hashlib
 import itertools
 import math
+import re
 import tomllib
 import unicodedata
 from dataclasses import dataclass, field
@@ -72,7 +73,15 @@ _BASE_EMITTER_NAMES = ("RPD", "RBE1", "RBE2")
 
 def _part_role_hint(key: str, roles: set, stage_name: str) -> str | None:
     """For a base-emitter resistor named as in another stage (``RBE1`` on the single stage,
-    ``RPD`` on a pair), the names this stage uses; None otherwise."""
+    ``RPD`` on a pair) or a transistor the stage does not have (``Q2`` on the single
+    stage), the names this stage uses; None otherwise."""
+    if re.fullmatch(r"[Qq]\d+", key):
+        have = sorted(r for r in roles if re.fullmatch(r"Q\d+", r))
+        if have and key not in have:
+            return (f"; the {stage_name} stage's transistor"
+                    + ("s are " if len(have) > 1 else " is ")
+                    + " and ".join(f"'{n}'" for n in have))
+        return None
     if key.upper() not in _BASE_EMITTER_NAMES + ("RBE",):
         return None
     names = [n for n in _BASE_EMITTER_NAMES if n in roles]
@@ -81,6 +90,14 @@ def _part_role_hint(key: str, roles: set, stage_name: str) -> str | None:
     return (f"; the {stage_name} stage's base-emitter resistor"
             + ("s are " if len(names) > 1 else " is ")
             + " and ".join(f"'{n}'" for n in names))
+
+
+def _shown(x: float, unit: str) -> str:
+    """A value in its unit as a study writes it (a temperature in degC, not kelvin)."""
+    try:
+        return format_quantity(x, unit, 6)
+    except UnitError:
+        return f"{x:g}"
 
 
 def _type_name(value: Any) -> str:
@@ -344,7 +361,8 @@ class Reader:
             self._check_range("min", lo, unit, positive, minimum, maximum)
             self._check_range("max", hi, unit, positive, minimum, maximum)
             if lo > hi:
-                raise self.error("min", f"min ({lo:g}) is above max ({hi:g})")
+                raise self.error("min", f"min ({_shown(lo, unit)}) is above max "
+                                        f"({_shown(hi, unit)})")
             if self.has("typ") and self.has("nominal"):
                 raise self.error("nominal", "give typ or nominal, not both (they mean the same "
                                             "here)")
@@ -465,7 +483,11 @@ class Reader:
                     "its unit",
                 ) from None
             if not 0 <= rel < 1:
-                raise self.error("tolerance", f"must be at least 0 and below 100 %, got {rel:g}")
+                hint = (f" (a plain number is a fraction: {rel:g} is {100 * rel:g} %; write "
+                        f"\"{rel:g}%\" or {rel / 100:g} for {rel:g} percent)"
+                        if 1 <= rel < 100 and _is_plain_number(raw) else "")
+                raise self.error("tolerance", f"must be at least 0 and below 100 %, got "
+                                              f"{rel:g}{hint}")
             if unit == "temperature" and rel > 0:
                 # a share of an absolute temperature: 10 % of 0 degC was +-27.3 K
                 raise self.error("tolerance", f"{raw!r} would be a share of the absolute "
@@ -771,7 +793,8 @@ def _read_limits(r: Reader, stage: ConfiguredStage) -> tuple[Criterion, ...]:
         lo = spec.optional_quantity("min", unit)
         hi = spec.optional_quantity("max", unit)
         if lo is not None and hi is not None and lo > hi:
-            raise spec.error("min", f"min ({lo:g}) is above max ({hi:g})")
+            raise spec.error("min", f"min ({_shown(lo, unit)}) is above max "
+                                    f"({_shown(hi, unit)})")
         if unit == "temperature":
             # "100 K" meant as 100 degC (or as a rise) would fail every unit without a word
             for side, value in (("min", lo), ("max", hi)):
