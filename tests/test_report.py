@@ -213,6 +213,14 @@ def test_the_caution_and_the_studys_notes_stand_by_the_verdict(tmp_path):
     assert md.index("Overall verdict") < md.index(SAFETY) < md.index("## Metrics")
     assert md.index("Overall verdict") < md.index("loosen the rating tj_max_output") \
         < md.index("## Metrics")
+    # the figures the transistor was fitted to, with where they came from (common
+    # practice, no source: a review checks what was assumed, not a hash); the class's
+    # free-air theta_JA of 100 K/W
+    assert "## Devices assumed" in md and "from memory" in md
+    row = next(line for line in md.splitlines() if line.startswith("| Q1 |"))
+    for text in ("medium_power_npn", "NPN", "40 .. 250 at 150 mA", "45 V", "1.5 A",
+                 "150 degC", "100 K/W"):
+        assert text in row
 
 
 def test_sections_caution_and_stamp(folder):

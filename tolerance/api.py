@@ -404,6 +404,9 @@ def _extra(study: Study, column, insights: bool, threads: int = 1) -> dict:
 
     extra = _insights(study, column, threads) if insights else {}
     extra["study_notes"] = study.notes()
+    assumed = getattr(study.stage, "assumptions", None)
+    if assumed is not None:
+        extra["devices"] = assumed()
     return extra
 
 

@@ -1197,6 +1197,32 @@ def target_sentence(target: dict, rate) -> str:
             "more samples would narrow it.")
 
 
+#: what the device table means and what it asks of a reviewer
+DEVICES_NOTE = (
+    "The datasheet figures each transistor's model was fitted to: its device class's, with "
+    "any figure the study gives in their place. The library's classes hold typical class "
+    "values from memory, not a datasheet: for a sign-off enter the chosen part's own figures "
+    "under [parts.Q1] (README, 'Stage keys') and check them here. theta_JA is the path the stage uses, a heatsink "
+    "included.")
+
+#: the device table's columns: heading, key of :func:`models.stages.evaluation.device_assumptions`
+DEVICE_COLUMNS = (("part", "part"), ("class", "class"), ("type", "polarity"),
+                  ("h_FE min .. max", "hfe"), ("V_CE(sat) max", "vce_sat_max"),
+                  ("V_BE(on)", "vbe_on"), ("I_CBO max", "icbo_max"),
+                  ("V_(BR)CEO", "breakdown_vceo"), ("I_C max", "ic_max"),
+                  ("P_tot", "power_rating"), ("T_j max", "tj_max"), ("theta_JA", "theta_ja"))
+
+
+def device_table(devices) -> Table | None:
+    """The devices a run assumed (summary ``devices``) as a table; None without them."""
+    if not isinstance(devices, list) or not devices:
+        return None
+    rows = [[str(d.get(key, "-")) for _, key in DEVICE_COLUMNS]
+            for d in devices if isinstance(d, dict)]
+    return Table([h for h, _ in DEVICE_COLUMNS], rows, "device-table",
+                 "Datasheet figures of each transistor")
+
+
 def _summary_blocks(summary: dict) -> list[Block]:
     doc: list[Block] = []
     doc.append(Block("h2", "Verdict"))
@@ -1248,6 +1274,11 @@ def _summary_blocks(summary: dict) -> list[Block]:
     if summary.get("parameters"):
         doc.append(Block("h2", "Parameters"))
         doc.append(Block("table", table=parameter_table(summary["parameters"])))
+    devices = device_table(summary.get("devices"))
+    if devices is not None:
+        doc.append(Block("h2", "Devices assumed"))
+        doc.append(Block("p", DEVICES_NOTE))
+        doc.append(Block("table", table=devices))
 
     if summary.get("capability"):
         doc.append(Block("h2", "Capability"))

@@ -502,6 +502,12 @@ class PairStage:
 
     devices = ("Q1", "Q2")
 
+    def assumptions(self) -> list[dict]:
+        """Each transistor's device class and fitted datasheet figures, for the report."""
+        from tolerance.models.stages.evaluation import device_assumptions
+
+        return device_assumptions(self)
+
     def transistors(self):
         """The stage's transistors by name (for ratings and the thermal network)."""
         return {"Q1": self.q1, "Q2": self.q2}

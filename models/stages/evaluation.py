@@ -798,3 +798,33 @@ def evaluate_stage(stage, samples):
         raise KeyError(f"stage {stage.name} did not produce {sorted(missing)}")
     out["converged"] = converged
     return out
+
+
+def device_assumptions(stage) -> list[dict]:
+    """What each transistor of a stage was taken to be: its device class (or the study's
+    own figures) and the datasheet figures the model was fitted to, as text in units, with
+    the thermal resistance to ambient the stage uses (a heatsink included). The report
+    lists them, so a review sees what was assumed, not only a study's hash."""
+    from tolerance.units import format_quantity as q
+
+    thermal = getattr(stage, "thermal", None)
+    rows = []
+    for name, part in stage.transistors().items():
+        ds = part.device.datasheet
+        theta = (thermal.theta.get(name) if thermal is not None else None) or ds.theta_ja
+        rows.append({
+            "part": name,
+            "class": part.device_class or "the study's own figures",
+            "polarity": ds.polarity.upper(),
+            "hfe": f"{ds.hfe_min:g} .. {ds.hfe_max:g} at {q(ds.hfe_current, 'A')}",
+            "vce_sat_max": f"{q(ds.vce_sat_max, 'V')} at {q(ds.vce_sat_ic, 'A')} / "
+                           f"{q(ds.vce_sat_ib, 'A')}",
+            "vbe_on": q(ds.vbe_on, "V"),
+            "icbo_max": q(ds.icbo_max, "A"),
+            "breakdown_vceo": q(ds.breakdown_vceo, "V"),
+            "ic_max": q(ds.ic_max, "A"),
+            "power_rating": q(ds.power_rating, "W"),
+            "tj_max": q(ds.tj_max, "temperature"),
+            "theta_ja": q(float(theta), "K/W"),
+        })
+    return rows

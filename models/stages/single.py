@@ -165,6 +165,12 @@ class SingleStage:
 
     devices = ("Q1",)
 
+    def assumptions(self) -> list[dict]:
+        """Each transistor's device class and fitted datasheet figures, for the report."""
+        from tolerance.models.stages.evaluation import device_assumptions
+
+        return device_assumptions(self)
+
     def transistors(self):
         """The stage's transistors by name (for ratings and the thermal network)."""
         return {"Q1": self.q1}
