@@ -152,6 +152,27 @@ def test_constant_inputs_and_outputs_give_nan_and_nan_rows_are_dropped():
     assert np.isfinite(_row(table, "a", "y1")["prcc"])
 
 
+def test_infinite_outputs_are_ranked_not_dropped():
+    # the units whose metric is infinite (a transition that never ends) are the worst ones:
+    # ranks are defined for them; scipy.stats.spearmanr on all rows as reference (it ranks
+    # -inf lowest). Dropped, x2's influence (it alone makes them) vanished.
+    rng = np.random.default_rng(5)
+    n = 2000
+    x = pd.DataFrame({"x1": rng.uniform(size=n), "x2": rng.uniform(size=n)})
+    y = x["x1"].to_numpy().copy()
+    y[x["x2"].to_numpy() < 0.2] = -np.inf
+    table = rank_sensitivity(x, pd.DataFrame({"y": y}))
+    row = _row(table, "x2", "y")
+    assert row["n"] == n and row["dropped"] == 0
+    ref = stats.spearmanr(x["x2"], y).statistic
+    assert row["spearman"] == pytest.approx(ref, abs=1e-12)
+    finite = np.isfinite(y)
+    assert abs(stats.spearmanr(x["x2"][finite], y[finite]).statistic) < 0.1 < row["spearman"]
+    # a monotone pair is exactly 1, not 1 + 2e-16
+    mono = rank_sensitivity(x[["x1"]], pd.DataFrame({"y": 3.0 * x["x1"]}))
+    assert _row(mono, "x1", "y")["spearman"] <= 1.0
+
+
 def test_rank_sensitivity_rejects_misaligned_frames():
     with pytest.raises(ValueError, match="rows"):
         rank_sensitivity(pd.DataFrame({"a": [1.0, 2.0]}), pd.DataFrame({"y": [1.0]}))

@@ -177,7 +177,8 @@ def _rank_measures(x: np.ndarray, y: np.ndarray, threads: int = 1
     rho = zx.T @ zy / n  # (p, m) rank correlations
     rho[const_x, :] = np.nan
     rho[:, const_y] = np.nan
-    spearman[:] = rho
+    # a correlation, so within [-1, 1] (rounding gave 1.0000000000000002 for a monotone pair)
+    spearman[:] = np.clip(rho, -1.0, 1.0)
 
     keep = np.flatnonzero(~const_x)
     if keep.size == 0 or n <= keep.size + 1:
@@ -239,7 +240,8 @@ def rank_sensitivity(inputs: pd.DataFrame, outputs: pd.DataFrame, threads: int =
         ``n``
             Number of samples used for this metric.
         ``dropped``
-            Number of samples dropped for this metric (NaN output or NaN input).
+            Number of samples dropped for this metric (NaN output, or an input that is not
+            finite); an infinite output is ranked at its end.
 
         Constant inputs (fixed parameters) and constant metrics yield NaN measures rather
         than errors; so do collinear inputs for ``srrc`` and ``prcc``.
@@ -259,7 +261,9 @@ def rank_sensitivity(inputs: pd.DataFrame, outputs: pd.DataFrame, threads: int =
     x_all = inputs.to_numpy(dtype=float)
     y_all = outputs.to_numpy(dtype=float)
     x_ok = np.all(np.isfinite(x_all), axis=1)
-    y_ok = np.isfinite(y_all)
+    # an infinite metric has a rank (the last or the first): those are the worst units, so
+    # they stay; only a unit without a value (NaN) is dropped
+    y_ok = ~np.isnan(y_all)
     rows_ok = y_ok & x_ok[:, None]
 
     p, m = len(in_names), len(out_names)
