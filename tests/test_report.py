@@ -559,6 +559,14 @@ def test_analysis_only_folders(write_study, tmp_path):
     assert {"choose-yield.png", "choose-frontier.png"} <= {p.name for p in (c / "plots").iterdir()}
     md = (c / "report.md").read_text(encoding="utf-8")
     assert "## Value choice (choose.json)" in md and SAFETY in md
+    # a worst case draws no figure: no empty plots folder, and its stamp gives the sample
+    # count of its Monte Carlo run
+    k = tmp_path / "k"
+    assert main(["worstcase", str(path), "--out", str(k), "--quiet", "--samples", "200"]) == 0
+    assert not (k / "plots").exists()
+    stamp = dict(md_table_after((k / "report.md").read_text(encoding="utf-8"),
+                                "*Reproducibility stamp*")[1:])
+    assert stamp["samples"] == "200"
 
 
 def test_missing_results_are_reported(tmp_path):

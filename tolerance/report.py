@@ -1161,6 +1161,9 @@ def _stamp(summary: dict | None, extras: dict) -> Table:
     rows = []
     for k in STAMP_KEYS:
         value = next((src[k] for src in sources if k in src), None)
+        if value is None and k == "samples":  # a worst case's own Monte Carlo run
+            value = next((src["monte_carlo_samples"] for src in sources
+                          if "monte_carlo_samples" in src), None)
         rows.append([k, format_number(value)])
     return Table(["item", "value"], rows, "stamp", "Reproducibility stamp")
 
@@ -1570,6 +1573,8 @@ def write_reports(folder, jobs: int = 1) -> dict:
     if waveforms is not None:
         made += _waveform_plots(waveforms, plot_dir)
     paths = render_plots(made, jobs)
+    if not made and not any(plot_dir.iterdir()):
+        plot_dir.rmdir()  # an analysis without figures leaves no empty folder
     figures = [(f"{PLOTS_DIR}/{p.name}", p.read_bytes(), t.caption)
                for p, t in zip(paths, made) if isinstance(p, Path)]
     notes = {}
