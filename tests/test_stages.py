@@ -1476,3 +1476,22 @@ def test_a_coil_without_the_transient_still_meets_its_turn_off_kick(tmp_path, st
         forward = study.stage.load.clamp_forward_voltage
         np.testing.assert_allclose(peak, supply + clamp + forward, rtol=1e-12)
         assert np.all(peak > supply + 10.0)
+
+
+def test_the_study_names_what_its_figures_leave_unjudged(tmp_path):
+    # common practice, no source: a lamp's inrush energy with no pulse rating or limit is
+    # judged by nothing, and a coil's pull-in under PWM is judged at DC; both say so
+    root = Path(__file__).resolve().parent.parent / "studies"
+    beacon = (root / "beacon_lamp_darlington.toml").read_text(encoding="utf-8")
+    assert not [n for n in load_study(root / "beacon_lamp_darlington.toml").notes()
+                if "inrush" in n]
+    path = tmp_path / "lamp.toml"
+    path.write_text(re.sub(r"(?m)^pulse_energy =.*$", "", beacon), encoding="utf-8")
+    assert any("inrush_energy) is computed but judged by nothing" in n
+               for n in load_study(path).notes())
+    valve = (root / "irrigation_valve_single.toml").read_text(encoding="utf-8")
+    path = tmp_path / "valve.toml"
+    path.write_text(valve.replace("[drive]", '[drive]\nfrequency = "500 Hz"\nduty = 0.6', 1),
+                    encoding="utf-8")
+    assert any("pull-in (operate_margin) is judged at the on-state's DC voltage" in n
+               and "0.6 duty" in n for n in load_study(path).notes())

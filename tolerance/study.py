@@ -552,6 +552,9 @@ class Study:
         transistor's T_j max (where no circuit helps and the device models leave their
         range)."""
         out = self._relaxed_ratings()
+        stage_notes = getattr(self.stage, "review_notes", None)
+        if stage_notes is not None:
+            out += stage_notes(self.criteria)
         thermal = getattr(self.stage, "thermal", None)
         env = getattr(self.stage, "env", None)
         if thermal is None or env is None or env.temperature not in self.parameter_names:

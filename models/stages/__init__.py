@@ -502,6 +502,12 @@ class PairStage:
 
     devices = ("Q1", "Q2")
 
+    def review_notes(self, criteria) -> list[str]:
+        """What the stage's figures leave unjudged, for ``Study.notes``."""
+        from tolerance.models.stages.evaluation import review_notes
+
+        return review_notes(self, criteria)
+
     def assumptions(self) -> list[dict]:
         """Each transistor's device class and fitted datasheet figures, for the report."""
         from tolerance.models.stages.evaluation import device_assumptions

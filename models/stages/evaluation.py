@@ -828,3 +828,24 @@ def device_assumptions(stage) -> list[dict]:
             "theta_ja": q(float(theta), "K/W"),
         })
     return rows
+
+
+def review_notes(stage, criteria) -> list[str]:
+    """Sentences on what a stage's figures leave unjudged or take simply, for a reviewer
+    (``Study.notes``): a lamp's inrush energy with nothing to judge it against, and a coil's
+    pull-in judged at DC under a PWM drive whose period is shorter than its L/R."""
+    out = []
+    judged = {c.metric for c in criteria}
+    thermal = getattr(stage, "thermal", None)
+    if (stage.load.kind == "lamp" and "inrush_energy" not in judged
+            and not (thermal is not None and thermal.pulse_energy)):
+        out.append("The output's energy while it limits the cold lamp's inrush "
+                   "(inrush_energy) is computed but judged by nothing: give the output part's "
+                   "single-pulse rating (pulse_energy) or a [limits] inrush_energy.")
+    if stage.load.kind == "coil" and stage.drive.pwm and "operate_margin" in judged:
+        out.append(f"The coil's pull-in (operate_margin) is judged at the on-state's DC voltage; "
+                   f"on the {stage.drive.duty:g} duty PWM drive a coil whose L/R exceeds the "
+                   f"period sees about the duty times that on average, so pull it in with a "
+                   f"static drive first, or check the average against its must-operate "
+                   f"voltage.")
+    return out
