@@ -3,6 +3,7 @@ sensitivity, target interval, run insights."""
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 import numpy as np
@@ -617,3 +618,27 @@ def test_worst_case_says_it_takes_the_inputs_independent(write_study):
             '    coefficient = 0.5\n'
     result = study_worst_case(load_study(write_study(text)), 100, 1)
     assert any("independent" in n and n.endswith(".") for n in worstcase_notes(result))
+
+
+def test_equal_yields_go_to_the_candidate_with_the_most_room_to_its_limits():
+    # common practice, no source: of two candidates that both pass every unit, the robust
+    # choice is the one further from its limits at their 0.1 % / 99.9 % points
+    from types import SimpleNamespace
+
+    from tolerance.choose import robust_margin
+    from tolerance.protocol import Criterion
+
+    study = SimpleNamespace(criteria=[Criterion("sat", "drive_margin", minimum=1.5),
+                                      Criterion("off", "turn_off_delay", maximum=1.2e-6),
+                                      Criterion("flag", "thermal_runaway", maximum=0.0)])
+
+    def summary(p001, p999):
+        return {"metrics": {"drive_margin": {"p001": p001},
+                            "turn_off_delay": {"p999": p999},
+                            "thermal_runaway": {"p999": 0.0}}}
+
+    # drive margin 3 against 1.5: room 1.0; delay 0.6 us against 1.2 us: room 0.5
+    assert robust_margin(study, summary(3.0, 0.6e-6)) == pytest.approx(0.5)
+    # 5.6k: the delay within 8 % of its limit decides
+    assert robust_margin(study, summary(2.0, 1.1e-6)) == pytest.approx(1 / 12)
+    assert math.isnan(robust_margin(SimpleNamespace(criteria=[]), summary(1.0, 1.0)))

@@ -4,7 +4,8 @@ Each candidate moves the part's nominal to a preferred value of an IEC 60063 ser
 sample keeps its relative deviation from nominal (and every other parameter its values), so the
 candidates differ only by the choice itself. For each candidate: yield with its exact interval,
 each criterion's rate, percentiles of every metric. The best candidate has the highest yield
-(ties: the higher lower bound of the interval, then the value nearest the study's own nominal);
+(ties: the higher lower bound of the interval, then the most room to the limits at their robust
+ends, :func:`robust_margin`, then the value nearest the study's own nominal);
 a trade-off frontier between two metrics lists the candidates no other candidate beats on both.
 """
 
@@ -126,6 +127,24 @@ def frontier(points: list[dict], x: str, y: str, dx: int, dy: int) -> list[int]:
     return keep
 
 
+def robust_margin(study: Study, summary: dict) -> float:
+    """The smallest room a candidate leaves to any limit, relative to the limit: at each
+    criterion's robust end (the 0.1 % point against a minimum, the 99.9 % point against a
+    maximum), ``(p001 - min) / |min|`` or ``(max - p999) / |max|``; limits of zero (a
+    flag's) are left out. Among candidates of equal yield the one with the most room is
+    the robust choice (a dimmer's base resistors that all pass: 1k leaves its turn-off
+    delay half the limit, 5.6k within 8 % of it). NaN without a figure to judge."""
+    rooms = []
+    for c in study.criteria:
+        m = summary["metrics"].get(c.metric) or {}
+        for limit, end, sign in ((c.minimum, "p001", 1.0), (c.maximum, "p999", -1.0)):
+            value = m.get(end)
+            if limit is None or limit == 0 or value is None or not math.isfinite(limit):
+                continue
+            rooms.append(sign * (value - limit) / abs(limit))
+    return min(rooms) if rooms else math.nan
+
+
 def check_request(study: Study, varies: list[str], tradeoff: tuple[str, ...] | None = None
                   ) -> tuple[list[tuple[str, np.ndarray]], tuple[str, ...] | None]:
     """The sweeps and the trade-off metrics of a value choice, or a UsageError naming what is
@@ -230,9 +249,14 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
         for m in tradeoff:
             row[m] = s["metrics"][m][ends[m]]
 
+    for row, s in zip(candidates, summaries):
+        row["robust_margin"] = robust_margin(study, s)
+
     def rank_key(row):
         dist = sum(abs(math.log(row["values"][n] / study.parameter(n).nominal)) for n in names)
-        return (row["yield"], row["ci_low"], -dist)
+        margin = row["robust_margin"]
+        return (row["yield"], row["ci_low"], margin if math.isfinite(margin) else -math.inf,
+                -dist)
 
     best = max(range(len(candidates)), key=lambda i: rank_key(candidates[i]))
     # each candidate against the best on the same units (common random numbers): whether
