@@ -1226,6 +1226,18 @@ def device_table(devices) -> Table | None:
                  "Datasheet figures of each transistor")
 
 
+#: what the rank measures and the failure drivers mean, for a reader who has not met them
+SENSITIVITY_MEASURES = (
+    "Failure drivers: the inputs whose values among the failing units differ most from "
+    "those among the passing ones (Kolmogorov-Smirnov statistic and p-value), with the range "
+    "that holds most failures. Rank measures, from -1 to 1, positive where the metric rises "
+    "with the input: Spearman, the rank correlation of input and metric; SRRC, the "
+    "standardized coefficient of a regression of the metric's ranks on all inputs' ranks "
+    "(its square is about the input's share of the rank variance); PRCC, the correlation "
+    "left between input and metric once the other inputs' ranks are regressed out. They "
+    "measure monotone effects only.")
+
+
 def _summary_blocks(summary: dict) -> list[Block]:
     doc: list[Block] = []
     doc.append(Block("h2", "Verdict"))
@@ -1296,7 +1308,10 @@ def _summary_blocks(summary: dict) -> list[Block]:
         doc.append(Block("h2", "Tail estimates (model-based extrapolation, not counted)"))
         doc.append(Block("note", "These figures extrapolate fitted distributions beyond the "
                                  "samples drawn. They are not counted failures and do not enter "
-                                 "the verdict."))
+                                 "the verdict. The fits work on each unit's margin: its "
+                                 "distance to the limit in units of the metric's standard "
+                                 "deviation, negative where it fails (the quantiles in the "
+                                 "method column are margins)."))
         doc.append(Block("table", table=_per_criterion_table(
             summary["tail"], "Model-based tail estimates (extrapolated, not counted)")))
 
@@ -1304,6 +1319,7 @@ def _summary_blocks(summary: dict) -> list[Block]:
     drivers = summary.get("failure_drivers")
     if rows or drivers:
         doc.append(Block("h2", "Sensitivity and failure drivers"))
+        doc.append(Block("p", SENSITIVITY_MEASURES))
         for name, info in (drivers or {}).items():
             info = info or {}
             doc.append(Block("p", f"{name}: {info.get('text', '-')}"))
