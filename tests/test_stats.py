@@ -562,8 +562,11 @@ def test_tail_estimate_degenerate_inputs():
     assert math.isfinite(few["normal_ppm"]) and few["n"] == 49
     empty = tail_estimate([np.nan, np.nan])
     assert empty["n"] == 0 and math.isnan(empty["normal_ppm"]) and math.isnan(empty["tail_ppm"])
+    # one sample says nothing about the spread (it read "zero spread: every sample equals
+    # the mean" and 0 ppm)
     single = tail_estimate([1.0])
-    assert single["normal_ppm"] == 0.0 and math.isnan(single["tail_ppm"])
+    assert math.isnan(single["normal_ppm"]) and math.isnan(single["tail_ppm"])
+    assert "one finite margin" in single["method"] and "zero spread" not in single["method"]
     with pytest.raises(ValueError):
         tail_estimate(rng.normal(size=100), confidence=1.5)
 

@@ -651,8 +651,13 @@ def _tail_one_side(margin: np.ndarray, confidence: float) -> dict:
                          f"no finite margin among {total} samples (infinite or not converged): "
                          "nothing to extrapolate; the counted rate is the answer")
         return out
+    if n == 1:
+        # one value says nothing about the spread: no model, only the count
+        out["method"] = ("one finite margin: a spread needs at least two samples, so "
+                         "nothing is fitted; the counted rate is the answer")
+        out["assumption"] = "No model: one sample."
+        return out
     mean, s = mean_std(data)
-    s = s if n > 1 else 0.0
     if s == 0.0 or not math.isfinite(s):
         fail = 1e6 if mean < 0 else 0.0
         out.update(
