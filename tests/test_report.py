@@ -205,17 +205,24 @@ def test_the_caution_and_the_studys_notes_stand_by_the_verdict(tmp_path):
         """), encoding="utf-8")
     study = load_study(path)
     [note] = study.notes()
-    assert "loosen the rating tj_max_output" in note and "<= 150 degC" in note
+    assert "loosen the rating check tj_max_output" in note and "ask <= 150 degC" in note
     res = run(study, out=tmp_path / "r")
     assert res.summary["study_notes"] == [note]
     report.write_reports(res.folder)
     md = (res.folder / "report.md").read_text(encoding="utf-8")
     assert md.index("Overall verdict") < md.index(SAFETY) < md.index("## Metrics")
-    assert md.index("Overall verdict") < md.index("loosen the rating tj_max_output") \
+    assert md.index("Overall verdict") < md.index("loosen the rating check tj_max_output") \
         < md.index("## Metrics")
     # the figures the transistor was fitted to, with where they came from (common
     # practice, no source: a review checks what was assumed, not a hash); the class's
     # free-air theta_JA of 100 K/W
+    # an analysis's report carries the study's notes as well
+    from tolerance.cli import main
+
+    w = tmp_path / "w"
+    assert main(["whatif", str(path), "--pin", "Q1.hfe=min", "--out", str(w), "--quiet",
+                 "--samples", "50"]) in (0, 1)
+    assert "loosen the rating check tj_max_output" in (w / "report.md").read_text("utf-8")
     assert "## Devices assumed" in md and "from memory" in md
     row = next(line for line in md.splitlines() if line.startswith("| Q1 |"))
     for text in ("medium_power_npn", "NPN", "40 .. 250 at 150 mA", "45 V", "1.5 A",

@@ -1495,3 +1495,16 @@ def test_the_study_names_what_its_figures_leave_unjudged(tmp_path):
                     encoding="utf-8")
     assert any("pull-in (operate_margin) is judged at the on-state's DC voltage" in n
                and "0.6 duty" in n for n in load_study(path).notes())
+    # at 20 Hz the coil's L/R (250 mH / 72 ohm, 3.5 ms) settles within each period
+    path.write_text(valve.replace("[drive]", '[drive]\nfrequency = "20 Hz"\nduty = 0.6', 1),
+                    encoding="utf-8")
+    assert not any("pull-in" in n for n in load_study(path).notes())
+
+
+def test_the_devices_assumed_name_a_monolithic_pairs_library_entry():
+    # common practice, no source: the dies of a monolithic pair come from the library, whose
+    # figures are class values from memory; "the study's own figures" hid that
+    root = Path(__file__).resolve().parent.parent / "studies"
+    rows = load_study(root / "engine_bay_heater_darlington.toml").stage.assumptions()
+    assert [r["class"] for r in rows] == ["monolithic_darlington, driver die",
+                                          "monolithic_darlington, output die"]

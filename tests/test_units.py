@@ -301,7 +301,6 @@ def test_format_quantity(x, unit, expected):
     assert format_quantity(x, unit) == expected
 
 
-
 def test_format_ppm_one_decimal_and_missing_rates():
     # common practice, no source: 1 ppm = 1e-6; one decimal as the console and reports print
     assert format_ppm(1.844e-4) == "184.4"
@@ -317,7 +316,7 @@ def test_format_ppm_keeps_rates_below_a_tenth_of_a_ppm():
     assert format_ppm(2.9957e-8) == "0.03"
     assert format_ppm(2.53178e-11) == "2.53e-05"
     assert format_ppm(4e-8) == "0.04"
-    assert format_ppm(1e-6) == "1.0"
+    assert format_ppm(1e-6) == "1.0" and format_ppm(0.9997e-6) == "1.0"
 
 
 def test_format_yield_never_rounds_a_failure_away():

@@ -62,11 +62,39 @@ def bounds_for(study: Study) -> list[worstcase.Bound]:
         values = None
         if p.drift:
             lo, hi = lo - abs(nom) * p.drift, hi + abs(nom) * p.drift
-        elif p.distribution.kind == "discrete" and lo < hi:
+        if p.distribution.kind == "discrete" and lo < hi:
             # a set (variants, bins, a temperature profile): the methods take its members
             values = tuple(sorted(set(float(v) for v in p.distribution.values)))
         out.append(worstcase.Bound(p.name, nom, min(lo, nom), max(hi, nom), values))
     return out
+
+
+def _worst_case_notes(study: Study, bounds: list[worstcase.Bound]) -> list[str]:
+    """What the worst case's methods take simply on this study: correlated inputs taken
+    independent, and discrete sets taken at their ends (corners) or at some of their
+    members' combinations (optimizer)."""
+    notes = []
+    if study.correlations:
+        notes.append("the corners, bands and searches take every input independent of the "
+                     "others: the study's correlations act in the Monte Carlo run only; a "
+                     "corner may join values that correlated parts seldom take together, "
+                     "while the RSS band, which adds independent shares, can be narrower "
+                     "than correlated inputs make the spread")
+    sets = [b for b in bounds if b.discrete]
+    if sets:
+        combos, complete = worstcase.discrete_combinations(bounds)
+        names = ", ".join(b.name for b in sets)
+        if complete:
+            notes.append(f"the discrete sets ({names}) enter the corners and the bands at "
+                         f"their ends, and the optimizer at every one of their "
+                         f"{len(combos)} combinations of members")
+        else:
+            total = math.prod(len(b.values) for b in sets)
+            notes.append(f"the discrete sets ({names}) enter the corners and the bands at "
+                         f"their ends, and the optimizer at {len(combos)} of their {total} "
+                         f"combinations of members (each set's ends and nominal): a member "
+                         f"in between can be worse, which only the Monte Carlo run covers")
+    return notes
 
 
 def parameters_table(study: Study) -> list[dict]:
@@ -278,10 +306,7 @@ def study_worst_case(study: Study, samples: int, seed: int, sampler: str | None 
         "metrics": table,
         "evaluations": int(evaluations) + samples,
         "optimized_metrics": limited,
-        "notes": (["the corners, bands and searches take every input independent of the "
-                   "others: the study's correlations act in the Monte Carlo run only, so a "
-                   "corner may join values that correlated parts seldom take together (the "
-                   "safe side)"] if study.correlations else []),
+        "notes": _worst_case_notes(study, bounds),
         "criteria": [{"name": c.name, "metric": c.metric, "min": c.minimum, "max": c.maximum}
                      for c in study.criteria],
     }

@@ -5,7 +5,8 @@ sample keeps its relative deviation from nominal (and every other parameter its 
 candidates differ only by the choice itself. For each candidate: yield with its exact interval,
 each criterion's rate, percentiles of every metric. The best candidate has the highest yield
 (ties: the higher lower bound of the interval, then the most room to the limits at their robust
-ends, :func:`robust_margin`, then the value nearest the study's own nominal);
+ends in standard deviations, :func:`robust_margin`, then the value nearest the study's own
+nominal; :func:`pick_best`);
 a trade-off frontier between two metrics lists the candidates no other candidate beats on both.
 """
 
@@ -127,22 +128,50 @@ def frontier(points: list[dict], x: str, y: str, dx: int, dy: int) -> list[int]:
     return keep
 
 
+#: robust margins closer than this [standard deviations] are a tie: the 0.1 % and 99.9 %
+#: points of a few thousand units move by a tenth of a deviation from draw to draw
+#: (common practice, no source)
+ROBUST_TIE = 0.1
+
+
 def robust_margin(study: Study, summary: dict) -> float:
-    """The smallest room a candidate leaves to any limit, relative to the limit: at each
-    criterion's robust end (the 0.1 % point against a minimum, the 99.9 % point against a
-    maximum), ``(p001 - min) / |min|`` or ``(max - p999) / |max|``; limits of zero (a
-    flag's) are left out. Among candidates of equal yield the one with the most room is
-    the robust choice (a dimmer's base resistors that all pass: 1k leaves its turn-off
-    delay half the limit, 5.6k within 8 % of it). NaN without a figure to judge."""
+    """The smallest room a candidate leaves to any limit, in standard deviations of the
+    metric: at each criterion's robust end (the 0.1 % point against a minimum, the 99.9 %
+    point against a maximum), ``(p001 - min) / std`` or ``(max - p999) / std``, over the
+    metrics that spread. Among candidates of equal yield the one with the most room is the
+    robust choice (a dimmer's base resistors that all pass: one leaves its turn-off delay
+    several deviations from the limit, another a fraction of one). In deviations, not
+    relative to the limit: a junction's room to 150 degC is not a share of 423 K, and a
+    drive margin's room to 1.5 is not one of 1.5. NaN without a figure to judge."""
     rooms = []
     for c in study.criteria:
         m = summary["metrics"].get(c.metric) or {}
+        std = m.get("std")
+        if std is None or not math.isfinite(std) or std <= 0:
+            continue  # a flag or a fixed figure: no spread to measure room in
         for limit, end, sign in ((c.minimum, "p001", 1.0), (c.maximum, "p999", -1.0)):
             value = m.get(end)
-            if limit is None or limit == 0 or value is None or not math.isfinite(limit):
+            if limit is None or value is None or not math.isfinite(limit):
                 continue
-            rooms.append(sign * (value - limit) / abs(limit))
+            rooms.append(sign * (value - limit) / std)
     return min(rooms) if rooms else math.nan
+
+
+def pick_best(study: Study, candidates: list[dict], names: list[str]) -> int:
+    """Index of the best candidate: the highest yield, then the higher lower bound of its
+    interval, then (within :data:`ROBUST_TIE`) the most room to the limits
+    (``robust_margin``), then the value nearest the study's own nominal."""
+    def distance(row):
+        return sum(abs(math.log(row["values"][n] / study.parameter(n).nominal)) for n in names)
+
+    top = max((c["yield"], c["ci_low"]) for c in candidates)
+    tied = [i for i, c in enumerate(candidates) if (c["yield"], c["ci_low"]) == top]
+    margins = [candidates[i].get("robust_margin", math.nan) for i in tied]
+    finite = [m for m in margins if math.isfinite(m)]
+    if finite:
+        most = max(finite)
+        tied = [i for i, m in zip(tied, margins) if math.isfinite(m) and m >= most - ROBUST_TIE]
+    return min(tied, key=lambda i: (distance(candidates[i]), i))
 
 
 def check_request(study: Study, varies: list[str], tradeoff: tuple[str, ...] | None = None
@@ -252,13 +281,7 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
     for row, s in zip(candidates, summaries):
         row["robust_margin"] = robust_margin(study, s)
 
-    def rank_key(row):
-        dist = sum(abs(math.log(row["values"][n] / study.parameter(n).nominal)) for n in names)
-        margin = row["robust_margin"]
-        return (row["yield"], row["ci_low"], margin if math.isfinite(margin) else -math.inf,
-                -dist)
-
-    best = max(range(len(candidates)), key=lambda i: rank_key(candidates[i]))
+    best = pick_best(study, candidates, names)
     # each candidate against the best on the same units (common random numbers): whether
     # the best is better than the others, or only drawn so
     units = int(summaries[best]["samples"])

@@ -328,19 +328,23 @@ def _analysis_out(args, study, suffix: str) -> Path:
     from tolerance.api import _prepare_folder
 
     out = Path(args.out) if args.out else _default_out(study, suffix)
+    for note in study.notes():
+        sys.stderr.write(f"tolerance: note: {note}\n")
     args.made = not out.exists()
     _prepare_folder(out, args.force, False, resumable=False)
     args.written = out  # an interrupt clears its temporary files
     return out
 
 
-def _stamped(result: dict) -> dict:
+def _stamped(result: dict, study) -> dict:
     """An analysis result with the version that wrote it and when, for the report's
-    reproducibility stamp (as summary.json carries them)."""
+    reproducibility stamp (as summary.json carries them), and the study's notes, which the
+    report shows beside the caution."""
     import datetime
 
     created = datetime.datetime.now(datetime.timezone.utc).isoformat(timespec="seconds")
-    return {"tool_version": __version__, **result, "created": created}
+    return {"tool_version": __version__, **result, "study_notes": study.notes(),
+            "created": created}
 
 
 def _write_report(out: Path, jobs: int = 1) -> None:
@@ -366,7 +370,7 @@ def cmd_whatif(args) -> int:
     out = _analysis_out(args, study, "-whatif")
     result, base, pinned = whatif(study, args.pin, args.samples, args.seed, args.sampler,
                                   args.jobs, args.chunk_size)
-    write_json(out / "whatif.json", _stamped(result))
+    write_json(out / "whatif.json", _stamped(result, study))
     _save_pair(out, study, base.samples, pinned.samples)
     _write_report(out, args.jobs)
     if not args.quiet:
@@ -409,7 +413,7 @@ def cmd_worstcase(args) -> int:
     out = _analysis_out(args, study, "-worstcase")
     result = study_worst_case(study, _samples(args, study), args.seed if args.seed is not None
                               else study.settings.seed, args.sampler, args.chunk_size)
-    write_json(out / "worstcase.json", _stamped(result))
+    write_json(out / "worstcase.json", _stamped(result, study))
     _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write
@@ -433,7 +437,7 @@ def cmd_sensitivity(args) -> int:
     result = study_sensitivity(study, _samples(args, study), args.seed if args.seed is not None
                                else study.settings.seed, args.sobol_samples,
                                sampler=args.sampler, chunk_size=args.chunk_size)
-    write_json(out / "sensitivity.json", _stamped(result))
+    write_json(out / "sensitivity.json", _stamped(result, study))
     _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write
@@ -460,7 +464,7 @@ def cmd_choose(args) -> int:
     out = _analysis_out(args, study, "-choose")
     result = choose(study, args.vary, args.samples, args.seed, args.sampler, args.jobs, tradeoff,
                     args.chunk_size)
-    write_json(out / "choose.json", _stamped(result))
+    write_json(out / "choose.json", _stamped(result, study))
     _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write

@@ -257,8 +257,10 @@ def undefined_note(summary: dict) -> str | None:
     # a metric no unit has and no criterion judges is one the study does not define (the
     # transition fraction without a PWM frequency), not a failure of every unit
     solved = (n - (summary.get("not_converged") or 0)) if isinstance(n, int) else None
+    # (a junction or hot-spot figure every unit lacks is a runaway in every unit, not that)
     absent = [name for name, m in missing
-              if name not in limited and solved and m["undefined"] >= solved]
+              if name not in limited and solved and m["undefined"] >= solved
+              and not name.startswith(("tj_", "hot_spot"))]
     missing = [(name, m) for name, m in missing if name not in absent]
     said = []
     if missing:
@@ -585,7 +587,8 @@ def paired_sentence(change: dict | None, what: str, first: str, second: str) -> 
             f"{format_interval(change.get('ci_low'), change.get('ci_high'))}): "
             f"{format_number(change.get('only_first'))} units pass only {first}, "
             f"{format_number(change.get('only_second'))} only {second}; exact McNemar "
-            f"p = {p:.2g}, {shown}.")
+            f"p {'< 1e-15' if isinstance(p, (int, float)) and p < 1e-15 else f'= {p:.2g}'}, "
+            f"{shown}.")
 
 
 def whatif_tables(data: dict) -> list[Table]:
@@ -689,7 +692,8 @@ def _versus_best(candidate: dict, is_best: bool) -> str:
     v = candidate.get("vs_best")
     if is_best or not isinstance(v, dict) or "difference" not in v:
         return "-"
-    return f"{format_rate(v['difference'])} (p {v['p_value']:.2g})"
+    p = v["p_value"]
+    return f"{format_rate(v['difference'])} (p {'< 1e-15' if p < 1e-15 else f'{p:.2g}'})"
 
 
 def choose_separation(data: dict) -> str | None:
@@ -1205,8 +1209,8 @@ DEVICES_NOTE = (
     "The datasheet figures each transistor's model was fitted to: its device class's, with "
     "any figure the study gives in their place. The library's classes hold typical class "
     "values from memory, not a datasheet: for a sign-off enter the chosen part's own figures "
-    "under [parts.Q1] (README, 'Stage keys') and check them here. theta_JA is the path the stage uses, a heatsink "
-    "included.")
+    "in its [parts.Qn] table (README, 'Stage keys') and check them here. theta_JA is the "
+    "path the stage uses, a heatsink included.")
 
 #: the device table's columns: heading, key of :func:`models.stages.evaluation.device_assumptions`
 DEVICE_COLUMNS = (("part", "part"), ("class", "class"), ("type", "polarity"),
@@ -1366,6 +1370,8 @@ def build_document(summary: dict | None, extras: dict,
         doc.append(Block("p", f"Study {info.get('study', '-')}; analysis files: "
                               f"{', '.join(extras)}."))
         doc.append(Block("note", "Caution: " + SAFETY))
+        for note in info.get("study_notes") or []:
+            doc.append(Block("note", str(note)))
 
     for fname, section in EXTRA_FILES.items():
         if fname in extras:

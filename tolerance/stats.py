@@ -85,6 +85,13 @@ def clopper_pearson(failures, n, confidence: float = 0.95):
     return low, high
 
 
+def _wilson(x: float, n: float, z: float) -> tuple[float, float]:
+    """Wilson score interval of a proportion x / n (Wilson, JASA 22 (1927) 209-212)."""
+    centre = (x + 0.5 * z * z) / (n + z * z)
+    half = z * math.sqrt(x * (n - x) / n + 0.25 * z * z) / (n + z * z)
+    return max(centre - half, 0.0), min(centre + half, 1.0)
+
+
 def paired_difference(first_passes, second_passes, confidence: float = 0.95) -> dict:
     """Difference of two yields measured on the same units (common random numbers).
 
@@ -105,14 +112,17 @@ def paired_difference(first_passes, second_passes, confidence: float = 0.95) -> 
     Notes
     -----
     Only the units that pass in one run and fail in the other tell the runs apart; given
-    their number m, those passing only in the second run are Binomial(m, pi), pi = 1/2
-    when the yields are equal (McNemar 1947; the exact conditional test). The interval
-    takes the Clopper-Pearson interval of pi and maps it to the difference
-    (m / n)(2 pi - 1): the exact conditional interval (Agresti, "Categorical Data
-    Analysis", section on matched pairs, from memory). Paired, two yields of 23.5 % and
-    23.3 % over the same 5,000 units can differ significantly where their own intervals,
-    each 2.4 % wide, overlap entirely.
+    their number m, those passing only in the second run are Binomial(m, 1/2) when the
+    yields are equal: the exact McNemar test (McNemar, Psychometrika 12 (1947) 153-157;
+    scipy.stats.binomtest). The interval of the difference is Newcombe's score interval for
+    paired proportions (Newcombe, Statistics in Medicine 17 (1998) 2635-2650, method 10,
+    from memory): each run's Wilson interval, joined with the runs' correlation phi over the
+    units. It holds its level with every discordant unit on one side, where an interval
+    that takes m as known collapses onto the estimate (its coverage fell to 43 %; tests
+    check this one by simulation). Paired, two yields of 23.5 % and 23.3 % over the same
+    5,000 units can differ significantly where their own intervals overlap entirely.
     """
+    confidence = _check_confidence(confidence)
     a = np.asarray(first_passes, dtype=bool).reshape(-1)
     b = np.asarray(second_passes, dtype=bool).reshape(-1)
     if a.size != b.size or a.size == 0:
@@ -120,15 +130,28 @@ def paired_difference(first_passes, second_passes, confidence: float = 0.95) -> 
     n = a.size
     only_first = int(np.count_nonzero(a & ~b))
     only_second = int(np.count_nonzero(b & ~a))
+    both = int(np.count_nonzero(a & b))
+    neither = n - both - only_first - only_second
     m = only_first + only_second
-    if m == 0:
-        return {"difference": 0.0, "ci_low": 0.0, "ci_high": 0.0, "only_first": 0,
-                "only_second": 0, "p_value": 1.0}
-    low, high = clopper_pearson(only_second, m, confidence)
-    p_value = float(stats.binomtest(only_second, m, 0.5).pvalue)
-    return {"difference": (only_second - only_first) / n,
-            "ci_low": m / n * (2.0 * low - 1.0), "ci_high": m / n * (2.0 * high - 1.0),
-            "only_first": only_first, "only_second": only_second, "p_value": min(p_value, 1.0)}
+    p_value = 1.0 if m == 0 else min(float(stats.binomtest(only_second, m, 0.5).pvalue), 1.0)
+    z = float(special.ndtri(0.5 + 0.5 * confidence))
+    # Newcombe's notation: cells a (both pass), b (second only), c (first only), d (neither);
+    # p1 the second run's yield, p2 the first's, the difference p1 - p2 = (b - c) / n
+    p1, p2 = (both + only_second) / n, (both + only_first) / n
+    l1, u1 = _wilson(both + only_second, n, z)
+    l2, u2 = _wilson(both + only_first, n, z)
+    margins = float(both + only_second) * (only_first + neither) * (both + only_first) \
+        * (only_second + neither)
+    phi = 0.0 if margins == 0 else (both * neither - only_second * only_first) / math.sqrt(
+        margins)
+    phi = min(max(phi, -1.0), 1.0)
+    d1, d2 = p1 - l1, u1 - p1
+    e1, e2 = p2 - l2, u2 - p2
+    difference = (only_second - only_first) / n
+    low = difference - math.sqrt(max(d1 * d1 - 2.0 * phi * d1 * e2 + e2 * e2, 0.0))
+    high = difference + math.sqrt(max(e1 * e1 - 2.0 * phi * e1 * d2 + d2 * d2, 0.0))
+    return {"difference": difference, "ci_low": max(low, -1.0), "ci_high": min(high, 1.0),
+            "only_first": only_first, "only_second": only_second, "p_value": p_value}
 
 
 def half_width(failures, n, confidence: float = 0.95):

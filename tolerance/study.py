@@ -280,6 +280,12 @@ class Reader:
         if drift and unit == "temperature":
             raise StudyError(self.file, f"{key}.drift", "a temperature does not age; its "
                                                         "range is given directly")
+        if drift and isinstance(raw, dict) and "values" in raw:
+            # a set's members are the values units take; aged ones belong in the set (a
+            # drift made the set a range, and the worst case searched between members)
+            raise StudyError(self.file, f"{key}.drift", "a discrete set lists the values "
+                                                        "units take; put aged values in the "
+                                                        "set itself")
         if allow_tolerance_key and not isinstance(raw, dict) and (
             self.has("tolerance") or self.has("distribution") or self.has("sigmas")
         ):
@@ -554,7 +560,7 @@ class Study:
         out = self._relaxed_ratings()
         stage_notes = getattr(self.stage, "review_notes", None)
         if stage_notes is not None:
-            out += stage_notes(self.criteria)
+            out += stage_notes(self.criteria, {p.name: p.nominal for p in self.parameters})
         thermal = getattr(self.stage, "thermal", None)
         env = getattr(self.stage, "env", None)
         if thermal is None or env is None or env.temperature not in self.parameter_names:
@@ -590,10 +596,12 @@ class Study:
             def fmt(x, unit=unit):
                 return format_quantity(x, unit)
 
-            out.append(f"The study's [limits] loosen the rating {c.name}: {c.metric} "
-                       f"{c.limit_text(fmt)} where the part allows {d.limit_text(fmt)}. The "
-                       f"verdict judges the study's limit; the part's other checks (thermal "
-                       f"runaway, stresses) keep its rating.")
+            margin = (" (the part's T_j max less the study's [thermal] tj_margin)"
+                      if c.metric.startswith("tj_") else "")
+            out.append(f"The study's [limits] loosen the rating check {c.name}: {c.metric} "
+                       f"{c.limit_text(fmt)} where the check would ask {d.limit_text(fmt)}"
+                       f"{margin}. The verdict judges the study's limit; the part's other "
+                       f"checks (thermal runaway, stresses) keep its rating.")
         return out
 
     def run(self, **kwargs):

@@ -310,7 +310,7 @@ def format_ppm(rate) -> str:
     if math.isnan(rate):
         return "nan"
     ppm = 1e6 * rate
-    if ppm == 0 or abs(ppm) >= 1:
+    if ppm == 0 or abs(ppm) >= 0.9995:  # (what three digits would round up to 1)
         return f"{ppm:.1f}"
     return f"{ppm:.3g}"
 

@@ -502,11 +502,11 @@ class PairStage:
 
     devices = ("Q1", "Q2")
 
-    def review_notes(self, criteria) -> list[str]:
+    def review_notes(self, criteria, nominal) -> list[str]:
         """What the stage's figures leave unjudged, for ``Study.notes``."""
         from tolerance.models.stages.evaluation import review_notes
 
-        return review_notes(self, criteria)
+        return review_notes(self, criteria, nominal)
 
     def assumptions(self) -> list[dict]:
         """Each transistor's device class and fitted datasheet figures, for the report."""

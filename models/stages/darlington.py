@@ -35,6 +35,8 @@ transistor's V_CE(sat), because the output transistor cannot saturate.
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 
 from tolerance.models.parts import library, read_transistor
@@ -250,6 +252,10 @@ def configure(reader):
                              base_figures=entry.dies["output"],
                              supply_minimum=env.supply_minimum, read_device=False,
                              table=q2_table)
+        # the dies come from the library entry (the devices table says so, not "the study's
+        # own figures")
+        q1 = dataclasses.replace(q1, device_class=f"{device}, driver die")
+        q2 = dataclasses.replace(q2, device_class=f"{device}, output die")
     else:
         entry = library().get(q2_table.string("device", default=""))
         if entry is not None and entry.kind == "darlington":

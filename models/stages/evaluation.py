@@ -830,10 +830,11 @@ def device_assumptions(stage) -> list[dict]:
     return rows
 
 
-def review_notes(stage, criteria) -> list[str]:
+def review_notes(stage, criteria, nominal: dict) -> list[str]:
     """Sentences on what a stage's figures leave unjudged or take simply, for a reviewer
     (``Study.notes``): a lamp's inrush energy with nothing to judge it against, and a coil's
-    pull-in judged at DC under a PWM drive whose period is shorter than its L/R."""
+    pull-in judged at DC under a PWM drive whose period is shorter than its nominal L/R
+    (``nominal``: each parameter's nominal value by name)."""
     out = []
     judged = {c.metric for c in criteria}
     thermal = getattr(stage, "thermal", None)
@@ -842,7 +843,9 @@ def review_notes(stage, criteria) -> list[str]:
         out.append("The output's energy while it limits the cold lamp's inrush "
                    "(inrush_energy) is computed but judged by nothing: give the output part's "
                    "single-pulse rating (pulse_energy) or a [limits] inrush_energy.")
-    if stage.load.kind == "coil" and stage.drive.pwm and "operate_margin" in judged:
+    ind, res = nominal.get("load.inductance"), nominal.get("load.resistance")
+    slow = ind is not None and res and ind / res * stage.drive.frequency > 1.0
+    if stage.load.kind == "coil" and stage.drive.pwm and "operate_margin" in judged and slow:
         out.append(f"The coil's pull-in (operate_margin) is judged at the on-state's DC voltage; "
                    f"on the {stage.drive.duty:g} duty PWM drive a coil whose L/R exceeds the "
                    f"period sees about the duty times that on average, so pull it in with a "
