@@ -844,8 +844,9 @@ def review_notes(stage, criteria, nominal: dict) -> list[str]:
                    "(inrush_energy) is computed but judged by nothing: give the output part's "
                    "single-pulse rating (pulse_energy) or a [limits] inrush_energy.")
     ind, res = nominal.get("load.inductance"), nominal.get("load.resistance")
-    slow = ind is not None and res and ind / res * stage.drive.frequency > 1.0
-    if stage.load.kind == "coil" and stage.drive.pwm and "operate_margin" in judged and slow:
+    slow = (stage.drive.pwm and ind is not None and bool(res)
+            and ind / res * stage.drive.frequency > 1.0)
+    if stage.load.kind == "coil" and "operate_margin" in judged and slow:
         out.append(f"The coil's pull-in (operate_margin) is judged at the on-state's DC voltage; "
                    f"on the {stage.drive.duty:g} duty PWM drive a coil whose L/R exceeds the "
                    f"period sees about the duty times that on average, so pull it in with a "
