@@ -10,6 +10,7 @@ import re
 import shutil
 import subprocess
 import textwrap
+from pathlib import Path
 from html.parser import HTMLParser
 
 import pytest
@@ -746,3 +747,31 @@ def test_sobol_run_off_a_power_of_two_says_so():
     assert report.sampler_note({"sampler": "sobol", "samples": 1024}) is None
     assert report.sampler_note({"sampler": "lhs", "samples": 1000}) is None
     assert "--samples 4 (or 2)" in report.sampler_note({"sampler": "sobol", "samples": 3})
+
+
+def test_a_thinned_run_draws_every_failing_unit(tmp_path, monkeypatch):
+    # common practice, no source: beyond PLOT_ROWS units the figures drew every k-th unit,
+    # so 1 failure in 600,000 vanished from the scatter meant to show it ("fail (0)");
+    # every failing unit is drawn now, and the passing ones drawn stand for k each
+    from tolerance import plots
+
+    root = Path(__file__).resolve().parent.parent
+    res = run(load_study(root / "studies" / "beacon_lamp_darlington.toml"), samples=1500,
+              out=tmp_path / "r")
+    summary = json.loads((res.folder / "summary.json").read_text())
+    monkeypatch.setattr(report, "PLOT_ROWS", 400)
+    tasks = report._run_plots(res.folder, summary, {}, tmp_path)
+    hist = next(t for t in tasks if t.draw == "histogram"
+                and t.args[1] == summary["criteria"]["saturation"]["metric"])
+    frame = hist.args[0]
+    weights = frame[report.WEIGHT_COLUMN].to_numpy()
+    assert len(frame) < 1500 and weights.sum() == pytest.approx(1500, rel=0.01)
+    passed = res.column("pass").astype(bool)
+    assert int((weights == 1.0).sum()) >= int((~passed).sum())
+    scatter = next(t for t in tasks if t.draw == "driver_scatter")
+    fig = plots.driver_scatter(*scatter.args)
+    labels = [h.get_label() for h in fig.axes[0].get_lines()]
+    name = next(n for n in summary["failure_drivers"] if f"driver-{n}" in str(scatter.path))
+    failures = summary["criteria"][name]["failures"]
+    assert f"fail ({failures})" in labels
+    fig.clf()

@@ -180,13 +180,17 @@ def histogram(samples: pd.DataFrame, metric: str, summary: dict) -> Figure:
         ECDF [1] below. Limit lines carry the gid ``limit:<criterion>:<min|max>`` and the
         hatched failing regions ``fail-region:<criterion>:<min|max>``.
     """
-    from tolerance.report import format_interval, format_rate
+    from tolerance.report import WEIGHT_COLUMN, format_interval, format_rate
 
     info = summary.get("metrics", {}).get(metric, {})
     unit = info.get("unit")
     raw = np.asarray(samples[metric], dtype=float)
-    x = _finite(raw)
-    missing = raw.size - x.size
+    # a thinned run's drawn units stand for several (report: every failure, 1 in k passes)
+    w_all = (np.asarray(samples[WEIGHT_COLUMN], dtype=float) if WEIGHT_COLUMN in samples
+             else np.ones(raw.size))
+    keep = np.isfinite(raw)
+    x, w = raw[keep], w_all[keep]
+    missing = int(round(w_all[~keep].sum()))
     criteria = _metric_criteria(summary, metric)
     marks = [c["limit"].get(s) for _, c in criteria for s in ("min", "max")]
     lo_edge, hi_edge = _x_range(x, marks)
@@ -199,10 +203,10 @@ def histogram(samples: pd.DataFrame, metric: str, summary: dict) -> Figure:
             # same picture at this size, without handing half a million points to seaborn's
             # histogram and ECDF (half of the figure's time at that count)
             edges = _bin_edges(x)
-            counts, _ = np.histogram(x, bins=edges)
+            counts, _ = np.histogram(x, bins=edges, weights=w)
             ax.bar(edges[:-1], counts, width=np.diff(edges), align="edge", color=PALETTE[0],
                    edgecolor="white", linewidth=0.4, alpha=0.85, zorder=2, gid="histogram")
-            xs, fs = _ecdf_ranks(x)
+            xs, fs = _ecdf_ranks(x, weights=None if WEIGHT_COLUMN not in samples else w)
             ax_cdf.step(xs, fs, where="post", color=PALETTE[0], linewidth=1.6, zorder=3,
                         gid="ecdf")
         handles = _draw_limits([ax, ax_cdf], criteria, lo_edge, hi_edge, unit)
@@ -374,9 +378,14 @@ def driver_scatter(samples: pd.DataFrame, input_name: str, metric: str, summary:
         ok = np.logical_and.reduce([samples[c].to_numpy(dtype=bool) for c in cols])
     else:
         ok = m >= 0
+    from tolerance.report import WEIGHT_COLUMN
+
     valid = np.isfinite(m) & np.isfinite(x)
     fail = valid & ~ok
     passing = valid & ok
+    # a thinned run's drawn units stand for several (report: every failure, 1 in k passes)
+    w = (np.asarray(samples[WEIGHT_COLUMN], dtype=float) if WEIGHT_COLUMN in samples
+         else np.ones(x.size))
     idx = _thin(x.size, fail, MAX_SCATTER_POINTS)
     sel_pass = idx[passing[idx]]
     sel_fail = idx[fail[idx]]
@@ -384,9 +393,9 @@ def driver_scatter(samples: pd.DataFrame, input_name: str, metric: str, summary:
         fig = _figure(7.0, 4.6)
         ax = fig.subplots()
         ax.plot(x[sel_pass], m[sel_pass], linestyle="none", marker=PASS_MARKER, markersize=3,
-                color=PASS_COLOR, alpha=0.5, label=f"pass ({int(passing.sum())})", gid="pass")
+                color=PASS_COLOR, alpha=0.5, label=f"pass ({int(round(w[passing].sum()))})", gid="pass")
         ax.plot(x[sel_fail], m[sel_fail], linestyle="none", marker=FAIL_MARKER, markersize=5,
-                color=FAIL_COLOR, alpha=0.9, label=f"fail ({int(fail.sum())})", gid="fail")
+                color=FAIL_COLOR, alpha=0.9, label=f"fail ({int(round(w[fail].sum()))})", gid="fail")
         ax.axhline(0.0, color="black", linestyle="--", linewidth=1.2, label="nearest limit")
         ax.xaxis.set_major_formatter(_unit_formatter(units.get(input_name)))
         ax.yaxis.set_major_formatter(_unit_formatter(spread_unit(unit)))
@@ -400,9 +409,21 @@ def driver_scatter(samples: pd.DataFrame, input_name: str, metric: str, summary:
     return fig
 
 
-def _ecdf_ranks(x: np.ndarray, most: int = ECDF_POINTS) -> tuple[np.ndarray, np.ndarray]:
+def _ecdf_ranks(x: np.ndarray, most: int = ECDF_POINTS,
+                weights: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """The empirical CDF of ``x`` at its steps, or at ``most`` evenly spaced ranks (the first
-    and the last included) where it has more: exact values of the ECDF, (rank + 1) / n."""
+    and the last included) where it has more: exact values of the ECDF, (rank + 1) / n.
+    With ``weights`` (units each value stands for) the CDF is the weighted one."""
+    if weights is not None:
+        order = np.argsort(x, kind="stable")
+        xs = x[order]
+        cum = np.cumsum(weights[order])
+        if xs.size == 0:
+            return xs, np.zeros(0)
+        pick = np.unique(np.linspace(0, xs.size - 1, min(most, xs.size)).round()
+                         .astype(np.int64))
+        return np.concatenate([xs[:1], xs[pick]]), np.concatenate([[0.0],
+                                                                   cum[pick] / cum[-1]])
     xs = np.sort(x)
     n = xs.size
     if n == 0:  # nothing to draw: no steps, not one step at an undefined value

@@ -988,8 +988,11 @@ def _remove_stale_plots(plot_dir: Path) -> None:
             stale.unlink()
 
 
-#: most samples a plot draws (memory stays flat for long runs)
+#: most passing samples a plot draws (memory stays flat for long runs)
 PLOT_ROWS = 500_000
+
+#: column of a plot's frame holding how many units each drawn one stands for
+WEIGHT_COLUMN = "__units_drawn_for"
 
 
 def _run_plots(folder: Path, summary: dict, extras: dict,
@@ -1003,24 +1006,39 @@ def _run_plots(folder: Path, summary: dict, extras: dict,
 def _run_plot_tasks(read, summary: dict, extras: dict, plot_dir: Path) -> list[PlotTask]:
     made: list[PlotTask] = []
     columns: dict[str, np.ndarray] = {}
+    # plots draw every unit that fails a criterion and, beyond PLOT_ROWS units, every k-th
+    # of the passing ones, each standing for k (weight): the failing tail is drawn whole
+    # (thinned alike, 1 of 600,000 failures vanished from the figures) and the bars still
+    # count about every unit; the rates in the titles are the summary's own
+    passed = read("pass").astype(bool)
+    step = max(1, -(-len(passed) // PLOT_ROWS))
+    drawn = weight = None
+    if step > 1:
+        grid = np.zeros(len(passed), dtype=bool)
+        grid[::step] = True
+        drawn = np.flatnonzero(grid | ~passed)
+        weight = np.where(passed[drawn], float(step), 1.0)
+    thinned = ("" if drawn is None else
+               f" (every failing unit and 1 in {step:,} of the passing ones, each standing "
+               f"for {step:,})")
 
     def col(name):
-        # plots draw at most PLOT_ROWS evenly spaced samples (every k-th); the counted rates
-        # in their titles come from the summary, which used every sample
         if name not in columns:
             full = read(name)
-            step = max(1, -(-len(full) // PLOT_ROWS))
-            columns[name] = full[::step].copy() if step > 1 else full
+            columns[name] = full[drawn] if drawn is not None else full
         return columns[name]
+
+    def weights() -> dict:
+        return {} if weight is None else {WEIGHT_COLUMN: weight}
 
     criteria = summary.get("criteria", {})
     for metric in _limited_metrics(summary):
         # copy=False: the task holds the cached column itself, not a second copy
-        frame = pd.DataFrame({metric: col(metric)}, copy=False)
+        frame = pd.DataFrame({metric: col(metric), **weights()}, copy=False)
         made.append(PlotTask("histogram", (frame, metric, summary),
                              {}, plot_dir / f"hist-{_safe_name(metric)}.png",
                              f"Distribution of {metric} with its limits and counted failure "
-                             f"rate"))
+                             f"rate{thinned}"))
 
     rows = _sensitivity_rows(summary, extras)
     for metric in _limited_metrics(summary):
@@ -1040,11 +1058,11 @@ def _run_plot_tasks(read, summary: dict, extras: dict, plot_dir: Path) -> list[P
         metric = criteria[name]["metric"]
         related = [f"pass.{n}" for n, c in criteria.items() if c["metric"] == metric]
         frame = pd.DataFrame({top: col(top), metric: col(metric),
-                              **{r: col(r) for r in related}})
+                              **{r: col(r) for r in related}, **weights()})
         made.append(PlotTask("driver_scatter", (frame, top, metric, summary, units), {},
                              plot_dir / f"driver-{_safe_name(name)}.png",
                              f"Top failure driver of {name}: {top} against the margin of "
-                             f"{metric}"))
+                             f"{metric}{thinned}"))
     return made
 
 
