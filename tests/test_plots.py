@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import io
+import re
 import textwrap
 
 import numpy as np
@@ -329,3 +330,20 @@ def test_a_dollar_sign_in_a_label_is_drawn_as_written(tmp_path):
     assert (tmp_path / "dollar.png").read_bytes()[:4] == b"\x89PNG"
     assert any(t.get_text() == f"What-if: {label}" for t in fig.findobj(
         lambda a: hasattr(a, "get_text")))
+
+
+def test_a_temperature_axis_ticks_at_round_degrees_celsius():
+    # common practice, no source: ticks at round kelvin read "-23.1 degC" and put a
+    # "152 degC" tick beside a 150 degC limit; an axis in kelvin ticks at round degC
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    rng = np.random.default_rng(1)
+    summary = {"metrics": {"tj_output": {"unit": "temperature"}},
+               "criteria": {"tj": {"metric": "tj_output", "limit": {"min": None, "max": 423.15},
+                                   "failures": 0, "evaluated": 4000, "rate": 0.0,
+                                   "ci_low": 0.0, "ci_high": 0.001, "verdict": "pass"}}}
+    fig = plots.histogram(pd.DataFrame({"tj_output": rng.normal(350.0, 30.0, 4000)}),
+                          "tj_output", summary)
+    FigureCanvasAgg(fig).draw()
+    labels = [t.get_text() for t in fig.axes[1].get_xticklabels() if t.get_text()]
+    assert labels and all(re.fullmatch(r"-?\d+0 degC", t) for t in labels), labels

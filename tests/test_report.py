@@ -559,6 +559,11 @@ def test_analysis_only_folders(write_study, tmp_path):
                  "--samples", "500"]) in (0, 1)
     page = parse_html((w / "report.html").read_text(encoding="utf-8"))
     assert any(p.name.startswith("whatif-") for p in (w / "plots").iterdir())
+    # the overlays carry the criteria's limits from whatif.json (the folder has no
+    # summary.json, and they drew none)
+    data = json.loads((w / "whatif.json").read_text())
+    tasks = report._whatif_plots(w, data, None, tmp_path)
+    assert tasks and all(t.args[4] for t in tasks)
     assert "What-if runs (whatif.json)" in " ".join(page.text)
     assert len(page.images) >= 1
     c = tmp_path / "c"

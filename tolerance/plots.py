@@ -23,7 +23,7 @@ from matplotlib.figure import Figure
 from matplotlib.text import Text
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
-from matplotlib.ticker import FuncFormatter
+from matplotlib.ticker import FuncFormatter, MaxNLocator
 
 from tolerance.files import atomic_path
 from tolerance.units import format_quantity, spread_unit
@@ -73,6 +73,25 @@ def _unit_formatter(unit: str | None, digits: int = 3) -> FuncFormatter:
         return format_quantity(value, unit, digits)
 
     return FuncFormatter(fmt)
+
+
+class _CelsiusLocator(MaxNLocator):
+    """Ticks at round degrees Celsius on an axis in kelvin (round kelvin read as -23.1 degC,
+    152 degC beside a 150 degC limit)."""
+
+    def tick_values(self, vmin, vmax):
+        return super().tick_values(vmin - _ZERO_CELSIUS, vmax - _ZERO_CELSIUS) + _ZERO_CELSIUS
+
+
+#: 0 degC [K]
+_ZERO_CELSIUS = 273.15
+
+
+def _unit_axis(axis, unit: str | None) -> None:
+    """Engineering-notation tick labels on ``axis``; a temperature's ticks at round degC."""
+    axis.set_major_formatter(_unit_formatter(unit))
+    if unit == "temperature":
+        axis.set_major_locator(_CelsiusLocator(nbins="auto", steps=[1, 2, 2.5, 5, 10]))
 
 
 def _finite(values) -> np.ndarray:
@@ -218,7 +237,7 @@ def histogram(samples: pd.DataFrame, metric: str, summary: dict) -> Figure:
         if len(description) > 60:  # long meanings live in the report's metrics table
             description = description[:57].rstrip() + "..."
         ax_cdf.set_xlabel(metric + (f" ({description})" if description else ""))
-        ax_cdf.xaxis.set_major_formatter(_unit_formatter(unit))
+        _unit_axis(ax_cdf.xaxis, unit)
         lines = []
         for name, c in criteria:
             text = (f"{name}: {c['failures']} of {c['evaluated']} failed, "
@@ -397,8 +416,8 @@ def driver_scatter(samples: pd.DataFrame, input_name: str, metric: str, summary:
         ax.plot(x[sel_fail], m[sel_fail], linestyle="none", marker=FAIL_MARKER, markersize=5,
                 color=FAIL_COLOR, alpha=0.9, label=f"fail ({int(round(w[fail].sum()))})", gid="fail")
         ax.axhline(0.0, color="black", linestyle="--", linewidth=1.2, label="nearest limit")
-        ax.xaxis.set_major_formatter(_unit_formatter(units.get(input_name)))
-        ax.yaxis.set_major_formatter(_unit_formatter(spread_unit(unit)))
+        _unit_axis(ax.xaxis, units.get(input_name))
+        _unit_axis(ax.yaxis, spread_unit(unit))
         ax.set_xlabel(input_name)
         ax.set_ylabel(f"margin of {metric} (inside > 0)")
         skipped = int((~valid).sum())
@@ -477,7 +496,7 @@ def whatif_overlay(baseline: np.ndarray, pinned: np.ndarray, metric: str, unit: 
                                lo_edge, hi_edge, unit)
         ax.set_xlim(lo_edge, hi_edge)
         ax.set_ylim(0.0, 1.02)
-        ax.xaxis.set_major_formatter(_unit_formatter(unit))
+        _unit_axis(ax.xaxis, unit)
         ax.set_xlabel(metric)
         ax.set_ylabel("cumulative fraction")
         ax.set_title(f"What-if: {metric}", fontsize=10)
@@ -524,7 +543,7 @@ def yield_map(candidates: pd.DataFrame, x: str, y: str | None = None, *,
             ax = fig.subplots()
             ax.errorbar(xv, yv, yerr=err, fmt="o", linestyle=":", color=PALETTE[0],
                         ecolor="black", elinewidth=1.0, capsize=4, markersize=6, gid="yield")
-            ax.xaxis.set_major_formatter(_unit_formatter(x_unit))
+            _unit_axis(ax.xaxis, x_unit)
             if x_unit is None:
                 ax.set_xticks(xv)
             ax.set_xlabel(x)
@@ -617,8 +636,8 @@ def frontier(candidates: pd.DataFrame, metric_x: str, metric_y: str, *,
             names = df[label].astype(str).to_numpy()[front][order]
             for a, b, t in zip(fx, fy, names):
                 ax.annotate(t, (a, b), textcoords="offset points", xytext=(4, 4), fontsize=7)
-        ax.xaxis.set_major_formatter(_unit_formatter(x_unit))
-        ax.yaxis.set_major_formatter(_unit_formatter(y_unit))
+        _unit_axis(ax.xaxis, x_unit)
+        _unit_axis(ax.yaxis, y_unit)
         ax.set_xlabel(metric_x + (" (lower is better)" if minimize_x else " (higher is better)"))
         ax.set_ylabel(metric_y + (" (lower is better)" if minimize_y else " (higher is better)"))
         ax.set_title(f"Trade-off: {metric_x} vs {metric_y}", fontsize=10)
@@ -691,13 +710,13 @@ def waveforms(times: list[np.ndarray], traces: list[np.ndarray], labels: Sequenc
                         linestyle=LINESTYLES[i % len(LINESTYLES)],
                         color=PALETTE[i % len(PALETTE)], linewidth=1.6, label=str(name),
                         gid=f"{gid}:{i}")
-            ax.yaxis.set_major_formatter(_unit_formatter(u))
+            _unit_axis(ax.yaxis, u)
             ax.set_ylabel(label)
         bottom_ax = panels[-1][0]
         t_max = max((float(np.max(np.abs(t))) for t in times if np.size(t)), default=0.0)
         if time_scale == "symlog" and t_max > 0:
             bottom_ax.set_xscale("symlog", linthresh=t_max * 10.0 ** -decades)
-        bottom_ax.xaxis.set_major_formatter(_unit_formatter(time_unit))
+        _unit_axis(bottom_ax.xaxis, time_unit)
         bottom_ax.set_xlabel("time")
         if title:
             panels[0][0].set_title(title, fontsize=10)

@@ -1112,7 +1112,12 @@ def _whatif_plots(folder: Path, whatif: dict, summary: dict | None,
         if isinstance(c, dict) and c.get("metric") not in wanted:
             wanted.append(c.get("metric"))
     limits = {}
-    if summary:
+    # the what-if's own criteria carry their limits (a what-if folder has no summary.json,
+    # and its overlays drew none)
+    for c in (whatif.get("criteria") or {}).values():
+        if isinstance(c, dict) and isinstance(c.get("limit"), dict):
+            limits.setdefault(c.get("metric"), []).append(c["limit"])
+    if summary and not limits:
         for c in summary.get("criteria", {}).values():
             limits.setdefault(c["metric"], []).append(c["limit"])
     made = []
