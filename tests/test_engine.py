@@ -488,3 +488,28 @@ def test_a_limit_on_a_switching_metric_says_how_to_compute_it():
         load_text("t.toml", text=text)
     on = load_text("t.toml", text=text + "\n[switching]\nenabled = true\n")
     assert any(c.metric == "turn_off_delay" and c.maximum == 1e-6 for c in on.criteria)
+
+
+def test_the_api_refuses_what_the_command_line_refuses(linear, tmp_path):
+    # common practice, no source: the API caps a run at 1e9 samples as the study file and
+    # the command line do (1e10 grew to 8.6 GB before it was stopped), and takes whole
+    # numbers only (2.7 samples were cut to 2)
+    from tolerance.api import UsageError
+
+    study = linear()
+    for kwargs, text in [({"samples": 10**10}, "from 1 to 1,000,000,000"),
+                         ({"samples": 2.7}, "whole number"), ({"samples": "abc"}, "whole"),
+                         ({"seed": 1.5}, "seed must be a whole number")]:
+        with pytest.raises(UsageError, match=text):
+            run(study, **kwargs)
+    res = run(study, samples=50, out=tmp_path / "r")
+    # a missing column is named, not blamed on the files (it read as a damaged chunk)
+    with pytest.raises(KeyError, match="no column 'nope'"):
+        res.column("nope")
+    assert np.array_equal(res.column("y"), res.samples["y"].to_numpy())
+    with pytest.raises(KeyError, match="no column 'nope'"):
+        res.column("nope")
+    assert res.metrics["mean"].dtype == float and res.metrics["unit"].dtype == object
+    import tolerance
+
+    assert tolerance.load_study().title == load_study(None).title

@@ -22,11 +22,12 @@ if not (_Path(__file__).resolve().parent / "models").is_dir() and (
     __path__.append(str(_checkout_root))  # noqa: F821 - __path__ is defined for packages
 
 
-def load_study(path, **overrides):
-    """Load and validate a study file; see :func:`tolerance.study.load_study`."""
+def load_study(path=None):
+    """Load and validate a study file; without a path, the built-in demo study (see
+    :func:`tolerance.api.load_study`)."""
     from tolerance.api import load_study as _load
 
-    return _load(path, **overrides)
+    return _load(path)
 
 
 __all__ = ["__version__", "load_study"]

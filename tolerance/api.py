@@ -1,7 +1,7 @@
 """Python API for notebooks and scripts; the CLI is a thin layer over these functions.
 
 >>> import tolerance
->>> study = tolerance.load_study("studies/lamp_panel_darlington.toml")   # doctest: +SKIP
+>>> study = tolerance.load_study("studies/beacon_lamp_darlington.toml")   # doctest: +SKIP
 >>> result = study.run(samples=20_000, seed=3, jobs=2)                    # doctest: +SKIP
 >>> result.summary["yield"]["estimate"], result.samples.head()            # doctest: +SKIP
 """
@@ -91,8 +91,14 @@ class RunResult:
         """One column of the per-sample table, in sample order, without reading the others
         from the run's folder."""
         if self._samples is None and self.folder is not None:
+            names = runner.column_names(self.folder / SAMPLES_DIR)
+            if name not in names:
+                raise KeyError(f"no column {name!r} in this run; columns: {', '.join(names)}")
             with runner.ChunkColumns(self.folder / SAMPLES_DIR) as columns:
                 return columns(name)
+        if name not in self.samples:
+            raise KeyError(f"no column {name!r} in this run; columns: "
+                           f"{', '.join(self.samples.columns)}")
         return self.samples[name].to_numpy()
 
     @property
@@ -112,7 +118,15 @@ class RunResult:
         """One row per metric: unit, mean, std, extremes and percentiles [SI units]."""
         import pandas as pd
 
-        return pd.DataFrame(self.summary["metrics"]).T
+        frame = pd.DataFrame(self.summary["metrics"]).T
+        # numbers as numbers (a transposed frame of mixed columns is all object, and
+        # describe() counted its values instead of summing them up)
+        for column in frame.columns:
+            try:
+                frame[column] = pd.to_numeric(frame[column])
+            except (TypeError, ValueError):
+                pass  # the unit and the description stay text
+        return frame
 
     @property
     def plot(self) -> "ResultPlots":
@@ -227,13 +241,27 @@ def write_json(path: Path, data: dict) -> None:
     write_atomic(path, json.dumps(clean(data), indent=2, allow_nan=False) + "\n")
 
 
+#: most samples of one run, as the study file and the command line allow
+MAX_SAMPLES = 10**9
+
+
+def _whole(value, name: str) -> int:
+    """A whole number given to the API, or a UsageError naming it (2.7 samples were cut to 2,
+    "abc" raised int()'s own error)."""
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+        if isinstance(value, (float, np.floating)) and float(value).is_integer():
+            return int(value)
+        raise UsageError(f"{name} must be a whole number, got {value!r}")
+    return int(value)
+
+
 def make_spec(study: Study, samples: int | None = None, seed: int | None = None,
               sampler: str | None = None, overrides: dict[str, Override] | None = None) -> RunSpec:
-    samples = study.settings.samples if samples is None else int(samples)
-    seed = study.settings.seed if seed is None else int(seed)
+    samples = study.settings.samples if samples is None else _whole(samples, "samples")
+    seed = study.settings.seed if seed is None else _whole(seed, "seed")
     sampler = study.settings.sampler if sampler is None else sampler
-    if samples < 1:
-        raise UsageError(f"samples must be at least 1, got {samples}")
+    if not 1 <= samples <= MAX_SAMPLES:
+        raise UsageError(f"samples must be from 1 to {MAX_SAMPLES:,}, got {samples}")
     if seed < 0:
         raise UsageError(f"seed must be zero or positive, got {seed}")
     if sampler not in SAMPLERS:

@@ -537,6 +537,15 @@ def summary_mismatch(folder: Path, summary: dict) -> str | None:
     return None
 
 
+def column_names(folder: Path) -> list[str]:
+    """The columns of a chunked result (its first chunk file's schema); none without one."""
+    files = chunk_files(folder)
+    if not files:
+        return []
+    with _readable(files[0]):
+        return list(pq.read_schema(files[0]).names)
+
+
 def chunk_files(folder: Path) -> list[Path]:
     """The run's chunk files, in order: ``part-NNNNNN.parquet`` only (a copy such as
     ``part-000003 (copy).parquet`` is no chunk and is never read)."""
