@@ -277,6 +277,9 @@ def test_frontier_draws_the_non_dominated_points():
     (dominated,) = _lines(fig, "dominated")
     assert list(dominated.get_xdata()) == [2.5]
     assert _lines(fig, "frontier")
+    # every candidate is named, the dominated one as well (16 anonymous points could not be
+    # told apart)
+    assert sorted(t.get_text() for t in fig.axes[0].texts) == list("abcd")
 
 
 def test_waveforms_differ_in_line_style():

@@ -606,7 +606,7 @@ def frontier(candidates: pd.DataFrame, metric_x: str, metric_y: str, *,
     minimize_x, minimize_y : bool
         Direction of each objective (for the frontier).
     label : str, optional
-        Column whose text labels the frontier points.
+        Column whose text names each candidate beside its point.
     x_unit, y_unit : str, optional
         Units for engineering-notation axes.
 
@@ -633,9 +633,14 @@ def frontier(candidates: pd.DataFrame, metric_x: str, metric_y: str, *,
         ax.step(fx, fy, where=where, linestyle="--", color="black", linewidth=1.2,
                 label="frontier", gid="frontier")
         if label is not None and label in df:
-            names = df[label].astype(str).to_numpy()[front][order]
-            for a, b, t in zip(fx, fy, names):
-                ax.annotate(t, (a, b), textcoords="offset points", xytext=(4, 4), fontsize=7)
+            # every candidate named (unnamed points could not be told apart), the dominated
+            # ones in grey
+            names = df[label].astype(str).to_numpy()
+            for a, b, t, on in zip(xv, yv, names, front):
+                if np.isfinite(a) and np.isfinite(b):
+                    ax.annotate(t, (a, b), textcoords="offset points", xytext=(4, 4),
+                                fontsize=7, color="black" if on else "0.45",
+                                annotation_clip=False)
         _unit_axis(ax.xaxis, x_unit)
         _unit_axis(ax.yaxis, y_unit)
         ax.set_xlabel(metric_x + (" (lower is better)" if minimize_x else " (higher is better)"))

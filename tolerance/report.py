@@ -1139,6 +1139,13 @@ def _whatif_plots(folder: Path, whatif: dict, summary: dict | None,
     return made
 
 
+#: the point of a metric a trade-off reads, by its summary key
+_POINT_NAMES = {"p001": "0.1 % point", "p999": "99.9 % point"}
+
+#: the frame column naming each candidate on the frontier plot
+CANDIDATE_LABEL = "candidate"
+
+
 def _choose_plots(choose: dict, plot_dir: Path) -> list[PlotTask]:
     """Yield map over the candidate values and the trade-off frontier, from choose.json."""
     if not isinstance(choose, dict) or not isinstance(choose.get("candidates"), list):
@@ -1149,12 +1156,19 @@ def _choose_plots(choose: dict, plot_dir: Path) -> list[PlotTask]:
     if not cands or not 1 <= len(names) <= 2:
         return []
     units = choose.get("units") or {}
+    trade = choose.get("tradeoff") or {}
+    # a trade-off axis says which point of the metric it plots (the 0.1 % point of a drive
+    # margin read as its typical value)
+    axis = {m: f"{m}, {_POINT_NAMES.get((t or {}).get('statistic'), 'robust end')}"
+            for m, t in trade.items()}
     rows = []
     for c in cands:
         row = {n: c["values"].get(n) for n in names}
         row.update({k: c.get(k) for k in ("yield", "ci_low", "ci_high")})
-        for m in choose.get("tradeoff") or {}:
-            row[m] = c.get(m)
+        for m in trade:
+            row[axis[m]] = c.get(m)
+        row[CANDIDATE_LABEL] = ", ".join(f"{n} = {format_value(c['values'].get(n), units.get(n))}"
+                                         for n in names)
         rows.append(row)
     df = pd.DataFrame(rows)
     made = []
@@ -1163,14 +1177,14 @@ def _choose_plots(choose: dict, plot_dir: Path) -> list[PlotTask]:
                          {"x_unit": units.get(names[0]), "y_unit": units.get(y) if y else None},
                          plot_dir / "choose-yield.png",
                          f"Yield over the candidate values of {', '.join(names)}"))
-    trade = choose.get("tradeoff") or {}
     if len(trade) == 2:
         (mx, ix), (my, iy) = trade.items()
         # a metric judged at its low percentile has a lower limit: larger is better
-        made.append(PlotTask("frontier", (df, mx, my),
+        made.append(PlotTask("frontier", (df, axis[mx], axis[my]),
                              {"minimize_x": ix.get("statistic") != "p001",
                               "minimize_y": iy.get("statistic") != "p001",
-                              "x_unit": ix.get("unit"), "y_unit": iy.get("unit")},
+                              "x_unit": ix.get("unit"), "y_unit": iy.get("unit"),
+                              "label": CANDIDATE_LABEL},
                              plot_dir / "choose-frontier.png",
                              f"Trade-off between {mx} and {my} with the non-dominated "
                              f"frontier"))
