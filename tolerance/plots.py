@@ -244,7 +244,8 @@ def histogram(samples: pd.DataFrame, metric: str, summary: dict) -> Figure:
                     f"counted rate {format_rate(c['rate'])}, 95 % interval "
                     f"{format_interval(c['ci_low'], c['ci_high'])}")
             if c.get("zero_failure_upper") is not None:
-                text += f", zero-failure upper bound {format_rate(c['zero_failure_upper'])}"
+                # on a line of its own: at the end of the long one it ran off the figure
+                text += f",\nzero-failure upper bound {format_rate(c['zero_failure_upper'])}"
             lines.append(text)
         if missing:
             lines.append(f"{missing} samples without a value (not converged or runaway), left out")
