@@ -510,6 +510,15 @@ def test_the_api_refuses_what_the_command_line_refuses(linear, tmp_path):
     with pytest.raises(KeyError, match="no column 'nope'"):
         res.column("nope")
     assert res.metrics["mean"].dtype == float and res.metrics["unit"].dtype == object
+    from tolerance.api import UsageError as Refused
+
+    for kwargs, text in [({"jobs": 1.5}, "jobs must be a whole number"),
+                         ({"overrides": {"x1": 1.0}}, "Override"),
+                         ({"resume": True}, "give out= as well")]:
+        with pytest.raises(Refused, match=text):
+            run(study, samples=10, **kwargs)
+    with pytest.raises(ValueError, match="measure must be"):
+        res.plot.tornado("y", measure="sobol")
     import tolerance
 
     assert tolerance.load_study().title == load_study(None).title

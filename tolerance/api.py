@@ -152,6 +152,10 @@ class ResultPlots:
         from tolerance import plots
 
         self._check(metric)
+        if measure not in ("srrc", "spearman", "prcc"):
+            raise ValueError(f"measure must be srrc, spearman or prcc, got {measure!r}")
+        if not isinstance(top, int) or top < 1:
+            raise ValueError(f"top must be a positive whole number, got {top!r}")
         return plots.tornado(self._r.summary.get("sensitivity", []), metric, top, measure)
 
     def driver_scatter(self, criterion: str, input_name: str | None = None):
@@ -313,12 +317,20 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         Called without arguments once every sample is evaluated, before the summary is
         computed (the command line starts its plot workers' imports there).
     """
+    if overrides and not all(isinstance(o, Override) for o in overrides.values()):
+        raise UsageError("overrides map parameter names to tolerance.runner.Override "
+                         "(e.g. Override('pin', 1000.0)); for a plain value use "
+                         "study.whatif('RB=1k')")
     spec = make_spec(study, samples, seed, sampler, overrides)
-    chunk = study.settings.chunk_size if chunk_size is None else int(chunk_size)
+    chunk = (study.settings.chunk_size if chunk_size is None
+             else _whole(chunk_size, "chunk_size"))
     if chunk < 1:
         raise UsageError(f"chunk size must be at least 1, got {chunk}")
+    jobs = _whole(jobs, "jobs")
     if jobs < 1:
         raise UsageError(f"jobs must be at least 1, got {jobs}")
+    if resume and out is None:
+        raise UsageError("resume continues a run in its folder: give out= as well")
     if backend not in ("loky", "dask"):
         raise UsageError(f"backend must be loky or dask, got {backend!r}")
     if backend == "dask":

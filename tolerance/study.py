@@ -615,14 +615,16 @@ class Study:
         ``study.whatif("Q2.hfe=min")``; see :func:`tolerance.whatif.whatif`."""
         from tolerance.whatif import whatif
 
-        return whatif(self, list(pins), **kwargs)
+        # a list of pins, as tolerance.whatif.whatif takes them, is taken as well
+        flat = [p for item in pins for p in ([item] if isinstance(item, str) else item)]
+        return whatif(self, flat, **kwargs)
 
     def worstcase(self, samples: int | None = None, seed: int | None = None,
                   sampler: str | None = None, chunk_size: int | None = None) -> dict:
         """Extreme-value, RSS and optimizer worst case beside the Monte Carlo extremes."""
         from tolerance.analysis import study_worst_case
 
-        return study_worst_case(self, samples or self.settings.samples,
+        return study_worst_case(self, self.settings.samples if samples is None else samples,
                                 self.settings.seed if seed is None else seed, sampler, chunk_size)
 
     def sensitivity(self, samples: int | None = None, seed: int | None = None,
@@ -632,7 +634,7 @@ class Study:
         64)."""
         from tolerance.analysis import study_sensitivity
 
-        return study_sensitivity(self, samples or self.settings.samples,
+        return study_sensitivity(self, self.settings.samples if samples is None else samples,
                                  self.settings.seed if seed is None else seed, sobol_samples,
                                  sampler=sampler, chunk_size=chunk_size)
 
