@@ -1003,24 +1003,47 @@ def _run_plots(folder: Path, summary: dict, extras: dict,
         return _run_plot_tasks(read, summary, extras, plot_dir)
 
 
+def _plot_rows(passed: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Rows a long run's plots draw and the units each stands for: of the passing and of
+    the failing units each, all of them up to :data:`PLOT_ROWS`, else a random
+    ``PLOT_ROWS`` of them (numpy's generator, seed 0: the same figures every time), weighted
+    so that each group's weights add up to its count."""
+    rng = np.random.default_rng(0)
+    rows, weights = [], []
+    for group in (np.flatnonzero(~passed), np.flatnonzero(passed)):
+        if group.size > PLOT_ROWS:
+            pick = np.sort(rng.choice(group, size=PLOT_ROWS, replace=False))
+            rows.append(pick)
+            weights.append(np.full(PLOT_ROWS, group.size / PLOT_ROWS))
+        else:
+            rows.append(group)
+            weights.append(np.ones(group.size))
+    order = np.argsort(np.concatenate(rows), kind="stable")
+    return np.concatenate(rows)[order], np.concatenate(weights)[order]
+
+
 def _run_plot_tasks(read, summary: dict, extras: dict, plot_dir: Path) -> list[PlotTask]:
     made: list[PlotTask] = []
     columns: dict[str, np.ndarray] = {}
-    # plots draw every unit that fails a criterion and, beyond PLOT_ROWS units, every k-th
-    # of the passing ones, each standing for k (weight): the failing tail is drawn whole
-    # (thinned alike, 1 of 600,000 failures vanished from the figures) and the bars still
-    # count about every unit; the rates in the titles are the summary's own
-    passed = read("pass").astype(bool)
-    step = max(1, -(-len(passed) // PLOT_ROWS))
+    # beyond PLOT_ROWS units the plots draw a seeded random PLOT_ROWS of the passing units
+    # and of the failing ones (every failing unit while there are fewer), each drawn unit
+    # standing for its group's count over the drawn (weight): the failing tail is drawn whole
+    # where it matters (every k-th unit lost the 1 failure in 600,000 of a driver scatter),
+    # the bars and legends count every unit exactly, and a random pick is fair on a Sobol
+    # run, whose every other point lies in one half of an input's range
+    n = summary.get("samples") if isinstance(summary.get("samples"), int) else None
+    if n is None:
+        n = len(read(next(iter(_limited_metrics(summary)), "converged")))
     drawn = weight = None
-    if step > 1:
-        grid = np.zeros(len(passed), dtype=bool)
-        grid[::step] = True
-        drawn = np.flatnonzero(grid | ~passed)
-        weight = np.where(passed[drawn], float(step), 1.0)
+    if n > PLOT_ROWS:
+        try:
+            passed = read("pass").astype(bool)
+        except (KeyError, OSError, ValueError):  # a folder without the overall flag
+            passed = np.ones(n, dtype=bool)
+        drawn, weight = _plot_rows(passed)
     thinned = ("" if drawn is None else
-               f" (every failing unit and 1 in {step:,} of the passing ones, each standing "
-               f"for {step:,})")
+               f" (a random {PLOT_ROWS:,} of the passing units and of the failing ones, "
+               f"every failing unit where fewer fail, weighted to count every unit)")
 
     def col(name):
         if name not in columns:
@@ -1117,9 +1140,11 @@ def _whatif_plots(folder: Path, whatif: dict, summary: dict | None,
     for c in (whatif.get("criteria") or {}).values():
         if isinstance(c, dict) and isinstance(c.get("limit"), dict):
             limits.setdefault(c.get("metric"), []).append(c["limit"])
-    if summary and not limits:
+    if summary:
+        own = set(limits)
         for c in summary.get("criteria", {}).values():
-            limits.setdefault(c["metric"], []).append(c["limit"])
+            if c["metric"] not in own:
+                limits.setdefault(c["metric"], []).append(c["limit"])
     made = []
     # the values in their units (-40 degC, not 233.1); a file without them gives the SI values
     shown = whatif.get("pinned_values") or whatif.get("pins") or {}
