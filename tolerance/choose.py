@@ -202,9 +202,9 @@ def check_request(study: Study, varies: list[str], tradeoff: tuple[str, ...] | N
     return sweeps, tuple(tradeoff)
 
 
-def _robust_end(study: Study, metric: str) -> str:
+def _robust_end(study: Study, metric: str, given: dict[str, int] | None = None) -> str:
     """The percentile a trade-off reads: the low tail when larger is better, else the high."""
-    return "p001" if _direction(study, metric) > 0 else "p999"
+    return "p001" if _direction(study, metric, given) > 0 else "p999"
 
 
 def default_tradeoff(study: Study, summaries: list[dict]) -> tuple[str, ...]:
@@ -273,7 +273,7 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
         tradeoff = tuple(m for m, _ in items)
         given = {m: d for m, d in items if d is not None}
     # robust end of each trade-off metric: the low tail when larger is better, else the high
-    ends = {m: "p001" if _direction(study, m, given) > 0 else "p999" for m in tradeoff}
+    ends = {m: _robust_end(study, m, given) for m in tradeoff}
     for row, s in zip(candidates, summaries):
         for m in tradeoff:
             row[m] = s["metrics"][m][ends[m]]
@@ -303,7 +303,7 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
         "sampler": used_sampler, "vary": {n: [float(v) for v in vals] for n, vals in sweeps},
         "units": {n: study.parameter(n).unit for n in names},
         "tradeoff": {m: {"statistic": ends[m], "unit": metrics[m].unit,
-                         "better": "higher" if _direction(study, m, given) > 0 else "lower"}
+                         "better": "higher" if ends[m] == "p001" else "lower"}
                      for m in tradeoff},
         "candidates": candidates,
         "best": candidates[best],
