@@ -206,12 +206,31 @@ class Datasheet:
                 continue
             if not (isinstance(v, (int, float)) and math.isfinite(v)):
                 raise DatasheetError(f.name, f"expected a finite number, got {v!r}")
-            if f.name == "emitter_resistance":
+            if f.name in ("emitter_resistance", "beta_exponent"):
                 if v < 0:
                     raise DatasheetError(f.name, f"must not be negative, got {v:g}")
             elif v <= 0:
                 what = "a leakage current" if "icbo" in f.name else "this figure"
                 raise DatasheetError(f.name, f"{what} must be positive, got {v:g}")
+        for name in ("hfe_min", "hfe_typ", "hfe_max", "hfe_high_min", "hfe_low_min"):
+            gain = getattr(self, name)
+            if gain is not None and gain <= 1.0:
+                raise DatasheetError(name, f"{gain:g} is not a transistor's current gain (I_C / "
+                                           f"I_B above 1)")
+        # plausible class figures (from memory: X_TB of silicon transistors 1 to 2.5; I_CBO
+        # doubles every 6 to 12 K); outside these the temperature laws become nonsense
+        if self.beta_exponent > 4.0:
+            raise DatasheetError("beta_exponent", f"{self.beta_exponent:g} is outside 0 .. 4 "
+                                                  f"(silicon transistors: about 1 to 2.5)")
+        if not 4.0 <= self.leakage_doubling <= 20.0:
+            raise DatasheetError("leakage_doubling", f"{self.leakage_doubling:g} K is outside "
+                                                     f"4 .. 20 K (silicon: about 6 to 12 K)")
+        for name in ("hfe_current", "vce_sat_ic", "vbe_on_current"):
+            if getattr(self, name) > self.ic_max * (1 + 1e-9):
+                raise DatasheetError("ic_max", f"{self.ic_max:g} A is below the test point "
+                                               f"{name} = {getattr(self, name):g} A: a "
+                                               f"datasheet's test points lie within its "
+                                               f"rating; check the units")
         if self.hfe_min > self.hfe_max:
             raise DatasheetError("hfe_min", f"hfe_min ({self.hfe_min:g}) is above hfe_max "
                                             f"({self.hfe_max:g})")
@@ -254,6 +273,14 @@ class Datasheet:
             raise DatasheetError("theta_jc", f"{self.theta_jc:g} K/W must be below theta_ja "
                                              f"({self.theta_ja:g} K/W): the case lies on the "
                                              "junction's way to the air")
+
+
+def _logistic(x: float) -> float:
+    """1 / (1 + exp(-x)) without overflow at either end."""
+    if x >= 0:
+        return 1.0 / (1.0 + math.exp(-x))
+    e = math.exp(x)
+    return e / (1.0 + e)
 
 
 @dataclass(frozen=True)
@@ -612,7 +639,7 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
             return _scalar(hfe_at(q, ds.hfe_high_current, ds.hfe_vce)[0]) - ds.hfe_high_min
 
         def f_phi(logit, **extra):
-            q = build(phi=1.0 / (1.0 + math.exp(-logit)), **extra)
+            q = build(phi=_logistic(logit), **extra)
             return _scalar(hfe_at(q, ds.hfe_low_current, ds.hfe_vce)[0]) - ds.hfe_low_min
 
         both = ds.hfe_high_current is not None and ds.hfe_low_current is not None
@@ -622,10 +649,11 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
             # strongly (a large share makes the gain rise with current), so solve them jointly
             def pair(u):
                 try:
-                    return [f_knee(math.exp(u[0]), phi=1.0 / (1.0 + math.exp(-u[1])))
-                            / ds.hfe_high_min,
+                    return [f_knee(math.exp(u[0]), phi=_logistic(u[1])) / ds.hfe_high_min,
                             f_phi(u[1], knee_current=math.exp(u[0])) / ds.hfe_low_min]
-                except DatasheetError:
+                except (DatasheetError, OverflowError):
+                    # a trial point far outside (a gain of 1e5 sent the solver's logit to
+                    # -1e3, whose exp overflowed): not a solution
                     return [math.nan, math.nan]
             phi0 = min(max(state["phi"], 1e-3), 1.0 - 1e-3)
             knee0 = state["knee_current"]
@@ -640,16 +668,24 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
                 joint = sol.x
         if joint is not None:
             state["knee_current"] = math.exp(joint[0])
-            state["phi"] = 1.0 / (1.0 + math.exp(-joint[1]))
+            state["phi"] = _logistic(joint[1])
         else:
+            # with both figures the joint solve failed: the message names the pair (the
+            # model's minimum unit meets both floors exactly; 200 / 40 at 100 mA / 60 at
+            # 0.1 mA has no solution where 200 / 40 / 120 has)
+            jointly = (f" together with hfe_low_min = {ds.hfe_low_min:g} at "
+                       f"{ds.hfe_low_current:g} A (the model's minimum-gain unit meets both "
+                       f"floors exactly; a datasheet's minimums are floors, so a lower "
+                       f"hfe_low_min or hfe_high_min that the part still meets will fit)"
+                       if both else "")
             if ds.hfe_high_current is not None:
                 lo, hi = ds.hfe_high_current * 1e-2, ds.hfe_high_current * 1e4
                 state["knee_current"] = solve(f_knee, lo, hi, "hfe_high_min",
-                                              "no knee current gives this fall-off")
+                                              "no knee current gives this fall-off" + jointly)
             if ds.hfe_low_current is not None:
                 logit = solve(f_phi, -40.0, 20.0, "hfe_low_min",
                               "no recombination current gives this roll-off", log=False)
-                state["phi"] = 1.0 / (1.0 + math.exp(-logit))
+                state["phi"] = _logistic(logit)
 
         def f_rc(rc):
             q = build(collector_resistance=rc)

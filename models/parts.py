@@ -319,11 +319,31 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
             typ = t.optional_quantity("typ", "1", positive=True)
             kind = t.string("distribution", default="lognormal",
                             choices=("lognormal", "uniform", "normal", "truncnormal", "fixed"))
-            figures["hfe_min"], figures["hfe_max"] = lo, hi
-            if typ is not None:
-                figures["hfe_typ"] = typ
-            elif figures.get("hfe_typ") is not None and not lo <= figures["hfe_typ"] <= hi:
-                figures.pop("hfe_typ")
+            stated = (figures.get("hfe_min"), figures.get("hfe_max"))
+            if stated[0] is not None and stated[1] is not None:
+                # a screen of the datasheet's spread: the device keeps the figures it was
+                # fitted to (refitting it to the screen's ends made the same unit weaker at
+                # high current, so a better-screened batch read worse), and the screen lies
+                # within them
+                source = ("the study's" if part.has("hfe_min") or part.has("hfe_max")
+                          else f"the device class's ({device})" if device
+                          else "the datasheet's")
+                for key, value, bound in (("min", lo, stated[0]), ("max", hi, stated[1])):
+                    outside = value < bound * (1 - 1e-9) if key == "min" else \
+                        value > bound * (1 + 1e-9)
+                    if outside:
+                        side = "below" if key == "min" else "above"
+                        raise t.error(key, f"{value:g} is {side} {source} hfe_{key} = "
+                                           f"{bound:g}: this table screens the datasheet's "
+                                           f"spread ({stated[0]:g} .. {stated[1]:g}); for a "
+                                           f"part whose datasheet states {value:g}, give "
+                                           f"hfe_min and hfe_max (its figures) as well")
+            else:
+                figures["hfe_min"], figures["hfe_max"] = lo, hi
+                if typ is not None:
+                    figures["hfe_typ"] = typ
+                elif figures.get("hfe_typ") is not None and not lo <= figures["hfe_typ"] <= hi:
+                    figures.pop("hfe_typ")
             hfe_spec = {"min": lo, "max": hi, "distribution": kind}
             if typ is not None:
                 hfe_spec["typ"] = typ
@@ -358,6 +378,11 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
             from None
     try:
         fitted = device_for(ds.figures())
+    except ArithmeticError:
+        given = [k for k in figures if part.has(k)] + (["hfe"] if part.has("hfe") else [])
+        raise part.error(given[0] if given else "device",
+                         "the transistor model cannot be fitted to these figures (a number "
+                         "overflowed): check their values and units") from None
     except DatasheetError as exc:
         if part.has(exc.key):
             raise part.error(exc.key, exc.message) from None

@@ -170,6 +170,16 @@ def test_study_parameters_of_a_library_part(tmp_path):
     ('device = "small_signal_pnp"', "parts.Q1.device"),
     ('device = "monolithic_darlington"', "parts.Q1.device"),
     ('device = "small_signal_npn"\nvce_sat_maxx = "0.2 V"', "parts.Q1.vce_sat_maxx"),
+    # nonsense that fitted and ran before (a device audit, 2026-12-04): a gain below one,
+    # a leakage doubling every half kelvin, a gain exponent of 10, a rating below the test
+    # current; and a gain of 1e5 whose fit overflowed (a traceback, exit status 1)
+    ('device = "small_signal_npn"\nhfe_min = 0.5\nhfe_typ = 0.7\nhfe_max = 0.9',
+     "parts.Q1.hfe_min"),
+    ('device = "small_signal_npn"\nleakage_doubling = "0.5 K"', "parts.Q1.leakage_doubling"),
+    ('device = "small_signal_npn"\nbeta_exponent = 10', "parts.Q1.beta_exponent"),
+    ('device = "small_signal_npn"\nic_max = "1 mA"', "parts.Q1.ic_max"),
+    ('device = "small_signal_npn"\nhfe_min = 1e5\nhfe_typ = 3e5\nhfe_max = 1e6',
+     "parts.Q1.hfe_min"),
 ])
 def test_bad_device_data_names_the_key(tmp_path, q1, key):
     with pytest.raises(StudyError) as info:
@@ -268,3 +278,21 @@ def test_fit_cache_gives_back_the_fit_and_never_a_stale_one(tmp_path, monkeypatc
         assert parts.fit_cache_dir() is None
     finally:
         parts._fit_cached.cache_clear()
+
+
+def test_a_gain_without_temperature_law_is_a_legal_class_figure(tmp_path):
+    # X_TB = 0 (a gain flat in temperature) was refused as "must be positive"
+    study = _study(tmp_path, 'device = "small_signal_npn"\nbeta_exponent = 0')
+    assert study.stage.q1.device.datasheet.beta_exponent == 0.0
+
+
+def test_two_gain_floors_that_cannot_hold_together_are_named_together():
+    # 200 at the test point with 40 at 100 mA and 60 at 0.1 mA has no solution in the model
+    # (scipy least_squares of a device audit, 2026-12-04), 200 / 40 / 120 has: the message
+    # named only the high-current floor
+    figures = dict(library()["small_signal_npn"].figures, hfe_min=200.0, hfe_typ=400.0,
+                   hfe_max=600.0)
+    with pytest.raises(DatasheetError) as info:
+        fit_datasheet(Datasheet.from_figures(figures))
+    assert "hfe_low_min" in info.value.message and info.value.key == "hfe_high_min"
+    fit_datasheet(Datasheet.from_figures(dict(figures, hfe_low_min=120.0)))

@@ -36,10 +36,17 @@ transistor's V_CE(sat), because the output transistor cannot saturate.
 from __future__ import annotations
 
 import dataclasses
+import math
 
 import numpy as np
 
-from tolerance.models.parts import library, read_transistor
+from tolerance.models.datasheet import DatasheetError
+from tolerance.models.parts import (
+    DARLINGTON_FIGURES,
+    TransistorPart,
+    library,
+    read_transistor,
+)
 from tolerance.models.stages import (
     JUNCTION_LEAK,
     LOOP_CONDUCTANCE,
@@ -50,10 +57,15 @@ from tolerance.models.stages import (
     read_environment,
     read_load_table,
     read_resistor,
+    solve_with_restarts,
     transistor_power,
     vbe_guess,
 )
-from tolerance.models.transistor import junction_currents, terminal_offsets
+from tolerance.models.transistor import (
+    REFERENCE_TEMPERATURE,
+    junction_currents,
+    terminal_offsets,
+)
 from tolerance.models.stages.evaluation import read_switching, read_thermal
 from tolerance.protocol import register_stage
 from tolerance.study import Reader
@@ -119,6 +131,32 @@ class DarlingtonStage(PairStage):
 
     name = "darlington"
     system = DarlingtonSystem
+    #: a monolithic pair's fit to its own figures (:class:`PairFit`), else None
+    pair_fit = None
+
+    def assumptions(self):
+        """The dies' rows, and for a monolithic pair the pair's own figures and what its
+        fit put into the output die."""
+        rows = super().assumptions()
+        fit = self.pair_fit
+        if fit is not None:
+            from tolerance.units import format_quantity as q
+
+            f = fit.figures
+            for row in rows:
+                if row["part"] == "Q2":
+                    # the pair's own figures beside the output die's (the die's are class
+                    # equivalents; the datasheet states the pair's)
+                    row["vce_sat_max"] += (
+                        f"; pair {q(f['pair_vce_sat_max'], 'V')} at "
+                        f"{q(f['pair_vce_sat_ic'], 'A')} / {q(f['pair_vce_sat_ib'], 'A')} "
+                        f"(dies alone {q(fit.vce_sat_dies, 'V')}, met by "
+                        f"{q(fit.added_emitter_resistance, 'ohm')} in the output's emitter)")
+                    if f.get("pair_hfe_min") is not None:
+                        row["hfe"] += (f"; pair {f['pair_hfe_min']:g} min at "
+                                       f"{q(f['pair_hfe_current'], 'A')} (model, both dies "
+                                       f"at minimum: {fit.hfe_min_model:.0f})")
+        return rows
 
     @staticmethod
     def resistor_voltages(state):
@@ -191,6 +229,148 @@ class DarlingtonStage(PairStage):
         return [passing, starved]
 
 
+#: the figures of a monolithic pair's V_CE(sat) test, which [parts.Q2] may state for its part
+PAIR_SATURATION_KEYS = ("pair_vce_sat_max", "pair_vce_sat_ic", "pair_vce_sat_ib")
+
+
+class _CurrentSink:
+    """A load that draws a fixed current whatever its voltage (a datasheet's test set)."""
+
+    kind = "test"
+
+    def __init__(self, current: np.ndarray):
+        self.i = np.asarray(current, dtype=float)
+        self.n_samples = self.i.shape[0]
+
+    def current(self, v):
+        return self.i, np.zeros_like(self.i)
+
+    def voltage_guess(self, current):
+        return np.ones_like(np.asarray(current, dtype=float))
+
+    def take(self, idx):
+        return _CurrentSink(self.i[idx])
+
+
+#: the conductance of the test set's base current source: the drive is ib / G volts behind
+#: 1 / G, so the base current is ib to (V_B1 G) / ib, below 1e-9 relative [S]
+_SOURCE_CONDUCTANCE = 1e-12
+
+
+def pair_collector_voltage(q1, q2, g_be1, g_be2, ic, ib, temperature=REFERENCE_TEMPERATURE):
+    """Collector-emitter voltage of a Darlington pair carrying ``ic`` with base current ``ib``
+    (arrays of one length, or scalars) at ``temperature`` [K], both dies' parameters given
+    (``TransistorParameters``), the internal base-emitter conductances ``g_be1``, ``g_be2``
+    [S]; NaN where the solve did not converge. The datasheet test of a pair's V_CE(sat) and,
+    at a stated V_CE, of its gain."""
+    ic, ib = np.broadcast_arrays(np.atleast_1d(np.asarray(ic, dtype=float)),
+                                 np.atleast_1d(np.asarray(ib, dtype=float)))
+    n = ic.shape[0]
+    t = np.full(n, float(temperature))
+    s1, s2 = q1.at_temperature(t), q2.at_temperature(t)
+    sink = _CurrentSink(ic.copy())
+    supply = np.full(n, 100.0)
+    g = np.full(n, _SOURCE_CONDUCTANCE)
+    system = DarlingtonSystem(s1, s2, sink, supply, ib / g, g, np.full(n, float(g_be1)),
+                              np.full(n, float(g_be2)), "on")
+    starts = DarlingtonStage.guesses(None, "on", s1, s2, supply, ic, np.full(n, float(g_be2)))
+    res = solve_with_restarts(system, starts)
+    return np.where(res.converged, system.state(np.nan_to_num(res.x))["v_out"], np.nan)
+
+
+@dataclasses.dataclass(frozen=True)
+class PairFit:
+    """What a monolithic pair's own figures did to its dies (for the report and tests).
+
+    ``vce_sat_dies`` is the pair's V_CE(sat) of the minimum-gain dies alone [V],
+    ``added_emitter_resistance`` the resistance put into the output die's emitter so that
+    the minimum-gain pair meets ``pair_vce_sat_max`` [ohm], ``hfe_min_model`` the minimum-gain
+    pair's gain at ``pair_hfe_current`` and ``pair_hfe_vce`` [1]."""
+
+    figures: dict
+    vce_sat_dies: float
+    added_emitter_resistance: float
+    hfe_min_model: float
+
+
+def _pair_gain(q1, q2, g_be1, g_be2, ic, vce):
+    """The pair's gain I_C / I_B at collector current ``ic`` and voltage ``vce`` (25 degC):
+    the base current whose collector voltage is ``vce``, from a grid in log(I_B) refined
+    twice (the collector voltage falls monotonically with the base current)."""
+    lo, hi = ic / 1e6, ic / 2.0
+    for _ in range(3):
+        ib = np.geomspace(lo, hi, 64)
+        v = pair_collector_voltage(q1, q2, g_be1, g_be2, np.full(64, ic), ib)
+        above = np.flatnonzero(np.isfinite(v) & (v > vce))
+        below = np.flatnonzero(np.isfinite(v) & (v <= vce))
+        if not above.size or not below.size:
+            return math.nan
+        k = above[-1]
+        if k + 1 >= 64 or k + 1 not in below:
+            return math.nan
+        lo, hi = ib[k], ib[k + 1]
+    # linear in log(I_B) across the last cell
+    w = (v[k] - vce) / (v[k] - v[k + 1])
+    return float(ic / math.exp(math.log(lo) + w * (math.log(hi) - math.log(lo))))
+
+
+def fit_pair(q1: TransistorPart, q2: TransistorPart, figures: dict, rbe_driver: float | None,
+             rbe_output: float | None) -> tuple[TransistorPart, PairFit]:
+    """Make the minimum-gain pair (both dies at hfe_min, internal resistors nominal, 25 degC)
+    meet the pair's stated maximum V_CE(sat), as the single transistor's fit puts its
+    maximum on its minimum-gain unit (conservative for the saturation and dissipation checks).
+
+    The pair's V_CE(sat) is the output's V_BE plus the driver's V_CE(sat); what the dies'
+    class figures leave below the pair's maximum goes into the output die's emitter
+    resistance (the one place that raises it at every unit: the output itself never
+    saturates in a Darlington, so a collector resistance would not show), found by secant
+    steps (V_CE(sat) rises almost linearly with it). Returns the output part with that
+    resistance and the figures of the fit. A pair already at or above its maximum is left as
+    it is.
+    """
+    g_be1 = 0.0 if not rbe_driver else 1.0 / rbe_driver
+    g_be2 = 0.0 if not rbe_output else 1.0 / rbe_output
+    d1, d2 = q1.device, q2.device
+    p1 = d1.parameters(d1.datasheet.hfe_min)
+    ic, ib = figures["pair_vce_sat_ic"], figures["pair_vce_sat_ib"]
+    target = figures["pair_vce_sat_max"]
+    base_re = float(d2.template.emitter_resistance)
+
+    def output_with(extra):
+        return dataclasses.replace(d2, template=dataclasses.replace(
+            d2.template, emitter_resistance=base_re + extra), _cache={})
+
+    def vce_at(extra):
+        dev = output_with(extra)
+        return float(pair_collector_voltage(p1, dev.parameters(dev.datasheet.hfe_min),
+                                            g_be1, g_be2, ic, ib)[0])
+
+    v0 = vce_at(0.0)
+    if not math.isfinite(v0):
+        raise DatasheetError("pair_vce_sat_max", "the pair's saturation point could not be "
+                                                 "solved from its dies")
+    extra = 0.0
+    if v0 < target:
+        r_a, v_a = 0.0, v0
+        r_b = (target - v0) / ic
+        v_b = vce_at(r_b)
+        for _ in range(20):
+            if not math.isfinite(v_b):
+                raise DatasheetError("pair_vce_sat_max", "cannot be met by the dies' model")
+            if abs(v_b - target) < 1e-9 * target or v_b == v_a:
+                break
+            r_a, v_a, r_b = r_b, v_b, r_b + (target - v_b) * (r_b - r_a) / (v_b - v_a)
+            v_b = vce_at(r_b)
+        extra = r_b
+    dev2 = output_with(extra)
+    gain = math.nan
+    if figures.get("pair_hfe_current") is not None and figures.get("pair_hfe_vce") is not None:
+        gain = _pair_gain(p1, dev2.parameters(dev2.datasheet.hfe_min), g_be1, g_be2,
+                          figures["pair_hfe_current"], figures["pair_hfe_vce"])
+    return (dataclasses.replace(q2, device=dev2),
+            PairFit(dict(figures), v0, extra, gain))
+
+
 def _read_internal(part: Reader, entry, name: str) -> tuple[ResistorPart, ResistorPart]:
     """Internal base-emitter resistors of a monolithic entry as parameters of the part."""
     from tolerance.models.parts import _derived_parameter
@@ -228,6 +408,7 @@ def configure(reader):
     q2_table = parts.table("Q2", required=True)
     monolithic = q2_table.boolean("monolithic", default=False)
     internal1 = internal2 = None
+    pair_fit = None
     if monolithic:
         device = q2_table.string("device", default="monolithic_darlington")
         lib = library()
@@ -256,6 +437,29 @@ def configure(reader):
         # own figures")
         q1 = dataclasses.replace(q1, device_class=f"{device}, driver die")
         q2 = dataclasses.replace(q2, device_class=f"{device}, output die")
+        pair_figures = dict(entry.figures)
+        for key in PAIR_SATURATION_KEYS:
+            if q2_table.has(key):
+                pair_figures[key] = q2_table.quantity(key, DARLINGTON_FIGURES[key][0],
+                                                      positive=True)
+        for key in ("pair_hfe_min", "pair_hfe_current", "pair_hfe_vce"):
+            if q2_table.has(key):
+                raise q2_table.error(key, "the pair's gain follows from its dies' gains: give "
+                                          "hfe_min (and hfe_max) in [parts.Q1] for the driver "
+                                          "die and in [parts.Q2] for the output die")
+        if all(pair_figures.get(k) is not None for k in PAIR_SATURATION_KEYS):
+            if pair_figures["pair_vce_sat_max"] >= env.supply_minimum:
+                raise q2_table.error("pair_vce_sat_max" if q2_table.has("pair_vce_sat_max")
+                                     else "device",
+                                     f"the pair's saturation voltage "
+                                     f"{pair_figures['pair_vce_sat_max']:g} V is at or above "
+                                     f"the lowest supply {env.supply_minimum:g} V")
+            try:
+                q2, pair_fit = fit_pair(q1, q2, pair_figures, entry.figures.get("rbe_driver"),
+                                        entry.figures.get("rbe_output"))
+            except DatasheetError as exc:
+                raise q2_table.error(exc.key if q2_table.has(exc.key) else "device",
+                                     f"{exc.key}: {exc.message}") from None
     else:
         entry = library().get(q2_table.string("device", default=""))
         if entry is not None and entry.kind == "darlington":
@@ -284,6 +488,7 @@ def configure(reader):
                             internal_rbe1=internal1, internal_rbe2=internal2,
                             suggested_correlations=((("Q1.hfe", "Q2.hfe"), 0.8),)
                             if monolithic else ())
+    stage.pair_fit = pair_fit
     # one die: both transistors share the output's junction and thermal resistance
     read_thermal(reader, parts, stage, {"Q1": "driver", "Q2": "output"},
                  shared={"Q1": "Q2"} if monolithic else None)
