@@ -406,8 +406,10 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
     _derived_parameter(part, "hfe", hfe_spec, "1", f"{name}.hfe",
                        f"{description}: DC current gain at {ds.hfe_current * 1e3:g} mA")
     if part.has("icbo"):
+        # a range of the study's own spreads over decades like the derived one: lognormal
+        # unless the table names another distribution
         part.parameter("icbo", "A", f"{name}.icbo", f"{description}: I_CBO at 25 degC",
-                       positive=True)
+                       positive=True, range_distribution="lognormal")
     else:
         spec = {"min": ds.icbo_max / ds.icbo_spread, "max": ds.icbo_max,
                 "distribution": "lognormal"}

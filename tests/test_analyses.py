@@ -28,6 +28,22 @@ x1 = {x1}
 x2 = {{nominal = "1 V", tolerance = "30%", distribution = "normal"}}
 """
 SPREAD = '{min = "-1 V", max = "3 V"}'
+DISCRETE_AMBIENT = """
+stage = "single"
+[ambient]
+temperature = {t}
+[supply]
+voltage = "12 V"
+[drive]
+high = "3.3 V"
+[parts.RB]
+value = "150R"
+[parts.Q1]
+device = "medium_power_npn"
+[load]
+kind = "resistor"
+resistance = "68 ohm"
+"""
 
 
 @pytest.fixture
@@ -116,6 +132,72 @@ def test_a_pin_on_a_discrete_value_draws_its_partners_given_that_value(write_stu
         assert_allclose(got.var(), var, rtol=0.08)
     # the middle value is the nominal of an equally weighted set, not the first listed
     assert study.parameter("x1").nominal == 1.0
+
+
+def test_a_pin_at_a_typical_value_at_its_limit_moves_its_partner(write_study):
+    # x1 = normal with typ at min: half the units sit at -1 V, where F = 0.5, so the pin
+    # x1 = min read as a score of 0 and left the partner where it was. A pin at the end of
+    # the spread now counts as the end's score, -3 (tolerance.sampling.PIN_SCORE): the
+    # partner's mean score is 0.8 * -3 (conditional normal, any multivariate text, from
+    # memory), its spread sqrt(1 - 0.8^2)
+    from tolerance.whatif import whatif
+
+    corr = '[[correlation]]\nparameters = ["x1", "x2"]\ncoefficient = 0.8\n'
+    one_sided = '{min = "-1 V", typ = "-1 V", max = "3 V", distribution = "normal"}'
+    study = load_study(write_study(LINEAR.format(x1=one_sided) + corr))
+    _, base, pinned = whatif(study, ["x1=min"])
+    assert np.mean(base.samples["x1"].to_numpy() == -1.0) == pytest.approx(0.5, abs=0.02)
+    got = (pinned.samples["x2"].to_numpy() - 1) / 0.1
+    assert_allclose(got.mean(), -2.4, atol=0.03)
+    assert_allclose(got.std(), 0.6, rtol=0.05)
+    # and check and run say what the distribution does there (Study.notes)
+    (note,) = study.notes()
+    assert note.startswith("inputs.x1: typ lies at min (-1 V)")
+    assert "half the units sit exactly at -1 V" in note and '"truncnormal"' in note
+    cut = one_sided.replace('"normal"', '"truncnormal"')
+    assert load_study(write_study(LINEAR.format(x1=cut), "cut.toml")).notes() == []
+
+
+def test_a_pin_of_a_discrete_set_takes_only_its_members(write_study):
+    # a value between the members (or beyond them) is no unit of the study: its partners'
+    # shift stepped with the stratum it fell in, 25.1 and 54 degC alike
+    from tolerance.whatif import pin_value
+
+    temps = '{values = ["-20 degC", "25 degC", "55 degC"], weights = [1, 2, 1]}'
+    study = load_study(write_study(DISCRETE_AMBIENT.format(t=temps)))
+    low, middle, high = study.parameter("ambient.temperature").distribution.values
+    for spec in ("25.1 degC", "70 degC", "54 degC"):
+        with pytest.raises(UsageError, match=r"takes only its members: -20 degC, 25 degC, "
+                                             r"55 degC"):
+            pin_value(study, "ambient.temperature", spec)
+    assert pin_value(study, "ambient.temperature", "55 degC") == high
+    assert pin_value(study, "ambient.temperature", "328.15 K") == high
+    # percentiles and the ends are members: p50 of a 1:2:1 set is its middle member
+    # (scipy.stats.rv_discrete.ppf), p25 the lowest (the step edge takes the member below)
+    assert pin_value(study, "ambient.temperature", "p50") == middle
+    assert pin_value(study, "ambient.temperature", "p25") == low
+    assert pin_value(study, "ambient.temperature", "max") == high
+
+
+def test_whatif_notes_pins_that_contradict_their_correlation(write_study):
+    # x1 and x2 correlated at 0.9; pins at opposite ends, scores (+3, -3): the Mahalanobis
+    # distance sqrt(t' S^-1 t) = sqrt(18 (1 + 0.9) / (1 - 0.81)) = sqrt(180) = 13.4 (worked
+    # by hand), beyond the 4.2 of two independent pins at their ends; pins at the same
+    # end lie sqrt(18 (1 - 0.9) / 0.19) = 3.1 from the centre and get no note
+    from tolerance.whatif import whatif
+
+    corr = '[[correlation]]\nparameters = ["x1", "x2"]\ncoefficient = 0.9\n'
+    x2 = '{nominal = "1 V", tolerance = "30%", distribution = "truncnormal"}'
+    text = LINEAR.format(x1=SPREAD).replace(
+        'x2 = {nominal = "1 V", tolerance = "30%", distribution = "normal"}', f"x2 = {x2}")
+    study = load_study(write_study(text + corr))
+    result, _, pinned = whatif(study, ["x1=max", "x2=min"], samples=200)
+    (note,) = result["pin_notes"]
+    assert "13.4 standard deviations from the centre jointly" in note
+    assert "rarer than any unit the study describes" in note
+    assert pinned.summary["samples"] == 200  # noted, not refused
+    agree, _, _ = whatif(study, ["x1=max", "x2=max"], samples=200)
+    assert agree["pin_notes"] == []
 
 
 def test_whatif_pin_forms(study):

@@ -441,3 +441,85 @@ def test_an_interrupted_analysis_leaves_no_empty_folder(tmp_path, capsys, monkey
     out.mkdir()
     assert main(["whatif", study, "--pin", "Q1.hfe=min", "--out", str(out)]) == 130
     assert out.is_dir()
+
+
+CORRELATED = """
+stage = "single"
+[ambient]
+temperature = {values = ["-20 degC", "25 degC", "55 degC"], weights = [1, 2, 1]}
+[supply]
+voltage = "12 V"
+[drive]
+high = "3.3 V"
+[parts.RB]
+value = "150R"
+tolerance = "5%"
+[parts.RPD]
+value = "1k0"
+tolerance = "5%"
+[parts.Q1]
+device = "medium_power_npn"
+[load]
+kind = "resistor"
+resistance = {nominal = "68 ohm", tolerance = "5%"}
+[[correlation]]
+parameters = ["RB", "RPD"]
+coefficient = 0.9
+[[correlation]]
+parameters = ["RB", "load.resistance"]
+coefficient = 0.9
+[[correlation]]
+parameters = ["RPD", "load.resistance"]
+coefficient = 0.7
+"""
+
+
+def test_check_lists_the_correlations_and_a_sets_members(tmp_path, capsys):
+    # the coefficients a reviewer signs off were nowhere in the listing, and a set read
+    # "discrete set of 3"
+    path = _study(tmp_path, CORRELATED, "corr.toml")
+    assert main(["check", str(path)]) == 0
+    out = capsys.readouterr().out
+    assert "discrete: -20 degC (25 %), 25 degC (50 %), 55 degC (25 %)" in out
+    rows = _block(out, "parameters ")
+    assert [r.split() for r in rows[1:]] == [["RB,", "RPD", "+0.9"],
+                                            ["RB,", "load.resistance", "+0.9"],
+                                            ["RPD,", "load.resistance", "+0.7"]]
+    assert "normal scores" in out
+
+
+def test_whatif_notes_contradicting_pins_and_keeps_the_inputs_it_moved(tmp_path, capsys):
+    # pins RB = max and RPD = min against r = 0.9: the partner load.resistance is drawn at a
+    # mean normal score of 3 (0.27 + 0.11) / 0.19 = +6.0 (conditional normal, worked by
+    # hand), every unit beyond its tolerance; the run goes ahead and says so
+    import pandas as pd
+
+    path = _study(tmp_path, CORRELATED, "corr.toml")
+    out = tmp_path / "w"
+    assert main(["whatif", str(path), "--pin", "RB=max", "--pin", "RPD=min", "--samples",
+                 "200", "--out", str(out)]) == 0
+    console = capsys.readouterr().out
+    assert "note: The pins contradict the study's correlation" in console
+    assert "load.resistance is drawn given them at a mean normal score of +6.0" in console
+    data = json.loads((out / "whatif.json").read_text(encoding="utf-8"))
+    assert data["pin_notes"] and "+6.0" in data["pin_notes"][0]
+    assert "rarer than any unit the study describes" in (out / "report.md").read_text(
+        encoding="utf-8")
+    frame = pd.read_parquet(out / "whatif_samples.parquet")
+    for name in ("RB", "RPD", "load.resistance"):
+        assert f"baseline.{name}" in frame and f"pinned.{name}" in frame
+    assert "pinned.ambient.temperature" not in frame  # not moved by the pins
+    assert (frame["pinned.RB"] == 157.5).all()  # 150 ohm + 5 %
+    # the partner from the file: 68 ohm + 6.0 sigma of 68 * 5 % / 3
+    score = (frame["pinned.load.resistance"] - 68) / (68 * 0.05 / 3)
+    assert score.mean() == pytest.approx(6.0, abs=0.1)
+
+
+def test_whatif_pin_between_a_sets_members_is_refused(tmp_path, capsys):
+    path = _study(tmp_path, CORRELATED, "corr.toml")
+    out = tmp_path / "w"
+    assert main(["whatif", str(path), "--pin", "ambient.temperature=40 degC", "--out",
+                 str(out)]) == 2
+    err = capsys.readouterr().err
+    assert "ambient.temperature=40 degC" in err and "-20 degC, 25 degC, 55 degC" in err
+    assert "Traceback" not in err and not out.exists()

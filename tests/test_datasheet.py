@@ -296,3 +296,26 @@ def test_two_gain_floors_that_cannot_hold_together_are_named_together():
         fit_datasheet(Datasheet.from_figures(figures))
     assert "hfe_low_min" in info.value.message and info.value.key == "hfe_high_min"
     fit_datasheet(Datasheet.from_figures(dict(figures, hfe_low_min=120.0)))
+
+
+def test_a_leakage_range_of_the_study_is_lognormal_like_the_gain(tmp_path):
+    # a uniform 1 .. 100 nA put the median at 50 nA; leakage spreads over decades, and the
+    # derived spread is lognormal (module docstring of models.parts): the range form is too,
+    # unless the study names another distribution
+    study = _study(tmp_path, 'device = "small_signal_npn"\nicbo = {min = "1 nA", max = "100 nA"}')
+    icbo = study.parameter("Q1.icbo").distribution
+    assert isinstance(icbo, LogNormal)
+    # median of a lognormal between min and max at +-3 sigma: their geometric mean
+    assert icbo.median == pytest.approx(10e-9, rel=1e-9)
+    named = _study(tmp_path, 'device = "small_signal_npn"\n'
+                             'icbo = {min = "1 nA", max = "100 nA", distribution = "uniform"}')
+    assert not isinstance(named.parameter("Q1.icbo").distribution, LogNormal)
+
+
+def test_a_fixed_gain_outside_the_datasheet_is_noted(tmp_path):
+    # hfe = 1000 on a 100 .. 300 class ran without a word (a device audit): a what-if may
+    # fix the gain, but no unit of the part has that one, and the review must see it
+    far = _study(tmp_path, 'device = "small_signal_npn"\nhfe = 1000')
+    assert any("fixed at 1000" in n and "100 .. 300" in n for n in far.notes())
+    inside = _study(tmp_path, 'device = "small_signal_npn"\nhfe = 150')
+    assert not any("fixed at" in n for n in inside.notes())

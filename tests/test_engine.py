@@ -146,6 +146,104 @@ def test_discrete_weights():
     assert_allclose([np.mean(x == v) for v in (1, 2, 3)], [0.25, 0.5, 0.25], atol=0.005)
 
 
+@pytest.mark.parametrize("values, weights", [((253.15, 328.15), (1.0, 1.0)),
+                                             ((253.15, 298.15, 328.15), (1.0, 2.0, 1.0)),
+                                             ((1.0, 2.0, 5.0, 7.0), (1.0, 1.0, 2.0, 4.0))])
+def test_discrete_ppf_is_the_smallest_member_whose_cdf_reaches_u(values, weights):
+    # reference library: scipy.stats.rv_discrete.ppf, the generalized inverse
+    # inf{x: F(x) >= u}, and numpy.quantile(method="inverted_cdf"); the weights give step
+    # edges that are exact in binary, so both sides compare the same u. The median of
+    # -20 and 55 degC at equal weights is -20 degC (it was 55).
+    d = dist.Discrete(values, weights)
+    p = np.asarray(weights) / np.sum(weights)
+    ref = sps.rv_discrete(values=(np.arange(len(values)), p))
+    edges = np.cumsum(p)
+    between = np.random.default_rng(2).random(2000)
+    for u in (edges[:-1], between, np.array([1e-12, 1 - 1e-12])):
+        expected = np.asarray(values)[ref.ppf(u).astype(int)]
+        assert np.array_equal(d.ppf(u), expected)
+    if len(values) == 2:
+        assert d.ppf(np.array([0.5]))[0] == 253.15
+    # numpy's inverted-CDF quantile of a sample holding the members in their proportions
+    sample = np.repeat(values, np.asarray(weights, dtype=int) * 4)
+    for u in edges[:-1]:
+        assert d.ppf(np.array([u]))[0] == np.quantile(sample, u, method="inverted_cdf")
+
+
+@pytest.mark.parametrize("sampler", ["random", "lhs", "sobol"])
+def test_discrete_draws_change_only_on_an_exact_step_edge(sampler):
+    # the former inverse, searchsorted(side="right"), differs from the generalized one only
+    # where u equals a step edge: over the shipped studies (which hold no discrete set, so
+    # their draws are unchanged) and a temperature profile of -20/25/55 degC at weights
+    # 1:2:1 correlated with a gain, the draws of every sampler agree sample for sample
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parent.parent
+    paths = sorted((root / "studies").glob("*.toml")) + [root / "tolerance" / "demo" /
+                                                          "demo.toml"]
+    sets = [p.distribution for path in paths for p in load_study(path).parameters
+            if p.distribution.kind == "discrete"]
+    assert sets == []
+    d = dist.Discrete((253.15, 298.15, 328.15), (1.0, 2.0, 1.0))
+    c = np.array([[1.0, 0.8], [0.8, 1.0]])
+    u = sampling.apply_copula(sampling.uniforms(sampler, 11, 20_000, 0, 20_000, 2), c)
+    edges = np.cumsum(d.weights) / np.sum(d.weights)
+    old = np.asarray(d.values)[np.minimum(np.searchsorted(edges, u[:, 0], side="right"), 2)]
+    on_edge = np.isin(u[:, 0], edges)
+    assert np.array_equal(d.ppf(u[:, 0])[~on_edge], old[~on_edge])
+    assert not on_edge.any()
+
+
+def test_a_pin_at_the_end_of_the_spread_takes_the_end_score():
+    # a typical value at a limit leaves that side without spread: half the units sit at the
+    # limit (F = 0.5 there), and its pin read as a score of 0 and moved no partner; the
+    # pin at a limit is the limit's score, as at a uniform's or cut normal's end
+    # (tolerance.sampling.PIN_SCORE; common practice, no source)
+    at_min = dist.SplitNormal(0.0, 0.0, 0.4 / 3)
+    assert sampling.pin_score(at_min, 0.0) == -3.0
+    assert_allclose(sampling.pin_score(at_min, 0.2), sps.norm.ppf(sps.norm.cdf(1.5)))
+    assert sampling.pin_score(dist.LogNormal(40.0, 250.0, 40.0), 40.0) == -3.0
+    assert sampling.pin_score(dist.LogNormal(40.0, 250.0, 250.0), 250.0) == 3.0
+    assert sampling.pin_score(dist.Uniform(0.0, 1.0), 1.0) == 3.0
+    assert sampling.pin_score(dist.Normal(1.0, 0.1), 1.0) == 0.0
+    # a cut one-sided spread: the limit is the end of a half-normal, its CDF 0 there
+    cut = dist.TruncatedSplitNormal(0.0, 0.0, 0.4 / 3, 0.0, 0.4)
+    assert sampling.pin_score(cut, 0.0) == -3.0
+    assert np.mean(cut.ppf(np.random.default_rng(1).random(10_000)) == 0.0) == 0.0
+
+
+def test_pin_tension_of_pins_against_their_correlation():
+    # Gaussian copula of three scores, r(RB, RPD) = 0.9, r(RB, load) = 0.9,
+    # r(RPD, load) = 0.7; pins RB = +3, RPD = -3. Conditional normal (Anderson, theorem
+    # 2.5.1, from memory): the load's mean S_RP S_PP^-1 t and variance
+    # 1 - S_RP S_PP^-1 S_PR; the Mahalanobis distance sqrt(t' S_PP^-1 t), worked by hand:
+    # S_PP^-1 = [[1, -0.9], [-0.9, 1]] / 0.19, t' S_PP^-1 t = (9 + 9 + 16.2) / 0.19 = 180,
+    # gain = [0.27, -0.11] / 0.19, mean = 3 (0.27 + 0.11) / 0.19 = 6.0
+    from tolerance.protocol import Parameter
+
+    params = [Parameter(n, "ohm", dist.Uniform(1.0, 2.0)) for n in ("RB", "RPD", "load")]
+    c = np.array([[1.0, 0.9, 0.9], [0.9, 1.0, 0.7], [0.9, 0.7, 1.0]])
+    t = sampling.pin_tension(params, c, {"RB": 2.0, "RPD": 1.0})
+    assert_allclose(t["distance"], np.sqrt(180.0), rtol=1e-12)
+    assert_allclose(t["independent"], 3 * np.sqrt(2), rtol=1e-12)
+    load = t["partners"]["load"]
+    assert_allclose(load["mean"], 6.0, rtol=1e-12)
+    var = 1 - (0.9 * 0.27 - 0.7 * 0.11) / 0.19
+    assert_allclose(load["sd"], np.sqrt(var), rtol=1e-12)
+    # share beyond a score of 3 of N(6, var): scipy.stats.norm
+    assert_allclose(load["beyond"], sps.norm(6.0, np.sqrt(var)).sf(3.0)
+                    + sps.norm(6.0, np.sqrt(var)).cdf(-3.0), rtol=1e-12)
+    # pins that agree with the correlation lie near the box: (3, 3) gives 18 * 0.1 / 0.19
+    agree = sampling.pin_tension(params, c, {"RB": 2.0, "RPD": 2.0})
+    assert_allclose(agree["distance"], np.sqrt(1.8 / 0.19), rtol=1e-12)
+    # a discrete pin counts with its stratum's mean score, (phi(a) - phi(b)) / (F(b) - F(a))
+    # (scipy.stats.truncnorm's mean)
+    params[0] = Parameter("RB", "ohm", dist.Discrete((1.0, 2.0, 3.0), (1.0, 1.0, 1.0)))
+    one = sampling.pin_tension(params, c, {"RB": 3.0})
+    assert_allclose(one["pins"]["RB"], sps.truncnorm(sps.norm.ppf(2 / 3), np.inf).mean(),
+                    rtol=1e-9)
+
+
 # --- sampling --------------------------------------------------------------------------------
 
 @pytest.mark.parametrize("sampler", ["random", "lhs", "sobol"])
@@ -177,11 +275,43 @@ def test_latin_hypercube_draws_what_scipy_draws(seed, block, size, dim):
     assert np.array_equal(sampling.latin_hypercube(seed, block, size, dim), expected)
 
 
+@pytest.mark.parametrize("total", [4096, 10_000])
+def test_a_correlated_latin_hypercube_keeps_every_columns_strata(total):
+    # the copula mixed the strata of every correlated column but the group's first (below);
+    # each column of a block now takes the stratified values in the copula's rank order
+    # (tolerance.sampling.restratify): one point per stratum in every column of every block
+    # (McKay, Beckman & Conover 1979), the ranks, and so the Spearman correlation, exactly
+    # the Gaussian copula's (Nelsen, theorem 2.4.3, from memory), and the normal-score
+    # correlation within sampling error of the stated 0.6
+    c = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 0.6], [0.0, 0.6, 1.0]])
+    u = sampling.uniforms("lhs", 3, total, 0, total, 3, c)
+    mixed = sampling.apply_copula(sampling.uniforms("lhs", 3, total, 0, total, 3), c)
+    for b0 in range(0, total, sampling.BLOCK):
+        size = min(sampling.BLOCK, total - b0)
+        block, ref = u[b0:b0 + size], mixed[b0:b0 + size]
+        for j in range(3):
+            assert np.array_equal(np.sort(np.floor(block[:, j] * size)), np.arange(size))
+            assert np.array_equal(np.argsort(block[:, j]), np.argsort(ref[:, j]))
+    z = sps.norm.ppf(u)
+    # standard error of a correlation near 0.6 at n = 4,096: (1 - r^2) / sqrt(n) = 0.01
+    assert abs(np.corrcoef(z[:, 1], z[:, 2])[0, 1] - 0.6) < 0.04
+    # the chunks of a run draw the same rows
+    cuts = sorted({0, 1, 2000, min(4097, total), total})
+    pieces = np.vstack([sampling.uniforms("lhs", 3, total, a, b, 3, c)
+                        for a, b in zip(cuts[:-1], cuts[1:])])
+    assert np.array_equal(pieces, u)
+    # random and Sobol designs are the copula's columns as they were
+    for sampler in ("random", "sobol"):
+        assert np.array_equal(sampling.uniforms(sampler, 3, 512, 0, 512, 3, c),
+                              sampling.apply_copula(sampling.uniforms(sampler, 3, 512, 0,
+                                                                      512, 3), c))
+
+
 def test_copula_keeps_the_strata_of_the_first_correlated_column_only():
     # the Cholesky factor is lower triangular, so the first correlated column's normal
     # scores pass unchanged (z' = z L^T, L[0] = e_0) and its Latin hypercube strata stay
-    # (McKay, Beckman & Conover 1979); the later columns mix and lose them (README's
-    # sampler row and DEVELOPERS.md say so)
+    # (McKay, Beckman & Conover 1979); the later columns mix and lose them, which is why a
+    # Latin hypercube run restratifies them (above)
     total = 4096
     u = sampling.uniforms("lhs", 3, total, 0, total, 3)
     c = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 0.6], [0.0, 0.6, 1.0]])

@@ -812,3 +812,36 @@ def test_a_folder_without_the_overall_pass_flag_is_still_reported(tmp_path, monk
     monkeypatch.setattr(report, "PLOT_ROWS", 100)
     report.write_reports(res.folder)
     assert "hist-drive_margin.png" in {p.name for p in (res.folder / "plots").iterdir()}
+
+
+def test_correlations_and_a_sets_members_reach_the_summary_and_both_reports(write_study,
+                                                                            tmp_path):
+    # the coefficients of a study's [[correlation]] groups and a set's members were in no
+    # result file: a reviewer saw "discrete set of 3" and no correlation at all
+    text = textwrap.dedent(STUDY.format(rate=0.0)).replace(
+        'x1 = {min = "-1 V", max = "3 V"}', 'x1 = {values = ["-1 V", "1 V", "3 V"], '
+                                            'weights = [1, 2, 1]}')
+    text += '[[correlation]]\nparameters = ["x2", "x1"]\ncoefficient = -0.4\n'
+    study = load_study(write_study(text))
+    res = run(study, samples=300, out=tmp_path / "r")
+    saved = json.loads((res.folder / "summary.json").read_text(encoding="utf-8"))
+    # pairs in the parameters' order, whatever the order within the group
+    assert saved["correlations"] == [{"parameters": ["x1", "x2"], "coefficient": -0.4}]
+    assert saved["discrete_sets"] == {"x1": {"values": [-1.0, 1.0, 3.0],
+                                             "shares": [0.25, 0.5, 0.25]}}
+    report.write_reports(res.folder)
+    md = (res.folder / "report.md").read_text(encoding="utf-8")
+    assert md.index("## Parameters") < md.index("### Correlations assumed") \
+        < md.index("## Capability")
+    assert ["x1 - x2", "-0.4"] in md_table_after(md, "### Correlations assumed")
+    x1 = next(r for r in md_table_after(md, "## Parameters") if r[0] == "x1")
+    assert x1[4] == "discrete: -1 V (25 %), 1 V (50 %), 3 V (25 %)"
+    page = Page()
+    page.feed((res.folder / "report.html").read_text(encoding="utf-8"))
+    assert page.tables["correlation-table"][1] == ["x1 - x2", "-0.4"]
+    assert ["x1", "1 V", "-1 V", "3 V", "discrete: -1 V (25 %), 1 V (50 %), 3 V (25 %)",
+            "V"] in page.tables["parameter-table"]
+    # a study without correlations says nothing of them
+    plain = run(load_study(write_study(STUDY.format(rate=0.0), "plain.toml")), samples=100,
+                out=tmp_path / "p")
+    assert plain.summary["correlations"] == [] and plain.summary["discrete_sets"] == {}

@@ -371,7 +371,8 @@ def cmd_whatif(args) -> int:
     result, base, pinned = whatif(study, args.pin, args.samples, args.seed, args.sampler,
                                   args.jobs, args.chunk_size)
     write_json(out / "whatif.json", _stamped(result, study))
-    _save_pair(out, study, base.samples, pinned.samples)
+    _save_pair(out, study, base.samples, pinned.samples,
+               [*result["pins"], *result.get("followers", [])])
     _write_report(out, args.jobs)
     if not args.quiet:
         w = sys.stdout.write
@@ -381,6 +382,8 @@ def cmd_whatif(args) -> int:
 
         if result.get("followers"):
             w(f"correlated with a pin, drawn given it: {', '.join(result['followers'])}\n")
+        for note in result.get("pin_notes") or []:
+            w(f"note: {note}\n")
         yb, yp = result["yield"]["baseline"], result["yield"]["pinned"]
         w(f"yield  baseline {format_yield(yb['estimate'])} %   pinned "
           f"{format_yield(yp['estimate'])} %\n")
@@ -395,10 +398,12 @@ def cmd_whatif(args) -> int:
     return exit_status(result["verdict"]["pinned"])
 
 
-def _save_pair(out: Path, study, base, pinned) -> None:
+def _save_pair(out: Path, study, base, pinned, moved=()) -> None:
+    """whatif_samples.parquet: both runs' metrics, and the inputs the pins changed (the
+    pinned parameters and their correlated partners) as both runs drew them."""
     import pandas as pd
 
-    cols = list(study.stage.metrics)
+    cols = list(dict.fromkeys([*moved, *study.stage.metrics]))
     frame = pd.concat([base[cols].add_prefix("baseline."), pinned[cols].add_prefix("pinned.")],
                       axis=1)
     with atomic_path(out / "whatif_samples.parquet") as tmp:
@@ -518,10 +523,21 @@ def cmd_check(args) -> int:
     rows = []
     for p in study.parameters:
         spread = "-" if not p.varies else f"{_fmt(p.low, p.unit)} .. {_fmt(p.high, p.unit)}"
-        rows.append((p.name, _fmt(p.nominal, p.unit), spread, p.distribution.describe(),
+        shown = p.distribution.describe()
+        if p.distribution.kind == "discrete":  # its members and their shares
+            shown = "discrete: " + ", ".join(
+                f"{_fmt(v, p.unit)} ({100 * s:.3g} %)"
+                for v, s in zip(p.distribution.values, p.distribution.shares))
+        rows.append((p.name, _fmt(p.nominal, p.unit), spread, shown,
                      "degC" if p.unit == "temperature" else p.unit))
     w(_table(("parameter", "nominal", "spread (low .. high)", "distribution", "unit"), rows,
              "<>><<"))
+    if study.correlations:
+        rows = [(", ".join(c.parameters), f"{c.coefficient:+.3g}")
+                for c in study.correlations]
+        w("\ncorrelations (Gaussian copula: the coefficient is the correlation of the "
+          "parameters' normal scores,\neach pair of a group at that coefficient)\n"
+          + _table(("parameters", "coefficient"), rows, "<>"))
     rows = []
     for c in study.criteria:
         unit = study.stage.metrics[c.metric].unit

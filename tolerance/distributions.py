@@ -57,6 +57,12 @@ class Distribution:
         gives a value."""
         return self.cdf(x)
 
+    @property
+    def support(self) -> tuple[float, float]:
+        """The smallest and largest value a unit can take (infinite for an unbounded
+        spread): a what-if pin there stands for the end of the spread."""
+        return (-np.inf, np.inf)
+
     def describe(self) -> str:  # pragma: no cover - overridden
         raise AttributeError("describe")
 
@@ -85,6 +91,10 @@ class Fixed(Distribution):
 
     def cdf(self, x):
         return (np.asarray(x, dtype=float) >= self.value).astype(float)
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.value, self.value)
 
     def describe(self) -> str:
         return "fixed"
@@ -117,6 +127,10 @@ class Uniform(Distribution):
     def cdf(self, x):
         span = self.upper - self.lower
         return np.clip((np.asarray(x, dtype=float) - self.lower) / span, 0.0, 1.0)
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.lower, self.upper)
 
     def describe(self) -> str:
         return "uniform"
@@ -201,6 +215,10 @@ class TruncatedNormal(Distribution):
     def cdf(self, x):
         return self._frozen.cdf(np.asarray(x, dtype=float))
 
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.lower, self.upper)
+
     def describe(self) -> str:
         return f"normal at {self.sigmas:g} sigma, truncated at the tolerance"
 
@@ -255,6 +273,13 @@ class SplitNormal(Distribution):
     def cdf(self, x):
         return _split_cdf(self.centre, self.sigma_low, self.sigma_high, x)
 
+    @property
+    def support(self) -> tuple[float, float]:
+        # a side without spread (the typical value at a limit) ends at the typical value,
+        # where half the units sit
+        return (self.centre if self.sigma_low == 0 else -np.inf,
+                self.centre if self.sigma_high == 0 else np.inf)
+
     def describe(self) -> str:
         return f"normal about the typical value, min and max each at {self.sigmas:g} sigma"
 
@@ -302,6 +327,10 @@ class TruncatedSplitNormal(Distribution):
         a, b = self._cut()
         f = _split_cdf(self.centre, self.sigma_low, self.sigma_high, x)
         return np.clip((f - a) / (b - a), 0.0, 1.0)
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.lower, self.upper)
 
     def describe(self) -> str:
         return (f"normal about the typical value, min and max each at {self.sigmas:g} sigma, "
@@ -362,6 +391,12 @@ class LogNormal(Distribution):
             return _split_cdf(np.log(self.median), self.sigma_low_ln, self.sigma_high_ln,
                               np.log(np.maximum(x, 0.0)))
 
+    @property
+    def support(self) -> tuple[float, float]:
+        # as SplitNormal: a typical value at a limit ends the spread there
+        return (self.lower if self.sigma_low_ln == 0 else 0.0,
+                self.upper if self.sigma_high_ln == 0 else np.inf)
+
     def describe(self) -> str:
         return f"lognormal, min/max at {self.sigmas:g} sigma"
 
@@ -399,10 +434,32 @@ class Discrete(Distribution):
     def high(self) -> float:
         return float(max(self.values))
 
+    @property
+    def shares(self) -> tuple[float, ...]:
+        """Each member's probability (the weights over their sum)."""
+        w = np.asarray(self.weights, dtype=float)
+        return tuple(float(x) for x in w / np.sum(w))
+
+    @property
+    def support(self) -> tuple[float, float]:
+        return (self.low, self.high)
+
+    def member(self, x: float) -> float | None:
+        """The member ``x`` stands for (equal to within rounding of its unit's conversion,
+        1e-9 relative), or None when ``x`` is no member of the set."""
+        v = np.asarray(self.values, dtype=float)
+        near = np.flatnonzero(np.isclose(v, x, rtol=1e-9, atol=0.0))
+        return float(v[near[0]]) if near.size else None
+
     def ppf(self, u):
+        """The smallest member whose CDF reaches ``u`` (the generalized inverse
+        inf{x: F(x) >= u}, as scipy.stats.rv_discrete.ppf and numpy.quantile's
+        ``inverted_cdf``): a ``u`` on a step edge takes the member below it, so that the
+        median of two equally likely members is the lower one. (The upper one was taken
+        there, ``searchsorted(side="right")``; draws at any other ``u`` are unchanged.)"""
         w = np.asarray(self.weights, dtype=float)
         edges = np.cumsum(w) / np.sum(w)
-        idx = np.searchsorted(edges, np.asarray(u, dtype=float), side="right")
+        idx = np.searchsorted(edges, np.asarray(u, dtype=float), side="left")
         return np.asarray(self.values, dtype=float)[np.minimum(idx, len(self.values) - 1)]
 
     def cdf(self, x):

@@ -319,15 +319,47 @@ def sampler_note(summary: dict) -> str | None:
             f"--samples {2 * below} (or {below}) gives the balanced design.")
 
 
-def parameter_table(parameters: list[dict]) -> Table:
+def _set_text(members: dict, unit) -> str | None:
+    """A discrete set's members with their shares: "discrete: -20 degC (25 %), ..."."""
+    values, shares = members.get("values"), members.get("shares")
+    if not isinstance(values, list) or not isinstance(shares, list) or \
+            len(values) != len(shares):
+        return None
+    shares = [format_number(100 * s) if isinstance(s, (int, float)) else "-" for s in shares]
+    return "discrete: " + ", ".join(f"{format_value(v, unit)} ({s} %)"
+                                    for v, s in zip(values, shares))
+
+
+def parameter_table(parameters: list[dict], sets: dict | None = None) -> Table:
     header = ["Parameter", "Nominal", "Low", "High", "Distribution", "Unit"]
     rows = []
     for p in parameters:
         unit = p.get("unit")
+        members = (sets or {}).get(p.get("name"))
+        shown = _set_text(members, unit) if isinstance(members, dict) else None
         rows.append([str(p.get("name", "")), format_value(p.get("nominal"), unit),
                      format_value(p.get("low"), unit), format_value(p.get("high"), unit),
-                     _cell(p.get("distribution")), str(unit) if unit is not None else "-"])
+                     shown or _cell(p.get("distribution")),
+                     str(unit) if unit is not None else "-"])
     return Table(header, rows, "parameter-table", "Toleranced parameters")
+
+
+#: what a correlation coefficient of a study means, under the report's table of them
+CORRELATION_NOTE = ("The coefficients correlate the parameters' normal scores (a Gaussian "
+                    "copula: each parameter's value is mapped through its own distribution "
+                    "to a standard normal score), not their values; each parameter keeps its "
+                    "own distribution. The worst case takes the parameters independent.")
+
+
+def correlation_table(pairs) -> Table | None:
+    """The study's correlated pairs (summary.json "correlations"), or None without any."""
+    rows = [[" - ".join(str(n) for n in c.get("parameters") or []),
+             format_number(c.get("coefficient"))]
+            for c in pairs or [] if isinstance(c, dict)]
+    if not rows:
+        return None
+    return Table(["Parameters", "Coefficient (normal scores)"], rows, "correlation-table",
+                 "Correlations assumed")
 
 
 def _cell(value) -> str:
@@ -759,6 +791,7 @@ def _whatif_blocks(data: dict) -> list[Block]:
     return ([Block("p", f"{format_number(data.get('samples'))} samples each, common random "
                         f"numbers: the pinned run differs from the baseline only by the pins"
                         f"{moved}.")]
+            + [Block("note", str(n)) for n in data.get("pin_notes") or []]
             + ([Block("p", change)] if change else [])
             + [Block("table", table=t) for t in whatif_tables(data)])
 
@@ -1354,7 +1387,13 @@ def _summary_blocks(summary: dict) -> list[Block]:
 
     if summary.get("parameters"):
         doc.append(Block("h2", "Parameters"))
-        doc.append(Block("table", table=parameter_table(summary["parameters"])))
+        doc.append(Block("table", table=parameter_table(summary["parameters"],
+                                                        summary.get("discrete_sets"))))
+    correlations = correlation_table(summary.get("correlations"))
+    if correlations is not None:
+        doc.append(Block("h3", "Correlations assumed"))
+        doc.append(Block("p", CORRELATION_NOTE))
+        doc.append(Block("table", table=correlations))
     devices = device_table(summary.get("devices"))
     if devices is not None:
         doc.append(Block("h2", "Devices assumed"))

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import difflib
 import hashlib
+import inspect
 import itertools
 import math
 import re
@@ -250,7 +251,8 @@ class Reader:
     def parameter(self, name: str, unit: str, parameter_name: str, description: str = "",
                   default=_MISSING, positive: bool = False, minimum: float | None = None,
                   maximum: float | None = None, default_distribution: str = "normal",
-                  allow_tolerance_key: bool = False) -> Parameter:
+                  allow_tolerance_key: bool = False,
+                  range_distribution: str = "uniform") -> Parameter:
         """A toleranced quantity, registered as a sampled parameter.
 
         Accepted forms of the value at ``name``:
@@ -263,7 +265,9 @@ class Reader:
 
         With ``allow_tolerance_key`` the sibling keys ``tolerance``, ``distribution`` and
         ``sigmas`` of the enclosing table apply to a single quantity (the parts form
-        ``[parts.RB] value = "4k7"  tolerance = "1%"``).
+        ``[parts.RB] value = "4k7"  tolerance = "1%"``). ``range_distribution`` is the
+        ``{min, max}`` form's distribution when the table names none (a leakage current's
+        is lognormal, as the part library draws it).
         """
         key = self.key(name)
         self._asked.add(name)
@@ -295,11 +299,11 @@ class Reader:
                     spec[extra] = self._get(extra, _MISSING)
             sub = Reader(spec, self.path, self._ctx)
             distribution = sub._distribution(unit, positive, minimum, maximum,
-                                             default_distribution, name)
+                                             default_distribution, name, range_distribution)
         elif isinstance(raw, dict):
             sub = Reader(raw, key, self._ctx)
             distribution = sub._distribution(unit, positive, minimum, maximum,
-                                             default_distribution, None)
+                                             default_distribution, None, range_distribution)
         else:
             value = self._convert(name, raw, unit)
             self._check_range(name, value, unit, positive, minimum, maximum)
@@ -317,7 +321,7 @@ class Reader:
         return reader.quantity(name, "1", minimum=0.0, maximum=0.5)
 
     def _distribution(self, unit, positive, minimum, maximum, default_distribution,
-                      nominal_key) -> dist.Distribution:
+                      nominal_key, range_distribution: str = "uniform") -> dist.Distribution:
         """Build a distribution from this (inline) table."""
         nkey = nominal_key or "nominal"
         kinds = dist.DISTRIBUTION_KINDS
@@ -378,7 +382,7 @@ class Reader:
                     typ = self.quantity(tkey, unit)
                     if not lo <= typ <= hi:
                         raise self.error(tkey, f"{typ:g} lies outside min..max ({lo:g}..{hi:g})")
-            kind = kind or "uniform"
+            kind = kind or range_distribution
             self._check_sigmas_used(kind)
             if lo == hi or kind == "fixed":
                 return dist.Fixed(typ if typ is not None else 0.5 * (lo + hi))
@@ -557,12 +561,24 @@ class Study:
         rating the study's [limits] loosen, and an ambient range reaching above a
         transistor's T_j max (where no circuit helps and the device models leave their
         range)."""
-        out = self._relaxed_ratings()
+        out = (self._relaxed_ratings() + self._typical_at_a_limit()
+               + self._gain_outside_datasheet())
         stage_notes = getattr(self.stage, "review_notes", None)
-        if stage_notes is not None:
-            out += stage_notes(self.criteria, {p.name: p.nominal for p in self.parameters})
         thermal = getattr(self.stage, "thermal", None)
         env = getattr(self.stage, "env", None)
+        if stage_notes is not None:
+            # a stage's own notes may take the nominal point with the hottest ambient and
+            # the highest supply (where a junction above T_j max is named)
+            nominal = {p.name: p.nominal for p in self.parameters}
+            corner = None
+            if (env is not None and "corner" in inspect.signature(stage_notes).parameters
+                    and {env.temperature, env.supply} <= set(nominal)):
+                corner = dict(nominal)
+                for name in (env.temperature, env.supply):
+                    p = self.parameter(name)
+                    corner[name] = p.high if p.varies else p.nominal
+            out += (stage_notes(self.criteria, nominal, corner=corner) if corner is not None
+                    else stage_notes(self.criteria, nominal))
         if thermal is None or env is None or env.temperature not in self.parameter_names:
             return out
         amb = self.parameter(env.temperature)
@@ -575,6 +591,53 @@ class Study:
                        f"the T_j max of "
                        f"{names}: units there fail T_j max whatever the circuit does, and the "
                        f"device models work outside their range (some may not converge).")
+        return out
+
+    def _gain_outside_datasheet(self) -> list[str]:
+        """A sentence per transistor whose gain the study fixes (``hfe = 1000``, a what-if)
+        outside its datasheet's hfe_min .. hfe_max: no unit of that part has that gain."""
+        out = []
+        transistors = getattr(self.stage, "transistors", None)
+        if transistors is None:
+            return out
+        for name, part in transistors().items():
+            if part.hfe_parameter not in self.parameter_names:
+                continue
+            p = self.parameter(part.hfe_parameter)
+            ds = part.device.datasheet
+            if p.varies or ds.hfe_min <= p.nominal <= ds.hfe_max:
+                continue
+            out.append(f"{p.key or p.name}: the gain is fixed at {p.nominal:g}, outside the "
+                       f"datasheet's {ds.hfe_min:g} .. {ds.hfe_max:g} for {name}: no unit of "
+                       f"that part has it, so the results describe another part.")
+        return out
+
+    def _typical_at_a_limit(self) -> list[str]:
+        """A sentence per normal or lognormal range whose typical value sits at one of its
+        limits: that side has no spread, so half the units take the limit exactly (a drive's
+        low level given as min 0 V, typ 0 V, max 0.4 V is 0 V in half the units and spread
+        towards 0.4 V in the other half); a one-sided spread is a cut normal."""
+        out = []
+        for p in self.parameters:
+            d = p.distribution
+            if isinstance(d, dist.SplitNormal):
+                low_side, high_side = d.sigma_low == 0, d.sigma_high == 0
+            elif isinstance(d, dist.LogNormal) and d.typical is not None and d.varies:
+                low_side, high_side = d.typical == d.lower, d.typical == d.upper
+            else:
+                continue
+            if low_side == high_side:
+                continue
+            end, other = ("min", d.high) if low_side else ("max", d.low)
+            kind = "lognormal" if isinstance(d, dist.LogNormal) else "normal"
+            at = format_quantity(d.nominal, p.unit)
+            out.append(f"{p.key or p.name}: typ lies at {end} ({at}) with distribution "
+                       f"\"{kind}\", which spreads each side of typ by its own limit: the "
+                       f"{end} side has none, so half the units sit exactly at {at} and the "
+                       f"other half spread to {format_quantity(other, p.unit)}. For a "
+                       f"one-sided spread (a logic output's low level above 0 V, a gain "
+                       f"screened at its minimum) write distribution = \"truncnormal\": a "
+                       f"half-normal from {at} with nothing beyond it.")
         return out
 
     def _relaxed_ratings(self) -> list[str]:

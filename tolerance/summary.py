@@ -121,10 +121,31 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
         "criteria": criteria,
         "metrics": metrics,
         "overrides": {name: {"kind": o.kind, "value": o.value} for name, o in spec.overrides},
+        "correlations": correlation_pairs(spec.parameters, spec.correlation),
+        "discrete_sets": discrete_sets(spec.parameters),
     }
     if extra:
         summary.update(extra)
     return clean(summary)
+
+
+def correlation_pairs(parameters, correlation) -> list[dict]:
+    """Every correlated pair of parameters, in the parameters' order: ``parameters`` (two
+    names) and ``coefficient``, the correlation of their normal scores (the Gaussian copula
+    of :func:`tolerance.sampling.apply_copula`, not of their values)."""
+    if correlation is None:
+        return []
+    names = [p.name for p in parameters]
+    c = np.asarray(correlation, dtype=float)
+    return [{"parameters": [names[i], names[j]], "coefficient": float(c[i, j])}
+            for i in range(len(names)) for j in range(i + 1, len(names)) if c[i, j] != 0.0]
+
+
+def discrete_sets(parameters) -> dict:
+    """Members (in ascending order, SI) and their probabilities of every discrete set."""
+    return {p.name: {"values": [float(v) for v in p.distribution.values],
+                     "shares": list(p.distribution.shares)}
+            for p in parameters if p.distribution.kind == "discrete"}
 
 
 def clean(obj):

@@ -12,6 +12,7 @@ import re
 import numpy as np
 
 from tolerance.api import UsageError, run
+from tolerance.distributions import Discrete
 from tolerance.runner import Override
 from tolerance.study import Study, parameter_hint
 from tolerance.units import UnitError, format_quantity, parse_quantity
@@ -24,9 +25,21 @@ def pin_value(study: Study, name: str, spec: str) -> float:
     distribution) or a quantity in the parameter's unit, within the values the study file
     accepts for the parameter (a zero load resistance is refused here as it is there)."""
     value = _pin_value(study, name, spec)
-    problem = study.parameter(name).out_of_range(value)
+    p = study.parameter(name)
+    problem = p.out_of_range(value)
     if problem:
         raise UsageError(f"--pin {name}={spec.strip()}: {problem}")
+    if isinstance(p.distribution, Discrete):
+        # units take the set's members only: a value between them (or beyond) is no unit of
+        # the study, and its partners' shift stepped with the stratum it fell in
+        member = p.distribution.member(value)
+        if member is None:
+            shown = ", ".join(format_quantity(v, p.unit) for v in p.distribution.values)
+            key = f" ({p.key})" if p.key and p.key != name else ""
+            raise UsageError(f"--pin {name}={spec.strip()}: {name}{key} is a discrete set "
+                             f"and takes only its members: {shown} (or pin min, max, "
+                             f"nominal or pNN)")
+        value = member
     return value
 
 
@@ -72,6 +85,44 @@ def parse_pins(study: Study, pins: list[str]) -> dict[str, Override]:
             raise UsageError(f"--pin {name}: pinned twice")
         out[name] = Override("pin", pin_value(study, name, spec))
     return out
+
+
+def _score(x: float) -> str:
+    return f"{x:+.1f}"
+
+
+def pin_notes(study: Study, overrides: dict[str, Override]) -> list[str]:
+    """Sentences on pins that contradict the study's correlation: pins whose normal scores
+    together lie further from the centre than k independent pins at their tolerance ends
+    (Mahalanobis distance above 3 sqrt(k), by more than one standard deviation), or a
+    correlated partner drawn at a mean score beyond 3 in size
+    (:func:`tolerance.sampling.pin_tension`). The run goes ahead: it is a what-if."""
+    from tolerance.sampling import PIN_SCORE, pin_tension
+
+    if not study.correlations:
+        return []
+    pins = {n: o.value for n, o in overrides.items()}
+    tension = pin_tension(study.parameters, study.correlation_matrix(), pins)
+    if tension is None:
+        return []
+    far = [(n, q) for n, q in tension["partners"].items() if abs(q["mean"]) > PIN_SCORE]
+    joint = tension["distance"] > tension["independent"] + 1.0
+    if not far and not joint:
+        return []
+    scores = ", ".join(f"{n} {_score(t)}" for n, t in tension["pins"].items())
+    text = (f"The pins contradict the study's correlation: their normal scores ({scores}) "
+            f"lie {tension['distance']:.1f} standard deviations from the centre jointly "
+            f"(Mahalanobis distance given the [[correlation]] coefficients")
+    text += (f"; {len(pins)} independent pins at their tolerance ends lie "
+             f"{tension['independent']:.1f})" if len(pins) > 1 else ")")
+    for n, q in far:
+        text += (f"; the correlated partner {n} is drawn given them at a mean normal score "
+                 f"of {_score(q['mean'])} (spread {q['sd']:.2f}): "
+                 f"{100 * q['beyond']:.0f} % of its units lie beyond a score of "
+                 f"{PIN_SCORE:g}, outside its tolerance")
+    text += (". The pins together are rarer than any unit the study describes; read the "
+             "pinned run as a stress case, not as units that will be built.")
+    return [text]
 
 
 def compare(base: dict, pinned: dict) -> dict:
@@ -128,6 +179,8 @@ def whatif(study: Study, pins: list[str], samples: int | None = None, seed: int 
         # partners of a pinned parameter are drawn given the pin (sampling.condition_on_pins)
         "followers": sorted({n for c in study.correlations if set(c.parameters) & set(overrides)
                              for n in c.parameters if n not in overrides}),
+        # pins far from the centre jointly, or partners pushed beyond their tolerance
+        "pin_notes": pin_notes(study, overrides),
         **compare(base.summary, pinned.summary),
         # the same units in both runs: their yields compared unit by unit, which resolves
         # differences far inside either run's own interval
