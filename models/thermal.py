@@ -5,6 +5,8 @@ Symbol | variable name | meaning
 T_a    | ambient       | ambient temperature [K]
 T_j    | junction      | junction temperature [K]
 P      | power         | dissipation averaged over the PWM period [W]
+P_on, P_off | p_on, p_off | dissipation in the on- and off-state [W]
+R_i, tau_i | network     | thermal resistance [K/W] and time constant [s] of Foster stage i
 theta_JA | theta_ja    | thermal resistance junction to ambient [K/W]
 theta_JC, theta_CS, theta_SA | theta_jc, theta_cs, theta_sa | junction-case, case-sink,
          |             | sink-ambient [K/W]
@@ -18,6 +20,10 @@ References
    Established Reliability, and Space Level," derating figure; IEC 60115-1, "Fixed resistors
    for use in electronic equipment - Part 1: Generic specification" (rated ambient
    temperature, upper category temperature).
+.. [3] JEDEC JESD51-14, "Transient Dual Interface Test Method for the Measurement of the
+   Thermal Resistance Junction to Case of Semiconductor Devices with Heat Flow Through a
+   Single Path," 2010 (Foster RC networks of the transient thermal impedance); the periodic
+   steady state of each stage is the textbook first-order RC response to a square wave.
 """
 
 from __future__ import annotations
@@ -86,6 +92,87 @@ def heatsink_resistance(theta_jc, theta_cs, theta_sa, theta_ja=None):
     return np.asarray(theta_jc) + path * own / (path + own)
 
 
+#: Thermal time constants [s] of the two-stage Foster network of a package class: the die
+#: stage (junction to case, resistance theta_JC) and the package stage (the rest of the path
+#: to the ambient, theta - theta_JC). Typical class values, from memory (orders of magnitude
+#: read off transient-thermal-impedance curves of such packages in free air); a study gives
+#: its part's own figures with ``[parts.Qn] thermal_time_constant`` (the package stage) and
+#: ``die_time_constant``. On a heatsink the package's constant is kept for the sink path: a
+#: sink's own constant is longer (minutes), and the shorter constant gives the higher peak.
+PACKAGE_TIME_CONSTANTS = {
+    "TO-92": (0.3, 30.0),     # from memory
+    "TO-126": (0.1, 60.0),    # from memory
+    "TO-220": (0.05, 120.0),  # from memory
+}
+#: the package class taken for a part of unknown package (the study's own figures): the
+#: shortest constants of the table, the side that gives the higher peak
+UNKNOWN_PACKAGE = "TO-92"
+#: a PWM period whose junction peak exceeds the period-average rise by more than this share
+#: (at P_off = 0) gets a study note
+PEAK_NOTE_SHARE = 0.03
+
+
+def foster_network(theta, theta_jc, die_time_constant, package_time_constant):
+    """The two-stage Foster network ((R_die, tau_die), (R_package, tau_package)) of a part
+    whose junction-to-ambient resistance is ``theta`` [K/W].
+
+    The die stage carries theta_JC with the short constant, the package stage the rest,
+    theta - theta_JC, with the package's. Without a theta_JC (a part given by its free-air
+    figure alone) the whole path is one stage with the package's constant.
+    """
+    if theta_jc is None or not 0.0 < theta_jc < theta:
+        return ((float(theta), float(package_time_constant)),)
+    return ((float(theta_jc), float(die_time_constant)),
+            (float(theta) - float(theta_jc), float(package_time_constant)))
+
+
+def peak_weight(network, frequency, duty):
+    """Share of the on-state's extra dissipation P_on - P_off that reaches the junction at
+    the peak of the PWM cycle's periodic steady state, as a weighted duty.
+
+    A Foster stage (R, tau) driven by P_on for t_on = D T and by P_off for the rest of the
+    period T settles into a periodic response whose highest point, at the end of the
+    on-time, lies R [P_off + (P_on - P_off) (1 - exp(-t_on / tau)) / (1 - exp(-T / tau))]
+    above the ambient (superposition of the single-pole step responses over the past
+    periods, a geometric series [3]). Summed over the stages and divided by their total
+    resistance, the peak rise is theta [P_off + w (P_on - P_off)] with the weight w returned
+    here. w tends to D where T is far shorter than every tau (the period-average rise) and
+    to 1 where the on-time outlasts them (the on-state's own rise). A static drive
+    (``frequency`` None) gives 1 for a duty of 1 (always on) and 0 for 0 (never on).
+    """
+    if frequency is None:
+        return float(duty)
+    period = 1.0 / float(frequency)
+    total, weighted = 0.0, 0.0
+    for r, tau in network:
+        # expm1 keeps the ratio exact where T / tau is tiny (it tends to D)
+        k = np.expm1(-duty * period / tau) / np.expm1(-period / tau)
+        total += r
+        weighted += r * k
+    return float(weighted / total)
+
+
+def peak_power(p_on, p_off, weights):
+    """The steady dissipation [W] that gives the PWM cycle's peak junction rise through the
+    part's whole thermal resistance: P_off + w_on (P_on - P_off) where the on-state
+    dissipates more (the peak ends the on-time), P_on + w_off (P_off - P_on) where the
+    off-state does (it ends the off-time); ``weights`` = (w_on, w_off), the
+    :func:`peak_weight` of the duty and of 1 - duty. Both readings tend to the period's
+    average where the period is far shorter than the thermal time constants."""
+    w_on, w_off = weights
+    p_on, p_off = np.asarray(p_on, dtype=float), np.asarray(p_off, dtype=float)
+    return np.maximum(p_off + w_on * (p_on - p_off), p_on + w_off * (p_off - p_on))
+
+
+def periodic_peak_rise(p_on, p_off, network, frequency, duty):
+    """Highest junction rise above the ambient [K] in the periodic steady state of a PWM
+    drive (P_on for the on-time, P_off for the rest; see :func:`peak_weight`)."""
+    theta = sum(r for r, _ in network)
+    weights = (peak_weight(network, frequency, duty),
+               peak_weight(network, frequency, 1.0 - duty))
+    return theta * peak_power(p_on, p_off, weights)
+
+
 def derated_power(rated_power, ambient, rated_ambient, zero_power_temperature):
     """Allowed dissipation of a part at an ambient temperature (linear derating curve).
 
@@ -118,14 +205,18 @@ def derated_power(rated_power, ambient, rated_ambient, zero_power_temperature):
 
 @dataclass
 class FixedPointResult:
-    """Junction temperatures [K] per device (NaN where runaway or failed), settled flag,
-    iterations, and ``failed``: samples whose circuit did not solve at a trial temperature
-    (neither settled nor a runaway: not converged)."""
+    """Junction temperatures [K] per device, settled flag, iterations, and ``failed``:
+    samples whose circuit did not solve at a trial temperature (neither settled nor a
+    runaway: not converged). A temperature is NaN where that device ran away (or its loop
+    did not settle) and in a failed sample; in a runaway sample a device on a thermal path
+    of its own that settled keeps its temperature (a discrete driver beside a runaway
+    output). ``runaway``: per device, where it ran away."""
 
     temperatures: dict[str, np.ndarray]
     settled: np.ndarray
     iterations: np.ndarray
     failed: np.ndarray
+    runaway: dict[str, np.ndarray] | None = None
 
 
 #: times a trial temperature whose circuit did not solve is moved half way back towards the
@@ -185,7 +276,11 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     stays above a fifth of ``settle`` is dropped. No step goes beyond the cap, ``limit`` +
     100 K (or :data:`RUNAWAY_KELVIN`): a first plain step from a hot ambient can overshoot far
     past a stable point, and only a unit still heating at the cap is a runaway. A sample
-    still moving after ``max_iterations`` is one too (``settled = False``).
+    still moving after ``max_iterations`` is one too (``settled = False``). A device found
+    heating at its cap is held there while the sample's other devices (their own dice, their
+    own thermal paths) settle on their own loops, with it held at its ``limit`` (where a
+    stage evaluates a runaway's other metrics), so they keep their temperatures: only the
+    device that ran away reads NaN (a monolithic pair's dice run away together).
 
     A trial temperature where ``power_at`` gives no finite power (the circuit did not solve
     there) is moved half way back towards the last solved one, up to :data:`MAX_RETREATS`
@@ -225,10 +320,13 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     failed = np.zeros(n, dtype=bool)
     iterations = np.zeros(n, dtype=np.int64)
     cap = {}  # no step goes above this [K]
+    hold = {}  # where a device that ran away is held while the others settle [K]
     for d in names:
         cap[d] = np.full(n, RUNAWAY_KELVIN)
         if limit is not None and d in limit:
             cap[d] = np.minimum(cap[d], np.asarray(limit[d], dtype=float) + 100.0)
+        hold[d] = (np.minimum(cap[d], np.asarray(limit[d], dtype=float))
+                   if limit is not None and d in limit else cap[d])
 
     def seen_hot(sel):
         """Whether samples ``sel`` were seen still heating at or above a limit: runaways,
@@ -250,6 +348,8 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     good = {d: np.full(n, np.nan) for d in names}
     retreats = np.zeros(n, dtype=np.int64)
     pending = np.zeros(n, dtype=bool)  # backed off, not yet solved again
+    pinned = {d: np.zeros(n, dtype=bool) for d in names}  # held at the cap: ran away
+    spread = {d: np.full(n, np.inf) for d in names}  # each device's last distance [K]
     for it in range(1, max_iterations + 1):
         active = ~(settled | runaway | failed)
         if not active.any():
@@ -284,7 +384,7 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
         if not jdx.size:
             continue
         distance = np.zeros(jdx.size)
-        hot = np.zeros(jdx.size, dtype=bool)
+        hot = {}
         new = {}
         for d in names:
             carrier = shared.get(d, d)
@@ -344,16 +444,32 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
             closed = np.isfinite(low) & np.isfinite(high)
             step = np.where(closed & ~((step > low) & (step < high)), 0.5 * (low + high), step)
             top = cap[d][jdx]
-            hot |= heating & (t_now >= top)
+            hot[d] = pinned[d][jdx] | (heating & (t_now >= top))
             new[d] = np.minimum(step, top)
-            distance = np.maximum(distance, np.abs(delta) * factor)
+            spread[d][jdx] = np.abs(delta) * factor
+        for d, carrier in shared.items():  # one die runs away whole
+            hot[d] = hot[carrier] = hot[d] | hot[carrier]
+        any_hot = np.zeros(jdx.size, dtype=bool)
+        every_hot = np.ones(jdx.size, dtype=bool)
         for d in names:
-            temps[d][jdx] = np.where(hot, temps[d][jdx], new[d])
-        runaway[jdx] |= hot
-        settled[jdx] |= ~hot & (distance < settle)
+            # a device that ran away is held at its limit (where the stage evaluates its
+            # other metrics); the others go on with their loops
+            pinned[d][jdx] = hot[d]
+            temps[d][jdx] = np.where(hot[d], hold[d][jdx], new[d])
+            any_hot |= hot[d]
+            every_hot &= hot[d]
+            distance = np.maximum(distance, np.where(hot[d], 0.0, spread[d][jdx]))
+        done = every_hot | (distance < settle)
+        runaway[jdx] |= any_hot & done
+        settled[jdx] |= ~any_hot & done
     # a sample whose last trial did not solve ends as one that gave up would
     stuck = pending & ~(settled | runaway | failed)
     failed |= stuck & ~seen_hot(slice(None))
     runaway |= ~settled & ~failed
-    out = {d: np.where(runaway | failed, np.nan, t) for d, t in temps.items()}
-    return FixedPointResult(out, ~runaway & ~failed, iterations, failed)
+    # a device keeps its temperature where the sample settled, or where the sample ran away
+    # but the device itself was not at its cap and had settled on its own loop
+    ran = {d: runaway & (pinned[d] | ~(spread[d] < settle)) for d in names}
+    for d, carrier in shared.items():
+        ran[d] = ran[carrier] = ran[d] | ran[carrier]
+    out = {d: np.where(ran[d] | failed, np.nan, t) for d, t in temps.items()}
+    return FixedPointResult(out, ~runaway & ~failed, iterations, failed, ran)

@@ -190,3 +190,77 @@ def test_a_runaway_whose_circuit_stops_solving_above_its_limit_is_still_a_runawa
     res = thermal.electrothermal(lambda t, i: {"a": 0.5}, np.array([300.0, 310.0]),
                                  {"a": np.array([10.0, 10.0])})
     assert_allclose(res.temperatures["a"], [305.0, 315.0])
+
+
+def _foster_peak_by_integration(network, p_on, p_off, period, duty, periods):
+    """Peak junction rise of a Foster network driven from cold by a square wave, integrated
+    with scipy's solve_ivp phase by phase (each stage C dT/dt = P - T / R, C = tau / R)."""
+    from scipy.integrate import solve_ivp
+
+    r = np.array([s[0] for s in network])
+    c = np.array([s[1] for s in network]) / r
+    t = np.zeros(len(network))
+    peak = 0.0
+    for _ in range(periods):
+        for p, span in ((p_on, duty * period), (p_off, (1.0 - duty) * period)):
+            sol = solve_ivp(lambda _, y, p=p: (p - y / r) / c, (0.0, span), t, method="LSODA",
+                            rtol=1e-11, atol=1e-12)
+            t = sol.y[:, -1]
+            peak = max(peak, float(t.sum()))
+    return peak
+
+
+@pytest.mark.parametrize("period, duty", [(2.0, 0.3), (20.0, 0.25), (0.5, 0.7)])
+def test_periodic_peak_of_a_foster_network_matches_a_direct_integration(period, duty):
+    # the closed form sum R_i [P_off + (P_on - P_off)(1 - e^(-t_on/tau_i)) / (1 - e^(-T/tau_i))]
+    # (superposition of first-order RC step responses, a geometric series over the periods;
+    # textbook RC circuit) against scipy.integrate.solve_ivp of the same network from cold,
+    # run for 20 of its longest time constants (e^-20 of the start left)
+    network = ((4.0, 0.2), (30.0, 3.0))
+    periods = int(np.ceil(20 * 3.0 / period)) + 1
+    got = thermal.periodic_peak_rise(1.5, 0.1, network, 1.0 / period, duty)
+    want = _foster_peak_by_integration(network, 1.5, 0.1, period, duty, periods)
+    assert got == pytest.approx(want, rel=1e-6)
+
+
+def test_peak_weight_tends_to_the_duty_and_to_one():
+    network = thermal.foster_network(62.5, 1.9, 0.05, 120.0)
+    assert network == ((1.9, 0.05), (60.6, 120.0))
+    # common practice, no source: a period far below every time constant gives the period's
+    # average (weight = duty, to first order D (1 + (1 - D) T / 2 tau): 2e-6 relative here
+    # on the die stage), an on-time far beyond them the on-state's own rise (weight 1)
+    assert thermal.peak_weight(network, 1e5, 0.3) == pytest.approx(0.3, rel=1e-5)
+    assert thermal.peak_weight(network, 1e-5, 0.3) == pytest.approx(1.0, rel=1e-6)
+    assert thermal.peak_weight(network, None, 1.0) == 1.0
+    # without theta_jc the whole path is one stage with the package's constant
+    assert thermal.foster_network(200.0, None, 0.3, 30.0) == ((200.0, 30.0),)
+    # an off-state that dissipates more than the on-state peaks at the end of the off-time
+    # (the same closed form with the phases swapped; textbook RC circuit)
+    up = thermal.periodic_peak_rise(0.1, 1.5, network, 1e-3, 0.3)
+    assert up == pytest.approx(thermal.periodic_peak_rise(1.5, 0.1, network, 1e-3, 0.7))
+
+
+def test_a_device_that_runs_away_leaves_the_others_their_own_temperatures():
+    # two dice on their own thermal paths: "out" runs away (exponential dissipation with loop
+    # gain above 1/e: no fixed point, common practice), "drv" dissipates a little more the
+    # hotter "out" is. The whole unit read NaN; the driver's own loop has a fixed point with
+    # "out" held at its limit: T = T_a + theta (0.1 + 1e-4 (T_out - T_a)) (exact, linear)
+    ta = np.full(1, C0 + 25.0)
+    limit = {"out": np.full(1, C0 + 150.0), "drv": np.full(1, C0 + 150.0)}
+
+    def power_at(t, i):
+        return {"out": 0.2 * np.exp(0.1 * (t["out"] - ta[i])),
+                "drv": 0.1 + 1e-4 * (t["out"] - ta[i])}
+
+    res = thermal.electrothermal(power_at, ta, {"out": np.full(1, 100.0),
+                                                "drv": np.full(1, 200.0)}, limit=limit)
+    assert not res.settled[0] and not res.failed[0]
+    assert np.isnan(res.temperatures["out"][0])
+    assert res.runaway["out"][0] and not res.runaway["drv"][0]
+    want = ta[0] + 200.0 * (0.1 + 1e-4 * 125.0)
+    assert res.temperatures["drv"][0] == pytest.approx(want, abs=0.05)
+    # one die shared by two devices runs away whole
+    res = thermal.electrothermal(power_at, ta, {"out": np.full(1, 100.0),
+                                                "drv": np.full(1, 100.0)},
+                                 shared={"drv": "out"}, limit=limit)
+    assert np.isnan(res.temperatures["drv"][0]) and np.isnan(res.temperatures["out"][0])

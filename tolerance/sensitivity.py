@@ -604,9 +604,17 @@ def _default_formatter() -> Callable[[float, str], str]:
 
 
 def _percent(fraction: float) -> str:
+    """A share in percent, never rounded to 100 unless it is (0.9973 of failures read
+    "100 %": as many decimals as it takes to stay below)."""
     v = 100.0 * fraction
     if v == 0.0:
         return "0"
+    if 99.5 <= v < 100.0:
+        for digits in range(1, 16):
+            text = f"{v:.{digits}f}"
+            if float(text) < 100.0:
+                return text.rstrip("0").rstrip(".")
+        return f"{v!r}"
     if v >= 10.0:
         return f"{v:.0f}"
     if v >= 1.0:

@@ -502,11 +502,12 @@ class PairStage:
 
     devices = ("Q1", "Q2")
 
-    def review_notes(self, criteria, nominal) -> list[str]:
-        """What the stage's figures leave unjudged, for ``Study.notes``."""
+    def review_notes(self, criteria, nominal, corner=None) -> list[str]:
+        """What the stage's figures leave unjudged or find hazardous, for ``Study.notes``
+        (``corner``: the nominal point with the hottest ambient and highest supply)."""
         from tolerance.models.stages.evaluation import review_notes
 
-        return review_notes(self, criteria, nominal)
+        return review_notes(self, criteria, nominal, corner)
 
     def assumptions(self) -> list[dict]:
         """Each transistor's device class and fitted datasheet figures, for the report."""

@@ -5,9 +5,13 @@ Flow of :func:`evaluate_stage` for a chunk:
 
 1. **Electro-thermal fixed point** (``[thermal] self_heating = true``, the default): the
    stage's on- and off-states are solved at trial junction temperatures; each device's
-   dissipation averaged over the period, P = D P_on + (1 - D) P_off (+ f (E_on + E_off) when the
-   switching transient is evaluated), sets T_j = T_a + theta_JA P (JESD51), until no junction
-   moves by more than 0.05 K (:func:`tolerance.models.thermal.electrothermal`). A monolithic
+   junction peaks in the PWM cycle's periodic steady state at T_j = T_a + theta_JA P_peak,
+   P_peak = P_off + w (P_on - P_off) (+ f (E_on + E_off) when the switching transient is
+   evaluated), w the duty weighted by the part's two-stage Foster network
+   (:func:`tolerance.models.thermal.peak_weight`: D where the period is far shorter than the
+   thermal time constants, the period-average rise; 1 where the on-time outlasts them), until
+   no junction moves by more than 0.05 K (:func:`tolerance.models.thermal.electrothermal`);
+   both states are solved at that peak temperature (the conservative side). A monolithic
    Darlington's two dies share one junction. With a static drive (no PWM frequency) the
    off-state is solved at the ambient: a unit that is switched off has cooled down. Each solve
    starts from the sample's own earlier solution of the same state, its junctions carried to
@@ -25,9 +29,11 @@ Flow of :func:`evaluate_stage` for a chunk:
    peak) against V_(BR)CEO, the peak collector current (a lamp's cold inrush as far as the
    stage can carry it) against I_C max.
 
-A sample whose loop does not settle has ``thermal_runaway = 1`` and NaN junction temperatures;
-its other metrics are evaluated with the junction at T_j max. A sample that settles above T_j
-max is flagged ``thermal_runaway = 1`` too, with its settled temperatures.
+A sample whose loop finds no stable point below its cap (T_j max + 100 K) or does not settle
+has ``thermal_runaway = 1`` and a NaN junction temperature for the device that ran away (a
+device on its own thermal path that settled keeps its own); its other metrics are evaluated
+with that junction at T_j max. A sample that settles above T_j max is not a runaway: it fails
+the T_j max criteria with its settled temperatures.
 Resistors are taken at the ambient temperature (their own self-heating is not modelled).
 """
 
@@ -75,7 +81,8 @@ class ThermalSetup:
     """
 
     def __init__(self, theta, tj_max, power_rating, breakdown, ic_max, shared, roles, margin,
-                 self_heating, pulse_energy=None, case_theta=None):
+                 self_heating, pulse_energy=None, case_theta=None, network=None,
+                 frequency=None, duty=1.0):
         self.theta = theta
         self.tj_max = tj_max
         self.power_rating = power_rating
@@ -89,6 +96,25 @@ class ThermalSetup:
         #: junction-to-case resistance of each part on a heatsink, whose rating is then
         #: referred to its case (read_thermal)
         self.case_theta: dict[str, float] = dict(case_theta or {})
+        #: each part's two-stage Foster network ((R, tau), ...) [K/W], [s] (read_thermal)
+        self.network: dict[str, tuple] = dict(network or {})
+        #: each part's (w_on, w_off): the share of P_on - P_off (P_off - P_on) its junction
+        #: carries at the peak of the PWM cycle (thermal.peak_weight; (1, 0) static)
+        self.weights: dict[str, tuple[float, float]] = {}
+        for name in theta:
+            net = self.network.get(name, ((theta[name], 1.0),))
+            self.weights[name] = (thermal.peak_weight(net, frequency, duty),
+                                  thermal.peak_weight(net, frequency, 1.0 - duty))
+
+        self.frequency, self.duty = frequency, duty
+
+    def peak_excess(self, name) -> float:
+        """How far the part's peak rise exceeds its period-average rise at P_off = 0, as a
+        share of the average: w_on / D - 1 (0 for a static drive, and about 0 where the
+        period is far shorter than the part's thermal time constants)."""
+        if self.frequency is None:
+            return 0.0
+        return self.weights[self.shared.get(name, name)][0] / self.duty - 1.0
 
 
 def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
@@ -101,16 +127,23 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
     part's ``theta_ja``) and ``case_to_sink`` [K/W] (default 0.5 K/W with a heatsink, a greased
     insulating washer, typical value from memory); ``pulse_energy`` [J], the single-pulse
     energy the part may absorb (from its safe-operating-area or single-pulse figure), which
-    becomes a rating on a lamp's ``inrush_energy``.
+    becomes a rating on a lamp's ``inrush_energy``; ``thermal_time_constant`` [s], the
+    package stage's thermal time constant (junction heat reaching the ambient, or the sink's
+    own with a heatsink), and ``die_time_constant`` [s], the die stage's (theta_jc), of the
+    part's two-stage Foster network (defaults by package class,
+    :data:`models.thermal.PACKAGE_TIME_CONSTANTS`); a monolithic pair's are given on
+    [parts.Q2], its package's.
     """
     table = reader.table("thermal")
     self_heating = table.boolean("self_heating", default=True)
     margin = table.quantity("tj_margin", "K", default=0.0, minimum=0.0, maximum=100.0)
     theta, tj_max, rating, breakdown, ic_max, pulse_energy = {}, {}, {}, {}, {}, {}
     case_theta: dict[str, float] = {}
+    network = {}
     for name, part in stage.transistors().items():
         ds = part.device.datasheet
         t = parts_reader.table(name)
+        constants = _time_constants(t, part, name in (shared or {}))
         sink = t.optional_quantity("heatsink", "K/W", positive=True)
         if sink is not None:
             if ds.theta_jc is None:
@@ -122,6 +155,7 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
             if t.has("case_to_sink"):
                 raise t.error("case_to_sink", "only applies with a heatsink")
             theta[name] = float(ds.theta_ja)
+        network[name] = thermal.foster_network(theta[name], ds.theta_jc, *constants)
         pulse = t.optional_quantity("pulse_energy", "J", positive=True)
         if pulse is not None:
             # accepted and ignored elsewhere before: say where it acts
@@ -148,10 +182,44 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
             rating[name] = min(float(ds.power_rating), rise / float(ds.theta_ja))
         breakdown[name] = float(ds.breakdown_vceo)
         ic_max[name] = float(ds.ic_max)
+    for name, carrier in (shared or {}).items():
+        network[name] = network[carrier]  # one die, one package: the output's network
     setup = ThermalSetup(theta, tj_max, rating, breakdown, ic_max, dict(shared or {}), roles,
-                         margin, self_heating, pulse_energy, case_theta)
+                         margin, self_heating, pulse_energy, case_theta, network,
+                         stage.drive.frequency, stage.drive.duty if stage.drive.pwm else 1.0)
     stage.thermal = setup
     _add_metrics_and_ratings(stage, setup)
+
+
+def package_of(part) -> str | None:
+    """The package class of a transistor from the part library (``package`` of its entry;
+    a monolithic pair's die: its pair's), or None for the study's own figures."""
+    from tolerance.models.parts import library
+
+    cls = (part.device_class or "").split(",")[0].strip()
+    entry = library().get(cls)
+    return entry.package if entry is not None and entry.package else None
+
+
+def _time_constants(t, part, shared: bool) -> tuple[float, float]:
+    """(die, package) thermal time constants [s] of a part: its table's
+    ``die_time_constant`` and ``thermal_time_constant``, else its package class's."""
+    if shared:
+        for key in ("thermal_time_constant", "die_time_constant"):
+            if t.has(key):
+                raise t.error(key, "a monolithic Darlington is one package: give its thermal "
+                                   "time constants on [parts.Q2]")
+    package = package_of(part)
+    die, pkg = thermal.PACKAGE_TIME_CONSTANTS.get(
+        package, thermal.PACKAGE_TIME_CONSTANTS[thermal.UNKNOWN_PACKAGE])
+    pkg = t.quantity("thermal_time_constant", "s", default=pkg, positive=True, maximum=1e5)
+    die = t.quantity("die_time_constant", "s", default=min(die, pkg), positive=True,
+                     maximum=1e5)
+    if die > pkg:
+        raise t.error("die_time_constant", f"{die:g} s must not exceed the package's thermal "
+                                           f"time constant ({pkg:g} s): the die stage is "
+                                           "the fast one")
+    return die, pkg
 
 
 def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
@@ -159,12 +227,15 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
     for dev, role in setup.roles.items():
         m[f"power_{role}"] = MetricInfo("W", f"dissipation of {dev} ({role}) averaged over the "
                                              "period, at its junction temperature")
-        m[f"tj_{role}"] = MetricInfo("temperature", f"junction temperature of {dev} ({role})")
+        m[f"tj_{role}"] = MetricInfo("temperature", f"junction temperature of {dev} ({role}): "
+                                                    "with a PWM drive the peak of the cycle")
         whose = (f"{dev} (of the die it shares)"
                  if dev in setup.shared or dev in setup.shared.values() else dev)
         m[f"power_stress_{role}"] = MetricInfo("1", f"dissipation of {whose} over its P_tot "
                                                     "derated to the ambient (on a heatsink: "
-                                                    "its case rating, to the case)")
+                                                    "its case rating, to the case); with a "
+                                                    "PWM drive the steady dissipation that "
+                                                    "gives the cycle's peak junction rise")
         limit = setup.tj_max[dev] - setup.margin
         crit.append(Criterion(f"tj_max_{role}", f"tj_{role}", maximum=limit, source="rating",
                               description=f"{dev} junction below T_j max"
@@ -184,15 +255,18 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
     m["hot_spot_margin"] = MetricInfo("1", "1 minus the largest stress of any part (junction "
                                            "rise over allowed rise, power over derated "
                                            "rating); below 0 something is overstressed")
-    m["thermal_runaway"] = MetricInfo("1", "1 when the electro-thermal loop does not settle or "
-                                           "settles above T_j max")
+    m["thermal_runaway"] = MetricInfo("1", "1 when the electro-thermal loop finds no stable "
+                                           "operating point below its cap, T_j max + 100 K "
+                                           "(a unit still heating there, or a loop that does "
+                                           "not settle); a unit that settles above T_j max "
+                                           "fails the T_j max criteria instead")
     m["vce_peak"] = MetricInfo("V", "highest collector-emitter voltage of the output (off-state "
                                     "or transient; a coil with the transient off: V_S + V_clamp, "
                                     "infinite without a clamp)")
     m["peak_current"] = MetricInfo("A", "highest collector current the output carries (a "
                                         "lamp's inrush as far as the drive allows)")
     crit.append(Criterion("thermal_runaway", "thermal_runaway", maximum=0.0, source="rating",
-                          description="electro-thermal loop settles"))
+                          description="a stable electro-thermal operating point exists"))
     out = output_device(stage)
     # the lowest V_(BR)CEO of the parts across the switch (a Darlington's driver sees the
     # output's collector too), named for the part that sets it (it named the output always)
@@ -249,8 +323,10 @@ def inrush_driver_current(on, at_capability, on_current, capability, demand):
 SWITCHING_METRICS = {
     "turn_on_delay": "drive edge (50 %) to 10 % of the on-state switch current",
     "rise_time": "switch current 10 % to 90 %",
-    "storage_time": "turn-off drive edge (50 %) to 90 % of the on-state switch current",
-    "fall_time": "switch current 90 % to 10 % (a coil's clamp takes its current over)",
+    "storage_time": "turn-off drive edge (50 %) to 90 % of the on-state switch current (a "
+                    "coil without a clamp: the avalanche's share of the decay too)",
+    "fall_time": "switch current 90 % to 10 % (a coil's clamp takes its current over; "
+                 "without a clamp the coil's current decays through the switch in avalanche)",
     "turn_off_delay": "storage time plus fall time",
     "energy_on": "turn-on energy of the transistors beyond their on-state dissipation "
                  "(negative when the rise dissipates less, e.g. a coil's slow current rise)",
@@ -471,6 +547,22 @@ def edge_fill(times, frequency, duty):
             (np.asarray(times["storage_time"]) + times["fall_time"]) * frequency / (1.0 - duty))
 
 
+def _peak_power(res, setup: ThermalSetup, extra=None):
+    """Each device's steady dissipation that gives its junction's peak of the PWM cycle
+    through its whole thermal resistance (:func:`models.thermal.peak_power` with the part's
+    Foster weights; a monolithic pair's dice with their package's), plus the switching
+    energies f (E_on + E_off) as in the period's average."""
+    p = {}
+    for d in res["power_on"]["devices"]:
+        weights = setup.weights[setup.shared.get(d, d)]
+        p[d] = thermal.peak_power(res["power_on"]["devices"][d], res["power_off"]["devices"][d],
+                                  weights)
+    if extra:
+        for d, e in extra.items():
+            p[d] = np.maximum(p[d] + e, 0.0)
+    return p
+
+
 def _device_power(res, duty, extra=None):
     p = {d: _average(res["power_on"]["devices"][d], res["power_off"]["devices"][d], duty)
          for d in res["power_on"]["devices"]}
@@ -628,7 +720,7 @@ def evaluate_stage(stage, samples):
             keep(res, at, idx)
             extra = None if switching_power is None else {
                 d: e[idx] for d, e in switching_power.items()}
-            p = _device_power(res, duty, extra)
+            p = _peak_power(res, setup, extra)
             ok = res["converged"]
             return {d: np.where(ok, p[d], np.nan) for d in devices}
 
@@ -637,6 +729,12 @@ def evaluate_stage(stage, samples):
         fp = thermal.electrothermal(power_at, ambient, theta, setup.shared, limit)
         return fp.settled, fp.temperatures, fp.failed
 
+    def known(temps):
+        """Each device's junction where its loop settled (a runaway's driver on its own
+        die included), T_j max where it ran away."""
+        return {d: np.where(np.isfinite(temps[d]), temps[d], setup.tj_max[d])
+                for d in devices}
+
     # samples whose circuit did not solve on the way to their fixed point: not converged
     unsolved = np.zeros(n, dtype=bool)
     if setup.self_heating:
@@ -644,7 +742,7 @@ def evaluate_stage(stage, samples):
     sw_metrics = None
     sw = getattr(stage, "switching", None)
     if sw is not None and sw.enabled:
-        at = {d: np.where(settled, temps[d], setup.tj_max[d]) for d in devices}
+        at = known(temps)
         sw_metrics = _switching(stage, samples, at, ambient)
         if stage.drive.pwm:
             f = stage.drive.frequency
@@ -661,22 +759,23 @@ def evaluate_stage(stage, samples):
             if setup.self_heating:
                 settled, temps, unsolved = settle()
 
-    eval_temps = {d: np.where(settled, temps[d], setup.tj_max[d]) for d in devices}
+    eval_temps = known(temps)
     res = stage.dc(samples, eval_temps, off_temps(eval_temps), full=True, params=params,
                    start=warm_start({"on": eval_temps, "off": off_temps(eval_temps)},
                                     np.arange(n), params))
     converged = np.asarray(res["converged"], dtype=bool) & ~unsolved
-    # a loop that does not settle, or settles above T_j max, is a thermal runaway
-    over = np.zeros(n, dtype=bool)
-    for d in devices:
-        over |= settled & (eval_temps[d] > setup.tj_max[d])
-    runaway = converged & (~settled | over)
+    # a thermal runaway has no stable operating point below the loop's cap (still heating
+    # there, or not settling); a unit that settles above T_j max fails the T_j max criteria,
+    # not this one (it repeated their count under an alarming name)
+    runaway = converged & ~settled
 
     out = {k: res[k] for k in stage.metrics if k in res}
     power = _device_power(res, duty, switching_power)
-    heat = dict(power)
+    # the steady dissipation that gives each junction's peak of the cycle (the average where
+    # the period is far below the thermal time constants)
+    heat = _peak_power(res, setup, switching_power)
     for d, carrier in setup.shared.items():
-        heat[carrier] = heat[carrier] + power[d]
+        heat[carrier] = heat[carrier] + heat[d]
     stresses = []
     for d in devices:
         role = setup.roles[d]
@@ -684,7 +783,10 @@ def evaluate_stage(stage, samples):
         p = power[d]
         out[f"power_{role}"] = p
         if setup.self_heating:
-            tj = np.where(settled, eval_temps[d], np.nan)
+            # NaN where this device ran away; a device that settled on its own thermal path
+            # keeps its temperature beside a runaway (a discrete driver failed T_j max and was
+            # named the hot spot for its output's runaway)
+            tj = np.where(np.isfinite(temps[d]), eval_temps[d], np.nan)
         else:  # one pass at the ambient: the DC solution does not see its own heating
             tj = ambient + setup.theta[carrier] * heat[carrier]
         out[f"tj_{role}"] = tj
@@ -830,12 +932,21 @@ def device_assumptions(stage) -> list[dict]:
     return rows
 
 
-def review_notes(stage, criteria, nominal: dict) -> list[str]:
+#: a supply above this can take the circuit out of the safety-extra-low-voltage range [V]
+#: (60 V DC, the usual SELV limit for dry locations; common practice, from memory)
+SELV_LIMIT = 60.0
+
+
+def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> list[str]:
     """Sentences on what a stage's figures leave unjudged or take simply, for a reviewer
-    (``Study.notes``): a lamp's inrush energy with nothing to judge it against, and a coil's
+    (``Study.notes``): a lamp's inrush energy with nothing to judge it against, a coil's
     pull-in judged at DC under a PWM drive whose period is shorter than its nominal L/R
-    (``nominal``: each parameter's nominal value by name)."""
+    (``nominal``: each parameter's nominal value by name), a PWM period long against a
+    part's thermal time constants, a supply beyond the safety-extra-low-voltage range, and
+    junctions above T_j max at ``corner`` (the nominal point with the hottest ambient and
+    the highest supply, :func:`corner_notes`)."""
     out = []
+    out += _peak_notes(stage)
     judged = {c.metric for c in criteria}
     thermal = getattr(stage, "thermal", None)
     if (stage.load.kind == "lamp" and "inrush_energy" not in judged
@@ -852,4 +963,80 @@ def review_notes(stage, criteria, nominal: dict) -> list[str]:
                    f"period sees about the duty times that on average, so pull it in with a "
                    f"static drive first, or check the average against its must-operate "
                    f"voltage.")
+    top = getattr(stage.env, "supply_maximum", 0.0)
+    if top > SELV_LIMIT:
+        out.append(f"The supply reaches {top:.4g} V, above the {SELV_LIMIT:g} V DC of the "
+                   f"safety-extra-low-voltage range: touching the circuit can be dangerous. "
+                   f"Its wiring, insulation, spacing and protection defer to local electrical "
+                   f"codes and licensed practice, which this analysis does not cover.")
+    if corner is not None:
+        out += corner_notes(stage, corner)
+    return out
+
+
+def _peak_notes(stage) -> list[str]:
+    """A note per transistor whose junction peaks in the PWM cycle more than
+    :data:`models.thermal.PEAK_NOTE_SHARE` above its period-average rise."""
+    from tolerance.units import format_quantity as q
+
+    setup = getattr(stage, "thermal", None)
+    if setup is None or not stage.drive.pwm:
+        return []
+    out = []
+    for name in setup.theta:
+        if name in setup.shared:
+            continue  # the die's note is its package's, the carrier's
+        excess = setup.peak_excess(name)
+        if not excess > thermal.PEAK_NOTE_SHARE:
+            continue
+        taus = " and ".join(q(tau, "s") for _, tau in setup.network[name])
+        period = 1.0 / stage.drive.frequency
+        out.append(f"The PWM period ({q(period, 's')}, on for {q(setup.duty * period, 's')}) "
+                   f"is long against {name}'s thermal time constants ({taus}): its junction "
+                   f"peaks in each cycle at up to {1.0 + excess:.3g} times its period-average "
+                   f"rise. The junction temperatures and power stresses are the cycle's peaks; "
+                   f"the time constants are typical of the package class (from memory), so "
+                   f"give the part's own (thermal_time_constant, die_time_constant in "
+                   f"[parts.{name}]) where they are known.")
+    return out
+
+
+def corner_notes(stage, corner: dict) -> list[str]:
+    """A note per transistor whose junction at ``corner`` (parameter values by name; the
+    study's nominal point with its hottest ambient and highest supply) settles above its
+    T_j max, or finds no stable point: a hot part is a burn hazard beside the rating.
+    Evaluated once per corner and stage (one sample)."""
+    from tolerance.units import format_quantity as q
+
+    setup = getattr(stage, "thermal", None)
+    if setup is None or not setup.self_heating:
+        return []
+    key = tuple(sorted(corner.items()))
+    cache = stage.__dict__.setdefault("_corner_notes", {})
+    if key in cache:
+        return list(cache[key])
+    samples = {k: np.array([float(v)]) for k, v in corner.items()}
+    with np.errstate(all="ignore"):
+        res = stage.evaluate(samples)
+    out = []
+    where = (f"at the nominal point with the hottest ambient "
+             f"({q(corner[stage.env.temperature], 'temperature')}) and the highest supply "
+             f"({q(corner[stage.env.supply], 'V')})")
+    if bool(res["converged"][0]):
+        for name, role in setup.roles.items():
+            if name in setup.shared:
+                continue
+            tj = float(res[f"tj_{role}"][0])
+            limit = setup.tj_max[name]
+            if np.isnan(tj):
+                out.append(f"{where[:1].upper() + where[1:]}, {name}'s junction finds no "
+                           f"stable operating point (thermal runaway): the part overheats "
+                           f"and can burn what touches it; check its rating and cooling.")
+            elif tj > limit:
+                out.append(f"{where[:1].upper() + where[1:]}, {name}'s junction settles at "
+                           f"{q(tj, 'temperature')}, above its T_j max of "
+                           f"{q(limit, 'temperature')}: a part that hot burns on touch and "
+                           f"chars what it touches, and it is outside its rating; check the "
+                           f"part's rating, its cooling, or a part rated for it.")
+    cache[key] = list(out)
     return out
