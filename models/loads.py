@@ -216,7 +216,7 @@ class ResistorState(LoadState):
         return v * g, np.broadcast_to(g, np.broadcast(v, g).shape).copy()
 
     def voltage_guess(self, current):
-        """``i R(T)`` [V] (exact)."""
+        """``i R(T_a)`` [V] (exact)."""
         return _arr(current) * self.resistance
 
     def metrics(self, v_on, i_on):
@@ -328,13 +328,18 @@ class CoilState(LoadState):
     resistance_20 : ndarray
         Winding resistance at 20 degC [ohm].
     coil_temperature : ndarray
-        Winding temperature, ambient plus the stated rise [K].
+        Winding temperature after a long on-time, ambient plus the stated rise [K].
     resistance : ndarray
-        Winding resistance at the coil temperature [ohm].
+        Winding resistance at the ambient [ohm]: the cold winding a unit switches on, which
+        carries the most current. The transistor's on-state, the drive it needs, its
+        dissipation, the clamp's energy and the release time are judged on it.
+    hot_resistance : ndarray
+        Winding resistance at the coil temperature [ohm], for the pull-in check.
     inductance : ndarray
         [H].
     operate_voltage : ndarray
-        Must-operate voltage of the hot coil [V].
+        Must-operate voltage of the hot coil [V] (a unit switched on again while its winding
+        is still hot: the worst case for pull-in).
     clamp : str
         ``diode``, ``zener`` or ``none``.
     clamp_forward_voltage : float
@@ -344,12 +349,15 @@ class CoilState(LoadState):
         forward voltage, the zener voltage plus the series diode's, or infinity without a
         clamp (the switch's breakdown then sets it).
     time_constant : ndarray
-        L / R of the hot coil [s].
+        L / R of the cold coil [s].
 
     Notes
     -----
     R(T) = R_20 (1 + 0.00393 /K (T - 293.15 K)), the copper coefficient of IEC 60028 at
-    20 degC. Pull-in is set by ampere-turns, i.e. by the coil current, so the voltage needed
+    20 degC. Each check takes the winding at its own worst temperature (common practice, no
+    source): pull-in the hot one (the most resistance for the ampere-turns), everything the
+    transistor and the clamp see the cold one (a 30 K rise takes 11 % off the current, and
+    the stage switches the cold winding on). Pull-in is set by ampere-turns, i.e. by the coil current, so the voltage needed
     grows with the resistance: V_op(T) = V_op,20 R(T) / R_20 (common practice, relay data
     sheets state the must-operate voltage at 20 degC). The zener clamp is the usual
     fast-release arrangement of a zener in series with a diode across the coil (common
@@ -364,11 +372,16 @@ class CoilState(LoadState):
         super().__init__(supply_voltage, temperature)
         self.resistance_20 = resistance
         self.coil_temperature = temperature + temperature_rise
-        factor = 1.0 + COPPER_TEMPCO * (self.coil_temperature - COPPER_REFERENCE)  # IEC 60028
-        factor = np.where(factor > 0, factor, np.nan)
-        self.resistance = resistance * factor
+
+        def copper(t):  # IEC 60028
+            factor = 1.0 + COPPER_TEMPCO * (t - COPPER_REFERENCE)
+            return np.where(factor > 0, factor, np.nan)
+
+        hot = copper(self.coil_temperature)
+        self.resistance = resistance * copper(temperature)
+        self.hot_resistance = resistance * hot
         self.inductance = inductance
-        self.operate_voltage = must_operate_voltage * factor  # V_op(T) = V_op20 R(T)/R20
+        self.operate_voltage = must_operate_voltage * hot  # V_op(T) = V_op20 R(T)/R20
         self.operate_voltage_20 = must_operate_voltage
         self.clamp = clamp
         self.clamp_forward_voltage = clamp_forward_voltage
@@ -381,7 +394,7 @@ class CoilState(LoadState):
         self.time_constant = inductance / self.resistance
 
     def current(self, v):
-        """Ohm's law of the hot winding, ``(v / R(T) [A], 1 / R(T) [S])``."""
+        """Ohm's law of the cold winding, ``(v / R(T_a) [A], 1 / R(T_a) [S])``."""
         g = 1.0 / self.resistance
         v = _arr(v)
         return v * g, np.broadcast_to(g, np.broadcast(v, g).shape).copy()
@@ -414,7 +427,9 @@ class CoilState(LoadState):
         return _arr(supply_voltage) + self.clamp_voltage
 
     def metrics(self, v_on, i_on):
-        """``coil_voltage`` [V], ``coil_current`` [A], ``operate_margin`` = V / V_op(T) [1]."""
+        """``coil_voltage`` [V], ``coil_current`` [A] (the cold winding's), ``operate_margin``
+        = V / V_op(T) [1] with V_op of the hot winding (the on-state voltage is the cold
+        winding's, a few millivolts lower than the hot one's: the safe side)."""
         v_on = _arr(v_on)
         return {
             "coil_voltage": v_on,
@@ -615,7 +630,9 @@ class CoilLoad(LoadSpec):
     kind = "coil"
     METRICS = {
         "coil_voltage": MetricInfo("V", "voltage across the coil in the on-state"),
-        "coil_current": MetricInfo("A", "coil current in the on-state"),
+        "coil_current": MetricInfo("A", "coil current in the static on-state, cold winding "
+                                        "(under a PWM drive slower than L/R the coil "
+                                        "averages about duty times it)"),
         "operate_margin": MetricInfo("1", "coil voltage over the must-operate voltage of the "
                                           "hot coil"),
     }
