@@ -327,6 +327,15 @@ def test_failure_drivers_single_input_when_second_does_not_help():
     assert res["region"][0]["side"] == "above"
     assert res["region"][0]["threshold"] == pytest.approx(450, abs=5)
     assert res["text"].startswith("hfe above 450 [1]: 100 % of failures, failure rate 100 % inside")
+    # the region's units are counted in the text, so a region round one failing unit reads
+    # as one unit, not as a finding (its failure rate is 100 % by construction)
+    inside = int((x["hfe"] > res["region"][0]["threshold"]).sum())
+    assert res["units_inside"] == inside
+    assert f"({int(failed.sum()):,} of {inside:,} units; 0 % outside)" in res["text"]
+    one = np.zeros(n, dtype=bool)
+    one[int(np.argmax(x["hfe"]))] = True
+    lone = failure_drivers(x, one, units=units, formatter=lambda v, u: f"{v:.0f} [{u}]")
+    assert lone["units_inside"] == 1 and "(1 of 1 units;" in lone["text"]
 
 
 def test_failure_drivers_no_failures():

@@ -742,7 +742,9 @@ def failure_drivers(
             Failure rate among samples inside / outside the region.
         ``text`` : str
             Plain-language summary, e.g. ``"Q2.hfe below 410 and ambient below -10 degC:
-            92 % of failures, failure rate 31 % inside (0.4 % outside)"``.
+            92 % of failures, failure rate 31 % inside (920 of 2,968 units; 0.4 % outside)"``.
+        ``units_inside`` : int
+            Units inside the region.
         ``failures``, ``samples``, ``dropped`` : int
             Failure count, samples used, and rows dropped for non-finite inputs.
 
@@ -901,18 +903,25 @@ def _drivers(names, x, fail, ks, dropped, units, fmt, top) -> dict:
         f"{c['input']} {c['side']} {fmt(c['threshold'], units.get(c['input'], '1'))}"
         for c in region
     ]
+    # how many units the region holds: a region drawn round a single failing unit reads
+    # "failure rate 100 % inside", true by construction and no finding (an audit's beacon
+    # run: one unit, beyond the class's maximum gain)
+    k_in = int(inside.sum())
     text = (
         " and ".join(parts)
-        + f": {_percent(share)} % of failures, failure rate {_percent(r_in)} % inside"
+        + f": {_percent(share)} % of failures, failure rate {_percent(r_in)} % inside "
+        + f"({int((fail & inside).sum()):,} of {k_in:,} units"
     )
     if math.isfinite(r_out):
-        text += f" ({_percent(r_out)} % outside)"
+        text += f"; {_percent(r_out)} % outside"
+    text += ")"
     return {
         "ranking": ranking,
         "region": region,
         "share_of_failures": float(share),
         "rate_inside": float(r_in),
         "rate_outside": float(r_out),
+        "units_inside": k_in,
         "text": text,
         **base,
         "passes": int(n_pass),

@@ -224,18 +224,24 @@ def _time_constants(t, part, shared: bool) -> tuple[float, float]:
 
 def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
     m, crit = stage.metrics, stage.criteria
+    # the PWM wording only where the drive switches (a static stage's plots label their axes
+    # with these texts, cut at 60 characters)
+    pwm = bool(getattr(getattr(stage, "drive", None), "pwm", False))
     for dev, role in setup.roles.items():
-        m[f"power_{role}"] = MetricInfo("W", f"dissipation of {dev} ({role}) averaged over the "
-                                             "period, at its junction temperature")
-        m[f"tj_{role}"] = MetricInfo("temperature", f"junction temperature of {dev} ({role}): "
-                                                    "with a PWM drive the peak of the cycle")
+        m[f"power_{role}"] = MetricInfo("W", f"dissipation of {dev} ({role})"
+                                             + (" averaged over the period" if pwm else "")
+                                             + ", at its junction temperature")
+        m[f"tj_{role}"] = MetricInfo("temperature", f"junction temperature of {dev} ({role})"
+                                                    + (": the peak of the PWM cycle" if pwm
+                                                       else ""))
         whose = (f"{dev} (of the die it shares)"
                  if dev in setup.shared or dev in setup.shared.values() else dev)
         m[f"power_stress_{role}"] = MetricInfo("1", f"dissipation of {whose} over its P_tot "
                                                     "derated to the ambient (on a heatsink: "
-                                                    "its case rating, to the case); with a "
-                                                    "PWM drive the steady dissipation that "
-                                                    "gives the cycle's peak junction rise")
+                                                    "its case rating, to the case)"
+                                                    + ("; with a PWM drive the steady "
+                                                       "dissipation that gives the cycle's "
+                                                       "peak junction rise" if pwm else ""))
         limit = setup.tj_max[dev] - setup.margin
         crit.append(Criterion(f"tj_max_{role}", f"tj_{role}", maximum=limit, source="rating",
                               description=f"{dev} junction below T_j max"
