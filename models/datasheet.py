@@ -62,9 +62,12 @@ __all__ = [
 class DatasheetError(ValueError):
     """Inconsistent or impossible device data; ``key`` names the offending figure."""
 
-    def __init__(self, key: str, message: str):
+    def __init__(self, key: str, message: str, related: tuple[str, ...] = ()):
         self.key = key
         self.message = message
+        #: other figures the conflict involves (a study that gave one of them, not ``key``,
+        #: is told about its own)
+        self.related = tuple(related)
         super().__init__(f"{key}: {message}")
 
 
@@ -230,7 +233,7 @@ class Datasheet:
                 raise DatasheetError("ic_max", f"{self.ic_max:g} A is below the test point "
                                                f"{name} = {getattr(self, name):g} A: a "
                                                f"datasheet's test points lie within its "
-                                               f"rating; check the units")
+                                               f"rating; check the units", related=(name,))
         if self.hfe_min > self.hfe_max:
             raise DatasheetError("hfe_min", f"hfe_min ({self.hfe_min:g}) is above hfe_max "
                                             f"({self.hfe_max:g})")

@@ -365,7 +365,8 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
     try:
         ds = Datasheet.from_figures(figures)
     except DatasheetError as exc:
-        key = exc.key if part.has(exc.key) or device is None else "device"
+        key = exc.key if part.has(exc.key) or device is None else next(
+            (k for k in exc.related if part.has(k)), "device")
         if exc.key.startswith("hfe") and part.has("hfe"):
             key = "hfe"
         elif (exc.key == "hfe_min" and part.has("hfe_max") and not part.has("hfe_min")

@@ -200,6 +200,20 @@ def test_whatif_notes_pins_that_contradict_their_correlation(write_study):
     assert agree["pin_notes"] == []
 
 
+def test_whatif_notes_a_pin_beyond_the_studys_limits(study):
+    # a gain of 1,000 pinned on a 40 .. 250 part moved a review's yield from 2 % to 100 %
+    # without a word (a review of 2026-12-04): a pin beyond the stated limits is no unit of
+    # the study; the what-if runs and says so. x1 is uniform on -1 .. 3 V.
+    from tolerance.whatif import whatif
+
+    result, _, pinned = whatif(study, ["x1=5"], samples=50)
+    (note,) = result["pin_notes"]
+    assert "x1 is pinned at 5 V, outside the study's -1 V .. 3 V" in note
+    assert pinned.summary["samples"] == 50
+    for inside in ("x1=max", "x1=-1 V", "x1=p10"):
+        assert whatif(study, [inside], samples=50)[0]["pin_notes"] == []
+
+
 def test_whatif_pin_forms(study):
     from tolerance.whatif import pin_value
 

@@ -178,6 +178,8 @@ def test_study_parameters_of_a_library_part(tmp_path):
     ('device = "small_signal_npn"\nleakage_doubling = "0.5 K"', "parts.Q1.leakage_doubling"),
     ('device = "small_signal_npn"\nbeta_exponent = 10', "parts.Q1.beta_exponent"),
     ('device = "small_signal_npn"\nic_max = "1 mA"', "parts.Q1.ic_max"),
+    # the study's own test current above the class's rating: the study's key is named
+    ('device = "medium_power_npn"\nhfe_current = "2 A"', "parts.Q1.hfe_current"),
     ('device = "small_signal_npn"\nhfe_min = 1e5\nhfe_typ = 3e5\nhfe_max = 1e6',
      "parts.Q1.hfe_min"),
 ])

@@ -1534,8 +1534,8 @@ def test_a_monolithic_pair_meets_its_own_saturation_figure_at_minimum_gain():
     assert 1.1 < fit.vce_sat_dies < 1.3
     assert 0.2 < fit.added_emitter_resistance < 0.35
     d1, d2 = stage.q1.device, stage.q2.device
-    g1 = 1.0 / fit.figures["rbe_driver"]
-    g2 = 1.0 / fit.figures["rbe_output"]
+    g1 = 1.0 / fit.rbe_driver
+    g2 = 1.0 / fit.rbe_output
     v = pair_collector_voltage(d1.parameters(d1.datasheet.hfe_min),
                                d2.parameters(d2.datasheet.hfe_min), g1, g2, 3.0, 0.012)
     np.testing.assert_allclose(v, 2.0, rtol=1e-6)
@@ -1601,3 +1601,35 @@ def test_a_gain_table_screens_the_spread_without_refitting_the_device(write_stud
     own = load_text("c.toml", text=base.format(
         hfe='hfe_min = 30\nhfe_max = 250\nhfe = {min = 30, max = 250}'))
     assert own.stage.q1.device.datasheet.hfe_min == 30
+
+
+def test_a_monolithic_pairs_figures_are_checked_and_its_own_resistors_used(write_study):
+    # a review of 2026-12-04: a 20 A test current on a 5 A pair was accepted ("dies alone
+    # 111 V, met by 0 ohm"), as was a base current of 3 A at 3 A; a maximum below what the
+    # dies give read "met"; and the study's own internal resistors were left out of the fit
+    from tolerance.models.stages.darlington import pair_collector_voltage
+    from tolerance.study import load_study as load_text
+
+    for mount, key in (('pair_vce_sat_ic = "20 A"', "pair_vce_sat_ic"),
+                       ('pair_vce_sat_ib = "3 A"', "pair_vce_sat_ib")):
+        bad = write_study(MONOLITHIC.format(extra="", mount=mount))
+        res = subprocess.run([sys.executable, "-m", "tolerance", "check", str(bad)],
+                             capture_output=True, text=True)
+        assert res.returncode == 2 and f"parts.Q2.{key}" in res.stderr, res.stderr
+    low = load_text("m.toml", text=MONOLITHIC.format(extra="", mount='pair_vce_sat_max = "1 V"'))
+    assert low.stage.pair_fit.added_emitter_resistance == 0.0
+    row = {r["part"]: r for r in low.stage.assumptions()}["Q2"]["vce_sat_max"]
+    assert "above the figure, kept" in row
+    # the study's stiffer internal resistors: the minimum-gain pair meets 2 V with them
+    stiff = load_text("s.toml", text=MONOLITHIC.format(
+        extra="", mount='rbe_driver = "1k"\nrbe_output = "20 ohm"'))
+    fit = stiff.stage.pair_fit
+    assert (fit.rbe_driver, fit.rbe_output) == (1000.0, 20.0)
+    d1, d2 = stiff.stage.q1.device, stiff.stage.q2.device
+    v = pair_collector_voltage(d1.parameters(d1.datasheet.hfe_min),
+                               d2.parameters(d2.datasheet.hfe_min), 1e-3, 1 / 20.0, 3.0, 0.012)
+    np.testing.assert_allclose(v, 2.0, rtol=1e-6)
+    # a large figure is met too: the resistance lies outside the die, so the die's own gain
+    # mapping at its 3 A, 3 V test point stays possible (5 V failed before)
+    big = load_text("b.toml", text=MONOLITHIC.format(extra="", mount='pair_vce_sat_max = "5 V"'))
+    assert big.stage.pair_fit.added_emitter_resistance > 1.0

@@ -99,16 +99,17 @@ def pin_notes(study: Study, overrides: dict[str, Override]) -> list[str]:
     (:func:`tolerance.sampling.pin_tension`). The run goes ahead: it is a what-if."""
     from tolerance.sampling import PIN_SCORE, pin_tension
 
+    out = _outside_notes(study, overrides)
     if not study.correlations:
-        return []
+        return out
     pins = {n: o.value for n, o in overrides.items()}
     tension = pin_tension(study.parameters, study.correlation_matrix(), pins)
     if tension is None:
-        return []
+        return out
     far = [(n, q) for n, q in tension["partners"].items() if abs(q["mean"]) > PIN_SCORE]
     joint = tension["distance"] > tension["independent"] + 1.0
     if not far and not joint:
-        return []
+        return out
     scores = ", ".join(f"{n} {_score(t)}" for n, t in tension["pins"].items())
     text = (f"The pins contradict the study's correlation: their normal scores ({scores}) "
             f"lie {tension['distance']:.1f} standard deviations from the centre jointly "
@@ -122,7 +123,27 @@ def pin_notes(study: Study, overrides: dict[str, Override]) -> list[str]:
                  f"{PIN_SCORE:g}, outside its tolerance")
     text += (". The pins together are rarer than any unit the study describes; read the "
              "pinned run as a stress case, not as units that will be built.")
-    return [text]
+    return out + [text]
+
+
+def _outside_notes(study: Study, overrides: dict[str, Override]) -> list[str]:
+    """A sentence per pin beyond its parameter's stated limits (a gain of 1,000 on a part
+    whose datasheet says 40 .. 250): the what-if runs, but no unit of the study has that
+    value, so its results describe another part or another build."""
+    out = []
+    for name, o in overrides.items():
+        p = study.parameter(name)
+        lo, hi = (p.low, p.high) if p.varies else (p.nominal, p.nominal)
+        value = float(o.value)
+        slack = 1e-9 * max(abs(lo), abs(hi))  # a limit given in other units
+        if lo - slack <= value <= hi + slack:
+            continue
+        span = (f"{format_quantity(lo, p.unit)} .. {format_quantity(hi, p.unit)}"
+                if p.varies else format_quantity(lo, p.unit))
+        out.append(f"{name} is pinned at {format_quantity(value, p.unit)}, outside the "
+                   f"study's {span}: no unit of the study has that value, so the pinned "
+                   f"run describes another part or build.")
+    return out
 
 
 def compare(base: dict, pinned: dict) -> dict:

@@ -40,7 +40,7 @@ import math
 
 import numpy as np
 
-from tolerance.models.datasheet import DatasheetError
+from tolerance.models.datasheet import DatasheetError, FittedDevice
 from tolerance.models.parts import (
     DARLINGTON_FIGURES,
     TransistorPart,
@@ -147,11 +147,13 @@ class DarlingtonStage(PairStage):
                 if row["part"] == "Q2":
                     # the pair's own figures beside the output die's (the die's are class
                     # equivalents; the datasheet states the pair's)
+                    how = (f"met by {q(fit.added_emitter_resistance, 'ohm')} in the "
+                           f"output's emitter" if fit.added_emitter_resistance > 0 else
+                           "above the figure, kept: the higher one is the safe side")
                     row["vce_sat_max"] += (
                         f"; pair {q(f['pair_vce_sat_max'], 'V')} at "
                         f"{q(f['pair_vce_sat_ic'], 'A')} / {q(f['pair_vce_sat_ib'], 'A')} "
-                        f"(dies alone {q(fit.vce_sat_dies, 'V')}, met by "
-                        f"{q(fit.added_emitter_resistance, 'ohm')} in the output's emitter)")
+                        f"(dies alone {q(fit.vce_sat_dies, 'V')}, {how})")
                     if f.get("pair_hfe_min") is not None:
                         row["hfe"] += (f"; pair {f['pair_hfe_min']:g} min at "
                                        f"{q(f['pair_hfe_current'], 'A')} (model, both dies "
@@ -283,14 +285,33 @@ class PairFit:
     """What a monolithic pair's own figures did to its dies (for the report and tests).
 
     ``vce_sat_dies`` is the pair's V_CE(sat) of the minimum-gain dies alone [V],
-    ``added_emitter_resistance`` the resistance put into the output die's emitter so that
-    the minimum-gain pair meets ``pair_vce_sat_max`` [ohm], ``hfe_min_model`` the minimum-gain
-    pair's gain at ``pair_hfe_current`` and ``pair_hfe_vce`` [1]."""
+    ``added_emitter_resistance`` the resistance put in series with the output die's emitter
+    so that the minimum-gain pair meets ``pair_vce_sat_max`` [ohm] (0 where the dies alone
+    reach it), ``hfe_min_model`` the minimum-gain pair's gain at ``pair_hfe_current`` and
+    ``pair_hfe_vce`` [1], ``rbe_driver`` and ``rbe_output`` the internal resistors the fit
+    took [ohm] (the study's nominal values where it gives them)."""
 
     figures: dict
     vce_sat_dies: float
     added_emitter_resistance: float
     hfe_min_model: float
+    rbe_driver: float | None = None
+    rbe_output: float | None = None
+
+
+@dataclasses.dataclass(frozen=True)
+class LeadedDevice(FittedDevice):
+    """A fitted die with a resistance in series with its emitter outside the die (a
+    monolithic pair's output: what its own V_CE(sat) figure asks beyond the dies). Each
+    unit's gain is mapped on the die as fitted, then the resistance is added, so the die's
+    gain at its test point stays the sampled one whatever the resistance."""
+
+    lead_resistance: float = 0.0
+
+    def parameters(self, hfe, icbo=None):
+        q = super().parameters(hfe, icbo)
+        return dataclasses.replace(q, emitter_resistance=q.emitter_resistance
+                                   + self.lead_resistance)
 
 
 def _pair_gain(q1, q2, g_be1, g_be2, ic, vce):
@@ -321,12 +342,19 @@ def fit_pair(q1: TransistorPart, q2: TransistorPart, figures: dict, rbe_driver: 
     maximum on its minimum-gain unit (conservative for the saturation and dissipation checks).
 
     The pair's V_CE(sat) is the output's V_BE plus the driver's V_CE(sat); what the dies'
-    class figures leave below the pair's maximum goes into the output die's emitter
-    resistance (the one place that raises it at every unit: the output itself never
-    saturates in a Darlington, so a collector resistance would not show), found by secant
-    steps (V_CE(sat) rises almost linearly with it). Returns the output part with that
-    resistance and the figures of the fit. A pair already at or above its maximum is left as
-    it is.
+    class figures leave below the pair's maximum goes into a resistance in series with the
+    output die's emitter (:class:`LeadedDevice`; the one place that raises it at every unit:
+    the output itself never saturates in a Darlington, so a collector resistance would not
+    show), found by secant steps (V_CE(sat) rises almost linearly with it). Returns the
+    output part with that resistance and the figures of the fit. A pair whose dies already
+    reach the maximum is left as it is (the dies' figure is the higher, conservative one).
+
+    Raises
+    ------
+    DatasheetError
+        Naming the pair figure that cannot hold: a test current above the output's I_C max,
+        a base current not below the collector current, or a maximum the dies' model does
+        not reach.
     """
     g_be1 = 0.0 if not rbe_driver else 1.0 / rbe_driver
     g_be2 = 0.0 if not rbe_output else 1.0 / rbe_output
@@ -334,11 +362,17 @@ def fit_pair(q1: TransistorPart, q2: TransistorPart, figures: dict, rbe_driver: 
     p1 = d1.parameters(d1.datasheet.hfe_min)
     ic, ib = figures["pair_vce_sat_ic"], figures["pair_vce_sat_ib"]
     target = figures["pair_vce_sat_max"]
-    base_re = float(d2.template.emitter_resistance)
+    if ic > d2.datasheet.ic_max * (1 + 1e-9):
+        raise DatasheetError("pair_vce_sat_ic", f"{ic:g} A is above the output's I_C max "
+                                                f"({d2.datasheet.ic_max:g} A)")
+    if ib >= ic:
+        raise DatasheetError("pair_vce_sat_ib", f"{ib:g} A is not below the collector "
+                                                f"current pair_vce_sat_ic = {ic:g} A")
 
     def output_with(extra):
-        return dataclasses.replace(d2, template=dataclasses.replace(
-            d2.template, emitter_resistance=base_re + extra), _cache={})
+        fields = {f.name: getattr(d2, f.name) for f in dataclasses.fields(FittedDevice)
+                  if f.name != "_cache"}
+        return LeadedDevice(**fields, lead_resistance=extra)
 
     def vce_at(extra):
         dev = output_with(extra)
@@ -347,16 +381,20 @@ def fit_pair(q1: TransistorPart, q2: TransistorPart, figures: dict, rbe_driver: 
 
     v0 = vce_at(0.0)
     if not math.isfinite(v0):
-        raise DatasheetError("pair_vce_sat_max", "the pair's saturation point could not be "
-                                                 "solved from its dies")
+        raise DatasheetError("pair_vce_sat_max", f"the pair's saturation point ({ic:g} A, "
+                                                 f"{ib:g} A) could not be solved from its "
+                                                 f"dies")
     extra = 0.0
     if v0 < target:
         r_a, v_a = 0.0, v0
         r_b = (target - v0) / ic
         v_b = vce_at(r_b)
-        for _ in range(20):
+        for _ in range(30):
             if not math.isfinite(v_b):
-                raise DatasheetError("pair_vce_sat_max", "cannot be met by the dies' model")
+                raise DatasheetError("pair_vce_sat_max", f"{target:g} V cannot be met: the "
+                                                         f"dies' on-state does not solve "
+                                                         f"with {r_b:.3g} ohm in the "
+                                                         f"output's emitter")
             if abs(v_b - target) < 1e-9 * target or v_b == v_a:
                 break
             r_a, v_a, r_b = r_b, v_b, r_b + (target - v_b) * (r_b - r_a) / (v_b - v_a)
@@ -368,30 +406,33 @@ def fit_pair(q1: TransistorPart, q2: TransistorPart, figures: dict, rbe_driver: 
         gain = _pair_gain(p1, dev2.parameters(dev2.datasheet.hfe_min), g_be1, g_be2,
                           figures["pair_hfe_current"], figures["pair_hfe_vce"])
     return (dataclasses.replace(q2, device=dev2),
-            PairFit(dict(figures), v0, extra, gain))
+            PairFit(dict(figures), v0, extra, gain, rbe_driver, rbe_output))
 
 
-def _read_internal(part: Reader, entry, name: str) -> tuple[ResistorPart, ResistorPart]:
-    """Internal base-emitter resistors of a monolithic entry as parameters of the part."""
+def _read_internal(part: Reader, entry, name: str):
+    """Internal base-emitter resistors of a monolithic entry as parameters of the part, and
+    their nominal values [ohm] (the study's where it gives them; None for an absent one)."""
     from tolerance.models.parts import _derived_parameter
 
-    out = []
+    out, nominal = [], []
     tol = entry.figures.get("rbe_tolerance", 0.0)
     for key, label in (("rbe_driver", "driver"), ("rbe_output", "output")):
         value = entry.figures.get(key)
         if value is None:
             out.append(ResistorPart(f"{name}.{key}", False))
+            nominal.append(None)
             continue
         if part.has(key):
-            part.parameter(key, "ohm", f"{name}.{key}", f"internal base-emitter resistor of "
-                           f"the {label}", positive=True)
+            param = part.parameter(key, "ohm", f"{name}.{key}", f"internal base-emitter "
+                                   f"resistor of the {label}", positive=True)
         else:
             spec = {"nominal": value, "tolerance": tol} if tol > 0 else {"nominal": value}
-            _derived_parameter(part, key, spec, "ohm", f"{name}.{key}",
-                               f"internal base-emitter resistor of the {label}")
+            param = _derived_parameter(part, key, spec, "ohm", f"{name}.{key}",
+                                       f"internal base-emitter resistor of the {label}")
         out.append(ResistorPart(f"{name}.{key}", True, f"{name}.{key}", None,
                                 entry.figures.get("rbe_tempco", 0.0)))
-    return out[0], out[1]
+        nominal.append(float(param.nominal))
+    return out[0], out[1], (nominal[0], nominal[1])
 
 
 @register_stage("darlington", description="Darlington pair low-side switch (discrete or "
@@ -417,7 +458,7 @@ def configure(reader):
             choices = [k for k, e in lib.items() if e.kind == "darlington"]
             raise q2_table.error("device", f"'{device}' is not a monolithic Darlington of the "
                                            f"library (one of: {', '.join(choices)})")
-        internal1, internal2 = _read_internal(q2_table, entry, "Q2")
+        internal1, internal2, internal_nominal = _read_internal(q2_table, entry, "Q2")
         q1_table = parts.table("Q1")
         for key in ("device", "heatsink", "case_to_sink", "pulse_energy"):
             if q1_table.has(key):
@@ -455,8 +496,9 @@ def configure(reader):
                                      f"{pair_figures['pair_vce_sat_max']:g} V is at or above "
                                      f"the lowest supply {env.supply_minimum:g} V")
             try:
-                q2, pair_fit = fit_pair(q1, q2, pair_figures, entry.figures.get("rbe_driver"),
-                                        entry.figures.get("rbe_output"))
+                # the part's internal resistors as the study states them (a pair with
+                # stiffer ones saturates higher: its own figure is met with them)
+                q2, pair_fit = fit_pair(q1, q2, pair_figures, *internal_nominal)
             except DatasheetError as exc:
                 raise q2_table.error(exc.key if q2_table.has(exc.key) else "device",
                                      f"{exc.key}: {exc.message}") from None
