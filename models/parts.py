@@ -40,6 +40,7 @@ from tolerance.models.datasheet import (
     fit_datasheet,
 )
 from tolerance.models.transistor import TransistorParameters
+from tolerance.distributions import ScreenedLogNormal
 from tolerance.study import Reader, StudyError
 from tolerance.units import UnitError, parse_quantity
 
@@ -302,6 +303,7 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
             figures[key] = part.quantity(key, unit)
 
     hfe_spec = None
+    screen = None
     if part.has("hfe"):
         try:
             t = part.table("hfe")
@@ -349,6 +351,10 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
                 hfe_spec["typ"] = typ
             if t.has("sigmas"):
                 hfe_spec["sigmas"] = t.quantity("sigmas", "1")
+            if (stated[0] is not None and stated[1] is not None and typ is None
+                    and not t.has("distribution") and not t.has("sigmas")):
+                # a plain screen: the part's own population, cut at the screen's limits
+                screen = (lo, hi)
     if polarity is not None and figures.get("polarity", polarity) != polarity:
         key = "polarity" if part.has("polarity") else "device"
         article = "an" if polarity == "npn" else "a"
@@ -404,8 +410,14 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
             hfe_spec["typ"] = ds.hfe_typ
     if hfe_spec["min"] == hfe_spec["max"]:
         hfe_spec = {"min": hfe_spec["min"], "max": hfe_spec["max"]}
-    _derived_parameter(part, "hfe", hfe_spec, "1", f"{name}.hfe",
-                       f"{description}: DC current gain at {ds.hfe_current * 1e3:g} mA")
+    param = _derived_parameter(part, "hfe", hfe_spec, "1", f"{name}.hfe",
+                               f"{description}: DC current gain at {ds.hfe_current * 1e3:g} mA")
+    if screen is not None and screen[0] < screen[1]:
+        # registered through the reader (its key path and messages), then given the part's
+        # population cut at the screen (the study format has no such form of its own)
+        cut = ScreenedLogNormal(ds.hfe_min, ds.hfe_max, ds.hfe_typ, screen[0], screen[1])
+        part._ctx.parameters[param.name] = dataclasses.replace(  # noqa: SLF001
+            param, distribution=cut)
     if part.has("icbo"):
         # a range of the study's own spreads over decades like the derived one: lognormal
         # unless the table names another distribution

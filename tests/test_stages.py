@@ -1590,7 +1590,25 @@ def test_a_gain_table_screens_the_spread_without_refitting_the_device(write_stud
         assert study.stage.q1.device.template == plain.template
         hfe = next(p for p in study.parameters if p.name == "Q1.hfe")
         lo = float(screen.split("min = ")[1].split(",")[0])
-        assert hfe.distribution.ppf(0.0) >= lo * (1 - 1e-9) or "truncnormal" not in screen
+        assert hfe.distribution.ppf(np.array(1e-12)) >= lo * (1 - 1e-9)
+    # a plain screen is the class's own population cut at its limits: its units keep their
+    # proportions (the median stays near the class's typical 100; a fresh lognormal over
+    # 50 .. 250 put it at 112), checked against the class lognormal's CDF
+    # (scipy.stats.norm in ln(x): median 100, 40 and 250 at 3 sigma)
+    from scipy import stats as sps
+
+    cut = load_text("d.toml", text=base.format(hfe="hfe = {min = 50, max = 250}"))
+    d = next(p for p in cut.parameters if p.name == "Q1.hfe").distribution
+
+    def pop_cdf(x):
+        z = np.where(x < 100, np.log(x / 100) / (np.log(100 / 40) / 3),
+                     np.log(x / 100) / (np.log(250 / 100) / 3))
+        return sps.norm.cdf(z)
+
+    x = np.array([60.0, 100.0, 180.0])
+    expected = (pop_cdf(x) - pop_cdf(50.0)) / (pop_cdf(250.0) - pop_cdf(50.0))
+    np.testing.assert_allclose(d.cdf(x), expected, rtol=1e-9)
+    assert 100.0 < d.nominal < 101.0
     bad = write_study(base.format(hfe="hfe = {min = 30, max = 250}"))
     res = subprocess.run([sys.executable, "-m", "tolerance", "check", str(bad)],
                          capture_output=True, text=True)
