@@ -845,3 +845,18 @@ def test_correlations_and_a_sets_members_reach_the_summary_and_both_reports(writ
     plain = run(load_study(write_study(STUDY.format(rate=0.0), "plain.toml")), samples=100,
                 out=tmp_path / "p")
     assert plain.summary["correlations"] == [] and plain.summary["discrete_sets"] == {}
+
+
+def test_a_long_runs_report_says_what_its_insights_were_computed_on():
+    # the failure drivers, capability and tail fits of a run beyond a million units use the
+    # first million (analysis.INSIGHT_ROWS), the rank measures the first 200,000; the report
+    # did not say so, while its drivers now count units (a review of 2026-12-04)
+    from tolerance.report import _insight_basis
+
+    text = _insight_basis({"samples": 3_000_000, "insight_rows": 1_000_000,
+                           "sensitivity_rows": 200_000})
+    assert "first 1,000,000 of the 3,000,000 units" in text
+    assert "rank measures the first 200,000" in text
+    assert _insight_basis({"samples": 20_000, "insight_rows": 20_000,
+                           "sensitivity_rows": 20_000}) is None
+    assert _insight_basis({"samples": 20_000}) is None  # an older folder

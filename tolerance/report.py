@@ -1425,6 +1425,9 @@ def _summary_blocks(summary: dict) -> list[Block]:
     if rows or drivers:
         doc.append(Block("h2", "Sensitivity and failure drivers"))
         doc.append(Block("p", SENSITIVITY_MEASURES))
+        basis = _insight_basis(summary)
+        if basis:
+            doc.append(Block("note", basis))
         for name, info in (drivers or {}).items():
             info = info or {}
             doc.append(Block("p", f"{name}: {info.get('text', '-')}"))
@@ -1434,6 +1437,22 @@ def _summary_blocks(summary: dict) -> list[Block]:
         if rows:
             doc.extend(generic_blocks(rows))
     return doc
+
+
+def _insight_basis(summary: dict) -> str | None:
+    """What the insights of a long run were computed on: the rank sensitivities on their
+    first rows and the failure drivers, capability and tail fits on the first million
+    (``analysis.INSIGHT_ROWS``), not on every unit the counts and the verdict use."""
+    n = summary.get("samples")
+    rows = summary.get("insight_rows")
+    if not isinstance(n, int) or not isinstance(rows, int) or rows >= n:
+        return None
+    ranked = summary.get("sensitivity_rows")
+    text = (f"The failure drivers (their unit counts included), capability and tail "
+            f"estimates use the first {rows:,} of the {n:,} units")
+    if isinstance(ranked, int) and ranked < n:
+        text += f", the rank measures the first {ranked:,}"
+    return text + "; the counts, rates and verdict use every unit."
 
 
 def build_document(summary: dict | None, extras: dict,
