@@ -42,6 +42,7 @@ from importlib import resources
 
 import numpy as np
 
+from tolerance.models.thermal import RESISTOR_TIME_CONSTANT
 from tolerance.protocol import Criterion, MetricInfo
 from tolerance.study import Reader, StudyError
 from tolerance.units import UnitError, parse_quantity
@@ -582,10 +583,14 @@ class ResistorLoad(LoadSpec):
                                              "on-state, averaged over the period with a "
                                              "PWM drive")}
 
-    def __init__(self, parameters, tempco: float, power_rating: float | None):
+    def __init__(self, parameters, tempco: float, power_rating: float | None,
+                 thermal_time_constant: float = RESISTOR_TIME_CONSTANT):
         super().__init__(parameters)
         self.tempco = tempco
         self.power_rating = power_rating
+        #: the load's own thermal time constant [s]: under a PWM drive the rating is judged
+        #: on the peak of its temperature in the cycle (stages.evaluation)
+        self.thermal_time_constant = thermal_time_constant
         if power_rating is not None:
             # the key was read and then used by nothing: a heater above its rating passed
             self.criteria = [Criterion("load_rating", "load_power", maximum=power_rating,
@@ -752,7 +757,8 @@ def read_load(reader: Reader) -> LoadSpec:
     -----
     Keys by kind (toleranced ones become parameters ``load.<key>``):
 
-    - ``resistor``: resistance*, tempco [1/K, default 0], power_rating [W, optional].
+    - ``resistor``: resistance*, tempco [1/K, default 0], power_rating [W, optional],
+      thermal_time_constant [s, default 1 s, from memory: the rating's peak under a PWM drive].
     - ``lamp``: rated_voltage*, rated_power*, cold_ratio* [default 12, 5..20], exponent
       [default 0.55], thermal_time_constant [default 20 ms], cold_tempco [1/K, default
       0.0045, tungsten, from memory].
@@ -769,7 +775,9 @@ def read_load(reader: Reader) -> LoadSpec:
         names = [_param(reader, "resistance", "ohm", "load resistance at 25 degC")]
         tempco = reader.quantity("tempco", "1/K", default=0.0, minimum=-5e-3, maximum=1e-2)
         rating = reader.optional_quantity("power_rating", "W", positive=True)
-        return ResistorLoad(names, tempco, rating)
+        tau = reader.quantity("thermal_time_constant", "s", default=RESISTOR_TIME_CONSTANT,
+                              positive=True, maximum=1e5)
+        return ResistorLoad(names, tempco, rating, tau)
 
     if kind == "lamp":
         names = [

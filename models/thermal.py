@@ -104,9 +104,23 @@ PACKAGE_TIME_CONSTANTS = {
     "TO-126": (0.1, 60.0),    # from memory
     "TO-220": (0.05, 120.0),  # from memory
 }
-#: the package class taken for a part of unknown package (the study's own figures): the
-#: shortest constants of the table, the side that gives the higher peak
-UNKNOWN_PACKAGE = "TO-92"
+#: the (die, package) constants taken for a part of unknown package (the study's own
+#: figures): each stage's shortest of the table, the side that gives the higher peak (a
+#: stage's share of the peak, (1 - exp(-t_on / tau)) / (1 - exp(-T / tau)), falls from 1 to
+#: the duty as tau grows)
+UNKNOWN_PACKAGE_TIME_CONSTANTS = (min(d for d, _ in PACKAGE_TIME_CONSTANTS.values()),
+                                  min(p for _, p in PACKAGE_TIME_CONSTANTS.values()))
+#: without theta_JC, the share of theta given to the die stage (with the die's constant; the
+#: rest with the package's): small packages' theta_JC is some 30 to 50 % of their free-air
+#: theta_JA, larger ones' less (from memory; the library's TO-92 class 83 of 200 K/W, its
+#: TO-126 class 10 of 100, TO-220 1.9 of 62.5). The peak rises with the fast stage's share,
+#: so half, the upper end, is never below the two-stage network of a part whose theta_JC is
+#: at most half its theta
+DIE_SHARE_WITHOUT_JC = 0.5
+#: a resistor's thermal time constant (element to ambient) [s] where the study gives none:
+#: small film and chip resistors (0.1 to 0.5 W) settle in seconds to tens of seconds (from
+#: memory); the short side, which gives the higher peak of a PWM cycle
+RESISTOR_TIME_CONSTANT = 1.0
 #: a PWM period whose junction peak exceeds the period-average rise by more than this share
 #: (at P_off = 0) gets a study note
 PEAK_NOTE_SHARE = 0.03
@@ -118,10 +132,12 @@ def foster_network(theta, theta_jc, die_time_constant, package_time_constant):
 
     The die stage carries theta_JC with the short constant, the package stage the rest,
     theta - theta_JC, with the package's. Without a theta_JC (a part given by its free-air
-    figure alone) the whole path is one stage with the package's constant.
+    figure alone) the die stage takes :data:`DIE_SHARE_WITHOUT_JC` of theta, the
+    conservative side: one stage with the package's constant gave a lower peak than the
+    part's own two stages (a TO-92 at a 10 s period, duty 0.5: weight 0.54 against 0.73).
     """
     if theta_jc is None or not 0.0 < theta_jc < theta:
-        return ((float(theta), float(package_time_constant)),)
+        theta_jc = DIE_SHARE_WITHOUT_JC * float(theta)
     return ((float(theta_jc), float(die_time_constant)),
             (float(theta) - float(theta_jc), float(package_time_constant)))
 
@@ -150,6 +166,15 @@ def peak_weight(network, frequency, duty):
         total += r
         weighted += r * k
     return float(weighted / total)
+
+
+def single_pole_weights(time_constant, frequency, duty):
+    """(w_on, w_off) of :func:`peak_power` for a part with one thermal time constant [s]
+    (a resistor's element, a resistive load): :func:`peak_weight` of the one-stage network
+    for the duty and for 1 - duty; (1, 0) for a static drive that is on (``frequency``
+    None, ``duty`` 1), the on-state's own dissipation."""
+    network = ((1.0, float(time_constant)),)
+    return (peak_weight(network, frequency, duty), peak_weight(network, frequency, 1.0 - duty))
 
 
 def peak_power(p_on, p_off, weights):
@@ -222,6 +247,10 @@ class FixedPointResult:
 #: times a trial temperature whose circuit did not solve is moved half way back towards the
 #: last one that did, before the sample is given up as not converged
 MAX_RETREATS = 6
+#: points of the scan between the ambient and the cap that a device first found heating at its
+#: cap gets before it is called a runaway (:func:`electrothermal`): 3 K apart over a 190 K
+#: span; a dip of the residual below zero narrower than that can still be missed
+SCAN_POINTS = 64
 #: a step is taken as settled when the distance it leaves to the fixed point, the step times
 #: 1 / (1 - F'), is below ``settle``; that factor is counted up to this much where F' nears or
 #: passes 1 (a loop that creeps along a nearly tangent curve has not settled)
@@ -275,8 +304,14 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     point out: a bracket that has shrunk to a thousandth of ``settle`` while the residual
     stays above a fifth of ``settle`` is dropped. No step goes beyond the cap, ``limit`` +
     100 K (or :data:`RUNAWAY_KELVIN`): a first plain step from a hot ambient can overshoot far
-    past a stable point, and only a unit still heating at the cap is a runaway. A sample
-    still moving after ``max_iterations`` is one too (``settled = False``). A device found
+    past a stable point, and only a unit still heating at the cap is a runaway. A device first
+    found heating at its cap gets one scan first: its residual at :data:`SCAN_POINTS` - 1
+    even steps between the ambient and the cap, the sample's other devices where they are, in
+    one batched call; where it turns negative the device restarts inside the first such
+    bracket, the stable point its first steps jumped (a heater's output found at 219.8 degC,
+    its residual dipping 0.3 K below zero over 12 K, where the cap is 250 degC). A runaway is
+    thus a device with no settled point found below its cap, not one proven to have none. A
+    sample still moving after ``max_iterations`` is one too (``settled = False``). A device found
     heating at its cap is held there while the sample's other devices (their own dice, their
     own thermal paths) settle on their own loops, with it held at its ``limit`` (where a
     stage evaluates a runaway's other metrics), so they keep their temperatures: only the
@@ -299,7 +334,9 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     Parameters
     ----------
     power_at : callable
-        ``power_at({device: T_j [K]}, idx) -> {device: P [W]}``, arrays of ``len(idx)``.
+        ``power_at({device: T_j [K]}, idx) -> {device: P [W]}``, arrays of ``len(idx)``;
+        ``idx`` may hold a sample several times (the scan below the cap evaluates each
+        sample at its points in one call).
     ambient : ndarray
         Ambient temperature per sample [K].
     theta : dict
@@ -350,6 +387,54 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
     pending = np.zeros(n, dtype=bool)  # backed off, not yet solved again
     pinned = {d: np.zeros(n, dtype=bool) for d in names}  # held at the cap: ran away
     spread = {d: np.full(n, np.inf) for d in names}  # each device's last distance [K]
+    scanned = {d: np.zeros(n, dtype=bool) for d in names}  # searched below its cap once
+
+    def scan_below_cap(jdx, pos, fresh, temps_now, hot, new):
+        """Samples ``jdx[pos]`` have a device first found heating at its cap (``fresh``,
+        per device over ``jdx``): scan each such device's residual at ``SCAN_POINTS`` - 1
+        even steps between the ambient and the cap (the sample's other devices at their
+        temperatures ``temps_now``), in one batched ``power_at`` call. A device whose
+        residual turns negative restarts inside the first such bracket (the last heating
+        point below the first cooling one): the stable crossing its first steps jumped.
+        ``hot`` and ``new`` (per device over ``jdx``) are updated in place."""
+        s = jdx[pos]
+        frac = np.arange(1, SCAN_POINTS) / SCAN_POINTS
+        rows = np.repeat(s, frac.size)
+        grid, trial = {}, {}
+        for d in names:
+            carrier = shared.get(d, d)
+            grid[d] = ambient[s, None] + (cap[carrier][s] - ambient[s])[:, None] * frac
+            trial[d] = np.where(fresh[d][pos, None], grid[d],
+                                temps_now[d][pos, None]).ravel()
+        power = power_at(trial, rows)
+        heat = {d: np.broadcast_to(np.asarray(power[d], dtype=float), rows.shape)
+                for d in names}
+        for d, carrier in shared.items():
+            heat[carrier] = heat[carrier] + heat[d]
+        column = np.arange(frac.size)
+        for d in names:
+            carrier = shared.get(d, d)
+            mine = fresh[d][pos]
+            scanned[d][s[mine]] = True
+            r = (ambient[rows] + _at(theta[carrier], rows) * heat[carrier]
+                 - trial[d]).reshape(s.size, frac.size)
+            with np.errstate(invalid="ignore"):
+                cooling, heating = r < 0.0, r > 0.0  # a trial that did not solve: neither
+            found = mine & cooling.any(axis=1)
+            if not found.any():
+                continue
+            first = np.argmax(cooling, axis=1)
+            below = np.max(np.where(heating & (column < first[:, None]), column, -1), axis=1)
+            k = np.arange(s.size)
+            upper = grid[d][k, first]
+            lower = np.where(below >= 0, grid[d][k, np.maximum(below, 0)], ambient[s])
+            at, g = s[found], pos[found]
+            lo[d][at], hi[d][at] = lower[found], upper[found]
+            # the secant starts from the cooling end: the next trial is the bracket's middle
+            prev_t[d][at], prev_r[d][at] = upper[found], r[k, first][found]
+            relax[d][at], boost[d][at], spread[d][at] = 1.0, 1.0, np.inf
+            new[d][g] = 0.5 * (lower + upper)[found]
+            hot[d][g] = False
     for it in range(1, max_iterations + 1):
         active = ~(settled | runaway | failed)
         if not active.any():
@@ -449,6 +534,18 @@ def electrothermal(power_at: Callable[[dict[str, np.ndarray], np.ndarray],
             spread[d][jdx] = np.abs(delta) * factor
         for d, carrier in shared.items():  # one die runs away whole
             hot[d] = hot[carrier] = hot[d] | hot[carrier]
+        # a device first found heating at its cap may yet have a stable point below it that
+        # its first steps jumped (a residual dipping below zero on the way up and rising
+        # again short of the cap): one scan each, before it is called a runaway
+        fresh = {d: hot[d] & ~pinned[d][jdx] & ~scanned[d][jdx] for d in names}
+        look = np.zeros(jdx.size, dtype=bool)
+        for d in names:
+            look |= fresh[d]
+        if look.any():
+            scan_below_cap(jdx, np.flatnonzero(look), fresh,
+                           {d: temps[d][jdx] for d in names}, hot, new)
+            for d, carrier in shared.items():
+                hot[d] = hot[carrier] = hot[d] | hot[carrier]
         any_hot = np.zeros(jdx.size, dtype=bool)
         every_hot = np.ones(jdx.size, dtype=bool)
         for d in names:

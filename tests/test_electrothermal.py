@@ -3,6 +3,7 @@ power balance, runaway, shared junction, ratings as criteria, the hot corner."""
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import numpy as np
@@ -707,3 +708,221 @@ def test_a_share_of_failures_below_one_never_reads_100_percent():
     assert _percent(0.99996) == "99.996"
     assert _percent(0.995) == "99.5"
     assert _percent(1.0) == "100" and _percent(0.42) == "42" and _percent(0.0) == "0"
+
+
+_RB_SLOW = """stage = "single"
+[ambient]
+temperature = {min = "0 degC", max = "50 degC"}
+[supply]
+voltage = {nominal = "12 V", tolerance = "5%"}
+[drive]
+high = {min = "4.8 V", max = "5.2 V"}
+frequency = "0.01 Hz"
+duty = 0.25
+[parts.RB]
+value = "100R"
+tolerance = "5%"
+power_rating = "0.125 W"
+[parts.Q1]
+device = "medium_power_npn"
+[load]
+kind = "resistor"
+resistance = {nominal = "24 ohm", tolerance = "5%"}
+power_rating = "5 W"
+[switching]
+enabled = false
+"""
+
+
+def test_slow_pwm_rates_resistors_and_the_load_on_their_peak():
+    # 0.01 Hz, duty 0.25: each 25 s on-time outlasts a small resistor's thermal time constant,
+    # so RB (0.14 to 0.17 W while on, rated 0.125 W) and the 24 ohm load (5 to 6 W, rated
+    # 5 W) reach their on-state temperatures every cycle; both were rated on the period's
+    # average (RB's stress 0.27 to 0.34, every unit passing) where a static drive fails them
+    study = load_text("rb.toml", text=_RB_SLOW)
+    static = load_text("rb.toml", text=_RB_SLOW.replace('frequency = "0.01 Hz"\nduty = 0.25\n',
+                                                        ""))
+    samples = _samples(study, 30, seed=5)
+    res, res_static = study.stage.evaluate(samples), static.stage.evaluate(samples)
+    assert res["converged"].all()
+    tj = {"Q1": res["tj_output"]}
+    dc = study.stage.dc(samples, tj, tj, full=False)
+    on, off = dc["power_on"], dc["power_off"]
+    # the closed form of one Foster stage's periodic peak (textbook RC circuit, as
+    # thermal.peak_weight) with the default 1 s: 1 - 4e-11 here
+    w = np.expm1(-25.0 / 1.0) / np.expm1(-100.0 / 1.0)
+    peak_rb = off["resistors"]["RB"] + w * (on["resistors"]["RB"] - off["resistors"]["RB"])
+    # the rating is flat to its 70 degC rated ambient (MIL-PRF-39017 practice)
+    np.testing.assert_allclose(res["resistor_stress_RB"], peak_rb / 0.125, rtol=1e-6)
+    assert (res["resistor_stress_RB"] > 1.0).all()
+    assert (res_static["resistor_stress_RB"] > 1.0).all()
+    # power_RB and load_power stay the period's averages
+    np.testing.assert_allclose(res["power_RB"], 0.25 * on["resistors"]["RB"]
+                               + 0.75 * off["resistors"]["RB"], rtol=1e-6)
+    np.testing.assert_allclose(res["load_power"], 0.25 * on["load"] + 0.75 * off["load"],
+                               rtol=1e-6)
+    np.testing.assert_allclose(res["load_power_peak"],
+                               off["load"] + w * (on["load"] - off["load"]), rtol=1e-6)
+    (rating,) = [c for c in study.criteria if c.name == "load_rating"]
+    assert (rating.metric, rating.maximum) == ("load_power_peak", 5.0)
+    assert (res["load_power_peak"] > 5.0).sum() >= 25
+    (rating,) = [c for c in static.criteria if c.name == "load_rating"]
+    assert rating.metric == "load_power" and "load_power_peak" not in static.stage.metrics
+    notes = [n for n in study.notes() if "RB (1 s) and the load (1 s)" in n]
+    assert len(notes) == 1 and "load_rating" in notes[0] and "4 times" in notes[0]
+    # each part's own time constant: 10^4 s against the 100 s period, near the average
+    tau = '\nthermal_time_constant = "10000 s"'
+    own = load_text("rb.toml", text=_RB_SLOW.replace(
+        'power_rating = "0.125 W"', 'power_rating = "0.125 W"' + tau)
+        .replace('power_rating = "5 W"', 'power_rating = "5 W"' + tau))
+    r_own = own.stage.evaluate(samples)
+    dc = own.stage.dc(samples, {"Q1": r_own["tj_output"]}, {"Q1": r_own["tj_output"]},
+                      full=False)
+    on, off = dc["power_on"], dc["power_off"]
+    w = np.expm1(-25.0 / 1e4) / np.expm1(-100.0 / 1e4)
+    assert 0.25 < w < 0.251
+    np.testing.assert_allclose(r_own["resistor_stress_RB"], (off["resistors"]["RB"] + w * (
+        on["resistors"]["RB"] - off["resistors"]["RB"])) / 0.125, rtol=1e-6)
+    np.testing.assert_allclose(r_own["load_power_peak"],
+                               off["load"] + w * (on["load"] - off["load"]), rtol=1e-6)
+    assert not any("RB (" in n for n in own.notes())
+    for table, line in (("parts.RB", 'power_rating = "0.125 W"'),
+                        ("load", 'power_rating = "5 W"')):
+        with pytest.raises(StudyError, match=re.escape(f"{table}.thermal_time_constant")):
+            load_text("rb.toml", text=_RB_SLOW.replace(
+                line, line + '\nthermal_time_constant = "-1 s"'))
+
+
+def test_fast_pwm_rates_resistors_within_their_ripple_of_the_average():
+    # the shipped LED dimmer (2 kHz, duty 0.1): against the period's average, what resistors
+    # were rated on, the one-stage peak of a 1 s constant is D (1 + (1 - D) T / 2 tau) to
+    # first order (2.25e-4 above it; common practice, no source); every other metric is the
+    # same as with the average
+    study = load_study(ROOT / "studies" / "pwm_led_dimmer_darlington.toml")
+    samples = _samples(study, 40, seed=2)
+    new = study.stage.evaluate(samples)
+    setup = study.stage.thermal
+    kept = dict(setup.resistor_weights)
+    try:
+        # the average: P_off + D (P_on - P_off), whichever state dissipates more
+        setup.resistor_weights = {k: (0.1, 0.9) for k in kept}
+        old = study.stage.evaluate(samples)
+    finally:
+        setup.resistor_weights = kept
+    bound = 0.9 * 5e-4 / 2.0
+    for key in study.stage.metrics:
+        if key.startswith("resistor_stress_"):
+            ratio = new[key] / old[key]
+            assert np.all(ratio >= 1.0 - 1e-12) and np.all(ratio <= 1.0 + bound * 1.001)
+            assert np.array_equal(new[key] <= 1.0, old[key] <= 1.0)
+        elif key != "hot_spot_margin":
+            np.testing.assert_allclose(new[key], old[key], rtol=1e-12, equal_nan=True)
+    np.testing.assert_allclose(new["hot_spot_margin"], old["hot_spot_margin"], rtol=1e-6)
+    assert not any("RB (" in n for n in study.notes())
+
+
+def test_a_stable_point_below_the_cap_is_found_not_called_a_runaway():
+    # unit 275 of a 400-unit run of the heater pair (seed 3): its first step from 55 degC
+    # jumps to the cap (250 degC) where the output still heats by 0.2 K, and it was called a
+    # runaway; its residual dips 0.3 K below zero between about 220 and 232 degC, a stable
+    # crossing the loop's scan finds
+    study = load_text("darl.toml", text=_HEATER_DARLINGTON)
+    values = {"ambient.temperature": 328.50855546487844, "supply.voltage": 12.815676354235656,
+              "drive.high": 3.2054966788549852, "drive.low": 0.20267467337584863,
+              "drive.source_resistance": 30.0, "RB": 226.05644139292662,
+              "RBE2": 99.90187014320526, "Q1.hfe": 217.29504742903765,
+              "Q1.icbo": 9.398508795407221e-09, "Q2.hfe": 48.950992084835654,
+              "Q2.icbo": 8.085769119685224e-07, "load.resistance": 4.655896125524596}
+    samples = _pinned(study, values)
+    res = study.stage.evaluate(samples)
+    assert res["converged"][0] and res["thermal_runaway"][0] == 0
+    tj = {"Q1": res["tj_driver"], "Q2": res["tj_output"]}
+    assert tj["Q2"][0] == pytest.approx(C0_K + 219.8, abs=0.5)
+    # JESD51-1 relation at the settled point, and a stable one: the residual
+    # T_a + theta P(T) - T falls through zero there (common practice, no source)
+    setup = study.stage.thermal
+    ta = values["ambient.temperature"]
+    for shift, sign in ((-2.0, 1.0), (0.0, 0.0), (2.0, -1.0)):
+        at = {"Q1": tj["Q1"], "Q2": tj["Q2"] + shift}
+        dc = study.stage.dc(samples, at, at, full=False)
+        residual = ta + setup.theta["Q2"] * dc["power_on"]["devices"]["Q2"][0] - at["Q2"][0]
+        if sign:
+            assert residual * sign > 0
+        else:
+            assert residual == pytest.approx(0.0, abs=0.1)
+    # hot as it is, it fails T_j max, not the runaway criterion
+    assert tj["Q2"][0] > setup.tj_max["Q2"]
+
+
+_INLINE = """stage = "single"
+[ambient]
+temperature = {min = "0 degC", max = "50 degC"}
+[supply]
+voltage = {nominal = "12 V", tolerance = "5%"}
+[drive]
+high = {min = "3.0 V", max = "3.3 V"}
+frequency = "0.1 Hz"
+duty = 0.5
+[parts.RB]
+value = "1k5"
+tolerance = "5%"
+[parts.Q1]
+device = "inline"
+polarity = "npn"
+hfe_min = 40
+hfe_typ = 100
+hfe_max = 250
+hfe_current = "150 mA"
+hfe_vce = "2 V"
+hfe_high_current = "1 A"
+hfe_high_min = 20
+hfe_low_current = "5 mA"
+hfe_low_min = 25
+vce_sat_max = "0.5 V"
+vce_sat_ic = "500 mA"
+vce_sat_ib = "50 mA"
+vbe_sat_max = "1.2 V"
+vbe_on = "0.72 V"
+vbe_on_current = "150 mA"
+vbe_on_vce = "2 V"
+icbo_max = "100 nA"
+icbo_vcb = "45 V"
+breakdown_vceo = "45 V"
+ic_max = "1.5 A"
+power_rating = "1.25 W"
+tj_max = "150 degC"
+theta_ja = "100 K/W"
+early_voltage = "80 V"
+reverse_beta = 3
+{extra}
+[load]
+kind = "resistor"
+resistance = {{nominal = "33 ohm", tolerance = "5%"}}
+[switching]
+enabled = false
+"""
+
+
+def _inline(extra=""):
+    return load_text("inline.toml", text=_INLINE.replace("{extra}", extra)
+                     .replace("{{", "{").replace("}}", "}"))
+
+
+def test_a_part_without_theta_jc_peaks_no_lower_than_with_it():
+    # without theta_jc the part was one Foster stage with the package's 30 s: at 0.1 Hz, duty
+    # 0.5, its peak read 1.08 times the average rise against 1.17 with theta_jc = 10 K/W
+    # (thermal.peak_weight); half of theta now goes to the die stage, with the part's own
+    # die_time_constant where given (it was read and ignored)
+    without, with_jc = _inline(), _inline('theta_jc = "10 K/W"')
+    assert without.stage.thermal.network["Q1"] == ((50.0, 0.05), (50.0, 30.0))
+    assert with_jc.stage.thermal.network["Q1"] == ((10.0, 0.05), (90.0, 30.0))
+    assert (without.stage.thermal.weights["Q1"][0]
+            >= with_jc.stage.thermal.weights["Q1"][0] > 0.5 * 1.15)
+    own = _inline('die_time_constant = "1 s"')
+    assert own.stage.thermal.network["Q1"] == ((50.0, 1.0), (50.0, 30.0))
+    samples = _samples(without, 20, seed=5)
+    hot = without.stage.evaluate(samples)["tj_output"]
+    cool = with_jc.stage.evaluate(samples)["tj_output"]
+    assert np.all(hot >= cool - 0.01)
+    note = [n for n in without.notes() if "Q1's thermal time constants" in n]
+    assert len(note) == 1 and "50 ms and 30 s" in note[0]

@@ -232,8 +232,8 @@ def test_peak_weight_tends_to_the_duty_and_to_one():
     assert thermal.peak_weight(network, 1e5, 0.3) == pytest.approx(0.3, rel=1e-5)
     assert thermal.peak_weight(network, 1e-5, 0.3) == pytest.approx(1.0, rel=1e-6)
     assert thermal.peak_weight(network, None, 1.0) == 1.0
-    # without theta_jc the whole path is one stage with the package's constant
-    assert thermal.foster_network(200.0, None, 0.3, 30.0) == ((200.0, 30.0),)
+    # without theta_jc the die stage takes half of theta (thermal.DIE_SHARE_WITHOUT_JC)
+    assert thermal.foster_network(200.0, None, 0.3, 30.0) == ((100.0, 0.3), (100.0, 30.0))
     # an off-state that dissipates more than the on-state peaks at the end of the off-time
     # (the same closed form with the phases swapped; textbook RC circuit)
     up = thermal.periodic_peak_rise(0.1, 1.5, network, 1e-3, 0.3)
@@ -264,3 +264,88 @@ def test_a_device_that_runs_away_leaves_the_others_their_own_temperatures():
                                                 "drv": np.full(1, 100.0)},
                                  shared={"drv": "out"}, limit=limit)
     assert np.isnan(res.temperatures["drv"][0]) and np.isnan(res.temperatures["out"][0])
+
+
+def _library_thermal_figures():
+    """(package, theta_ja, theta_jc) of every transistor class and die of the part library."""
+    from tolerance.models.parts import library
+
+    out = []
+    for entry in library().values():
+        figures = [entry.figures] if entry.kind != "darlington" else list(entry.dies.values())
+        for f in figures:
+            f = f if isinstance(f, dict) else f.figures
+            out.append((entry.package, f["theta_ja"], f["theta_jc"]))
+    return out
+
+
+def test_without_theta_jc_the_peak_is_never_below_the_two_stage_network():
+    # one stage with the package's long constant gave a lower peak than the part's own two
+    # stages (TO-92, 83 of 200 K/W, 0.3 s / 30 s, at a 10 s period and duty 0.5: 0.541
+    # against 0.732, hand calculation with the closed form below). Each stage's share of the
+    # peak, (1 - e^(-t_on/tau)) / (1 - e^(-T/tau)), falls with tau (the chord slope of the
+    # concave a^D; textbook RC circuit), so the weight grows with the die stage's share:
+    # half of theta (small packages' theta_JC is 30 to 50 % of theta_JA, from memory) is
+    # never below a library class's own split
+    def one(tau, period, duty):
+        return np.expm1(-duty * period / tau) / np.expm1(-period / tau)
+
+    to92 = thermal.PACKAGE_TIME_CONSTANTS["TO-92"]
+    assert one(30.0, 10.0, 0.5) == pytest.approx(0.5416, abs=1e-4)
+    split = (83.0 * one(0.3, 10.0, 0.5) + 117.0 * one(30.0, 10.0, 0.5)) / 200.0
+    assert split == pytest.approx(0.7318, abs=1e-4)
+    fallback = thermal.foster_network(200.0, None, *to92)
+    assert fallback == ((100.0, 0.3), (100.0, 30.0))
+    assert thermal.peak_weight(fallback, 0.1, 0.5) == pytest.approx(
+        0.5 * one(0.3, 10.0, 0.5) + 0.5 * one(30.0, 10.0, 0.5), rel=1e-12)
+    figures = _library_thermal_figures()
+    assert len(figures) >= 5
+    for package, theta_ja, theta_jc in figures:
+        constants = thermal.PACKAGE_TIME_CONSTANTS[package]
+        own = thermal.foster_network(theta_ja, theta_jc, *constants)
+        without = thermal.foster_network(theta_ja, None, *constants)
+        for period in (0.01, 0.1, 1.0, 10.0, 100.0, 1000.0):
+            for duty in (0.05, 0.25, 0.5, 0.75, 0.95):
+                for d in (duty, 1.0 - duty):  # both peaks: end of the on- and of the off-time
+                    assert (thermal.peak_weight(without, 1.0 / period, d)
+                            >= thermal.peak_weight(own, 1.0 / period, d) - 1e-15)
+    # a part of unknown package takes each stage's shortest constant of the table (the
+    # higher peak, as above)
+    assert thermal.UNKNOWN_PACKAGE_TIME_CONSTANTS == (0.05, 30.0)
+
+
+def test_a_resistors_single_pole_weights():
+    # one Foster stage (R, tau): the peak's weight (1 - e^(-t_on/tau)) / (1 - e^(-T/tau))
+    # (textbook RC circuit, as thermal.peak_weight); a static drive that is on gives the
+    # on-state's dissipation, a period far below tau the average (first order
+    # D (1 + (1 - D) T / 2 tau), common practice, no source), one far above the on-state's
+    assert thermal.single_pole_weights(1.0, None, 1.0) == (1.0, 0.0)
+    w_on, w_off = thermal.single_pole_weights(1.0, 2e3, 0.1)
+    assert w_on == pytest.approx(0.1 * (1 + 0.9 * 5e-4 / 2), rel=1e-7)
+    assert w_off == pytest.approx(0.9 * (1 + 0.1 * 5e-4 / 2), rel=1e-7)
+    w_on, w_off = thermal.single_pole_weights(1.0, 0.01, 0.25)
+    assert w_on == pytest.approx(-np.expm1(-25.0) / -np.expm1(-100.0), rel=1e-15)
+    assert w_on == pytest.approx(1.0, abs=1e-10)
+    # the peak dissipation of a resistor on 25 s of every 100 s is its on-state's
+    assert thermal.peak_power(0.16, 0.0, (w_on, w_off)) == pytest.approx(0.16, rel=1e-10)
+
+
+def test_a_scan_finds_a_stable_point_below_the_cap_that_the_first_step_jumps():
+    # residual r(x) = T_a + theta P - T = c (x - 80) (x - 200), x = T - T_a [K], c = 3/160:
+    # r(0) = 300 K, so the first plain step lands at x = 300, beyond the cap (T_j max + 100 K
+    # = x 225), where r = 68 K > 0: a unit still heating at its cap, called a runaway though
+    # a stable crossing (r' = c (2 x - 280) < 0) lies at x = 80 (exact, hand calculation)
+    ta = np.full(2, C0 + 25.0)
+    theta = np.full(2, 100.0)
+    c = 3.0 / 160.0
+
+    def power_at(t, i):
+        x = t["q"] - ta[i]
+        rise = c * (x - 80.0) * (x - 200.0) + x
+        # sample 1: the same curve lifted by 200 K, with no crossing below the cap
+        return {"q": (rise + np.where(i == 1, 200.0, 0.0)) / theta[i]}
+
+    res = thermal.electrothermal(power_at, ta, {"q": theta}, limit={"q": np.full(2, C0 + 150)})
+    assert res.settled.tolist() == [True, False]
+    assert res.temperatures["q"][0] == pytest.approx(C0 + 25.0 + 80.0, abs=0.05)
+    assert np.isnan(res.temperatures["q"][1]) and res.runaway["q"][1]

@@ -29,15 +29,23 @@ Flow of :func:`evaluate_stage` for a chunk:
    peak) against V_(BR)CEO, the peak collector current (a lamp's cold inrush as far as the
    stage can carry it) against I_C max.
 
-A sample whose loop finds no stable point below its cap (T_j max + 100 K) or does not settle
-has ``thermal_runaway = 1`` and a NaN junction temperature for the device that ran away (a
-device on its own thermal path that settled keeps its own); its other metrics are evaluated
-with that junction at T_j max. A sample that settles above T_j max is not a runaway: it fails
-the T_j max criteria with its settled temperatures.
-Resistors are taken at the ambient temperature (their own self-heating is not modelled).
+A sample whose loop settles nowhere below its cap (T_j max + 100 K: still heating there after
+a scan of the residual between the ambient and the cap found no stable crossing, or a loop
+that does not settle) has ``thermal_runaway = 1`` and a NaN junction temperature for the
+device that ran away (a device on its own thermal path that settled keeps its own); its other
+metrics are evaluated with that junction at T_j max. A sample that settles above T_j max is
+not a runaway: it fails the T_j max criteria with its settled temperatures.
+Resistors are taken at the ambient temperature (their own self-heating is not modelled in
+their values). Their ratings, and a resistive load's, are judged under a PWM drive on the
+steady dissipation that gives the cycle's peak element temperature through one Foster stage
+with the part's thermal time constant (P_off + w (P_on - P_off), w as the transistors'), the
+period's average where the period is far below it, the on-state's where each on-time
+outlasts it; ``power_<R>`` and ``load_power`` stay the period's average.
 """
 
 from __future__ import annotations
+
+import dataclasses
 
 import numpy as np
 
@@ -82,7 +90,8 @@ class ThermalSetup:
 
     def __init__(self, theta, tj_max, power_rating, breakdown, ic_max, shared, roles, margin,
                  self_heating, pulse_energy=None, case_theta=None, network=None,
-                 frequency=None, duty=1.0):
+                 frequency=None, duty=1.0, resistor_time_constants=None,
+                 load_time_constant=None):
         self.theta = theta
         self.tj_max = tj_max
         self.power_rating = power_rating
@@ -105,8 +114,21 @@ class ThermalSetup:
             net = self.network.get(name, ((theta[name], 1.0),))
             self.weights[name] = (thermal.peak_weight(net, frequency, duty),
                                   thermal.peak_weight(net, frequency, 1.0 - duty))
-
+        #: each resistor's and a rated resistive load's thermal time constant [s] and their
+        #: (w_on, w_off) of one Foster stage, for their ratings (read_thermal)
+        self.resistor_time_constants: dict[str, float] = dict(resistor_time_constants or {})
+        self.resistor_weights = {name: thermal.single_pole_weights(tau, frequency, duty)
+                                 for name, tau in self.resistor_time_constants.items()}
+        self.load_time_constant = load_time_constant
+        self.load_weights = (None if load_time_constant is None else
+                             thermal.single_pole_weights(load_time_constant, frequency, duty))
         self.frequency, self.duty = frequency, duty
+
+    def rating_excess(self, weights) -> float:
+        """As :meth:`peak_excess` for a resistor's or the load's (w_on, w_off)."""
+        if self.frequency is None:
+            return 0.0
+        return weights[0] / self.duty - 1.0
 
     def peak_excess(self, name) -> float:
         """How far the part's peak rise exceeds its period-average rise at P_off = 0, as a
@@ -132,7 +154,9 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
     own with a heatsink), and ``die_time_constant`` [s], the die stage's (theta_jc), of the
     part's two-stage Foster network (defaults by package class,
     :data:`models.thermal.PACKAGE_TIME_CONSTANTS`); a monolithic pair's are given on
-    [parts.Q2], its package's.
+    [parts.Q2], its package's. ``[parts.R..] thermal_time_constant`` [s] is a resistor's
+    (default :data:`models.thermal.RESISTOR_TIME_CONSTANT`), for its rating under a PWM
+    drive; a rated resistive load's is its ``[load] thermal_time_constant``.
     """
     table = reader.table("thermal")
     self_heating = table.boolean("self_heating", default=True)
@@ -184,9 +208,20 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
         ic_max[name] = float(ds.ic_max)
     for name, carrier in (shared or {}).items():
         network[name] = network[carrier]  # one die, one package: the output's network
+    # a resistor's rating, and a resistive load's, is thermal too: under a PWM drive each is
+    # judged on the peak of its element's temperature, one Foster stage with its own time
+    # constant ([parts.R..] thermal_time_constant, [load] thermal_time_constant)
+    resistor_tau = {name: parts_reader.table(name).quantity(
+                        "thermal_time_constant", "s", default=thermal.RESISTOR_TIME_CONSTANT,
+                        positive=True, maximum=1e5)
+                    for name, r in stage.resistors().items() if r.present}
+    load_tau = (getattr(stage.load, "thermal_time_constant", None)
+                if stage.load.kind == "resistor"
+                and getattr(stage.load, "power_rating", None) is not None else None)
     setup = ThermalSetup(theta, tj_max, rating, breakdown, ic_max, dict(shared or {}), roles,
                          margin, self_heating, pulse_energy, case_theta, network,
-                         stage.drive.frequency, stage.drive.duty if stage.drive.pwm else 1.0)
+                         stage.drive.frequency, stage.drive.duty if stage.drive.pwm else 1.0,
+                         resistor_tau, load_tau)
     stage.thermal = setup
     _add_metrics_and_ratings(stage, setup)
 
@@ -210,8 +245,8 @@ def _time_constants(t, part, shared: bool) -> tuple[float, float]:
                 raise t.error(key, "a monolithic Darlington is one package: give its thermal "
                                    "time constants on [parts.Q2]")
     package = package_of(part)
-    die, pkg = thermal.PACKAGE_TIME_CONSTANTS.get(
-        package, thermal.PACKAGE_TIME_CONSTANTS[thermal.UNKNOWN_PACKAGE])
+    die, pkg = thermal.PACKAGE_TIME_CONSTANTS.get(package,
+                                                  thermal.UNKNOWN_PACKAGE_TIME_CONSTANTS)
     pkg = t.quantity("thermal_time_constant", "s", default=pkg, positive=True, maximum=1e5)
     die = t.quantity("die_time_constant", "s", default=min(die, pkg), positive=True,
                      maximum=1e5)
@@ -253,26 +288,44 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
             continue
         m[f"power_{name}"] = MetricInfo("W", f"dissipation of {name} averaged over the period")
         m[f"resistor_stress_{name}"] = MetricInfo("1", f"dissipation of {name} over its "
-                                                       "derated power rating")
+                                                       "derated power rating"
+                                                       + ("; with a PWM drive the steady "
+                                                          "dissipation that gives the "
+                                                          "cycle's peak element temperature "
+                                                          "(one thermal time constant)"
+                                                          if pwm else ""))
         crit.append(Criterion(f"resistor_{name}", f"resistor_stress_{name}", maximum=1.0,
                               source="rating", description=f"{name} within its derated rating"))
+    if pwm and setup.load_weights is not None:
+        # the load's rating, like the resistors', on the cycle's peak (the period's average,
+        # load_power, passed a heater on 25 s of every 100 s that fails it when static)
+        m["load_power_peak"] = MetricInfo("W", "resistive load: the steady dissipation that "
+                                               "gives its peak temperature in the PWM cycle "
+                                               "(one thermal time constant), what load_rating "
+                                               "judges")
+        for k, c in enumerate(crit):
+            if c.name == "load_rating" and c.metric == "load_power":
+                crit[k] = dataclasses.replace(c, metric="load_power_peak",
+                                              description="load within its power rating at "
+                                                          "the PWM cycle's peak")
     names = ", ".join(f"{k}={p}" for k, p in enumerate(hot_spot_parts(stage)))
     m["hot_spot"] = MetricInfo("1", f"part closest to its limit ({names})")
     m["hot_spot_margin"] = MetricInfo("1", "1 minus the largest stress of any part (junction "
                                            "rise over allowed rise, power over derated "
                                            "rating); below 0 something is overstressed")
-    m["thermal_runaway"] = MetricInfo("1", "1 when the electro-thermal loop finds no stable "
-                                           "operating point below its cap, T_j max + 100 K "
-                                           "(a unit still heating there, or a loop that does "
-                                           "not settle); a unit that settles above T_j max "
-                                           "fails the T_j max criteria instead")
+    m["thermal_runaway"] = MetricInfo("1", "1 when the electro-thermal loop settles nowhere "
+                                           "below its cap, T_j max + 100 K (a unit still "
+                                           "heating there, where a scan between the ambient "
+                                           "and the cap found no stable crossing, or a loop "
+                                           "that does not settle); a unit that settles above "
+                                           "T_j max fails the T_j max criteria instead")
     m["vce_peak"] = MetricInfo("V", "highest collector-emitter voltage of the output (off-state "
                                     "or transient; a coil with the transient off: V_S + V_clamp, "
                                     "infinite without a clamp)")
     m["peak_current"] = MetricInfo("A", "highest collector current the output carries (a "
                                         "lamp's inrush as far as the drive allows)")
     crit.append(Criterion("thermal_runaway", "thermal_runaway", maximum=0.0, source="rating",
-                          description="a stable electro-thermal operating point exists"))
+                          description="the electro-thermal loop settles below its cap"))
     out = output_device(stage)
     # the lowest V_(BR)CEO of the parts across the switch (a Darlington's driver sees the
     # output's collector too), named for the part that sets it (it named the output always)
@@ -706,14 +759,17 @@ def evaluate_stage(stage, samples):
         return start
 
     def keep(res, temps_by_state, idx):
+        # a sample solved at several temperatures in one call (the loop's scan below its
+        # cap) keeps its first solution with that solution's temperatures
+        idx, rows = np.unique(idx, return_index=True)
         for key in ("on", "off"):
             x = res[f"x_{key}"]
             if key not in solved:
                 solved[key] = np.full((n, x.shape[1]), np.nan)
                 solved_at[key] = {d: np.full(n, np.nan) for d in devices}
-            solved[key][idx] = x
+            solved[key][idx] = x[rows]
             for d in devices:
-                solved_at[key][d][idx] = temps_by_state[key][d]
+                solved_at[key][d][idx] = np.asarray(temps_by_state[key][d], dtype=float)[rows]
 
     def settle():
         def power_at(t, idx):
@@ -770,9 +826,10 @@ def evaluate_stage(stage, samples):
                    start=warm_start({"on": eval_temps, "off": off_temps(eval_temps)},
                                     np.arange(n), params))
     converged = np.asarray(res["converged"], dtype=bool) & ~unsolved
-    # a thermal runaway has no stable operating point below the loop's cap (still heating
-    # there, or not settling); a unit that settles above T_j max fails the T_j max criteria,
-    # not this one (it repeated their count under an alarming name)
+    # a thermal runaway settled nowhere below the loop's cap (still heating there with no
+    # stable crossing found below it, or not settling); a unit that settles above T_j max
+    # fails the T_j max criteria, not this one (it repeated their count under an alarming
+    # name)
     runaway = converged & ~settled
 
     out = {k: res[k] for k in stage.metrics if k in res}
@@ -816,19 +873,27 @@ def evaluate_stage(stage, samples):
                                                                        np.inf))
         stresses += [rise, out[f"power_stress_{role}"]]
     if "load_power" in out and stage.drive.pwm:
-        # a heater's rating is a thermal one, met by the period's average like the parts'
-        # (the on-state's 12 W of a 4 W heater at 30 % duty failed a load taking 3.6 W)
-        out["load_power"] = _average(res["power_on"]["load"], res["power_off"]["load"], duty)
+        # a heater's rating is a thermal one: the period's average where the period is far
+        # below its thermal time constant (the on-state's 12 W of a 4 W heater at 30 % duty
+        # and 1 kHz failed a load taking 3.6 W), the on-state's where each on-time outlasts it
+        on, off = res["power_on"]["load"], res["power_off"]["load"]
+        out["load_power"] = _average(on, off, duty)
+        if "load_power_peak" in stage.metrics:
+            out["load_power_peak"] = thermal.peak_power(on, off, setup.load_weights)
     for name, r in stage.resistors().items():
         if not r.present:
             continue
-        p = _average(res["power_on"]["resistors"][name], res["power_off"]["resistors"][name],
-                     duty)
+        on, off = res["power_on"]["resistors"][name], res["power_off"]["resistors"][name]
+        p = _average(on, off, duty)
         out[f"power_{name}"] = p
+        # the rating on the steady dissipation that gives the element's peak temperature in
+        # the PWM cycle (its one Foster stage), the on-state's own with a static drive
+        peak = (thermal.peak_power(on, off, setup.resistor_weights[name])
+                if stage.drive.pwm else p)
         allowed = thermal.derated_power(r.power_rating, ambient, r.rated_ambient,
                                         r.max_temperature)
         with np.errstate(divide="ignore", invalid="ignore"):
-            out[f"resistor_stress_{name}"] = p / allowed
+            out[f"resistor_stress_{name}"] = peak / allowed
         stresses.append(out[f"resistor_stress_{name}"])
     # one stress per part (in hot_spot_parts order): the larger of a device's temperature
     # and power stresses, then each resistor's
@@ -982,7 +1047,8 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
 
 def _peak_notes(stage) -> list[str]:
     """A note per transistor whose junction peaks in the PWM cycle more than
-    :data:`models.thermal.PEAK_NOTE_SHARE` above its period-average rise."""
+    :data:`models.thermal.PEAK_NOTE_SHARE` above its period-average rise, and one for the
+    resistors and the resistive load whose rated dissipation does so."""
     from tolerance.units import format_quantity as q
 
     setup = getattr(stage, "thermal", None)
@@ -1004,13 +1070,34 @@ def _peak_notes(stage) -> list[str]:
                    f"the time constants are typical of the package class (from memory), so "
                    f"give the part's own (thermal_time_constant, die_time_constant in "
                    f"[parts.{name}]) where they are known.")
+    rated = [(name, f"[parts.{name}]", w, setup.resistor_time_constants[name])
+             for name, w in setup.resistor_weights.items()]
+    if setup.load_weights is not None:
+        rated.append(("the load", "[load]", setup.load_weights, setup.load_time_constant))
+    long = [(who, table, 1.0 + setup.rating_excess(w), tau) for who, table, w, tau in rated
+            if setup.rating_excess(w) > thermal.PEAK_NOTE_SHARE]
+    if long:
+        period = 1.0 / stage.drive.frequency
+        named = [f"{who} ({q(tau, 's')})" for who, _, _, tau in long]
+        whose = (", ".join(named[:-1]) + " and " + named[-1]) if len(named) > 1 else named[0]
+        most = max(factor for _, _, factor, _ in long)
+        tables = ", ".join(table for _, table, _, _ in long)
+        out.append(f"The PWM period ({q(period, 's')}, on for {q(setup.duty * period, 's')}) "
+                   f"is long against the thermal time constant of {whose}: "
+                   f"{'their ratings are' if len(long) > 1 else 'its rating is'} judged "
+                   f"(resistor_stress_<R>, load_rating) on the dissipation that gives the "
+                   f"cycle's peak element temperature, up to {most:.3g} times the period's "
+                   f"average (power_<R> and load_power stay the average). The default, "
+                   f"{q(thermal.RESISTOR_TIME_CONSTANT, 's')}, is a short one for small "
+                   f"resistors (from memory), so give each part's own (thermal_time_constant "
+                   f"in {tables}) where it is known.")
     return out
 
 
 def corner_notes(stage, corner: dict) -> list[str]:
     """A note per transistor whose junction at ``corner`` (parameter values by name; the
     study's nominal point with its hottest ambient and highest supply) settles above its
-    T_j max, or finds no stable point: a hot part is a burn hazard beside the rating.
+    T_j max, or settles nowhere below its cap: a hot part is a burn hazard beside the rating.
     Evaluated once per corner and stage (one sample)."""
     from tolerance.units import format_quantity as q
 
@@ -1035,9 +1122,10 @@ def corner_notes(stage, corner: dict) -> list[str]:
             tj = float(res[f"tj_{role}"][0])
             limit = setup.tj_max[name]
             if np.isnan(tj):
-                out.append(f"{where[:1].upper() + where[1:]}, {name}'s junction finds no "
-                           f"stable operating point (thermal runaway): the part overheats "
-                           f"and can burn what touches it; check its rating and cooling.")
+                out.append(f"{where[:1].upper() + where[1:]}, {name}'s junction settles "
+                           f"nowhere below T_j max + 100 K (thermal runaway): the part "
+                           f"overheats and can burn what touches it; check its rating and "
+                           f"cooling.")
             elif tj > limit:
                 out.append(f"{where[:1].upper() + where[1:]}, {name}'s junction settles at "
                            f"{q(tj, 'temperature')}, above its T_j max of "
