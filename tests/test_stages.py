@@ -1629,7 +1629,10 @@ def test_a_monolithic_pairs_figures_are_checked_and_its_own_resistors_used(write
     from tolerance.study import load_study as load_text
 
     for mount, key in (('pair_vce_sat_ic = "20 A"', "pair_vce_sat_ic"),
-                       ('pair_vce_sat_ib = "3 A"', "pair_vce_sat_ib")):
+                       ('pair_vce_sat_ib = "3 A"', "pair_vce_sat_ib"),
+                       # the study's own figure against the class's other one: its key
+                       ('pair_vce_sat_ic = "1 nA"', "pair_vce_sat_ic"),
+                       ('pair_vce_sat_ib = "1 nA"', "pair_vce_sat_ib")):
         bad = write_study(MONOLITHIC.format(extra="", mount=mount))
         res = subprocess.run([sys.executable, "-m", "tolerance", "check", str(bad)],
                              capture_output=True, text=True)

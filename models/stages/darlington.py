@@ -500,8 +500,12 @@ def configure(reader):
                 # stiffer ones saturates higher: its own figure is met with them)
                 q2, pair_fit = fit_pair(q1, q2, pair_figures, *internal_nominal)
             except DatasheetError as exc:
-                raise q2_table.error(exc.key if q2_table.has(exc.key) else "device",
-                                     f"{exc.key}: {exc.message}") from None
+                # the pair figure the study gave, where the conflict is with one of its own
+                # (a test current of 1 nA against the class's 12 mA base current)
+                given = [k for k in (exc.key, *PAIR_SATURATION_KEYS) if q2_table.has(k)]
+                key = given[0] if given else "device"
+                raise q2_table.error(key, exc.message if key == exc.key
+                                     else f"{exc.key}: {exc.message}") from None
     else:
         entry = library().get(q2_table.string("device", default=""))
         if entry is not None and entry.kind == "darlington":
