@@ -202,12 +202,33 @@ def test_sensitivity_directed_path_is_exact_on_linear_model():
     assert res["y"]["min"] == pytest.approx(lo, abs=1e-10)
     # exact derivation: w = -2 y, so max w = -2 min y
     assert res["w"]["max"] == pytest.approx(-2.0 * lo, abs=1e-10)
-    # 2d + 1 finite-difference points, then nominal plus 2 vertices shared by both metrics
-    assert res["y"]["evaluations"] == 2 * d + 1 + 3
+    # 2d + 1 finite-difference points, then nominal plus 2 vertices shared by both metrics,
+    # then one round of single flips from each of the two (none improves a linear model)
+    assert res["y"]["evaluations"] == 2 * d + 1 + 3 + 2 * d
     # Fixing four parameters leaves d = 10 <= 12 varying: back to the full factorial.
     fewer = bounds[:10] + [Bound(b.name, 0.0, 0.0, 0.0) for b in bounds[10:]]
     full = extreme_value(model, fewer, max_factorial=12)
     assert full["y"]["method"] == "full factorial"
+
+
+def test_single_flips_find_a_corner_whose_signs_differ_from_nominals():
+    # y = x1 - 2 x1 x2 + 0.1 x2 on [-1, 1]^2: at nominal (0, 0) both sensitivities are
+    # positive, so the directed vertex (1, 1) gives -0.9; worked by hand over the four
+    # corners, (1, 1) -0.9, (1, -1) 2.9, (-1, 1) 1.1, (-1, -1) -3.1, the maximum is 2.9 at
+    # (1, -1), one flip away, and the minimum -3.1 at (-1, -1). An audit found the engine-bay
+    # pair's hottest corner 1.9 K above the directed one in the same way.
+    bounds = [Bound("x1", 0.0, -1.0, 1.0), Bound("x2", 0.0, -1.0, 1.0)]
+
+    def model(s):
+        return {"y": s["x1"] - 2.0 * s["x1"] * s["x2"] + 0.1 * s["x2"]}
+
+    res = extreme_value(model, bounds, max_factorial=1)
+    assert res["y"]["method"] == "sensitivity-directed"
+    assert res["y"]["max"] == pytest.approx(2.9, abs=1e-12)
+    assert res["y"]["argmax"] == {"x1": 1.0, "x2": -1.0}
+    assert res["y"]["min"] == pytest.approx(-3.1, abs=1e-12)
+    without = extreme_value(model, bounds, max_factorial=1, max_rounds=0)
+    assert without["y"]["max"] == pytest.approx(-0.9, abs=1e-12)
 
 
 def test_nan_vertices_are_dropped_and_counted():

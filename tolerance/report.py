@@ -517,6 +517,16 @@ def worstcase_notes(data: dict) -> list[str]:
     not solve, and Monte Carlo units beyond the ranges searched."""
     notes = [str(n)[:1].upper() + str(n)[1:] + "." for n in data.get("notes") or []]
     metrics = data.get("metrics") or {}
+    if any(isinstance(m, dict) and m.get("eva_method") == "sensitivity-directed"
+           for m in metrics.values()):
+        # said where a reviewer reads the corners, not only in worstcase.json
+        notes.append(
+            "Too many parameters vary for every corner (more than 12): each metric's corners "
+            "are the ones the signs of its sensitivities at nominal point to, improved by "
+            "single flips of one parameter at a time while that moves the metric further; a "
+            "worst corner reachable only through less extreme ones can be missed, so set a "
+            "parameter that matters little to fixed, or read the optimizer and Monte Carlo "
+            "columns beside the corners.")
     unsolved = {name: m["eva_dropped"] for name, m in metrics.items()
                 if isinstance(m, dict) and m.get("eva_dropped")}
     if unsolved:
@@ -592,8 +602,8 @@ def worstcase_tables(data: dict) -> list[Table]:
 
 
 WORST_CASE_METHODS = (
-    "EVA: every parameter at an end of its range (all corners, or the corners the "
-    "sensitivities at nominal point to where there are too many). RSS: the sensitivities at "
+    "EVA: every parameter at an end of its range (all corners, or where more than 12 vary "
+    "the corners the sensitivities at nominal point to, improved by single flips). RSS: the sensitivities at "
     "nominal times each parameter's room to its own limit on each side, added in quadrature "
     "(a discrete set: the metric's change at the set's ends); it takes the metric as linear "
     "and the "
