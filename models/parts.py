@@ -314,6 +314,11 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
             fixed = part.quantity("hfe", "1", positive=True)
             hfe_spec = {"min": fixed, "max": fixed}
         else:
+            for key in ("nominal", "tolerance"):
+                if t.has(key):
+                    raise t.error(key, "a gain's spread is given by its limits, as a "
+                                       "datasheet states them: hfe = {min = ..., max = ...} "
+                                       "(with typ, distribution or sigmas if needed)")
             lo = t.quantity("min", "1", positive=True)
             hi = t.quantity("max", "1", positive=True)
             if lo > hi:
@@ -351,10 +356,20 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
                 hfe_spec["typ"] = typ
             if t.has("sigmas"):
                 hfe_spec["sigmas"] = t.quantity("sigmas", "1")
-            if (stated[0] is not None and stated[1] is not None and typ is None
-                    and not t.has("distribution") and not t.has("sigmas")):
-                # a plain screen: the part's own population, cut at the screen's limits
-                screen = (lo, hi)
+            if stated[0] is not None and stated[1] is not None:
+                # a screen passes no unit beyond its limits: a plain one draws the part's own
+                # population cut there; one with its own typ or sigmas a lognormal of its
+                # own, cut there too (uncut, 2.25 % of a 2-sigma screen's units lay beyond
+                # each limit, below the datasheet's minimum); a normal one is cut as
+                # truncnormal; uniform, truncnormal and fixed end at the limits already
+                if typ is None and not t.has("distribution") and not t.has("sigmas"):
+                    screen = ScreenedLogNormal(stated[0], stated[1], figures.get("hfe_typ"),
+                                               lo, hi)
+                elif kind == "lognormal":
+                    screen = ScreenedLogNormal(lo, hi, typ, lo, hi,
+                                               hfe_spec.get("sigmas", 3.0))
+                elif kind == "normal":
+                    hfe_spec["distribution"] = "truncnormal"
     if polarity is not None and figures.get("polarity", polarity) != polarity:
         key = "polarity" if part.has("polarity") else "device"
         article = "an" if polarity == "npn" else "a"
@@ -412,12 +427,11 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
         hfe_spec = {"min": hfe_spec["min"], "max": hfe_spec["max"]}
     param = _derived_parameter(part, "hfe", hfe_spec, "1", f"{name}.hfe",
                                f"{description}: DC current gain at {ds.hfe_current * 1e3:g} mA")
-    if screen is not None and screen[0] < screen[1]:
-        # registered through the reader (its key path and messages), then given the part's
-        # population cut at the screen (the study format has no such form of its own)
-        cut = ScreenedLogNormal(ds.hfe_min, ds.hfe_max, ds.hfe_typ, screen[0], screen[1])
+    if screen is not None and screen.cut_low < screen.cut_high:
+        # registered through the reader (its key path and messages), then given the
+        # screened lognormal (the study format has no such form of its own)
         part._ctx.parameters[param.name] = dataclasses.replace(  # noqa: SLF001
-            param, distribution=cut)
+            param, distribution=screen)
     if part.has("icbo"):
         # a range of the study's own spreads over decades like the derived one: lognormal
         # unless the table names another distribution

@@ -926,3 +926,20 @@ def test_a_part_without_theta_jc_peaks_no_lower_than_with_it():
     assert np.all(hot >= cool - 0.01)
     note = [n for n in without.notes() if "Q1's thermal time constants" in n]
     assert len(note) == 1 and "50 ms and 30 s" in note[0]
+
+
+def test_slow_pwm_notes_say_whose_time_constants_they_used():
+    # the notes called a study's own time constants "typical of the package class (from
+    # memory)" and named load_rating for a load without a rating (a README walk)
+    study = load_text("rb.toml", text=_RB_SLOW)
+    notes = " ".join(study.notes())
+    assert "typical of the package class" in notes and "The default, 1 s" in notes
+    own = _RB_SLOW.replace('device = "medium_power_npn"',
+                           'device = "medium_power_npn"\nthermal_time_constant = "40 s"\n'
+                           'die_time_constant = "0.2 s"').replace(
+        'power_rating = "0.125 W"', 'power_rating = "0.125 W"\nthermal_time_constant = "2 s"')
+    notes = " ".join(load_text("own.toml", text=own).notes())
+    assert "the time constants are the study's" in notes
+    assert "typical of the package class" not in notes
+    # the load's 1 s is still the default, so the sentence names only [load]
+    assert "thermal_time_constant in [load]" in notes and "[parts.RB])" not in notes

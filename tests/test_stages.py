@@ -1637,6 +1637,18 @@ def test_a_monolithic_pairs_figures_are_checked_and_its_own_resistors_used(write
         res = subprocess.run([sys.executable, "-m", "tolerance", "check", str(bad)],
                              capture_output=True, text=True)
         assert res.returncode == 2 and f"parts.Q2.{key}" in res.stderr, res.stderr
+    # the pair's figures on the driver's table, or on a discrete pair: said where they go
+    # (the unknown-key answer suggested vce_sat_max)
+    for text, key in ((MONOLITHIC.format(extra='[parts.Q1]\npair_vce_sat_max = "1.5 V"',
+                                         mount=""), "parts.Q1.pair_vce_sat_max"),
+                      (MONOLITHIC.format(extra="", mount='pair_vce_sat_max = "1.5 V"')
+                       .replace("monolithic = true\n", "").replace(
+                           'device = "monolithic_darlington"', 'device = "power_npn"')
+                       + '[parts.Q1]\ndevice = "small_signal_npn"\n',
+                       "parts.Q2.pair_vce_sat_max")):
+        res = subprocess.run([sys.executable, "-m", "tolerance", "check",
+                              str(write_study(text))], capture_output=True, text=True)
+        assert res.returncode == 2 and key in res.stderr and "did you mean" not in res.stderr
     low = load_text("m.toml", text=MONOLITHIC.format(extra="", mount='pair_vce_sat_max = "1 V"'))
     assert low.stage.pair_fit.added_emitter_resistance == 0.0
     row = {r["part"]: r for r in low.stage.assumptions()}["Q2"]["vce_sat_max"]
@@ -1654,3 +1666,32 @@ def test_a_monolithic_pairs_figures_are_checked_and_its_own_resistors_used(write
     # mapping at its 3 A, 3 V test point stays possible (5 V failed before)
     big = load_text("b.toml", text=MONOLITHIC.format(extra="", mount='pair_vce_sat_max = "5 V"'))
     assert big.stage.pair_fit.added_emitter_resistance > 1.0
+
+
+def test_every_gain_screen_ends_at_its_limits(write_study):
+    # a screen with its own sigmas, typ or a normal spread drew units beyond its limits
+    # (2.25 % below 60 and above 200 at sigmas = 2: scipy.stats.norm.sf(2) = 0.0228), under
+    # the datasheet's minimum; a screen passes none (a README walk of 2026-12-04)
+    from tolerance.study import load_study as load_text
+
+    base = ('stage = "single"\n[supply]\nvoltage = "24 V"\n[drive]\nhigh = "3.3 V"\n'
+            '[parts.RB]\nvalue = "68R"\n[parts.Q1]\ndevice = "medium_power_npn"\n{hfe}\n'
+            '[load]\nkind = "resistor"\nresistance = "72 ohm"\n')
+    u = np.random.default_rng(1).random(20_000)
+    for spec in ("{min = 60, max = 200}", "{min = 60, max = 200, sigmas = 2}",
+                 "{min = 60, max = 200, typ = 90}",
+                 '{min = 60, max = 200, distribution = "normal"}',
+                 '{min = 60, max = 200, distribution = "lognormal"}'):
+        study = load_text("s.toml", text=base.format(hfe=f"hfe = {spec}"))
+        x = study.parameter("Q1.hfe").distribution.ppf(u)
+        assert x.min() >= 60.0 and x.max() <= 200.0, spec
+    # the typical value of a screen with its own is its median (a two-piece lognormal
+    # about typ, cut where 0.135 % lie beyond each limit: the median moves by < 1e-3)
+    own = load_text("t.toml", text=base.format(hfe="hfe = {min = 60, max = 200, typ = 90}"))
+    assert abs(own.parameter("Q1.hfe").nominal / 90.0 - 1.0) < 1e-3
+    # a tolerance form is refused with what to write, naming the key
+    bad = write_study(base.format(hfe='hfe = {nominal = 100, tolerance = "20%"}'))
+    res = subprocess.run([sys.executable, "-m", "tolerance", "check", str(bad)],
+                         capture_output=True, text=True)
+    assert res.returncode == 2 and "parts.Q1.hfe.nominal" in res.stderr
+    assert "min = ..., max = ..." in res.stderr

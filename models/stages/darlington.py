@@ -460,6 +460,10 @@ def configure(reader):
                                            f"library (one of: {', '.join(choices)})")
         internal1, internal2, internal_nominal = _read_internal(q2_table, entry, "Q2")
         q1_table = parts.table("Q1")
+        for key in PAIR_SATURATION_KEYS + ("pair_hfe_min", "pair_hfe_current", "pair_hfe_vce"):
+            if q1_table.has(key):
+                raise q1_table.error(key, "a monolithic pair's own figures go on [parts.Q2], "
+                                          "the part's table")
         for key in ("device", "heatsink", "case_to_sink", "pulse_energy"):
             if q1_table.has(key):
                 # one package: the driver die is the library entry's, and the package's
@@ -515,6 +519,12 @@ def configure(reader):
             raise q2_table.error("device", f"'{device}' is a monolithic Darlington (driver "
                                            "and output in one part): add monolithic = true "
                                            "to [parts.Q2]")
+        for key in PAIR_SATURATION_KEYS:
+            if q2_table.has(key):
+                raise q2_table.error(key, "a pair's own figures belong to a monolithic "
+                                          "Darlington (monolithic = true with a device of "
+                                          "that kind); a discrete pair's come from its two "
+                                          "transistors")
         q1 = read_transistor(parts, "Q1", "Darlington driver", polarity="npn",
                              supply_minimum=env.supply_minimum)
         q2 = read_transistor(parts, "Q2", "Darlington output", polarity="npn",

@@ -88,6 +88,9 @@ class ThermalSetup:
         Whether the electro-thermal loop runs.
     """
 
+    #: parts (and ``"load"``) whose thermal time constants the study states
+    given_constants: frozenset = frozenset()
+
     def __init__(self, theta, tj_max, power_rating, breakdown, ic_max, shared, roles, margin,
                  self_heating, pulse_energy=None, case_theta=None, network=None,
                  frequency=None, duty=1.0, resistor_time_constants=None,
@@ -208,6 +211,14 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
         ic_max[name] = float(ds.ic_max)
     for name, carrier in (shared or {}).items():
         network[name] = network[carrier]  # one die, one package: the output's network
+    # whose time constants the study states (the notes call the others the defaults)
+    given = {name for name in stage.transistors()
+             if any(parts_reader.table((shared or {}).get(name, name)).has(k)
+                    for k in ("thermal_time_constant", "die_time_constant"))}
+    given |= {name for name, r in stage.resistors().items()
+              if r.present and parts_reader.table(name).has("thermal_time_constant")}
+    if reader.table("load").has("thermal_time_constant"):
+        given.add("load")
     # a resistor's rating, and a resistive load's, is thermal too: under a PWM drive each is
     # judged on the peak of its element's temperature, one Foster stage with its own time
     # constant ([parts.R..] thermal_time_constant, [load] thermal_time_constant)
@@ -222,6 +233,7 @@ def read_thermal(reader, parts_reader, stage, roles: dict[str, str],
                          margin, self_heating, pulse_energy, case_theta, network,
                          stage.drive.frequency, stage.drive.duty if stage.drive.pwm else 1.0,
                          resistor_tau, load_tau)
+    setup.given_constants = given
     stage.thermal = setup
     _add_metrics_and_ratings(stage, setup)
 
@@ -1063,34 +1075,45 @@ def _peak_notes(stage) -> list[str]:
             continue
         taus = " and ".join(q(tau, "s") for _, tau in setup.network[name])
         period = 1.0 / stage.drive.frequency
+        table = name
+        source = ("the study's" if name in getattr(setup, "given_constants", ()) else
+                  f"typical of the package class (from memory), so give the part's own "
+                  f"(thermal_time_constant, die_time_constant in [parts.{table}]) where they "
+                  f"are known")
         out.append(f"The PWM period ({q(period, 's')}, on for {q(setup.duty * period, 's')}) "
                    f"is long against {name}'s thermal time constants ({taus}): its junction "
                    f"peaks in each cycle at up to {1.0 + excess:.3g} times its period-average "
                    f"rise. The junction temperatures and power stresses are the cycle's peaks; "
-                   f"the time constants are typical of the package class (from memory), so "
-                   f"give the part's own (thermal_time_constant, die_time_constant in "
-                   f"[parts.{name}]) where they are known.")
-    rated = [(name, f"[parts.{name}]", w, setup.resistor_time_constants[name])
+                   f"the time constants are {source}.")
+    given = getattr(setup, "given_constants", set())
+    rated = [(name, f"[parts.{name}]", w, setup.resistor_time_constants[name], name)
              for name, w in setup.resistor_weights.items()]
     if setup.load_weights is not None:
-        rated.append(("the load", "[load]", setup.load_weights, setup.load_time_constant))
-    long = [(who, table, 1.0 + setup.rating_excess(w), tau) for who, table, w, tau in rated
+        rated.append(("the load", "[load]", setup.load_weights, setup.load_time_constant,
+                      "load"))
+    long = [(who, table, 1.0 + setup.rating_excess(w), tau, key)
+            for who, table, w, tau, key in rated
             if setup.rating_excess(w) > thermal.PEAK_NOTE_SHARE]
     if long:
         period = 1.0 / stage.drive.frequency
-        named = [f"{who} ({q(tau, 's')})" for who, _, _, tau in long]
+        named = [f"{who} ({q(tau, 's')})" for who, _, _, tau, _ in long]
         whose = (", ".join(named[:-1]) + " and " + named[-1]) if len(named) > 1 else named[0]
-        most = max(factor for _, _, factor, _ in long)
-        tables = ", ".join(table for _, table, _, _ in long)
-        out.append(f"The PWM period ({q(period, 's')}, on for {q(setup.duty * period, 's')}) "
-                   f"is long against the thermal time constant of {whose}: "
-                   f"{'their ratings are' if len(long) > 1 else 'its rating is'} judged "
-                   f"(resistor_stress_<R>, load_rating) on the dissipation that gives the "
-                   f"cycle's peak element temperature, up to {most:.3g} times the period's "
-                   f"average (power_<R> and load_power stay the average). The default, "
-                   f"{q(thermal.RESISTOR_TIME_CONSTANT, 's')}, is a short one for small "
-                   f"resistors (from memory), so give each part's own (thermal_time_constant "
-                   f"in {tables}) where it is known.")
+        most = max(factor for _, _, factor, _, _ in long)
+        metrics = ", ".join(
+            (["resistor_stress_<R>"] if any(k != "load" for *_, k in long) else [])
+            + (["load_rating"] if any(k == "load" for *_, k in long) else []))
+        text = (f"The PWM period ({q(period, 's')}, on for {q(setup.duty * period, 's')}) "
+                f"is long against the thermal time constant of {whose}: "
+                f"{'their ratings are' if len(long) > 1 else 'its rating is'} judged "
+                f"({metrics}) on the dissipation that gives the cycle's peak element "
+                f"temperature, up to {most:.3g} times the period's average (power_<R> and "
+                f"load_power stay the average).")
+        defaults = [table for _, table, _, _, key in long if key not in given]
+        if defaults:
+            text += (f" The default, {q(thermal.RESISTOR_TIME_CONSTANT, 's')}, is a short one "
+                     f"for small resistors (from memory), so give each part's own "
+                     f"(thermal_time_constant in {', '.join(defaults)}) where it is known.")
+        out.append(text)
     return out
 
 
