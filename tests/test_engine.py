@@ -534,6 +534,27 @@ def test_a_pair_correlated_twice_or_a_parameter_listed_twice_is_refused(linear):
         linear("random", '[[correlation]]\nparameters = ["x1", "x1"]\ncoefficient = 0.5\n')
 
 
+def test_a_correlation_matrix_without_positive_spread_names_its_entry(write_study):
+    # "the coefficients together do not form a valid correlation matrix" named neither the
+    # entry nor the bound (a README walk): a group of k at r needs r > -1 / (k - 1), the
+    # smallest eigenvalue of the equicorrelation matrix being 1 + (k - 1) r (any linear
+    # algebra text); 0.9, 0.9 and -0.5 on three pairs contradict each other together
+    text = ('stage = "single"\n[supply]\nvoltage = "12 V"\n[drive]\nhigh = "3.3 V"\n'
+            '[parts.RB]\nvalue = "150R"\ntolerance = "5%"\n[parts.RPD]\nvalue = "1k0"\n'
+            'tolerance = "5%"\n[parts.Q1]\ndevice = "medium_power_npn"\n[load]\n'
+            'kind = "resistor"\nresistance = {nominal = "68 ohm", tolerance = "5%"}\n')
+    group = ('[[correlation]]\nparameters = ["RB", "RPD", "load.resistance"]\n'
+             'coefficient = -0.6\n')
+    with pytest.raises(StudyError, match=r"correlation\[0\]\.coefficient: -0\.6 is too "
+                                         r"negative for a group of 3.*only above -0\.5"):
+        load_study(write_study(text + group))
+    pairs = ('[[correlation]]\nparameters = ["RB", "RPD"]\ncoefficient = 0.9\n'
+             '[[correlation]]\nparameters = ["RB", "load.resistance"]\ncoefficient = 0.9\n'
+             '[[correlation]]\nparameters = ["RPD", "load.resistance"]\ncoefficient = -0.5\n')
+    with pytest.raises(StudyError, match=r"correlation: the 3 entries together .*contradict"):
+        load_study(write_study(text + pairs))
+
+
 def test_engine_errors_name_key(linear):
     with pytest.raises(StudyError, match=r"run\.sampler.*did you mean 'sobol'"):
         linear("sobel")

@@ -962,6 +962,21 @@ def _read_correlations(top: Reader, ctx: _Context) -> tuple[Correlation, ...]:
                 if a != b:
                     c[a, b] = corr.coefficient
     if np.min(np.linalg.eigvalsh(c)) <= 0:
-        raise StudyError(ctx.file, "correlation", "the coefficients together do not form a "
-                                                  "valid (positive definite) correlation matrix")
+        # name what breaks it: a group of k at one coefficient r needs r > -1 / (k - 1) on
+        # its own (the equicorrelation matrix's smallest eigenvalue is 1 + (k - 1) r, any
+        # linear-algebra text); otherwise the entries contradict each other together
+        for j, corr in enumerate(out):
+            k = len(corr.parameters)
+            if k > 2 and corr.coefficient <= -1.0 / (k - 1):
+                raise StudyError(ctx.file, f"correlation[{j}].coefficient",
+                                 f"{corr.coefficient:g} is too negative for a group of {k}: "
+                                 f"{k} parameters can be tied the opposite way to one "
+                                 f"another only above {-1.0 / (k - 1):.3g} (no valid, "
+                                 f"positive definite, correlation matrix)")
+        raise StudyError(ctx.file, "correlation",
+                         f"the {len(out)} entries together do not form a valid (positive "
+                         "definite) correlation matrix: they contradict each other (two "
+                         "parameters each strongly tied to a third cannot be tied the "
+                         "opposite way, or untied, to each other); check the signs and sizes "
+                         "of the coefficients")
     return tuple(out)
