@@ -275,6 +275,7 @@ def pair_collector_voltage(q1, q2, g_be1, g_be2, ic, ib, temperature=REFERENCE_T
     g = np.full(n, _SOURCE_CONDUCTANCE)
     system = DarlingtonSystem(s1, s2, sink, supply, ib / g, g, np.full(n, float(g_be1)),
                               np.full(n, float(g_be2)), "on")
+    # the stage's own on-state starting points (that mode reads nothing of the instance)
     starts = DarlingtonStage.guesses(None, "on", s1, s2, supply, ic, np.full(n, float(g_be2)))
     res = solve_with_restarts(system, starts)
     return np.where(res.converged, system.state(np.nan_to_num(res.x))["v_out"], np.nan)

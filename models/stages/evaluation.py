@@ -1075,17 +1075,16 @@ def _peak_notes(stage) -> list[str]:
             continue
         taus = " and ".join(q(tau, "s") for _, tau in setup.network[name])
         period = 1.0 / stage.drive.frequency
-        table = name
-        source = ("the study's" if name in getattr(setup, "given_constants", ()) else
+        source = ("the study's" if name in setup.given_constants else
                   f"typical of the package class (from memory), so give the part's own "
-                  f"(thermal_time_constant, die_time_constant in [parts.{table}]) where they "
+                  f"(thermal_time_constant, die_time_constant in [parts.{name}]) where they "
                   f"are known")
         out.append(f"The PWM period ({q(period, 's')}, on for {q(setup.duty * period, 's')}) "
                    f"is long against {name}'s thermal time constants ({taus}): its junction "
                    f"peaks in each cycle at up to {1.0 + excess:.3g} times its period-average "
                    f"rise. The junction temperatures and power stresses are the cycle's peaks; "
                    f"the time constants are {source}.")
-    given = getattr(setup, "given_constants", set())
+    given = setup.given_constants
     rated = [(name, f"[parts.{name}]", w, setup.resistor_time_constants[name], name)
              for name, w in setup.resistor_weights.items()]
     if setup.load_weights is not None:
