@@ -423,6 +423,52 @@ class CoilState(LoadState):
         with np.errstate(divide="ignore", invalid="ignore"):
             return self.time_constant * np.log((i0 + hold) / (fraction * i0 + hold))
 
+    @property
+    def operate_current(self) -> np.ndarray:
+        """Must-operate current, ``V_op(T) / R(T)`` of the hot winding = ``V_op,20 / R_20``
+        [A]: pull-in is set by ampere-turns."""
+        return self.operate_voltage / self.hot_resistance
+
+    def pwm_currents(self, coil_voltage, frequency: float, duty: float,
+                     reverse_voltage=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The hot winding's current in the periodic steady state of a PWM drive: its lowest
+        value (where the switch turns on; zero where it dies out within the off-time), its
+        highest (where the switch turns off) and its mean over the on-time [A].
+
+        First-order circuit (any circuits textbook), tau = L / R of the hot winding: over the
+        on-time ``t_on = D / f`` the current tends to ``I_on = coil_voltage / R`` from
+        ``I_lo``, over the off-time ``t_off`` it decays through the clamp towards
+        ``-H = -V_c / R`` and stops at zero. With ``a = exp(-t_on/tau)``,
+        ``b = exp(-t_off/tau)``, a current that never stops has
+        ``I_hi = (I_on (1 - a) - a H (1 - b)) / (1 - a b)`` and ``I_lo = (I_hi + H) b - H``;
+        where that ``I_lo`` is not above zero the current stops in every off-time:
+        ``I_lo = 0``, ``I_hi = I_on (1 - a)``. The on-time's mean is
+        ``I_on - (I_on - I_lo) tau (1 - a) / t_on``. ``reverse_voltage`` replaces the
+        clamp's as in :meth:`decay_time`. ``coil_voltage`` is the on-state's (the cold
+        winding's current, so the switch's voltage is its largest: the safe side)."""
+        r = self.hot_resistance
+        tau = self.inductance / r
+        i_on = _arr(coil_voltage) / r
+        vc = self.clamp_voltage if reverse_voltage is None else _arr(reverse_voltage)
+        hold = _arr(vc) / r
+        t_on = duty / frequency
+        t_off = (1.0 - duty) / frequency
+        # 1 - a, 1 - b and 1 - a b by expm1: a period far below L/R keeps its digits
+        rise, fall = -np.expm1(-t_on / tau), -np.expm1(-t_off / tau)
+        whole = -np.expm1(-(t_on + t_off) / tau)
+        b = 1.0 - fall
+        with np.errstate(invalid="ignore", over="ignore"):
+            # an infinite hold (the switch's breakdown far above the supply): the current
+            # stops at once
+            gone = np.where(np.isfinite(hold), (1.0 - rise) * hold * fall, np.inf)
+            high = (i_on * rise - gone) / whole
+            low = np.where(np.isfinite(hold), high * b - hold * fall, -np.inf)
+        stops = ~(low > 0)
+        low = np.where(stops, 0.0, low)
+        high = np.where(stops, i_on * rise, high)
+        mean = i_on - (i_on - low) * tau * rise / t_on
+        return low, high, mean
+
     def turn_off_peak_voltage(self, supply_voltage) -> np.ndarray:
         """Switch voltage while the clamp conducts, ``V_supply + V_clamp`` [V] (inf: no clamp)."""
         return _arr(supply_voltage) + self.clamp_voltage
@@ -636,8 +682,9 @@ class CoilLoad(LoadSpec):
     METRICS = {
         "coil_voltage": MetricInfo("V", "voltage across the coil in the on-state"),
         "coil_current": MetricInfo("A", "coil current in the static on-state, cold winding "
-                                        "(under a PWM drive slower than L/R the coil "
-                                        "averages about duty times it)"),
+                                        "(on a PWM drive whose period is short against L/R "
+                                        "the winding carries about the duty times it on "
+                                        "average: pwm_operate_margin judges that)"),
         "operate_margin": MetricInfo("1", "coil voltage over the must-operate voltage of the "
                                           "hot coil"),
     }

@@ -77,6 +77,76 @@ def test_coil_temperature_rise_adds_to_ambient():
     assert_allclose(state.time_constant, 0.2 / state.resistance, rtol=1e-14)
 
 
+def _pwm_coil_by_integration(r, ind, v_on, v_clamp, frequency, duty, periods=60):
+    """The winding's current over a PWM drive, integrated period after period from zero with
+    scipy.integrate.solve_ivp (L di/dt = v_on - R i on, -(V_c + R i) off until it stops):
+    the last period's lowest, highest and on-time mean current."""
+    from scipy.integrate import solve_ivp
+
+    t_on, t_off = duty / frequency, (1 - duty) / frequency
+    i = 0.0
+    for _ in range(periods):
+        # the second state integrates the current: its mean over the on-time
+        on = solve_ivp(lambda t, y: [(v_on - r * y[0]) / ind, y[0]], (0, t_on), [i, 0.0],
+                       rtol=1e-11, atol=1e-14)
+        low, high, mean = i, on.y[0, -1], on.y[1, -1] / t_on
+
+        def stopped(t, y):
+            return y[0]
+
+        stopped.terminal = True
+        off = solve_ivp(lambda t, y: [-(v_clamp + r * y[0]) / ind], (0, t_off), [high],
+                        rtol=1e-11, atol=1e-14, events=stopped)
+        i = 0.0 if off.status == 1 else max(off.y[0, -1], 0.0)
+    return low, high, mean
+
+
+@pytest.mark.parametrize("frequency, duty, clamp", [
+    ("200 Hz", 0.8, "diode"),   # the current never stops (L/R of 1.7 ms, 1 ms off)
+    ("20 Hz", 0.5, "diode"),    # it stops in every off-time
+    ("1 kHz", 0.3, "zener"),    # a fast-release clamp empties it within the off-time
+    ("1 kHz", 0.9, "zener"),    # ... but not within a tenth of the period
+])
+def test_a_pwm_coils_periodic_steady_state_matches_integration(frequency, duty, clamp):
+    from tolerance.units import parse_quantity
+
+    data = dict(COIL, clamp=clamp)
+    if clamp == "zener":
+        data["clamp_voltage"] = "20 V"
+    spec, ctx, _ = make(data)
+    state = spec.at(nominal_samples(ctx, 1), np.array([333.15]), np.array([12.0]))
+    f = parse_quantity(frequency, "Hz")
+    v_on = np.array([11.8])
+    low, high, mean = state.pwm_currents(v_on, f, duty)
+    # reference: scipy.integrate.solve_ivp of the first-order circuit, 60 periods from rest
+    ref = _pwm_coil_by_integration(float(state.hot_resistance[0]), 0.2, 11.8,
+                                   float(state.clamp_voltage[0]), f, duty)
+    assert_allclose([low[0], high[0], mean[0]], ref, rtol=1e-6, atol=1e-9)
+    # pull-in is set by ampere-turns: V_op,20 / R_20 whatever the winding's temperature
+    assert_allclose(state.operate_current, 9.0 / 100.0, rtol=1e-14)
+
+
+def test_a_pwm_coils_current_tends_to_the_static_and_to_the_average_one():
+    # first-order circuit (any circuits textbook): an on-time long against L/R reaches the
+    # static current; a period short against it ripples about the mean of the coil's
+    # voltage, D v_on - (1 - D) V_c, over R; without a clamp (the switch's breakdown far
+    # above the supply) the current stops at once at every turn-off
+    spec, ctx, _ = make(COIL)
+    state = spec.at(nominal_samples(ctx, 1), np.array([293.15]), np.array([12.0]))
+    r, vc = 100.0, float(state.clamp_voltage[0])
+    low, high, mean = state.pwm_currents(np.array([11.8]), 0.1, 0.5)
+    assert_allclose([low[0], high[0], mean[0]], [0.0, 0.118, 0.118 * (1 - 2e-3 / 5)],
+                    rtol=1e-9)
+    low, high, mean = state.pwm_currents(np.array([11.8]), 1e8, 0.6)
+    average = (0.6 * 11.8 - 0.4 * vc) / r
+    # a ripple of (v_on - R I) t_on / L, 2e-6 of the current at 100 MHz
+    assert_allclose([low[0], high[0], mean[0]], [average] * 3, rtol=5e-6)
+    low, high, mean = state.pwm_currents(np.array([11.8]), 200.0, 0.8, np.array([np.inf]))
+    a = np.exp(-4e-3 / 2e-3)
+    assert_allclose([low[0], high[0]], [0.0, 0.118 * (1 - a)], rtol=1e-12)
+    assert np.isfinite(mean).all()
+
+
 def test_hot_coil_operate_voltage_scaling():
     spec, ctx, _ = make(COIL)
     state = spec.at(nominal_samples(ctx, 2), np.array([293.15, 343.15]), np.array([12.0, 12.0]))

@@ -477,6 +477,28 @@ class SwitchingSetup:
         self.options = options
 
 
+def _pwm_coil(stage) -> None:
+    """A coil on a PWM drive: its periodic steady state's metrics, and pull-in judged on it.
+
+    The static on-state's ``operate_margin`` stays a metric; the default criterion
+    ``coil_operates`` moves to ``pwm_operate_margin``, which never exceeds it (the mean over
+    the on-time of a current that tends to the static one), so a unit that passes it also
+    pulls in on a static drive."""
+    stage.metrics["pwm_operate_margin"] = MetricInfo(
+        "1", "mean current of the hot winding over the PWM on-time in the drive's periodic "
+             "steady state, over its must-operate current: the static on-state's margin "
+             "where each on-time is long against L/R, the mean current's where the period "
+             "is short against it, and below the current each on-time reaches in between")
+    stage.metrics["coil_current_low"] = MetricInfo(
+        "A", "the hot winding's current when the switch turns on, in the PWM drive's "
+             "periodic steady state: zero where it dies out in the clamp within the "
+             "off-time, else the switch turns on into it")
+    stage.criteria = [
+        Criterion(c.name, "pwm_operate_margin", c.minimum, c.maximum, c.source,
+                  "coil pulls in on the PWM drive with the hot coil")
+        if c.name == "coil_operates" else c for c in stage.criteria]
+
+
 def read_switching(reader, parts_reader, stage, topology: str, roles: dict[str, str],
                    classes: dict[str, str] | None = None) -> None:
     """Read ``[switching]`` and each transistor's charge-storage figures.
@@ -488,6 +510,8 @@ def read_switching(reader, parts_reader, stage, topology: str, roles: dict[str, 
     """
     from tolerance.models.charges import CHARGE_CLASS_DEFAULTS, charge_parameters_from_datasheet
 
+    if stage.load.kind == "coil" and stage.drive.pwm:
+        _pwm_coil(stage)
     table = reader.table("switching")
     default = stage.drive.pwm or stage.load.kind == "coil"
     enabled = table.boolean("enabled", default=default)
@@ -824,12 +848,16 @@ def evaluate_stage(stage, samples):
             switching_power = {}
             for d in devices:
                 role = sw.roles[d]
-                e = (np.nan_to_num(sw_metrics[f"energy_on_{role}"])
-                     + np.nan_to_num(sw_metrics[f"energy_off_{role}"]))
+                e_on = np.nan_to_num(sw_metrics[f"energy_on_{role}"])
+                e_off = np.nan_to_num(sw_metrics[f"energy_off_{role}"])
                 # a transient cut short by the next edge does not save what its unfinished
                 # part would have (a coil's slow current rise dissipates less than the on
-                # state): there only the heat it adds counts (criterion transitions_fit)
-                switching_power[d] = np.where(fits, f * e, np.maximum(f * e, 0.0))
+                # state): there only the heat each edge adds counts (criterion
+                # transitions_fit); the sum of the two let a coil's negative turn-on energy
+                # cancel its turn-off loss
+                switching_power[d] = np.where(
+                    fits, f * (e_on + e_off),
+                    f * (np.maximum(e_on, 0.0) + np.maximum(e_off, 0.0)))
             if setup.self_heating:
                 settled, temps, unsolved = settle()
 
@@ -959,10 +987,27 @@ def evaluate_stage(stage, samples):
             out["storage_time"], load_state, res["load_current"],
             setup.breakdown[output_device(stage)] - np.asarray(samples[stage.env.supply],
                                                                dtype=float))
+    if "pwm_operate_margin" in stage.metrics:
+        # the winding's current under the drive as given: it no longer starts from zero at
+        # each edge where its L/R is long against the off-time (closed form,
+        # CoilState.pwm_currents); the decay runs against the clamp, or against the
+        # switch's breakdown less the supply where that comes first (as release_time)
+        supply = np.asarray(samples[stage.env.supply], dtype=float)
+        reverse = np.fmin(load_state.clamp_voltage,
+                          setup.breakdown[output_device(stage)] - supply)
+        low, _, mean = load_state.pwm_currents(res["coil_voltage"], stage.drive.frequency,
+                                               duty, np.maximum(reverse, 0.0))
+        out["coil_current_low"] = low
+        out["pwm_operate_margin"] = mean / load_state.operate_current
     if stage.load.kind == "lamp":
         demand = load_state.inrush_demand(np.asarray(samples[stage.env.supply], dtype=float))
         capability = np.abs(res["capability"])
-        out["peak_current"] = np.minimum(demand, capability)
+        # the cold inrush as far as the drive allows, at least the on-state's current: a
+        # unit the drive cannot saturate stays in its linear region, whose junction warms
+        # and whose gain rises with it, up to 12 % above the current at switch-on (a new
+        # user's walk found it below load_current on the I_C max rating)
+        out["peak_current"] = np.maximum(np.minimum(demand, capability),
+                                         np.abs(res["load_current"]))
         out["inrush_energy"] = lamp_inrush_energy(
             load_state, np.asarray(samples[stage.env.supply], dtype=float), capability,
             res["load_voltage"], np.abs(res["load_current"]))
@@ -1012,7 +1057,29 @@ def device_assumptions(stage) -> list[dict]:
             "tj_max": q(ds.tj_max, "temperature"),
             "theta_ja": q(float(theta), "K/W"),
         })
+        charge = getattr(getattr(stage, "switching", None), "charges", {}).get(name)
+        if charge is not None:
+            rows[-1].update(charge_assumptions(charge, ds.hfe_median, ds.reverse_beta))
     return rows
+
+
+def charge_assumptions(charge, forward_beta, reverse_beta) -> dict[str, str]:
+    """A transistor's charge-storage figures as text in units: the transit times, the
+    junctions' zero-bias capacitances and the storage time constant at ``forward_beta``
+    (charges.storage_time_constant), which set the storage and fall times."""
+    from tolerance.models.charges import storage_time_constant
+    from tolerance.units import format_quantity as q
+
+    tau_s = storage_time_constant(float(forward_beta), float(reverse_beta),
+                                  float(charge.forward_transit_time),
+                                  float(charge.reverse_transit_time))
+    return {
+        "transit_times": f"{q(float(charge.forward_transit_time), 's')} / "
+                         f"{q(float(charge.reverse_transit_time), 's')}",
+        "zero_bias_capacitances": f"{q(float(charge.be_zero_bias_capacitance), 'F')} / "
+                                  f"{q(float(charge.bc_zero_bias_capacitance), 'F')}",
+        "storage_time_constant": q(float(tau_s), "s"),
+    }
 
 
 #: a supply above this can take the circuit out of the safety-extra-low-voltage range [V]
@@ -1037,15 +1104,8 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
         out.append("The output's energy while it limits the cold lamp's inrush "
                    "(inrush_energy) is computed but judged by nothing: give the output part's "
                    "single-pulse rating (pulse_energy) or a [limits] inrush_energy.")
-    ind, res = nominal.get("load.inductance"), nominal.get("load.resistance")
-    slow = (stage.drive.pwm and ind is not None and bool(res)
-            and ind / res * stage.drive.frequency > 1.0)
-    if stage.load.kind == "coil" and "operate_margin" in judged and slow:
-        out.append(f"The coil's pull-in (operate_margin) is judged at the on-state's DC voltage; "
-                   f"on the {stage.drive.duty:g} duty PWM drive a coil whose L/R exceeds the "
-                   f"period sees about the duty times that on average, so pull it in with a "
-                   f"static drive first, or check the average against its must-operate "
-                   f"voltage.")
+    if stage.load.kind == "coil" and stage.drive.pwm:
+        out += _pwm_coil_notes(stage, judged, {c.name for c in criteria}, nominal)
     top = getattr(stage.env, "supply_maximum", 0.0)
     if top > SELV_LIMIT:
         out.append(f"The supply reaches {top:.4g} V, above the {SELV_LIMIT:g} V DC of the "
@@ -1054,6 +1114,39 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
                    f"codes and licensed practice, which this analysis does not cover.")
     if corner is not None:
         out += corner_notes(stage, corner)
+    return out
+
+
+def _pwm_coil_notes(stage, judged: set, names: set, nominal: dict) -> list[str]:
+    """A coil on a PWM drive: how its pull-in is judged, and, where the nominal coil's
+    current does not settle within a half of the period (the rise to 90 % takes L/R ln 10),
+    what the failing transitions_fit means."""
+    from tolerance.units import format_quantity as q
+
+    out = []
+    if "pwm_operate_margin" in judged:
+        out.append(f"The coil's pull-in is judged on the {stage.drive.duty:g} duty PWM drive "
+                   f"as given (pwm_operate_margin: the hot winding's mean current over each "
+                   f"on-time in the drive's periodic steady state, over its must-operate "
+                   f"current). A stage that pulls the coil in with a static drive and then "
+                   f"holds it with the PWM judges the pull-in with [limits] operate_margin = "
+                   f"{{min = 1}} and the hold with [limits] pwm_operate_margin = {{min = ...}}, "
+                   f"the coil's hold current over its must-operate current.")
+    ind, res = nominal.get("load.inductance"), nominal.get("load.resistance")
+    if "transitions_fit" in names and ind is not None and res:
+        tau = ind / res
+        f, duty = stage.drive.frequency, stage.drive.duty
+        half = min(duty, 1.0 - duty) / f
+        if tau * np.log(10.0) > half:
+            out.append(f"The nominal coil's L/R ({q(tau, 's')} at 20 degC) is "
+                       f"long against the PWM's on-time ({q(duty / f, 's')}) "
+                       f"or off-time ({q((1.0 - duty) / f, 's')}): its current "
+                       f"does not settle at each edge, and transitions_fit fails such units. "
+                       f"The switching energies are those of settled edges, of which only "
+                       f"the heat each edge adds is counted there, and the turn-on into the "
+                       f"current still circulating in the clamp (coil_current_low) is not "
+                       f"modelled: measure that loss on the bench, or lower the PWM "
+                       f"frequency until each half outlasts about 2.3 L/R.")
     return out
 
 
@@ -1073,7 +1166,7 @@ def _peak_notes(stage) -> list[str]:
         excess = setup.peak_excess(name)
         if not excess > thermal.PEAK_NOTE_SHARE:
             continue
-        taus = " and ".join(q(tau, "s") for _, tau in setup.network[name])
+        taus = " and ".join(q(tau, 's') for _, tau in setup.network[name])
         period = 1.0 / stage.drive.frequency
         source = ("the study's" if name in setup.given_constants else
                   f"typical of the package class (from memory), so give the part's own "
