@@ -453,6 +453,19 @@ def test_choose_on_the_beacon_weighs_drive_against_the_lamp_inrush():
 
     assert all(c["verdict"] == "fail" for c in result["candidates"])
     assert choose_separation(result).startswith("No candidate passes every criterion")
+    # nothing limits the logic output's current, which a smaller base resistor raises (a
+    # new user's walk: 34 mA from a 5 V pin went unremarked): the note gives the best
+    # candidate's largest drive current; a study window on it silences the note
+    [note] = result["notes"]
+    assert note.startswith("No criterion limits drive_current: the best candidate draws up "
+                           "to ")
+    from tolerance.study import load_study as load_text
+
+    text = (ROOT / "studies" / "beacon_lamp_darlington.toml").read_text(encoding="utf-8")
+    limited = load_text("beacon.toml", text=text.replace(
+        "[limits]\n", '[limits]\ndrive_current = {max = "25 mA"}\n', 1))
+    assert any(c.metric == "drive_current" for c in limited.criteria)
+    assert choose(limited, ["RB=E6:150..220"], samples=60)["notes"] == []
 
 
 def test_worst_case_of_linear_stage_is_exact(study):

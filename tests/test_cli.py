@@ -334,6 +334,13 @@ def test_parts_lists_the_library(capsys):
     for name in ("small_signal_npn", "small_signal_pnp", "medium_power_npn", "power_npn",
                  "monolithic_darlington"):
         assert name in out
+    # each class's charge storage, which sets the switching times, is listed with it; the
+    # monolithic pair's tau_s at its output die's gain
+    blocks = out.split("\n\n")
+    medium = next(b for b in blocks if b.startswith("medium_power_npn"))
+    assert "transit_times          1.5 ns / 300 ns" in medium
+    assert "storage_time_constant  871 ns" in medium
+    assert sum("charge storage" in b for b in blocks) == 5
 
 
 def test_default_output_folder_is_never_overwritten(tmp_path, monkeypatch, capsys):

@@ -413,7 +413,8 @@ def test_failure_driver_statistics_equal_scipy_ks_2samp(n, threads):
             assert got["p_value"] == pytest.approx(float(ref.pvalue), rel=1e-12, abs=1e-300)
         # one label alone gives what it gives among several
         assert failure_drivers(x, f) == out[key]
-    assert out["none"]["text"] == "no failures" and out["all"]["text"] == "all samples failed"
+    assert out["none"]["text"] == "no failures"
+    assert out["all"]["text"].startswith("all samples failed: with no passing unit")
 
 
 @pytest.mark.parametrize("failures, n", [(1, 20_000), (2, 20_000), (5, 20_000), (1, 300_000),

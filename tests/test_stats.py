@@ -547,6 +547,11 @@ def test_tail_estimate_empirical_when_failures_common():
     out = tail_estimate(margin)
     assert out["tail_ppm"] == pytest.approx(1e6 * np.mean(margin < 0), rel=1e-12)
     assert out["method"].startswith("empirical fraction")
+    # a counted fraction is no extrapolation: the assumption names only the normal model
+    # (a new user's walk found the Pareto text beside it)
+    assert "Pareto" not in out["assumption"] and "normal distribution" in out["assumption"]
+    fitted = tail_estimate(rng.normal(4.0, 1.0, 4000))
+    assert "generalized Pareto" in fitted["assumption"]
 
 
 def test_tail_estimate_degenerate_inputs():

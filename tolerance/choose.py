@@ -295,6 +295,7 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
                          _direction(study, tradeoff[0], given),
                          _direction(study, tradeoff[1], given))
     first = candidates[0]
+    notes = _unjudged_drive(study, summaries[best])
     n_samples = run_samples = samples if samples is not None else study.settings.samples
     used_sampler = sampler or study.settings.sampler
     return {
@@ -310,4 +311,20 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
         "frontier": front,
         "evaluations": len(candidates) * run_samples,
         "criteria": list(first["criteria"]),
+        "notes": notes,
     }
+
+
+def _unjudged_drive(study: Study, summary: dict) -> list[str]:
+    """A sentence where nothing limits the current the drive delivers: a choice that raises
+    the yield by a smaller base resistor can draw more than a logic output may give, and
+    the best candidate's largest drive current is then judged by nobody."""
+    if "drive_current" not in study.stage.metrics or any(
+            c.metric == "drive_current" for c in study.criteria):
+        return []
+    top = (summary.get("metrics", {}).get("drive_current") or {}).get("max")
+    if not isinstance(top, (int, float)) or not math.isfinite(top):
+        return []
+    return [f"No criterion limits drive_current: the best candidate draws up to "
+            f"{format_quantity(top, 'A')} from the drive. Give the logic output's rating "
+            f"as [limits] drive_current = {{max = ...}} to judge it."]

@@ -486,7 +486,8 @@ def cmd_choose(args) -> int:
         from tolerance.report import choose_separation
 
         separation = choose_separation(result)
-        w((separation + "\n" if separation else "") + f"results in {out}\n")
+        w((separation + "\n" if separation else "")
+          + "".join(f"note: {n}\n" for n in result["notes"]) + f"results in {out}\n")
     return 0
 
 
@@ -553,6 +554,9 @@ def cmd_check(args) -> int:
 
 def cmd_parts(args) -> int:
     from tolerance.models import parts
+    from tolerance.models.charges import CHARGE_CLASS_DEFAULTS
+    from tolerance.models.datasheet import CLASS_DEFAULTS
+    from tolerance.models.stages.evaluation import charge_assumptions
 
     w = sys.stdout.write
     w("Part library (typical class values, from memory: enter your part's own datasheet "
@@ -568,6 +572,19 @@ def cmd_parts(args) -> int:
                     w(f"        {k2:<22} {v2}\n")
             else:
                 w(f"    {key:<26} {value}\n")
+        charge = CHARGE_CLASS_DEFAULTS.get(name) if entry.kind == "transistor" else None
+        if entry.kind == "darlington":
+            charge = CHARGE_CLASS_DEFAULTS.get("monolithic_darlington")
+        if charge is not None:
+            # a monolithic pair's dice share its class's figures; tau_s at the output's gain
+            fig = entry.dies.get("output", entry.figures)
+            beta = fig.get("hfe_typ") or (fig["hfe_min"] * fig["hfe_max"]) ** 0.5
+            w("    charge storage (switching; transition_frequency, storage_time and "
+              "output_capacitance in [parts.Qn] replace it):\n")
+            for key, value in charge_assumptions(
+                    charge, beta, fig.get("reverse_beta", CLASS_DEFAULTS["reverse_beta"])
+            ).items():
+                w(f"        {key:<22} {value}\n")
     from tolerance.models.loads import load_library
 
     w("\nLoads (use as [load] part = \"NAME\"; any key can be overridden)\n")

@@ -362,6 +362,44 @@ def correlation_table(pairs) -> Table | None:
                  "Correlations assumed")
 
 
+#: what the table of units beyond their parameters' limits means
+BEYOND_NOTE = (
+    "Units beyond the stated limits: an uncut normal or lognormal spread draws about 0.27 % "
+    "of its units beyond the limits it was given at 3 sigma (a gain below the datasheet's "
+    "minimum, a resistor outside its tolerance), and the Monte Carlo counts them like any "
+    "other. Where the part is screened at its limits, give distribution = \"truncnormal\". "
+    "Compare the share failing among them with the run's own.")
+
+
+def beyond_table(summary: dict) -> Table | None:
+    """The parameters with units beyond their limits (summary ``beyond_limits``) as a
+    table, with the share of those units failing beside the run's; None without any."""
+    entries = summary.get("beyond_limits")
+    if not isinstance(entries, list) or not entries:
+        return None
+    units = {p.get("name"): p.get("unit") for p in summary.get("parameters") or []
+             if isinstance(p, dict)}
+    y = summary.get("yield") or {}
+    overall = (1.0 - y["estimate"] if isinstance(y.get("estimate"), (int, float))
+               else None)
+    rows = []
+    for e in entries:
+        if not isinstance(e, dict):
+            continue
+        unit = units.get(e.get("name"))
+        count = (e.get("below") or 0) + (e.get("above") or 0)
+        rows.append([str(e.get("name")),
+                     f"{format_value(e.get('low'), unit)} .. {format_value(e.get('high'), unit)}",
+                     format_number(e.get("below")), format_number(e.get("above")),
+                     format_rate(e.get("failing", 0) / count) if count else "-",
+                     format_rate(overall) if overall is not None else "-"])
+    if not rows:
+        return None
+    return Table(["parameter", "stated limits", "units below", "units above",
+                  "failing among them", "failing among all"], rows, "beyond-table",
+                 "Units beyond their parameters' stated limits")
+
+
 def _cell(value) -> str:
     """One table cell from any JSON value."""
     if isinstance(value, (dict, list)):
@@ -827,7 +865,8 @@ def _choose_blocks(data: dict) -> list[Block]:
                         f"{text} (yield {format_rate(best.get('yield'))}); the frontier holds "
                         "the candidates no other beats on both trade-off metrics.")]
             + ([Block("p", separation)] if separation else [])
-            + [Block("table", table=choose_table(data))])
+            + [Block("table", table=choose_table(data))]
+            + [Block("note", str(n)) for n in data.get("notes") or []])
 
 
 #: the section builder of each analysis file; a file they cannot read (written by hand or by
@@ -1325,6 +1364,33 @@ DEVICE_COLUMNS = (("part", "part"), ("class", "class"), ("type", "polarity"),
                   ("P_tot", "power_rating"), ("T_j max", "tj_max"), ("theta_JA", "theta_ja"))
 
 
+#: the charge-storage table's columns, as DEVICE_COLUMNS
+CHARGE_COLUMNS = (("part", "part"), ("tau_F / tau_R", "transit_times"),
+                  ("C_je0 / C_jc0", "zero_bias_capacitances"),
+                  ("tau_s at typical h_FE", "storage_time_constant"))
+
+#: what the charge-storage table means
+CHARGE_NOTE = (
+    "The charge-storage figures behind the switching times: forward and reverse transit "
+    "times, the junctions' zero-bias depletion capacitances, and the storage time constant "
+    "tau_s = alpha_F (tau_F + alpha_R tau_R) / (1 - alpha_F alpha_R) at the typical gain, "
+    "with which t_s = tau_s ln((I_B1 - I_B2) / (I_C / beta_F - I_B2)) in the charge-control "
+    "model. They are the class's typical values from memory unless the study gives "
+    "transition_frequency, storage_time or output_capacitance in [parts.Qn].")
+
+
+def charge_table(devices) -> Table | None:
+    """The charge-storage figures a run assumed (summary ``devices``); None without them."""
+    if not isinstance(devices, list):
+        return None
+    rows = [[str(d.get(key, "-")) for _, key in CHARGE_COLUMNS]
+            for d in devices if isinstance(d, dict) and "storage_time_constant" in d]
+    if not rows:
+        return None
+    return Table([h for h, _ in CHARGE_COLUMNS], rows, "charge-table",
+                 "Charge storage of each transistor")
+
+
 def device_table(devices) -> Table | None:
     """The devices a run assumed (summary ``devices``) as a table; None without them."""
     if not isinstance(devices, list) or not devices:
@@ -1404,11 +1470,19 @@ def _summary_blocks(summary: dict) -> list[Block]:
         doc.append(Block("h3", "Correlations assumed"))
         doc.append(Block("p", CORRELATION_NOTE))
         doc.append(Block("table", table=correlations))
+    beyond = beyond_table(summary)
+    if beyond is not None:
+        doc.append(Block("p", BEYOND_NOTE))
+        doc.append(Block("table", table=beyond))
     devices = device_table(summary.get("devices"))
     if devices is not None:
         doc.append(Block("h2", "Devices assumed"))
         doc.append(Block("p", DEVICES_NOTE))
         doc.append(Block("table", table=devices))
+        charges = charge_table(summary.get("devices"))
+        if charges is not None:
+            doc.append(Block("p", CHARGE_NOTE))
+            doc.append(Block("table", table=charges))
 
     if summary.get("capability"):
         doc.append(Block("h2", "Capability"))
@@ -1445,6 +1519,8 @@ def _summary_blocks(summary: dict) -> list[Block]:
                 doc.append(Block("table", table=_records_table(
                     info["ranking"], f"Failure drivers of {name}")))
         if rows:
+            # a heading of its own: after the last criterion's drivers it read as theirs
+            doc.append(Block("h3", "Rank measures of every metric"))
             doc.extend(generic_blocks(rows))
     return doc
 

@@ -760,7 +760,7 @@ def failure_drivers(
     least 90 % of the failures the first condition captured.
 
     With no failures the ranking is empty and the text reads ``"no failures"``; when every
-    sample failed the text reads ``"all samples failed"``.
+    sample failed the text reads ``"all samples failed: ..."``.
     """
     return failure_drivers_of(inputs, {"": failed}, units, formatter, top)[""]
 
@@ -834,7 +834,8 @@ def _drivers(names, x, fail, ks, dropped, units, fmt, top) -> dict:
             **empty,
             "share_of_failures": 1.0,
             "rate_inside": 1.0,
-            "text": "all samples failed",
+            "text": "all samples failed: with no passing unit to compare them with, no "
+                    "input can be named as a driver",
             **base,
         }
 

@@ -436,6 +436,12 @@ _ASSUMPTION_GPD = (
     "fitted apart; neither is checked against the circuit physics."
 )
 
+#: where no tail is fitted: only normal_ppm is a model's
+_ASSUMPTION_NORMAL = (
+    "normal_ppm assumes the margin follows a normal distribution, not checked against the "
+    "circuit physics; tail_ppm is no extrapolation (see method)."
+)
+
 
 #: Grid points of the profile-likelihood search in :func:`gpd_fit` [count].
 _GPD_GRID = 64
@@ -702,6 +708,7 @@ def _tail_one_side(margin: np.ndarray, confidence: float) -> dict:
         out["method"] = (
             f"not fitted: {n} samples, a tail fit needs at least {_TAIL_MIN_SAMPLES}"
         )
+        out["assumption"] = _ASSUMPTION_NORMAL
         return out
     threshold = float(np.quantile(data, _TAIL_FRACTION))
     if threshold <= 0.0:
@@ -710,16 +717,19 @@ def _tail_one_side(margin: np.ndarray, confidence: float) -> dict:
             "empirical fraction: 0 lies at or above the 5 % quantile, so failures are "
             "observed directly and no extrapolation is needed"
         )
+        out["assumption"] = _ASSUMPTION_NORMAL
         return out
     excess = threshold - data[data < threshold]
     if excess.size < 2 or float(np.ptp(excess)) == 0.0:
         out["method"] = (
             "not fitted: too few distinct samples below the 5 % quantile for a tail fit"
         )
+        out["assumption"] = _ASSUMPTION_NORMAL
         return out
     shape, scale = gpd_fit(excess)
     if not (math.isfinite(shape) and math.isfinite(scale) and scale > 0):
         out["method"] = "not fitted: the generalized Pareto fit did not converge"
+        out["assumption"] = _ASSUMPTION_NORMAL
         return out
     fitted = f"shape {shape:.3g}, scale {scale:.3g}"
     if shape < 0.0:
