@@ -1110,7 +1110,7 @@ def test_lamp_inrush_energy_follows_the_filaments_energy_balance():
 
     from scipy import integrate
 
-    from tolerance.models.stages.evaluation import lamp_inrush_energy
+    from tolerance.models.stages.evaluation import lamp_inrush, lamp_inrush_energy
 
     r_cold, tau, p, vs = 0.5665, 0.05, 0.55, 13.0
     lamp = SimpleNamespace(cold_resistance=np.full(5, r_cold),
@@ -1119,6 +1119,7 @@ def test_lamp_inrush_energy_follows_the_filaments_energy_balance():
     i_lamp = np.array([1.782, 1.782, 1.70, 1.782, 1.782])
     cap = np.array([9.27, 2.35, 2.0, 1.79, 40.0])  # limited (strongly to barely); carries all
     e = lamp_inrush_energy(lamp, np.full(5, vs), cap, v_lamp, i_lamp)
+    _, width = lamp_inrush(lamp, np.full(5, vs), cap, v_lamp, i_lamp)
     g, m = 1.2, (1 + p) / (1 - p)
     for k in range(4):
         r_f, p_f = v_lamp[k] / i_lamp[k], v_lamp[k] * i_lamp[k]
@@ -1155,11 +1156,14 @@ def test_lamp_inrush_energy_follows_the_filaments_energy_balance():
         sol = integrate.solve_ivp(held, [0, 100], [t_cold, 0.0], events=done, rtol=1e-10,
                                   atol=1e-12)
         assert e[k] == pytest.approx(sol.y_events[0][0][1], rel=1e-5)
+        # and the pulse's width, the time the filament takes to reach I R = V_L
+        assert width[k] == pytest.approx(sol.t_events[0][0], rel=1e-5)
     assert e[1] > 5 * e[0]  # the weakly held filament takes far longer
+    assert width[4] == 0.0
     assert e[4] == 0.0  # 40 A carries the 23 A cold demand: the output stays saturated
     # a stage that cannot carry even its operating current never leaves the linear region
-    below = lamp_inrush_energy(lamp, np.full(5, vs), np.full(5, 1.7), v_lamp, i_lamp)
-    assert np.isinf(below[:2]).all()
+    below = lamp_inrush(lamp, np.full(5, vs), np.full(5, 1.7), v_lamp, i_lamp)
+    assert np.isinf(below[0][:2]).all() and np.isinf(below[1][:2]).all()
 
 
 def test_a_saturated_beacon_unit_has_a_finite_inrush_energy():
@@ -1203,6 +1207,8 @@ def test_a_lamp_units_peak_current_is_never_below_its_on_state_current():
                                rtol=1e-12)
     assert np.isinf(res["inrush_energy"][weak]).all()
     assert np.isfinite(res["inrush_energy"][~weak]).all()
+    assert np.isinf(res["inrush_time"][weak]).all()
+    assert np.isfinite(res["inrush_time"][~weak]).all() and (res["inrush_time"] >= 0).all()
 
 
 _HARD_DRIVEN_PAIR = """

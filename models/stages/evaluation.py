@@ -361,6 +361,9 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
     if stage.load.kind == "lamp":
         m["inrush_energy"] = MetricInfo("J", "energy the output absorbs while it limits the "
                                              "cold filament's current")
+        m["inrush_time"] = MetricInfo("s", "how long the output limits the cold filament's "
+                                           "current, the pulse width of inrush_energy (a "
+                                           "single-pulse rating holds for its own width)")
         m["inrush_margin"] = MetricInfo("1", "current the stage can carry at the edge of "
                                              "saturation over the cold filament's demand")
         pulse = setup.pulse_energy.get(out)
@@ -689,7 +692,14 @@ def _gauss(a, b):
 
 
 def lamp_inrush_energy(load_state, supply, capability, lamp_voltage, lamp_current):
-    """Energy the output absorbs while it limits a cold filament's current [J].
+    """Energy the output absorbs while it limits a cold filament's current [J]
+    (:func:`lamp_inrush`)."""
+    return lamp_inrush(load_state, supply, capability, lamp_voltage, lamp_current)[0]
+
+
+def lamp_inrush(load_state, supply, capability, lamp_voltage, lamp_current):
+    """Energy the output absorbs while it limits a cold filament's current [J], and for how
+    long it limits it [s].
 
     While the cold filament asks for more than the stage can carry (``capability``, the
     collector current at the edge of saturation), the output runs in its linear region at that
@@ -713,7 +723,7 @@ def lamp_inrush_energy(load_state, supply, capability, lamp_voltage, lamp_curren
 
         t1 = theta Int_r_c^r_1 dr / (r^(1 - 1/g) (k r - r^m)),  r_1 = V_L / (I R_f),
 
-    and the output absorbs E = I Int (V_S - I R_f r) dt over it; each integral by
+    and the output absorbs E = I Int (V_S - I R_f r) dt over it; t1 and each integral by
     Gauss-Legendre quadrature (``INRUSH_NODES`` nodes; scipy.integrate.quad agrees,
     tests/test_stages.py). An earlier estimate let the filament warm at its free-running
     rate whatever current the stage let through: at a current held to a tenth of the
@@ -746,7 +756,9 @@ def lamp_inrush_energy(load_state, supply, capability, lamp_voltage, lamp_curren
         r, w = _gauss(rc, r1)
         dt = w * theta[..., None] / (r ** lift * (k[..., None] * r - r ** m[..., None]))
         e = i * np.sum((vs[..., None] - i[..., None] * r_final[..., None] * r) * dt, axis=-1)
-    return np.where(limited, e, np.where(never, np.inf, 0.0))
+        t1 = np.sum(dt, axis=-1)
+    return (np.where(limited, e, np.where(never, np.inf, 0.0)),
+            np.where(limited, t1, np.where(never, np.inf, 0.0)))
 
 
 def evaluate_stage(stage, samples):
@@ -1008,7 +1020,7 @@ def evaluate_stage(stage, samples):
         # user's walk found it below load_current on the I_C max rating)
         out["peak_current"] = np.maximum(np.minimum(demand, capability),
                                          np.abs(res["load_current"]))
-        out["inrush_energy"] = lamp_inrush_energy(
+        out["inrush_energy"], out["inrush_time"] = lamp_inrush(
             load_state, np.asarray(samples[stage.env.supply], dtype=float), capability,
             res["load_voltage"], np.abs(res["load_current"]))
         with np.errstate(divide="ignore", invalid="ignore"):
