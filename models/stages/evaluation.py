@@ -335,7 +335,8 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
                                     "or transient; a coil with the transient off: V_S + V_clamp, "
                                     "infinite without a clamp)")
     m["peak_current"] = MetricInfo("A", "highest collector current the output carries (a "
-                                        "lamp's inrush as far as the drive allows)")
+                                        "lamp's inrush as far as the drive allows, never "
+                                        "below the on-state's current)")
     crit.append(Criterion("thermal_runaway", "thermal_runaway", maximum=0.0, source="rating",
                           description="the electro-thermal loop settles below its cap"))
     out = output_device(stage)
