@@ -264,6 +264,20 @@ def test_check_prints_parameter_table(capsys):
     assert any(r.split()[:2] == ["tj_output", "degC"] for r in metrics)
 
 
+def test_check_says_which_defaults_take_the_studys_limit(capsys):
+    # the valve study's [limits] replace the saturation and pull-in defaults' limits, which
+    # keep their names and places; the listing said "stage" beside the study's own figure
+    # (a new user's walk)
+    root = Path(__file__).resolve().parents[1]
+    assert main(["check", str(root / "studies" / "irrigation_valve_single.toml")]) == 0
+    rows = {r.split()[0]: r for r in _block(capsys.readouterr().out, "criterion ")[1:]}
+    assert rows["saturation"].endswith(">= 1.5       stage, limit from [limits]")
+    assert rows["coil_operates"].endswith("stage, limit from [limits]")
+    assert rows["stays_off"].endswith(" stage")
+    assert rows["off_current"].endswith(" study")
+    assert rows["tj_max_output"].endswith(" rating")
+
+
 def _block(out: str, header_start: str) -> list[str]:
     """The header line that starts with ``header_start`` and the rows under it."""
     lines = out.splitlines()

@@ -540,9 +540,17 @@ def cmd_check(args) -> int:
           "parameters' normal scores,\neach pair of a group at that coefficient)\n"
           + _table(("parameters", "coefficient"), rows, "<>"))
     rows = []
+    # a study window that replaced a default keeps the default's name, place and source;
+    # "from" says the limit is the study's
+    defaults = {c.name: c for c in study.stage.criteria}
     for c in study.criteria:
         unit = study.stage.metrics[c.metric].unit
-        rows.append((c.name, c.metric, c.limit_text(lambda x, u=unit: _fmt(x, u)), c.source))
+        d = defaults.get(c.name)
+        source = c.source
+        if c.source != "study" and d is not None and (d.minimum, d.maximum) != (c.minimum,
+                                                                                c.maximum):
+            source = f"{c.source}, limit from [limits]"
+        rows.append((c.name, c.metric, c.limit_text(lambda x, u=unit: _fmt(x, u)), source))
     w("\n" + _table(("criterion", "metric", "limit", "from"), rows, "<<<<"))
     rows = [(name, "degC" if m.unit == "temperature" else m.unit, m.description)
             for name, m in study.stage.metrics.items()]
