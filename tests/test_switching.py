@@ -728,6 +728,26 @@ def test_a_pwm_coils_pull_in_is_judged_on_its_periodic_steady_state():
     assert {c.name: c.metric for c in static.criteria}["coil_operates"] == "operate_margin"
 
 
+def test_edge_fill_weighs_each_transition_against_its_own_half_of_the_period():
+    # the definition (common practice, no source): turn-on delay + rise against the on-time
+    # D / f, storage + fall against the off-time (1 - D) / f; the shipped dimmer's 10 % duty
+    # tells the halves apart (a mutation test found duty 0.5 in every test before)
+    from pathlib import Path
+
+    from tolerance.api import load_study
+
+    study = load_study(Path(__file__).resolve().parents[1] / "studies"
+                       / "pwm_led_dimmer_darlington.toml")
+    values = {p.name: np.full(2, p.nominal) for p in study.parameters}
+    values["ambient.temperature"] = np.array([253.15, 333.15])
+    res = study.stage.evaluate(values)
+    f, d = 2e3, 0.1
+    on = (res["turn_on_delay"] + res["rise_time"]) * f / d
+    off = (res["storage_time"] + res["fall_time"]) * f / (1 - d)
+    assert_allclose(res["edge_fill"], np.maximum(on, off), rtol=1e-12)
+    assert (on != off).all()
+
+
 def test_the_study_edge_time_is_the_drive_ramps_10_to_90_percent_time():
     # a logic datasheet's rise time runs from 10 % to 90 % of the swing (common practice, no
     # source); the study documents edge_time so, but the linear ramp took it from 0 to 100 %,

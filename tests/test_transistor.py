@@ -163,6 +163,28 @@ def test_saturation_current_follows_band_gap_law():
     assert 1.7 < ratio < 2.3
 
 
+def test_gains_and_recombination_currents_scale_with_temperature_together():
+    # the charge-control model's temperature law (from memory): the ideal gains grow as
+    # (T/T0)^X_TB, and each recombination current's saturation current as
+    # I_SE (T/T0)^-X_TB (I_S(T)/I_S(T0))^(1/n_E), so that at low currents, where the base
+    # current is that recombination, the gain too rises with temperature (a mutation test
+    # found the sign of X_TB there unchecked)
+    t = np.array([233.15, 298.15, 398.15])
+    p = TransistorParameters(saturation_current=1e-14, forward_beta=150, reverse_beta=4,
+                             be_leakage_current=5e-13, be_leakage_emission=1.8,
+                             bc_leakage_current=2e-13, bc_leakage_emission=2.0,
+                             beta_exponent=1.6)
+    s = p.at_temperature(t)
+    ratio = t / 298.15
+    is_ratio = s.saturation_current / 1e-14
+    assert_allclose(1.0 / s.inv_forward_beta, 150 * ratio ** 1.6, rtol=1e-13)
+    assert_allclose(1.0 / s.inv_reverse_beta, 4 * ratio ** 1.6, rtol=1e-13)
+    assert_allclose(s.be_leakage_current, 5e-13 * ratio ** -1.6 * is_ratio ** (1 / 1.8),
+                    rtol=1e-13)
+    assert_allclose(s.bc_leakage_current, 2e-13 * ratio ** -1.6 * is_ratio ** (1 / 2.0),
+                    rtol=1e-13)
+
+
 def _vbe_at_current(params, current, temperature):
     s = params.at_temperature(np.array([temperature]))
     return optimize.brentq(
