@@ -1179,7 +1179,7 @@ def _peak_notes(stage) -> list[str]:
         excess = setup.peak_excess(name)
         if not excess > thermal.PEAK_NOTE_SHARE:
             continue
-        taus = " and ".join(q(tau, 's') for _, tau in setup.network[name])
+        taus = " and ".join(q(tau, "s") for _, tau in setup.network[name])
         period = 1.0 / stage.drive.frequency
         source = ("the study's" if name in setup.given_constants else
                   f"typical of the package class (from memory), so give the part's own "
