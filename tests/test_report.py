@@ -913,3 +913,15 @@ def test_units_beyond_their_parameters_limits_are_counted_for_the_review(tmp_pat
                                     out=tmp_path / "c").summary["beyond_limits"]}
     assert not names & {p.name for p in cut_study.parameters
                         if p.distribution.describe().startswith("normal at")}
+
+
+def test_a_p_value_that_underflowed_reads_as_below_1e_300():
+    # scipy.stats.kstwo.sf(0.9, 5000) underflows to 0 (the true value lies far below the
+    # smallest double): the failure-driver table said "0", an impossibility for a p-value
+    from scipy import stats
+
+    assert stats.kstwo.sf(0.9, 5000) == 0.0
+    table = report._records_table([{"input": "supply.voltage", "ks": 0.9, "p_value": 0.0},
+                                   {"input": "RB", "ks": 0.04, "p_value": 0.2672}])
+    col = table.header.index("p_value")
+    assert [row[col] for row in table.rows] == ["< 1e-300", report._cell(0.2672)]

@@ -430,8 +430,17 @@ def _records_table(records: list[dict], caption: str | None = None) -> Table:
         for k in r:
             if k not in keys:
                 keys.append(k)
-    rows = [[_cell(r.get(k)) for k in keys] for r in records]
+    rows = [[_p_cell(r.get(k)) if k == "p_value" else _cell(r.get(k)) for k in keys]
+            for r in records]
     return Table([str(k) for k in keys], rows, None, caption)
+
+
+def _p_cell(value) -> str:
+    """A p-value cell: one that underflowed to 0 (scipy's tail probabilities do so near the
+    smallest double, 5e-324) reads as below 1e-300, not as an impossibility."""
+    if isinstance(value, (int, float)) and value == 0:
+        return "< 1e-300"
+    return _cell(value)
 
 
 def _keyed_table(data: dict, first: str, caption: str | None = None) -> Table:
