@@ -1110,7 +1110,7 @@ def test_lamp_inrush_energy_follows_the_filaments_energy_balance():
 
     from scipy import integrate
 
-    from tolerance.models.stages.evaluation import lamp_inrush, lamp_inrush_energy
+    from tolerance.models.stages.evaluation import lamp_inrush
 
     r_cold, tau, p, vs = 0.5665, 0.05, 0.55, 13.0
     lamp = SimpleNamespace(cold_resistance=np.full(5, r_cold),
@@ -1118,8 +1118,7 @@ def test_lamp_inrush_energy_follows_the_filaments_energy_balance():
     v_lamp = np.array([12.405, 12.405, 11.3, 12.405, 12.405])
     i_lamp = np.array([1.782, 1.782, 1.70, 1.782, 1.782])
     cap = np.array([9.27, 2.35, 2.0, 1.79, 40.0])  # limited (strongly to barely); carries all
-    e = lamp_inrush_energy(lamp, np.full(5, vs), cap, v_lamp, i_lamp)
-    _, width = lamp_inrush(lamp, np.full(5, vs), cap, v_lamp, i_lamp)
+    e, width = lamp_inrush(lamp, np.full(5, vs), cap, v_lamp, i_lamp)
     g, m = 1.2, (1 + p) / (1 - p)
     for k in range(4):
         r_f, p_f = v_lamp[k] / i_lamp[k], v_lamp[k] * i_lamp[k]

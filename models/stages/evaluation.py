@@ -673,7 +673,7 @@ def _device_power(res, duty, extra=None):
     return p
 
 
-#: Gauss-Legendre nodes of the inrush integrals (:func:`lamp_inrush_energy`)
+#: Gauss-Legendre nodes of the inrush integrals (:func:`lamp_inrush`)
 INRUSH_NODES = 64
 
 #: Tungsten's resistance grows as T^1.2 between room temperature and incandescence (from
@@ -690,12 +690,6 @@ def _gauss(a, b):
     x, w = np.polynomial.legendre.leggauss(INRUSH_NODES)
     half = 0.5 * (np.asarray(b) - np.asarray(a))[..., None]
     return np.asarray(a)[..., None] + half * (x + 1.0), half * w
-
-
-def lamp_inrush_energy(load_state, supply, capability, lamp_voltage, lamp_current):
-    """Energy the output absorbs while it limits a cold filament's current [J]
-    (:func:`lamp_inrush`)."""
-    return lamp_inrush(load_state, supply, capability, lamp_voltage, lamp_current)[0]
 
 
 def lamp_inrush(load_state, supply, capability, lamp_voltage, lamp_current):
