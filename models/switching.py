@@ -364,15 +364,20 @@ class StageCircuit:
             vce, iav, _ = self._avalanche(x)
             p[:, _P_AVALANCHE] = vce * iav
             p[:, _P_OUTPUT] += vce * iav
+        # the load branch carries the merged collector (emitter) resistance, whose r i^2 is
+        # the output transistor's above: the load's own share is the branch's less that
+        # (a coil's winding carries i_L, the switch i_L less the clamp's current, so while
+        # the clamp conducts the model's r (i_L^2 - i_sw^2) stays with the winding and the
+        # parts still add up to the supply's energy)
         ld = self.load
         if ld["kind"] == "coil":
             il = x[:, self.coil_index]
             ic, _ = self._clamp(vsw)
             if ic is not None:
                 p[:, _P_CLAMP] = (vsw - self.supply) * ic
-            p[:, _P_LOAD] = ld["resistance"] * il * il
+            p[:, _P_LOAD] = ld["resistance"] * il * il - r * isw * isw
         else:
-            p[:, _P_LOAD] = (self.supply - vsw) * isw
+            p[:, _P_LOAD] = (self.supply - vsw - r * isw) * isw
         p[:, _P_SUPPLY] = self.supply * isw
         return Observation(isw, p, vsw + r * isw)
 
