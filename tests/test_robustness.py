@@ -227,6 +227,23 @@ def test_force_never_empties_a_folder_that_holds_other_files(write_study, tmp_pa
     assert sorted(p.relative_to(work) for p in work.rglob("*")) == before
 
 
+@pytest.mark.parametrize("inside", ["plots/notes.txt", "samples.parquet/keep.txt",
+                                    "plots/mine/a.png"])
+def test_force_never_removes_a_file_of_the_users_inside_a_results_subfolder(
+        write_study, tmp_path, capsys, inside):
+    # --force removes plots/ and samples.parquet/ whole; a note kept in them went with them
+    study = write_study(LINEAR.format(samples=200, chunk=200))
+    out = tmp_path / "r"
+    assert _cli_in_process(["run", study, "--out", out, "--quiet"], capsys)[0] == 0
+    (out / inside).parent.mkdir(exist_ok=True)
+    (out / inside).write_text("mine")
+    before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file()}
+    code, err = _cli_in_process(["run", study, "--out", out, "--quiet", "--force"], capsys)
+    assert code == 2 and "Traceback" not in err
+    assert "not results of a study" in err and inside.split("/")[0] in err
+    assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file()} == before
+
+
 def test_resume_refuses_the_folder_of_another_command(tmp_path, capsys):
     # resuming a run into a what-if folder added a run beside it, and the rebuilt report put
     # another study's what-if under this study's title
@@ -940,6 +957,26 @@ def test_an_unreachable_scheduler_is_named_and_leaves_nothing(write_study, tmp_p
     assert code == 2 and "Traceback" not in err
     assert "cannot reach the dask scheduler" in err and address in err
     assert not (tmp_path / "r").exists()
+
+
+def test_an_unreachable_scheduler_with_force_keeps_the_old_results(write_study, tmp_path,
+                                                                   capsys):
+    # the folder was emptied for the new run before the scheduler was found unreachable
+    pytest.importorskip("distributed")
+    import dask
+
+    study = write_study(LINEAR.format(samples=100, chunk=50))
+    out = tmp_path / "r"
+    assert _cli_in_process(["run", study, "--out", out, "--quiet"], capsys)[0] == 0
+    before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file()}
+    with dask.config.set({"distributed.comm.timeouts.connect": "2s"}):
+        for extra in (["--force"], ["--resume"]):
+            code, err = _cli_in_process(["run", study, "--backend", "dask", "--scheduler",
+                                         "tcp://127.0.0.1:9", "--out", out, "--quiet",
+                                         *extra], capsys)
+            assert code == 2 and "Traceback" not in err
+            assert "cannot reach the dask scheduler" in err
+    assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file()} == before
 
 
 class _StageDyingInWorkers:

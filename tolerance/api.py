@@ -18,7 +18,14 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from tolerance import runner
-from tolerance.files import TMP_SUFFIX, FolderBusy, FolderLock, os_error_text, write_atomic
+from tolerance.files import (
+    PLOT_PREFIXES,
+    TMP_SUFFIX,
+    FolderBusy,
+    FolderLock,
+    os_error_text,
+    write_atomic,
+)
 from tolerance.runner import Override, RunSpec, code_digest
 from tolerance.study import SAMPLERS, Study, StudyError, parameter_hint
 from tolerance.study import load_study as _load_study_file
@@ -192,6 +199,27 @@ def _is_result(name: str) -> bool:
                                     and name[:-len(TMP_SUFFIX)] in RESULT_NAMES)
 
 
+def _foreign(out: Path, entries) -> list[str]:
+    """What in ``out`` the commands do not write: its other entries, and inside the samples
+    and plots folders (which ``--force`` removes whole) anything but chunk files and the
+    commands' figures (a note kept in ``plots/`` was deleted with it)."""
+    def chunk(p: Path) -> bool:
+        name = p.name[:-len(TMP_SUFFIX)] if p.name.endswith(TMP_SUFFIX) else p.name
+        return runner.is_chunk_name(name)
+
+    def figure(p: Path) -> bool:
+        return p.name.startswith(PLOT_PREFIXES) and p.name.endswith((".png",
+                                                                     ".png" + TMP_SUFFIX))
+
+    found = [name for name in entries if not _is_result(name)]
+    for name, ours in ((SAMPLES_DIR, chunk), ("plots", figure)):
+        child = out / name
+        if name in entries and child.is_dir() and not child.is_symlink():
+            found += [f"{name}/{p.name}" for p in sorted(child.iterdir())
+                      if not (ours(p) and p.is_file() and not p.is_symlink())]
+    return found
+
+
 def _prepare_folder(out: Path, force: bool, resume: bool, resumable: bool = True) -> None:
     """Make ``out`` ready for results: new or empty; with ``resume`` a run's folder as it is;
     with ``force`` a result folder whose results are removed. A folder that holds anything the
@@ -202,7 +230,7 @@ def _prepare_folder(out: Path, force: bool, resume: bool, resumable: bool = True
         raise UsageError(f"{out}: exists and is not a folder")
     try:
         entries = sorted(p.name for p in out.iterdir()) if out.exists() else []
-        foreign = [name for name in entries if not _is_result(name)]
+        foreign = _foreign(out, entries)
         if foreign:
             shown = ", ".join(foreign[:5]) + (" ..." if len(foreign) > 5 else "")
             raise UsageError(f"{out}: holds files that are not results of a study ({shown}); "
@@ -371,6 +399,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     with FolderLock(out) as lock:
         take_folder(lock)  # before --force removes anything, when the folder exists
         made = not out.exists()
+        if scheduler and (force or resume) and not made:
+            runner.probe_scheduler(scheduler)  # before --force empties the folder
         _prepare_folder(out, force, resume)
         take_folder(lock)
         return _run_into(study, spec, out, made, chunk, jobs, progress, resume, force,

@@ -15,6 +15,8 @@ from pathlib import Path
 from typing import Iterator
 
 TMP_SUFFIX = ".tmp"
+#: The names the commands' figures start with (``plots/``): what a report may replace there.
+PLOT_PREFIXES = ("hist-", "tornado-", "driver-", "whatif-", "choose-", "waveforms-")
 
 
 @contextlib.contextmanager

@@ -27,7 +27,7 @@ import pandas as pd
 
 from tolerance import runner
 from tolerance.cli import SAFETY
-from tolerance.files import TMP_SUFFIX, DamagedFile, write_atomic
+from tolerance.files import PLOT_PREFIXES, TMP_SUFFIX, DamagedFile, write_atomic
 from tolerance.units import UnitError, format_ppm, format_quantity, format_yield, spread_unit
 
 __all__ = [
@@ -55,7 +55,6 @@ EXTRA_FILES = {
     "whatif.json": "What-if runs",
     "choose.json": "Value choice",
 }
-PLOT_PREFIXES = ("hist-", "tornado-", "driver-", "whatif-", "choose-", "waveforms-")
 #: Sample waveforms of the switching transient (``tolerance run --waveforms K``).
 WAVEFORMS_FILE = "waveforms.json"
 WHATIF_SAMPLES = "whatif_samples.parquet"

@@ -458,6 +458,24 @@ def _run_tasks(tasks, jobs: int, backend: str, scheduler: str | None):
         yield from Parallel(n_jobs=jobs, return_as="generator")(tasks)
 
 
+def _connect(scheduler: str):
+    """A dask client of the scheduler at ``scheduler``, or a ConnectionError saying so."""
+    from distributed import Client
+
+    try:
+        return Client(scheduler)
+    except (OSError, ValueError, TypeError) as exc:  # refused, timed out, malformed
+        raise ConnectionError(f"cannot reach the dask scheduler at {scheduler!r} "
+                              f"({exc})") from None
+
+
+def probe_scheduler(scheduler: str) -> None:
+    """Reach the dask scheduler once and let go: an unreachable one is refused before a
+    result folder is touched (``--force`` had emptied the old results, then the run was
+    refused)."""
+    _connect(scheduler).close()
+
+
 class _backend:
     """Context selecting the joblib backend (loky locally, dask.distributed on a cluster)."""
 
@@ -472,11 +490,7 @@ class _backend:
             from distributed import Client, LocalCluster
 
             if self.scheduler:
-                try:
-                    client = Client(self.scheduler)
-                except (OSError, ValueError, TypeError) as exc:  # refused, timed out, malformed
-                    raise ConnectionError(f"cannot reach the dask scheduler at "
-                                          f"{self.scheduler!r} ({exc})") from None
+                client = _connect(self.scheduler)
             else:
                 cluster = LocalCluster(n_workers=max(self.jobs, 1), threads_per_worker=1,
                                        processes=True, host="127.0.0.1",
@@ -544,6 +558,11 @@ def column_names(folder: Path) -> list[str]:
         return []
     with _readable(files[0]):
         return list(pq.read_schema(files[0]).names)
+
+
+def is_chunk_name(name: str) -> bool:
+    """Whether ``name`` is a chunk file's (``part-NNNNNN.parquet``)."""
+    return _CHUNK_NAME.fullmatch(name) is not None
 
 
 def chunk_files(folder: Path) -> list[Path]:
