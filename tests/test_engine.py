@@ -146,6 +146,16 @@ def test_discrete_weights():
     assert_allclose([np.mean(x == v) for v in (1, 2, 3)], [0.25, 0.5, 0.25], atol=0.005)
 
 
+def test_discrete_weights_whose_sum_overflows_keep_their_ratios():
+    # weights of 1e308 each summed to inf: every share read 0 and every unit was drawn at
+    # the last member (definition of the weights: only their ratios matter)
+    d = dist.Discrete((12.0, 13.0, 14.0), (1e308, 1e308, 5e307))
+    assert_allclose(d.shares, [0.4, 0.4, 0.2], rtol=1e-12)
+    x = d.ppf(np.random.default_rng(4).random(100_000))
+    assert_allclose([np.mean(x == v) for v in (12, 13, 14)], [0.4, 0.4, 0.2], atol=0.006)
+    assert_allclose(d.cdf(13.0), 0.8, rtol=1e-12)
+
+
 @pytest.mark.parametrize("values, weights", [((253.15, 328.15), (1.0, 1.0)),
                                              ((253.15, 298.15, 328.15), (1.0, 2.0, 1.0)),
                                              ((1.0, 2.0, 5.0, 7.0), (1.0, 1.0, 2.0, 4.0))])

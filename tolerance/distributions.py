@@ -10,6 +10,7 @@ Temperature coefficients are not applied here; the models apply them at each sam
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -471,7 +472,13 @@ class Discrete(Distribution):
     def __post_init__(self):
         order = sorted(range(len(self.values)), key=lambda k: self.values[k])
         object.__setattr__(self, "values", tuple(self.values[k] for k in order))
-        object.__setattr__(self, "weights", tuple(self.weights[k] for k in order))
+        weights = [float(self.weights[k]) for k in order]
+        if not math.isfinite(sum(weights)):
+            # weights of 1e308 each overflowed their sum: every share read 0 and every unit
+            # was drawn at the last member; only their ratios matter
+            top = max(weights)
+            weights = [w / top for w in weights]
+        object.__setattr__(self, "weights", tuple(weights))
 
     @property
     def nominal(self) -> float:
