@@ -933,6 +933,31 @@ def test_a_damaged_result_file_is_named_and_the_folder_left_as_it_was(
     assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file()} == before
 
 
+@pytest.mark.parametrize("command, name, key, value, read", [
+    (["run"], "summary.json", "yield", "x", "yield"),
+    (["whatif", "--pin", "RB=min"], "whatif.json", "pinned_values", 3, "pinned_values"),
+    (["choose", "--vary", "RB=E6:100..220"], "choose.json", "tradeoff", {"a": 1}, "tradeoff"),
+    # a name of another kind is found where it is looked up
+    (["choose", "--vary", "RB=E6:100..220"], "choose.json", "vary", [1], "units.1"),
+])
+def test_a_saved_value_of_another_kind_is_named_and_the_folder_left_as_it_was(
+        tmp_path, capsys, command, name, key, value, read):
+    # common practice, no source: found by probing, a saved value of another kind than the
+    # command writes ended the report in a traceback, the plots already redrawn
+    demo = ROOT / "tolerance" / "demo" / "demo.toml"
+    out = tmp_path / "r"
+    assert _cli_in_process([command[0], demo, *command[1:], "--samples", "100", "--out", out,
+                            "--quiet"], capsys)[0] in (0, 1)
+    data = json.loads((out / name).read_text())
+    data[key] = value
+    (out / name).write_text(json.dumps(data))
+    before = {p: p.read_bytes() for p in out.rglob("*") if p.is_file()}
+    code, err = _cli_in_process(["report", out], capsys)
+    assert code == 2 and "Traceback" not in err
+    assert str(out / name) in err and f"found while reading {read}" in err
+    assert {p: p.read_bytes() for p in out.rglob("*") if p.is_file()} == before
+
+
 def test_dask_backend_without_dask_installed_is_refused(write_study, tmp_path, capsys,
                                                         monkeypatch):
     monkeypatch.setitem(sys.modules, "distributed", None)  # import distributed -> ImportError

@@ -951,6 +951,47 @@ REQUIRED_TYPES = {
 }
 
 
+class _Kept(dict):
+    """A saved file's JSON object that notes each key read from it, so that a value of
+    another kind than the command writes (``"yield": "x"``) is refused naming its file and
+    key, not ended in a traceback."""
+
+    def __init__(self, items, file: str, where: str, seen: list):
+        super().__init__(items)
+        self._file, self._where, self._seen = file, where, seen
+
+    def __getitem__(self, key):
+        self._seen[0] = (self._file, f"{self._where}{key}")
+        return super().__getitem__(key)
+
+    def get(self, key, default=None):
+        self._seen[0] = (self._file, f"{self._where}{key}")
+        return super().get(key, default)
+
+
+def _kept(value, file: str, seen: list, where: str = ""):
+    """``value`` (parsed JSON of ``file``) with every object a :class:`_Kept`."""
+    if isinstance(value, dict):
+        return _Kept({k: _kept(v, file, seen, f"{where}{k}.") for k, v in value.items()},
+                     file, where, seen)
+    if isinstance(value, list):
+        return [_kept(v, file, seen, f"{where[:-1]}[{i}].") for i, v in enumerate(value)]
+    return value
+
+
+#: what a value of an unexpected kind raises where the report reads it
+_WRONG_KIND = (KeyError, TypeError, ValueError, AttributeError, IndexError)
+
+
+def _wrong_kind(folder: Path, seen: list) -> DamagedFile:
+    """The refusal of a saved value the report could not read as the command writes it."""
+    file, key = seen[0] if seen[0] else ("", "")
+    return DamagedFile(folder / file if file else folder,
+                       f"holds a value of another kind than this tool writes, or lacks one"
+                       + (f" (found while reading {key})" if key else "")
+                       + "; run the command again to write it anew")
+
+
 def _safe_name(text: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", text).strip("_") or "x"
 
@@ -1796,18 +1837,29 @@ def write_reports(folder, jobs: int = 1) -> dict:
                 errno.EINVAL, f"does not hold the samples {SUMMARY_FILE} describes: {wrong}; "
                 "continue the run with --resume, or run it again with --force",
                 str(folder / SAMPLES_DIR))
+    # the saved files as copies that note what is read from them: a value of another kind
+    # than the command writes is refused naming its file and key, before anything is
+    # removed or drawn (the report's text is built once for that, then again with figures)
+    seen: list = [None]
+    summary = None if summary is None else _kept(summary, SUMMARY_FILE, seen)
+    extras = {name: _kept(data, name, seen) for name, data in extras.items()}
+    waveforms = None if waveforms is None else _kept(waveforms, WAVEFORMS_FILE, seen)
     plot_dir = folder / PLOTS_DIR
+    made: list[PlotTask] = []
+    try:
+        build_document(summary, extras, [], {})
+        if summary is not None:
+            made += _run_plots(folder, summary, extras, plot_dir)
+        if "whatif.json" in extras:
+            made += _whatif_plots(folder, extras["whatif.json"], summary, plot_dir)
+        if "choose.json" in extras:
+            made += _choose_plots(extras["choose.json"], plot_dir)
+        if waveforms is not None:
+            made += _waveform_plots(waveforms, plot_dir)
+    except _WRONG_KIND:
+        raise _wrong_kind(folder, seen) from None
     plot_dir.mkdir(exist_ok=True)
     _remove_stale_plots(plot_dir)
-    made: list[PlotTask] = []
-    if summary is not None:
-        made += _run_plots(folder, summary, extras, plot_dir)
-    if "whatif.json" in extras:
-        made += _whatif_plots(folder, extras["whatif.json"], summary, plot_dir)
-    if "choose.json" in extras:
-        made += _choose_plots(extras["choose.json"], plot_dir)
-    if waveforms is not None:
-        made += _waveform_plots(waveforms, plot_dir)
     paths = render_plots(made, jobs)
     if not made and not any(plot_dir.iterdir()):
         plot_dir.rmdir()  # an analysis without figures leaves no empty folder
