@@ -544,3 +544,33 @@ def test_whatif_pin_between_a_sets_members_is_refused(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "ambient.temperature=40 degC" in err and "-20 degC, 25 degC, 55 degC" in err
     assert "Traceback" not in err and not out.exists()
+
+
+def test_units_that_did_not_converge_are_shown_by_every_analysis(tmp_path, capsys):
+    # found by probing: a quarter of the units did not converge and choose printed every
+    # candidate at 75 % with "fails most: -" and no word of why, whatif's console said
+    # nothing, and sensitivity printed a Sobol total index of 6.7 from outputs replaced by
+    # their mean (definition of the yield: a unit that did not converge is a failure)
+    text = _replace('device = "medium_power_npn"\n',
+                    'device = "medium_power_npn"\n'
+                    'icbo = {values = ["10 nA", "300 mA"], weights = [3, 1]}\n')
+    study = _study(tmp_path, text, "stuck.toml")
+    assert main(["choose", str(study), "--vary", "RB=E6:100..220", "--samples", "200",
+                 "--out", str(tmp_path / "c")]) in (0, 1)
+    out = capsys.readouterr().out
+    assert out.count("not converged 2") == 3  # "fails most" of each candidate, 2x %
+    assert "3 of 3 candidates have units whose solve did not converge" in out
+    assert "not converged" in (tmp_path / "c" / "report.md").read_text()
+    assert main(["whatif", str(study), "--pin", "RB=min", "--samples", "200",
+                 "--out", str(tmp_path / "w")]) in (0, 1)
+    stuck = json.loads((tmp_path / "w" / "whatif.json").read_text())["not_converged"]
+    assert stuck["baseline"] > 0
+    assert f"not converged  baseline {stuck['baseline']:,}" in capsys.readouterr().out
+    assert main(["sensitivity", str(study), "--samples", "200", "--sobol-samples", "64",
+                 "--out", str(tmp_path / "s")]) == 0
+    out = capsys.readouterr().out
+    saved = json.loads((tmp_path / "s" / "sensitivity.json").read_text())
+    assert saved["not_converged"] > 0
+    assert "units of the Monte Carlo run did not converge" in out
+    assert "Sobol indices withheld for" in out and "drive_margin" in out
+    assert all(v["total"] is None for v in saved["sobol"]["drive_margin"].values())

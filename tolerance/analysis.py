@@ -259,6 +259,11 @@ def study_sensitivity(study: Study, samples: int, seed: int, sobol_n: int,
     sob = sensitivity.sobol_analysis(model_for(study), ppf, list(study.stage.metrics), sobol_n,
                                      seed, bootstrap=bootstrap)
     notes = list(sob.pop("notes", []))
+    stuck = int(res.summary["not_converged"])
+    if stuck:
+        notes.insert(0, f"{stuck:,} of {samples:,} units of the Monte Carlo run did not "
+                        "converge: the rank measures leave them out, so an input that "
+                        "decides whether a unit converges can rank low there")
     if study.correlations:
         notes.append("the Sobol design treats the inputs as independent; the study's "
                      "correlations are used only in the rank measures")
@@ -272,6 +277,7 @@ def study_sensitivity(study: Study, samples: int, seed: int, sobol_n: int,
         "sobol": {k: v for k, v in sob.items() if k not in ("evaluations", "nan_replaced")},
         "sobol_n": sobol_n, "sobol_evaluations": sob.get("evaluations"),
         "nan_replaced": sob.get("nan_replaced", {}), "notes": notes,
+        "not_converged": stuck,
         "evaluations": samples + int(sob.get("evaluations", 0)),
     }
 

@@ -295,7 +295,7 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
                          _direction(study, tradeoff[0], given),
                          _direction(study, tradeoff[1], given))
     first = candidates[0]
-    notes = _unjudged_drive(study, summaries[best])
+    notes = _unjudged_drive(study, summaries[best]) + _unconverged(candidates, names, study)
     n_samples = run_samples = samples if samples is not None else study.settings.samples
     used_sampler = sampler or study.settings.sampler
     return {
@@ -313,6 +313,20 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
         "criteria": list(first["criteria"]),
         "notes": notes,
     }
+
+
+def _unconverged(candidates: list[dict], names: list[str], study: Study) -> list[str]:
+    """A sentence where units of some candidates did not converge: they count as failures
+    in the yield and in no criterion's rate (the console and the report said nothing)."""
+    stuck = [c for c in candidates if c["not_converged"] > 0]
+    if not stuck:
+        return []
+    most = max(stuck, key=lambda c: c["not_converged"])
+    at = ", ".join(f"{n} = {format_quantity(most['values'][n], study.parameter(n).unit)}"
+                   for n in names)
+    return [f"{len(stuck)} of {len(candidates)} candidates have units whose solve did not "
+            f"converge (at most {most['not_converged']:,}, at {at}): they count as failures "
+            "in the yield and in no criterion's rate (the table's \"fails most\" names them)."]
 
 
 def _unjudged_drive(study: Study, summary: dict) -> list[str]:

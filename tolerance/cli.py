@@ -387,6 +387,10 @@ def cmd_whatif(args) -> int:
         yb, yp = result["yield"]["baseline"], result["yield"]["pinned"]
         w(f"yield  baseline {format_yield(yb['estimate'])} %   pinned "
           f"{format_yield(yp['estimate'])} %\n")
+        stuck = result.get("not_converged") or {}
+        if any(stuck.get(k) for k in ("baseline", "pinned")):
+            w(f"not converged  baseline {stuck.get('baseline', 0):,}   pinned "
+              f"{stuck.get('pinned', 0):,} (each a failure in the yield)\n")
         from tolerance.report import paired_sentence
 
         change = paired_sentence(result.get("yield_change"), "the pin", "in the baseline",
@@ -451,6 +455,7 @@ def cmd_sensitivity(args) -> int:
 
         for table in sensitivity_tables(result):
             w(f"\n{table.caption}\n" + _text_table(table, indent="  "))
+        w("".join(f"\nnote: {n}" for n in result.get("notes") or []))
         w(f"\nresults in {out}\n")
     return 0
 

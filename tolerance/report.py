@@ -760,6 +760,11 @@ def choose_table(data: dict) -> Table:
         marks = (["best"] if c == best else []) + (["frontier"] if i in front else [])
         rates = {k: r for k, r in (c.get("criteria") or {}).items()
                  if isinstance(r, (int, float)) and r > 0}
+        # units whose solve did not converge count as failures in the yield and in no
+        # criterion's rate: a candidate failing only by them read "fails most: -"
+        stuck, n = c.get("not_converged"), data.get("samples")
+        if isinstance(stuck, int) and stuck > 0 and isinstance(n, int) and n > 0:
+            rates["not converged"] = stuck / n
         worst = max(rates, key=rates.get) if rates else None
         rows.append([*(format_value(c["values"][n], units.get(n)) for n in names),
                      format_yield(c["yield"], 3),
