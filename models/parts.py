@@ -242,6 +242,28 @@ def _derived_parameter(reader: Reader, name: str, spec: dict, unit: str, paramet
     return sub.parameter(name, unit, parameter_name, description, positive=True)
 
 
+#: the supply's parameter (``models.stages.Environment``)
+SUPPLY_PARAMETER = "supply.voltage"
+
+
+def _must_exceed(reader: Reader, name: str, floor: float, reason: str) -> None:
+    """Make the registered parameter ``name`` refuse pins and value choices at or below
+    ``floor`` (:attr:`Parameter.above`), the highest such floor kept."""
+    params = reader._ctx.parameters  # noqa: SLF001
+    p = params.get(name)
+    if p is not None and (p.above is None or p.above < floor):
+        params[name] = dataclasses.replace(p, above=float(floor), above_reason=reason)
+
+
+def supply_floor(reader: Reader, vce_sat: float, what: str) -> None:
+    """The study file refuses a supply at or below a saturation voltage ("could never
+    saturate"); ``--pin supply.voltage=0.3V`` ran and passed every criterion. Pins and
+    value choices of the supply now must exceed ``vce_sat`` (``what``: whose it is)."""
+    _must_exceed(reader, SUPPLY_PARAMETER, vce_sat,
+                 f"the saturation voltage of {what}: at or below it the stage could never "
+                 "saturate")
+
+
 def read_transistor(parts: Reader, name: str, description: str, *, polarity: str | None = None,
                     base_figures: dict | None = None, supply_minimum: float | None = None,
                     required: bool = True, read_device: bool = True,
@@ -383,6 +405,8 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
                               f"lowest supply {supply_minimum:g} V ([supply] voltage): the "
                               f"stage could never saturate; check the supply's value and "
                               f"unit")
+    if vce_sat is not None:
+        supply_floor(part, vce_sat, name)
     try:
         ds = Datasheet.from_figures(figures)
     except DatasheetError as exc:
@@ -432,6 +456,9 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
         # screened lognormal (the study format has no such form of its own)
         part._ctx.parameters[param.name] = dataclasses.replace(  # noqa: SLF001
             param, distribution=screen)
+    # a gain of 1 or less is no transistor's (Datasheet refuses it in the study file); a
+    # what-if pin or a value choice of 0.5 ran
+    _must_exceed(part, param.name, 1.0, "a transistor's current gain I_C / I_B is above 1")
     if part.has("icbo"):
         # a range of the study's own spreads over decades like the derived one: lognormal
         # unless the table names another distribution

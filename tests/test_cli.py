@@ -574,3 +574,24 @@ def test_units_that_did_not_converge_are_shown_by_every_analysis(tmp_path, capsy
     assert "units of the Monte Carlo run did not converge" in out
     assert "Sobol indices withheld for" in out and "drive_margin" in out
     assert all(v["total"] is None for v in saved["sobol"]["drive_margin"].values())
+
+
+@pytest.mark.parametrize("argv, told", [
+    (["whatif", "--pin", "supply.voltage=0.3 V"], "the saturation voltage of Q1"),
+    (["whatif", "--pin", "Q1.hfe=0.5"], "current gain I_C / I_B is above 1"),
+    (["whatif", "--pin", "Q1.hfe=1"], "must be above 1 "),
+    (["choose", "--vary", "Q1.hfe=E12:0.1..10"], "current gain I_C / I_B is above 1"),
+    (["choose", "--vary", "supply.voltage=E12:0.1..1"], "the saturation voltage of Q1"),
+])
+def test_pins_and_value_choices_meet_the_study_files_checks_of_the_parts(tmp_path, capsys,
+                                                                          argv, told):
+    # found by probing: a supply at or below V_CE(sat) and a gain of 1 or less, both refused
+    # in the study file ("could never saturate", "not a transistor's current gain"), ran
+    # as pins and value choices and passed every criterion (definition of a transistor's
+    # gain I_C / I_B above 1; a stage whose supply is its saturation voltage carries nothing)
+    demo = ROOT / "tolerance" / "demo" / "demo.toml"
+    code = main([argv[0], str(demo), *argv[1:], "--samples", "50", "--out",
+                 str(tmp_path / "x")])
+    err = capsys.readouterr().err
+    assert code == 2 and "Traceback" not in err and told in err
+    assert not (tmp_path / "x").exists()

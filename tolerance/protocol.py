@@ -48,6 +48,10 @@ class Parameter:
     positive, minimum, maximum : bool, float or None
         The values the study file accepts for it (in its SI unit); a what-if pin or a value
         choice outside them is refused as the study file would refuse it.
+    above, above_reason : float or None, str
+        A value the parameter must exceed, and why (a supply above the saturation voltage,
+        a gain above 1): the study file's own checks of the parts, applied to pins and
+        value choices.
     """
 
     name: str
@@ -59,12 +63,20 @@ class Parameter:
     positive: bool = False
     minimum: float | None = None
     maximum: float | None = None
+    above: float | None = None
+    above_reason: str = ""
 
     def out_of_range(self, value: float) -> str | None:
         """Why ``value`` is not a value of this parameter, or None when it is one."""
         if not math.isfinite(value):
             return f"expected a finite value, got {value:g}"
-        return range_problem(value, self.unit, self.positive, self.minimum, self.maximum)
+        problem = range_problem(value, self.unit, self.positive, self.minimum, self.maximum)
+        if problem is None and self.above is not None and not value > self.above:
+            from tolerance.units import format_quantity
+
+            problem = (f"must be above {format_quantity(self.above, self.unit, 6)} "
+                       f"({self.above_reason}), got {format_quantity(value, self.unit, 6)}")
+        return problem
 
     @property
     def nominal(self) -> float:

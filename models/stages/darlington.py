@@ -46,6 +46,7 @@ from tolerance.models.parts import (
     TransistorPart,
     library,
     read_transistor,
+    supply_floor,
 )
 from tolerance.models.stages import (
     JUNCTION_LEAK,
@@ -500,6 +501,7 @@ def configure(reader):
                                      f"the pair's saturation voltage "
                                      f"{pair_figures['pair_vce_sat_max']:g} V is at or above "
                                      f"the lowest supply {env.supply_minimum:g} V")
+            supply_floor(q2_table, pair_figures["pair_vce_sat_max"], "the pair")
             try:
                 # the part's internal resistors as the study states them (a pair with
                 # stiffer ones saturates higher: its own figure is met with them)
