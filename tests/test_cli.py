@@ -44,6 +44,11 @@ MALFORMED = [
      "parts.RB.tolerance", "not a tolerance"),
     ("tolerance of 100 %", _replace('tolerance = "5%"\ntempco', 'tolerance = "100%"\ntempco'),
      "parts.RB.tolerance", "100 %"),
+    # a temperature in the study's own degC, not in kelvin ("353.15 lies outside min..max
+    # (253.15..328.15)" was printed)
+    ("typ outside the range", _replace('{min = "-20 degC", max = "55 degC"}',
+                                       '{min = "-20 degC", max = "55 degC", typ = "80 degC"}'),
+     "ambient.temperature.typ", "80 degC lies outside min..max (-20 degC .. 55 degC)"),
     ("min above max", _replace('{min = "-20 degC", max = "55 degC"}',
                                '{min = "85 degC", max = "-20 degC"}'),
      "ambient.temperature.min", "above max"),

@@ -381,7 +381,8 @@ class Reader:
                 if self.has(tkey):
                     typ = self.quantity(tkey, unit)
                     if not lo <= typ <= hi:
-                        raise self.error(tkey, f"{typ:g} lies outside min..max ({lo:g}..{hi:g})")
+                        raise self.error(tkey, f"{_shown(typ, unit)} lies outside min..max "
+                                               f"({_shown(lo, unit)} .. {_shown(hi, unit)})")
             kind = kind or range_distribution
             self._check_sigmas_used(kind)
             if lo == hi or kind == "fixed":
