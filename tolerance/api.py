@@ -199,10 +199,11 @@ def _is_result(name: str) -> bool:
                                     and name[:-len(TMP_SUFFIX)] in RESULT_NAMES)
 
 
-def _foreign(out: Path, entries) -> list[str]:
-    """What in ``out`` the commands do not write: its other entries, and inside the samples
-    and plots folders (which ``--force`` removes whole) anything but chunk files and the
-    commands' figures (a note kept in ``plots/`` was deleted with it)."""
+def _foreign(out: Path, entries, deep: bool) -> list[str]:
+    """What in ``out`` the commands do not write: its other entries, and with ``deep`` (for
+    ``--force``, which removes the samples and plots folders whole) anything in those but
+    chunk files and the commands' figures (a note kept in ``plots/`` was deleted with
+    them; a run continued without ``--force`` leaves such files be)."""
     def chunk(p: Path) -> bool:
         name = p.name[:-len(TMP_SUFFIX)] if p.name.endswith(TMP_SUFFIX) else p.name
         return runner.is_chunk_name(name)
@@ -212,7 +213,7 @@ def _foreign(out: Path, entries) -> list[str]:
                                                                      ".png" + TMP_SUFFIX))
 
     found = [name for name in entries if not _is_result(name)]
-    for name, ours in ((SAMPLES_DIR, chunk), ("plots", figure)):
+    for name, ours in ((SAMPLES_DIR, chunk), ("plots", figure)) if deep else ():
         child = out / name
         if name in entries and child.is_dir() and not child.is_symlink():
             found += [f"{name}/{p.name}" for p in sorted(child.iterdir())
@@ -230,7 +231,7 @@ def _prepare_folder(out: Path, force: bool, resume: bool, resumable: bool = True
         raise UsageError(f"{out}: exists and is not a folder")
     try:
         entries = sorted(p.name for p in out.iterdir()) if out.exists() else []
-        foreign = _foreign(out, entries)
+        foreign = _foreign(out, entries, deep=force)
         if foreign:
             shown = ", ".join(foreign[:5]) + (" ..." if len(foreign) > 5 else "")
             raise UsageError(f"{out}: holds files that are not results of a study ({shown}); "
