@@ -326,7 +326,8 @@ def _unconverged(candidates: list[dict], names: list[str], study: Study) -> list
                    for n in names)
     return [f"{len(stuck)} of {len(candidates)} candidates have units whose solve did not "
             f"converge (at most {most['not_converged']:,}, at {at}): they count as failures "
-            "in the yield and in no criterion's rate (the table's \"fails most\" names them)."]
+            "in the yield and in no criterion's rate (the table's \"fails most\" names them "
+            "where they are a candidate's largest share)."]
 
 
 def _unjudged_drive(study: Study, summary: dict) -> list[str]:
