@@ -19,6 +19,7 @@ import math
 import re
 import sys
 import threading
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -1089,7 +1090,12 @@ def _render(task: PlotTask) -> Path | str:
     from tolerance import plots
 
     try:
-        return plots.save(getattr(plots, task.draw)(*task.args, **task.kwargs), task.path)
+        with warnings.catch_warnings():
+            # a limit of 1e308 overflows the axis's tick arithmetic: the figure is still
+            # drawn, and matplotlib's warning, with its file path, only puzzled the console
+            warnings.simplefilter("ignore", RuntimeWarning)
+            return plots.save(getattr(plots, task.draw)(*task.args, **task.kwargs),
+                              task.path)
     except (ValueError, TypeError, ArithmeticError, IndexError) as exc:
         import matplotlib.pyplot as plt
 
