@@ -464,6 +464,21 @@ def test_analysis_files_render_as_their_tables_or_as_saved(folder, tmp_path):
     text = " ".join(page.text)
     assert "one" in text and "two" in text and "not laid out" not in text
 
+    # an index with its bootstrap interval (a total index of 1.06 on 256 rows read as
+    # impossible where its interval, 0.39 .. 2.47, shows the noise; common practice, no
+    # source: an estimate is read with its interval)
+    data = json.loads((copy / "sensitivity.json").read_text())
+    data["sobol"]["y"]["x1"].update(first_low=0.61, first_high=0.79, total_low=0.385,
+                                    total_high=2.47)
+    (copy / "sensitivity.json").write_text(json.dumps(data))
+    report.write_reports(copy)
+    tables = list(parse_html((copy / "report.html").read_text(encoding="utf-8"))
+                  .tables.values())
+    assert [["input", "spearman", "srrc", "prcc", "sobol S1 (95 % interval)",
+             "sobol ST (95 % interval)"],
+            ["x1", "0.900", "0.800", "0.950", "0.700 (0.61 .. 0.79)", "0.800 (0.39 .. 2.47)"],
+            ["x2", "-0.100", "-0.200", "-0.300", "0.100", "0.120"]] in tables
+
     (copy / "sensitivity.json").write_text(json.dumps({"rank": ["junk"], "seed": 3}))
     report.write_reports(copy)
     page = parse_html((copy / "report.html").read_text(encoding="utf-8"))

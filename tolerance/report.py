@@ -738,13 +738,31 @@ def sensitivity_tables(data: dict, top: int = 6) -> list[Table]:
         if not rows:
             continue
         sob = sobol.get(metric) or {}
+        # an index with its bootstrap interval: on a few hundred rows a total index of 1.06
+        # read as impossible where its interval, 0.39 .. 2.47, says it is only noise
+        spread = any(_finite((sob.get(r["input"]) or {}).get(f"{k}_low"))
+                     for r in rows for k in ("first", "total"))
+        suffix = " (95 % interval)" if spread else ""
         tables.append(Table(
-            ["input", "spearman", "srrc", "prcc", "sobol S1", "sobol ST"],
+            ["input", "spearman", "srrc", "prcc", f"sobol S1{suffix}", f"sobol ST{suffix}"],
             [[r["input"], cell(r["spearman"]), cell(r.get("srrc")), cell(r.get("prcc")),
-              cell((sob.get(r["input"]) or {}).get("first")),
-              cell((sob.get(r["input"]) or {}).get("total"))] for r in rows],
+              _index_cell(sob.get(r["input"]) or {}, "first", cell),
+              _index_cell(sob.get(r["input"]) or {}, "total", cell)] for r in rows],
             None, metric))
     return tables
+
+
+def _finite(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+
+
+def _index_cell(row: dict, kind: str, cell) -> str:
+    """A Sobol index, with its bootstrap interval where the file has one."""
+    lo, hi = row.get(f"{kind}_low"), row.get(f"{kind}_high")
+    if not (_finite(row.get(kind)) and _finite(lo) and _finite(hi)):
+        return cell(row.get(kind))
+    lo, hi = round(lo, 2) + 0.0, round(hi, 2) + 0.0  # + 0.0: "0.00", not "-0.00"
+    return f"{cell(row[kind])} ({lo:.2f} .. {hi:.2f})"
 
 
 def choose_table(data: dict) -> Table:
