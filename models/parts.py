@@ -405,8 +405,8 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
                               f"lowest supply {supply_minimum:g} V ([supply] voltage): the "
                               f"stage could never saturate; check the supply's value and "
                               f"unit")
-    if vce_sat is not None:
-        supply_floor(part, vce_sat, name)
+    if supply_minimum is not None and vce_sat is not None:
+        supply_floor(part, vce_sat, name)  # the same check for pins and value choices
     try:
         ds = Datasheet.from_figures(figures)
     except DatasheetError as exc:

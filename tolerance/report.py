@@ -728,7 +728,7 @@ def sensitivity_tables(data: dict, top: int = 6) -> list[Table]:
     sobol = data.get("sobol") or {}
 
     def cell(v):
-        return f"{v:.3f}" if isinstance(v, (int, float)) and math.isfinite(v) else "-"
+        return f"{v:.3f}" if _finite(v) else "-"
 
     tables = []
     for metric in order:
@@ -913,7 +913,7 @@ def analysis_blocks(fname: str, data) -> list[Block]:
     if build is not None and isinstance(data, dict):
         try:
             return build(data)
-        except (KeyError, TypeError, ValueError, AttributeError, IndexError):
+        except _WRONG_KIND:
             pass
     if isinstance(data, dict) and "pinned_values" in data:
         # the pins in their units stand for the SI values (K, not degC) kept for programs
