@@ -589,6 +589,19 @@ def test_parse_series_range_rejections(text, match):
         parse_series_range(text, "ohm")
 
 
+def test_a_gain_range_takes_the_large_prefixes():
+    # found by probing: --vary Q1.hfe=E12:1000..10k was refused ("'10k' is not a fraction");
+    # a range of plain numbers takes k and M as a resistor's does (common practice, no
+    # source), while a fraction outside a range still takes none
+    assert parse_series_range("E12:1000..10k", "1") == ("E12", 1000.0, 10000.0)
+    assert parse_series_range("E6:470..2.2M", "1")[2] == pytest.approx(2.2e6, rel=1e-15)
+    assert parse_series_range("E6:0.1..0.47", "1")[1:] == (0.1, 0.47)
+    with pytest.raises(UnitError, match="a bound is wrong"):
+        parse_series_range("E12:1m..10", "1")
+    with pytest.raises(UnitError, match="is not a fraction"):
+        parse_quantity("10k", "1")
+
+
 def test_digits_of_other_scripts_are_refused():
     # found by probing: Python's float() reads Arabic-Indic digits, so "١٢ V" was 12 V; a
     # quantity is written with 0-9 (common practice, no source), the micro and ohm signs

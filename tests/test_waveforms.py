@@ -173,6 +173,24 @@ def test_two_panel_waveforms_keep_one_style_per_trace():
         plots.waveforms([t], [t], ["a"], "V", lower_traces=[t, t])
 
 
+def test_many_waveforms_keep_a_legible_legend(tmp_path):
+    # found by probing: --waveforms 100000 on 300 samples gave a legend of 301 entries that
+    # covered both panels, and matplotlib warned (with its installation path) that the
+    # layout collapsed; beyond NAMED_TRACES the traces are thin grey lines under one entry
+    import warnings
+    t = np.linspace(0.0, 1e-3, 50)
+    n = plots.NAMED_TRACES + 30
+    fig = plots.waveforms([t] * n, [t * (1 + i) for i in range(n)],
+                          [f"s{i}" for i in range(n)], "A", lower_traces=[t] * n,
+                          lower_unit="V", time_scale="symlog")
+    legend = [x.get_text() for x in fig.axes[0].get_legend().get_texts()]
+    assert legend == [f"s{i}" for i in range(plots.NAMED_TRACES)] + ["30 more stored samples"]
+    assert len(_lines(fig, "trace:")) == len(_lines(fig, "lower:")) == n
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        plots.save(fig, tmp_path / "w.png")
+
+
 def test_fewer_waveforms_than_asked_are_noted(tmp_path, capsys):
     # --waveforms 5 on a run of 2 samples stored 3 without a word
     out = tmp_path / "o"

@@ -51,6 +51,11 @@ PALETTE = tuple(sns.color_palette("colorblind", 10))
 PASS_COLOR, FAIL_COLOR = PALETTE[0], PALETTE[3]
 PASS_MARKER, FAIL_MARKER = "o", "X"
 LINESTYLES = ("-", "--", "-.", ":", (0, (5, 1, 1, 1, 1, 1)), (0, (1, 3)))
+
+#: the most traces of a waveform figure drawn in their own style with a legend entry each;
+#: the rest are drawn as thin grey lines under one entry
+NAMED_TRACES = 12
+
 LIMIT_STYLES = {"min": "--", "max": "-."}
 FAIL_HATCH = "///"
 POSITIVE_HATCH, NEGATIVE_HATCH = "//", ".."
@@ -710,12 +715,21 @@ def waveforms(times: list[np.ndarray], traces: list[np.ndarray], labels: Sequenc
             top, bottom = fig.subplots(2, 1, sharex=True)
             panels = [(top, traces, unit, ylabel, "trace"),
                       (bottom, lower_traces, lower_unit, lower_ylabel, "lower")]
+        crowd = max(0, len(labels) - NAMED_TRACES)
         for ax, values, u, label, gid in panels:
             for i, (t, v, name) in enumerate(zip(times, values, labels)):
+                if i < NAMED_TRACES:
+                    style = dict(linestyle=LINESTYLES[i % len(LINESTYLES)],
+                                 color=PALETTE[i % len(PALETTE)], linewidth=1.6,
+                                 label=str(name), zorder=3)
+                else:
+                    # beyond the named traces a legend entry each would cover the panels
+                    # (301 stored samples collapsed the layout): thin grey lines under them
+                    style = dict(linestyle="-", color="0.7", linewidth=0.6, zorder=2,
+                                 label=f"{crowd} more stored samples" if i == NAMED_TRACES
+                                 else "_nolegend_")
                 ax.plot(np.asarray(t, dtype=float), np.asarray(v, dtype=float),
-                        linestyle=LINESTYLES[i % len(LINESTYLES)],
-                        color=PALETTE[i % len(PALETTE)], linewidth=1.6, label=str(name),
-                        gid=f"{gid}:{i}")
+                        gid=f"{gid}:{i}", **style)
             _unit_axis(ax.yaxis, u)
             ax.set_ylabel(label)
         bottom_ax = panels[-1][0]

@@ -550,6 +550,17 @@ def snap(value, series: str):
     return result.reshape(shape)
 
 
+def _range_bound(text: str, unit: str) -> float:
+    """A bound of a preferred-value range. A plain number (a gain swept over E12:1000..10k)
+    also takes the prefixes k and M there, as a resistor's bounds do; elsewhere a number
+    without a unit is read as a fraction and takes none ("5m" is not 0.005)."""
+    if unit == "1" and isinstance(text, str):
+        split = _split_number(text.strip())
+        if split is not None and split[1] in ("k", "M"):
+            return _times_ten(split[0], _PREFIXES[split[1]])
+    return parse_quantity(text, unit)
+
+
 def parse_series_range(text: str, unit: str) -> tuple[str, float, float]:
     """Parse a preferred-value range such as "E24:47..1k".
 
@@ -587,8 +598,8 @@ def parse_series_range(text: str, unit: str) -> tuple[str, float, float]:
     if len(parts) != 2 or not parts[0].strip() or not parts[1].strip():
         raise UnitError(f"{text!r} is not a preferred-value range; {expect}")
     try:
-        low = parse_quantity(parts[0], unit)
-        high = parse_quantity(parts[1], unit)
+        low = _range_bound(parts[0], unit)
+        high = _range_bound(parts[1], unit)
     except UnitError as exc:
         raise UnitError(f"{text!r}: a bound is wrong: {exc}") from None
     if low <= 0 or high < low:
