@@ -21,6 +21,7 @@ vce_sat_max at I_C, I_B   collector_resistance          V_CE at the forced gain,
 vbe_sat_max at I_C, I_B   base_resistance               V_BE at the forced gain, hfe_min unit
 hfe at the test point     forward_beta (per sample)     closed form, see forward_beta_for_hfe
 icbo_max at V_CB          cbo_leakage (per sample)      generation term of the model
+iceo_max at V_CE          be_leakage_emission           base open, hfe_max unit at icbo_max
 ========================  ============================  ======================================
 
 The conditions are coupled weakly; they are solved in turn (each a one-dimensional bracketed
@@ -55,6 +56,7 @@ __all__ = [
     "model_figures",
     "hfe_at",
     "icbo_at",
+    "iceo_at",
     "saturation_at",
 ]
 
@@ -92,6 +94,8 @@ DATASHEET_FIGURES: dict[str, tuple[str, str]] = {
     "vbe_on_vce": ("V", "collector-emitter voltage of the V_BE(on) figure*"),
     "icbo_max": ("A", "maximum collector-base cut-off current at 25 degC*"),
     "icbo_vcb": ("V", "collector-base voltage of the I_CBO figure*"),
+    "iceo_max": ("A", "maximum collector-emitter cut-off current, base open, at 25 degC"),
+    "iceo_vce": ("V", "collector-emitter voltage of the I_CEO figure"),
     "breakdown_vceo": ("V", "collector-emitter breakdown voltage, base open*"),
     "ic_max": ("A", "maximum continuous collector current*"),
     "power_rating": ("W", "total dissipation at 25 degC ambient, free air*"),
@@ -158,6 +162,8 @@ class Datasheet:
     hfe_high_min: float | None = None
     hfe_low_current: float | None = None
     hfe_low_min: float | None = None
+    iceo_max: float | None = None
+    iceo_vce: float | None = None
     vbe_sat_max: float | None = None
     theta_jc: float | None = None
     power_rating_case: float | None = None
@@ -213,7 +219,8 @@ class Datasheet:
                 if v < 0:
                     raise DatasheetError(f.name, f"must not be negative, got {v:g}")
             elif v <= 0:
-                what = "a leakage current" if "icbo" in f.name else "this figure"
+                what = ("a leakage current" if "icbo" in f.name or "iceo" in f.name
+                        else "this figure")
                 raise DatasheetError(f.name, f"{what} must be positive, got {v:g}")
         for name in ("hfe_min", "hfe_typ", "hfe_max", "hfe_high_min", "hfe_low_min"):
             gain = getattr(self, name)
@@ -255,6 +262,24 @@ class Datasheet:
             if self.hfe_low_min >= self.hfe_min:
                 raise DatasheetError("hfe_low_min", "must be below hfe_min (the gain rolls off "
                                                     "at low current)")
+        if (self.iceo_max is None) != (self.iceo_vce is None):
+            raise DatasheetError("iceo_max" if self.iceo_max is None else "iceo_vce",
+                                 "iceo_max and iceo_vce go together")
+        if self.iceo_max is not None:
+            if self.hfe_low_current is None:
+                raise DatasheetError("iceo_max", "needs hfe_low_current and hfe_low_min: the "
+                                                 "fit sets the gain's roll-off between them and "
+                                                 "the open-base leakage")
+            if self.iceo_vce > self.breakdown_vceo:
+                raise DatasheetError("iceo_vce", f"{self.iceo_vce:g} V is above breakdown_vceo "
+                                                 f"({self.breakdown_vceo:g} V)")
+            # with the base open the collector-base leakage flows on through the emitter,
+            # multiplied by 1 + the gain at that current (common practice, no source)
+            if self.iceo_max <= self.icbo_max:
+                raise DatasheetError("iceo_max", f"{self.iceo_max:g} A is not above icbo_max "
+                                                 f"({self.icbo_max:g} A): with the base open "
+                                                 f"the leakage is 1 + h_FE times I_CBO",
+                                     related=("icbo_max",))
         forced = self.vce_sat_ic / self.vce_sat_ib
         if forced >= self.hfe_min:
             raise DatasheetError("vce_sat_ib", f"the forced gain I_C/I_B = {forced:g} of the "
@@ -370,6 +395,7 @@ class _PointSystem:
 
     kind ``ic_vce``: I_C = a, V_CE(terminal) = b.  ``ic_ib``: I_C = a, I_B = b.
     ``open_vcb``: emitter open (I_C + I_B = 0), V_CB(terminal) = b.
+    ``open_vce``: base open (I_B = 0), V_CE(terminal) = b.
     ``beta_map``: I_C = a, and V_CE = b with I_B = a / h (h per sample) in the emitter drop;
     the parameters then carry an infinite forward_beta.
     Values a, b are in the NPN sense (the polarity multiplies them).
@@ -420,6 +446,15 @@ class _PointSystem:
             f[:, 1] = g * (vbe - vbc + drop - b)
             j[:, 1, 0] = g
             j[:, 1, 1] = -g
+        elif self.kind == "open_vce":
+            # base open (I_B = 0), V_CE(terminal) = b
+            o = terminal_offsets(p, vbe, vbc, c)
+            f[:, 0] = c.base
+            j[:, 0, 0] = c.dbase_dvbe
+            j[:, 0, 1] = c.dbase_dvbc
+            f[:, 1] = g * (o.collector - b)
+            j[:, 1, 0] = g * o.dcollector_dvbe
+            j[:, 1, 1] = g * o.dcollector_dvbc
         elif self.kind == "open_vcb":
             o = terminal_offsets(p, vbe, vbc, c)
             f[:, 0] = c.collector + c.base
@@ -441,6 +476,11 @@ def _guess(scaled, kind, a, b, n):
     if kind == "open_vcb":
         vbe = np.zeros(n)
         vbc = -np.broadcast_to(np.abs(b), (n,)).astype(float)
+    elif kind == "open_vce":
+        # the base floats a few tenths of a volt up, where the leakage's recombination and
+        # ideal currents balance the collector-base leakage
+        vbe = np.full(n, 0.3)
+        vbc = vbe - np.broadcast_to(np.abs(b), (n,)).astype(float)
     else:
         cur = np.abs(np.broadcast_to(a, (n,)))
         vbe = nvt * np.log1p(cur / i_s)
@@ -513,6 +553,12 @@ def icbo_at(params: TransistorParameters, vcb, temperature=None):
     return np.where(ok, np.abs(c.collector), np.nan)
 
 
+def iceo_at(params: TransistorParameters, vce, temperature=None):
+    """Model collector current magnitude [A] with the base open at |V_CE| = ``vce`` [V]."""
+    scaled, vbe, vbc, c, ok = _solve_point(params, "open_vce", 0.0, vce, temperature=temperature)
+    return np.where(ok, np.abs(c.collector), np.nan)
+
+
 def _scalar(x) -> float:
     return float(np.asarray(x).ravel()[0])
 
@@ -523,6 +569,106 @@ def _root_log(fun, lo, hi):
 
     return math.exp(optimize.brentq(lambda u: fun(math.exp(u)), math.log(lo), math.log(hi),
                                     xtol=1e-12, rtol=1e-12))
+
+
+def _fit_open_base(ds, state, f_knee, f_phi, build, unit, solve):
+    """Set the emission coefficient of the base-emitter recombination current, with the knee
+    and the recombination share, so that the gain figures and the I_CEO figure all hold
+    (``fit_datasheet``'s state is changed in place; the joint solve there failed or the
+    datasheet gives no fall-off). Raises :class:`DatasheetError` with the range of I_CEO
+    the gain figures allow where the figure lies outside it."""
+    from scipy import optimize  # here: a worker evaluating chunks never fits
+
+    knee = ds.hfe_high_current is not None
+
+    def gains_at(n_el, u_start):
+        """Knee (log) and share (logit) meeting the gain figures at emission n_el; None
+        where none do (below some n the roll-off figure cannot be met at all)."""
+        if not knee:
+            try:
+                return [solve(lambda u: f_phi(u, be_leakage_emission=n_el), -40.0, 20.0,
+                              "hfe_low_min", "no recombination current gives this roll-off",
+                              log=False)]
+            except DatasheetError:
+                return None
+
+        def g(u):
+            try:
+                return [f_knee(math.exp(u[0]), phi=_logistic(u[1]), be_leakage_emission=n_el)
+                        / ds.hfe_high_min,
+                        f_phi(u[1], knee_current=math.exp(u[0]), be_leakage_emission=n_el)
+                        / ds.hfe_low_min]
+            except (DatasheetError, OverflowError):
+                return [math.nan, math.nan]
+        with np.errstate(all="ignore"):
+            sol = optimize.root(g, u_start, method="hybr", options={"xtol": 1e-13})
+        ok = sol.success and np.all(np.abs(g(sol.x)) < 1e-9)
+        return list(sol.x) if ok else None
+
+    def open_base(n_el, u):
+        """log of the worst unit's (highest gain, icbo_max) I_CEO over the figure."""
+        changes = {"be_leakage_emission": n_el, "phi": _logistic(u[-1])}
+        if knee:
+            changes["knee_current"] = math.exp(u[0])
+        q = unit(replace(build(**changes), cbo_leakage=ds.icbo_max), ds.hfe_max)
+        return math.log(_scalar(iceo_at(q, ds.iceo_vce)) / ds.iceo_max)
+
+    phi0 = min(max(state["phi"], 1e-3), 1.0 - 1e-3)
+    u0 = [math.log(phi0 / (1.0 - phi0))]
+    if knee:
+        knee0 = state["knee_current"]
+        u0.insert(0, math.log(knee0 if knee0 < 1e3 * ds.hfe_high_current
+                              else ds.hfe_high_current))
+    # the open-base leakage falls as n rises (the gain at microamperes rolls off more
+    # steeply); below some n the roll-off figure cannot be met, and the leakage is largest
+    # at that edge, found by bisection
+    n_lo, n_hi = EMISSION_RANGE
+    u_hi = gains_at(n_hi, u0) or gains_at(n_hi, gains_at(2.0, u0) or u0)
+    if u_hi is None:
+        raise DatasheetError("hfe_low_min", "cannot be met by the model (no recombination "
+                                            "current gives this roll-off)")
+    u_lo = gains_at(n_lo, u_hi)
+    if u_lo is None:
+        bad, good, u_lo = n_lo, n_hi, u_hi
+        while good - bad > 1e-9 * good:
+            mid = 0.5 * (bad + good)
+            u = gains_at(mid, u_lo)
+            if u is None:
+                bad = mid
+            else:
+                good, u_lo = mid, u
+        n_lo = good
+    f_least, f_most = open_base(n_hi, u_hi), open_base(n_lo, u_lo)
+    if not f_most >= 0.0 >= f_least:
+        raise DatasheetError(
+            "iceo_max", f"{ds.iceo_max:g} A cannot be met by the model: with hfe_low_min = "
+                        f"{ds.hfe_low_min:g} at {ds.hfe_low_current:g} A the open-base leakage "
+                        f"of the highest-gain unit lies between "
+                        f"{ds.iceo_max * math.exp(f_least):.3g} and "
+                        f"{ds.iceo_max * math.exp(f_most):.3g} A (a datasheet's I_CEO is a "
+                        f"test limit, often loose: a lower iceo_max the part still meets will "
+                        f"fit, as will a higher hfe_low_min)",
+            related=("hfe_low_min", "icbo_max"))
+    warm = {"u": u_lo}
+
+    def f(n_el):
+        u = gains_at(n_el, warm["u"]) or gains_at(n_el, u_hi)
+        if u is None:
+            return math.nan
+        warm["u"] = u
+        return open_base(n_el, u)
+    n = optimize.brentq(f, n_lo, n_hi, xtol=1e-13, rtol=1e-12)
+    u = gains_at(n, warm["u"])
+    state["be_leakage_emission"] = n
+    state["phi"] = _logistic(u[-1])
+    if knee:
+        state["knee_current"] = math.exp(u[0])
+
+
+#: the emission coefficients of the base-emitter recombination current an I_CEO figure may
+#: set: 1 (the gain level down to the lowest currents) to 4 (from memory: measured non-ideal
+#: base currents of silicon transistors lie between 1.5 and 4, with 2 the textbook value)
+EMISSION_RANGE = (1.0, 4.0)
 
 
 def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
@@ -560,7 +706,6 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
         beta_exponent=ds.beta_exponent,
         emitter_resistance=ds.emitter_resistance,
         leakage_doubling=ds.leakage_doubling,
-        be_leakage_emission=2.0,  # recombination current in the depletion layer, n = 2
         cbo_leakage=ds.icbo_max / math.sqrt(ds.icbo_spread),  # the median unit's leakage
     )
     vt0 = 0.025693  # kT/q at 25 degC [V]
@@ -568,6 +713,9 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
         "saturation_current": ds.vbe_on_current / math.exp(ds.vbe_on / vt0),  # ideal diode
         "knee_current": math.inf,
         "phi": 0.0,
+        # recombination current in the depletion layer, n = 2 (from memory: Sze, Physics of
+        # Semiconductor Devices); fitted to an I_CEO figure where the datasheet gives one
+        "be_leakage_emission": 2.0,
         "collector_resistance": 0.0,
         "base_resistance": 0.0,
     }
@@ -582,7 +730,7 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
                                                ds.hfe_current, ds.hfe_vce, h=ds.hfe_min, n=1)
             if not ok[0]:
                 raise DatasheetError("hfe_current", "no operating point at the test point")
-            nvt = 2.0 * _scalar(sc.thermal_voltage)
+            nvt = q.be_leakage_emission * _scalar(sc.thermal_voltage)
             ise = phi * ds.hfe_current / ds.hfe_min / math.expm1(abs(_scalar(vbe_t)) / nvt)
             q = replace(q, be_leakage_current=ise)
         return unit(q, ds.hfe_min)
@@ -650,19 +798,34 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
         if both:
             # fall-off and roll-off together: the knee and the recombination share interact
             # strongly (a large share makes the gain rise with current), so solve them jointly
+            # with an I_CEO figure the emission coefficient joins them: solved in turn, the
+            # open-base figure and the knee drifted apart sweep by sweep
+            triple = ds.iceo_max is not None
+
             def pair(u):
+                extra = {"be_leakage_emission": u[2]} if triple else {}
                 try:
-                    return [f_knee(math.exp(u[0]), phi=_logistic(u[1])) / ds.hfe_high_min,
-                            f_phi(u[1], knee_current=math.exp(u[0])) / ds.hfe_low_min]
+                    out = [f_knee(math.exp(u[0]), phi=_logistic(u[1]), **extra)
+                           / ds.hfe_high_min,
+                           f_phi(u[1], knee_current=math.exp(u[0]), **extra) / ds.hfe_low_min]
+                    if triple:
+                        if not EMISSION_RANGE[0] <= u[2] <= EMISSION_RANGE[1]:
+                            return [math.nan] * 3
+                        q = build(knee_current=math.exp(u[0]), phi=_logistic(u[1]), **extra)
+                        q = unit(replace(q, cbo_leakage=ds.icbo_max), ds.hfe_max)
+                        out.append(math.log(_scalar(iceo_at(q, ds.iceo_vce)) / ds.iceo_max))
+                    return out
                 except (DatasheetError, OverflowError):
                     # a trial point far outside (a gain of 1e5 sent the solver's logit to
                     # -1e3, whose exp overflowed): not a solution
-                    return [math.nan, math.nan]
+                    return [math.nan] * (3 if triple else 2)
             phi0 = min(max(state["phi"], 1e-3), 1.0 - 1e-3)
             knee0 = state["knee_current"]
             if not knee0 < 1e3 * ds.hfe_high_current:
                 knee0 = ds.hfe_high_current
             u0 = [math.log(knee0), math.log(phi0 / (1.0 - phi0))]
+            if triple:
+                u0.append(state["be_leakage_emission"])
             from scipy import optimize  # here: a worker evaluating chunks never fits
 
             with np.errstate(all="ignore"):
@@ -672,6 +835,10 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
         if joint is not None:
             state["knee_current"] = math.exp(joint[0])
             state["phi"] = _logistic(joint[1])
+            if len(joint) == 3:
+                state["be_leakage_emission"] = float(joint[2])
+        elif ds.iceo_max is not None:
+            _fit_open_base(ds, state, f_knee, f_phi, build, unit, solve)
         else:
             # with both figures the joint solve failed: the message names the pair (the
             # model's minimum unit meets both floors exactly; 200 / 40 at 100 mA / 60 at
@@ -689,6 +856,7 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
                 logit = solve(f_phi, -40.0, 20.0, "hfe_low_min",
                               "no recombination current gives this roll-off", log=False)
                 state["phi"] = _logistic(logit)
+
 
         def f_rc(rc):
             q = build(collector_resistance=rc)
@@ -746,4 +914,7 @@ def model_figures(device: FittedDevice) -> dict[str, float]:
         out["vbe_sat_max"] = _scalar(vbe)
     out["vbe_on"] = _scalar(hfe_at(q_typ, ds.vbe_on_current, ds.vbe_on_vce)[1])
     out["icbo_max"] = _scalar(icbo_at(device.parameters(ds.hfe_median, ds.icbo_max), ds.icbo_vcb))
+    if ds.iceo_max is not None:
+        out["iceo_max"] = _scalar(iceo_at(device.parameters(ds.hfe_max, ds.icbo_max),
+                                          ds.iceo_vce))
     return out

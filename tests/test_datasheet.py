@@ -321,3 +321,84 @@ def test_a_fixed_gain_outside_the_datasheet_is_noted(tmp_path):
     assert any("fixed at 1000" in n and "100 .. 300" in n for n in far.notes())
     inside = _study(tmp_path, 'device = "small_signal_npn"\nhfe = 150')
     assert not any("fixed at" in n for n in inside.notes())
+
+
+# ---------------------------------------------------------------------------------------------
+# the open-base leakage (I_CEO)
+# ---------------------------------------------------------------------------------------------
+
+def _with_iceo(iceo, vce="30 V", name="medium_power_npn"):
+    from tolerance.units import parse_quantity
+    figures = dict(library()[name].figures)
+    figures.update(iceo_max=parse_quantity(iceo, "A"), iceo_vce=parse_quantity(vce, "V"))
+    return figures
+
+
+def _open_base_by_brentq(params, vce):
+    # reference (scipy.optimize.brentq): the base-emitter voltage at which the base current
+    # is zero with V_BC = V_BE - V_CE; at these currents the series resistances drop
+    # picovolts, so the junction voltages are the terminal ones
+    from scipy.optimize import brentq
+
+    from tolerance.models.transistor import REFERENCE_TEMPERATURE, junction_currents
+    scaled = params.at_temperature(np.array([REFERENCE_TEMPERATURE]))
+
+    def base(v):
+        return float(junction_currents(scaled, np.array([v]), np.array([v - vce])).base[0])
+    v = brentq(base, 0.0, 0.7, xtol=1e-15, rtol=1e-14)
+    return float(junction_currents(scaled, np.array([v]), np.array([v - vce])).collector[0])
+
+
+@pytest.mark.parametrize("iceo", ["150 nA", "400 nA", "1.5 uA"])
+def test_an_iceo_figure_sets_the_open_base_leakage(iceo):
+    # datasheet practice: I_CEO max bounds the leakiest unit, here the highest gain at
+    # icbo_max; the fit meets it by the recombination current's emission coefficient and
+    # keeps every other figure (module table of tolerance.models.datasheet)
+    from tolerance.models.datasheet import iceo_at
+    device = device_for(_with_iceo(iceo))
+    ds = device.datasheet
+    got = model_figures(device)
+    for key, value in got.items():
+        assert value == pytest.approx(getattr(ds, key), rel=1e-6 if key != "icbo_max" else 0.02), key
+    worst = device.parameters(ds.hfe_max, ds.icbo_max)
+    assert _open_base_by_brentq(worst, ds.iceo_vce) == pytest.approx(ds.iceo_max, rel=1e-6)
+    assert float(iceo_at(worst, ds.iceo_vce)[0]) == pytest.approx(ds.iceo_max, rel=1e-9)
+    # more open-base leakage means a gain that rolls off less steeply: n below 2
+    n = float(device.template.be_leakage_emission)
+    assert 1.0 < n < 4.0 and (n < 2.0) == (ds.iceo_max > 3e-7)
+    # without the figure the textbook n = 2 stays (from memory: Sze)
+    plain = device_for(library()["medium_power_npn"].figures)
+    assert float(plain.template.be_leakage_emission) == 2.0
+
+
+@pytest.mark.parametrize("change, key, match", [
+    ({"iceo_vce": None}, "iceo_vce", "go together"),
+    ({"iceo_max": 5e-8}, "iceo_max", "not above icbo_max"),
+    ({"iceo_vce": 60.0}, "iceo_vce", "above breakdown_vceo"),
+    ({"hfe_low_current": None, "hfe_low_min": None}, "iceo_max", "needs hfe_low_current"),
+    ({"iceo_max": 1e-4}, "iceo_max", r"between 1e-07 and \d\.\d+e-06 A"),
+])
+def test_impossible_iceo_figures_are_refused(change, key, match):
+    # common practice, no source: with the base open the collector-base leakage flows on
+    # multiplied by 1 + the gain, so I_CEO exceeds I_CBO; a roll-off from hfe_low_min = 25
+    # at 5 mA bounds the gain at microamperes
+    figures = dict(_with_iceo("1 uA"), **change)
+    figures = {k: v for k, v in figures.items() if v is not None}
+    with pytest.raises(DatasheetError, match=match) as info:
+        fit_datasheet(Datasheet.from_figures(figures))
+    assert info.value.key == key
+
+
+def test_an_iceo_figure_fits_without_a_fall_off_figure():
+    # without hfe_high the knee is not fitted and the share alone meets the roll-off at
+    # each trial emission; the figures hold as with it
+    from tolerance.models.datasheet import iceo_at
+    figures = {k: v for k, v in _with_iceo("600 nA").items()
+               if k not in ("hfe_high_current", "hfe_high_min")}
+    device = fit_datasheet(Datasheet.from_figures(figures))
+    ds = device.datasheet
+    got = model_figures(device)
+    for key in ("hfe_min", "hfe_max", "hfe_low_min", "vce_sat_max", "vbe_on", "iceo_max"):
+        assert got[key] == pytest.approx(getattr(ds, key), rel=1e-6), key
+    worst = device.parameters(ds.hfe_max, ds.icbo_max)
+    assert float(iceo_at(worst, ds.iceo_vce)[0]) == pytest.approx(6e-7, rel=1e-9)

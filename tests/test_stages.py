@@ -1729,3 +1729,59 @@ def test_every_gain_screen_ends_at_its_limits(write_study):
                          capture_output=True, text=True)
     assert res.returncode == 2 and "parts.Q1.hfe.nominal" in res.stderr
     assert "min = ..., max = ..." in res.stderr
+
+
+OPEN_BASE_DARLINGTON = """
+stage = "darlington"
+[ambient]
+temperature = "25 degC"
+[supply]
+voltage = "24 V"
+[drive]
+high = "5 V"
+low = "0 V"
+[parts.RB]
+value = "4k7"
+[parts.Q1]
+device = "small_signal_npn"
+[parts.Q2]
+device = "medium_power_npn"
+hfe = 250
+icbo = {{min = "100 nA", max = "100 nA"}}
+{iceo}
+[load]
+kind = "resistor"
+resistance = "100 ohm"
+"""
+
+
+@pytest.mark.parametrize("iceo", ["200 nA", "1 uA"])
+def test_an_iceo_figure_sets_an_open_base_output_s_leakage(tmp_path, iceo):
+    # a Darlington without RBE2 leaves the output's base open in the off state but for the
+    # driver's emitter (common practice, no source): the stage's off-state current is the
+    # output's I_CEO, and here the output is the unit the figure bounds (h_FE max 250 at
+    # I_CBO max, 25 degC, V_CE = the supply less a microvolt)
+    from tolerance.units import parse_quantity
+    text = OPEN_BASE_DARLINGTON.format(iceo=f'iceo_max = "{iceo}"\niceo_vce = "24 V"')
+    study = study_from(tmp_path, text)
+    off = study.stage.dc(nominal(study))["off_current"][0]
+    # the driver's own leakage (its base held at 0 V through RB) adds its share through the
+    # output's gain: about 9 nA with either figure
+    assert parse_quantity(iceo, "A") <= off <= parse_quantity(iceo, "A") + 15e-9
+    # the report lists the figure the fit met; without it, the model's own
+    from tolerance.models.stages.evaluation import device_assumptions
+    rows = {r["part"]: r["iceo"] for r in device_assumptions(study.stage)}
+    assert rows["Q2"] == f"{iceo} at 24 V" and rows["Q1"].endswith("at 30 V (model)")
+
+
+def test_a_monolithic_pair_takes_no_die_iceo(tmp_path):
+    # a monolithic pair's datasheet I_CEO is the whole part's, its dies shunted by the
+    # internal resistors: it fits neither die (common practice, no source)
+    text = (Path(__file__).resolve().parents[1] / "studies"
+            / "engine_bay_heater_darlington.toml").read_text(encoding="utf-8")
+    text = text.replace('device = "monolithic_darlington"',
+                        'device = "monolithic_darlington"\niceo_max = "1 uA"\n'
+                        'iceo_vce = "20 V"', 1)
+    with pytest.raises(Exception, match=r"parts\.Q2\.iceo_max: a monolithic Darlington's "
+                                        r"I_CEO is the whole part's"):
+        study_from(tmp_path, text)

@@ -1432,12 +1432,16 @@ DEVICES_NOTE = (
     "any figure the study gives in their place. The library's classes hold typical class "
     "values from memory, not a datasheet: for a sign-off enter the chosen part's own figures "
     "in its [parts.Qn] table (README, 'Stage keys') and check them here. theta_JA is the "
-    "path the stage uses, a heatsink included.")
+    "path the stage uses, a heatsink included. I_CEO is the collector current with the base "
+    "open (the highest-gain unit at I_CBO max, 25 degC): the study's iceo_max where it gives "
+    "one, else the model's own figure, marked (model), to set beside the part's datasheet; "
+    "it decides the off-state leakage of an output without a base-emitter resistor.")
 
 #: the device table's columns: heading, key of :func:`models.stages.evaluation.device_assumptions`
 DEVICE_COLUMNS = (("part", "part"), ("class", "class"), ("type", "polarity"),
                   ("h_FE min .. max", "hfe"), ("V_CE(sat) max", "vce_sat_max"),
                   ("V_BE(on)", "vbe_on"), ("I_CBO max", "icbo_max"),
+                  ("I_CEO max (base open)", "iceo"),
                   ("V_(BR)CEO", "breakdown_vceo"), ("I_C max", "ic_max"),
                   ("P_tot", "power_rating"), ("T_j max", "tj_max"), ("theta_JA", "theta_ja"))
 

@@ -473,6 +473,15 @@ def configure(reader):
                 raise q1_table.error(key, "a monolithic Darlington is one part: its driver "
                                           "die comes with [parts.Q2]'s device, and its "
                                           "mounting is given on [parts.Q2]")
+        for table in (q1_table, q2_table):
+            for key in ("iceo_max", "iceo_vce"):
+                if table.has(key):
+                    # a monolithic pair's datasheet I_CEO is the whole part's, its dies'
+                    # leakage shunted by the internal resistors; it fits neither die
+                    raise table.error(key, "a monolithic Darlington's I_CEO is the whole "
+                                           "part's, set by its internal base-emitter "
+                                           "resistors, not a die's open-base figure; state "
+                                           "an off_current window in [limits] instead")
         q1 = read_transistor(parts, "Q1", "Darlington driver", polarity="npn",
                              base_figures=entry.dies["driver"],
                              supply_minimum=env.supply_minimum, required=False)

@@ -1058,6 +1058,7 @@ def device_assumptions(stage) -> list[dict]:
                            f"{q(ds.vce_sat_ib, 'A')}",
             "vbe_on": q(ds.vbe_on, "V"),
             "icbo_max": q(ds.icbo_max, "A"),
+            "iceo": _open_base_leakage(part.device),
             "breakdown_vceo": q(ds.breakdown_vceo, "V"),
             "ic_max": q(ds.ic_max, "A"),
             "power_rating": q(ds.power_rating, "W"),
@@ -1068,6 +1069,22 @@ def device_assumptions(stage) -> list[dict]:
         if charge is not None:
             rows[-1].update(charge_assumptions(charge, ds.hfe_median, ds.reverse_beta))
     return rows
+
+
+def _open_base_leakage(device) -> str:
+    """The collector current with the base open at 25 degC of the highest-gain, leakiest unit
+    (what a datasheet's I_CEO maximum bounds), as text: the datasheet's figure where the
+    study gives one (the fit meets it), else the model's at the I_CBO test voltage (at most
+    V_(BR)CEO), which a review can set beside the part's own datasheet."""
+    from tolerance.models.datasheet import iceo_at
+    from tolerance.units import format_quantity as q
+
+    ds = device.datasheet
+    if ds.iceo_max is not None:
+        return f"{q(ds.iceo_max, 'A')} at {q(ds.iceo_vce, 'V')}"
+    vce = min(ds.icbo_vcb, ds.breakdown_vceo)
+    current = float(iceo_at(device.parameters(ds.hfe_max, ds.icbo_max), vce)[0])
+    return f"{q(current, 'A')} at {q(vce, 'V')} (model)"
 
 
 def charge_assumptions(charge, forward_beta, reverse_beta) -> dict[str, str]:
