@@ -784,3 +784,95 @@ def test_equal_yields_go_to_the_candidate_with_the_most_room_to_its_limits():
     assert pick_best(study, [cand(220.0, 3.05), cand(150.0, 3.0)], ["RB"]) == 1
     assert pick_best(study, [cand(150.0, 9.0, 0.98), cand(220.0, 0.1)], ["RB"]) == 1
     assert pick_best(study, [cand(220.0, math.nan), cand(150.0, math.nan)], ["RB"]) == 1
+
+
+# ---------------------------------------------------------------------------------------------
+# the Python API's arguments (found by a helper using the API from the README alone)
+# ---------------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("override, match", [
+    (Override("pin", -1.0), "must be positive"),
+    (Override("pin", 0.0), "must be positive"),
+    (Override("scale", 0.0), "a scale must be a positive factor"),
+    (Override("bogus", 2.0), "kind must be 'pin' or 'scale'"),
+    (Override("pin", "1k"), "the value must be a number"),
+])
+def test_run_refuses_overrides_the_study_file_would(override, match):
+    # a resistor pinned at -1 ohm ran and passed every criterion through run(overrides=...),
+    # which whatif and choose refuse
+    demo = load_study(None)
+    with pytest.raises(UsageError, match=match):
+        run(demo, samples=20, overrides={"RB": override})
+
+
+def test_analysis_arguments_are_whole_and_reproducible(tmp_path):
+    import json
+
+    from tolerance.analysis import study_sensitivity, study_worst_case
+    from tolerance.api import demo_text
+    demo = load_study(None)
+    # a float seed ran the Monte Carlo and then failed in the optimizer's generator; None
+    # gave other figures every call: the study's own is taken and recorded
+    wc = demo.worstcase(samples=60.0, seed=3.0)
+    assert wc["seed"] == 3 and type(wc["seed"]) is int and wc["monte_carlo_samples"] == 60
+    a = study_sensitivity(demo, 60, None, 64, bootstrap=20)
+    b = study_sensitivity(demo, 60, None, 64, bootstrap=20)
+    assert a["seed"] == demo.settings.seed
+    assert json.dumps(a["sobol"]) == json.dumps(b["sobol"])  # NaN for constant metrics
+    # the Sobol size is checked before the run (2^20 ran out of memory after it)
+    for n in (0, -64, 100, 2**20):
+        with pytest.raises(UsageError, match="power of two from 64 to 262,144"):
+            demo.sensitivity(samples=20, sobol_samples=n)
+    # a study file's path is taken where a study is
+    study_file = tmp_path / "demo.toml"
+    study_file.write_text(demo_text(), encoding="utf-8")
+    assert study_worst_case(study_file, 40, 1)["seed"] == 1
+
+
+def test_api_argument_types_are_usage_errors(tmp_path):
+    demo = load_study(None)
+    study_file = tmp_path / "demo.toml"
+    from tolerance.api import demo_text
+    study_file.write_text(demo_text(), encoding="utf-8")
+    for bad in (42, b"x.toml"):
+        with pytest.raises(UsageError, match="takes the path of a study file"):
+            load_study(bad)
+    with pytest.raises(UsageError, match="the path is empty"):
+        load_study("")
+    with pytest.raises(UsageError, match="target_ci must be a failure rate"):
+        run(demo, samples=10, target_ci="a")
+    with pytest.raises(UsageError, match="needs backend='dask'"):
+        run(demo, samples=10, scheduler="tcp://127.0.0.1:9")
+    with pytest.raises(UsageError, match="chunk size must be from 1 to 10,000,000"):
+        run(demo, samples=10, chunk_size=10**8)
+    # a path where a study is expected: loaded, the same figures as the study
+    assert run(str(study_file), samples=30).summary["criteria"] == \
+        run(load_study(study_file), samples=30).summary["criteria"]
+    # choose takes a list as whatif does, and one sweep as text (its characters were counted)
+    from tolerance.choose import choose
+    assert demo.choose(["RB=E6:1k..2k"], samples=30.0)["samples"] == 30
+    assert choose(demo, "RB=E6:1k..2k", samples=30)["vary"]["RB"] == [1000.0, 1500.0]
+
+
+def test_result_plots_say_why_they_cannot_draw():
+    demo = load_study(None)
+    plain = run(demo, samples=100, insights=False)
+    with pytest.raises(ValueError, match="no rank sensitivities"):
+        plain.plot.tornado("drive_margin")
+    with pytest.raises(ValueError, match="insights=False"):
+        plain.plot.driver_scatter("saturation")
+    full = run(demo, samples=100)
+    with pytest.raises(ValueError, match="does not vary with any input"):
+        full.plot.driver_scatter("thermal_runaway")
+    with pytest.raises(KeyError, match="no input 'nope'"):
+        full.plot.driver_scatter("saturation", "nope")
+
+
+def test_the_analyses_runs_take_jobs_without_changing_a_figure():
+    # README: --jobs sets the workers for the samples of worstcase and sensitivity too (they
+    # ran on one whatever was asked); the results do not depend on it
+    import json
+    demo = load_study(None)
+    one = demo.sensitivity(samples=300, seed=4, sobol_samples=64, jobs=1)
+    two = demo.sensitivity(samples=300, seed=4, sobol_samples=64, jobs=2)
+    assert json.dumps(one, sort_keys=True) == json.dumps(two, sort_keys=True)

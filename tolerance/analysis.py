@@ -240,18 +240,40 @@ def check_varies(study: Study) -> list:
     return varying
 
 
-def study_sensitivity(study: Study, samples: int, seed: int, sobol_n: int,
+def _samples_and_seed(study: Study, samples, seed) -> tuple[int, int]:
+    """The run's sample count and seed as whole numbers, the study's own where None: both
+    are recorded and the seed also draws the analysis's own design, so a float seed that the
+    run took (3.0) ended in a traceback there, and None gave other figures every call."""
+    from tolerance.api import make_spec
+
+    spec = make_spec(study, samples, seed)
+    return spec.samples, spec.seed
+
+
+def study_sensitivity(study: Study, samples: int | None, seed: int | None, sobol_n: int,
                       bootstrap: int = 200, sampler: str | None = None,
-                      chunk_size: int | None = None) -> dict:
-    """Rank sensitivities on a Monte Carlo run and Sobol indices on a dedicated design.
+                      chunk_size: int | None = None, jobs: int = 1) -> dict:
+    """Rank sensitivities on a Monte Carlo run and Sobol indices on a dedicated design
+    (``samples`` and ``seed`` None: the study's; ``sobol_n`` a power of two from
+    ``sensitivity.MIN_SOBOL_N`` to ``MAX_SOBOL_N``; ``jobs`` workers for the run).
 
     Sobol indices assume independent inputs: correlations of the study are not applied to the
     Sobol design (the result says so when the study has any).
     """
-    from tolerance.api import run
+    from tolerance.api import UsageError, _whole, as_study, run
 
+    study = as_study(study)
     varying = check_varies(study)
-    res = run(study, samples=samples, seed=seed, sampler=sampler, chunk_size=chunk_size)
+    samples, seed = _samples_and_seed(study, samples, seed)
+    sobol_n = _whole(sobol_n, "sobol_samples")
+    if sobol_n & (sobol_n - 1) or not (sensitivity.MIN_SOBOL_N <= sobol_n
+                                         <= sensitivity.MAX_SOBOL_N):
+        # before the Monte Carlo run, not after it (2^20 ran out of memory there)
+        raise UsageError(f"sobol_samples must be a power of two from "
+                         f"{sensitivity.MIN_SOBOL_N} to {sensitivity.MAX_SOBOL_N:,} (e.g. "
+                         f"1024), got {sobol_n:,}")
+    res = run(study, samples=samples, seed=seed, sampler=sampler, chunk_size=chunk_size,
+              jobs=jobs)
     df = res.samples
     rank = sensitivity.rank_sensitivity(df[[p.name for p in varying]],
                                         df[list(study.stage.metrics)])
@@ -282,14 +304,18 @@ def study_sensitivity(study: Study, samples: int, seed: int, sobol_n: int,
     }
 
 
-def study_worst_case(study: Study, samples: int, seed: int, sampler: str | None = None,
-                     chunk_size: int | None = None) -> dict:
+def study_worst_case(study: Study, samples: int | None, seed: int | None,
+                     sampler: str | None = None, chunk_size: int | None = None,
+                     jobs: int = 1) -> dict:
     """Extreme-value, RSS and optimizer extremes per metric beside the Monte Carlo extremes
-    (the Monte Carlo run drawn with ``sampler`` in chunks of ``chunk_size``, the study's own
-    when None)."""
-    from tolerance.api import run
+    (the Monte Carlo run drawn with ``sampler`` in chunks of ``chunk_size`` on ``jobs``
+    workers; ``samples``, ``seed``, ``sampler`` and ``chunk_size`` None: the study's own)."""
+    from tolerance.api import as_study, run
 
-    res = run(study, samples=samples, seed=seed, sampler=sampler, chunk_size=chunk_size)
+    study = as_study(study)
+    samples, seed = _samples_and_seed(study, samples, seed)
+    res = run(study, samples=samples, seed=seed, sampler=sampler, chunk_size=chunk_size,
+              jobs=jobs)
     mc = {m: {k: res.summary["metrics"][m][k] for k in ("min", "max", "p001", "p999")}
           for m in study.stage.metrics}
     bounds = bounds_for(study)

@@ -9,6 +9,8 @@
 from __future__ import annotations
 
 import json
+import math
+import os
 import shutil
 from dataclasses import dataclass, field
 from importlib import resources
@@ -63,10 +65,30 @@ DEMO_NAME = "demo.toml"
 
 
 def load_study(path=None) -> Study:
-    """Load a study file; with no path, the built-in demo study."""
+    """Load a study file (a ``str`` or ``os.PathLike`` path); with no path, the built-in
+    demo study. Raises :class:`~tolerance.study.StudyError` for a bad file and
+    :class:`UsageError` for an argument that is no path."""
     if path is None:
         return _load_study_file(BUILT_IN + DEMO_NAME, text=demo_text())
+    if not isinstance(path, (str, os.PathLike)):
+        # 42 and b"..." raised os.fspath's own TypeError
+        raise UsageError(f"load_study takes the path of a study file (str or pathlib.Path), "
+                         f"got {type(path).__name__}")
+    if not str(os.fspath(path)).strip():
+        raise UsageError("load_study: the path is empty; give a study file's path, or none "
+                         "for the built-in demo")
     return _load_study_file(path)
+
+
+def as_study(study) -> Study:
+    """A :class:`~tolerance.study.Study`, loaded first where a path is given (the API's
+    functions took a path and failed with an AttributeError on it)."""
+    if isinstance(study, Study):
+        return study
+    if isinstance(study, (str, os.PathLike)):
+        return load_study(study)
+    raise UsageError(f"expected a Study (tolerance.load_study(path)) or a study file's path, "
+                     f"got {type(study).__name__}")
 
 
 @dataclass
@@ -77,7 +99,9 @@ class RunResult:
     ----------
     study : Study
     summary : dict
-        See README "Outputs" (also written as summary.json).
+        What the run found, as written to summary.json: the verdict, the yield, every
+        criterion's failures with their interval, every metric's spread (README
+        "Commands" and "Statistics").
     folder : Path or None
         Output folder, when the run wrote one.
     """
@@ -159,6 +183,8 @@ class ResultPlots:
         from tolerance import plots
 
         self._check(metric)
+        if "sensitivity" not in self._r.summary:
+            raise ValueError("this run has no rank sensitivities: run it with insights=True")
         if measure not in ("srrc", "spearman", "prcc"):
             raise ValueError(f"measure must be srrc, spearman or prcc, got {measure!r}")
         if not isinstance(top, int) or top < 1:
@@ -173,17 +199,27 @@ class ResultPlots:
         if crit is None:
             raise KeyError(f"no criterion {criterion!r}; criteria: "
                            f"{', '.join(self._r.summary['criteria'])}")
+        inputs = [p["name"] for p in self._r.summary.get("parameters", [])]
         if input_name is None:
             ranking = self._r.summary.get("failure_drivers", {}).get(criterion, {}).get(
                 "ranking") or []
             if ranking:
                 input_name = ranking[0]["input"]
             else:
-                rows = [r for r in self._r.summary.get("sensitivity", [])
+                if "sensitivity" not in self._r.summary:
+                    raise ValueError(f"this run has no failure drivers or rank measures "
+                                     f"(insights=False): name the input, "
+                                     f"driver_scatter({criterion!r}, input_name)")
+                rows = [r for r in self._r.summary["sensitivity"]
                         if r["metric"] == crit["metric"] and r.get("spearman") is not None]
                 if not rows:
-                    raise ValueError(f"no varying input to plot against {criterion!r}")
+                    raise ValueError(f"{criterion!r} has no failures and its metric "
+                                     f"{crit['metric']!r} does not vary with any input in "
+                                     f"this run, so no input drives it; name one, "
+                                     f"driver_scatter({criterion!r}, input_name)")
                 input_name = max(rows, key=lambda r: abs(r["spearman"]))["input"]
+        elif inputs and input_name not in inputs:
+            raise KeyError(f"no input {input_name!r}; inputs: {', '.join(inputs)}")
         units = {p["name"]: p["unit"] for p in self._r.summary.get("parameters", [])}
         return plots.driver_scatter(self._r.samples, input_name, crit["metric"],
                                     self._r.summary, units)
@@ -276,6 +312,8 @@ def write_json(path: Path, data: dict) -> None:
 
 #: most samples of one run, as the study file and the command line allow
 MAX_SAMPLES = 10**9
+#: largest chunk, as the study file and the command line allow
+MAX_CHUNK = 10**7
 
 
 def _whole(value, name: str) -> int:
@@ -286,6 +324,30 @@ def _whole(value, name: str) -> int:
             return int(value)
         raise UsageError(f"{name} must be a whole number, got {value!r}")
     return int(value)
+
+
+def _check_override(p, name: str, o: Override) -> None:
+    """An override the study file would accept for the parameter, or a UsageError: a pin or
+    a scaled spread that the study file would refuse (a resistor of -1 ohm ran and passed
+    every criterion through the Python API, which whatif and choose refuse)."""
+    if o.kind not in ("pin", "scale"):
+        raise UsageError(f"overrides[{name!r}]: kind must be 'pin' or 'scale', got {o.kind!r}")
+    if isinstance(o.value, bool) or not isinstance(o.value, (int, float, np.integer,
+                                                             np.floating)):
+        raise UsageError(f"overrides[{name!r}]: the value must be a number, got {o.value!r}")
+    value = float(o.value)
+    if o.kind == "pin":
+        checks = [(value, "")]
+    else:
+        if not (math.isfinite(value) and value > 0):
+            raise UsageError(f"overrides[{name!r}]: a scale must be a positive factor, got "
+                             f"{value:g}")
+        checks = [(p.nominal * value, ""), (p.low * value, ", at an end of its spread"),
+                  (p.high * value, ", at an end of its spread")]
+    for x, where in checks:
+        problem = p.out_of_range(x)
+        if problem:
+            raise UsageError(f"overrides[{name!r}] ({o.kind} {value:g}{where}): {problem}")
 
 
 def make_spec(study: Study, samples: int | None = None, seed: int | None = None,
@@ -300,11 +362,12 @@ def make_spec(study: Study, samples: int | None = None, seed: int | None = None,
     if sampler not in SAMPLERS:
         raise UsageError(f"sampler must be one of {', '.join(SAMPLERS)}, got {sampler!r}")
     overrides = overrides or {}
-    for name in overrides:
+    for name, o in overrides.items():
         if name not in study.parameter_names:
             raise UsageError(f"'{name}' is not a parameter of {study.path}"
                              f"{parameter_hint(name, study.parameter_names)}; "
                              f"parameters: {', '.join(study.parameter_names)}")
+        _check_override(study.parameter(name), name, o)
     corr = study.correlation_matrix() if study.correlations else None
     return RunSpec(study.stage, study.parameters, study.criteria, corr, sampler, seed, samples,
                    study.study_hash, tuple(sorted(overrides.items())), code_digest())
@@ -334,6 +397,18 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     out : path, optional
         Output folder for summary.json and samples.parquet; without it the samples stay in
         memory.
+    progress : bool
+        Show a progress bar on standard error.
+    resume : bool
+        Continue the run in ``out`` (its finished chunks are kept; the same study, seed,
+        samples and sampler only).
+    force : bool
+        Replace a result folder at ``out`` (never a folder holding other files).
+    backend : {"loky", "dask"}
+        Where the chunks run: local worker processes, or dask.distributed (a local cluster,
+        or ``scheduler``'s); results do not depend on it.
+    scheduler : str, optional
+        Address of a dask scheduler (``tcp://host:8786``); with ``backend="dask"`` only.
     overrides : dict, optional
         Parameter name -> :class:`~tolerance.runner.Override` (what-if pins, value choice).
     target_ci : float, optional
@@ -350,11 +425,12 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         raise UsageError("overrides map parameter names to tolerance.runner.Override "
                          "(e.g. Override('pin', 1000.0)); for a plain value use "
                          "study.whatif('RB=1k')")
+    study = as_study(study)
     spec = make_spec(study, samples, seed, sampler, overrides)
     chunk = (study.settings.chunk_size if chunk_size is None
              else _whole(chunk_size, "chunk_size"))
-    if chunk < 1:
-        raise UsageError(f"chunk size must be at least 1, got {chunk}")
+    if not 1 <= chunk <= MAX_CHUNK:
+        raise UsageError(f"chunk size must be from 1 to {MAX_CHUNK:,}, got {chunk}")
     jobs = _whole(jobs, "jobs")
     if jobs < 1:
         raise UsageError(f"jobs must be at least 1, got {jobs}")
@@ -362,6 +438,9 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
         raise UsageError("resume continues a run in its folder: give out= as well")
     if backend not in ("loky", "dask"):
         raise UsageError(f"backend must be loky or dask, got {backend!r}")
+    if scheduler is not None and backend != "dask":
+        # it was ignored and the run went to local workers
+        raise UsageError("a scheduler needs backend='dask' (--scheduler needs --backend dask)")
     if backend == "dask":
         try:  # before anything is written; the parent needs it to reach the cluster
             import distributed  # noqa: F401
@@ -371,6 +450,10 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
                              "checkout)") from None
     stop_rule = None
     if target_ci is not None:
+        if isinstance(target_ci, bool) or not isinstance(target_ci, (int, float, np.integer,
+                                                                     np.floating)):
+            raise UsageError(f"target_ci must be a failure rate (a number, e.g. 0.001), got "
+                             f"{target_ci!r}")
         if not 0 < target_ci < 0.5:
             raise UsageError(f"--target-ci: the interval half-width must lie between 0 and "
                              f"0.5 (a failure rate, e.g. 0.001 or 100ppm), got {target_ci:g}")

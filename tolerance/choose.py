@@ -245,6 +245,14 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
            sampler: str | None = None, jobs: int = 1, tradeoff: tuple[str, str] | None = None,
            chunk_size: int | None = None) -> dict:
     """Sweep candidate values; see the module docstring."""
+    from tolerance.api import as_study, make_spec
+
+    study = as_study(study)
+    if isinstance(varies, str):
+        varies = [varies]  # one sweep given as text, not its characters
+    # the recorded sample count and seed are whole numbers, the study's where None
+    spec = make_spec(study, samples, seed)
+    samples, seed = spec.samples, spec.seed
     sweeps, tradeoff = check_request(study, varies, tradeoff)
     names = [n for n, _ in sweeps]
     metrics = study.stage.metrics
@@ -296,11 +304,11 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
                          _direction(study, tradeoff[1], given))
     first = candidates[0]
     notes = _unjudged_drive(study, summaries[best]) + _unconverged(candidates, names, study)
-    n_samples = run_samples = samples if samples is not None else study.settings.samples
+    n_samples = run_samples = samples
     used_sampler = sampler or study.settings.sampler
     return {
         "study": study.path, "study_hash": study.study_hash, "title": study.title,
-        "seed": study.settings.seed if seed is None else seed, "samples": n_samples,
+        "seed": seed, "samples": n_samples,
         "sampler": used_sampler, "vary": {n: [float(v) for v in vals] for n, vals in sweeps},
         "units": {n: study.parameter(n).unit for n in names},
         "tradeoff": {m: {"statistic": ends[m], "unit": metrics[m].unit,

@@ -88,7 +88,7 @@ def _fraction(text: str) -> float:
 
 
 def _sobol_rows(text: str) -> int:
-    from tolerance.sensitivity import MIN_SOBOL_N
+    from tolerance.sensitivity import MAX_SOBOL_N, MIN_SOBOL_N
 
     n = _positive_int(text)
     if n & (n - 1) or n < MIN_SOBOL_N or n > MAX_SOBOL_N:
@@ -98,11 +98,6 @@ def _sobol_rows(text: str) -> int:
     return n
 
 
-#: the largest ``--sobol-samples``: its design holds N (d + 2) points of d numbers beside
-#: the d N of its B-in-A columns, some 3 GB at 2^18 and 26 parameters
-#: (sensitivity.sobol_analysis), and costs N (d + 2) evaluations of the stage, 7.3 million
-#: there; 2^40 asked for 208 TiB and ended in a traceback
-MAX_SOBOL_N = 2**18
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -421,7 +416,8 @@ def cmd_worstcase(args) -> int:
     study = _load(args.study)
     out = _analysis_out(args, study, "-worstcase")
     result = study_worst_case(study, _samples(args, study), args.seed if args.seed is not None
-                              else study.settings.seed, args.sampler, args.chunk_size)
+                              else study.settings.seed, args.sampler, args.chunk_size,
+                              jobs=args.jobs)
     write_json(out / "worstcase.json", _stamped(result, study))
     _write_report(out, args.jobs)
     if not args.quiet:
@@ -445,7 +441,8 @@ def cmd_sensitivity(args) -> int:
     out = _analysis_out(args, study, "-sensitivity")
     result = study_sensitivity(study, _samples(args, study), args.seed if args.seed is not None
                                else study.settings.seed, args.sobol_samples,
-                               sampler=args.sampler, chunk_size=args.chunk_size)
+                               sampler=args.sampler, chunk_size=args.chunk_size,
+                               jobs=args.jobs)
     write_json(out / "sensitivity.json", _stamped(result, study))
     _write_report(out, args.jobs)
     if not args.quiet:

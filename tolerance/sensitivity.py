@@ -46,6 +46,10 @@ __all__ = [
 # inputs scatter by more than the indices themselves (N = 2 gave S1 = 3.4 and ST = 9.6), and a
 # bootstrap needs several rows to resample
 MIN_SOBOL_N = 64
+#: the largest Sobol base sample: its design holds N (d + 2) points of d numbers beside the
+#: d N of its B-in-A columns, some 3 GB at 2^18 and 26 parameters (sobol_analysis), and
+#: costs N (d + 2) evaluations of the stage, 7.3 million there; 2^40 asked for 208 TiB
+MAX_SOBOL_N = 2**18
 #: largest share of a metric's Sobol outputs that may be replaced by their mean (common
 #: practice, no source: the bias grows with the share; a quarter gave a total index of 6.7)
 MAX_REPLACED = 0.01
@@ -420,14 +424,19 @@ def sobol_analysis(
     """
     n_int = int(n)
     if n_int != n or not _is_power_of_two(n_int):
+        # the nearest power of two within the allowed range (0 and -64 were told "try 2")
+        near = 2 ** round(math.log2(min(max(float(n), MIN_SOBOL_N), MAX_SOBOL_N)))
         raise ValueError(
-            f"n must be a power of two for the Sobol design (got {n!r}); "
-            f"try {2 ** max(1, round(math.log2(max(float(n), 2.0))))}"
+            f"n must be a power of two from {MIN_SOBOL_N} to {MAX_SOBOL_N:,} for the Sobol "
+            f"design (got {n!r}); try {near}"
         )
     n = n_int
     if n < MIN_SOBOL_N:
         raise ValueError(f"n must be at least {MIN_SOBOL_N} for the Sobol design (got {n}): "
                          "on fewer rows the indices and their bootstrap intervals mean nothing")
+    if n > MAX_SOBOL_N:
+        raise ValueError(f"n must be at most {MAX_SOBOL_N:,} for the Sobol design (got {n:,}): "
+                         "its design would not fit in memory")
     names = list(ppf)
     d = len(names)
     if d == 0:

@@ -684,30 +684,32 @@ class Study:
         return whatif(self, flat, **kwargs)
 
     def worstcase(self, samples: int | None = None, seed: int | None = None,
-                  sampler: str | None = None, chunk_size: int | None = None) -> dict:
-        """Extreme-value, RSS and optimizer worst case beside the Monte Carlo extremes."""
+                  sampler: str | None = None, chunk_size: int | None = None,
+                  jobs: int = 1) -> dict:
+        """Extreme-value, RSS and optimizer worst case beside the Monte Carlo extremes (its
+        run on ``jobs`` workers; the results do not depend on them)."""
         from tolerance.analysis import study_worst_case
 
-        return study_worst_case(self, self.settings.samples if samples is None else samples,
-                                self.settings.seed if seed is None else seed, sampler, chunk_size)
+        return study_worst_case(self, samples, seed, sampler, chunk_size, jobs=jobs)
 
     def sensitivity(self, samples: int | None = None, seed: int | None = None,
                     sobol_samples: int = 1024, sampler: str | None = None,
-                    chunk_size: int | None = None) -> dict:
-        """Rank sensitivities and Sobol indices (``sobol_samples`` a power of two of at least
-        64)."""
+                    chunk_size: int | None = None, jobs: int = 1) -> dict:
+        """Rank sensitivities and Sobol indices (``sobol_samples`` a power of two from 64 to
+        2^18; the Monte Carlo run on ``jobs`` workers)."""
         from tolerance.analysis import study_sensitivity
 
-        return study_sensitivity(self, self.settings.samples if samples is None else samples,
-                                 self.settings.seed if seed is None else seed, sobol_samples,
-                                 sampler=sampler, chunk_size=chunk_size)
+        return study_sensitivity(self, samples, seed, sobol_samples, sampler=sampler,
+                                 chunk_size=chunk_size, jobs=jobs)
 
-    def choose(self, *vary: str, **kwargs) -> dict:
+    def choose(self, *vary, **kwargs) -> dict:
         """Preferred-value sweep, e.g. ``study.choose("RBE2=E24:47..1k")``; see
         :func:`tolerance.choose.choose`."""
         from tolerance.choose import choose
 
-        return choose(self, list(vary), **kwargs)
+        # a list of sweeps, as tolerance.choose.choose takes them, is taken as well
+        flat = [v for item in vary for v in ([item] if isinstance(item, str) else item)]
+        return choose(self, flat, **kwargs)
 
     def correlation_matrix(self) -> np.ndarray:
         """Correlation matrix of the normal scores of all parameters (identity if none)."""

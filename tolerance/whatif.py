@@ -180,8 +180,12 @@ def whatif(study: Study, pins: list[str], samples: int | None = None, seed: int 
     (dict, RunResult, RunResult)
         The comparison (written as whatif.json), the baseline and the pinned run.
     """
+    from tolerance.api import as_study
     from tolerance.stats import paired_difference  # scipy.stats: only where a run compares
 
+    study = as_study(study)
+    if isinstance(pins, str):
+        pins = [pins]  # one pin given as text, not its characters
     if not pins:
         raise UsageError("whatif needs at least one --pin NAME=VALUE|min|max|pNN")
     overrides = parse_pins(study, pins)
