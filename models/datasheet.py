@@ -219,7 +219,7 @@ class Datasheet:
                 if v < 0:
                     raise DatasheetError(f.name, f"must not be negative, got {v:g}")
             elif v <= 0:
-                what = ("a leakage current" if "icbo" in f.name or "iceo" in f.name
+                what = ("a leakage current" if f.name in ("icbo_max", "iceo_max")
                         else "this figure")
                 raise DatasheetError(f.name, f"{what} must be positive, got {v:g}")
         for name in ("hfe_min", "hfe_typ", "hfe_max", "hfe_high_min", "hfe_low_min"):
@@ -263,9 +263,19 @@ class Datasheet:
                 raise DatasheetError("hfe_low_min", "must be below hfe_min (the gain rolls off "
                                                     "at low current)")
         if (self.iceo_max is None) != (self.iceo_vce is None):
-            raise DatasheetError("iceo_max" if self.iceo_max is None else "iceo_vce",
-                                 "iceo_max and iceo_vce go together")
+            # named by the figure that was given (the study's table has no other)
+            given, missing = (("iceo_max", "iceo_vce") if self.iceo_vce is None
+                              else ("iceo_vce", "iceo_max"))
+            raise DatasheetError(given, f"needs {missing} as well: iceo_max and iceo_vce go "
+                                        f"together")
         if self.iceo_max is not None:
+            # a datasheet's I_CEO is measured with the collector junction well reverse-biased,
+            # at volts to tens of volts (common practice, no source); below a volt the base
+            # floats up towards the collector and the figure is no open-base leakage
+            if self.iceo_vce < 1.0:
+                raise DatasheetError("iceo_vce", f"{self.iceo_vce:g} V is below 1 V: an I_CEO "
+                                                 f"figure is measured at volts, with the "
+                                                 f"collector junction reverse-biased")
             if self.hfe_low_current is None:
                 raise DatasheetError("iceo_max", "needs hfe_low_current and hfe_low_min: the "
                                                  "fit sets the gain's roll-off between them and "
@@ -575,8 +585,11 @@ def _fit_open_base(ds, state, f_knee, f_phi, build, unit, solve):
     """Set the emission coefficient of the base-emitter recombination current, with the knee
     and the recombination share, so that the gain figures and the I_CEO figure all hold
     (``fit_datasheet``'s state is changed in place; the joint solve there failed or the
-    datasheet gives no fall-off). Raises :class:`DatasheetError` with the range of I_CEO
-    the gain figures allow where the figure lies outside it."""
+    datasheet gives no fall-off).
+
+    Returns None where the figure is met, else the range of I_CEO the gain figures allow
+    (lowest, highest) [A], with the state at the end of it nearest the figure: the caller
+    refuses the figure once the range has settled."""
     from scipy import optimize  # here: a worker evaluating chunks never fits
 
     knee = ds.hfe_high_current is not None
@@ -613,6 +626,12 @@ def _fit_open_base(ds, state, f_knee, f_phi, build, unit, solve):
         q = unit(replace(build(**changes), cbo_leakage=ds.icbo_max), ds.hfe_max)
         return math.log(_scalar(iceo_at(q, ds.iceo_vce)) / ds.iceo_max)
 
+    def keep(n_el, u):
+        state["be_leakage_emission"] = n_el
+        state["phi"] = _logistic(u[-1])
+        if knee:
+            state["knee_current"] = math.exp(u[0])
+
     phi0 = min(max(state["phi"], 1e-3), 1.0 - 1e-3)
     u0 = [math.log(phi0 / (1.0 - phi0))]
     if knee:
@@ -621,35 +640,45 @@ def _fit_open_base(ds, state, f_knee, f_phi, build, unit, solve):
                               else ds.hfe_high_current))
     # the open-base leakage falls as n rises (the gain at microamperes rolls off more
     # steeply); below some n the roll-off figure cannot be met, and the leakage is largest
-    # at that edge, found by bisection
-    n_lo, n_hi = EMISSION_RANGE
+    # at that edge
+    n_hi = EMISSION_RANGE[1]
     u_hi = gains_at(n_hi, u0) or gains_at(n_hi, gains_at(2.0, u0) or u0)
     if u_hi is None:
         raise DatasheetError("hfe_low_min", "cannot be met by the model (no recombination "
                                             "current gives this roll-off)")
-    u_lo = gains_at(n_lo, u_hi)
-    if u_lo is None:
-        bad, good, u_lo = n_lo, n_hi, u_hi
-        while good - bad > 1e-9 * good:
-            mid = 0.5 * (bad + good)
-            u = gains_at(mid, u_lo)
+    f_hi = open_base(n_hi, u_hi)
+    least = ds.iceo_max * math.exp(f_hi)
+    if f_hi > 0.0:
+        # the figure lies below the least leakage any roll-off leaves
+        keep(n_hi, u_hi)
+        return least, None
+    # bisection towards lower n: an n where the leakage reaches the figure brackets the
+    # root with n_hi; an n where the roll-off cannot be met moves the lower end up
+    lo, hi, u_good, f_good = EMISSION_RANGE[0], n_hi, u_hi, f_hi
+    u = gains_at(lo, u_hi)
+    if u is not None:
+        f_lo = open_base(lo, u)
+        if f_lo < 0.0:  # the roll-off allows any n, and even n = 1 leaks too little
+            keep(lo, u)
+            return least, ds.iceo_max * math.exp(f_lo)
+        bracket = (lo, u)
+    else:
+        bracket = None
+        while hi - lo > 1e-5 * hi:
+            mid = 0.5 * (lo + hi)
+            u = gains_at(mid, u_good)
             if u is None:
-                bad = mid
-            else:
-                good, u_lo = mid, u
-        n_lo = good
-    f_least, f_most = open_base(n_hi, u_hi), open_base(n_lo, u_lo)
-    if not f_most >= 0.0 >= f_least:
-        raise DatasheetError(
-            "iceo_max", f"{ds.iceo_max:g} A cannot be met by the model: with hfe_low_min = "
-                        f"{ds.hfe_low_min:g} at {ds.hfe_low_current:g} A the open-base leakage "
-                        f"of the highest-gain unit lies between "
-                        f"{ds.iceo_max * math.exp(f_least):.3g} and "
-                        f"{ds.iceo_max * math.exp(f_most):.3g} A (a datasheet's I_CEO is a "
-                        f"test limit, often loose: a lower iceo_max the part still meets will "
-                        f"fit, as will a higher hfe_low_min)",
-            related=("hfe_low_min", "icbo_max"))
-    warm = {"u": u_lo}
+                lo = mid
+                continue
+            f_mid = open_base(mid, u)
+            if f_mid >= 0.0:
+                bracket = (mid, u)
+                break
+            hi, u_good, f_good = mid, u, f_mid
+        if bracket is None:  # the figure lies above the most leakage the roll-off allows
+            keep(hi, u_good)
+            return least, ds.iceo_max * math.exp(f_good)
+    warm = {"u": bracket[1]}
 
     def f(n_el):
         u = gains_at(n_el, warm["u"]) or gains_at(n_el, u_hi)
@@ -657,12 +686,45 @@ def _fit_open_base(ds, state, f_knee, f_phi, build, unit, solve):
             return math.nan
         warm["u"] = u
         return open_base(n_el, u)
-    n = optimize.brentq(f, n_lo, n_hi, xtol=1e-13, rtol=1e-12)
-    u = gains_at(n, warm["u"])
-    state["be_leakage_emission"] = n
-    state["phi"] = _logistic(u[-1])
-    if knee:
-        state["knee_current"] = math.exp(u[0])
+    n = optimize.brentq(f, bracket[0], hi, xtol=1e-13, rtol=1e-12)
+    keep(n, gains_at(n, warm["u"]) or gains_at(n, u_hi))
+    return None
+
+
+def _iceo_refusal(ds, reach) -> DatasheetError:
+    """The refusal of an I_CEO figure outside the range (lowest, highest) the gain figures
+    allow (highest None: the figure lies below the lowest), each shown to as many digits as
+    it takes to differ from the figure."""
+    least, most = reach
+    digits = 3
+    def same(a, b):
+        return a is not None and b is not None and f"{a:.{digits}g}" == f"{b:.{digits}g}"
+    while digits < 12 and (same(least, ds.iceo_max) or same(most, ds.iceo_max)
+                           or same(least, most)):
+        digits += 1
+    show = lambda x: f"{x:.{digits}g}"  # noqa: E731
+    where = (f"the roll-off from hfe_low_min = {ds.hfe_low_min:g} at {ds.hfe_low_current:g} A "
+             f"leaves the highest-gain unit at icbo_max")
+    if most is not None and most < least * 1.01:
+        return DatasheetError(
+            "iceo_max", f"{ds.iceo_max:g} A cannot be met by the model: {where} almost no gain "
+                        f"at microamperes, so its open-base leakage is I_CBO ({show(least)} A) "
+                        f"whatever the roll-off's shape; a higher hfe_low_min will fit",
+            related=("hfe_low_min", "icbo_max"))
+    if most is None:
+        return DatasheetError(
+            "iceo_max", f"{ds.iceo_max:g} A cannot be met by the model: {where} at least "
+                        f"{show(least)} A of open-base leakage at {ds.iceo_vce:g} V (the "
+                        f"steepest roll-off it takes); a lower hfe_low_min (more roll-off) "
+                        f"or a higher iceo_max will fit",
+            related=("hfe_low_min", "icbo_max"))
+    return DatasheetError(
+        "iceo_max", f"{ds.iceo_max:g} A cannot be met by the model: {where} between "
+                    f"{show(least)} and {show(most)} A of open-base leakage at "
+                    f"{ds.iceo_vce:g} V (a datasheet's I_CEO is a test limit, often loose: a "
+                    f"lower iceo_max the part still meets will fit, as will a higher "
+                    f"hfe_low_min)",
+        related=("hfe_low_min", "icbo_max"))
 
 
 #: the emission coefficients of the base-emitter recombination current an I_CEO figure may
@@ -775,6 +837,7 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
         return optimize.brentq(fun, lo, hi, xtol=1e-14, rtol=1e-12)
 
     sweeps = 0
+    unmet = None  # the I_CEO range the gain figures allowed in the last sweep, if not met
     for sweeps in range(1, max_sweeps + 1):
         old = dict(state)
         # saturation current from V_BE(on) of the typical unit
@@ -837,8 +900,16 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
             state["phi"] = _logistic(joint[1])
             if len(joint) == 3:
                 state["be_leakage_emission"] = float(joint[2])
+            unmet = None
         elif ds.iceo_max is not None:
-            _fit_open_base(ds, state, f_knee, f_phi, build, unit, solve)
+            reach = _fit_open_base(ds, state, f_knee, f_phi, build, unit, solve)
+            # refused once the range has settled (it moves with the other figures' fit in
+            # the first sweeps, and a range read there named values that then fitted)
+            if reach is not None and unmet is not None and all(
+                    b is None or a is not None and abs(a / b - 1.0) < 1e-3
+                    for a, b in zip(reach, unmet)):
+                raise _iceo_refusal(ds, reach)
+            unmet = reach
         else:
             # with both figures the joint solve failed: the message names the pair (the
             # model's minimum unit meets both floors exactly; 200 / 40 at 100 mA / 60 at
@@ -854,9 +925,11 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
                                               "no knee current gives this fall-off" + jointly)
             if ds.hfe_low_current is not None:
                 logit = solve(f_phi, -40.0, 20.0, "hfe_low_min",
-                              "no recombination current gives this roll-off", log=False)
+                              "no recombination current gives this roll-off at the "
+                              "textbook emission coefficient 2; the part's I_CEO "
+                              "(iceo_max, iceo_vce) lets the fit set the coefficient",
+                              log=False)
                 state["phi"] = _logistic(logit)
-
 
         def f_rc(rc):
             q = build(collector_resistance=rc)
@@ -885,8 +958,10 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
             if w == v:
                 continue
             moved = max(moved, abs(v / w - 1.0) if w not in (0.0, math.inf) else 1.0)
-        if moved < 1e-10:
+        if moved < 1e-10 and unmet is None:
             break
+    if unmet is not None:
+        raise _iceo_refusal(ds, unmet)
     p = build()
     for h in (ds.hfe_median, ds.hfe_max):
         unit(p, h)

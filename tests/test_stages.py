@@ -1785,3 +1785,10 @@ def test_a_monolithic_pair_takes_no_die_iceo(tmp_path):
     with pytest.raises(Exception, match=r"parts\.Q2\.iceo_max: a monolithic Darlington's "
                                         r"I_CEO is the whole part's"):
         study_from(tmp_path, text)
+    # and the devices table shows no die's own open-base figure (the output die's fit, with
+    # no roll-off figure, leaked 1,700 times its I_CBO)
+    from tolerance.models.stages.evaluation import device_assumptions
+    study = load_study(Path(__file__).resolve().parents[1] / "studies"
+                       / "engine_bay_heater_darlington.toml")
+    assert {r["iceo"] for r in device_assumptions(study.stage)} == {
+        "the part's (internal resistors)"}

@@ -1045,6 +1045,7 @@ def device_assumptions(stage) -> list[dict]:
     from tolerance.units import format_quantity as q
 
     thermal = getattr(stage, "thermal", None)
+    monolithic = bool(getattr(thermal, "shared", None))
     rows = []
     for name, part in stage.transistors().items():
         ds = part.device.datasheet
@@ -1058,7 +1059,11 @@ def device_assumptions(stage) -> list[dict]:
                            f"{q(ds.vce_sat_ib, 'A')}",
             "vbe_on": q(ds.vbe_on, "V"),
             "icbo_max": q(ds.icbo_max, "A"),
-            "iceo": _open_base_leakage(part.device),
+            # a monolithic pair's dies share one junction (thermal.shared): its I_CEO is the
+            # whole part's with the internal resistors, and a die's own misleads (the output
+            # die's fit, without a roll-off figure, leaked 1,700 times its I_CBO)
+            "iceo": ("the part's (internal resistors)" if monolithic
+                     else _open_base_leakage(part.device)),
             "breakdown_vceo": q(ds.breakdown_vceo, "V"),
             "ic_max": q(ds.ic_max, "A"),
             "power_rating": q(ds.power_rating, "W"),
