@@ -1165,6 +1165,85 @@ def test_lamp_inrush_energy_follows_the_filaments_energy_balance():
     assert np.isinf(below[0][:2]).all() and np.isinf(below[1][:2]).all()
 
 
+@pytest.mark.parametrize("network", [((1.9, 0.05), (5.87, 120.0)),   # TO-220 on a sink
+                                     ((8.0, 0.002), (40.0, 30.0))])   # a fast die: early peak
+def test_the_junction_follows_the_inrush_through_its_foster_network(network):
+    # Reference (scipy.integrate.solve_ivp): the filament's energy balance of the test above
+    # stepped in time with the two Foster stages dT_i/dt = (R_i P - T_i) / tau_i, P = I (V_S
+    # - I R(t)) (the network's step response sum R_i (1 - exp(-t / tau_i)), JEDEC JESD51-14);
+    # the peak of T_1 + T_2 on a dense grid of the limiting
+    from types import SimpleNamespace
+
+    from scipy import integrate
+
+    from tolerance.models.stages.evaluation import lamp_inrush_rise
+
+    r_cold, tau, p, vs = 0.5665, 0.05, 0.55, 13.0
+    lamp = SimpleNamespace(cold_resistance=np.full(4, r_cold),
+                           thermal_time_constant=np.full(4, tau), exponent=p)
+    v_lamp = np.array([12.405, 12.405, 12.405, 12.405])
+    i_lamp = np.array([1.782, 1.782, 1.782, 1.782])
+    cap = np.array([9.27, 2.35, 40.0, 1.7])  # limited strongly, barely; carries all; never
+    rise = lamp_inrush_rise(lamp, np.full(4, vs), cap, v_lamp, i_lamp, network)
+    assert rise[2] == 0.0 and np.isnan(rise[3])
+    g, m = 1.2, (1 + p) / (1 - p)
+    r_f, p_f = v_lamp[0] / i_lamp[0], v_lamp[0] * i_lamp[0]
+    t_f = 2500.0
+    t_cold = t_f * (r_cold / r_f) ** (1 / g)
+
+    def resistance(t):
+        return r_f * (t / t_f) ** g
+
+    r63 = r_cold + (1 - math.exp(-1)) * (r_f - r_cold)
+
+    def t63(heat):
+        def rate(_, y):
+            return [(v_lamp[0] ** 2 / resistance(y[0]) - p_f * (y[0] / t_f) ** (g * m)) / heat]
+        hit = lambda t, y: resistance(y[0]) - r63  # noqa: E731
+        hit.terminal = True
+        return integrate.solve_ivp(rate, [0, 100], [t_cold], events=hit, rtol=1e-10,
+                                   atol=1e-9).t_events[0][0]
+    heat = optimize.brentq(lambda c: math.log(t63(c) / tau), 1e-7, 1.0, xtol=1e-16,
+                           rtol=1e-10)
+    for k in range(2):
+        t_end = t_f * (v_lamp[k] / cap[k] / r_f) ** (1 / g)
+
+        def held(t, y):
+            r = resistance(y[0])
+            power = (vs - cap[k] * r) * cap[k]
+            out = [(cap[k] ** 2 * r - p_f * (y[0] / t_f) ** (g * m)) / heat]
+            out += [(r_th * power - y[1 + j]) / tau_th
+                    for j, (r_th, tau_th) in enumerate(network)]
+            return out
+        done = lambda t, y: y[0] - t_end  # noqa: E731
+        done.terminal = True
+        sol = integrate.solve_ivp(held, [0, 100], [t_cold, 0.0, 0.0], events=done,
+                                  rtol=1e-10, atol=1e-10, method="LSODA", dense_output=True)
+        grid = np.linspace(0.0, sol.t_events[0][0], 20001)
+        y = sol.sol(grid)
+        peak = float(np.max(y[1] + y[2]))
+        # the panels of the filament's resistance against the dense reference
+        assert rise[k] == pytest.approx(peak, rel=1e-3)
+        assert rise[k] > 1.0
+
+
+def test_a_lamp_stage_judges_the_junction_during_the_inrush(tmp_path):
+    # the beacon study: every unit's junction at the inrush's peak is at least its settled
+    # one, and the rating on it is T_j max of the output
+    path = Path(__file__).resolve().parents[1] / "studies" / "beacon_lamp_darlington.toml"
+    study = load_study(path)
+    crit = {c.name: c for c in study.criteria}["tj_max_inrush"]
+    assert crit.metric == "tj_inrush" and crit.maximum == pytest.approx(423.15)
+    out = study.stage.evaluate(draw(study, 200, 5))
+    ok = out["converged"]
+    assert np.all(out["tj_inrush"][ok] >= out["tj_output"][ok])
+    # where the output limits the inrush for tens of milliseconds the die stage heats well
+    # above the settled junction
+    limited = ok & np.isfinite(out["inrush_energy"]) & (out["inrush_energy"] > 0)
+    assert limited.sum() > 100
+    assert np.median(out["tj_inrush"][limited] - out["tj_output"][limited]) > 10.0
+
+
 def test_a_saturated_beacon_unit_has_a_finite_inrush_energy():
     # a unit at -25 degC on 14.4 V with a driver gain of 100 and an output gain of 32 is
     # saturated (drive margin above 1) but its operating resistance (7.04 ohm, the lamp on

@@ -367,6 +367,16 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
                                            "single-pulse rating holds for its own width)")
         m["inrush_margin"] = MetricInfo("1", "current the stage can carry at the edge of "
                                              "saturation over the cold filament's demand")
+        m["tj_inrush"] = MetricInfo("temperature", f"junction temperature of {out} at the "
+                                                   "peak of the cold lamp's inrush, from the "
+                                                   "ambient through its two-stage Foster "
+                                                   "network; never below tj_"
+                                                   f"{setup.roles[out]}")
+        crit.append(Criterion("tj_max_inrush", "tj_inrush",
+                              maximum=setup.tj_max[out] - setup.margin, source="rating",
+                              description=f"{out} junction below T_j max while it limits the "
+                                          "lamp's inrush"
+                              + (f" less {setup.margin:g} K" if setup.margin else "")))
         pulse = setup.pulse_energy.get(out)
         if pulse is not None:
             crit.append(Criterion("pulse_energy", "inrush_energy", maximum=pulse,
@@ -756,6 +766,88 @@ def lamp_inrush(load_state, supply, capability, lamp_voltage, lamp_current):
             np.where(limited, t1, np.where(never, np.inf, 0.0)))
 
 
+#: panels (in the filament's resistance, each by 4-point Gauss-Legendre) over which the
+#: junction's response to the inrush is stepped: 128 agree with 1,024 to 0.003 K on 400 of
+#: the beacon study's units (rises of 16 to 67 K), and with 8,192 to 2e-4 where a 2 ms die
+#: peaks inside the first panel (tests/test_stages.py, against scipy's solve_ivp)
+INRUSH_PANELS = 128
+
+
+def lamp_inrush_rise(load_state, supply, capability, lamp_voltage, lamp_current, network):
+    """Highest rise of the output's junction above its starting temperature while it limits
+    a cold filament's current [K] (0 where it does not limit, NaN where it never stops).
+
+    The dissipation's time course is :func:`lamp_inrush`'s, P = I (V_S - I R_f r(t)),
+    falling as the filament warms; the junction follows the part's two-stage Foster network
+    ((R_die, tau_die), (R_package, tau_package), :func:`models.thermal.foster_network`),
+    Z_th(t) = sum R_i (1 - exp(-t / tau_i)) for a step of power (the Foster network's
+    transient thermal impedance, JEDEC JESD51-14, as in :mod:`models.thermal`, whose
+    first-order stages respond to any power by superposition). The limiting is cut into panels of the
+    filament's resistance; over each, of width dt (Gauss-Legendre), the power is taken as
+    linear in time between its exact values at the ends, P_0 to P_1 with slope s, to which
+    each stage responds exactly: T_i <- T_i a + R_i (P_1 - s tau_i - (P_0 - s tau_i) a),
+    a = e^(-dt/tau_i). The peak is the largest sum at a panel's end or at a stage's own
+    turning point inside a panel (a fast die catches up with the falling power within the
+    first panel and then falls with it)."""
+    r_cold = np.asarray(load_state.cold_resistance, dtype=float)
+    tau = np.asarray(load_state.thermal_time_constant, dtype=float)
+    p = np.asarray(load_state.exponent, dtype=float)
+    i = np.asarray(capability, dtype=float)
+    vs = np.asarray(supply, dtype=float)
+    v_lamp = np.asarray(lamp_voltage, dtype=float)
+    i_lamp = np.asarray(lamp_current, dtype=float)
+    lift = 1.0 - 1.0 / TUNGSTEN_RESISTANCE_POWER
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        r_final = v_lamp / i_lamp
+        r_end = v_lamp / i
+        limited = (r_end > r_cold) & (r_end < r_final) & (i > 0)
+        never = (r_end >= r_final) & (i > 0)
+        m = ((1.0 + p) / (1.0 - p)) * np.ones_like(r_final)
+        rc = np.where(limited, r_cold / r_final, 0.5)
+        r1 = np.where(limited, r_end / r_final, 0.75)
+        r, w = _gauss(rc, rc + WARM_UP_SHARE * (1.0 - rc))
+        theta = tau / np.sum(w / (r ** lift * (1.0 / r - r ** m[..., None])), axis=-1)
+        k = i * i * r_final / (v_lamp * i_lamp)
+        x, wx = np.polynomial.legendre.leggauss(4)
+        edges = rc[..., None] + (r1 - rc)[..., None] * np.linspace(0.0, 1.0, INRUSH_PANELS + 1)
+        half = 0.5 * np.diff(edges, axis=-1)[..., None]              # (..., panels, 1)
+        r = edges[..., :-1, None] + half * (x + 1.0)                  # (..., panels, 4)
+        dt = half * wx * theta[..., None, None] / (
+            r ** lift * (k[..., None, None] * r - r ** m[..., None, None]))
+        dt = np.sum(dt, axis=-1)                                      # (..., panels)
+        # the power at the panels' ends, exact (linear in r), taken as linear in time
+        # across each panel: every stage's response to it is then exact
+        power = i[..., None] * (vs[..., None] - i[..., None] * r_final[..., None] * edges)
+        slope = np.where(dt > 0, np.diff(power, axis=-1) / dt, 0.0)
+        rises = [np.zeros(np.shape(r_final)) for _ in network]
+        peak = np.zeros(np.shape(r_final))
+
+        def after(x, j):
+            """Each stage's rise a time x into panel j (x from 0 to dt)."""
+            out = []
+            for rise, (r_th, tau_th) in zip(rises, network):
+                decay = np.exp(-x / tau_th)
+                lag = slope[..., j] * tau_th
+                out.append(rise * decay + r_th * (power[..., j] + slope[..., j] * x - lag
+                                                  - (power[..., j] - lag) * decay))
+            return out
+
+        for j in range(INRUSH_PANELS):
+            # a fast stage that has caught up with the falling power peaks inside a panel
+            # (a die of 2 ms within a panel of 20 ms): each stage's own turning point,
+            # R s + a (R (P_0 - s tau) - T_0) / tau = 0, is a candidate for the sum's
+            for rise, (r_th, tau_th) in zip(rises, network):
+                lag = slope[..., j] * tau_th
+                a_star = -r_th * lag / (r_th * (power[..., j] - lag) - rise)
+                inside = (a_star > 0) & (a_star < 1)
+                x = np.where(inside, -tau_th * np.log(np.where(inside, a_star, 1.0)), 0.0)
+                x = np.minimum(x, dt[..., j])
+                peak = np.maximum(peak, sum(after(x, j)))
+            rises = after(dt[..., j], j)
+            peak = np.maximum(peak, sum(rises))
+    return np.where(limited, peak, np.where(never, np.nan, 0.0))
+
+
 def evaluate_stage(stage, samples):
     """All metrics of a chunk: see the module docstring."""
     setup: ThermalSetup = stage.thermal
@@ -1018,6 +1110,13 @@ def evaluate_stage(stage, samples):
         out["inrush_energy"], out["inrush_time"] = lamp_inrush(
             load_state, np.asarray(samples[stage.env.supply], dtype=float), capability,
             res["load_voltage"], np.abs(res["load_current"]))
+        # the junction through the limiting, from the ambient (a cold switch-on), and never
+        # below its settled temperature: a unit whose limiting never ends settles there
+        rise = lamp_inrush_rise(load_state, np.asarray(samples[stage.env.supply], dtype=float),
+                                capability, res["load_voltage"], np.abs(res["load_current"]),
+                                setup.network[output_device(stage)])
+        role = setup.roles[output_device(stage)]
+        out["tj_inrush"] = np.fmax(out[f"tj_{role}"], ambient + rise)
         with np.errstate(divide="ignore", invalid="ignore"):
             out["inrush_margin"] = capability / demand
     else:
