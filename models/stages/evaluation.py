@@ -369,9 +369,17 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
                                              "saturation over the cold filament's demand")
         m["tj_inrush"] = MetricInfo("temperature", f"junction temperature of {out} at the "
                                                    "peak of the cold lamp's inrush, from the "
-                                                   "ambient through its two-stage Foster "
+                                                   + ("junction's settled temperature (PWM)"
+                                                      if pwm else "ambient")
+                                                   + " through its two-stage Foster "
                                                    "network; never below tj_"
                                                    f"{setup.roles[out]}")
+        if pwm:
+            m["inrush_power"] = MetricInfo("W", f"{out}'s average dissipation from the "
+                                                "filament's warm-up at every on-edge (the "
+                                                "off-time cools it), beyond the on-state's; "
+                                                f"in power_{setup.roles[out]} and "
+                                                f"tj_{setup.roles[out]}")
         crit.append(Criterion("tj_max_inrush", "tj_inrush",
                               maximum=setup.tj_max[out] - setup.margin, source="rating",
                               description=f"{out} junction below T_j max while it limits the "
@@ -766,6 +774,50 @@ def lamp_inrush(load_state, supply, capability, lamp_voltage, lamp_current):
             np.where(limited, t1, np.where(never, np.inf, 0.0)))
 
 
+def lamp_cycle_heat(load_state, supply, capability, lamp_voltage, lamp_current, frequency,
+                    duty):
+    """The output's heat per period of a PWM drive from a lamp's repeated warm-up, beyond
+    the on-state dissipation the period's average already counts [J], and the filament's
+    periodic state (:class:`models.filament.FilamentCycle`).
+
+    Every on-edge meets the filament as the off-time left it (:func:`models.filament.
+    lamp_cycle`): while the output limits it, it absorbs I (V_S - I R(t)) instead of the
+    on-state's V_on I_L; once saturated, it carries V_L / R(t) above I_L until the filament
+    is hot, V_on I_L (1/r - 1) more (V_on = V_S - V_L, the stage's on-voltage). A unit that
+    never leaves its linear region has no periodic warm-up here (its steady state is the
+    on-state the loop solves): zero."""
+    from tolerance.models.filament import lamp_cycle
+
+    r_cold = np.asarray(load_state.cold_resistance, dtype=float)
+    tau = np.asarray(load_state.thermal_time_constant, dtype=float)
+    p = np.asarray(load_state.exponent, dtype=float)
+    i = np.asarray(capability, dtype=float)
+    vs = np.asarray(supply, dtype=float)
+    v_lamp = np.asarray(lamp_voltage, dtype=float)
+    i_lamp = np.asarray(lamp_current, dtype=float)
+    lift = 1.0 - 1.0 / TUNGSTEN_RESISTANCE_POWER
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        r_final = v_lamp / i_lamp
+        r_end = v_lamp / i
+        limited = (r_end > r_cold) & (r_end < r_final) & (i > 0)
+        never = ~((r_end < r_final) & (i > 0) & np.isfinite(r_final))
+        m = ((1.0 + p) / (1.0 - p)) * np.ones_like(r_final)
+        rc = np.where(never, 0.5, r_cold / r_final)
+        r1 = np.where(limited, r_end / r_final, 0.75)
+        r, w = _gauss(rc, rc + WARM_UP_SHARE * (1.0 - rc))
+        theta = tau / np.sum(w / (r ** lift * (1.0 / r - r ** m[..., None])), axis=-1)
+        k = np.where(limited, i * i * r_final / (v_lamp * i_lamp), 1.0)
+        safe = lambda x, v: np.where(never, v, x)  # noqa: E731
+        cooling = np.broadcast_to(np.asarray(getattr(load_state, "cooling_time_constant",
+                                                     tau), dtype=float), rc.shape)
+        cycle = lamp_cycle(rc, r1, theta, k, m, lift, limited, safe(vs, 1.0), safe(i, 1.0),
+                           safe(r_final, 1.0), cooling, frequency, duty)
+        v_on = vs - v_lamp
+        heat = (cycle.energy - v_on * i_lamp * cycle.limited_time
+                + v_on * i_lamp * cycle.excess_time)
+    return np.where(never, 0.0, heat), cycle
+
+
 #: panels (in the filament's resistance, each by 4-point Gauss-Legendre) over which the
 #: junction's response to the inrush is stepped: 128 agree with 1,024 to 0.003 K on 400 of
 #: the beacon study's units (rises of 16 to 67 K), and with 8,192 to 2e-4 where a 2 ms die
@@ -959,6 +1011,25 @@ def evaluate_stage(stage, samples):
                     f * (np.maximum(e_on, 0.0) + np.maximum(e_off, 0.0)))
             if setup.self_heating:
                 settled, temps, unsolved = settle()
+    lamp_heat = None
+    if stage.load.kind == "lamp" and stage.drive.pwm:
+        # every on-edge meets the filament as the off-time left it: the output's heat from
+        # its repeated warm-up, at the junctions the loop settled at (one step: the heat
+        # moves the junctions, and their gain the capability, again only in second order)
+        at = known(temps)
+        first = stage.dc(samples, at, off_temps(at), full=True, params=params,
+                         start=warm_start({"on": at, "off": off_temps(at)}, np.arange(n),
+                                          params))
+        lamp_heat, _ = lamp_cycle_heat(
+            first["load_state"], np.asarray(samples[stage.env.supply], dtype=float),
+            np.abs(first["capability"]), first["load_voltage"], np.abs(first["load_current"]),
+            stage.drive.frequency, duty)
+        lamp_heat = np.where(first["converged"], np.nan_to_num(lamp_heat), 0.0)
+        switching_power = dict(switching_power or {d: np.zeros(n) for d in devices})
+        carrier = output_device(stage)
+        switching_power[carrier] = switching_power[carrier] + stage.drive.frequency * lamp_heat
+        if setup.self_heating:
+            settled, temps, unsolved = settle()
 
     eval_temps = known(temps)
     res = stage.dc(samples, eval_temps, off_temps(eval_temps), full=True, params=params,
@@ -1116,7 +1187,12 @@ def evaluate_stage(stage, samples):
                                 capability, res["load_voltage"], np.abs(res["load_current"]),
                                 setup.network[output_device(stage)])
         role = setup.roles[output_device(stage)]
-        out["tj_inrush"] = np.fmax(out[f"tj_{role}"], ambient + rise)
+        # a PWM drive's on-edges meet a junction the earlier periods warmed: from its
+        # settled temperature (the rise of a cold filament's inrush, the larger)
+        before = out[f"tj_{role}"] if stage.drive.pwm else ambient
+        out["tj_inrush"] = np.fmax(out[f"tj_{role}"], before + rise)
+        if lamp_heat is not None:
+            out["inrush_power"] = stage.drive.frequency * lamp_heat
         with np.errstate(divide="ignore", invalid="ignore"):
             out["inrush_margin"] = capability / demand
     else:
