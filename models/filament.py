@@ -19,8 +19,9 @@ than its supports and gas do, and left a 21 W lamp at twice its cold resistance 
 off, where a lamp goes dark within a few warm-up time constants (from memory); the shorter
 cooling is the side that gives the output more inrush heat. Each heating phase's time as a
 function of r comes from a table of its integral dt = dr / (dr/dt) (Gauss-Legendre panels;
-the saturated phase in u = -ln(1 - r), where its time diverges logarithmically); a phase of
-given duration ends where its table reaches it (linear interpolation). The periodic state is
+the saturated phase in u = -ln(1 - r), where its time diverges logarithmically), read by its
+cubic Hermite interpolant; a phase of given duration ends where its table reaches it (Newton
+on the panel's cubic). The periodic state is
 the fixed point of one period's map from the resistance at the on-edge, found by bisection
 between the cold and the operating resistance.
 """
@@ -155,6 +156,7 @@ def lamp_cycle(rc, r1, theta, k, m, lift, limited, supply, current, r_final, coo
     t_on = duty / frequency
     t_off = (1.0 - duty) / frequency
     kept = np.exp(-t_off / cooling)  # share of r - r_c an off-time leaves
+
     def col(v, x):
         """A per-sample figure shaped to broadcast against ``x`` (samples first)."""
         v = np.asarray(v, dtype=float)

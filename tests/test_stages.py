@@ -73,6 +73,11 @@ resistance = {nominal = "120 ohm", tolerance = "5%"}
 """
 
 
+def shipped(name):
+    """The text of a study shipped in studies/."""
+    return (Path(__file__).resolve().parents[1] / "studies" / name).read_text(encoding="utf-8")
+
+
 def study_from(tmp_path, text, name="study.toml"):
     path = tmp_path / name
     path.write_text(textwrap.dedent(text), encoding="utf-8")
@@ -1315,11 +1320,10 @@ def test_a_flashing_beacon_heats_its_output_at_every_on_edge(tmp_path):
     # default as fast as it warms) is limited again at every on-edge, and that heat is in
     # the output's dissipation and junction; one that stays hot (a cooling time constant of
     # 1,000 s) costs nothing
-    text = (Path(__file__).resolve().parents[1] / "studies"
-            / "beacon_lamp_darlington.toml").read_text(encoding="utf-8")
-    text = text.replace('source_resistance = {min = "25 ohm", max = "60 ohm"}',
-                        'source_resistance = {min = "25 ohm", max = "60 ohm"}\n'
-                        'frequency = "1 Hz"\nduty = 0.5', 1)
+    text = shipped("beacon_lamp_darlington.toml").replace(
+        'source_resistance = {min = "25 ohm", max = "60 ohm"}',
+        'source_resistance = {min = "25 ohm", max = "60 ohm"}\nfrequency = "1 Hz"\nduty = 0.5',
+        1)
     flashing = study_from(tmp_path, text, name="flash.toml")
     hot = study_from(tmp_path, text.replace('part = "signal_lamp_12v_21w"',
                                             'part = "signal_lamp_12v_21w"\n'
@@ -1971,11 +1975,9 @@ def test_an_iceo_figure_sets_an_open_base_output_s_leakage(tmp_path, iceo):
 def test_a_monolithic_pair_takes_no_die_iceo(tmp_path):
     # a monolithic pair's datasheet I_CEO is the whole part's, its dies shunted by the
     # internal resistors: it fits neither die (common practice, no source)
-    text = (Path(__file__).resolve().parents[1] / "studies"
-            / "engine_bay_heater_darlington.toml").read_text(encoding="utf-8")
-    text = text.replace('device = "monolithic_darlington"',
-                        'device = "monolithic_darlington"\niceo_max = "1 uA"\n'
-                        'iceo_vce = "20 V"', 1)
+    text = shipped("engine_bay_heater_darlington.toml").replace(
+        'device = "monolithic_darlington"',
+        'device = "monolithic_darlington"\niceo_max = "1 uA"\niceo_vce = "20 V"', 1)
     with pytest.raises(Exception, match=r"parts\.Q2\.iceo_max: a monolithic Darlington's "
                                         r"I_CEO is the whole part's"):
         study_from(tmp_path, text)

@@ -710,6 +710,38 @@ def _gauss(a, b):
     return np.asarray(a)[..., None] + half * (x + 1.0), half * w
 
 
+def _filament(load_state, supply, capability, lamp_voltage, lamp_current, real=None):
+    """The filament's figures of :func:`lamp_inrush` per sample, in units of its operating
+    resistance R_f = V_L / I_L: which units the output limits (``limited``) and which never
+    saturate (``never``), the cold resistance ``rc`` and the end of the limiting ``r1`` (both
+    harmless placeholders outside ``real``, default the limited units, so that np.where drops
+    their sums), the exponents ``m`` and ``lift``, the heating factor ``k`` and the time
+    scale ``theta`` fixed by the free-running warm-up to WARM_UP_SHARE of the rise."""
+    from types import SimpleNamespace
+
+    f = SimpleNamespace(
+        r_cold=np.asarray(load_state.cold_resistance, dtype=float),
+        tau=np.asarray(load_state.thermal_time_constant, dtype=float),
+        p=np.asarray(load_state.exponent, dtype=float),
+        i=np.asarray(capability, dtype=float), vs=np.asarray(supply, dtype=float),
+        v_lamp=np.asarray(lamp_voltage, dtype=float),
+        i_lamp=np.asarray(lamp_current, dtype=float),
+        lift=1.0 - 1.0 / TUNGSTEN_RESISTANCE_POWER)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        f.r_final = f.v_lamp / f.i_lamp
+        r_end = f.v_lamp / f.i
+        f.limited = (r_end > f.r_cold) & (r_end < f.r_final) & (f.i > 0)
+        f.never = (r_end >= f.r_final) & (f.i > 0)
+        real = f.limited if real is None else real(f)
+        f.m = ((1.0 + f.p) / (1.0 - f.p)) * np.ones_like(f.r_final)
+        f.rc = np.where(real, f.r_cold / f.r_final, 0.5)
+        f.r1 = np.where(f.limited, r_end / f.r_final, 0.75)
+        r, w = _gauss(f.rc, f.rc + WARM_UP_SHARE * (1.0 - f.rc))
+        f.theta = f.tau / np.sum(w / (r ** f.lift * (1.0 / r - r ** f.m[..., None])), axis=-1)
+        f.k = f.i * f.i * f.r_final / (f.v_lamp * f.i_lamp)
+    return f
+
+
 def lamp_inrush(load_state, supply, capability, lamp_voltage, lamp_current):
     """Energy the output absorbs while it limits a cold filament's current [J], and for how
     long it limits it [s].
@@ -745,30 +777,13 @@ def lamp_inrush(load_state, supply, capability, lamp_voltage, lamp_current):
     saturated); infinite when it cannot carry even the operating current (it never leaves
     the linear region).
     """
-    r_cold = np.asarray(load_state.cold_resistance, dtype=float)
-    tau = np.asarray(load_state.thermal_time_constant, dtype=float)
-    p = np.asarray(load_state.exponent, dtype=float)
-    i = np.asarray(capability, dtype=float)
-    vs = np.asarray(supply, dtype=float)
-    v_lamp = np.asarray(lamp_voltage, dtype=float)
-    i_lamp = np.asarray(lamp_current, dtype=float)
-    lift = 1.0 - 1.0 / TUNGSTEN_RESISTANCE_POWER
+    f = _filament(load_state, supply, capability, lamp_voltage, lamp_current)
+    limited, never, i, m = f.limited, f.never, f.i, f.m
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        r_final = v_lamp / i_lamp
-        r_end = v_lamp / i
-        limited = (r_end > r_cold) & (r_end < r_final) & (i > 0)
-        never = (r_end >= r_final) & (i > 0)
-        m = ((1.0 + p) / (1.0 - p)) * np.ones_like(r_final)
-        # units the output does not limit get harmless bounds; np.where drops their sums
-        rc = np.where(limited, r_cold / r_final, 0.5)
-        r1 = np.where(limited, r_end / r_final, 0.75)
-        # the free-running warm-up to WARM_UP_SHARE of the rise fixes the time scale
-        r, w = _gauss(rc, rc + WARM_UP_SHARE * (1.0 - rc))
-        theta = tau / np.sum(w / (r ** lift * (1.0 / r - r ** m[..., None])), axis=-1)
-        k = i * i * r_final / (v_lamp * i_lamp)
-        r, w = _gauss(rc, r1)
-        dt = w * theta[..., None] / (r ** lift * (k[..., None] * r - r ** m[..., None]))
-        e = i * np.sum((vs[..., None] - i[..., None] * r_final[..., None] * r) * dt, axis=-1)
+        r, w = _gauss(f.rc, f.r1)
+        dt = w * f.theta[..., None] / (r ** f.lift * (f.k[..., None] * r - r ** m[..., None]))
+        e = i * np.sum((f.vs[..., None] - i[..., None] * f.r_final[..., None] * r) * dt,
+                       axis=-1)
         t1 = np.sum(dt, axis=-1)
     return (np.where(limited, e, np.where(never, np.inf, 0.0)),
             np.where(limited, t1, np.where(never, np.inf, 0.0)))
@@ -788,33 +803,22 @@ def lamp_cycle_heat(load_state, supply, capability, lamp_voltage, lamp_current, 
     on-state the loop solves): zero."""
     from tolerance.models.filament import lamp_cycle
 
-    r_cold = np.asarray(load_state.cold_resistance, dtype=float)
-    tau = np.asarray(load_state.thermal_time_constant, dtype=float)
-    p = np.asarray(load_state.exponent, dtype=float)
-    i = np.asarray(capability, dtype=float)
-    vs = np.asarray(supply, dtype=float)
-    v_lamp = np.asarray(lamp_voltage, dtype=float)
-    i_lamp = np.asarray(lamp_current, dtype=float)
-    lift = 1.0 - 1.0 / TUNGSTEN_RESISTANCE_POWER
+    def saturating(f):  # every unit but those that never leave the linear region
+        f.never = ~((f.v_lamp / f.i < f.r_final) & (f.i > 0) & np.isfinite(f.r_final))
+        return ~f.never
+
+    f = _filament(load_state, supply, capability, lamp_voltage, lamp_current, saturating)
+    never = f.never
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        r_final = v_lamp / i_lamp
-        r_end = v_lamp / i
-        limited = (r_end > r_cold) & (r_end < r_final) & (i > 0)
-        never = ~((r_end < r_final) & (i > 0) & np.isfinite(r_final))
-        m = ((1.0 + p) / (1.0 - p)) * np.ones_like(r_final)
-        rc = np.where(never, 0.5, r_cold / r_final)
-        r1 = np.where(limited, r_end / r_final, 0.75)
-        r, w = _gauss(rc, rc + WARM_UP_SHARE * (1.0 - rc))
-        theta = tau / np.sum(w / (r ** lift * (1.0 / r - r ** m[..., None])), axis=-1)
-        k = np.where(limited, i * i * r_final / (v_lamp * i_lamp), 1.0)
-        safe = lambda x, v: np.where(never, v, x)  # noqa: E731
         cooling = np.broadcast_to(np.asarray(getattr(load_state, "cooling_time_constant",
-                                                     tau), dtype=float), rc.shape)
-        cycle = lamp_cycle(rc, r1, theta, k, m, lift, limited, safe(vs, 1.0), safe(i, 1.0),
-                           safe(r_final, 1.0), cooling, frequency, duty)
-        v_on = vs - v_lamp
-        heat = (cycle.energy - v_on * i_lamp * cycle.limited_time
-                + v_on * i_lamp * cycle.excess_time)
+                                                     f.tau), dtype=float), f.rc.shape)
+        safe = lambda x, v: np.where(never, v, x)  # noqa: E731
+        cycle = lamp_cycle(f.rc, f.r1, f.theta, np.where(f.limited, f.k, 1.0), f.m, f.lift,
+                           f.limited, safe(f.vs, 1.0), safe(f.i, 1.0), safe(f.r_final, 1.0),
+                           cooling, frequency, duty)
+        v_on = f.vs - f.v_lamp
+        heat = (cycle.energy - v_on * f.i_lamp * cycle.limited_time
+                + v_on * f.i_lamp * cycle.excess_time)
     return np.where(never, 0.0, heat), cycle
 
 
@@ -841,25 +845,10 @@ def lamp_inrush_rise(load_state, supply, capability, lamp_voltage, lamp_current,
     a = e^(-dt/tau_i). The peak is the largest sum at a panel's end or at a stage's own
     turning point inside a panel (a fast die catches up with the falling power within the
     first panel and then falls with it)."""
-    r_cold = np.asarray(load_state.cold_resistance, dtype=float)
-    tau = np.asarray(load_state.thermal_time_constant, dtype=float)
-    p = np.asarray(load_state.exponent, dtype=float)
-    i = np.asarray(capability, dtype=float)
-    vs = np.asarray(supply, dtype=float)
-    v_lamp = np.asarray(lamp_voltage, dtype=float)
-    i_lamp = np.asarray(lamp_current, dtype=float)
-    lift = 1.0 - 1.0 / TUNGSTEN_RESISTANCE_POWER
+    f = _filament(load_state, supply, capability, lamp_voltage, lamp_current)
+    limited, never, rc, r1, i, vs = f.limited, f.never, f.rc, f.r1, f.i, f.vs
+    r_final, theta, k, m, lift = f.r_final, f.theta, f.k, f.m, f.lift
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        r_final = v_lamp / i_lamp
-        r_end = v_lamp / i
-        limited = (r_end > r_cold) & (r_end < r_final) & (i > 0)
-        never = (r_end >= r_final) & (i > 0)
-        m = ((1.0 + p) / (1.0 - p)) * np.ones_like(r_final)
-        rc = np.where(limited, r_cold / r_final, 0.5)
-        r1 = np.where(limited, r_end / r_final, 0.75)
-        r, w = _gauss(rc, rc + WARM_UP_SHARE * (1.0 - rc))
-        theta = tau / np.sum(w / (r ** lift * (1.0 / r - r ** m[..., None])), axis=-1)
-        k = i * i * r_final / (v_lamp * i_lamp)
         x, wx = np.polynomial.legendre.leggauss(4)
         edges = rc[..., None] + (r1 - rc)[..., None] * np.linspace(0.0, 1.0, INRUSH_PANELS + 1)
         half = 0.5 * np.diff(edges, axis=-1)[..., None]              # (..., panels, 1)
