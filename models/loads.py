@@ -243,9 +243,6 @@ class LampState(LoadState):
         p of I ~ V^p.
     thermal_time_constant : float
         Time constant of the filament's heating [s], for the transient work.
-    cooling_time_constant : float
-        Time constant of its cooling when switched off [s] (set by :class:`LampLoad`; the
-        heating one where absent), for the periodic state under a PWM drive.
 
     Notes
     -----
@@ -280,7 +277,6 @@ class LampState(LoadState):
         self.cold_ratio = cold_ratio
         self.exponent = exponent
         self.thermal_time_constant = thermal_time_constant
-        self.cooling_time_constant = thermal_time_constant
         warm = 1.0 + cold_tempco * (temperature - ROOM)
         self.cold_resistance = np.where(warm > 0, self.hot_resistance / cold_ratio * warm, np.nan)
         # V_x = V_r (R_c / R_r)^(1/(1-p))
@@ -665,22 +661,18 @@ class LampLoad(LoadSpec):
     }
 
     def __init__(self, parameters, exponent: float, thermal_time_constant: float,
-                 cold_tempco: float, cooling_time_constant: float | None = None):
+                 cold_tempco: float):
         super().__init__(parameters)
         self.exponent = exponent
         self.thermal_time_constant = thermal_time_constant
         self.cold_tempco = cold_tempco
-        self.cooling_time_constant = (thermal_time_constant if cooling_time_constant is None
-                                      else cooling_time_constant)
 
     def at(self, samples, temperature, supply_voltage):
         t, vs, vr, pr, kc = self._inputs(
             samples, temperature, supply_voltage,
             ["load.rated_voltage", "load.rated_power", "load.cold_ratio"])
-        state = LampState(vs, t, vr, pr, kc, self.exponent, self.thermal_time_constant,
-                          self.cold_tempco)
-        state.cooling_time_constant = self.cooling_time_constant
-        return state
+        return LampState(vs, t, vr, pr, kc, self.exponent, self.thermal_time_constant,
+                         self.cold_tempco)
 
 
 class CoilLoad(LoadSpec):
@@ -846,13 +838,9 @@ def read_load(reader: Reader) -> LoadSpec:
         # V_r k_c^(-1/(1-p)) far inside the floating-point range
         exponent = reader.quantity("exponent", "1", default=0.55, minimum=0.2, maximum=0.9)
         tau = reader.quantity("thermal_time_constant", "s", default=20e-3, positive=True)
-        # how fast the switched-off filament cools (r - r_c as exp(-t / tau_c)); by default
-        # as fast as it warms, the side that gives the output more heat under a PWM drive
-        # (models.filament)
-        cooling = reader.quantity("cooling_time_constant", "s", default=tau, positive=True)
         cold_tempco = reader.quantity("cold_tempco", "1/K", default=TUNGSTEN_TEMPCO,
                                       minimum=0.0, maximum=1e-2)
-        return LampLoad(names, exponent, tau, cold_tempco, cooling)
+        return LampLoad(names, exponent, tau, cold_tempco)
 
     if kind == "coil":
         names = [

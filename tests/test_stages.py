@@ -1232,118 +1232,24 @@ def test_the_junction_follows_the_inrush_through_its_foster_network(network):
         assert rise[k] > 1.0
 
 
-def _filament_reference(r_cold, tau, p, vs, v_lamp, i_lamp, cap, cooling, frequency, duty):
-    """Reference (scipy.integrate.solve_ivp): the filament of the test above, in r = R / R_f,
-    heated while held at the capability (V_S - I R across the output) or saturated at V_L,
-    cooled as r - r_c ~ exp(-t / cooling) when off, period after period from a cold start
-    until the on-edge resistance repeats to 1e-9; returns the last period's output heat
-    beyond the on-state's V_on I_L over the on-time."""
-    from scipy import integrate, optimize
-
-    g, m = 1.2, (1 + p) / (1 - p)
-    lift = 1 - 1 / g
-    r_f, p_f = v_lamp / i_lamp, v_lamp * i_lamp
-    rc, r1 = r_cold / r_f, v_lamp / (cap * r_f)
-    k = cap ** 2 * r_f / p_f
-
-    def warm_rate(r, theta):
-        return r ** lift * (1 / r - r ** m) / theta
-
-    def t63(theta):
-        hit = lambda t, y: y[0] - (rc + (1 - math.exp(-1)) * (1 - rc))  # noqa: E731
-        hit.terminal = True
-        return integrate.solve_ivp(lambda t, y: [warm_rate(y[0], theta)], [0, 100], [rc],
-                                   events=hit, rtol=1e-11, atol=1e-12).t_events[0][0]
-    theta = optimize.brentq(lambda th: math.log(t63(th) / tau), 1e-6, 10.0, xtol=1e-15,
-                            rtol=1e-11)
-    t_on, t_off = duty / frequency, (1 - duty) / frequency
-    v_on = vs - v_lamp
-
-    def rate(t, y):
-        r = y[0]
-        if r < r1 - 1e-15:  # limited at the capability
-            return [r ** lift * (k * r - r ** m) / theta,
-                    cap * (vs - cap * r_f * r) - v_on * i_lamp]
-        return [warm_rate(r, theta), v_on * i_lamp * (1 / r - 1)]
-
-    start = rc
-    for _ in range(2000):
-        reach = lambda t, y: y[0] - r1  # noqa: E731
-        reach.terminal = True
-        heat = 0.0
-        if start < r1:
-            sol = integrate.solve_ivp(rate, [0, t_on], [start, 0.0], events=reach,
-                                      rtol=1e-11, atol=1e-13, method="LSODA")
-            heat, r_now, t_now = sol.y[1, -1], sol.y[0, -1], sol.t[-1]
-            if sol.status == 1:
-                r_now, t_now = r1, sol.t_events[0][0]
-                heat = sol.y_events[0][0][1]
-        else:
-            r_now, t_now = start, 0.0
-        if t_now < t_on:
-            sol = integrate.solve_ivp(rate, [t_now, t_on], [max(r_now, r1), heat],
-                                      rtol=1e-11, atol=1e-13, method="LSODA")
-            r_now, heat = sol.y[0, -1], sol.y[1, -1]
-        new = rc + (r_now - rc) * math.exp(-t_off / cooling)
-        if abs(new - start) < 1e-9:
-            return heat
-        start = new
-    raise AssertionError("no periodic state")
-
-
-@pytest.mark.parametrize("frequency, duty, cap", [(1.0, 0.5, 4.0), (10.0, 0.5, 4.0),
-                                                  (10.0, 0.5, 2.35), (100.0, 0.5, 9.27),
-                                                  (500.0, 0.2, 2.35)])
-def test_a_flashing_lamps_warm_up_heat_per_period(frequency, duty, cap):
-    # every on-edge of a PWM drive meets the filament as the off-time left it; the output's
-    # heat per period beyond the on-state's against the period-by-period reference above
-    from types import SimpleNamespace
-
-    from tolerance.models.stages.evaluation import lamp_cycle_heat, lamp_inrush
-
-    lamp = SimpleNamespace(cold_resistance=np.array([0.5665]),
-                           thermal_time_constant=np.array([0.05]), exponent=0.55,
-                           cooling_time_constant=0.05)
-    args = (np.array([13.0]), np.array([cap]), np.array([12.405]), np.array([1.782]))
-    heat, cycle = lamp_cycle_heat(lamp, *args, frequency, duty)
-    want = _filament_reference(0.5665, 0.05, 0.55, 13.0, 12.405, 1.782, cap, 0.05,
-                               frequency, duty)
-    assert heat[0] == pytest.approx(want, rel=5e-4, abs=1e-7)
-    # a flasher slow against the filament's time constants meets it cold every time: the
-    # limiting's energy is the single cold switch-on's
-    slow, cold = lamp_cycle_heat(lamp, *args, 1e-3, 0.5)[1], lamp_inrush(lamp, *args)[0]
-    assert slow.energy[0] == pytest.approx(cold[0], rel=1e-4)
-
-
-def test_a_flashing_beacon_heats_its_output_at_every_on_edge(tmp_path):
-    # the beacon study flashed at 1 Hz: a filament that cools in the 0.5 s off-time (by
-    # default as fast as it warms) is limited again at every on-edge, and that heat is in
-    # the output's dissipation and junction; one that stays hot (a cooling time constant of
-    # 1,000 s) costs nothing
-    text = shipped("beacon_lamp_darlington.toml").replace(
+def test_a_flashing_lamp_and_a_short_package_constant_get_notes(tmp_path):
+    # a lamp on a PWM drive meets a cooled filament at every on-edge; that heat is not
+    # modelled (a first model was withdrawn: fast PWM heated the output more than slow
+    # flashing), so the review is told, with the bound f inrush_energy; a package time
+    # constant of milliseconds is likely a slip of units (a probe's 1 ms failed every unit)
+    text = shipped("beacon_lamp_darlington.toml")
+    flashing = study_from(tmp_path, text.replace(
         'source_resistance = {min = "25 ohm", max = "60 ohm"}',
-        'source_resistance = {min = "25 ohm", max = "60 ohm"}\nfrequency = "1 Hz"\nduty = 0.5',
-        1)
-    flashing = study_from(tmp_path, text, name="flash.toml")
-    hot = study_from(tmp_path, text.replace('part = "signal_lamp_12v_21w"',
-                                            'part = "signal_lamp_12v_21w"\n'
-                                            'cooling_time_constant = "1000 s"'),
-                     name="hot.toml")
-    assert "inrush_power" in flashing.stage.metrics
-    assert "inrush_power" not in load_study(
-        Path(__file__).resolve().parents[1] / "studies" / "beacon_lamp_darlington.toml"
-    ).stage.metrics
-    samples = draw(flashing, 40, 3)
-    a, b = flashing.stage.evaluate(samples), hot.stage.evaluate(samples)
-    ok = a["converged"] & b["converged"]
-    assert ok.sum() > 30
-    # a cold filament every second: watts (the single switch-on's joules, per period)
-    assert np.median(a["inrush_power"][ok]) > 1.0
-    assert np.all(b["inrush_power"][ok] < 0.02)
-    # the heat is in the output's dissipation and junction
-    assert np.all(a["power_output"][ok] > b["power_output"][ok] + 0.5 * a["inrush_power"][ok])
-    assert np.all(a["tj_output"][ok] > b["tj_output"][ok])
-    assert np.all(a["tj_inrush"][ok] >= a["tj_output"][ok])
+        'source_resistance = {min = "25 ohm", max = "60 ohm"}\nfrequency = "2 Hz"\nduty = 0.5',
+        1), name="flash.toml")
+    assert [n for n in flashing.notes() if "The lamp is switched at 2 Hz" in n
+            and "2 W per joule" in n]
+    static = study_from(tmp_path, text, name="static.toml")
+    assert not [n for n in static.notes() if "lamp is switched" in n or "package thermal" in n]
+    short = study_from(tmp_path, text.replace('heatsink = "6 K/W"',
+                                              'thermal_time_constant = "1 ms"\nheatsink = "6 K/W"',
+                                              1), name="short.toml")
+    assert [n for n in short.notes() if "Q2's package thermal time constant is 1 ms" in n]
 
 
 def test_a_lamp_stage_judges_the_junction_during_the_inrush(tmp_path):
