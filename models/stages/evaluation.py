@@ -705,10 +705,11 @@ def _gauss(a, b):
 def _filament(load_state, supply, capability, lamp_voltage, lamp_current):
     """The filament's figures of :func:`lamp_inrush` per sample, in units of its operating
     resistance R_f = V_L / I_L: which units the output limits (``limited``) and which never
-    saturate (``never``), the cold resistance ``rc`` and the end of the limiting ``r1`` (both
-    harmless placeholders outside the limited units, so that np.where drops their sums), the
-    exponents ``m`` and ``lift``, the heating factor ``k`` and the time
-    scale ``theta`` fixed by the free-running warm-up to WARM_UP_SHARE of the rise."""
+    saturate (``never``), the cold resistance ``rc`` and the end of the limiting ``r1``
+    (outside the limited units fixed values 0.5 and 0.75 that keep the integrals finite;
+    np.where drops their sums), the exponents ``m`` and ``lift``, the heating factor ``k``
+    and the time scale ``theta`` fixed by the free-running warm-up to WARM_UP_SHARE of the
+    rise."""
     from types import SimpleNamespace
 
     f = SimpleNamespace(
