@@ -29,7 +29,7 @@ from tolerance.files import (
     write_atomic,
 )
 from tolerance.runner import Override, RunSpec, code_digest
-from tolerance.study import SAMPLERS, Study, StudyError, parameter_hint
+from tolerance.study import MAX_CHUNK, SAMPLERS, Study, StudyError, parameter_hint
 from tolerance.study import load_study as _load_study_file
 from tolerance.threads import parent_threads
 
@@ -312,8 +312,6 @@ def write_json(path: Path, data: dict) -> None:
 
 #: most samples of one run, as the study file and the command line allow
 MAX_SAMPLES = 10**9
-#: largest chunk, as the study file and the command line allow
-MAX_CHUNK = 10**7
 
 
 def _whole(value, name: str) -> int:

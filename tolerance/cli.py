@@ -19,7 +19,7 @@ from tolerance.api import UsageError, load_study, run
 from tolerance.files import DamagedFile, atomic_path, os_error_text
 from tolerance.limits import exit_status
 from tolerance.runner import Terminated, UnreadableChunk
-from tolerance.study import SAMPLERS, StudyError
+from tolerance.study import MAX_CHUNK, SAMPLERS, StudyError
 from tolerance.units import format_ppm, format_quantity, format_yield
 
 SAFETY = ("Results are estimates from models and the tolerances you entered: confirm on the bench "
@@ -52,7 +52,7 @@ def _sample_count(text: str) -> int:
 
 def _chunk_count(text: str) -> int:
     """``--chunk-size``: as ``[run] chunk_size``, at most 10^7."""
-    return _positive_int(text, 10**7)
+    return _positive_int(text, MAX_CHUNK)
 
 
 def _seed(text: str) -> int:

@@ -732,6 +732,9 @@ ENGINE_KEYS = ("stage", "title", "description", "run", "limits", "correlation")
 #: categories, from memory)
 _NOT_IN_A_TITLE = frozenset({"Cc", "Cf", "Cs", "Co", "Cn", "Zl", "Zp"})
 
+#: the largest chunk of samples, for the study file, the command line and the API (a chunk's
+#: columns are held in memory at once)
+MAX_CHUNK = 10**7
 #: the longest title (common practice, no source: a heading of one line)
 MAX_TITLE = 200
 #: the largest study file read (common practice, no source: a study is a page or two)
@@ -845,7 +848,7 @@ def _read_run(r: Reader) -> RunSettings:
         samples=r.integer("samples", default=d.samples, minimum=1, maximum=10**9),
         seed=r.integer("seed", default=d.seed, minimum=0, maximum=2**63 - 1),
         sampler=r.string("sampler", default=d.sampler, choices=SAMPLERS),
-        chunk_size=r.integer("chunk_size", default=d.chunk_size, minimum=1, maximum=10**7),
+        chunk_size=r.integer("chunk_size", default=d.chunk_size, minimum=1, maximum=MAX_CHUNK),
         max_failure_rate=r.quantity("max_failure_rate", "1", default=d.max_failure_rate,
                                     minimum=0.0, maximum=0.5),
     )

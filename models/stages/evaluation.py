@@ -797,8 +797,8 @@ def lamp_inrush_rise(load_state, supply, capability, lamp_voltage, lamp_current,
     ((R_die, tau_die), (R_package, tau_package), :func:`models.thermal.foster_network`),
     Z_th(t) = sum R_i (1 - exp(-t / tau_i)) for a step of power (the Foster network's
     transient thermal impedance, JEDEC JESD51-14, as in :mod:`models.thermal`, whose
-    first-order stages respond to any power by superposition). The limiting is cut into panels of the
-    filament's resistance; over each, of width dt (Gauss-Legendre), the power is taken as
+    first-order stages respond to any power by superposition). The limiting is cut into
+    panels of the filament's resistance; over each, of width dt (Gauss-Legendre), the power is taken as
     linear in time between its exact values at the ends, P_0 to P_1 with slope s, to which
     each stage responds exactly: T_i <- T_i a + R_i (P_1 - s tau_i - (P_0 - s tau_i) a),
     a = e^(-dt/tau_i). The peak is the largest sum at a panel's end or at a stage's own
