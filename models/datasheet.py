@@ -22,6 +22,7 @@ vbe_sat_max at I_C, I_B   base_resistance               V_BE at the forced gain,
 hfe at the test point     forward_beta (per sample)     closed form, see forward_beta_for_hfe
 icbo_max at V_CB          cbo_leakage (per sample)      generation term of the model
 iceo_max at V_CE          be_leakage_emission           base open, hfe_max unit at icbo_max
+icbo_hot_max at its T     leakage_doubling              I_CBO at that temperature, icbo_max unit
 ========================  ============================  ======================================
 
 The conditions are coupled weakly; they are solved in turn (each a one-dimensional bracketed
@@ -96,6 +97,8 @@ DATASHEET_FIGURES: dict[str, tuple[str, str]] = {
     "icbo_vcb": ("V", "collector-base voltage of the I_CBO figure*"),
     "iceo_max": ("A", "maximum collector-emitter cut-off current, base open, at 25 degC"),
     "iceo_vce": ("V", "collector-emitter voltage of the I_CEO figure"),
+    "icbo_hot_max": ("A", "maximum I_CBO at icbo_hot_temperature (the same V_CB)"),
+    "icbo_hot_temperature": ("temperature", "temperature of the hot I_CBO figure"),
     "breakdown_vceo": ("V", "collector-emitter breakdown voltage, base open*"),
     "ic_max": ("A", "maximum continuous collector current*"),
     "power_rating": ("W", "total dissipation at 25 degC ambient, free air*"),
@@ -127,6 +130,12 @@ CLASS_DEFAULTS: dict[str, float] = {
 
 #: the temperature a P_tot is stated at, ambient or case (datasheet practice) [K]
 RATING_TEMPERATURE = 298.15
+
+#: lowest temperature of a hot I_CBO figure: 25 K above the 25 degC one [K]
+HOT_LEAKAGE_LOWEST = 323.15
+
+#: the range of ``leakage_doubling`` the model accepts, entered or fitted [K]
+DOUBLING_RANGE = (4.0, 20.0)
 
 REQUIRED = tuple(k for k, (_, d) in DATASHEET_FIGURES.items() if d.endswith("*"))
 
@@ -164,6 +173,8 @@ class Datasheet:
     hfe_low_min: float | None = None
     iceo_max: float | None = None
     iceo_vce: float | None = None
+    icbo_hot_max: float | None = None
+    icbo_hot_temperature: float | None = None
     vbe_sat_max: float | None = None
     theta_jc: float | None = None
     power_rating_case: float | None = None
@@ -219,7 +230,7 @@ class Datasheet:
                 if v < 0:
                     raise DatasheetError(f.name, f"must not be negative, got {v:g}")
             elif v <= 0:
-                what = ("a leakage current" if f.name in ("icbo_max", "iceo_max")
+                what = ("a leakage current" if f.name in ("icbo_max", "iceo_max", "icbo_hot_max")
                         else "this figure")
                 raise DatasheetError(f.name, f"{what} must be positive, got {v:g}")
         for name in ("hfe_min", "hfe_typ", "hfe_max", "hfe_high_min", "hfe_low_min"):
@@ -232,7 +243,7 @@ class Datasheet:
         if self.beta_exponent > 4.0:
             raise DatasheetError("beta_exponent", f"{self.beta_exponent:g} is outside 0 .. 4 "
                                                   f"(silicon transistors: about 1 to 2.5)")
-        if not 4.0 <= self.leakage_doubling <= 20.0:
+        if not DOUBLING_RANGE[0] <= self.leakage_doubling <= DOUBLING_RANGE[1]:
             raise DatasheetError("leakage_doubling", f"{self.leakage_doubling:g} K is outside "
                                                      f"4 .. 20 K (silicon: about 6 to 12 K)")
         for name in ("hfe_current", "vce_sat_ic", "vbe_on_current"):
@@ -290,6 +301,32 @@ class Datasheet:
                                                  f"({self.icbo_max:g} A): with the base open "
                                                  f"the leakage is 1 + h_FE times I_CBO",
                                      related=("icbo_max",))
+        if (self.icbo_hot_max is None) != (self.icbo_hot_temperature is None):
+            given, missing = (("icbo_hot_max", "icbo_hot_temperature")
+                              if self.icbo_hot_temperature is None
+                              else ("icbo_hot_temperature", "icbo_hot_max"))
+            raise DatasheetError(given, f"needs {missing} as well: icbo_hot_max and "
+                                        f"icbo_hot_temperature go together")
+        if self.icbo_hot_max is not None:
+            # the doubling is read from the rise between the two figures; datasheets state
+            # the hot one at 100 to 150 degC (common practice, no source), and a rise of
+            # under 25 K would amplify the figures' rounding into the doubling
+            if not HOT_LEAKAGE_LOWEST <= self.icbo_hot_temperature <= self.tj_max + 1e-9:
+                raise DatasheetError("icbo_hot_temperature",
+                                     f"{self.icbo_hot_temperature - 273.15:g} degC is outside "
+                                     f"{HOT_LEAKAGE_LOWEST - 273.15:g} degC .. tj_max "
+                                     f"({self.tj_max - 273.15:g} degC): the hot figure must lie "
+                                     f"at least 25 K above the 25 degC icbo_max and within "
+                                     f"the part's rating")
+            if self.icbo_hot_max <= self.icbo_max:
+                raise DatasheetError("icbo_hot_max", f"{self.icbo_hot_max:g} A is not above "
+                                                     f"icbo_max ({self.icbo_max:g} A): the "
+                                                     f"leakage rises with temperature",
+                                     related=("icbo_max",))
+            if self.icbo_hot_max >= self.ic_max:
+                raise DatasheetError("icbo_hot_max", f"{self.icbo_hot_max:g} A is not below "
+                                                     f"ic_max ({self.ic_max:g} A): check the "
+                                                     f"figure's unit")
         forced = self.vce_sat_ic / self.vce_sat_ib
         if forced >= self.hfe_min:
             raise DatasheetError("vce_sat_ib", f"the forced gain I_C/I_B = {forced:g} of the "
@@ -691,6 +728,36 @@ def _fit_open_base(ds, state, f_knee, f_phi, build, unit, solve):
     return None
 
 
+def _fit_doubling(ds, params, unit) -> float:
+    """``leakage_doubling`` [K] at which the unit of leakage ``icbo_max`` draws
+    ``icbo_hot_max`` at ``icbo_vcb`` and ``icbo_hot_temperature`` (emitter open).
+
+    The model's I_CBO there is the generation term and the ideal collector junction's
+    reverse current, which rises with the band-gap law, so the doubling is solved for rather
+    than read as (T - 25 degC) / log2(ratio)."""
+    from scipy import optimize  # here: a worker evaluating chunks never fits
+
+    q = unit(replace(params, cbo_leakage=ds.icbo_max), ds.hfe_median)
+
+    def f(doubling):
+        hot = icbo_at(replace(q, leakage_doubling=doubling), ds.icbo_vcb,
+                      temperature=ds.icbo_hot_temperature)
+        return math.log(_scalar(hot) / ds.icbo_hot_max)
+
+    lo, hi = DOUBLING_RANGE
+    f_lo, f_hi = f(lo), f(hi)
+    if not (math.isfinite(f_lo) and math.isfinite(f_hi)) or f_lo * f_hi > 0:
+        reach = (ds.icbo_hot_max * math.exp(f_hi), ds.icbo_hot_max * math.exp(f_lo))
+        raise DatasheetError("icbo_hot_max", f"{ds.icbo_hot_max:g} A at "
+                                             f"{ds.icbo_hot_temperature - 273.15:g} degC "
+                                             f"lies outside {reach[0]:.3g} .. {reach[1]:.3g} A, "
+                                             f"what a doubling every {lo:g} to {hi:g} K from "
+                                             f"icbo_max gives (silicon: about 6 to 12 K); "
+                                             f"check the figure's unit and temperature",
+                             related=("icbo_hot_temperature", "icbo_max"))
+    return optimize.brentq(f, lo, hi, xtol=1e-12, rtol=1e-12)
+
+
 def _iceo_refusal(ds, reach) -> DatasheetError:
     """The refusal of an I_CEO figure outside the range (lowest, highest) the gain figures
     allow (highest None: the figure lies below the lowest), each shown to as many digits as
@@ -962,6 +1029,9 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
             break
     if unmet is not None:
         raise _iceo_refusal(ds, unmet)
+    if ds.icbo_hot_max is not None:
+        # the doubling moves no figure at 25 degC, so it is fitted once, after the sweeps
+        base = replace(base, leakage_doubling=_fit_doubling(ds, build(), unit))
     p = build()
     for h in (ds.hfe_median, ds.hfe_max):
         unit(p, h)
@@ -992,4 +1062,7 @@ def model_figures(device: FittedDevice) -> dict[str, float]:
     if ds.iceo_max is not None:
         out["iceo_max"] = _scalar(iceo_at(device.parameters(ds.hfe_max, ds.icbo_max),
                                           ds.iceo_vce))
+    if ds.icbo_hot_max is not None:
+        out["icbo_hot_max"] = _scalar(icbo_at(device.parameters(ds.hfe_median, ds.icbo_max),
+                                              ds.icbo_vcb, temperature=ds.icbo_hot_temperature))
     return out

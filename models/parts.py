@@ -407,6 +407,11 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
                               f"unit")
     if supply_minimum is not None and vce_sat is not None:
         supply_floor(part, vce_sat, name)  # the same check for pins and value choices
+    if part.has("leakage_doubling") and figures.get("icbo_hot_max") is not None:
+        # the fit sets the doubling from the hot figure (models.datasheet._fit_doubling)
+        raise part.error("leakage_doubling", "is what icbo_hot_max and icbo_hot_temperature "
+                                             "set: give the hot figure or the doubling, not "
+                                             "both")
     try:
         ds = Datasheet.from_figures(figures)
     except DatasheetError as exc:

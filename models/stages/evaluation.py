@@ -1156,7 +1156,7 @@ def device_assumptions(stage) -> list[dict]:
             "vce_sat_max": f"{q(ds.vce_sat_max, 'V')} at {q(ds.vce_sat_ic, 'A')} / "
                            f"{q(ds.vce_sat_ib, 'A')}",
             "vbe_on": q(ds.vbe_on, "V"),
-            "icbo_max": q(ds.icbo_max, "A"),
+            "icbo_max": _cbo_leakage_text(part.device),
             # a monolithic pair's dies share one junction (thermal.shared): its I_CEO is the
             # whole part's with the internal resistors, and a die's own misleads (the output
             # die's fit, without a roll-off figure, leaked 1,700 times its I_CBO)
@@ -1172,6 +1172,19 @@ def device_assumptions(stage) -> list[dict]:
         if charge is not None:
             rows[-1].update(charge_assumptions(charge, ds.hfe_median, ds.reverse_beta))
     return rows
+
+
+def _cbo_leakage_text(device) -> str:
+    """I_CBO max at 25 degC and how it rises, as text: the study's hot figure where it gives
+    one (the fit meets it), else the doubling the model takes, marked as the class's."""
+    from tolerance.units import format_quantity as q
+
+    ds = device.datasheet
+    text = q(ds.icbo_max, "A")
+    if ds.icbo_hot_max is not None:
+        return (f"{text}; {q(ds.icbo_hot_max, 'A')} at "
+                f"{q(ds.icbo_hot_temperature, 'temperature')}")
+    return f"{text}; x2 per {device.template.leakage_doubling:.3g} K"
 
 
 def _open_base_leakage(device) -> str:
