@@ -527,13 +527,24 @@ def test_sensitivity_of_linear_stage(study):
 def test_target_ci_stops_early_and_deterministically(study):
     a = run(study, samples=400_000, chunk_size=10_000, target_ci=0.002)
     b = run(study, samples=400_000, chunk_size=7_000, target_ci=0.002, jobs=2)
+    from tolerance import stats
     assert a.summary["samples"] < 400_000
     assert a.summary["samples"] == b.summary["samples"]
     c = a.summary["criteria"]["y_positive"]
-    assert (c["ci_high"] - c["ci_low"]) / 2 < 0.002
+    assert float(stats.half_width(c["failures"], c["evaluated"])) < 0.002
     assert a.summary["criteria"] == b.summary["criteria"]
     t = a.summary["target_ci"]
     assert t["reached"] and t["widest"] < 0.002 and t["samples"] == a.summary["samples"]
+    # the counts decided the stop, so the intervals reported are exact at 97.5 %
+    # (tolerance.summary.STOPPED_RUN_CONFIDENCE; scipy.stats.binomtest as reference)
+    assert a.summary["interval_level"] == t["interval_level"] == 0.975
+    from scipy import stats as scipy_stats
+    ref = scipy_stats.binomtest(c["failures"], c["evaluated"]).proportion_ci(0.975, "exact")
+    assert (c["ci_low"], c["ci_high"]) == pytest.approx((ref.low, ref.high), rel=1e-9)
+    from tolerance.report import target_sentence
+    assert "exact at 97.5 %" in target_sentence(t, str)
+    # a run of one check's samples or fewer has its length fixed: 95 % as usual
+    assert run(study, samples=20_000, target_ci=0.002).summary["interval_level"] == 0.95
 
 
 def test_target_ci_not_reached_is_said(study):

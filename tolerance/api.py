@@ -460,7 +460,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     from tolerance.summary import summarize
 
     meta = dict(study_path=study.path, title=study.title, stage_name=study.stage_name,
-                allowed_rate=study.settings.max_failure_rate)
+                allowed_rate=study.settings.max_failure_rate,
+                interval_confidence=interval_level(spec.samples, target_ci))
     # the workers are idle once the samples are written: the summary's column work uses as
     # many threads as there were workers (tolerance.threads)
     threads = parent_threads(jobs)
@@ -562,6 +563,18 @@ def _extra(study: Study, column, insights: bool, threads: int = 1) -> dict:
     return extra
 
 
+def interval_level(samples: int, target_ci) -> float:
+    """The exact intervals' level of a run of at most ``samples``: 95 %, or
+    :data:`tolerance.summary.STOPPED_RUN_CONFIDENCE` where ``--target-ci`` checks the counts
+    at least once (a run of at most one check's samples has its length fixed)."""
+    from tolerance.runner import CHECK_EVERY
+    from tolerance.summary import CONFIDENCE, STOPPED_RUN_CONFIDENCE
+
+    if target_ci is not None and samples > CHECK_EVERY:
+        return STOPPED_RUN_CONFIDENCE
+    return CONFIDENCE
+
+
 def target_status(summary: dict, width: float) -> dict:
     """Whether a run with ``--target-ci`` reached its target: the widest 95 % interval
     half-width of any criterion (the stopping rule's own measure) and where it lies."""
@@ -574,7 +587,8 @@ def target_status(summary: dict, width: float) -> dict:
             widest, name = h, cname
     return {"half_width": width, "reached": bool(widest < width), "widest": widest,
             "widest_criterion": name, "samples": summary["samples"],
-            "planned_samples": summary.get("planned_samples", summary["samples"])}
+            "planned_samples": summary.get("planned_samples", summary["samples"]),
+            "interval_level": summary.get("interval_level", summary.get("confidence", 0.95))}
 
 
 def _half_width_rule(spec: RunSpec, width: float):

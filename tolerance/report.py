@@ -1420,10 +1420,18 @@ def target_sentence(target: dict, rate) -> str:
               f"({target.get('widest_criterion')})")
     n, planned = target.get("samples"), target.get("planned_samples")
     if target.get("reached"):
-        return (f"{head} after {format_number(n)} of at most {format_number(planned)} "
+        text = (f"{head} after {format_number(n)} of at most {format_number(planned)} "
                 f"samples; {widest}.")
-    return (f"{head} within the {format_number(planned)} samples allowed (--samples); {widest}; "
-            "more samples would narrow it.")
+    else:
+        text = (f"{head} within the {format_number(planned)} samples allowed (--samples); "
+                f"{widest}; more samples would narrow it.")
+    level = target.get("interval_level")
+    if isinstance(level, (int, float)) and level > 0.95:
+        text += (f" The counts decided where the run stopped, which lowers an exact 95 % "
+                 f"interval's coverage (to about 94 %): the intervals and bounds reported "
+                 f"are exact at {100 * level:g} %, which keeps at least 95 % (simulated), "
+                 f"so they are wider than the half-width the target measures.")
+    return text
 
 
 #: what the device table means and what it asks of a reviewer
@@ -1432,7 +1440,9 @@ DEVICES_NOTE = (
     "any figure the study gives in their place. The library's classes hold typical class "
     "values from memory, not a datasheet: for a sign-off enter the chosen part's own figures "
     "in its [parts.Qn] table (README, 'Stage keys') and check them here. theta_JA is the "
-    "path the stage uses, a heatsink included. I_CEO is the collector current with the base "
+    "path the stage uses, a heatsink included. I_CBO max is at 25 degC, with the study's "
+    "hot figure (icbo_hot_max) where it gives one, else the rise the model takes (doubling "
+    "every leakage_doubling kelvin). I_CEO is the collector current with the base "
     "open (the highest-gain unit at I_CBO max, 25 degC): the study's iceo_max where it gives "
     "one, else the model's own figure, marked (model), to set beside the part's datasheet; "
     "it decides the off-state leakage of an output without a base-emitter resistor.")
