@@ -216,6 +216,15 @@ class Datasheet:
         """The figures as a dict (None for absent optional ones)."""
         return {f.name: getattr(self, f.name) for f in fields(self)}
 
+    def _together(self, first: str, second: str) -> None:
+        """Refuse one of two figures that make one datasheet line without the other, named
+        by the figure that was given (the study's table has no other)."""
+        if (getattr(self, first) is None) != (getattr(self, second) is None):
+            given, missing = ((first, second) if getattr(self, second) is None
+                              else (second, first))
+            raise DatasheetError(given, f"needs {missing} as well: {first} and {second} go "
+                                        f"together")
+
     def check(self) -> None:
         """Raise :class:`DatasheetError` naming the first inconsistent figure."""
         if self.polarity not in ("npn", "pnp"):
@@ -273,12 +282,7 @@ class Datasheet:
             if self.hfe_low_min >= self.hfe_min:
                 raise DatasheetError("hfe_low_min", "must be below hfe_min (the gain rolls off "
                                                     "at low current)")
-        if (self.iceo_max is None) != (self.iceo_vce is None):
-            # named by the figure that was given (the study's table has no other)
-            given, missing = (("iceo_max", "iceo_vce") if self.iceo_vce is None
-                              else ("iceo_vce", "iceo_max"))
-            raise DatasheetError(given, f"needs {missing} as well: iceo_max and iceo_vce go "
-                                        f"together")
+        self._together("iceo_max", "iceo_vce")
         if self.iceo_max is not None:
             # a datasheet's I_CEO is measured with the collector junction well reverse-biased,
             # at volts to tens of volts (common practice, no source); below a volt the base
@@ -301,12 +305,7 @@ class Datasheet:
                                                  f"({self.icbo_max:g} A): with the base open "
                                                  f"the leakage is 1 + h_FE times I_CBO",
                                      related=("icbo_max",))
-        if (self.icbo_hot_max is None) != (self.icbo_hot_temperature is None):
-            given, missing = (("icbo_hot_max", "icbo_hot_temperature")
-                              if self.icbo_hot_temperature is None
-                              else ("icbo_hot_temperature", "icbo_hot_max"))
-            raise DatasheetError(given, f"needs {missing} as well: icbo_hot_max and "
-                                        f"icbo_hot_temperature go together")
+        self._together("icbo_hot_max", "icbo_hot_temperature")
         if self.icbo_hot_max is not None:
             # the doubling is read from the rise between the two figures; datasheets state
             # the hot one at 100 to 150 degC (common practice, no source), and a rise of

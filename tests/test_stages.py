@@ -16,7 +16,7 @@ import pytest
 from scipy import optimize
 
 from tolerance.models.transistor import BOLTZMANN, ELEMENTARY_CHARGE, TransistorParameters
-from tolerance.study import load_study
+from tolerance.study import StudyError, load_study
 
 # ---------------------------------------------------------------------------------------------
 # study helpers
@@ -830,6 +830,36 @@ def test_base_emitter_resistor_cuts_hot_leakage_by_the_gain(tmp_path):
     assert i_open / i_shunt == pytest.approx(
         (1 + h[0]) / (1 + scaled.saturation_current[0] * 100.0 / vt), rel=5e-3)
     assert i_open / i_shunt > 30  # the gain at a few microamperes is tens
+
+
+def test_a_hot_icbo_figure_sets_a_stage_s_hot_off_current(tmp_path):
+    # the shunted stage above leaks I_gen (1 + I_S R / V_T), I_gen to 1e-3 here; with the
+    # datasheet's hot line (5 uA at 100 degC for the 50 nA class figure) the 20 nA unit draws
+    # 20 nA x 100 = 2 uA there, where the class's 10 K doubling gives 20 nA x 2^7.5 = 3.6 uA
+    hot = 'icbo = "20 nA"\nicbo_hot_max = "{hot}"\nicbo_hot_temperature = "100 degC"'
+    study = study_from(tmp_path, LEAKAGE.format(rb="100 ohm").replace(
+        'icbo = "20 nA"', hot.format(hot="5 uA")))
+    assert study.stage.dc(nominal(study))["off_current"][0] == pytest.approx(2e-6, rel=5e-3)
+    plain = study_from(tmp_path, LEAKAGE.format(rb="100 ohm"), name="plain.toml")
+    assert plain.stage.dc(nominal(plain))["off_current"][0] == pytest.approx(
+        20e-9 * 2 ** 7.5, rel=5e-3)
+    # the report's device table states the figure the fit met, or the class's doubling
+    from tolerance.models.stages.evaluation import device_assumptions
+    assert device_assumptions(study.stage)[0]["icbo_max"] == "50 nA; 5 uA at 100 degC"
+    assert device_assumptions(plain.stage)[0]["icbo_max"] == "50 nA; x2 per 10 K"
+    # a figure no doubling of 4 to 20 K gives: exit 2 naming the key, and no traceback
+    bad = tmp_path / "bad.toml"
+    bad.write_text(LEAKAGE.format(rb="100 ohm").replace('icbo = "20 nA"',
+                                                        hot.format(hot="60 nA")))
+    res = subprocess.run([sys.executable, "-m", "tolerance", "check", str(bad)],
+                         capture_output=True, text=True)
+    assert res.returncode == 2 and "parts.Q1.icbo_hot_max" in res.stderr
+    assert "Traceback" not in res.stderr
+    # the hot figure and a doubling of the study's own contradict each other
+    with pytest.raises(StudyError, match=r"parts\.Q1\.leakage_doubling: is what icbo_hot_max"):
+        study_from(tmp_path, LEAKAGE.format(rb="100 ohm").replace(
+            'icbo = "20 nA"', hot.format(hot="5 uA") + '\nleakage_doubling = "8 K"'),
+            name="both.toml")
 
 
 @pytest.mark.parametrize("stage_text", [SINGLE_NOMINAL, DARLINGTON_WIDE, SZIKLAI_WIDE],
