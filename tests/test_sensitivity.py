@@ -94,6 +94,25 @@ def test_prcc_equals_residual_correlation_definition():
         assert _row(table, name, "y")["prcc"] == pytest.approx(ref, abs=1e-10)
 
 
+def test_prcc_is_undefined_where_one_input_gives_the_output_s_ranks():
+    # Marino et al., J. Theor. Biol. 254 (2008) 178-196: PRCC is the correlation of the
+    # rank residuals; where y is a monotone function of p alone (found by a review: a driver
+    # junction following the ambient's ranks), y's residual given p is zero, so the other
+    # inputs' PRCC is 0 / 0, not the +-1 rounding made of it
+    # (without the floor these eight inputs read +1 for every one of the seven others)
+    rng = np.random.default_rng(2)
+    x = pd.DataFrame(rng.uniform(size=(3000, 8)), columns=[f"x{i}" for i in range(8)])
+    y = pd.DataFrame({"y": 25.0 + x["x0"] ** 3})
+    table = rank_sensitivity(x, y)
+    assert _row(table, "x0", "y")["prcc"] == pytest.approx(1.0, abs=1e-12)
+    for name in x.columns[1:]:
+        assert np.isnan(_row(table, name, "y")["prcc"]), name
+        assert abs(_row(table, name, "y")["spearman"]) < 0.06
+    # a small real share keeps its partial correlation: here x1 moves the ranks
+    y2 = pd.DataFrame({"y": x["x0"] + 0.05 * x["x1"]})
+    assert _row(rank_sensitivity(x, y2), "x1", "y")["prcc"] > 0.5
+
+
 def test_srrc_squared_matches_variance_shares_of_linear_model():
     # y = 2 x1 + x2 with x1, x2, x3 independent U(0,1).
     rng = np.random.default_rng(2024)
@@ -343,6 +362,31 @@ def test_failure_drivers_single_input_when_second_does_not_help():
     one[int(np.argmax(x["hfe"]))] = True
     lone = failure_drivers(x, one, units=units, formatter=lambda v, u: f"{v:.0f} [{u}]")
     assert lone["units_inside"] == 1 and "(1 of 1 units;" in lone["text"]
+
+
+def test_failure_drivers_name_no_region_for_failures_chance_would_place():
+    # found by a review: one failing unit, near the top of two of 14 inputs, was given a
+    # region "... 100 % of failures" though pinning one of them failed no unit. Bonferroni
+    # over the inputs (common practice, no source): the best input's p-value times the
+    # inputs must be at most 5 %; the exact p of a lone unit at the k-th highest of n is
+    # about 2 k / n (exchangeability, from memory)
+    rng = np.random.default_rng(21)
+    n = 4000
+    x = pd.DataFrame(rng.uniform(size=(n, 10)), columns=[f"x{i}" for i in range(10)])
+    one = np.zeros(n, dtype=bool)
+    one[int(np.argsort(x["x3"].to_numpy())[-20])] = True  # the 20th highest: p about 0.01
+    res = failure_drivers(x, one, formatter=lambda v, u: f"{v:.3f}")
+    assert res["region"] == [] and res["ranking"][0]["input"] == "x3"
+    assert res["text"].startswith("1 failing unit: no input separates it from the passes "
+                                  "at 5 % significance (best x3, p = 0.01")
+    # the unit's place: x3 above 99.5 % of the units (19 of 3,999 above it)
+    assert "x3 " in res["text"].split("furthest out in: ")[1].split(";")[0]
+    assert "(above 99.5 % of units)" in res["text"]
+    # at the very top of an input the same unit is a finding (p = 2 / 4000 x 10 inputs)
+    top = np.zeros(n, dtype=bool)
+    top[int(np.argmax(x["x3"].to_numpy()))] = True
+    found = failure_drivers(x, top, formatter=lambda v, u: f"{v:.3f}")
+    assert [c["input"] for c in found["region"]] == ["x3"]
 
 
 def test_failure_drivers_no_failures():

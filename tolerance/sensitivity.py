@@ -143,6 +143,12 @@ def _standardized_ranks(values: np.ndarray, threads: int = 1
     return z, constant
 
 
+#: an output's unexplained rank variance at or below this share counts as none (rounding
+#: leaves some 1e-16 of it), and so does a rank regression coefficient this small relative
+#: to the largest
+EXPLAINED_FLOOR = 1e-9
+
+
 def _rank_measures(x: np.ndarray, y: np.ndarray, threads: int = 1
                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Spearman, SRRC and PRCC for every input column against every output column.
@@ -158,7 +164,8 @@ def _rank_measures(x: np.ndarray, y: np.ndarray, threads: int = 1
     -------
     spearman, srrc, prcc : ndarray, shape (p, m)
         NaN where the input or the output is constant, or where the rank regression is
-        singular (collinear inputs).
+        singular (collinear inputs); PRCC also where the other inputs' ranks give the
+        output's exactly (its partial correlation is then 0 / 0).
 
     Notes
     -----
@@ -207,6 +214,14 @@ def _rank_measures(x: np.ndarray, y: np.ndarray, threads: int = 1
     denom = np.sqrt(s[None, :] * np.diag(inv)[:, None] + b**2)
     with np.errstate(invalid="ignore", divide="ignore"):
         pr = np.where(denom > 0, b / denom, np.nan)
+    # an output whose ranks the inputs' ranks give exactly (a junction temperature that
+    # follows the ambient's ranks while its own heating is millikelvin) leaves nothing to
+    # correlate: the other inputs' partial correlations are 0 / 0, which rounding made +-1
+    # (found by a review: every input at PRCC -1 beside Spearman 0.03 and Sobol 0); the
+    # input that carries the output keeps +-1, the others' are undefined
+    exact = s <= EXPLAINED_FLOOR
+    noise = np.abs(b) <= EXPLAINED_FLOOR * np.max(np.abs(b), axis=0, initial=0.0)
+    pr = np.where(exact[None, :] & noise, np.nan, pr)
     srrc[np.ix_(keep, np.flatnonzero(good_y))] = b
     prcc[np.ix_(keep, np.flatnonzero(good_y))] = np.clip(pr, -1.0, 1.0)
     return spearman, srrc, prcc
@@ -834,6 +849,50 @@ def failure_drivers_of(
     return out
 
 
+#: the family-wise significance a failure driver's region needs (Bonferroni over the inputs)
+DRIVER_SIGNIFICANCE = 0.05
+
+#: up to this many failures a driver text that names no region says where each failing unit
+#: lies furthest out among the units
+FEW_FAILURES = 3
+
+
+def _chance_text(names, x, fail, best, varying, units, fmt) -> str:
+    """What to say of failures no input separates from the passes at
+    :data:`DRIVER_SIGNIFICANCE`: the best input's p-value and, for a few failures, each
+    failing unit's three inputs furthest out in the units' own spread (two-sided
+    percentile), which a reviewer can pin in a what-if."""
+    n_fail = int(fail.sum())
+    what = "failing unit" if n_fail == 1 else "failing units"
+    text = (f"{n_fail:,} {what}: no input separates {'it' if n_fail == 1 else 'them'} "
+            f"from the passes at "
+            f"{100 * DRIVER_SIGNIFICANCE:g} % significance (best {best['input']}, p = "
+            f"{best['p_value']:.2g} against {DRIVER_SIGNIFICANCE / varying:.2g} for "
+            f"{varying} varying inputs), so no driver is named")
+    if n_fail > FEW_FAILURES:
+        return text
+    spread = np.ptp(x, axis=0) > 0
+    seen = []
+    for row in x[fail]:
+        # the share of units below the failing unit's value, ties counted half
+        below = (np.count_nonzero(x < row, axis=0) + 0.5 * np.count_nonzero(x == row, axis=0)
+                 - 0.5) / max(len(x) - 1, 1)
+        out = np.where(spread, np.abs(below - 0.5), -1.0)
+        far = [i for i in np.argsort(-out, kind="stable")[:3] if out[i] >= 0]
+        seen.append(", ".join(
+            f"{names[i]} {fmt(row[i], units.get(names[i], '1'))} "
+            f"({_percentile_words(below[i])})" for i in far))
+    lead = "the unit lies furthest out in" if n_fail == 1 else "furthest out lie"
+    return text + f"; {lead}: " + "; ".join(seen)
+
+
+def _percentile_words(share: float) -> str:
+    """A unit's place among the units, e.g. "above 99.6 % of units"."""
+    if share >= 0.5:
+        return f"above {_percent(share)} % of units"
+    return f"below {_percent(1.0 - share)} % of units"
+
+
 def _drivers(names, x, fail, ks, dropped, units, fmt, top) -> dict:
     """The failure drivers of one label, with its KS statistics ``ks = (d, sign)`` (None
     when the label has no failure or no pass, or up to 200 samples, where scipy's exact
@@ -891,6 +950,20 @@ def _drivers(names, x, fail, ks, dropped, units, fmt, top) -> dict:
             **empty,
             "ranking": ranking,
             "text": "no input separates failures from passes",
+            **base,
+        }
+    # a region drawn round a few failures that chance alone would place as far out names
+    # inputs that do not matter (found by a review: one unit failing stays_off read "Q1.icbo
+    # above 41 nA and supply.voltage above 26.2 V: 100 % of failures", where pinning the
+    # supply at its maximum failed none and the drive's low level was the cause). The best
+    # input must separate them at 5 % after Bonferroni's correction over the varying inputs
+    # (common practice, no source)
+    varying = max(int(np.count_nonzero(np.ptp(x, axis=0) > 0)) if n else 0, 1)
+    if drivers[0]["p_value"] * varying > DRIVER_SIGNIFICANCE:
+        return {
+            **empty,
+            "ranking": ranking,
+            "text": _chance_text(names, x, fail, drivers[0], varying, units, fmt),
             **base,
         }
 
