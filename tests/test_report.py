@@ -577,6 +577,26 @@ def test_worst_case_within_compares_the_worst_extremes_with_every_limit():
     assert "the extreme is one of them" not in notes[0]
 
 
+def test_worst_case_notes_explain_infinite_extremes_and_bands_below_zero():
+    # found by a review: a corner's turn-on delay read "inf" with no word why, a leakage's
+    # RSS band read -53 nA .. 99 nA beside corners and units of 37 pA and up, and the console
+    # printed "nan" where the report of the same file printed "-"
+    from tolerance import report
+    leak = {"nominal": 1.56e-8, "eva_min": 3.7e-11, "eva_max": 2.7e-2, "rss_low": -5.3e-8,
+            "linear_low": -9e-8, "mc_min": 1.2e-10, "mc_max": 2.9e-3}
+    delay = {"nominal": 2.8e-4, "eva_min": 1.6e-4, "eva_max": "inf", "rss_low": 1.9e-4,
+             "linear_low": 1.5e-4, "mc_min": 1.8e-4, "mc_max": 4.5e-4}
+    energy = {"nominal": -5.6e-5, "eva_min": -1.8e-4, "eva_max": -3.6e-7, "rss_low": -9.4e-5,
+              "linear_low": -1.2e-4, "mc_min": -1.4e-4, "mc_max": -2.2e-5}
+    notes = report.worstcase_notes({"metrics": {"off_current": leak, "turn_on_delay": delay,
+                                                "energy_on": energy}})
+    assert len(notes) == 2
+    assert notes[0].startswith("An extreme of inf (turn_on_delay) is a corner or unit")
+    # a metric below zero in its own corners (an energy returned to the supply) is no case
+    assert notes[1].startswith("The RSS or linear band of off_current reaches below zero")
+    assert report.format_value(float("nan"), "A") == "-" == report.format_value(None, "A")
+
+
 def test_analysis_only_folders(write_study, tmp_path):
     from tolerance.cli import main
 

@@ -138,6 +138,10 @@ def format_value(x, unit: str | None) -> str:
     if isinstance(x, (bool, np.bool_)) or not isinstance(x, (int, float, np.integer,
                                                               np.floating)):
         return str(x)
+    if math.isnan(x):
+        # no value, as a saved file's null reads (the console printed "nan" where the
+        # report of the same figures read "-")
+        return "-"
     if unit:
         try:
             return format_quantity(float(x), unit)
@@ -614,7 +618,33 @@ def worstcase_notes(data: dict) -> list[str]:
             "the box (a metric that turns around within a parameter's range, e.g. a derating "
             "that starts at 25 degC) that the corners cannot reach and the search missed; "
             "'worst case within' counts it.")
+    endless = [name for name, m in metrics.items() if isinstance(m, dict) and any(
+        math.isinf(v) for v in _extremes(*(m.get(k) for k in (
+            "eva_min", "eva_max", "opt_min", "opt_max", "mc_min", "mc_max"))))]
+    if endless:
+        # found by a review: a corner's "inf" turn-on delay stood unexplained
+        notes.append(
+            f"An extreme of inf ({', '.join(endless)}) is a corner or unit where the metric "
+            "has no finite value: a switching time whose transition never completes (the "
+            "stage stays on, or never turns on, there: see off_fraction and drive_margin at "
+            "that end), or a stress beyond its rating's maximum temperature.")
+    below = [name for name, m in metrics.items() if isinstance(m, dict)
+             and _below_every_value(m)]
+    if below:
+        notes.append(
+            f"The RSS or linear band of {', '.join(below)} reaches below zero, where no "
+            "corner and no Monte Carlo unit lies: the metric is far from linear over the "
+            "tolerances (leakage grows exponentially with temperature), so its band is no "
+            "estimate there; read the EVA and Monte Carlo columns.")
     return notes
+
+
+def _below_every_value(m: dict) -> bool:
+    """Whether a metric's linearized band reaches below zero while its nominal, its solved
+    corners and its Monte Carlo units all lie at or above zero."""
+    band = _extremes(m.get("rss_low"), m.get("linear_low"))
+    seen = _extremes(m.get("nominal"), m.get("eva_min"), m.get("mc_min"))
+    return bool(band) and min(band) < 0 and len(seen) == 3 and min(seen) >= 0
 
 
 def worstcase_tables(data: dict) -> list[Table]:
@@ -1440,7 +1470,9 @@ DEVICES_NOTE = (
     "any figure the study gives in their place. The library's classes hold typical class "
     "values from memory, not a datasheet: for a sign-off enter the chosen part's own figures "
     "in its [parts.Qn] table (README, 'Stage keys') and check them here. theta_JA is the "
-    "path the stage uses, a heatsink included. I_CBO max is at 25 degC, with the study's "
+    "path the stage uses, a heatsink included, and P_tot the rating its power check uses "
+    "(on a heatsink the case rating at 25 degC case; never above (T_j max - 25 degC) over "
+    "the path's theta). I_CBO max is at 25 degC, with the study's "
     "hot figure (icbo_hot_max) where it gives one, else the rise the model takes (doubling "
     "every leakage_doubling kelvin). I_CEO is the collector current with the base "
     "open (the highest-gain unit at I_CBO max, 25 degC): the study's iceo_max where it gives "
