@@ -177,6 +177,17 @@ def test_heatsink_chain_lowers_theta():
     # in parallel with the package's own theta_JA - theta_JC; class theta_JC 10 K/W, theta_JA
     # 100 K/W: 10 + 1 / (1 / 20.5 + 1 / 90) = 26.70 K/W (hand calculation)
     assert study.stage.thermal.theta["Q1"] == pytest.approx(26.6968, abs=1e-4)
+    # the devices table lists the P_tot the power check uses: on the sink the case rating,
+    # (150 - 25 degC) / 10 K/W = 12.5 W with no power_rating_case given (a review found the
+    # free-air 1.25 W listed there), and in free air 125 K / 160 K/W below a stated 1.25 W
+    from tolerance.models.stages.evaluation import device_assumptions
+    assert device_assumptions(study.stage)[0]["power_rating"] == (
+        "12.5 W at 25 degC case ((T_j max - 25 degC) / theta_JC; free air 1.25 W)")
+    warm = load_text("warm.toml", text=_demo_with('theta_ja = "160 K/W"'))
+    assert device_assumptions(warm.stage)[0]["power_rating"] == (
+        "781 mW ((T_j max - 25 degC) / theta_JA, below the stated 1.25 W)")
+    assert device_assumptions(load_text("plain.toml", text=_demo_with()).stage)[0][
+        "power_rating"] == "1.25 W"
 
 
 def test_a_free_air_rating_cannot_exceed_what_theta_ja_allows():
@@ -692,11 +703,36 @@ def test_study_notes_name_a_high_supply_and_a_junction_above_tj_max():
                in n for n in notes)
     notes = _slow().notes()
     hot = [n for n in notes if "above its T_j max" in n]
-    assert len(hot) == 1 and "Q1" in hot[0] and "100 degC" in hot[0] and "burns" in hot[0]
+    assert len(hot) == 1 and "Q1" in hot[0] and "100 degC" in hot[0] and "burn" in hot[0]
+    # found by a review: a junction just over a 60 degC T_j max was said to "char what it
+    # touches"; the hazard now follows the temperature itself (from memory: skin burns on
+    # contact from about 60 degC, cellulose scorches from about 150 degC)
+    from tolerance.models.stages.evaluation import _hot_part_hazard
+    assert "scorch" in _hot_part_hazard(200 + 273.15)
+    assert _hot_part_hazard(100 + 273.15) == "; a part that hot can burn on touch"
+    assert _hot_part_hazard(55 + 273.15) == ""
     # the shipped studies' notes stay as they were where nothing is hot or high
     root = ROOT / "studies"
     assert not any("T_j max" in n or "safety-extra" in n
                    for n in load_study(root / "pwm_led_dimmer_darlington.toml").notes())
+
+
+def test_a_drive_current_limit_is_told_the_base_voltage_is_the_datasheet_maximum():
+    # found by a review: every unit's V_BE follows the fitted V_BE(sat) maximum, so a limit
+    # on the drive current from above is judged on the light side; the study is told, and
+    # the part's typical figure as vbe_sat_max shows the other side (Ohm's law through RB:
+    # a lower V_BE draws more)
+    capped = _demo_with() + '\ndrive_current = {max = "30 mA"}\n'
+    notes = [n for n in load_text("capped.toml", text=capped).notes()
+             if "V_BE(sat) maximum" in n]
+    assert len(notes) == 1 and notes[0].startswith("drive_current is limited from above")
+    assert not any("V_BE(sat) maximum" in n for n in load_text("a.toml", text=_demo_with())
+                   .notes())
+    typical = load_text("typ.toml", text=_demo_with('vbe_sat_max = "0.95 V"'))
+    worst = load_text("max.toml", text=_demo_with())
+    values = {p.name: np.full(1, p.nominal) for p in worst.parameters}
+    assert (typical.stage.dc(values)["drive_current"][0]
+            > worst.stage.dc(values)["drive_current"][0])
 
 
 def test_a_share_of_failures_below_one_never_reads_100_percent():

@@ -1164,7 +1164,7 @@ def device_assumptions(stage) -> list[dict]:
                      else _open_base_leakage(part.device)),
             "breakdown_vceo": q(ds.breakdown_vceo, "V"),
             "ic_max": q(ds.ic_max, "A"),
-            "power_rating": q(ds.power_rating, "W"),
+            "power_rating": _power_rating_text(ds, thermal, name),
             "tj_max": q(ds.tj_max, "temperature"),
             "theta_ja": q(float(theta), "K/W"),
         })
@@ -1172,6 +1172,29 @@ def device_assumptions(stage) -> list[dict]:
         if charge is not None:
             rows[-1].update(charge_assumptions(charge, ds.hfe_median, ds.reverse_beta))
     return rows
+
+
+def _power_rating_text(ds, thermal, name) -> str:
+    """The P_tot a part's power check uses, as text: on a heatsink the case rating at
+    25 degC case (the free-air figure beside it), else the free-air one; either where the
+    part's path limits it below the stated figure, (T_j max - 25 degC) / theta, says so.
+    A review found the free-air 1.25 W listed while a heatsinked part was judged on 12.5 W."""
+    from tolerance.units import format_quantity as q
+
+    used = (thermal.power_rating.get(name) if thermal is not None else None)
+    if used is None:
+        return q(ds.power_rating, "W")
+    on_sink = name in (thermal.case_theta or {})
+    stated = ds.power_rating_case if on_sink else ds.power_rating
+    why = []
+    if stated is None or used < stated * (1 - 1e-9):
+        path = "theta_JC" if on_sink else "theta_JA"
+        why.append(f"(T_j max - 25 degC) / {path}"
+                   + (f", below the stated {q(stated, 'W')}" if stated is not None else ""))
+    if on_sink:
+        why.append(f"free air {q(ds.power_rating, 'W')}")
+    where = " at 25 degC case" if on_sink else ""
+    return f"{q(used, 'W')}{where}" + (f" ({'; '.join(why)})" if why else "")
 
 
 def _cbo_leakage_text(device) -> str:
@@ -1220,6 +1243,23 @@ def charge_assumptions(charge, forward_beta, reverse_beta) -> dict[str, str]:
                                   f"{q(float(charge.bc_zero_bias_capacitance), 'F')}",
         "storage_time_constant": q(float(tau_s), "s"),
     }
+
+
+#: surface temperatures [K] above which touching burns skin within seconds, and above which
+#: paper, wood and plastics next to the part start to scorch (from memory: contact burn
+#: guidance puts the first near 60 degC for metal, and cellulose browns from about 150 degC)
+TOUCH_BURN_TEMPERATURE = 333.15
+SCORCH_TEMPERATURE = 423.15
+
+
+def _hot_part_hazard(tj: float) -> str:
+    """What a junction at ``tj`` [K] means for whoever touches the part, as a clause: the
+    case runs somewhat cooler than the junction, so the clause says "can"."""
+    if tj > SCORCH_TEMPERATURE:
+        return ("; a part that hot can burn on touch and scorch what touches it")
+    if tj > TOUCH_BURN_TEMPERATURE:
+        return "; a part that hot can burn on touch"
+    return ""
 
 
 #: a package thermal time constant below this gets a note: from memory, a die's own is tens
@@ -1278,6 +1318,19 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
                            "unit of thermal_time_constant in [parts." + name + "].")
     if stage.load.kind == "coil" and stage.drive.pwm:
         out += _pwm_coil_notes(stage, judged, {c.name for c in criteria}, nominal)
+    capped = sorted({c.metric for c in criteria if c.maximum is not None
+                     and c.metric in ("drive_current", "base_current")})
+    if capped:
+        # found by a review: the fit meets vbe_sat_max with the lowest-gain unit, and every
+        # unit keeps that base resistance, which is the safe side for saturation only
+        out.append(f"{' and '.join(capped)} {'is' if len(capped) == 1 else 'are'} limited "
+                   "from above, but every unit's base-emitter voltage follows the "
+                   "datasheet's V_BE(sat) maximum (the fit meets vbe_sat_max with the "
+                   "lowest-gain unit: the safe side for saturation), so a unit with a "
+                   "typical V_BE draws more, by dV_BE / (V_high - V_BE): some 5 to 10 % "
+                   "for 0.2 V on a 3.3 V to 5 V drive, and the base resistor's power twice "
+                   "that share. For the drive's side, run the study again with the part's "
+                   "typical V_BE(sat) as vbe_sat_max.")
     top = getattr(stage.env, "supply_maximum", 0.0)
     if top > SELV_LIMIT:
         out.append(f"The supply reaches {top:.4g} V, above the {SELV_LIMIT:g} V DC of the "
@@ -1416,8 +1469,8 @@ def corner_notes(stage, corner: dict) -> list[str]:
             elif tj > limit:
                 out.append(f"{where[:1].upper() + where[1:]}, {name}'s junction settles at "
                            f"{q(tj, 'temperature')}, above its T_j max of "
-                           f"{q(limit, 'temperature')}: a part that hot burns on touch and "
-                           f"chars what it touches, and it is outside its rating; check the "
-                           f"part's rating, its cooling, or a part rated for it.")
+                           f"{q(limit, 'temperature')}: it is outside its rating"
+                           f"{_hot_part_hazard(tj)}; check the part's rating, its cooling, or "
+                           f"a part rated for it.")
     cache[key] = list(out)
     return out
