@@ -19,6 +19,7 @@ hfe_high_min at its I_C   knee_current                  h_FE(I_high) at h_FE(tes
 hfe_low_min at its I_C    be_leakage_current            h_FE(I_low) at h_FE(test) = hfe_min
 vce_sat_max at I_C, I_B   collector_resistance          V_CE at the forced gain, hfe_min unit
 vbe_sat_max at I_C, I_B   base_resistance               V_BE at the forced gain, hfe_min unit
+vbe_sat_typ               base_resistance (per sample)  the unit's own V_BE(sat), see parameters
 hfe at the test point     forward_beta (per sample)     closed form, see forward_beta_for_hfe
 icbo_max at V_CB          cbo_leakage (per sample)      generation term of the model
 iceo_max at V_CE          be_leakage_emission           base open, hfe_max unit at icbo_max
@@ -90,6 +91,7 @@ DATASHEET_FIGURES: dict[str, tuple[str, str]] = {
     "vce_sat_ic": ("A", "collector current of the V_CE(sat) figure*"),
     "vce_sat_ib": ("A", "base current of the V_CE(sat) figure*"),
     "vbe_sat_max": ("V", "maximum base-emitter voltage at the V_CE(sat) point"),
+    "vbe_sat_typ": ("V", "typical base-emitter voltage at the V_CE(sat) point"),
     "vbe_on": ("V", "typical base-emitter on voltage*"),
     "vbe_on_current": ("A", "collector current of the V_BE(on) figure*"),
     "vbe_on_vce": ("V", "collector-emitter voltage of the V_BE(on) figure*"),
@@ -176,6 +178,7 @@ class Datasheet:
     icbo_hot_max: float | None = None
     icbo_hot_temperature: float | None = None
     vbe_sat_max: float | None = None
+    vbe_sat_typ: float | None = None
     theta_jc: float | None = None
     power_rating_case: float | None = None
     early_voltage: float = CLASS_DEFAULTS["early_voltage"]
@@ -224,6 +227,13 @@ class Datasheet:
                               else (second, first))
             raise DatasheetError(given, f"needs {missing} as well: {first} and {second} go "
                                         f"together")
+
+    def _above_icbo(self, key: str, why: str) -> None:
+        """Refuse a leakage figure ``key`` that is not above ``icbo_max``, saying ``why``."""
+        value = getattr(self, key)
+        if value <= self.icbo_max:
+            raise DatasheetError(key, f"{value:g} A is not above icbo_max ({self.icbo_max:g} "
+                                      f"A): {why}", related=("icbo_max",))
 
     def check(self) -> None:
         """Raise :class:`DatasheetError` naming the first inconsistent figure."""
@@ -300,11 +310,8 @@ class Datasheet:
                                                  f"({self.breakdown_vceo:g} V)")
             # with the base open the collector-base leakage flows on through the emitter,
             # multiplied by 1 + the gain at that current (common practice, no source)
-            if self.iceo_max <= self.icbo_max:
-                raise DatasheetError("iceo_max", f"{self.iceo_max:g} A is not above icbo_max "
-                                                 f"({self.icbo_max:g} A): with the base open "
-                                                 f"the leakage is 1 + h_FE times I_CBO",
-                                     related=("icbo_max",))
+            self._above_icbo("iceo_max", "with the base open the leakage is 1 + h_FE times "
+                                         "I_CBO")
         self._together("icbo_hot_max", "icbo_hot_temperature")
         if self.icbo_hot_max is not None:
             # the doubling is read from the rise between the two figures; datasheets state
@@ -317,11 +324,7 @@ class Datasheet:
                                      f"({self.tj_max - 273.15:g} degC): the hot figure must lie "
                                      f"at least 25 K above the 25 degC icbo_max and within "
                                      f"the part's rating")
-            if self.icbo_hot_max <= self.icbo_max:
-                raise DatasheetError("icbo_hot_max", f"{self.icbo_hot_max:g} A is not above "
-                                                     f"icbo_max ({self.icbo_max:g} A): the "
-                                                     f"leakage rises with temperature",
-                                     related=("icbo_max",))
+            self._above_icbo("icbo_hot_max", "the leakage rises with temperature")
             if self.icbo_hot_max >= self.ic_max:
                 raise DatasheetError("icbo_hot_max", f"{self.icbo_hot_max:g} A is not below "
                                                      f"ic_max ({self.ic_max:g} A): check the "
@@ -336,6 +339,15 @@ class Datasheet:
             raise DatasheetError("vbe_on", f"{self.vbe_on:g} V is not a single junction voltage")
         if self.vbe_sat_max is not None and self.vbe_sat_max <= self.vce_sat_max:
             raise DatasheetError("vbe_sat_max", "must be above vce_sat_max")
+        if self.vbe_sat_typ is not None:
+            if self.vbe_sat_max is None:
+                raise DatasheetError("vbe_sat_typ", "needs vbe_sat_max as well: the units "
+                                                    "spread between the two")
+            if not self.vce_sat_max < self.vbe_sat_typ < self.vbe_sat_max:
+                raise DatasheetError("vbe_sat_typ", f"{self.vbe_sat_typ:g} V must lie between "
+                                                    f"vce_sat_max ({self.vce_sat_max:g} V) and "
+                                                    f"vbe_sat_max ({self.vbe_sat_max:g} V)",
+                                     related=("vbe_sat_max",))
         if self.icbo_spread < 1:
             raise DatasheetError("icbo_spread", "must be at least 1")
         if self.power_rating_case is not None:
@@ -423,17 +435,36 @@ class FittedDevice:
             self._cache[key] = float(out[0])
         return out
 
-    def parameters(self, hfe, icbo=None) -> TransistorParameters:
-        """Per-sample parameters for gains ``hfe`` [1] and leakages ``icbo`` [A].
+    @property
+    def intrinsic_vbe_sat(self) -> float:
+        """The minimum-gain unit's V_BE at the V_CE(sat) point with no base resistance [V]:
+        the lowest V_BE(sat) a unit can have (None without a vbe_sat_max figure)."""
+        ds = self.datasheet
+        if ds.vbe_sat_max is None:
+            return None
+        return float(ds.vbe_sat_max - self.template.base_resistance * ds.vce_sat_ib)
 
-        ``icbo`` None keeps the fit's median leakage.
+    def parameters(self, hfe, icbo=None, vbe_sat=None) -> TransistorParameters:
+        """Per-sample parameters for gains ``hfe`` [1], leakages ``icbo`` [A] and base-emitter
+        saturation voltages ``vbe_sat`` [V].
+
+        ``icbo`` None keeps the fit's median leakage; ``vbe_sat`` None keeps the base
+        resistance that meets ``vbe_sat_max``. A unit's ``vbe_sat`` is its V_BE at the
+        V_CE(sat) test point as the minimum-gain unit would have it: with the currents
+        forced there, the terminal V_BE is the junction's plus I_B r_B, so the unit's base
+        resistance is the fit's less (vbe_sat_max - vbe_sat) / I_B (never below zero).
         """
         hfe = np.asarray(hfe, dtype=float)
         icbo = self.template.cbo_leakage if icbo is None else np.asarray(icbo, dtype=float)
         beta = self.forward_beta_for_hfe(hfe, icbo)
+        extra = {}
+        ds = self.datasheet
+        if vbe_sat is not None and ds.vbe_sat_max is not None:
+            shift = (ds.vbe_sat_max - np.asarray(vbe_sat, dtype=float)) / ds.vce_sat_ib
+            extra["base_resistance"] = np.maximum(self.template.base_resistance - shift, 0.0)
         return replace(self.template, forward_beta=beta.reshape(np.shape(beta) if hfe.ndim
                                                                  else ()),
-                       be_leakage_current=self._leakage(hfe), cbo_leakage=icbo)
+                       be_leakage_current=self._leakage(hfe), cbo_leakage=icbo, **extra)
 
 
 class _PointSystem:
@@ -1028,6 +1059,16 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
             break
     if unmet is not None:
         raise _iceo_refusal(ds, unmet)
+    if ds.vbe_sat_typ is not None:
+        # the units spread by their base resistance (FittedDevice.parameters), which the
+        # typical unit must still have
+        intrinsic = ds.vbe_sat_max - state["base_resistance"] * ds.vce_sat_ib
+        if ds.vbe_sat_typ <= intrinsic:
+            raise DatasheetError("vbe_sat_typ", f"{ds.vbe_sat_typ:g} V is not above the "
+                                                f"model's V_BE with no base resistance "
+                                                f"({intrinsic:.3g} V at the V_CE(sat) point); "
+                                                f"check vbe_on and the figure's test point",
+                                 related=("vbe_sat_max",))
     if ds.icbo_hot_max is not None:
         # the doubling moves no figure at 25 degC, so it is fitted once, after the sweeps
         base = replace(base, leakage_doubling=_fit_doubling(ds, build(), unit))
@@ -1056,6 +1097,9 @@ def model_figures(device: FittedDevice) -> dict[str, float]:
     out["vce_sat_max"] = _scalar(vce)
     if ds.vbe_sat_max is not None:
         out["vbe_sat_max"] = _scalar(vbe)
+    if ds.vbe_sat_typ is not None:
+        typical = device.parameters(ds.hfe_min, vbe_sat=ds.vbe_sat_typ)
+        out["vbe_sat_typ"] = _scalar(saturation_at(typical, ds.vce_sat_ic, ds.vce_sat_ib)[1])
     out["vbe_on"] = _scalar(hfe_at(q_typ, ds.vbe_on_current, ds.vbe_on_vce)[1])
     out["icbo_max"] = _scalar(icbo_at(device.parameters(ds.hfe_median, ds.icbo_max), ds.icbo_vcb))
     if ds.iceo_max is not None:

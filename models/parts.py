@@ -40,7 +40,7 @@ from tolerance.models.datasheet import (
     fit_datasheet,
 )
 from tolerance.models.transistor import TransistorParameters
-from tolerance.distributions import ScreenedLogNormal
+from tolerance.distributions import ScreenedLogNormal, TruncatedNormal
 from tolerance.study import Reader, StudyError
 from tolerance.units import UnitError, parse_quantity
 
@@ -222,6 +222,8 @@ class TransistorPart:
     hfe_parameter: str
     icbo_parameter: str
     device_class: str | None = None
+    #: the unit's V_BE(sat) parameter, where the datasheet gives vbe_sat_typ
+    vbe_sat_parameter: str | None = None
 
     @property
     def polarity(self) -> int:
@@ -229,8 +231,10 @@ class TransistorPart:
 
     def parameters(self, samples: dict[str, np.ndarray]) -> TransistorParameters:
         """Model parameters of this transistor for a chunk of samples."""
+        vbe_sat = (samples[self.vbe_sat_parameter] if self.vbe_sat_parameter is not None
+                   else None)
         return self.device.parameters(samples[self.hfe_parameter],
-                                      samples[self.icbo_parameter])
+                                      samples[self.icbo_parameter], vbe_sat)
 
 
 def _derived_parameter(reader: Reader, name: str, spec: dict, unit: str, parameter_name: str,
@@ -476,5 +480,20 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
             spec = {"min": ds.icbo_max, "max": ds.icbo_max}
         _derived_parameter(part, "icbo", spec, "A", f"{name}.icbo",
                            f"{description}: I_CBO at 25 degC")
+    vbe_sat = None
+    if ds.vbe_sat_typ is not None:
+        # typ the median and max at +3 sigma, a normal cut at the maximum (a tested limit)
+        # and 3 sigma below typ, or where the unit's base resistance would reach zero
+        # (common practice, no source)
+        sigma = (ds.vbe_sat_max - ds.vbe_sat_typ) / 3.0
+        low = max(ds.vbe_sat_typ - 3.0 * sigma, fitted.intrinsic_vbe_sat)
+        param = _derived_parameter(part, "vbe_sat", {
+            "min": low, "max": ds.vbe_sat_max}, "V", f"{name}.vbe_sat",
+            f"{description}: V_BE(sat) at {ds.vce_sat_ic * 1e3:g} mA / "
+            f"{ds.vce_sat_ib * 1e3:g} mA")
+        part._ctx.parameters[param.name] = dataclasses.replace(  # noqa: SLF001
+            param, distribution=TruncatedNormal(ds.vbe_sat_typ, sigma, low, ds.vbe_sat_max,
+                                                3.0))
+        vbe_sat = param.name
     return TransistorPart(name, fitted, f"{name}.hfe", f"{name}.icbo",
-                          device if device not in (None, "inline") else None)
+                          device if device not in (None, "inline") else None, vbe_sat)

@@ -478,3 +478,44 @@ def test_impossible_hot_icbo_figures_are_refused(change, key, match):
         fit_datasheet(Datasheet.from_figures(figures))
     assert info.value.key == key
 
+
+
+# ---------------------------------------------------------------------------------------------
+# a typical V_BE(sat) (vbe_sat_typ): the units spread by their base resistance
+# ---------------------------------------------------------------------------------------------
+
+def test_a_typical_vbe_sat_spreads_the_units_base_resistance():
+    # with I_C and I_B forced at the V_CE(sat) point the terminal V_BE is the junction's
+    # plus I_B r_B (Kirchhoff's voltage law, module notes of tolerance.models.transistor),
+    # so a unit's V_BE(sat) moves its base resistance by dV / I_B and nothing else
+    figures = dict(library()["medium_power_npn"].figures, vbe_sat_typ=1.0)
+    device = device_for(figures)
+    plain = device_for(library()["medium_power_npn"].figures)
+    ds = device.datasheet
+    got = model_figures(device)
+    assert got["vbe_sat_typ"] == pytest.approx(1.0, rel=1e-9)
+    assert {k: v for k, v in got.items() if k != "vbe_sat_typ"} == model_figures(plain)
+    rb = float(device.template.base_resistance)
+    unit = device.parameters(ds.hfe_min, vbe_sat=np.array([1.2, 1.0, 0.8]))
+    np.testing.assert_allclose(unit.base_resistance,
+                               rb - (1.2 - np.array([1.2, 1.0, 0.8])) / ds.vce_sat_ib, rtol=1e-12)
+    vbe = saturation_at(unit, ds.vce_sat_ic, ds.vce_sat_ib)[1]
+    np.testing.assert_allclose(vbe, [1.2, 1.0, 0.8], rtol=1e-9)
+
+
+@pytest.mark.parametrize("change, key, match", [
+    ({"vbe_sat_typ": 1.3}, "vbe_sat_typ", r"between vce_sat_max \(0\.5 V\) and vbe_sat_max"),
+    ({"vbe_sat_typ": 0.4}, "vbe_sat_typ", "between vce_sat_max"),
+    ({"vbe_sat_typ": 0.7}, "vbe_sat_typ", r"not above the model's V_BE with no base resistance"),
+])
+def test_impossible_typical_vbe_sat_figures_are_refused(change, key, match):
+    # from memory: a V_BE(sat) lies above the V_CE(sat) and below its own maximum, and the
+    # typical unit's base resistance cannot be negative
+    figures = dict(library()["medium_power_npn"].figures, **change)
+    with pytest.raises(DatasheetError, match=match) as info:
+        fit_datasheet(Datasheet.from_figures(figures))
+    assert info.value.key == key
+    figures = {k: v for k, v in library()["medium_power_npn"].figures.items()
+               if k != "vbe_sat_max"}
+    with pytest.raises(DatasheetError, match="needs vbe_sat_max as well"):
+        fit_datasheet(Datasheet.from_figures(dict(figures, vbe_sat_typ=1.0)))

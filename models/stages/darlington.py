@@ -310,8 +310,8 @@ class LeadedDevice(FittedDevice):
 
     lead_resistance: float = 0.0
 
-    def parameters(self, hfe, icbo=None):
-        q = super().parameters(hfe, icbo)
+    def parameters(self, hfe, icbo=None, vbe_sat=None):
+        q = super().parameters(hfe, icbo, vbe_sat)
         return dataclasses.replace(q, emitter_resistance=q.emitter_resistance
                                    + self.lead_resistance)
 

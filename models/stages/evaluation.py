@@ -1320,7 +1320,9 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
         out += _pwm_coil_notes(stage, judged, {c.name for c in criteria}, nominal)
     capped = sorted({c.metric for c in criteria if c.maximum is not None
                      and c.metric in ("drive_current", "base_current")})
-    if capped:
+    fixed_vbe = [name for name, part in stage.transistors().items()
+                 if getattr(part, "vbe_sat_parameter", None) is None]
+    if capped and fixed_vbe:
         # found by a review: the fit meets vbe_sat_max with the lowest-gain unit, and every
         # unit keeps that base resistance, which is the safe side for saturation only
         out.append(f"{' and '.join(capped)} {'is' if len(capped) == 1 else 'are'} limited "
@@ -1329,8 +1331,10 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
                    "lowest-gain unit: the safe side for saturation), so a unit with a "
                    "typical V_BE draws more, by dV_BE / (V_high - V_BE): some 5 to 10 % "
                    "for 0.2 V on a 3.3 V to 5 V drive, and the base resistor's power twice "
-                   "that share. For the drive's side, run the study again with the part's "
-                   "typical V_BE(sat) as vbe_sat_max.")
+                   "that share. Give the datasheet's typical V_BE(sat) as vbe_sat_typ in "
+                   f"[parts.{fixed_vbe[0]}]" + (" (and the others')" if len(fixed_vbe) > 1
+                                                 else "") +
+                   ": the units then spread between it and the maximum.")
     top = getattr(stage.env, "supply_maximum", 0.0)
     if top > SELV_LIMIT:
         out.append(f"The supply reaches {top:.4g} V, above the {SELV_LIMIT:g} V DC of the "
