@@ -436,7 +436,7 @@ class FittedDevice:
         return out
 
     @property
-    def intrinsic_vbe_sat(self) -> float:
+    def intrinsic_vbe_sat(self) -> float | None:
         """The minimum-gain unit's V_BE at the V_CE(sat) point with no base resistance [V]:
         the lowest V_BE(sat) a unit can have (None without a vbe_sat_max figure)."""
         ds = self.datasheet
