@@ -777,10 +777,13 @@ def _fit_doubling(ds, params, unit) -> float:
     lo, hi = DOUBLING_RANGE
     f_lo, f_hi = f(lo), f(hi)
     if not (math.isfinite(f_lo) and math.isfinite(f_hi)) or f_lo * f_hi > 0:
+        from tolerance.units import format_quantity as q
+
         reach = (ds.icbo_hot_max * math.exp(f_hi), ds.icbo_hot_max * math.exp(f_lo))
-        raise DatasheetError("icbo_hot_max", f"{ds.icbo_hot_max:g} A at "
+        raise DatasheetError("icbo_hot_max", f"{q(ds.icbo_hot_max, 'A')} at "
                                              f"{ds.icbo_hot_temperature - 273.15:g} degC "
-                                             f"lies outside {reach[0]:.3g} .. {reach[1]:.3g} A, "
+                                             f"lies outside {q(reach[0], 'A')} .. "
+                                             f"{q(reach[1], 'A')}, "
                                              f"what a doubling every {lo:g} to {hi:g} K from "
                                              f"icbo_max gives (silicon: about 6 to 12 K); "
                                              f"check the figure's unit and temperature",

@@ -40,7 +40,7 @@ from tolerance.models.datasheet import (
     fit_datasheet,
 )
 from tolerance.models.transistor import TransistorParameters
-from tolerance.distributions import ScreenedLogNormal, TruncatedNormal
+from tolerance.distributions import ScreenedLogNormal, TruncatedSplitNormal
 from tolerance.study import Reader, StudyError
 from tolerance.units import UnitError, parse_quantity
 
@@ -482,18 +482,26 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
                            f"{description}: I_CBO at 25 degC")
     vbe_sat = None
     if ds.vbe_sat_typ is not None:
-        # typ the median and max at +3 sigma, a normal cut at the maximum (a tested limit)
-        # and 3 sigma below typ, or where the unit's base resistance would reach zero
-        # (common practice, no source)
+        # typ the median and max at +3 sigma, cut there (a tested limit); below typ as wide,
+        # or, where that would take a unit's base resistance below zero, down to the
+        # model's floor with a spread of its own (half the units below typ either way;
+        # common practice, no source)
         sigma = (ds.vbe_sat_max - ds.vbe_sat_typ) / 3.0
-        low = max(ds.vbe_sat_typ - 3.0 * sigma, fitted.intrinsic_vbe_sat)
+        floor = fitted.intrinsic_vbe_sat
+        low = max(ds.vbe_sat_typ - 3.0 * sigma, floor)
         param = _derived_parameter(part, "vbe_sat", {
             "min": low, "max": ds.vbe_sat_max}, "V", f"{name}.vbe_sat",
             f"{description}: V_BE(sat) at {ds.vce_sat_ic * 1e3:g} mA / "
             f"{ds.vce_sat_ib * 1e3:g} mA")
         part._ctx.parameters[param.name] = dataclasses.replace(  # noqa: SLF001
-            param, distribution=TruncatedNormal(ds.vbe_sat_typ, sigma, low, ds.vbe_sat_max,
-                                                3.0))
+            param, distribution=TruncatedSplitNormal(ds.vbe_sat_typ,
+                                                     (ds.vbe_sat_typ - low) / 3.0, sigma,
+                                                     low, ds.vbe_sat_max, 3.0))
+        # a pin below the floor would be read as the floor (found by a review: 0.6 V and
+        # 0.72 V gave the same units), so it is refused as the study file refuses a typ there
+        _must_exceed(part, param.name, floor - 1e-9,
+                     f"the model's V_BE with no base resistance ({floor:.4g} V at the "
+                     f"V_CE(sat) point) is the lowest V_BE(sat) a unit can have")
         vbe_sat = param.name
     return TransistorPart(name, fitted, f"{name}.hfe", f"{name}.icbo",
                           device if device not in (None, "inline") else None, vbe_sat)

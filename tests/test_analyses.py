@@ -541,8 +541,19 @@ def test_target_ci_stops_early_and_deterministically(study):
     from scipy import stats as scipy_stats
     ref = scipy_stats.binomtest(c["failures"], c["evaluated"]).proportion_ci(0.975, "exact")
     assert (c["ci_low"], c["ci_high"]) == pytest.approx((ref.low, ref.high), rel=1e-9)
-    from tolerance.report import target_sentence
+    from tolerance.report import target_sentence, verdict_basis, verdict_table
     assert "exact at 97.5 %" in target_sentence(t, str)
+    # found by a review: the figures were at 97.5 % and labelled 95 %; the labels and the
+    # summary's confidence now say the level computed
+    assert a.summary["confidence"] == a.summary["yield"]["confidence"] == 0.975
+    assert "97.5 % exact interval" in verdict_table(a.summary).header
+    # a run stopped with no failure had none at every earlier check, so its zero-failure
+    # bound keeps its one-sided 95 % (scipy.stats.beta.ppf(0.95, 1, n) as reference)
+    zero = [k for k in a.summary["criteria"].values() if k["failures"] == 0]
+    assert zero and all(k["zero_failure_upper"] == pytest.approx(
+        scipy_stats.beta.ppf(0.95, 1, k["evaluated"]), rel=1e-9) for k in zero)
+    basis = verdict_basis(a.summary)
+    assert basis is None or "97.5 %" in basis or "at 95 % confidence (one-sided)" in basis
     # a run of one check's samples or fewer has its length fixed: 95 % as usual
     assert run(study, samples=20_000, target_ci=0.002).summary["interval_level"] == 0.95
 

@@ -587,6 +587,8 @@ def test_units_that_did_not_converge_are_shown_by_every_analysis(tmp_path, capsy
     (["whatif", "--pin", "Q1.hfe=1"], "must be above 1 "),
     (["choose", "--vary", "Q1.hfe=E12:0.1..10"], "current gain I_C / I_B is above 1"),
     (["choose", "--vary", "supply.voltage=E12:0.1..1"], "the saturation voltage of Q1"),
+    # found by a review: a V_BE(sat) below the model's floor was read as the floor
+    (["whatif", "--pin", "Q1.vbe_sat=0.6 V"], "the model's V_BE with no base resistance"),
 ])
 def test_pins_and_value_choices_meet_the_study_files_checks_of_the_parts(tmp_path, capsys,
                                                                           argv, told):
@@ -594,7 +596,9 @@ def test_pins_and_value_choices_meet_the_study_files_checks_of_the_parts(tmp_pat
     # in the study file ("could never saturate", "not a transistor's current gain"), ran
     # as pins and value choices and passed every criterion (definition of a transistor's
     # gain I_C / I_B above 1; a stage whose supply is its saturation voltage carries nothing)
-    demo = ROOT / "tolerance" / "demo" / "demo.toml"
+    demo = tmp_path / "demo.toml"
+    demo.write_text((ROOT / "tolerance" / "demo" / "demo.toml").read_text().replace(
+        'device = "medium_power_npn"', 'device = "medium_power_npn"\nvbe_sat_typ = "0.95 V"'))
     code = main([argv[0], str(demo), *argv[1:], "--samples", "50", "--out",
                  str(tmp_path / "x")])
     err = capsys.readouterr().err

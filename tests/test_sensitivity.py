@@ -111,6 +111,11 @@ def test_prcc_is_undefined_where_one_input_gives_the_output_s_ranks():
     # a small real share keeps its partial correlation: here x1 moves the ranks
     y2 = pd.DataFrame({"y": x["x0"] + 0.05 * x["x1"]})
     assert _row(rank_sensitivity(x, y2), "x1", "y")["prcc"] > 0.5
+    # the tables' "-" is explained, naming the input that carries the metric
+    from tolerance.sensitivity import undefined_prcc_note
+    note = undefined_prcc_note(table.to_dict("records"))
+    assert note.startswith("PRCC reads '-' for the other inputs of y (carried by x0)")
+    assert undefined_prcc_note(rank_sensitivity(x, y2).to_dict("records")) is None
 
 
 def test_srrc_squared_matches_variance_shares_of_linear_model():

@@ -1908,6 +1908,20 @@ def test_an_iceo_figure_sets_an_open_base_output_s_leakage(tmp_path, iceo):
     assert rows["Q2"] == f"{iceo} at 24 V" and rows["Q1"].endswith("at 30 V (model)")
 
 
+@pytest.mark.parametrize("lines, key", [
+    ('icbo_hot_max = "500 uA"\nicbo_hot_temperature = "125 degC"', "icbo_hot_max"),
+    ('vbe_sat_typ = "1.5 V"', "vbe_sat_typ"),
+])
+def test_a_monolithic_pair_takes_no_die_hot_leakage_or_vbe_spread(tmp_path, lines, key):
+    # found by a review: a whole part's hot I_CBO fitted one die's doubling while the other
+    # kept the class's, and a pair's V_BE(sat) (two junctions) cannot spread one die's base
+    # resistance (common practice, no source)
+    text = shipped("engine_bay_heater_darlington.toml").replace(
+        'device = "monolithic_darlington"', 'device = "monolithic_darlington"\n' + lines, 1)
+    with pytest.raises(StudyError, match=rf"parts\.Q2\.{key}: a monolithic Darlington's"):
+        study_from(tmp_path, text)
+
+
 def test_a_monolithic_pair_takes_no_die_iceo(tmp_path):
     # a monolithic pair's datasheet I_CEO is the whole part's, its dies shunted by the
     # internal resistors: it fits neither die (common practice, no source)

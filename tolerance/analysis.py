@@ -122,12 +122,13 @@ def _margins(values: np.ndarray, lo, hi) -> list[np.ndarray]:
     return parts
 
 
-def insights(study: Study, column, threads: int = 1) -> dict:
+def insights(study: Study, column, threads: int = 1, level: float = 0.95) -> dict:
     """Parameter table, rank sensitivities, failure drivers, capability, tail estimates.
 
     ``column(name)`` returns one column of the run in sample order; it is only called from
     this thread. ``threads`` columns are ranked or sorted at once
-    (:func:`tolerance.threads.thread_map`); the insights do not depend on it.
+    (:func:`tolerance.threads.thread_map`); the insights do not depend on it. ``level`` is
+    the run's exact-interval level, which the tail estimates' count checks use too.
     """
     varying = [p for p in study.parameters if p.varies]
     metrics = list(study.stage.metrics)
@@ -180,7 +181,7 @@ def insights(study: Study, column, threads: int = 1) -> dict:
     for c in study.criteria:
         failed = converged & ~column(f"pass.{c.name}")[head].astype(bool)
         tail[c.name]["count_check"] = stats.tail_check(tail[c.name], int(failed.sum()),
-                                                       counted)
+                                                       counted, level)
         if failed.any() and varying:
             failing[c.name] = failed[converged]
     if failing:
@@ -289,6 +290,10 @@ def study_sensitivity(study: Study, samples: int | None, seed: int | None, sobol
     if study.correlations:
         notes.append("the Sobol design treats the inputs as independent; the study's "
                      "correlations are used only in the rank measures")
+    limited = list(dict.fromkeys(c.metric for c in study.criteria))
+    blank = sensitivity.undefined_prcc_note(_records(rank), limited or None)
+    if blank:
+        notes.append(blank.rstrip("."))
     return {
         "study": study.path, "study_hash": study.study_hash, "seed": seed,
         "sampler": res.summary["sampler"],

@@ -474,7 +474,8 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
             after_samples()
         column = lambda name: df[name].to_numpy()  # noqa: E731
         summary = summarize(spec, column, **meta, threads=threads,
-                            extra=_extra(study, column, insights, threads))
+                            extra=_extra(study, column, insights, threads,
+                                         meta["interval_confidence"]))
         if target_ci is not None:
             summary["target_ci"] = target_status(summary, target_ci)
         return RunResult(study, summary, None, df)
@@ -545,17 +546,19 @@ def _run_into(study, spec, out, made, chunk, jobs, progress, resume, force, back
         after_samples()
     with runner.ChunkColumns(folder) as column:
         summary = summarize(spec, column, **meta, threads=threads,
-                            extra=_extra(study, column, insights, threads))
+                            extra=_extra(study, column, insights, threads,
+                                         meta["interval_confidence"]))
     if target_ci is not None:
         summary["target_ci"] = target_status(summary, target_ci)
     write_json(out / SUMMARY_FILE, summary)
     return RunResult(study, summary, out)
 
 
-def _extra(study: Study, column, insights: bool, threads: int = 1) -> dict:
+def _extra(study: Study, column, insights: bool, threads: int = 1,
+           level: float = 0.95) -> dict:
     from tolerance.analysis import insights as _insights
 
-    extra = _insights(study, column, threads) if insights else {}
+    extra = _insights(study, column, threads, level) if insights else {}
     extra["study_notes"] = study.notes()
     assumed = getattr(study.stage, "assumptions", None)
     if assumed is not None:

@@ -221,7 +221,10 @@ def print_summary(summary: dict, study, out) -> None:
     w(f"\n{summary['title']}  ({summary['stage']} stage, {summary['samples']:,} samples, "
       f"{summary['sampler']}, seed {summary['seed']})\n")
     y = summary["yield"]
-    w(f"yield {format_yield(y['estimate'])} %  (95 % interval {format_yield(y['ci_low'])} .. "
+    from tolerance.report import interval_label
+
+    label = interval_label(summary)
+    w(f"yield {format_yield(y['estimate'])} %  ({label} interval {format_yield(y['ci_low'])} .. "
       f"{format_yield(y['ci_high'])} %)   not converged: {summary['not_converged']}\n")
     if summary.get("saturation_failure_rate") is not None:
         w(f"saturation-failure rate {format_ppm(summary['saturation_failure_rate'])} ppm\n")
@@ -239,7 +242,7 @@ def print_summary(summary: dict, study, out) -> None:
         rows.append((name, c["metric"], lim, c["failures"], format_ppm(c["rate"]), interval,
                      c["verdict"].upper()))
     w("\n" + _table(("criterion", "metric", "limit", "failures", "rate ppm",
-                     "95 % interval ppm", "verdict"), rows, "<<<>>><"))
+                     f"{label} interval ppm", "verdict"), rows, "<<<>>><"))
     rows = [(name, *(_fmt(m[k], m["unit"]) for k in ("min", "p001", "p50", "p999", "max")))
             for name, m in summary["metrics"].items()]
     w("\n" + _table(("metric", "min", "p0.1", "median", "p99.9", "max"), rows, "<>>>>>"))

@@ -194,7 +194,7 @@ def histogram(samples: pd.DataFrame, metric: str, summary: dict) -> Figure:
         Metric name, a key of ``summary["metrics"]``.
     summary : dict
         Run summary (summary.json). The limits come from every criterion whose ``metric`` is
-        this one; the failure counts, rates and 95 % intervals annotated are the summary's
+        this one; the failure counts, rates and exact intervals annotated are the summary's
         own figures, not recomputed from ``samples``.
 
     Returns
@@ -244,9 +244,12 @@ def histogram(samples: pd.DataFrame, metric: str, summary: dict) -> Figure:
         ax_cdf.set_xlabel(metric + (f" ({description})" if description else ""))
         _unit_axis(ax_cdf.xaxis, unit)
         lines = []
+        from tolerance.report import interval_label
+
+        label = interval_label(summary)
         for name, c in criteria:
             text = (f"{name}: {c['failures']} of {c['evaluated']} failed, "
-                    f"counted rate {format_rate(c['rate'])}, 95 % interval "
+                    f"counted rate {format_rate(c['rate'])}, {label} interval "
                     f"{format_interval(c['ci_low'], c['ci_high'])}")
             if c.get("zero_failure_upper") is not None:
                 # on a line of its own: at the end of the long one it ran off the figure

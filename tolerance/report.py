@@ -189,10 +189,20 @@ def _limits_text(limit: dict, unit: str | None) -> str:
     return "none"
 
 
+def interval_label(summary: dict) -> str:
+    """The level of a run summary's exact intervals as text: "95 %", or "97.5 %" for a run
+    whose length the counts decided (``--target-ci``; tolerance.summary)."""
+    level = summary.get("interval_level", summary.get("confidence", 0.95))
+    if not isinstance(level, (int, float)) or isinstance(level, bool):
+        level = 0.95
+    return f"{100 * level:g} %"
+
+
 def verdict_table(summary: dict) -> Table:
     """The per-criterion verdict table (id ``verdict-table``)."""
     header = ["Criterion", "Metric", "Limits", "Failures", "Evaluated", "Counted rate",
-              "95 % exact interval", "Zero-failure upper bound", "Verdict"]
+              f"{interval_label(summary)} exact interval", "Zero-failure upper bound",
+              "Verdict"]
     rows, classes = [], []
     metrics = summary.get("metrics", {})
     for name, c in summary.get("criteria", {}).items():
@@ -299,14 +309,19 @@ def verdict_basis(summary: dict) -> str | None:
         return (f"No failure in {format_number(n)} {units}: that shows each criterion's failure "
                 f"rate below {rate} at 95 % confidence (one-sided), and no lower rate; more "
                 f"samples lower that bound.")
+    label = interval_label(summary)
     if v == "pass":
-        return (f"Every criterion's exact 95 % interval lies at or below the allowed "
-                f"{format_ppm(allowed)} ppm: each rate is below it at 97.5 % confidence "
+        # one end of a two-sided interval at level c is a one-sided bound at (1 + c) / 2;
+        # a stopped run's 97.5 % interval keeps that end's real level at 97.5 % or more
+        # (tolerance.summary.STOPPED_RUN_CONFIDENCE)
+        side = "97.5 %" if label == "95 %" else "97.5 % or more"
+        return (f"Every criterion's exact {label} interval lies at or below the allowed "
+                f"{format_ppm(allowed)} ppm: each rate is below it at {side} confidence "
                 f"(one-sided).")
     if v == "undecided":
         open_ = [k for k, c in criteria.items() if c.get("verdict") == "undecided"]
         if open_:
-            return (f"Undecided: the exact 95 % interval of {', '.join(open_)} holds the "
+            return (f"Undecided: the exact {label} interval of {', '.join(open_)} holds the "
                     f"allowed {format_ppm(allowed)} ppm; more samples would decide.")
     return None
 
@@ -1458,9 +1473,10 @@ def target_sentence(target: dict, rate) -> str:
     level = target.get("interval_level")
     if isinstance(level, (int, float)) and level > 0.95:
         text += (f" The counts decided where the run stopped, which lowers an exact 95 % "
-                 f"interval's coverage (to about 94 %): the intervals and bounds reported "
-                 f"are exact at {100 * level:g} %, which keeps at least 95 % (simulated), "
-                 f"so they are wider than the half-width the target measures.")
+                 f"interval's coverage (to about 94 %): the intervals reported are exact at "
+                 f"{100 * level:g} %, which keeps their coverage at 95 % or more "
+                 f"(simulated), so they are wider than the half-width the target measures; "
+                 f"the zero-failure bounds need no such change and stay at 95 %.")
     return text
 
 
@@ -1557,7 +1573,7 @@ def _summary_blocks(summary: dict) -> list[Block]:
         doc.append(Block("p", f"Yield {format_rate(y.get('estimate'))} "
                               f"({format_number(y.get('passes'))} of "
                               f"{format_number(summary.get('samples'))} samples pass every "
-                              f"criterion; 95 % exact interval "
+                              f"criterion; {interval_label(summary)} exact interval "
                               f"{format_interval(y.get('ci_low'), y.get('ci_high'))})."))
     allowed = summary.get("max_failure_rate")
     rule = (" (a criterion passes only with no failure)." if not allowed else
@@ -1645,6 +1661,11 @@ def _summary_blocks(summary: dict) -> list[Block]:
         if rows:
             # a heading of its own: after the last criterion's drivers it read as theirs
             doc.append(Block("h3", "Rank measures of every metric"))
+            from tolerance.sensitivity import undefined_prcc_note
+
+            blank = undefined_prcc_note(rows) if isinstance(rows, list) else None
+            if blank:
+                doc.append(Block("note", blank))
             doc.extend(generic_blocks(rows))
     return doc
 

@@ -149,6 +149,35 @@ def _standardized_ranks(values: np.ndarray, threads: int = 1
 EXPLAINED_FLOOR = 1e-9
 
 
+def undefined_prcc_note(records, metrics=None) -> str | None:
+    """A sentence naming the metrics whose ranks one input gives exactly, so that the other
+    inputs' PRCC is undefined ("-" in the tables), or None.
+
+    ``records``: rows ``{"input", "metric", "spearman", "prcc"}`` of
+    :func:`rank_sensitivity`; ``metrics`` limits the sentence to those metrics."""
+    carried: dict[str, str] = {}
+    blank: set[str] = set()
+    for r in records:
+        metric = r.get("metric")
+        if metrics is not None and metric not in metrics:
+            continue
+        prcc, rho = r.get("prcc"), r.get("spearman")
+        if not (isinstance(rho, (int, float)) and math.isfinite(rho)):
+            continue
+        if isinstance(prcc, (int, float)) and math.isfinite(prcc):
+            if abs(prcc) >= 1.0 - 1e-9:
+                carried.setdefault(metric, r.get("input"))
+        else:
+            blank.add(metric)
+    names = [f"{m} (carried by {carried[m]})" for m in sorted(blank) if m in carried]
+    if not names:
+        return None
+    return (f"PRCC reads '-' for the other inputs of {', '.join(names)}: that input alone "
+            "gives the metric's ranks exactly (a junction whose own heating is millikelvin "
+            "follows the ambient), so the others' partial rank correlations are 0 / 0; "
+            "their Spearman and Sobol figures say how little they move it.")
+
+
 def _rank_measures(x: np.ndarray, y: np.ndarray, threads: int = 1
                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Spearman, SRRC and PRCC for every input column against every output column.

@@ -56,9 +56,9 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
     column : callable
         ``column(name) -> ndarray`` returns one column of the samples, in sample order.
     interval_confidence : float
-        Level of the exact intervals and of the zero-failure bound computed:
-        :data:`CONFIDENCE`, or :data:`STOPPED_RUN_CONFIDENCE` where the counts decided the
-        run's length, so that the intervals still cover the stated 95 %.
+        Level of the exact intervals: :data:`CONFIDENCE`, or :data:`STOPPED_RUN_CONFIDENCE`
+        where the counts decided the run's length, so that the intervals still cover at
+        least 95 %. The zero-failure bounds stay one-sided at :data:`CONFIDENCE`.
     threads : int
         Threads for the metrics' percentiles (:func:`tolerance.threads.thread_map`); the
         summary does not depend on it. ``column`` is only ever called from this thread.
@@ -96,7 +96,10 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
             "rate": failures / denom if n_conv else float("nan"),
             "ci_low": float(lo),
             "ci_high": float(hi),
-            "zero_failure_upper": (float(stats.zero_failure_upper(n_conv, level))
+            # a stop on the counts leaves the zero-failure bound as it is: a run that
+            # stops at n with no failure had none at every earlier check, so the event
+            # is within "no failure in n" (from memory; no adjustment needed)
+            "zero_failure_upper": (float(stats.zero_failure_upper(n_conv, CONFIDENCE))
                                    if n_conv else 1.0) if failures == 0 else None,
             "verdict": v,
         }
@@ -120,7 +123,8 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
         "planned_samples": spec.samples,
         "sampler": spec.sampler,
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
-        "confidence": CONFIDENCE,
+        # the exact intervals' level; the zero-failure bounds stay one-sided 95 %
+        "confidence": level,
         "interval_level": level,
         "units": UNITS_NOTE,
         "max_failure_rate": allowed_rate,
@@ -129,11 +133,11 @@ def summarize(spec: RunSpec, column: Callable[[str], np.ndarray], *, study_path:
             "estimate": passes / n,
             "ci_low": float(1 - fail_rate_high),
             "ci_high": float(1 - fail_rate_low),
-            "confidence": CONFIDENCE,
+            "confidence": level,
             "passes": passes,
         },
         "saturation_failure_rate": saturation["rate"] if saturation else None,
-        "zero_failure_upper": float(stats.zero_failure_upper(n, level)),
+        "zero_failure_upper": float(stats.zero_failure_upper(n, CONFIDENCE)),
         "not_converged": not_converged,
         "criteria": criteria,
         "metrics": metrics,

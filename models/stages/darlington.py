@@ -482,6 +482,20 @@ def configure(reader):
                                            "part's, set by its internal base-emitter "
                                            "resistors, not a die's open-base figure; state "
                                            "an off_current window in [limits] instead")
+            # found by a review: a whole part's hot I_CBO fitted one die's doubling (the
+            # other kept the class's) and a pair's V_BE(sat) is two junctions'; neither
+            # describes one die
+            for key in ("icbo_hot_max", "icbo_hot_temperature"):
+                if table.has(key):
+                    raise table.error(key, "a monolithic Darlington's hot I_CBO is the whole "
+                                           "part's, not one die's; give each die's "
+                                           "leakage_doubling, or an off_current window in "
+                                           "[limits]")
+            if table.has("vbe_sat_typ"):
+                raise table.error("vbe_sat_typ", "a monolithic Darlington's V_BE(sat) is the "
+                                                 "whole pair's (two junctions), not one "
+                                                 "die's; it cannot spread a die's base "
+                                                 "resistance")
         q1 = read_transistor(parts, "Q1", "Darlington driver", polarity="npn",
                              base_figures=entry.dies["driver"],
                              supply_minimum=env.supply_minimum, required=False)

@@ -1329,9 +1329,12 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
                    "from above, but every unit's base-emitter voltage follows the "
                    "datasheet's V_BE(sat) maximum (the fit meets vbe_sat_max with the "
                    "lowest-gain unit: the safe side for saturation), so a unit with a "
-                   "typical V_BE draws more, by dV_BE / (V_high - V_BE): some 5 to 10 % "
-                   "for 0.2 V on a 3.3 V to 5 V drive, and the base resistor's power twice "
-                   "that share. Give the datasheet's typical V_BE(sat) as vbe_sat_typ in "
+                   "typical V_BE(sat) draws more. The model carries the gap between the two "
+                   "as base resistance, so at a base current I_B it lowers V_BE by the gap "
+                   "times I_B over the datasheet's test current, and the drive current rises "
+                   "by that over the series resistance (the whole gap, some 5 to 10 % on a "
+                   "3.3 V to 5 V drive, where I_B is the test current's). Give the "
+                   "datasheet's typical V_BE(sat) as vbe_sat_typ in "
                    f"[parts.{fixed_vbe[0]}]" + (" (and the others')" if len(fixed_vbe) > 1
                                                  else "") +
                    ": the units then spread between it and the maximum.")
