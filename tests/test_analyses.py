@@ -554,6 +554,19 @@ def test_target_ci_stops_early_and_deterministically(study):
         scipy_stats.beta.ppf(0.95, 1, k["evaluated"]), rel=1e-9) for k in zero)
     basis = verdict_basis(a.summary)
     assert basis is None or "97.5 %" in basis or "at 95 % confidence (one-sided)" in basis
+    n = a.summary["samples"]
+    assert a.summary["zero_failure_upper"] == pytest.approx(1 - 0.05 ** (1 / n), rel=1e-9)
+    y = a.summary["yield"]
+    ref = scipy_stats.binomtest(n - y["passes"], n).proportion_ci(0.975, "exact")
+    assert (y["ci_low"], y["ci_high"]) == pytest.approx((1 - ref.high, 1 - ref.low), rel=1e-9)
+    # the runner checks only while chunks remain: a run of one check's samples never checks
+    from tolerance.api import interval_level
+    assert interval_level(32_768, 0.002) == 0.95 and interval_level(32_769, 0.002) == 0.975
+    assert interval_level(10**6, None) == 0.95
+    # a run without the target, or an older file without the level, says nothing of it
+    assert "exact at" not in target_sentence(dict(t, interval_level=0.95), str)
+    assert "exact at" not in target_sentence({k: v for k, v in t.items()
+                                              if k != "interval_level"}, str)
     # a run of one check's samples or fewer has its length fixed: 95 % as usual
     assert run(study, samples=20_000, target_ci=0.002).summary["interval_level"] == 0.95
 

@@ -468,6 +468,7 @@ def test_a_hot_icbo_figure_sets_the_leakage_doubling(ratio):
     ({"icbo_hot_max": 1e-7}, "icbo_hot_max", "not above icbo_max"),
     ({"icbo_hot_max": 2e-7}, "icbo_hot_max", r"lies outside .* doubling every 4 to 20 K"),
     ({"icbo_hot_max": 2.0}, "icbo_hot_max", r"not below ic_max \(1\.5 A\)"),
+    ({"icbo_hot_max": 1.5}, "icbo_hot_max", r"not below ic_max"),  # at the rating
 ])
 def test_impossible_hot_icbo_figures_are_refused(change, key, match):
     # from memory: silicon's I_CBO doubles every 6 to 12 K, so 2 x over 125 K (a 125 K
@@ -501,11 +502,20 @@ def test_a_typical_vbe_sat_spreads_the_units_base_resistance():
                                rb - (1.2 - np.array([1.2, 1.0, 0.8])) / ds.vce_sat_ib, rtol=1e-12)
     vbe = saturation_at(unit, ds.vce_sat_ic, ds.vce_sat_ib)[1]
     np.testing.assert_allclose(vbe, [1.2, 1.0, 0.8], rtol=1e-9)
+    # the floor: the same unit with no base resistance (Kirchhoff's voltage law), and a
+    # V_BE(sat) below it leaves the base resistance at zero, never negative
+    from dataclasses import replace
+    bare = replace(device.parameters(ds.hfe_min), base_resistance=0.0)
+    assert device.intrinsic_vbe_sat == pytest.approx(
+        float(saturation_at(bare, ds.vce_sat_ic, ds.vce_sat_ib)[1][0]), rel=1e-9)
+    assert float(device.parameters(ds.hfe_min, vbe_sat=np.array([0.5])).base_resistance[0]) \
+        == 0.0
 
 
 @pytest.mark.parametrize("change, key, match", [
     ({"vbe_sat_typ": 1.3}, "vbe_sat_typ", r"between vce_sat_max \(0\.5 V\) and vbe_sat_max"),
     ({"vbe_sat_typ": 0.4}, "vbe_sat_typ", "between vce_sat_max"),
+    ({"vbe_sat_typ": 1.2}, "vbe_sat_typ", "between vce_sat_max"),  # at the maximum
     ({"vbe_sat_typ": 0.7}, "vbe_sat_typ", r"not above the model's V_BE with no base resistance"),
 ])
 def test_impossible_typical_vbe_sat_figures_are_refused(change, key, match):
@@ -519,3 +529,21 @@ def test_impossible_typical_vbe_sat_figures_are_refused(change, key, match):
                if k != "vbe_sat_max"}
     with pytest.raises(DatasheetError, match="needs vbe_sat_max as well"):
         fit_datasheet(Datasheet.from_figures(dict(figures, vbe_sat_typ=1.0)))
+
+
+def test_a_refused_hot_icbo_figure_is_told_a_range_that_fits():
+    # the doubling law I(T) = I(25 degC) 2^((T - 25 degC) / d) (from memory) over 4 .. 20 K
+    # from 100 nA at 150 degC: the lowest figure is about 1e-7 x 2^(125 / 20) = 7.6 uA (the
+    # ideal junction's reverse current adds some 2 %); 1 % inside it fits, 1 % outside not
+    import re
+
+    from tolerance.units import parse_quantity
+    with pytest.raises(DatasheetError, match="lies outside") as info:
+        fit_datasheet(Datasheet.from_figures(_with_hot_icbo(2e-7)))
+    ends = re.search(r"outside (\S+ \S+) \.\. (\S+ \S+),", info.value.message)
+    low, high = (parse_quantity(ends.group(k), "A") for k in (1, 2))
+    assert low == pytest.approx(1e-7 * 2 ** (125 / 20), rel=3e-2) and low < high
+    with pytest.raises(DatasheetError, match="lies outside"):
+        fit_datasheet(Datasheet.from_figures(_with_hot_icbo(0.99 * low)))
+    device = fit_datasheet(Datasheet.from_figures(_with_hot_icbo(1.01 * low)))
+    assert model_figures(device)["icbo_hot_max"] == pytest.approx(1.01 * low, rel=1e-6)

@@ -188,6 +188,14 @@ def test_heatsink_chain_lowers_theta():
         "781 mW ((T_j max - 25 degC) / theta_JA, below the stated 1.25 W)")
     assert device_assumptions(load_text("plain.toml", text=_demo_with()).stage)[0][
         "power_rating"] == "1.25 W"
+    # 125 K / 100.5 K/W = 1.244 W, just below the stated 1.25 W, and the doubling the study
+    # gives is the one listed
+    close = load_text("close.toml", text=_demo_with('theta_ja = "100.5 K/W"\n'
+                                                     'leakage_doubling = "8 K"'))
+    row = device_assumptions(close.stage)[0]
+    assert row["power_rating"] == "1.24 W ((T_j max - 25 degC) / theta_JA, below the stated " \
+                                  "1.25 W)"
+    assert row["icbo_max"] == "100 nA; x2 per 8 K"
 
 
 def test_a_free_air_rating_cannot_exceed_what_theta_ja_allows():
@@ -708,8 +716,9 @@ def test_study_notes_name_a_high_supply_and_a_junction_above_tj_max():
     # touches"; the hazard now follows the temperature itself (from memory: skin burns on
     # contact from about 60 degC, cellulose scorches from about 150 degC)
     from tolerance.models.stages.evaluation import _hot_part_hazard
-    assert "scorch" in _hot_part_hazard(200 + 273.15)
-    assert _hot_part_hazard(100 + 273.15) == "; a part that hot can burn on touch"
+    assert "scorch" in _hot_part_hazard(160 + 273.15)
+    assert "scorch" not in _hot_part_hazard(150 + 273.15)
+    assert _hot_part_hazard(65 + 273.15) == "; a part that hot can burn on touch"
     assert _hot_part_hazard(55 + 273.15) == ""
     # the shipped studies' notes stay as they were where nothing is hot or high
     root = ROOT / "studies"
@@ -726,6 +735,14 @@ def test_a_drive_current_limit_is_told_the_base_voltage_is_the_datasheet_maximum
     notes = [n for n in load_text("capped.toml", text=capped).notes()
              if "V_BE(sat) maximum" in n]
     assert len(notes) == 1 and notes[0].startswith("drive_current is limited from above")
+    assert notes[0].endswith("vbe_sat_typ in [parts.Q1]: the units then spread between it "
+                             "and the maximum.")
+    # a monolithic pair's dies carry no V_BE(sat) figure of their own: no note sends that
+    # study to a key it refuses (found by a mutation round)
+    heater = (ROOT / "studies" / "engine_bay_heater_darlington.toml").read_text()
+    assert not any("V_BE(sat) maximum" in n for n in load_text(
+        "mono.toml", text=heater.replace("[limits]", '[limits]\ndrive_current = {max = "30 mA"}',
+                                          1)).notes())
     assert not any("V_BE(sat) maximum" in n for n in load_text("a.toml", text=_demo_with())
                    .notes())
     # the datasheet's typical V_BE(sat) spreads the units: a parameter Q1.vbe_sat from its
@@ -735,6 +752,10 @@ def test_a_drive_current_limit_is_told_the_base_voltage_is_the_datasheet_maximum
     assert not any("V_BE(sat) maximum" in n for n in spread.notes())
     vbe = next(p for p in spread.parameters if p.name == "Q1.vbe_sat")
     assert vbe.nominal == pytest.approx(1.05) and vbe.distribution.high == pytest.approx(1.2)
+    # 3 sigma from typ to the maximum, and as far below (2 x 1.05 - 1.2 = 0.9 V, by hand)
+    assert vbe.distribution.sigma_high == pytest.approx(0.05)
+    assert vbe.distribution.sigma_low == pytest.approx(0.05)
+    assert vbe.distribution.low == pytest.approx(0.9)
     values = {p.name: np.full(2, p.nominal) for p in spread.parameters}
     values["Q1.vbe_sat"] = np.array([1.2, vbe.distribution.low])
     res = spread.stage.dc(values)
@@ -751,7 +772,10 @@ def test_a_drive_current_limit_is_told_the_base_voltage_is_the_datasheet_maximum
     # drawn was 0.79 V for a typ of 0.78 V)
     near = load_text("near.toml", text=_demo_with('vbe_sat_typ = "0.8 V"'))
     low = next(p for p in near.parameters if p.name == "Q1.vbe_sat").distribution
-    assert low.ppf(0.5) == pytest.approx(0.8, abs=1e-12) and 0.75 < low.low < 0.76
+    assert low.ppf(0.5) == pytest.approx(0.8, abs=1e-12)
+    assert low.low == pytest.approx(near.stage.transistors()["Q1"].device.intrinsic_vbe_sat,
+                                    rel=1e-12)
+    assert low.low == pytest.approx(0.7546, rel=1e-3)
     dv = (1.2 - vbe.distribution.low) * res["base_current"][0] / 0.05
     assert res["drive_current"][1] - res["drive_current"][0] == pytest.approx(
         dv / (150.0 + 40.0), rel=0.1)

@@ -592,6 +592,14 @@ def test_worst_case_notes_explain_infinite_extremes_and_bands_below_zero():
                                                 "energy_on": energy}})
     assert len(notes) == 2
     assert notes[0].startswith("An extreme of inf (turn_on_delay) is a corner or unit")
+    # a Monte Carlo unit's infinite extreme counts as well; the linear band alone below
+    # zero is enough, and a corner at exactly zero is no value below it
+    only_mc = dict(delay, eva_max=4.4e-4, mc_max="inf")
+    assert any(n.startswith("An extreme of inf (d)")
+               for n in report.worstcase_notes({"metrics": {"d": only_mc}}))
+    linear = dict(leak, rss_low=1e-9, linear_low=-1e-9, eva_min=0.0)
+    assert report.worstcase_notes({"metrics": {"i": linear}})[0].startswith(
+        "The RSS or linear band of i reaches below zero")
     # a metric below zero in its own corners (an energy returned to the supply) is no case
     assert notes[1].startswith("The RSS or linear band of off_current reaches below zero")
     assert report.format_value(float("nan"), "A") == "-" == report.format_value(None, "A")

@@ -386,12 +386,36 @@ def test_failure_drivers_name_no_region_for_failures_chance_would_place():
                                   "at 5 % significance (best x3, p = 0.01")
     # the unit's place: x3 above 99.5 % of the units (19 of 3,999 above it)
     assert "x3 " in res["text"].split("furthest out in: ")[1].split(";")[0]
-    assert "(above 99.5 % of units)" in res["text"]
+    assert "(above 99.5 % of the other units)" in res["text"]
+    # a constant input is no candidate: the threshold is 5 % over the 10 varying inputs
+    res = failure_drivers(x.assign(c=1.0), one, formatter=lambda v, u: f"{v:.3f}")
+    assert "against 0.005 for 10 varying inputs" in res["text"]
     # at the very top of an input the same unit is a finding (p = 2 / 4000 x 10 inputs)
     top = np.zeros(n, dtype=bool)
     top[int(np.argmax(x["x3"].to_numpy()))] = True
     found = failure_drivers(x, top, formatter=lambda v, u: f"{v:.3f}")
     assert [c["input"] for c in found["region"]] == ["x3"]
+
+
+def test_a_lone_failure_s_place_among_the_other_units():
+    # hand: unit 1 (the first row) against the other four; the share below it, ties half,
+    # is (count below + 0.5 x count equal - 0.5) / 4: a 1/4 -> "below 75 %", b 1 -> "above
+    # 100 %", c 0 -> "below 100 %", d 0.5 -> not among the three furthest out
+    x = pd.DataFrame({"a": [1.0, 2, 3, 4, 5], "b": [5.0, 3, 1, 2, 4], "c": [2.0, 1, 4, 5, 3],
+                      "d": [3.0, 5, 2, 1, 4]})
+    one = np.array([False, True, False, False, False])
+    text = failure_drivers(x, one, formatter=lambda v, u: f"{v:g}")["text"]
+    assert text.endswith("furthest out in: c 1 (below 100 % of the other units), d 5 (above "
+                         "100 % of the other units), a 2 (below 75 % of the other units)")
+    # up to three failures each is placed; from four on only the count is said (FEW_FAILURES)
+    rng = np.random.default_rng(3)
+    wide = pd.DataFrame(rng.uniform(size=(4000, 6)), columns=list("pqrstu"))
+    for k, placed in ((3, True), (4, False)):
+        fail = np.zeros(4000, dtype=bool)
+        fail[rng.choice(4000, k, replace=False)] = True
+        res = failure_drivers(wide, fail)
+        assert not res["region"]  # uniform inputs: chance, no finding
+        assert ("furthest out lie:" in res["text"]) == placed
 
 
 def test_failure_drivers_no_failures():

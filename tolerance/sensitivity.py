@@ -916,10 +916,10 @@ def _chance_text(names, x, fail, best, varying, units, fmt) -> str:
 
 
 def _percentile_words(share: float) -> str:
-    """A unit's place among the units, e.g. "above 99.6 % of units"."""
+    """A unit's place among the other units, e.g. "above 99.6 % of the other units"."""
     if share >= 0.5:
-        return f"above {_percent(share)} % of units"
-    return f"below {_percent(1.0 - share)} % of units"
+        return f"above {_percent(share)} % of the other units"
+    return f"below {_percent(1.0 - share)} % of the other units"
 
 
 def _drivers(names, x, fail, ks, dropped, units, fmt, top) -> dict:

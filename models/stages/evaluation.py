@@ -1320,8 +1320,12 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
         out += _pwm_coil_notes(stage, judged, {c.name for c in criteria}, nominal)
     capped = sorted({c.metric for c in criteria if c.maximum is not None
                      and c.metric in ("drive_current", "base_current")})
+    # parts a vbe_sat_typ could spread: a figure of their own, not a monolithic pair's die
+    # (found by a mutation round: the note sent a monolithic study to a key it refuses)
+    monolithic = bool(getattr(thermal, "shared", None))
     fixed_vbe = [name for name, part in stage.transistors().items()
-                 if getattr(part, "vbe_sat_parameter", None) is None]
+                 if getattr(part, "vbe_sat_parameter", None) is None and not monolithic
+                 and part.device.datasheet.vbe_sat_max is not None]
     if capped and fixed_vbe:
         # found by a review: the fit meets vbe_sat_max with the lowest-gain unit, and every
         # unit keeps that base resistance, which is the safe side for saturation only
