@@ -598,8 +598,10 @@ def test_worst_case_notes_explain_infinite_extremes_and_bands_below_zero():
     assert any(n.startswith("An extreme of inf (d)")
                for n in report.worstcase_notes({"metrics": {"d": only_mc}}))
     linear = dict(leak, rss_low=1e-9, linear_low=-1e-9, eva_min=0.0)
-    assert report.worstcase_notes({"metrics": {"i": linear}})[0].startswith(
-        "The RSS or linear band of i reaches below zero")
+    rss = dict(leak, rss_low=-1e-9, rss_high=2e-7, linear_low=1e-9)
+    for m in (linear, rss):
+        assert report.worstcase_notes({"metrics": {"i": m}})[0].startswith(
+            "The RSS or linear band of i reaches below zero")
     # a metric below zero in its own corners (an energy returned to the supply) is no case
     assert notes[1].startswith("The RSS or linear band of off_current reaches below zero")
     assert report.format_value(float("nan"), "A") == "-" == report.format_value(None, "A")
