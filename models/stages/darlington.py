@@ -301,6 +301,24 @@ class PairFit:
     rbe_output: float | None = None
 
 
+#: die figures a monolithic pair's datasheet states for the whole part, refused on either
+#: die's table: its I_CEO (the dies' leakage shunted by the internal resistors), its hot
+#: I_CBO (found by a review: it fitted one die's doubling while the other kept the class's)
+#: and its V_BE(sat) (two junctions', which cannot spread one die's base resistance)
+WHOLE_PART_FIGURES = (
+    (("iceo_max", "iceo_vce"),
+     "a monolithic Darlington's I_CEO is the whole part's, set by its internal base-emitter "
+     "resistors, not a die's open-base figure; state an off_current window in [limits] "
+     "instead"),
+    (("icbo_hot_max", "icbo_hot_temperature"),
+     "a monolithic Darlington's hot I_CBO is the whole part's, not one die's; give each "
+     "die's leakage_doubling, or an off_current window in [limits]"),
+    (("vbe_sat_typ",),
+     "a monolithic Darlington's V_BE(sat) is the whole pair's (two junctions), not one "
+     "die's; it cannot spread a die's base resistance"),
+)
+
+
 @dataclasses.dataclass(frozen=True)
 class LeadedDevice(FittedDevice):
     """A fitted die with a resistance in series with its emitter outside the die (a
@@ -474,28 +492,10 @@ def configure(reader):
                                           "die comes with [parts.Q2]'s device, and its "
                                           "mounting is given on [parts.Q2]")
         for table in (q1_table, q2_table):
-            for key in ("iceo_max", "iceo_vce"):
-                if table.has(key):
-                    # a monolithic pair's datasheet I_CEO is the whole part's, its dies'
-                    # leakage shunted by the internal resistors; it fits neither die
-                    raise table.error(key, "a monolithic Darlington's I_CEO is the whole "
-                                           "part's, set by its internal base-emitter "
-                                           "resistors, not a die's open-base figure; state "
-                                           "an off_current window in [limits] instead")
-            # found by a review: a whole part's hot I_CBO fitted one die's doubling (the
-            # other kept the class's) and a pair's V_BE(sat) is two junctions'; neither
-            # describes one die
-            for key in ("icbo_hot_max", "icbo_hot_temperature"):
-                if table.has(key):
-                    raise table.error(key, "a monolithic Darlington's hot I_CBO is the whole "
-                                           "part's, not one die's; give each die's "
-                                           "leakage_doubling, or an off_current window in "
-                                           "[limits]")
-            if table.has("vbe_sat_typ"):
-                raise table.error("vbe_sat_typ", "a monolithic Darlington's V_BE(sat) is the "
-                                                 "whole pair's (two junctions), not one "
-                                                 "die's; it cannot spread a die's base "
-                                                 "resistance")
+            for keys, why in WHOLE_PART_FIGURES:
+                for key in keys:
+                    if table.has(key):
+                        raise table.error(key, why)
         q1 = read_transistor(parts, "Q1", "Darlington driver", polarity="npn",
                              base_figures=entry.dies["driver"],
                              supply_minimum=env.supply_minimum, required=False)
