@@ -750,6 +750,11 @@ def test_a_drive_current_limit_is_told_the_base_voltage_is_the_datasheet_maximum
     spread = load_text("typ.toml", text=capped.replace(
         'device = "medium_power_npn"', 'device = "medium_power_npn"\nvbe_sat_typ = "1.05 V"'))
     assert not any("V_BE(sat) maximum" in n for n in spread.notes())
+    # the devices table lists the figures the drive follows
+    from tolerance.models.stages.evaluation import device_assumptions
+    assert device_assumptions(spread.stage)[0]["vbe_sat"] == "1.05 V typ, 1.2 V max"
+    assert device_assumptions(load_text("m.toml", text=capped).stage)[0]["vbe_sat"] \
+        == "1.2 V max"
     vbe = next(p for p in spread.parameters if p.name == "Q1.vbe_sat")
     assert vbe.nominal == pytest.approx(1.05) and vbe.distribution.high == pytest.approx(1.2)
     # 3 sigma from typ to the maximum, and as far below (2 x 1.05 - 1.2 = 0.9 V, by hand)

@@ -1498,7 +1498,7 @@ DEVICES_NOTE = (
 #: the device table's columns: heading, key of :func:`models.stages.evaluation.device_assumptions`
 DEVICE_COLUMNS = (("part", "part"), ("class", "class"), ("type", "polarity"),
                   ("h_FE min .. max", "hfe"), ("V_CE(sat) max", "vce_sat_max"),
-                  ("V_BE(on)", "vbe_on"), ("I_CBO max", "icbo_max"),
+                  ("V_BE(sat)", "vbe_sat"), ("V_BE(on)", "vbe_on"), ("I_CBO max", "icbo_max"),
                   ("I_CEO max (base open)", "iceo"),
                   ("V_(BR)CEO", "breakdown_vceo"), ("I_C max", "ic_max"),
                   ("P_tot", "power_rating"), ("T_j max", "tj_max"), ("theta_JA", "theta_ja"))

@@ -1155,6 +1155,10 @@ def device_assumptions(stage) -> list[dict]:
             "hfe": f"{ds.hfe_min:g} .. {ds.hfe_max:g} at {q(ds.hfe_current, 'A')}",
             "vce_sat_max": f"{q(ds.vce_sat_max, 'V')} at {q(ds.vce_sat_ic, 'A')} / "
                            f"{q(ds.vce_sat_ib, 'A')}",
+            # the figure the drive current follows (found by a review: it was listed nowhere)
+            "vbe_sat": ("-" if ds.vbe_sat_max is None else
+                        f"{'' if ds.vbe_sat_typ is None else q(ds.vbe_sat_typ, 'V') + ' typ, '}"
+                        f"{q(ds.vbe_sat_max, 'V')} max"),
             "vbe_on": q(ds.vbe_on, "V"),
             "icbo_max": _cbo_leakage_text(part.device),
             # a monolithic pair's dies share one junction (thermal.shared): its I_CEO is the
