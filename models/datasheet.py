@@ -20,6 +20,8 @@ hfe_low_min at its I_C    be_leakage_current            h_FE(I_low) at h_FE(test
 vce_sat_max at I_C, I_B   collector_resistance          V_CE at the forced gain, hfe_min unit
 vbe_sat_max at I_C, I_B   base_resistance               V_BE at the forced gain, hfe_min unit
 vbe_sat_typ               base_resistance (per sample)  the unit's own V_BE(sat), see parameters
+vbe_on_min, vbe_on_max    saturation_current (per       the unit's own V_BE(on), see parameters
+                          sample), base_resistance      (vbe_sat_max met by the highest one)
 hfe at the test point     forward_beta (per sample)     closed form, see forward_beta_for_hfe
 icbo_max at V_CB          cbo_leakage (per sample)      generation term of the model
 iceo_max at V_CE          be_leakage_emission           base open, hfe_max unit at icbo_max
@@ -30,7 +32,8 @@ The conditions are coupled weakly; they are solved in turn (each a one-dimension
 root, ``scipy.optimize.brentq``) and the sweep is repeated until no parameter moves by more
 than 1e-9 relative. The maximum figures (V_CE(sat), V_BE(sat)) are met by the minimum-gain unit
 (the least overdriven one, so the model is conservative for the saturation check), V_BE(on) by
-the typical unit.
+the typical unit. With a V_BE(on) spread (``vbe_on_min``, ``vbe_on_max``) V_BE(sat) max is met
+by the minimum-gain unit whose junction lies at ``vbe_on_max``.
 """
 
 from __future__ import annotations
@@ -46,6 +49,7 @@ from tolerance.models.transistor import (
     TransistorParameters,
     junction_currents,
     terminal_offsets,
+    thermal_voltage,
 )
 
 __all__ = [
@@ -95,6 +99,8 @@ DATASHEET_FIGURES: dict[str, tuple[str, str]] = {
     "vbe_on": ("V", "typical base-emitter on voltage*"),
     "vbe_on_current": ("A", "collector current of the V_BE(on) figure*"),
     "vbe_on_vce": ("V", "collector-emitter voltage of the V_BE(on) figure*"),
+    "vbe_on_min": ("V", "lowest base-emitter on voltage at the V_BE(on) test point"),
+    "vbe_on_max": ("V", "highest base-emitter on voltage at the V_BE(on) test point"),
     "icbo_max": ("A", "maximum collector-base cut-off current at 25 degC*"),
     "icbo_vcb": ("V", "collector-base voltage of the I_CBO figure*"),
     "iceo_max": ("A", "maximum collector-emitter cut-off current, base open, at 25 degC"),
@@ -139,6 +145,11 @@ HOT_LEAKAGE_LOWEST = 323.15
 #: the range of ``leakage_doubling`` the model accepts, entered or fitted [K]
 DOUBLING_RANGE = (4.0, 20.0)
 
+#: the widest V_BE(on) spread (vbe_on_max - vbe_on_min) the model takes as one junction
+#: type's [V]: units of one type spread by tens of millivolts, datasheets state up to about
+#: 0.15 V between their limits (from memory); wider is another unit or two junctions
+JUNCTION_SPREAD_MAX = 0.3
+
 REQUIRED = tuple(k for k, (_, d) in DATASHEET_FIGURES.items() if d.endswith("*"))
 
 
@@ -179,6 +190,8 @@ class Datasheet:
     icbo_hot_temperature: float | None = None
     vbe_sat_max: float | None = None
     vbe_sat_typ: float | None = None
+    vbe_on_min: float | None = None
+    vbe_on_max: float | None = None
     theta_jc: float | None = None
     power_rating_case: float | None = None
     early_voltage: float = CLASS_DEFAULTS["early_voltage"]
@@ -207,6 +220,12 @@ class Datasheet:
     @property
     def sign(self) -> int:
         return 1 if self.polarity == "npn" else -1
+
+    @property
+    def junction_headroom(self) -> float:
+        """How far the highest unit's V_BE(on) lies above the typical one [V] (0 without a
+        spread)."""
+        return 0.0 if self.vbe_on_max is None else self.vbe_on_max - self.vbe_on
 
     @property
     def hfe_median(self) -> float:
@@ -337,6 +356,21 @@ class Datasheet:
             raise DatasheetError("vce_sat_max", "must be below breakdown_vceo")
         if self.vbe_on >= 1.5:
             raise DatasheetError("vbe_on", f"{self.vbe_on:g} V is not a single junction voltage")
+        self._together("vbe_on_min", "vbe_on_max")
+        if self.vbe_on_min is not None:
+            if not self.vbe_on_min < self.vbe_on < self.vbe_on_max:
+                key = "vbe_on_min" if self.vbe_on_min >= self.vbe_on else "vbe_on_max"
+                raise DatasheetError(key, f"vbe_on ({self.vbe_on:g} V, the typical unit's) "
+                                          f"must lie between vbe_on_min "
+                                          f"({self.vbe_on_min:g} V) and vbe_on_max "
+                                          f"({self.vbe_on_max:g} V)", related=("vbe_on",))
+            if self.vbe_on_max - self.vbe_on_min > JUNCTION_SPREAD_MAX:
+                raise DatasheetError("vbe_on_max", f"{self.vbe_on_max - self.vbe_on_min:.3g} V "
+                                                   f"between vbe_on_min and vbe_on_max is "
+                                                   f"wider than one junction type spreads "
+                                                   f"(at most {JUNCTION_SPREAD_MAX:g} V; "
+                                                   f"datasheets state up to about 0.15 V)",
+                                     related=("vbe_on_min",))
         if self.vbe_sat_max is not None and self.vbe_sat_max <= self.vce_sat_max:
             raise DatasheetError("vbe_sat_max", "must be above vce_sat_max")
         if self.vbe_sat_typ is not None:
@@ -401,7 +435,27 @@ class FittedDevice:
     def _leakage(self, hfe):
         return self.template.be_leakage_current * (self.datasheet.hfe_min / hfe)
 
-    def forward_beta_for_hfe(self, hfe, icbo=None) -> np.ndarray:
+    def junction_factors(self, vbe_on):
+        """Factors on the saturation currents of units whose V_BE(on) at the datasheet's
+        test point is ``vbe_on`` [V] (as the typical-gain unit would have it): (on I_S, on
+        I_SE), 1 for None.
+
+        A unit's junction lies dV = vbe_on - the typical V_BE(on) above the fitted one: its
+        transport saturation current is I_S exp(-dV / (n_F V_T)) and its recombination
+        current's I_SE exp(-dV / (n_E V_T)) (25 degC), so at any collector current both
+        currents, and with them the whole h_FE(I_C) curve, stay as fitted, while V_BE moves
+        by dV (by dV T / T_0 at T): a uniform shift of the junction law, as an emitter of
+        another area or doping would give (common practice, no source).
+        """
+        if vbe_on is None:
+            return 1.0, 1.0
+        t = self.template
+        vt0 = float(thermal_voltage(REFERENCE_TEMPERATURE))
+        shift = np.asarray(vbe_on, dtype=float) - self.datasheet.vbe_on
+        return (np.exp(-shift / (t.forward_emission * vt0)),
+                np.exp(-shift / (t.be_leakage_emission * vt0)))
+
+    def forward_beta_for_hfe(self, hfe, icbo=None, vbe_on=None) -> np.ndarray:
         """Ideal forward gain whose model h_FE at the datasheet test point equals ``hfe``.
 
         Parameters
@@ -411,6 +465,8 @@ class FittedDevice:
         icbo : array_like, optional
             The unit's I_CBO at 25 degC [A] (the generation current flows out of the base and
             so enters the gain); default the fit's median leakage.
+        vbe_on : array_like, optional
+            The unit's V_BE(on) [V] (:meth:`junction_factors`); default the typical one.
 
         Returns
         -------
@@ -421,15 +477,19 @@ class FittedDevice:
         hfe = np.atleast_1d(np.asarray(hfe, dtype=float))
         icbo = self.template.cbo_leakage if icbo is None else icbo
         icbo = np.broadcast_to(np.asarray(icbo, dtype=float), hfe.shape)
+        von = np.broadcast_to(np.asarray(self.datasheet.vbe_on if vbe_on is None else vbe_on,
+                                         dtype=float), hfe.shape)
         ds = self.datasheet
-        if hfe.size > 1 and np.all(hfe == hfe[0]) and np.all(icbo == icbo[0]):
-            return np.full(hfe.shape, self.forward_beta_for_hfe(hfe[:1], icbo[:1])[0])
+        if (hfe.size > 1 and np.all(hfe == hfe[0]) and np.all(icbo == icbo[0])
+                and np.all(von == von[0])):
+            return np.full(hfe.shape, self.forward_beta_for_hfe(hfe[:1], icbo[:1], von[:1])[0])
         if hfe.size == 1:
-            key = (float(hfe[0]), float(icbo[0]))
+            key = (float(hfe[0]), float(icbo[0]), float(von[0]))
             if key in self._cache:
                 return np.array([self._cache[key]])
-        q = replace(self.template, be_leakage_current=self._leakage(hfe),
-                    cbo_leakage=np.array(icbo))
+        k_s, k_se = self.junction_factors(None if vbe_on is None else von)
+        q = replace(self.template, saturation_current=self.template.saturation_current * k_s,
+                    be_leakage_current=self._leakage(hfe) * k_se, cbo_leakage=np.array(icbo))
         out = forward_beta_for_hfe(q, hfe, ds.hfe_current, ds.hfe_vce)
         if hfe.size == 1:
             self._cache[key] = float(out[0])
@@ -437,34 +497,45 @@ class FittedDevice:
 
     @property
     def intrinsic_vbe_sat(self) -> float | None:
-        """The minimum-gain unit's V_BE at the V_CE(sat) point with no base resistance [V]:
-        the lowest V_BE(sat) a unit can have (None without a vbe_sat_max figure)."""
+        """The minimum-gain unit's V_BE at the V_CE(sat) point with no base resistance, for
+        the highest junction (``vbe_on_max``, else the typical one) [V]: the lowest
+        V_BE(sat) every unit can have (None without a vbe_sat_max figure)."""
         ds = self.datasheet
         if ds.vbe_sat_max is None:
             return None
         return float(ds.vbe_sat_max - self.template.base_resistance * ds.vce_sat_ib)
 
-    def parameters(self, hfe, icbo=None, vbe_sat=None) -> TransistorParameters:
-        """Per-sample parameters for gains ``hfe`` [1], leakages ``icbo`` [A] and base-emitter
-        saturation voltages ``vbe_sat`` [V].
+    def parameters(self, hfe, icbo=None, vbe_sat=None, vbe_on=None) -> TransistorParameters:
+        """Per-sample parameters for gains ``hfe`` [1], leakages ``icbo`` [A], base-emitter
+        saturation voltages ``vbe_sat`` [V] and on voltages ``vbe_on`` [V].
 
-        ``icbo`` None keeps the fit's median leakage; ``vbe_sat`` None keeps the base
-        resistance that meets ``vbe_sat_max``. A unit's ``vbe_sat`` is its V_BE at the
-        V_CE(sat) test point as the minimum-gain unit would have it: with the currents
-        forced there, the terminal V_BE is the junction's plus I_B r_B, so the unit's base
-        resistance is the fit's less (vbe_sat_max - vbe_sat) / I_B (never below zero).
+        ``icbo`` None keeps the fit's median leakage; ``vbe_on`` None the typical junction
+        (:meth:`junction_factors`); ``vbe_sat`` None the fitted base resistance, which meets
+        ``vbe_sat_max`` with the highest junction (the typical one without a V_BE(on)
+        spread). A unit's ``vbe_sat`` is its V_BE at the V_CE(sat) test point as the
+        minimum-gain unit would have it: with the currents forced there, the terminal V_BE
+        is the junction's plus I_B r_B, and the unit's junction lies dV above the typical
+        one, whose unit meets vbe_sat_max less the headroom h = vbe_on_max - vbe_on, so the
+        unit's base resistance is the fit's less (vbe_sat_max - h + dV - vbe_sat) / I_B
+        (never below zero).
         """
         hfe = np.asarray(hfe, dtype=float)
         icbo = self.template.cbo_leakage if icbo is None else np.asarray(icbo, dtype=float)
-        beta = self.forward_beta_for_hfe(hfe, icbo)
+        beta = self.forward_beta_for_hfe(hfe, icbo, vbe_on)
         extra = {}
         ds = self.datasheet
         if vbe_sat is not None and ds.vbe_sat_max is not None:
-            shift = (ds.vbe_sat_max - np.asarray(vbe_sat, dtype=float)) / ds.vce_sat_ib
-            extra["base_resistance"] = np.maximum(self.template.base_resistance - shift, 0.0)
+            shift = 0.0 if vbe_on is None else np.asarray(vbe_on, dtype=float) - ds.vbe_on
+            gap = (ds.vbe_sat_max - ds.junction_headroom + shift
+                   - np.asarray(vbe_sat, dtype=float))
+            extra["base_resistance"] = np.maximum(self.template.base_resistance
+                                                  - gap / ds.vce_sat_ib, 0.0)
+        k_s, k_se = self.junction_factors(vbe_on)
+        if vbe_on is not None:
+            extra["saturation_current"] = self.template.saturation_current * k_s
         return replace(self.template, forward_beta=beta.reshape(np.shape(beta) if hfe.ndim
                                                                  else ()),
-                       be_leakage_current=self._leakage(hfe), cbo_leakage=icbo, **extra)
+                       be_leakage_current=self._leakage(hfe) * k_se, cbo_leakage=icbo, **extra)
 
 
 class _PointSystem:
@@ -1042,10 +1113,22 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
                                               "no collector resistance gives it", log=False)
 
         if ds.vbe_sat_max is not None:
+            # with a V_BE(on) spread the unit at vbe_on_max meets vbe_sat_max (its junction
+            # lies that much above the typical one at any current, FittedDevice.parameters),
+            # so the fitted, typical junction's unit stays that much below it
+            target = ds.vbe_sat_max - ds.junction_headroom
+
             def f_rb(rb):
                 q = build(base_resistance=rb)
-                return _scalar(saturation_at(q, ds.vce_sat_ic, ds.vce_sat_ib)[1]) - ds.vbe_sat_max
+                return _scalar(saturation_at(q, ds.vce_sat_ic, ds.vce_sat_ib)[1]) - target
             if f_rb(0.0) > 0:
+                if ds.junction_headroom > 0:
+                    raise DatasheetError(
+                        "vbe_on_max", f"{ds.vbe_on_max:g} V puts the highest unit's junction "
+                                      f"{ds.junction_headroom * 1e3:.0f} mV above the typical "
+                                      f"one, which leaves it above vbe_sat_max "
+                                      f"({ds.vbe_sat_max:g} V) at the V_CE(sat) point even "
+                                      f"with no base resistance", related=("vbe_sat_max",))
                 raise DatasheetError("vbe_sat_max", "is below the model's intrinsic V_BE at the "
                                                     "V_CE(sat) point; lower vbe_on or raise it")
             rb_hi = 10.0 * ds.vbe_sat_max / ds.vce_sat_ib
@@ -1065,13 +1148,15 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
     if ds.vbe_sat_typ is not None:
         # the units spread by their base resistance (FittedDevice.parameters), which the
         # typical unit must still have
+        # (with a V_BE(on) spread, the highest junction's: FittedDevice.intrinsic_vbe_sat)
         intrinsic = ds.vbe_sat_max - state["base_resistance"] * ds.vce_sat_ib
         if ds.vbe_sat_typ <= intrinsic:
+            whose = (" (the unit at vbe_on_max)" if ds.junction_headroom > 0 else "")
             raise DatasheetError("vbe_sat_typ", f"{ds.vbe_sat_typ:g} V is not above the "
-                                                f"model's V_BE with no base resistance "
-                                                f"({intrinsic:.3g} V at the V_CE(sat) point); "
-                                                f"check vbe_on and the figure's test point",
-                                 related=("vbe_sat_max",))
+                                                f"model's V_BE with no base resistance"
+                                                f"{whose} ({intrinsic:.3g} V at the V_CE(sat) "
+                                                f"point); check vbe_on and the figure's test "
+                                                f"point", related=("vbe_sat_max",))
     if ds.icbo_hot_max is not None:
         # the doubling moves no figure at 25 degC, so it is fitted once, after the sweeps
         base = replace(base, leakage_doubling=_fit_doubling(ds, build(), unit))
@@ -1099,11 +1184,18 @@ def model_figures(device: FittedDevice) -> dict[str, float]:
     vce, vbe = saturation_at(q_min, ds.vce_sat_ic, ds.vce_sat_ib)
     out["vce_sat_max"] = _scalar(vce)
     if ds.vbe_sat_max is not None:
+        if ds.vbe_on_max is not None:  # met by the highest junction
+            high = device.parameters(ds.hfe_min, vbe_on=ds.vbe_on_max)
+            vbe = saturation_at(high, ds.vce_sat_ic, ds.vce_sat_ib)[1]
         out["vbe_sat_max"] = _scalar(vbe)
     if ds.vbe_sat_typ is not None:
         typical = device.parameters(ds.hfe_min, vbe_sat=ds.vbe_sat_typ)
         out["vbe_sat_typ"] = _scalar(saturation_at(typical, ds.vce_sat_ic, ds.vce_sat_ib)[1])
     out["vbe_on"] = _scalar(hfe_at(q_typ, ds.vbe_on_current, ds.vbe_on_vce)[1])
+    for key in ("vbe_on_min", "vbe_on_max"):
+        if getattr(ds, key) is not None:
+            q = device.parameters(ds.hfe_median, vbe_on=getattr(ds, key))
+            out[key] = _scalar(hfe_at(q, ds.vbe_on_current, ds.vbe_on_vce)[1])
     out["icbo_max"] = _scalar(icbo_at(device.parameters(ds.hfe_median, ds.icbo_max), ds.icbo_vcb))
     if ds.iceo_max is not None:
         out["iceo_max"] = _scalar(iceo_at(device.parameters(ds.hfe_max, ds.icbo_max),

@@ -224,6 +224,8 @@ class TransistorPart:
     device_class: str | None = None
     #: the unit's V_BE(sat) parameter, where the datasheet gives vbe_sat_typ
     vbe_sat_parameter: str | None = None
+    #: the unit's V_BE(on) parameter, where the datasheet gives vbe_on_min and vbe_on_max
+    vbe_on_parameter: str | None = None
 
     @property
     def polarity(self) -> int:
@@ -233,8 +235,10 @@ class TransistorPart:
         """Model parameters of this transistor for a chunk of samples."""
         vbe_sat = (samples[self.vbe_sat_parameter] if self.vbe_sat_parameter is not None
                    else None)
+        vbe_on = (samples[self.vbe_on_parameter] if self.vbe_on_parameter is not None
+                  else None)
         return self.device.parameters(samples[self.hfe_parameter],
-                                      samples[self.icbo_parameter], vbe_sat)
+                                      samples[self.icbo_parameter], vbe_sat, vbe_on)
 
 
 def _derived_parameter(reader: Reader, name: str, spec: dict, unit: str, parameter_name: str,
@@ -503,5 +507,18 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
                      f"the model's V_BE with no base resistance ({floor:.4g} V at the "
                      f"V_CE(sat) point) is the lowest V_BE(sat) a unit can have")
         vbe_sat = param.name
+    vbe_on = None
+    if ds.vbe_on_min is not None:
+        # the junction's own spread: vbe_on the median, each limit at 3 sigma of its side,
+        # cut there (tested limits; common practice, no source)
+        param = _derived_parameter(part, "vbe_on", {
+            "min": ds.vbe_on_min, "max": ds.vbe_on_max}, "V", f"{name}.vbe_on",
+            f"{description}: V_BE(on) at {ds.vbe_on_current * 1e3:g} mA")
+        part._ctx.parameters[param.name] = dataclasses.replace(  # noqa: SLF001
+            param, distribution=TruncatedSplitNormal(
+                ds.vbe_on, (ds.vbe_on - ds.vbe_on_min) / 3.0,
+                (ds.vbe_on_max - ds.vbe_on) / 3.0, ds.vbe_on_min, ds.vbe_on_max, 3.0))
+        vbe_on = param.name
     return TransistorPart(name, fitted, f"{name}.hfe", f"{name}.icbo",
-                          device if device not in (None, "inline") else None, vbe_sat)
+                          device if device not in (None, "inline") else None, vbe_sat,
+                          vbe_on)

@@ -589,6 +589,8 @@ def test_units_that_did_not_converge_are_shown_by_every_analysis(tmp_path, capsy
     (["choose", "--vary", "supply.voltage=E12:0.1..1"], "the saturation voltage of Q1"),
     # found by a review: a V_BE(sat) below the model's floor was read as the floor
     (["whatif", "--pin", "Q1.vbe_sat=0.6 V"], "the model's V_BE with no base resistance"),
+    # a junction's own V_BE(on) (vbe_on_min, vbe_on_max) is a forward voltage
+    (["whatif", "--pin", "Q1.vbe_on=-0.1 V"], "Q1.vbe_on=-0.1 V: must be positive"),
 ])
 def test_pins_and_value_choices_meet_the_study_files_checks_of_the_parts(tmp_path, capsys,
                                                                           argv, told):
@@ -598,7 +600,8 @@ def test_pins_and_value_choices_meet_the_study_files_checks_of_the_parts(tmp_pat
     # gain I_C / I_B above 1; a stage whose supply is its saturation voltage carries nothing)
     demo = tmp_path / "demo.toml"
     demo.write_text((ROOT / "tolerance" / "demo" / "demo.toml").read_text().replace(
-        'device = "medium_power_npn"', 'device = "medium_power_npn"\nvbe_sat_typ = "0.95 V"'))
+        'device = "medium_power_npn"', 'device = "medium_power_npn"\nvbe_sat_typ = "0.95 V"\n'
+                                       'vbe_on_min = "0.68 V"\nvbe_on_max = "0.76 V"'))
     code = main([argv[0], str(demo), *argv[1:], "--samples", "50", "--out",
                  str(tmp_path / "x")])
     err = capsys.readouterr().err

@@ -531,6 +531,89 @@ def test_impossible_typical_vbe_sat_figures_are_refused(change, key, match):
         fit_datasheet(Datasheet.from_figures(dict(figures, vbe_sat_typ=1.0)))
 
 
+# ---------------------------------------------------------------------------------------------
+# a V_BE(on) spread (vbe_on_min, vbe_on_max): each unit's own junction
+# ---------------------------------------------------------------------------------------------
+
+def _with_junction_spread(low=0.66, high=0.80, **more):
+    return dict(library()["medium_power_npn"].figures, vbe_on_min=low, vbe_on_max=high, **more)
+
+
+def test_a_vbe_on_spread_moves_each_units_junction_and_not_its_gain():
+    # Shockley's junction law I = I_S exp(V / (n V_T)) (Sze, Physics of Semiconductor
+    # Devices, ch. 2): at a fixed current, I_S scaled by exp(-dV / (n V_T)) moves V by dV,
+    # and by dV T / T_0 at T, since the ratio of the two I_S stays; with the recombination
+    # current's I_SE scaled the same way at its own n, every base current at a given I_C,
+    # and so the gain curve, stays as fitted
+    device = device_for(_with_junction_spread())
+    ds = device.datasheet
+    v = np.array([0.66, 0.70, 0.72, 0.76, 0.80])
+    typ = device.parameters(np.full(5, ds.hfe_median), vbe_on=v)
+    _, vbe = hfe_at(typ, ds.vbe_on_current, ds.vbe_on_vce)
+    np.testing.assert_allclose(vbe, v, atol=1e-4)  # the q_1 (Early) term moves it microvolts
+    hot = hfe_at(typ, ds.vbe_on_current, ds.vbe_on_vce, temperature=373.15)[1]
+    np.testing.assert_allclose(hot - hot[2], (v - 0.72) * 373.15 / 298.15, atol=2e-4)
+    for h in (ds.hfe_min, ds.hfe_max):
+        unit = device.parameters(np.full(5, h), vbe_on=v)
+        np.testing.assert_allclose(hfe_at(unit, ds.hfe_current, ds.hfe_vce)[0], h, rtol=1e-9)
+        for current in (ds.hfe_low_current, ds.hfe_high_current):
+            gain = hfe_at(unit, current, ds.hfe_vce)[0]
+            np.testing.assert_allclose(gain, gain[2], rtol=1e-3)
+    # no spread given or the typical value: the fitted unit itself
+    assert float(device.parameters(ds.hfe_min, vbe_on=0.72).saturation_current) == \
+        pytest.approx(float(device.template.saturation_current), rel=1e-12)
+    got = model_figures(device)
+    for key in ("vbe_on_min", "vbe_on_max", "vbe_on", "vbe_sat_max"):
+        assert got[key] == pytest.approx(getattr(ds, key), rel=1e-4), key
+
+
+def test_the_highest_junction_meets_the_vbe_sat_maximum():
+    # a datasheet's V_BE(sat) maximum holds for every unit, its junction spread included
+    # (common practice, no source): the unit at vbe_on_max with the lowest gain meets it, a
+    # typical junction lies the headroom vbe_on_max - vbe_on (80 mV) below it, since with
+    # I_C and I_B forced the terminal V_BE is the junction's plus I_B r_B (Kirchhoff)
+    device = device_for(_with_junction_spread())
+    ds = device.datasheet
+    units = device.parameters(np.full(3, ds.hfe_min), vbe_on=np.array([0.66, 0.72, 0.80]))
+    vbe = saturation_at(units, ds.vce_sat_ic, ds.vce_sat_ib)[1]
+    np.testing.assert_allclose(vbe, 1.2 + np.array([-0.14, -0.08, 0.0]), atol=1e-4)
+    # with vbe_sat_typ too: each unit's V_BE(sat) is its own sample, its base resistance
+    # taking what its junction leaves, and the floor is the highest junction's
+    both = device_for(_with_junction_spread(vbe_sat_typ=1.05))
+    units = both.parameters(np.full(3, ds.hfe_min), vbe_sat=np.array([1.2, 1.05, 0.9]),
+                            vbe_on=np.array([0.80, 0.66, 0.72]))
+    np.testing.assert_allclose(saturation_at(units, ds.vce_sat_ic, ds.vce_sat_ib)[1],
+                               [1.2, 1.05, 0.9], atol=1e-4)
+    from dataclasses import replace
+    bare = replace(both.parameters(ds.hfe_min, vbe_on=0.80), base_resistance=0.0)
+    assert both.intrinsic_vbe_sat == pytest.approx(
+        float(saturation_at(bare, ds.vce_sat_ic, ds.vce_sat_ib)[1][0]), abs=1e-4)
+
+
+@pytest.mark.parametrize("change, key, match", [
+    ({"vbe_on_min": 0.66}, "vbe_on_min", "needs vbe_on_max as well"),
+    ({"vbe_on_max": 0.8}, "vbe_on_max", "needs vbe_on_min as well"),
+    ({"vbe_on_min": 0.73, "vbe_on_max": 0.8}, "vbe_on_min", r"must lie between vbe_on_min"),
+    ({"vbe_on_min": 0.6, "vbe_on_max": 0.72}, "vbe_on_max", r"must lie between vbe_on_min"),
+    ({"vbe_on_min": 0.5, "vbe_on_max": 0.81}, "vbe_on_max", "wider than one junction type"),
+    # a vbe_sat_max that leaves the typical junction's unit (about 0.755 V with no base
+    # resistance) 0.72 V once the 180 mV headroom is taken off
+    ({"vbe_on_min": 0.7, "vbe_on_max": 0.9, "vbe_sat_max": 0.9}, "vbe_on_max",
+     r"180 mV above the typical one, which leaves it above vbe_sat_max \(0\.9 V\)"),
+])
+def test_impossible_vbe_on_spreads_are_refused(change, key, match):
+    # from memory: units of one junction type spread by tens of millivolts about their
+    # typical V_BE(on), datasheets up to about 0.15 V between their limits
+    figures = dict(library()["medium_power_npn"].figures, **change)
+    with pytest.raises(DatasheetError, match=match) as info:
+        fit_datasheet(Datasheet.from_figures(figures))
+    assert info.value.key == key
+    # 0.3 V wide is still taken, and vbe_sat_max = 0.9 V without a spread fits
+    fit_datasheet(Datasheet.from_figures(_with_junction_spread(0.56, 0.85)))
+    fit_datasheet(Datasheet.from_figures(dict(library()["medium_power_npn"].figures,
+                                              vbe_sat_max=0.9)))
+
+
 def test_a_refused_hot_icbo_figure_is_told_a_range_that_fits():
     # the doubling law I(T) = I(25 degC) 2^((T - 25 degC) / d) (from memory) over 4 .. 20 K
     # from 100 nA at 150 degC: the lowest figure is about 1e-7 x 2^(125 / 20) = 7.6 uA (the

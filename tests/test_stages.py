@@ -1908,9 +1908,37 @@ def test_an_iceo_figure_sets_an_open_base_output_s_leakage(tmp_path, iceo):
     assert rows["Q2"] == f"{iceo} at 24 V" and rows["Q1"].endswith("at 30 V (model)")
 
 
+def test_a_vbe_on_spread_moves_the_turn_on_threshold_by_the_divider(tmp_path):
+    # the datasheet's V_BE(on) limits add a parameter Q1.vbe_on: typ the median, each limit
+    # at 3 sigma of its side, cut there. The input voltage at the threshold (1 % of the
+    # on-current) is V_BE + (V_BE / R_PD + I_B)(R_B + R_source) (Kirchhoff at the base);
+    # the gain curve stays, so I_B there does too, and 140 mV between the ends of the
+    # spread move it by 0.14 (1 + 103 / 1000) V at 25 degC
+    text = shipped("irrigation_valve_single.toml").replace(
+        'device = "medium_power_npn"',
+        'device = "medium_power_npn"\nvbe_on_min = "0.66 V"\nvbe_on_max = "0.8 V"', 1)
+    study = study_from(tmp_path, text)
+    vbe = next(p for p in study.parameters if p.name == "Q1.vbe_on")
+    d = vbe.distribution
+    assert vbe.nominal == pytest.approx(0.72) and d.ppf(0.5) == pytest.approx(0.72, abs=1e-12)
+    assert (d.low, d.high) == pytest.approx((0.66, 0.8))
+    assert (d.sigma_low, d.sigma_high) == pytest.approx((0.02, 0.08 / 3))
+    res = study.stage.dc(nominal(study, 3, Q1__vbe_on=[0.66, 0.72, 0.8]))
+    margin = res["off_margin"]
+    assert margin[2] - margin[0] == pytest.approx(0.14 * (1 + 103 / 1000), rel=2e-3)
+    assert margin[0] < margin[1] < margin[2]
+    # the drive's side: the highest junction meets vbe_sat_max, so a lower junction draws
+    # more base current through RB (Ohm's law), never less
+    assert np.all(np.diff(res["drive_current"]) < 0)
+    # the devices table shows the spread
+    from tolerance.models.stages.evaluation import device_assumptions
+    assert device_assumptions(study.stage)[0]["vbe_on"] == "720 mV typ, 660 mV .. 800 mV"
+
+
 @pytest.mark.parametrize("lines, key", [
     ('icbo_hot_max = "500 uA"\nicbo_hot_temperature = "125 degC"', "icbo_hot_max"),
     ('vbe_sat_typ = "1.5 V"', "vbe_sat_typ"),
+    ('vbe_on_min = "0.65 V"\nvbe_on_max = "0.9 V"', "vbe_on_min"),
 ])
 def test_a_monolithic_pair_takes_no_die_hot_leakage_or_vbe_spread(tmp_path, lines, key):
     # found by a review: a whole part's hot I_CBO fitted one die's doubling while the other

@@ -303,8 +303,9 @@ class PairFit:
 
 #: die figures a monolithic pair's datasheet states for the whole part, refused on either
 #: die's table: its I_CEO (the dies' leakage shunted by the internal resistors), its hot
-#: I_CBO (found by a review: it fitted one die's doubling while the other kept the class's)
-#: and its V_BE(sat) (two junctions', which cannot spread one die's base resistance)
+#: I_CBO (found by a review: it fitted one die's doubling while the other kept the class's),
+#: its V_BE(sat) (two junctions', which cannot spread one die's base resistance) and its
+#: V_BE(on) spread (likewise two junctions')
 WHOLE_PART_FIGURES = (
     (("iceo_max", "iceo_vce"),
      "a monolithic Darlington's I_CEO is the whole part's, set by its internal base-emitter "
@@ -316,6 +317,9 @@ WHOLE_PART_FIGURES = (
     (("vbe_sat_typ",),
      "a monolithic Darlington's V_BE(sat) is the whole pair's (two junctions), not one "
      "die's; it cannot spread a die's base resistance"),
+    (("vbe_on_min", "vbe_on_max"),
+     "a monolithic Darlington's V_BE(on) is the whole pair's (two junctions), not one "
+     "die's; it cannot spread a die's junction"),
 )
 
 
@@ -328,8 +332,8 @@ class LeadedDevice(FittedDevice):
 
     lead_resistance: float = 0.0
 
-    def parameters(self, hfe, icbo=None, vbe_sat=None):
-        q = super().parameters(hfe, icbo, vbe_sat)
+    def parameters(self, hfe, icbo=None, vbe_sat=None, vbe_on=None):
+        q = super().parameters(hfe, icbo, vbe_sat, vbe_on)
         return dataclasses.replace(q, emitter_resistance=q.emitter_resistance
                                    + self.lead_resistance)
 

@@ -1159,7 +1159,10 @@ def device_assumptions(stage) -> list[dict]:
             "vbe_sat": ("-" if ds.vbe_sat_max is None else
                         f"{'' if ds.vbe_sat_typ is None else q(ds.vbe_sat_typ, 'V') + ' typ, '}"
                         f"{q(ds.vbe_sat_max, 'V')} max"),
-            "vbe_on": q(ds.vbe_on, "V"),
+            # with the junction's spread (vbe_on_min, vbe_on_max), its ends
+            "vbe_on": (q(ds.vbe_on, "V") if ds.vbe_on_min is None else
+                       f"{q(ds.vbe_on, 'V')} typ, {q(ds.vbe_on_min, 'V')} .. "
+                       f"{q(ds.vbe_on_max, 'V')}"),
             "icbo_max": _cbo_leakage_text(part.device),
             # a monolithic pair's dies share one junction (thermal.shared): its I_CEO is the
             # whole part's with the internal resistors, and a die's own misleads (the output
