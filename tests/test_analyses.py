@@ -751,12 +751,71 @@ def test_worst_case_of_a_discrete_set_takes_only_its_members(write_study):
     assert power["opt_max"] == pytest.approx(brute, rel=1e-3)
     assert power["opt_argmax"]["drive.high"] in (0.65, 2.0)
     assert power["rss_high"] < 2 * brute  # the derivative at 0.65 V put it near 1 W
-    # a rating the study's [limits] changed is searched like the study's own criteria
-    assert "tj_output" in result["optimized_metrics"]
-    assert "power_stress_output" not in result["optimized_metrics"]
+    # a rating the study's [limits] changed is searched like the study's own criteria, the
+    # other ratings on their limited side
+    assert result["optimized_senses"]["tj_output"] == ["min", "max"]
+    assert result["optimized_senses"]["power_stress_output"] == ["max"]
+    assert result["metrics"]["power_stress_output"]["opt_min"] is None
+    # a metric whose values name a part has no worst case
+    assert "hot_spot" not in result["metrics"] and "hot_spot_margin" in result["metrics"]
     [note] = result["notes"]
     assert "drive.high" in note and "every one of their 2 combinations" in note
     assert not any("independent" in n for n in worstcase_notes(result))
+
+
+STARVED_HEATER = """
+    stage = "single"
+    [run]
+    samples = 300
+    seed = 5
+    [ambient]
+    temperature = {min = "0 degC", max = "40 degC"}
+    [supply]
+    voltage = {min = "11 V", max = "14 V"}
+    [drive]
+    high = "3.3 V"
+    [parts.RB]
+    value = "2k2"
+    tolerance = "5%"
+    [parts.RPD]
+    value = "10k"
+    tolerance = "5%"
+    [parts.Q1]
+    device = "medium_power_npn"
+    [load]
+    kind = "resistor"
+    resistance = {nominal = "47 ohm", tolerance = "5%"}
+    [thermal]
+    tj_margin = "2 K"
+    """
+
+
+def test_worst_case_searches_a_ratings_limited_side(write_study):
+    # found by a review: a base resistor far too large leaves the switch in its linear
+    # region, where its dissipation peaks at a gain between the corners (maximum power
+    # transfer: V_CE I_C with I_C = (V - V_CE) / R_L is largest at V_CE = V / 2, V^2 / 4R,
+    # 1.097 W at 14 V and 44.65 ohm); the junction's rating was read "within" from the
+    # corners (146 degC) and the units (142 degC) against 148 degC
+    from tolerance.analysis import model_for, study_worst_case
+    from tolerance.report import worst_case_within
+
+    study = load_study(write_study(STARVED_HEATER))
+    result = study_worst_case(study, 300, 1)
+    tj = result["metrics"]["tj_output"]
+    assert result["optimized_senses"]["tj_output"] == ["max"]
+    at = tj["opt_argmax"]
+    power = float(model_for(study)({k: np.array([v]) for k, v in at.items()})
+                  ["power_output"][0])
+    peak = at["supply.voltage"] ** 2 / (4 * at["load.resistance"])
+    assert at["supply.voltage"] == 14.0 and at["load.resistance"] == pytest.approx(44.65)
+    assert power == pytest.approx(peak, rel=3e-3)
+    # T_j = T_a + theta_JA P at the hottest ambient (the class's theta_JA)
+    theta = study.stage.transistors()["Q1"].device.datasheet.theta_ja
+    assert at["ambient.temperature"] == pytest.approx(313.15)
+    assert tj["opt_max"] == pytest.approx(313.15 + theta * power, abs=0.05)
+    assert tj["opt_max"] > 148 + 273.15 > tj["eva_max"]  # the corners miss it
+    limits = [c for c in result["criteria"] if c["metric"] == "tj_output"]
+    assert worst_case_within(tj, limits) == "no"
 
 
 def test_worst_case_says_when_it_searched_only_some_member_combinations():

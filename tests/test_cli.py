@@ -206,6 +206,15 @@ def test_bad_option_values_exit_2(tmp_path, capsys, write_study):
                        (["report", str(fixed)], "is not a folder"),
                        (["run", ""], "the study argument is empty")):
         assert main(argv) == 2 and told in capsys.readouterr().err
+    # found by a review: 0 and -64 were told "expected at least 1", not the range that holds
+    for argv, told in ((["sensitivity", "--sobol-samples", "0"],
+                        "--sobol-samples: expected a power of two from 64 to 262,144 (e.g. "
+                        "1024), got 0"),
+                       (["sensitivity", "--sobol-samples=-64"], "power of two from 64"),
+                       (["sensitivity", "--sobol-samples", "x"], "got 'x'")):
+        with pytest.raises(SystemExit) as exc:
+            main(argv)
+        assert exc.value.code == 2 and told in capsys.readouterr().err
 
 
 # the demo with nothing that varies (every part and condition fixed)

@@ -457,7 +457,7 @@ def test_analysis_files_render_as_their_tables_or_as_saved(folder, tmp_path):
     report.write_reports(copy)
     page = parse_html((copy / "report.html").read_text(encoding="utf-8"))
     tables = list(page.tables.values())
-    # ranked by the size of the Spearman coefficient
+    # ranked by the share of the variance (here the squared Spearman coefficient)
     assert [["input", "spearman", "srrc", "prcc", "sobol S1", "sobol ST"],
             ["x1", "0.900", "0.800", "0.950", "0.700", "0.800"],
             ["x2", "-0.100", "-0.200", "-0.300", "0.100", "0.120"]] in tables
@@ -476,8 +476,23 @@ def test_analysis_files_render_as_their_tables_or_as_saved(folder, tmp_path):
                   .tables.values())
     assert [["input", "spearman", "srrc", "prcc", "sobol S1 (95 % interval)",
              "sobol ST (95 % interval)"],
-            ["x1", "0.900", "0.800", "0.950", "0.700 (0.61 .. 0.79)", "0.800 (0.39 .. 2.47)"],
+            ["x1", "0.900", "0.800", "0.950", "0.700 (0.610 .. 0.790)",
+             "0.800 (0.385 .. 2.470)"],
             ["x2", "-0.100", "-0.200", "-0.300", "0.100", "0.120"]] in tables
+    # found by a review: an input whose effect changes sign has a small Spearman
+    # coefficient and a large total index, and was left out of the six rows; the rows go by
+    # the larger of rho^2 and ST (rho^2 = S_1 for a linear additive model, Saltelli et al.
+    # 2008, ch. 1); and -0.0004 reads 0.000, not -0.000
+    data["rank"] += [{"input": f"z{k}", "metric": "y", "spearman": 0.3 - 0.01 * k,
+                      "srrc": 0.0, "prcc": -0.0004} for k in range(6)]
+    data["rank"].append({"input": "w", "metric": "y", "spearman": -0.02, "srrc": 0.0,
+                         "prcc": 0.0})
+    data["sobol"]["y"]["w"] = {"first": 0.01, "total": 0.5}
+    (copy / "sensitivity.json").write_text(json.dumps(data))
+    rows = report.sensitivity_tables(data)[0].rows
+    # (x2: ST 0.12 against z0's rho^2 of 0.09)
+    assert [r[0] for r in rows] == ["x1", "w", "x2", "z0", "z1", "z2"]
+    assert rows[3][3] == "0.000"
 
     (copy / "sensitivity.json").write_text(json.dumps({"rank": ["junk"], "seed": 3}))
     report.write_reports(copy)
@@ -566,6 +581,14 @@ def test_worst_case_within_compares_the_worst_extremes_with_every_limit():
                                     "monte_carlo_samples": 2000})
     assert len(notes) == 1 and "inside the ranges searched" in notes[0]
     assert "drew a parameter outside" not in notes[0]
+    # found by a review: the note said "the search missed" of a side the optimizer never
+    # searched (a stress's lowest value), and not which side
+    assert "for y (lowest) with a unit" in notes[0] and "the search missed" in notes[0]
+    notes = report.worstcase_notes({"metrics": {"y": dict(m, mc_max=13.0, mc_max_inside=True)},
+                                    "monte_carlo_outside": 0, "monte_carlo_samples": 2000})
+    assert len(notes) == 1 and notes[0].startswith(
+        "The Monte Carlo samples reach beyond the corners for y (highest) with a unit inside")
+    assert "the search missed" not in notes[0] and "does not search" in notes[0]
     notes = report.worstcase_notes({"metrics": {"y": dict(inner, mc_min_inside=False)},
                                     "monte_carlo_outside": 44, "monte_carlo_samples": 2000})
     assert len(notes) == 1 and "44 of 2000 Monte Carlo samples drew" in notes[0]
@@ -604,6 +627,31 @@ def test_worst_case_notes_explain_infinite_extremes_and_bands_below_zero():
             "The RSS or linear band of i reaches below zero")
     # a metric below zero in its own corners (an energy returned to the supply) is no case
     assert notes[1].startswith("The RSS or linear band of off_current reaches below zero")
+    assert "1/h_FE" in notes[1] and "exponential in temperature" in notes[1]
+
+
+def test_worst_case_notes_say_where_the_rss_band_stops_short_of_the_units():
+    # found by a review: a drive margin's RSS band ended at 2.44 against the limit 2 while
+    # the Monte Carlo's 0.1 % point was 2.12. A linear metric of normal inputs has its
+    # 3-sigma band at 3 / 3.09 of the 0.1 % point's distance (scipy.stats.norm.ppf(0.999) =
+    # 3.09), so a band at under 0.8 of it is the metric's curvature, not sampling
+    from scipy.stats import norm
+
+    from tolerance import report
+    assert 3.0 / norm.ppf(0.999) > report.SHORT_BAND
+    m = {"nominal": 4.0, "eva_min": 1.3, "eva_max": 12.0, "rss_low": 3.0, "rss_high": 5.0,
+         "mc_p001": 2.5, "mc_p999": 5.2, "mc_min": 2.0, "mc_max": 5.5}
+    data = {"metrics": {"d": m}, "criteria": [{"metric": "d", "min": 2.0, "max": None}]}
+    [note] = report.worstcase_notes(data)
+    assert note.startswith("The RSS band of d (lowest) stops well short of the Monte Carlo's")
+    # 1.3 of 1.5 (0.87): no note; the unlimited side is not judged; nor an unlimited metric
+    assert report.worstcase_notes({**data, "metrics": {"d": dict(m, rss_low=2.7)}}) == []
+    assert report.worstcase_notes({**data, "criteria": [
+        {"metric": "d", "min": None, "max": 9.0}]}) == []
+    assert report.worstcase_notes({"metrics": {"d": m}}) == []
+    both = {**data, "criteria": [{"metric": "d", "min": 2.0, "max": 5.1}],
+            "metrics": {"d": dict(m, mc_p999=8.0)}}
+    assert "d (lowest), d (highest)" in report.worstcase_notes(both)[0]
     assert report.format_value(float("nan"), "A") == "-" == report.format_value(None, "A")
 
 

@@ -114,8 +114,16 @@ def test_prcc_is_undefined_where_one_input_gives_the_output_s_ranks():
     # the tables' "-" is explained, naming the input that carries the metric
     from tolerance.sensitivity import undefined_prcc_note
     note = undefined_prcc_note(table.to_dict("records"))
-    assert note.startswith("PRCC reads '-' for the other inputs of y (carried by x0)")
+    assert note.startswith("PRCC reads '-' for the other inputs of y (carried by x0): that "
+                           "input alone gives the metric's ranks exactly, so the others'")
     assert undefined_prcc_note(rank_sensitivity(x, y2).to_dict("records")) is None
+    # the example goes by the input (found by a review: a coil's peak voltage, carried by
+    # the supply, was explained by a junction following the ambient)
+    named = table.to_dict("records")
+    for r in named:
+        r["input"] = {"x0": "supply.voltage"}.get(r["input"], r["input"])
+    note = undefined_prcc_note(named)
+    assert "(a voltage the supply sets alone" in note and "ambient" not in note
 
 
 def test_srrc_squared_matches_variance_shares_of_linear_model():

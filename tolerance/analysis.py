@@ -25,6 +25,9 @@ SENSITIVITY_ROWS = 200_000
 #: (counted rates and percentiles always use every sample; this keeps memory flat)
 INSIGHT_ROWS = 1_000_000
 
+#: metrics that are 0/1 flags: the worst-case optimizer does not search them (no slope)
+FLAG_METRICS = frozenset({"thermal_runaway"})
+
 
 def model_for(study: Study):
     """The stage as a batch model: dict of parameter arrays -> dict of metric arrays.
@@ -326,15 +329,28 @@ def study_worst_case(study: Study, samples: int | None, seed: int | None,
     bounds = bounds_for(study)
     # the optimizer (the costly part: its searches run in lockstep, but each start's L-BFGS-B
     # steps are sequential) searches the metrics the design is judged on: the stage's and the
-    # study's own criteria; ratings get EVA and RSS like every metric
-    # (a rating whose limit the study's [limits] table changed is the study's criterion too)
+    # study's own criteria both ways (a rating whose limit the study's [limits] table changed
+    # is the study's criterion too), the ratings on their limited side (found by a review:
+    # a junction temperature whose hottest unit has a gain between the corners, the stage
+    # at its maximum power transfer, read "within" from the corners alone); a 0/1 flag has
+    # no slope to follow, and its corners and units are its worst case
     defaults = {c.metric: (c.minimum, c.maximum) for c in study.stage.criteria}
     limited = list(dict.fromkeys(
         c.metric for c in study.criteria
         if c.source != "rating" or defaults.get(c.metric) != (c.minimum, c.maximum)))
-    table = worstcase.worst_case_table(model_for(study), bounds, list(study.stage.metrics),
-                                       mc_extremes=mc, seed=seed, optimize_metrics=limited,
-                                       starts=3, maxiter=60)
+    senses: dict[str, tuple[str, ...]] = {}
+    for c in study.criteria:
+        if c.metric in limited or c.metric in FLAG_METRICS:
+            continue
+        senses[c.metric] = tuple(dict.fromkeys(
+            senses.get(c.metric, ()) + (("min",) if c.minimum is not None else ())
+            + (("max",) if c.maximum is not None else ())))
+    searched = limited + list(senses)
+    # a metric whose values name a part (hot_spot) has no worst case
+    metrics = [m for m, info in study.stage.metrics.items() if not info.index]
+    table = worstcase.worst_case_table(model_for(study), bounds, metrics,
+                                       mc_extremes=mc, seed=seed, optimize_metrics=searched,
+                                       optimize_senses=senses, starts=3, maxiter=60)
     evaluations = table.pop("evaluations")
     # Monte Carlo units beyond the ranges searched: normal and lognormal spreads are not cut
     # at their tolerance, so 0.27 % of such a parameter's draws lie outside its 3-sigma box
@@ -368,7 +384,8 @@ def study_worst_case(study: Study, samples: int | None, seed: int | None,
         "units": {m: i.unit for m, i in study.stage.metrics.items()},
         "metrics": table,
         "evaluations": int(evaluations) + samples,
-        "optimized_metrics": limited,
+        "optimized_metrics": searched,
+        "optimized_senses": {m: list(senses.get(m, ("min", "max"))) for m in searched},
         "notes": _worst_case_notes(study, bounds),
         "criteria": [{"name": c.name, "metric": c.metric, "min": c.minimum, "max": c.maximum}
                      for c in study.criteria],

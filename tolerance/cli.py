@@ -90,11 +90,16 @@ def _fraction(text: str) -> float:
 def _sobol_rows(text: str) -> int:
     from tolerance.sensitivity import MAX_SOBOL_N, MIN_SOBOL_N
 
-    n = _positive_int(text)
-    if n & (n - 1) or n < MIN_SOBOL_N or n > MAX_SOBOL_N:
+    try:
+        n = int(text.replace("_", ""))
+    except ValueError:
+        n = None
+    # found by a review: 0 and -64 were told "at least 1", not the range that holds
+    if n is None or n < 1 or n & (n - 1) or n < MIN_SOBOL_N or n > MAX_SOBOL_N:
+        got = f"{n:,}" if n is not None else repr(text)
         raise argparse.ArgumentTypeError(
             f"expected a power of two from {MIN_SOBOL_N} to {MAX_SOBOL_N:,} (e.g. 1024), "
-            f"got {n:,}")
+            f"got {got}")
     return n
 
 

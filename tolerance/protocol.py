@@ -122,6 +122,8 @@ class MetricInfo:
 
     unit: str
     description: str
+    #: the values name something (a part's index), not a quantity: no worst case or band
+    index: bool = False
 
 
 @dataclass(frozen=True)

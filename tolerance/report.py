@@ -606,7 +606,7 @@ def worstcase_notes(data: dict) -> list[str]:
     # a beyond extreme is an inner one when the unit that gave it lies inside the box
     # searched (as every unit does without normal or lognormal spreads); an older file
     # without the flags puts it down to the units outside when there are any
-    inner, drawn_out = [], []
+    inner, unsearched, drawn_out = [], [], []
     known = True  # whether the file says where each extreme's unit lies
     for name, m in metrics.items():
         if not isinstance(m, dict):
@@ -615,8 +615,15 @@ def worstcase_notes(data: dict) -> list[str]:
         if not sides:
             continue
         known &= all(f"mc_{side}_inside" in m for side in sides)
-        inside = [m.get(f"mc_{side}_inside", not outside) for side in sides]
-        (inner if any(inside) else drawn_out).append(name)
+        inside = [side for side in sides if m.get(f"mc_{side}_inside", not outside)]
+        if not inside:
+            drawn_out.append(name)
+            continue
+        # found by a review: the note said "the search missed" of sides never searched
+        # (a stress's lowest value), and not which side
+        said = f"{name} ({' and '.join(_SIDE_WORDS[side] for side in inside)})"
+        searched = [side for side in inside if m.get(f"opt_{side}") is not None]
+        (inner if searched else unsearched).append(said)
     if drawn_out:
         notes.append(
             f"The Monte Carlo samples reach beyond the worst-case extremes for "
@@ -633,6 +640,13 @@ def worstcase_notes(data: dict) -> list[str]:
             "the box (a metric that turns around within a parameter's range, e.g. a derating "
             "that starts at 25 degC) that the corners cannot reach and the search missed; "
             "'worst case within' counts it.")
+    if unsearched:
+        notes.append(
+            f"The Monte Carlo samples reach beyond the corners for {', '.join(unsearched)} "
+            "with a unit inside the ranges searched: an extreme inside the box that the "
+            "corners cannot reach, on a side the optimizer does not search (it searches the "
+            "limited metrics, a rating on its limited side only); 'worst case within' counts "
+            "it.")
     endless = [name for name, m in metrics.items() if isinstance(m, dict) and any(
         math.isinf(v) for v in _extremes(*(m.get(k) for k in (
             "eva_min", "eva_max", "opt_min", "opt_max", "mc_min", "mc_max"))))]
@@ -646,12 +660,52 @@ def worstcase_notes(data: dict) -> list[str]:
     below = [name for name, m in metrics.items() if isinstance(m, dict)
              and _below_every_value(m)]
     if below:
+        # found by a review: the note put every case down to leakage, where most were a
+        # gain's 1/h_FE over its wide, uneven range
         notes.append(
             f"The RSS or linear band of {', '.join(below)} reaches below zero, where no "
             "corner and no Monte Carlo unit lies: the metric is far from linear over the "
-            "tolerances (leakage grows exponentially with temperature), so its band is no "
-            "estimate there; read the EVA and Monte Carlo columns.")
+            "tolerances (a base current or stress that goes as 1/h_FE over a gain's wide, "
+            "uneven range; leakage, exponential in temperature), so its band is no estimate "
+            "there; read the EVA and Monte Carlo columns.")
+    short = _short_bands(data)
+    if short:
+        notes.append(
+            f"The RSS band of {', '.join(short)} stops well short of the Monte Carlo's 0.1 % "
+            "or 99.9 % point on the limited side: the metric is far from linear there, so "
+            "the band understates that side; read the EVA, optimizer and Monte Carlo "
+            "columns.")
     return notes
+
+
+_SIDE_WORDS = {"min": "lowest", "max": "highest"}
+
+#: the share of the Monte Carlo 0.1 % (99.9 %) point's distance from nominal below which an
+#: RSS band counts as short: a linear metric of normal inputs has its 3-sigma band at 3 /
+#: 3.09 = 0.97 of it, of uniform inputs beyond it (common practice, no source)
+SHORT_BAND = 0.8
+
+
+def _short_bands(data: dict) -> list[str]:
+    """Limited metrics (with the side) whose RSS band ends nearer the nominal than
+    :data:`SHORT_BAND` times the Monte Carlo's 0.1 % or 99.9 % point on a limited side."""
+    out = []
+    for c in data.get("criteria") or []:
+        m = (data.get("metrics") or {}).get(c["metric"])
+        if not isinstance(m, dict):
+            continue
+        nominal = m.get("nominal")
+        for side, band, point in (("min", "rss_low", "mc_p001"), ("max", "rss_high", "mc_p999")):
+            if c.get(side) is None:
+                continue
+            values = _extremes(nominal, m.get(band), m.get(point))
+            if len(values) < 3 or any(math.isinf(v) for v in values):
+                continue
+            reach, spread = abs(m[band] - nominal), abs(m[point] - nominal)
+            said = f"{c['metric']} ({_SIDE_WORDS[side]})"
+            if spread > 0 and reach < SHORT_BAND * spread and said not in out:
+                out.append(said)
+    return out
 
 
 def _below_every_value(m: dict) -> bool:
@@ -701,8 +755,8 @@ WORST_CASE_METHODS = (
     "and the "
     "parameters as independent, so for a metric exponential in its inputs (leakage, off "
     "current) the band can reach values the circuit cannot (a negative current). Optimizer: "
-    "bounded searches from several starts for the limited metrics, which finds an extreme "
-    "inside the ranges that no corner shows. Monte Carlo: the extremes of the samples drawn, "
+    "bounded searches from several starts for the limited metrics (a rating on its limited "
+    "side), which finds an extreme inside the ranges that no corner shows. Monte Carlo: the extremes of the samples drawn, "
     "which can lie beyond the ranges searched. 'worst case within' compares the EVA, optimizer "
     "and Monte Carlo extremes with the metric's limits; it reads 'unknown' where corners did "
     "not solve.")
@@ -766,23 +820,24 @@ def whatif_tables(data: dict) -> list[Table]:
 
 def sensitivity_tables(data: dict, top: int = 6) -> list[Table]:
     """One ranking per limited metric (all metrics for a file without that list): the
-    ``top`` inputs by the size of their Spearman coefficient, with SRRC, PRCC and the Sobol
-    first and total indices."""
+    ``top`` inputs by their share of the metric's variance, the larger of the squared
+    Spearman coefficient and the Sobol total index (:func:`_variance_share`), with SRRC,
+    PRCC and the Sobol first and total indices."""
     rank = data["rank"]
     order = data.get("limited") or list(dict.fromkeys(r["metric"] for r in rank))
     sobol = data.get("sobol") or {}
 
     def cell(v):
-        return f"{v:.3f}" if _finite(v) else "-"
+        # + 0.0 after rounding: "0.000", not "-0.000" (found by a review)
+        return f"{round(v, 3) + 0.0:.3f}" if _finite(v) else "-"
 
     tables = []
     for metric in order:
+        sob = sobol.get(metric) or {}
         rows = sorted((r for r in rank if r["metric"] == metric),
-                      key=lambda r: -abs(r["spearman"]) if isinstance(r["spearman"], (int, float))
-                      and math.isfinite(r["spearman"]) else 0.0)[:top]
+                      key=lambda r: -_variance_share(r, sob.get(r["input"]) or {}))[:top]
         if not rows:
             continue
-        sob = sobol.get(metric) or {}
         # an index with its bootstrap interval: on a few hundred rows a total index of 1.06
         # read as impossible where its interval, 0.39 .. 2.47, says it is only noise
         spread = any(_finite((sob.get(r["input"]) or {}).get(f"{k}_low"))
@@ -801,13 +856,28 @@ def _finite(v) -> bool:
     return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
 
 
+def _variance_share(rank_row: dict, sobol_row: dict) -> float:
+    """An input's share of a metric's variance for ordering a ranking: the larger of its
+    squared Spearman coefficient (a monotone input's share: rho^2 = S_1 for a linear
+    additive model, Saltelli et al., Global Sensitivity Analysis: The Primer, 2008, ch. 1)
+    and its Sobol total index, which also sees an input whose effect changes sign (found by
+    a review: an ambient temperature of total index 0.043 and Spearman -0.02 was left out
+    for inputs of 0.0003); 0 where neither is known."""
+    rho = rank_row.get("spearman")
+    shares = [rho * rho] if _finite(rho) else []
+    if _finite(sobol_row.get("total")):
+        shares.append(sobol_row["total"])
+    return max(shares, default=0.0)
+
+
 def _index_cell(row: dict, kind: str, cell) -> str:
-    """A Sobol index, with its bootstrap interval where the file has one."""
+    """A Sobol index, with its bootstrap interval where the file has one, all three to the
+    same three decimals (found by a review: "0.008 (0.01 .. 0.01)" read as an index
+    outside its interval)."""
     lo, hi = row.get(f"{kind}_low"), row.get(f"{kind}_high")
     if not (_finite(row.get(kind)) and _finite(lo) and _finite(hi)):
         return cell(row.get(kind))
-    lo, hi = round(lo, 2) + 0.0, round(hi, 2) + 0.0  # + 0.0: "0.00", not "-0.00"
-    return f"{cell(row[kind])} ({lo:.2f} .. {hi:.2f})"
+    return f"{cell(row[kind])} ({cell(lo)} .. {cell(hi)})"
 
 
 def choose_table(data: dict) -> Table:
@@ -925,8 +995,10 @@ def _sensitivity_blocks(data: dict) -> list[Block]:
     out = [Block("p", f"Rank coefficients from {format_number(data.get('samples'))} samples; "
                       f"Sobol indices from {format_number(data.get('sobol_n'))} rows "
                       f"({format_number(data.get('sobol_evaluations'))} evaluations). The six "
-                      "inputs with the largest Spearman coefficient per metric; every "
-                      "input's figures are in sensitivity.json.")]
+                      "inputs with the largest share of each metric's variance (the larger of "
+                      "the squared Spearman coefficient and the Sobol total index, which also "
+                      "sees an input whose effect changes sign); every input's figures are in "
+                      "sensitivity.json.")]
     out += [Block("table", table=t) for t in sensitivity_tables(data)]
     out += [Block("note", str(n)) for n in data.get("notes") or []]
     return out

@@ -172,10 +172,25 @@ def undefined_prcc_note(records, metrics=None) -> str | None:
     names = [f"{m} (carried by {carried[m]})" for m in sorted(blank) if m in carried]
     if not names:
         return None
+    # found by a review: the example (a junction that follows the ambient) was given for a
+    # coil's peak voltage, which follows the supply; the example now goes by the input
+    examples = {name: _carried_example(carried[name]) for name in sorted(blank)
+                if name in carried}
+    said = sorted(set(e for e in examples.values() if e))
     return (f"PRCC reads '-' for the other inputs of {', '.join(names)}: that input alone "
-            "gives the metric's ranks exactly (a junction whose own heating is millikelvin "
-            "follows the ambient), so the others' partial rank correlations are 0 / 0; "
-            "their Spearman and Sobol figures say how little they move it.")
+            "gives the metric's ranks exactly"
+            + (f" ({'; '.join(said)})" if said else "")
+            + ", so the others' partial rank correlations are 0 / 0; their Spearman and "
+            "Sobol figures say how little they move it.")
+
+
+def _carried_example(name: str | None) -> str:
+    """An example of why input ``name`` alone can give a metric's ranks, or ""."""
+    if name == "ambient.temperature":
+        return "a junction whose own heating is millikelvin follows the ambient"
+    if name == "supply.voltage":
+        return "a voltage the supply sets alone, such as a clamped coil's peak"
+    return ""
 
 
 def _rank_measures(x: np.ndarray, y: np.ndarray, threads: int = 1

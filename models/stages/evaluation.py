@@ -321,7 +321,7 @@ def _add_metrics_and_ratings(stage, setup: ThermalSetup) -> None:
                                               description="load within its power rating at "
                                                           "the PWM cycle's peak")
     names = ", ".join(f"{k}={p}" for k, p in enumerate(hot_spot_parts(stage)))
-    m["hot_spot"] = MetricInfo("1", f"part closest to its limit ({names})")
+    m["hot_spot"] = MetricInfo("1", f"part closest to its limit ({names})", index=True)
     m["hot_spot_margin"] = MetricInfo("1", "1 minus the largest stress of any part (junction "
                                            "rise over allowed rise, power over derated "
                                            "rating); below 0 something is overstressed")
