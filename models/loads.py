@@ -592,6 +592,15 @@ class LoadSpec(abc.ABC):
         self.parameters = tuple(parameters)
         self.metrics: dict[str, MetricInfo] = dict(type(self).METRICS)
         self.criteria: list[Criterion] = []
+        #: the library part the load was taken from (``[load] part``), or None
+        self.part: str | None = None
+        #: the load's fixed figures for the report: ``{"figure", "value", "from"}`` rows
+        #: (:func:`read_load`; the sampled ones are in the parameter table)
+        self.figures: list[dict] = []
+
+    def assumed(self) -> dict:
+        """What the report's "Load assumed" table shows: kind, part and fixed figures."""
+        return {"kind": self.kind, "part": self.part, "figures": list(self.figures)}
 
     def __repr__(self) -> str:
         return f"{type(self).__name__}({self.parameters})"
@@ -601,6 +610,10 @@ class LoadSpec(abc.ABC):
         arrays = np.broadcast_arrays(_arr(temperature), _arr(supply_voltage),
                                      *[_arr(samples[name]) for name in names])
         return [np.array(a, dtype=float) for a in arrays]
+
+    def fixed_figures(self) -> list[tuple]:
+        """The load's fixed settings as (key, value, unit) (unit None: shown as it is)."""
+        return []
 
     @abc.abstractmethod
     def at(self, samples: dict[str, np.ndarray], temperature, supply_voltage) -> LoadState:
@@ -643,6 +656,12 @@ class ResistorLoad(LoadSpec):
                                        source="rating",
                                        description="load within its power rating")]
 
+    def fixed_figures(self):
+        out = [("tempco", self.tempco, "1/K")]
+        if self.power_rating is not None:
+            out.append(("power_rating", self.power_rating, "W"))
+        return out + [("thermal_time_constant", self.thermal_time_constant, "s")]
+
     def at(self, samples, temperature, supply_voltage):
         t, vs, r = self._inputs(samples, temperature, supply_voltage, ["load.resistance"])
         factor = 1.0 + self.tempco * (t - ROOM)
@@ -666,6 +685,11 @@ class LampLoad(LoadSpec):
         self.exponent = exponent
         self.thermal_time_constant = thermal_time_constant
         self.cold_tempco = cold_tempco
+
+    def fixed_figures(self):
+        return [("exponent", self.exponent, "1"),
+                ("thermal_time_constant", self.thermal_time_constant, "s"),
+                ("cold_tempco", self.cold_tempco, "1/K")]
 
     def at(self, samples, temperature, supply_voltage):
         t, vs, vr, pr, kc = self._inputs(
@@ -698,6 +722,13 @@ class CoilLoad(LoadSpec):
         self.criteria = [Criterion("coil_operates", "operate_margin", minimum=1.0,
                                    source="stage",
                                    description="coil pulls in with the hot coil")]
+
+    def fixed_figures(self):
+        out = [("coil_temperature_rise", self.temperature_rise, "K"),
+               ("clamp", self.clamp, None)]
+        if self.clamp != "none":
+            out.append(("clamp_forward_voltage", self.clamp_forward_voltage, "V"))
+        return out
 
     def at(self, samples, temperature, supply_voltage):
         names = ["load.resistance", "load.inductance", "load.must_operate_voltage"]
@@ -738,6 +769,13 @@ class LedLoad(LoadSpec):
                                    minimum=LED_LIT_FRACTION * test_current, source="stage",
                                    description="the string lights: at least a tenth of "
                                                "the LED's test current")]
+
+    def fixed_figures(self):
+        # one forward voltage is drawn per string: its LEDs move together (the wider
+        # current spread, the safe side; README, Loads)
+        return [("count", self.count, None), ("test_current", self.test_current, "A"),
+                ("ideality", self.ideality, "1"),
+                ("forward_voltage_tempco", self.forward_voltage_tempco, "V/K")]
 
     def at(self, samples, temperature, supply_voltage):
         t, vs, vf, rs = self._inputs(samples, temperature, supply_voltage,
@@ -816,7 +854,31 @@ def read_load(reader: Reader) -> LoadSpec:
       typical class value, from memory], forward_voltage_tempco [V/K per LED, default
       -2 mV/K, from memory], series_resistance*.
     """
+    own = set(reader.keys()) - {"part"}  # the study's own keys, before a part's are added
+    part = reader.string("part") if reader.has("part") else None
     reader = _with_library_part(reader)
+    spec = _read_kind(reader)
+    # every fixed figure the load was built with and where it came from (found by a review:
+    # an LED string's count, ideality, test current and temperature coefficient were
+    # stated nowhere in the report, while the transistors had their own table)
+    from tolerance.units import format_quantity
+
+    library = load_library().get(part, {}) if part else {}
+    spec.part = part
+    for key, value, unit in spec.fixed_figures():
+        if isinstance(value, str) or unit is None:
+            text = str(value)
+        elif unit == "V/K":
+            text = format_quantity(value, "V") + "/K"
+        else:
+            text = format_quantity(value, unit)
+        origin = ("study" if key in own else f"part {part}" if key in library else "default")
+        spec.figures.append({"figure": key, "value": text, "from": origin})
+    return spec
+
+
+def _read_kind(reader: Reader) -> LoadSpec:
+    """The load of ``read_load`` from its merged table."""
     kind = reader.string("kind", choices=KINDS)
     if kind == "resistor":
         names = [_param(reader, "resistance", "ohm", "load resistance at 25 degC")]

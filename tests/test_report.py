@@ -243,6 +243,38 @@ def test_the_caution_and_the_studys_notes_stand_by_the_verdict(tmp_path):
         assert text in charge
 
 
+def test_the_report_states_the_loads_fixed_figures(tmp_path, capsys):
+    # found by a review: an LED string's count, ideality, test current and temperature
+    # coefficient were stated nowhere (the transistors have their table), nor that one
+    # forward voltage is drawn for the whole string (common practice, no source: a review
+    # checks what was assumed)
+    studies = Path(__file__).resolve().parents[1] / "studies"
+    study = load_study(studies / "shelf_led_sziklai.toml")
+    load = study.stage.load.assumed()
+    assert load["kind"] == "led" and load["part"] == "led_white_5mm"
+    assert load["figures"] == [
+        {"figure": "count", "value": "5", "from": "study"},
+        {"figure": "test_current", "value": "20 mA", "from": "part led_white_5mm"},
+        {"figure": "ideality", "value": "2.5", "from": "part led_white_5mm"},
+        {"figure": "forward_voltage_tempco", "value": "-2.5 mV/K",
+         "from": "part led_white_5mm"}]
+    res = run(study, samples=200, out=tmp_path / "r")
+    assert res.summary["load"] == load
+    report.write_reports(res.folder)
+    md = (res.folder / "report.md").read_text(encoding="utf-8")
+    assert "## Load assumed" in md and "| ideality | 2.5 | part led_white_5mm |" in md
+    assert "typical class values from memory" in md and "its LEDs move together" in md
+    # a figure no table gave is the tool's default; check prints the same table
+    valve = load_study(studies / "irrigation_valve_single.toml").stage.load.assumed()
+    assert {"figure": "clamp_forward_voltage", "value": "800 mV", "from": "default"} \
+        in valve["figures"]
+    from tolerance.cli import main
+    assert main(["check", str(studies / "irrigation_valve_single.toml")]) == 0
+    out = capsys.readouterr().out
+    assert "coil load (part valve_coil_24v): fixed figures" in out
+    assert re.search(r"coil_temperature_rise +30 K +part valve_coil_24v", out)
+
+
 def test_sections_caution_and_stamp(folder):
     summary = json.loads((folder / "summary.json").read_text())
     html_text = (folder / "report.html").read_text(encoding="utf-8")

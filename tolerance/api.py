@@ -563,6 +563,9 @@ def _extra(study: Study, column, insights: bool, threads: int = 1,
     assumed = getattr(study.stage, "assumptions", None)
     if assumed is not None:
         extra["devices"] = assumed()
+    load = getattr(getattr(study.stage, "load", None), "assumed", None)
+    if load is not None:
+        extra["load"] = load()
     return extra
 
 

@@ -562,6 +562,11 @@ def cmd_check(args) -> int:
             source = f"{c.source}, limit from [limits]"
         rows.append((c.name, c.metric, c.limit_text(lambda x, u=unit: _fmt(x, u)), source))
     w("\n" + _table(("criterion", "metric", "limit", "from"), rows, "<<<<"))
+    load = study.stage.load.assumed()
+    if load["figures"]:
+        rows = [(f["figure"], f["value"], f["from"]) for f in load["figures"]]
+        w(f"\n{load['kind']} load" + (f" (part {load['part']})" if load["part"] else "")
+          + ": fixed figures\n" + _table(("figure", "value", "from"), rows, "<><"))
     rows = [(name, "degC" if m.unit == "temperature" else m.unit, m.description)
             for name, m in study.stage.metrics.items()]
     w("\n" + _table(("metric", "unit", "what it is"), rows, "<<<"))

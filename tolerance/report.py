@@ -1591,6 +1591,31 @@ CHARGE_NOTE = (
     "transition_frequency, storage_time or output_capacitance in [parts.Qn].")
 
 
+def load_note(load: dict) -> str:
+    """What the "Load assumed" table holds, for the load of a run summary (``load``)."""
+    part = load.get("part")
+    kind = load.get("kind", "load")
+    text = (f"The {kind} load's fixed figures, each with where it came from: the study's own "
+            "table, " + (f"the library part {part} (typical class values from memory: "
+                         "check them against the chosen part's data), " if part else "")
+            + "or the tool's default. The sampled ones are in the Parameters table.")
+    if kind == "led":
+        text += (" One forward voltage is drawn per unit for the whole string: its LEDs move "
+                 "together, the wider spread of the string's current (the safe side).")
+    return text
+
+
+def load_table(load) -> Table | None:
+    """The load's fixed figures of a run summary (``load``); None without them."""
+    if not isinstance(load, dict) or not isinstance(load.get("figures"), list):
+        return None
+    rows = [[str(f.get("figure", "-")), str(f.get("value", "-")), str(f.get("from", "-"))]
+            for f in load["figures"] if isinstance(f, dict)]
+    if not rows:
+        return None
+    return Table(["figure", "value", "from"], rows, "load-table", "Load assumed")
+
+
 def charge_table(devices) -> Table | None:
     """The charge-storage figures a run assumed (summary ``devices``); None without them."""
     if not isinstance(devices, list):
@@ -1695,6 +1720,11 @@ def _summary_blocks(summary: dict) -> list[Block]:
         if charges is not None:
             doc.append(Block("p", CHARGE_NOTE))
             doc.append(Block("table", table=charges))
+    load = load_table(summary.get("load"))
+    if load is not None:
+        doc.append(Block("h2", "Load assumed"))
+        doc.append(Block("p", load_note(summary["load"])))
+        doc.append(Block("table", table=load))
 
     if summary.get("capability"):
         doc.append(Block("h2", "Capability"))
