@@ -364,7 +364,8 @@ class Datasheet:
                                           f"must lie between vbe_on_min "
                                           f"({self.vbe_on_min:g} V) and vbe_on_max "
                                           f"({self.vbe_on_max:g} V)", related=("vbe_on",))
-            if self.vbe_on_max - self.vbe_on_min > JUNCTION_SPREAD_MAX:
+            # (an allowance for rounding: 0.8 - 0.5 is 0.30000000000000004)
+            if self.vbe_on_max - self.vbe_on_min > JUNCTION_SPREAD_MAX + 1e-9:
                 raise DatasheetError("vbe_on_max", f"{self.vbe_on_max - self.vbe_on_min:.3g} V "
                                                    f"between vbe_on_min and vbe_on_max is "
                                                    f"wider than one junction type spreads "
@@ -1151,7 +1152,7 @@ def fit_datasheet(ds: Datasheet, max_sweeps: int = 40) -> FittedDevice:
         # (with a V_BE(on) spread, the highest junction's: FittedDevice.intrinsic_vbe_sat)
         intrinsic = ds.vbe_sat_max - state["base_resistance"] * ds.vce_sat_ib
         if ds.vbe_sat_typ <= intrinsic:
-            whose = (" (the unit at vbe_on_max)" if ds.junction_headroom > 0 else "")
+            whose = (" for the unit at vbe_on_max" if ds.junction_headroom > 0 else "")
             raise DatasheetError("vbe_sat_typ", f"{ds.vbe_sat_typ:g} V is not above the "
                                                 f"model's V_BE with no base resistance"
                                                 f"{whose} ({intrinsic:.3g} V at the V_CE(sat) "

@@ -814,6 +814,9 @@ def test_worst_case_searches_a_ratings_limited_side(write_study):
     assert at["ambient.temperature"] == pytest.approx(313.15)
     assert tj["opt_max"] == pytest.approx(313.15 + theta * power, abs=0.05)
     assert tj["opt_max"] > 148 + 273.15 > tj["eva_max"]  # the corners miss it
+    # a 0/1 flag is not searched (no slope): its corners and units are its worst case
+    assert "thermal_runaway" not in result["optimized_metrics"]
+    assert result["metrics"]["thermal_runaway"]["opt_max"] is None
     limits = [c for c in result["criteria"] if c["metric"] == "tj_output"]
     assert worst_case_within(tj, limits) == "no"
 

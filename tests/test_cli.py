@@ -206,6 +206,10 @@ def test_bad_option_values_exit_2(tmp_path, capsys, write_study):
                        (["report", str(fixed)], "is not a folder"),
                        (["run", ""], "the study argument is empty")):
         assert main(argv) == 2 and told in capsys.readouterr().err
+    # the range's ends and a number with underscores are taken
+    from tolerance.cli import _sobol_rows
+    assert _sobol_rows("262144") == 262144 and _sobol_rows("64") == 64
+    assert _sobol_rows("1_024") == 1024
     # found by a review: 0 and -64 were told "expected at least 1", not the range that holds
     for argv, told in ((["sensitivity", "--sobol-samples", "0"],
                         "--sobol-samples: expected a power of two from 64 to 262,144 (e.g. "

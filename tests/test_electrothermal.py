@@ -745,6 +745,13 @@ def test_a_drive_current_limit_is_told_the_base_voltage_is_the_datasheet_maximum
                                           1)).notes())
     assert not any("V_BE(sat) maximum" in n for n in load_text("a.toml", text=_demo_with())
                    .notes())
+    # with a V_BE(on) spread only the highest junction's unit meets the maximum (found by a
+    # mutation round: the note still said every unit)
+    junctions = capped.replace('device = "medium_power_npn"', 'device = "medium_power_npn"\n'
+                               'vbe_on_min = "0.66 V"\nvbe_on_max = "0.8 V"')
+    [note] = [n for n in load_text("j.toml", text=junctions).notes() if "V_BE(sat) max" in n]
+    assert "(with a V_BE(on) spread the unit at vbe_on_max meets it" in note
+    assert "V_BE(on) spread" not in notes[0]
     # the datasheet's typical V_BE(sat) spreads the units: a parameter Q1.vbe_sat from its
     # median to the maximum at 3 sigma, and the note is no longer needed
     spread = load_text("typ.toml", text=capped.replace(

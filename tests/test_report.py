@@ -621,6 +621,20 @@ def test_worst_case_within_compares_the_worst_extremes_with_every_limit():
     assert len(notes) == 1 and notes[0].startswith(
         "The Monte Carlo samples reach beyond the corners for y (highest) with a unit inside")
     assert "the search missed" not in notes[0] and "does not search" in notes[0]
+    # side by side (found by a mutation round): a lowest side beyond and unsearched and a
+    # highest side beyond and searched go to their own notes; a side drawn outside to the
+    # note on the units outside
+    mixed = dict(m, opt_min=None, opt_max=12.1, mc_min=1.0, mc_max=13.0, mc_min_inside=True,
+                 mc_max_inside=True)
+    notes = report.worstcase_notes({"metrics": {"y": mixed}, "monte_carlo_outside": 0,
+                                    "monte_carlo_samples": 2000})
+    assert len(notes) == 2
+    assert "for y (highest) with a unit" in notes[0] and "the search missed" in notes[0]
+    assert "corners for y (lowest) with a unit" in notes[1] and "does not search" in notes[1]
+    notes = report.worstcase_notes({"metrics": {"y": dict(mixed, mc_max_inside=False)},
+                                    "monte_carlo_outside": 5, "monte_carlo_samples": 2000})
+    assert len(notes) == 2 and "5 of 2000 Monte Carlo samples drew" in notes[0]
+    assert "corners for y (lowest) with a unit" in notes[1]
     notes = report.worstcase_notes({"metrics": {"y": dict(inner, mc_min_inside=False)},
                                     "monte_carlo_outside": 44, "monte_carlo_samples": 2000})
     assert len(notes) == 1 and "44 of 2000 Monte Carlo samples drew" in notes[0]
@@ -676,8 +690,12 @@ def test_worst_case_notes_say_where_the_rss_band_stops_short_of_the_units():
     data = {"metrics": {"d": m}, "criteria": [{"metric": "d", "min": 2.0, "max": None}]}
     [note] = report.worstcase_notes(data)
     assert note.startswith("The RSS band of d (lowest) stops well short of the Monte Carlo's")
-    # 1.3 of 1.5 (0.87): no note; the unlimited side is not judged; nor an unlimited metric
+    # 1.125 of 1.5 (0.75) is still short; 1.3 of 1.5 (0.87) not; the unlimited side is not
+    # judged; nor an unlimited metric; nor an infinite Monte Carlo point
+    assert len(report.worstcase_notes({**data, "metrics": {"d": dict(m, rss_low=2.875)}})) == 1
     assert report.worstcase_notes({**data, "metrics": {"d": dict(m, rss_low=2.7)}}) == []
+    assert report.worstcase_notes({**data, "metrics": {"d": dict(m, mc_p001=float("-inf"))},
+                                   }) == []
     assert report.worstcase_notes({**data, "criteria": [
         {"metric": "d", "min": None, "max": 9.0}]}) == []
     assert report.worstcase_notes({"metrics": {"d": m}}) == []

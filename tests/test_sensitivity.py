@@ -124,6 +124,18 @@ def test_prcc_is_undefined_where_one_input_gives_the_output_s_ranks():
         r["input"] = {"x0": "supply.voltage"}.get(r["input"], r["input"])
     note = undefined_prcc_note(named)
     assert "(a voltage the supply sets alone" in note and "ambient" not in note
+    for r in named:
+        r["input"] = {"supply.voltage": "ambient.temperature"}.get(r["input"], r["input"])
+    assert "(a junction whose own heating is millikelvin follows the ambient)" in \
+        undefined_prcc_note(named)
+    # two metrics carried by the supply: the example once
+    twice = [dict(r, input={"ambient.temperature": "supply.voltage"}.get(r["input"],
+                                                                         r["input"]))
+             for r in named]
+    twice += [dict(r, metric="y2") for r in twice]
+    note = undefined_prcc_note(twice)
+    assert "y (carried by supply.voltage), y2 (carried by supply.voltage)" in note
+    assert note.count("supply sets alone") == 1
 
 
 def test_srrc_squared_matches_variance_shares_of_linear_model():

@@ -1922,7 +1922,7 @@ def test_a_vbe_on_spread_moves_the_turn_on_threshold_by_the_divider(tmp_path):
     d = vbe.distribution
     assert vbe.nominal == pytest.approx(0.72) and d.ppf(0.5) == pytest.approx(0.72, abs=1e-12)
     assert (d.low, d.high) == pytest.approx((0.66, 0.8))
-    assert (d.sigma_low, d.sigma_high) == pytest.approx((0.02, 0.08 / 3))
+    assert (d.sigma_low, d.sigma_high) == pytest.approx((0.02, 0.08 / 3)) and d.sigmas == 3.0
     res = study.stage.dc(nominal(study, 3, Q1__vbe_on=[0.66, 0.72, 0.8]))
     margin = res["off_margin"]
     assert margin[2] - margin[0] == pytest.approx(0.14 * (1 + 103 / 1000), rel=2e-3)
@@ -1939,6 +1939,7 @@ def test_a_vbe_on_spread_moves_the_turn_on_threshold_by_the_divider(tmp_path):
     ('icbo_hot_max = "500 uA"\nicbo_hot_temperature = "125 degC"', "icbo_hot_max"),
     ('vbe_sat_typ = "1.5 V"', "vbe_sat_typ"),
     ('vbe_on_min = "0.65 V"\nvbe_on_max = "0.9 V"', "vbe_on_min"),
+    ('vbe_on_max = "0.9 V"', "vbe_on_max"),  # either key alone is refused as the pair's
 ])
 def test_a_monolithic_pair_takes_no_die_hot_leakage_or_vbe_spread(tmp_path, lines, key):
     # found by a review: a whole part's hot I_CBO fitted one die's doubling while the other

@@ -615,15 +615,21 @@ def worstcase_notes(data: dict) -> list[str]:
         if not sides:
             continue
         known &= all(f"mc_{side}_inside" in m for side in sides)
-        inside = [side for side in sides if m.get(f"mc_{side}_inside", not outside)]
-        if not inside:
+        # side by side (found by a review: the note said "the search missed" of sides
+        # never searched, a stress's lowest value, and not which side)
+        missed, bare, out = [], [], []
+        for side in sides:
+            if not m.get(f"mc_{side}_inside", not outside):
+                out.append(side)
+            elif m.get(f"opt_{side}") is not None:
+                missed.append(side)
+            else:
+                bare.append(side)
+        for group, found in ((inner, missed), (unsearched, bare)):
+            if found:
+                group.append(f"{name} ({' and '.join(_SIDE_WORDS[s] for s in found)})")
+        if out:
             drawn_out.append(name)
-            continue
-        # found by a review: the note said "the search missed" of sides never searched
-        # (a stress's lowest value), and not which side
-        said = f"{name} ({' and '.join(_SIDE_WORDS[side] for side in inside)})"
-        searched = [side for side in inside if m.get(f"opt_{side}") is not None]
-        (inner if searched else unsearched).append(said)
     if drawn_out:
         notes.append(
             f"The Monte Carlo samples reach beyond the worst-case extremes for "

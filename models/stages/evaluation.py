@@ -1340,7 +1340,12 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
                    "from above, but every unit's base-emitter voltage follows the "
                    "datasheet's V_BE(sat) maximum (the fit meets vbe_sat_max with the "
                    "lowest-gain unit: the safe side for saturation), so a unit with a "
-                   "typical V_BE(sat) draws more. The model carries the gap between the two "
+                   "typical V_BE(sat) draws more"
+                   + (" (with a V_BE(on) spread the unit at vbe_on_max meets it, and a lower "
+                      "junction sits below it by its distance)" if any(
+                          getattr(stage.transistors()[n], "vbe_on_parameter", None)
+                          for n in fixed_vbe) else "")
+                   + ". The model carries the gap between the two "
                    "as base resistance, so at a base current I_B it lowers V_BE by the gap "
                    "times I_B over the datasheet's test current, and the drive current rises "
                    "by that over the series resistance (the whole gap, some 5 to 10 % on a "
