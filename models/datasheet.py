@@ -532,10 +532,9 @@ class FittedDevice:
             extra["base_resistance"] = np.maximum(self.template.base_resistance
                                                   - gap / ds.vce_sat_ib, 0.0)
         k_s, k_se = self.junction_factors(vbe_on)
-        if vbe_on is not None:
-            extra["saturation_current"] = self.template.saturation_current * k_s
         return replace(self.template, forward_beta=beta.reshape(np.shape(beta) if hfe.ndim
                                                                  else ()),
+                       saturation_current=self.template.saturation_current * k_s,
                        be_leakage_current=self._leakage(hfe) * k_se, cbo_leakage=icbo, **extra)
 
 

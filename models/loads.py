@@ -45,7 +45,7 @@ import numpy as np
 from tolerance.models.thermal import RESISTOR_TIME_CONSTANT
 from tolerance.protocol import Criterion, MetricInfo
 from tolerance.study import Reader, StudyError
-from tolerance.units import UnitError, parse_quantity
+from tolerance.units import UnitError, format_quantity, parse_quantity
 
 __all__ = [
     "COPPER_TEMPCO",
@@ -861,8 +861,6 @@ def read_load(reader: Reader) -> LoadSpec:
     # every fixed figure the load was built with and where it came from (found by a review:
     # an LED string's count, ideality, test current and temperature coefficient were
     # stated nowhere in the report, while the transistors had their own table)
-    from tolerance.units import format_quantity
-
     library = load_library().get(part, {}) if part else {}
     spec.part = part
     for key, value, unit in spec.fixed_figures():

@@ -95,7 +95,7 @@ def _sobol_rows(text: str) -> int:
     except ValueError:
         n = None
     # found by a review: 0 and -64 were told "at least 1", not the range that holds
-    if n is None or n < 1 or n & (n - 1) or n < MIN_SOBOL_N or n > MAX_SOBOL_N:
+    if n is None or n & (n - 1) or not MIN_SOBOL_N <= n <= MAX_SOBOL_N:
         got = f"{n:,}" if n is not None else repr(text)
         raise argparse.ArgumentTypeError(
             f"expected a power of two from {MIN_SOBOL_N} to {MAX_SOBOL_N:,} (e.g. 1024), "

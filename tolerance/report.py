@@ -762,7 +762,8 @@ WORST_CASE_METHODS = (
     "parameters as independent, so for a metric exponential in its inputs (leakage, off "
     "current) the band can reach values the circuit cannot (a negative current). Optimizer: "
     "bounded searches from several starts for the limited metrics (a rating on its limited "
-    "side), which finds an extreme inside the ranges that no corner shows. Monte Carlo: the extremes of the samples drawn, "
+    "side), which finds an extreme inside the ranges that no corner shows. Monte Carlo: the "
+    "extremes of the samples drawn, "
     "which can lie beyond the ranges searched. 'worst case within' compares the EVA, optimizer "
     "and Monte Carlo extremes with the metric's limits; it reads 'unknown' where corners did "
     "not solve.")

@@ -174,9 +174,8 @@ def undefined_prcc_note(records, metrics=None) -> str | None:
         return None
     # found by a review: the example (a junction that follows the ambient) was given for a
     # coil's peak voltage, which follows the supply; the example now goes by the input
-    examples = {name: _carried_example(carried[name]) for name in sorted(blank)
-                if name in carried}
-    said = sorted(set(e for e in examples.values() if e))
+    said = sorted({CARRIED_EXAMPLES[carried[m]] for m in blank
+                   if carried.get(m) in CARRIED_EXAMPLES})
     return (f"PRCC reads '-' for the other inputs of {', '.join(names)}: that input alone "
             "gives the metric's ranks exactly"
             + (f" ({'; '.join(said)})" if said else "")
@@ -184,13 +183,11 @@ def undefined_prcc_note(records, metrics=None) -> str | None:
             "Sobol figures say how little they move it.")
 
 
-def _carried_example(name: str | None) -> str:
-    """An example of why input ``name`` alone can give a metric's ranks, or ""."""
-    if name == "ambient.temperature":
-        return "a junction whose own heating is millikelvin follows the ambient"
-    if name == "supply.voltage":
-        return "a voltage the supply sets alone, such as a clamped coil's peak"
-    return ""
+#: why an input alone can give a metric's ranks, by input (:func:`undefined_prcc_note`)
+CARRIED_EXAMPLES = {
+    "ambient.temperature": "a junction whose own heating is millikelvin follows the ambient",
+    "supply.voltage": "a voltage the supply sets alone, such as a clamped coil's peak",
+}
 
 
 def _rank_measures(x: np.ndarray, y: np.ndarray, threads: int = 1
