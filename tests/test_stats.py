@@ -772,3 +772,37 @@ def test_paired_difference_interval_holds_its_level(n, probs):
     # correlation term of one end widened that end only, which kept the two-sided
     # coverage within bounds (a mutation test)
     assert below >= 5 and above >= 5
+
+
+def test_paired_sentence_says_when_the_interval_and_the_test_disagree():
+    # a review's what-if: 2,000 units, 3 pass only in the baseline, 11 only pinned. The exact
+    # McNemar test gives p = 0.057 (scipy.stats.binomtest(11, 14, 0.5)) while Newcombe's
+    # interval of the change just excludes zero; the sentence said "no change shown" beside
+    # it. Both methods are kept (the interval holds its level unconditionally, the test is
+    # exact given the discordant units), and the sentence now calls such a case borderline
+    from tolerance.report import paired_sentence
+    from tolerance.stats import paired_difference
+
+    first = np.zeros(2000, bool)
+    second = np.zeros(2000, bool)
+    first[:1500] = second[:1500] = True
+    first[1500:1503] = True
+    second[1600:1611] = True
+    got = paired_difference(first, second)
+    assert got["p_value"] == pytest.approx(stats.binomtest(11, 14, 0.5).pvalue, rel=1e-12)
+    assert got["p_value"] > 0.05 and got["ci_low"] > 0.0
+    text = paired_sentence(got, "the pin", "in the baseline", "pinned")
+    assert "borderline at 5 % significance" in text
+    assert "shows no change while the interval excludes zero" in text
+    assert "no change shown" not in text
+    # where the two agree, the plain words stay
+    clear = paired_difference(first[:1200].repeat(1), first[:1200])
+    assert "no change shown at 5 % significance" in paired_sentence(clear, "x", "a", "b")
+    # 21 against 7 of 5,000 (the test above): both show the change
+    a = np.zeros(5000, bool)
+    b = np.zeros(5000, bool)
+    a[:1221] = True
+    b[:1200] = True
+    b[2000:2007] = True
+    assert "a change at 5 % significance." in paired_sentence(paired_difference(a, b), "x",
+                                                              "a", "b")

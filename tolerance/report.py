@@ -775,8 +775,21 @@ def paired_sentence(change: dict | None, what: str, first: str, second: str) -> 
     if not isinstance(change, dict) or "difference" not in change:
         return None
     p = change.get("p_value")
-    shown = ("a change at 5 % significance" if isinstance(p, (int, float)) and p < 0.05
-             else "no change shown at 5 % significance")
+    low, high = change.get("ci_low"), change.get("ci_high")
+    significant = isinstance(p, (int, float)) and p < 0.05
+    # the interval (Newcombe's, unconditional) and the exact test (conditional on the
+    # discordant units) are different methods and can disagree near 5 %: a review found
+    # "no change shown" beside an interval that excluded zero; such a case is said so
+    excludes = (isinstance(low, (int, float)) and isinstance(high, (int, float))
+                and (low > 0.0 or high < 0.0))
+    if significant and excludes or not significant and not excludes:
+        shown = ("a change at 5 % significance" if significant
+                 else "no change shown at 5 % significance")
+    else:
+        shown = ("borderline at 5 % significance: the exact test "
+                 + ("shows a change while the interval still includes zero" if significant
+                    else "shows no change while the interval excludes zero")
+                 + ", so treat the change as unresolved and run more samples")
     return (f"Unit by unit (the same units in both runs) {what} changes the yield by "
             f"{format_rate(change['difference'])} (95 % interval "
             f"{format_interval(change.get('ci_low'), change.get('ci_high'))}): "
