@@ -501,12 +501,18 @@ def test_worst_case_counts_units_beyond_its_box_and_unsolved_corners(write_study
     assert y["mc_min_inside"] == bool(inside[df["y"].idxmin()])
     if y["mc_max"] > y["eva_max"]:
         assert not y["mc_max_inside"]
+    # every note the console and the report print is in the result (worstcase.json) too,
+    # those read off the table included (a review found "notes": [] beside four in the report)
+    assert result["report_notes"] == worstcase_notes(result)
     # x1 above 2.5 V does not solve: the corners at x1 = 3 have no value, so a limit the
     # solved corners meet is not shown to hold
     unsolved = load_study(write_study(LINEAR.format(x1=SPREAD)
                                       + '[solver]\ndiverge_above = "2.5 V"\n'))
-    y = study_worst_case(unsolved, 500, 1)["metrics"]["y"]
+    dropped = study_worst_case(unsolved, 500, 1)
+    y = dropped["metrics"]["y"]
     assert y["eva_dropped"] == 2  # of the four corners of (x1, x2)
+    # a note read off the table is in the result (worstcase.json) as the console prints it
+    assert any("2 corners did not solve" in n for n in dropped["report_notes"])
     assert worst_case_within(dict(y, mc_min=None, mc_max=None),
                              [{"min": -10.0, "max": 10.0}]) == "unknown"
     assert "2 corners did not solve" in worstcase_notes({"metrics": {"y": y}})[0]
@@ -844,6 +850,8 @@ def test_worst_case_says_it_takes_the_inputs_independent(write_study):
             '    coefficient = 0.5\n'
     result = study_worst_case(load_study(write_study(text)), 100, 1)
     assert any("independent" in n and n.endswith(".") for n in worstcase_notes(result))
+    # worstcase.json's report_notes hold them as the console prints them
+    assert result["report_notes"] == worstcase_notes(result)
 
 
 def test_equal_yields_go_to_the_candidate_with_the_most_room_to_its_limits():

@@ -373,7 +373,7 @@ def study_worst_case(study: Study, samples: int | None, seed: int | None,
         for key, value in row.items():
             if isinstance(value, float) and math.isinf(value):
                 row[key] = "inf" if value > 0 else "-inf"
-    return {
+    result = {
         "study": study.path, "study_hash": study.study_hash, "seed": seed,
         "sampler": res.summary["sampler"],
         "monte_carlo_samples": samples,
@@ -390,3 +390,9 @@ def study_worst_case(study: Study, samples: int | None, seed: int | None,
         "criteria": [{"name": c.name, "metric": c.metric, "min": c.minimum, "max": c.maximum}
                      for c in study.criteria],
     }
+    from tolerance.report import worstcase_notes
+
+    # every sentence the console and the report give, most of them read off the table (found
+    # by a review: worstcase.json held "notes": [] where the report carried four)
+    result["report_notes"] = worstcase_notes(result)
+    return result
