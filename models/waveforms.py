@@ -8,9 +8,8 @@ current and the switch voltage of each run against time as a JSON-ready dict
 (``waveforms.json`` of ``tolerance run --waveforms K``).
 
 The inputs of the transient are built from the stage exactly as the Monte Carlo evaluation
-builds them (``models/stages/evaluation.py``, ``_switching``), with one difference: the
-devices sit at the ambient temperature of each sample, not at their settled junction
-temperatures (see :func:`record_waveforms`).
+builds them (``models/stages/evaluation.py``, ``_switching``), the devices at the junction
+temperatures the evaluation ran the sample's transient at (see :func:`record_waveforms`).
 """
 
 from __future__ import annotations
@@ -18,7 +17,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from tolerance.models.stages.evaluation import switching_inputs
+from tolerance.models.stages.evaluation import evaluate_stage, switching_inputs
 
 __all__ = ["MAX_POINTS", "UNITS", "check_recordable", "downsample", "record_waveforms",
            "switching_inputs"]
@@ -122,7 +121,7 @@ def record_waveforms(study, samples_df: pd.DataFrame, k: int, seed: int) -> dict
     -------
     dict
         ``{"samples": [entry, ...], "units": {"time": "s", "load_current": "A", "vce": "V"},
-        "device_temperature": "ambient", "seed": seed, "max_points": 2000}``; each entry is
+        "device_temperature": "junction", "seed": seed, "max_points": 2000}``; each entry is
         ``{"label": "nominal" | "worst turn-off" | "random 1" ..., "sample": index or None,
         "converged": bool, "turn_on": trace, "turn_off": trace}`` with ``trace`` =
         ``{"time": [...], "load_current": [...], "vce": [...]}``: time from the drive edge
@@ -140,11 +139,13 @@ def record_waveforms(study, samples_df: pd.DataFrame, k: int, seed: int) -> dict
 
     Notes
     -----
-    The devices are simulated at the ambient temperature of each sample
-    (``ambient.temperature``), not at the junction temperatures the Monte Carlo evaluation
-    settles them at, so a re-simulated delay can differ a little from the sample's metric in
-    samples.parquet; the on-state currents differ only by the temperature change of V_CE(sat).
-    All chosen samples run in one batch of the integrator.
+    The chosen samples are evaluated once more (:func:`evaluate_stage`, a batch of ``k``) for
+    the junction temperatures their transient runs at (the settled electro-thermal loop, T_j
+    max for a device that ran away, the ambient without self-heating), and re-simulated
+    there, so a waveform is the transient the sample's metrics in samples.parquet were taken
+    from. Until a review, the devices sat at the ambient: a unit that its hot leakage holds
+    on (an infinite storage time) was plotted turning off cleanly. All chosen samples run in
+    one batch of the integrator.
     """
     from tolerance.models.switching import simulate_switching
 
@@ -163,7 +164,11 @@ def record_waveforms(study, samples_df: pd.DataFrame, k: int, seed: int) -> dict
         samples[p.name] = np.concatenate([[float(p.nominal)], column])
     stage = study.stage
     ambient = np.asarray(samples[stage.env.temperature], dtype=float)
-    temps = {name: ambient for name in stage.transistors()}
+    captured: dict = {}
+    with np.errstate(all="ignore"):
+        evaluate_stage(stage, samples, capture=captured)
+    temps = captured.get("switching_temperatures") or {name: ambient
+                                                        for name in stage.transistors()}
     args = switching_inputs(stage, samples, temps, ambient)
     n = ambient.shape[0]
     with np.errstate(all="ignore"):
@@ -186,5 +191,5 @@ def record_waveforms(study, samples_df: pd.DataFrame, k: int, seed: int) -> dict
             entry[run_name] = {"time": t[keep].tolist(), "load_current": load[keep].tolist(),
                                "vce": vce[keep].tolist()}
         entries.append(entry)
-    return {"samples": entries, "units": dict(UNITS), "device_temperature": "ambient",
+    return {"samples": entries, "units": dict(UNITS), "device_temperature": "junction",
             "seed": int(seed), "max_points": MAX_POINTS, "asked": int(k)}

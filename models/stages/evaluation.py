@@ -848,8 +848,13 @@ def lamp_inrush_rise(load_state, supply, capability, lamp_voltage, lamp_current,
     return np.where(limited, peak, np.where(never, np.nan, 0.0))
 
 
-def evaluate_stage(stage, samples):
-    """All metrics of a chunk: see the module docstring."""
+def evaluate_stage(stage, samples, capture=None):
+    """All metrics of a chunk: see the module docstring.
+
+    ``capture``, a dict, receives under ``"switching_temperatures"`` the device junction
+    temperatures [K] the switching transient was run at (``{device: (S,) array}``), for
+    :func:`tolerance.models.waveforms.record_waveforms` to re-simulate a sample's transient
+    exactly as its metrics saw it."""
     setup: ThermalSetup = stage.thermal
     ambient = np.asarray(samples[stage.env.temperature], dtype=float)
     n = ambient.shape[0]
@@ -940,6 +945,8 @@ def evaluate_stage(stage, samples):
     sw = getattr(stage, "switching", None)
     if sw is not None and sw.enabled:
         at = known(temps)
+        if capture is not None:
+            capture["switching_temperatures"] = at
         sw_metrics = _switching(stage, samples, at, ambient)
         if stage.drive.pwm:
             f = stage.drive.frequency
