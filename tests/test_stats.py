@@ -344,6 +344,27 @@ def test_tail_estimate_reads_a_light_tail_conservatively(k, most):
         assert "shape taken as 0" in out["method"]
 
 
+@pytest.mark.parametrize("shape, extrapolated", [(0.3, True), (1.5, False)])
+def test_tail_estimate_does_not_extend_a_tail_without_finite_variance(shape, extrapolated):
+    # a margin whose units below its 5 % quantile spread like a generalized Pareto of shape
+    # 1.5 (scipy.stats.genpareto) has no finite variance, which a circuit's margin does not
+    # have; a review's heater read 725 ppm from such a fit (shape 1.67) for a stress 115
+    # standard deviations inside its limit. Above shape 0.5 nothing is extrapolated (the
+    # moments' existence: Coles 2001, sec. 4.2); below it the fit stands
+    rng = np.random.default_rng(5)
+    bulk = 50.0 + rng.random(19000)
+    tail = 50.0 - 0.01 * stats.genpareto.rvs(shape, size=1000, random_state=rng)
+    out = tail_estimate(np.concatenate([bulk, tail]))
+    if extrapolated:
+        assert out["method"].startswith("generalized Pareto fit")
+        assert math.isfinite(out["tail_ppm"])
+    else:
+        assert out["method"].startswith("not extrapolated")
+        assert "above 0.5" in out["method"]
+        assert math.isnan(out["tail_ppm"])
+        assert math.isfinite(out["normal_ppm"])  # the normal figure, labelled a model, stays
+
+
 def test_tail_estimate_fits_the_two_limits_of_a_window_apart():
     # A metric centred in a window of +-4 sigma fails on either side: 2 Phi(-4) = 63.3 ppm
     # (scipy.stats.norm.sf). The smaller of the two distances, fitted as one normal, gave
