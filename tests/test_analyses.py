@@ -924,6 +924,16 @@ def test_analysis_arguments_are_whole_and_reproducible(tmp_path):
     b = study_sensitivity(demo, 60, None, 64, bootstrap=20)
     assert a["seed"] == demo.settings.seed
     assert json.dumps(a["sobol"]) == json.dumps(b["sobol"])  # NaN for constant metrics
+    # hot_spot names a part by a code: no ranks, no Sobol indices (a review found a mean,
+    # Spearman rows and a "constant output" note for it), in the analysis and in a run
+    assert "hot_spot" in demo.stage.metrics and demo.stage.metrics["hot_spot"].index
+    assert "hot_spot" not in a["sobol"] and "drive_margin" in a["sobol"]
+    assert {r["metric"] for r in a["rank"]} >= {"drive_margin"}
+    assert not any(r["metric"] == "hot_spot" for r in a["rank"])
+    assert not any("hot_spot" in n for n in a["notes"])
+    ran = demo.run(samples=60, seed=3).summary
+    assert ran["sensitivity"] and not any(r["metric"] == "hot_spot"
+                                          for r in ran["sensitivity"])
     # the Sobol size is checked before the run (2^20 ran out of memory after it)
     for n in (0, -64, 100, 2**20):
         with pytest.raises(UsageError, match="power of two from 64 to 262,144"):

@@ -134,7 +134,8 @@ def insights(study: Study, column, threads: int = 1, level: float = 0.95) -> dic
     the run's exact-interval level, which the tail estimates' count checks use too.
     """
     varying = [p for p in study.parameters if p.varies]
-    metrics = list(study.stage.metrics)
+    # a metric whose values name a part (hot_spot) has no ranks: its codes are not an order
+    metrics = [m for m, info in study.stage.metrics.items() if not info.index]
     n = len(column("converged"))
     rows = slice(0, min(n, SENSITIVITY_ROWS))
     head = slice(0, min(n, INSIGHT_ROWS))
@@ -279,11 +280,12 @@ def study_sensitivity(study: Study, samples: int | None, seed: int | None, sobol
     res = run(study, samples=samples, seed=seed, sampler=sampler, chunk_size=chunk_size,
               jobs=jobs)
     df = res.samples
-    rank = sensitivity.rank_sensitivity(df[[p.name for p in varying]],
-                                        df[list(study.stage.metrics)])
+    # a metric whose values name a part (hot_spot) has no ranks or variance shares
+    ranked = [m for m, info in study.stage.metrics.items() if not info.index]
+    rank = sensitivity.rank_sensitivity(df[[p.name for p in varying]], df[ranked])
     ppf = {p.name: p.distribution.ppf for p in varying}
-    sob = sensitivity.sobol_analysis(model_for(study), ppf, list(study.stage.metrics), sobol_n,
-                                     seed, bootstrap=bootstrap)
+    sob = sensitivity.sobol_analysis(model_for(study), ppf, ranked, sobol_n, seed,
+                                     bootstrap=bootstrap)
     notes = list(sob.pop("notes", []))
     stuck = int(res.summary["not_converged"])
     if stuck:

@@ -1361,7 +1361,11 @@ def _run_plot_tasks(read, summary: dict, extras: dict, plot_dir: Path) -> list[P
                              f"rate{thinned}"))
 
     rows = _sensitivity_rows(summary, extras)
+    spreads = summary.get("metrics") or {}
     for metric in _limited_metrics(summary):
+        spread = spreads.get(metric) if isinstance(spreads.get(metric), dict) else {}
+        if spread.get("min") is not None and spread.get("min") == spread.get("max"):
+            continue  # a constant metric (no unit ran away) has no ranks to draw
         if any(r["metric"] == metric for r in rows):
             made.append(PlotTask("tornado", (rows, metric), {},
                                  plot_dir / f"tornado-{_safe_name(metric)}.png",
