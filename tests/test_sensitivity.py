@@ -389,6 +389,30 @@ def test_failure_drivers_single_input_when_second_does_not_help():
     assert lone["units_inside"] == 1 and "(1 of 1 units;" in lone["text"]
 
 
+def test_failure_drivers_add_a_second_input_only_where_it_separates_inside_the_first():
+    # a review: one unit failing stays_off, third highest in leakage of 4,000, read
+    # "Q2.icbo above 11.6 uA and RB below 2.19 kOhm: 100 % of failures": inside the first
+    # region (the unit and the two above it) any input that kept it and cut the two others
+    # raised the rate inside. The second input must now separate the failures inside the
+    # first region at 5 % after Bonferroni (scipy.stats.ks_2samp, exact: 1 against 2 units
+    # gives p = 2/3 at best), so the region stays the leakage alone
+    rng = np.random.default_rng(8)
+    n = 4000
+    x = pd.DataFrame({"icbo": rng.uniform(0, 1, n), "rb": rng.uniform(0, 1, n),
+                      "noise": rng.uniform(0, 1, n)})
+    order = np.argsort(-x["icbo"].to_numpy())
+    top3 = order[:3]
+    x.loc[top3, "rb"] = [0.9, 0.8, 0.1]  # the failing third lies apart in rb
+    failed = np.zeros(n, dtype=bool)
+    failed[top3[2]] = True
+    res = failure_drivers(x, failed, formatter=lambda v, u: f"{v:.3f}")
+    assert [c["input"] for c in res["region"]] == ["icbo"]
+    assert res["units_inside"] == 3 and " and " not in res["text"]
+    # a real two-input region is still found (x1 low and x2 high, 2,000 failures)
+    xs, fs = _failure_data()
+    assert [c["input"] for c in failure_drivers(xs, fs)["region"]] == ["x1", "x2"]
+
+
 def test_failure_drivers_name_no_region_for_failures_chance_would_place():
     # found by a review: one failing unit, near the top of two of 14 inputs, was given a
     # region "... 100 % of failures" though pinning one of them failed no unit. Bonferroni
