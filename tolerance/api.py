@@ -554,12 +554,52 @@ def _run_into(study, spec, out, made, chunk, jobs, progress, resume, force, back
     return RunResult(study, summary, out)
 
 
+#: the metrics of the criteria a unit fails when it does not stay off
+OFF_STATE_METRICS = ("off_fraction", "off_current")
+
+
+def leakage_notes(study: Study, column) -> list[str]:
+    """A sentence where units fail staying off and a transistor's hot leakage rests on a
+    doubling figure (every ``leakage_doubling`` kelvin) rather than the datasheet's hot I_CBO
+    line: such failures come from the leakage at the junction temperature, so the verdict
+    rests on that figure (found by a review: a valve's Darlington failed ``stays_off`` from
+    its class's 10 K doubling, and passed with the datasheet's hot figure)."""
+    checks = [c for c in study.criteria if c.metric in OFF_STATE_METRICS]
+    transistors = getattr(study.stage, "transistors", None)
+    if not checks or transistors is None:
+        return []
+    converged = column("converged").astype(bool)
+    failing = np.zeros(converged.size, dtype=bool)
+    for c in checks:
+        failing |= converged & ~column(runner.criterion_column(c.name)).astype(bool)
+    count = int(np.count_nonzero(failing))
+    if not count:
+        return []
+    doubled = {name: part.device.template.leakage_doubling
+               for name, part in transistors().items()
+               if part.device.datasheet.icbo_hot_max is None}
+    if not doubled:
+        return []
+    monolithic = bool(getattr(getattr(study.stage, "thermal", None), "shared", None))
+    names = ", ".join(f"{n} x2 per {d:.3g} K" for n, d in doubled.items())
+    where = ("each die's leakage_doubling in [parts.Q2] from the pair's datasheet (its hot "
+             "I_CBO is the whole part's)" if monolithic else
+             "the datasheet's hot I_CBO as icbo_hot_max and icbo_hot_temperature in "
+             f"[parts.{next(iter(doubled))}]" + (" (and the others')" if len(doubled) > 1
+                                                  else ""))
+    names_failed = ", ".join(dict.fromkeys(c.name for c in checks))
+    return [f"{count:,} {'unit fails' if count == 1 else 'units fail'} {names_failed}. Where hot leakage holds a unit on (rather "
+            f"than the drive's low level), it rises from I_CBO at 25 degC by a doubling "
+            f"figure ({names}), not by a datasheet's hot I_CBO line: give {where} before "
+            "signing the verdict off."]
+
+
 def _extra(study: Study, column, insights: bool, threads: int = 1,
            level: float = 0.95) -> dict:
     from tolerance.analysis import insights as _insights
 
     extra = _insights(study, column, threads, level) if insights else {}
-    extra["study_notes"] = study.notes()
+    extra["study_notes"] = study.notes() + leakage_notes(study, column)
     assumed = getattr(study.stage, "assumptions", None)
     if assumed is not None:
         extra["devices"] = assumed()
