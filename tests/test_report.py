@@ -1074,3 +1074,18 @@ def test_a_p_value_that_underflowed_reads_as_below_1e_300():
                                    {"input": "RB", "ks": 0.04, "p_value": 0.2672}])
     col = table.header.index("p_value")
     assert [row[col] for row in table.rows] == ["< 1e-300", report._cell(0.2672)]
+
+
+def test_infinite_note_names_both_kinds_of_transition_that_never_completes():
+    # a review's unit that hot leakage held on had an infinite storage time, and the note
+    # said only "e.g. a load that does not conduct": it names both now, and the stress case
+    summary = {"samples": 400, "metrics": {
+        "storage_time": {"unit": "s", "infinite": 2},
+        "resistor_stress_RB": {"unit": "1", "infinite": 1},
+        "load_current": {"unit": "A", "infinite": 0}}}
+    text = report.infinite_note(summary)
+    assert "never turns off, held on by its leakage or the drive's low level" in text
+    assert "a load that does not conduct" in text
+    assert "stress above its rating's maximum temperature" in text
+    assert text.endswith("storage_time 2 of 400, resistor_stress_RB 1 of 400.")
+    assert report.infinite_note({"samples": 5, "metrics": {"x": {"infinite": 0}}}) is None

@@ -1676,8 +1676,8 @@ def test_the_study_names_what_its_figures_leave_unjudged(tmp_path):
     assert any("pull-in is judged on the 0.6 duty PWM drive as given" in n for n in notes)
     # the rise to 90 % takes L/R ln 10 (first-order circuit): 8 ms of the coil's L/R
     # (250 mH / 72 ohm, 3.47 ms at 20 degC) against 0.8 ms off
-    assert any("L/R (3.47 ms at 20 degC) is long against the PWM's on-time (1.2 ms) or "
-               "off-time (800 us)" in n for n in notes)
+    assert any("current takes 2.3 L/R (8 ms; L/R 3.47 ms at 20 degC) to reach 90 %, longer "
+               "than the PWM's on-time (1.2 ms) or off-time (800 us)" in n for n in notes)
     # at 20 Hz each half (30 ms, 20 ms) outlasts it: only how pull-in is judged is said
     path.write_text(valve.replace("[drive]", '[drive]\nfrequency = "20 Hz"\nduty = 0.6', 1),
                     encoding="utf-8")

@@ -247,8 +247,9 @@ def infinite_note(summary: dict) -> str | None:
     reasons = []
     if any(m.get("unit") == "s" or name == "transition_fraction" for name, m in infinite):
         reasons.append("a switching time where the transition never completes (the switch "
-                       "current never crosses its 10 % or 90 % level, e.g. a load that does "
-                       "not conduct)")
+                       "current never crosses its 10 % or 90 % level: a unit that never "
+                       "turns off, held on by its leakage or the drive's low level, or a "
+                       "load that does not conduct)")
     if any("stress" in name for name, _ in infinite):
         reasons.append("a stress above its rating's maximum temperature, where the derated "
                        "rating is zero")
@@ -1610,8 +1611,9 @@ CHARGE_NOTE = (
     "The charge-storage figures behind the switching times: forward and reverse transit "
     "times, the junctions' zero-bias depletion capacitances, and the storage time constant "
     "tau_s = alpha_F (tau_F + alpha_R tau_R) / (1 - alpha_F alpha_R) at the typical gain, "
-    "with which t_s = tau_s ln((I_B1 - I_B2) / (I_C / beta_F - I_B2)) in the charge-control "
-    "model. They are the class's typical values from memory unless the study gives "
+    "with which t_s = tau_s ln((I_B1 + I_B2) / (I_C / beta_F + I_B2)) in the charge-control "
+    "model, I_B1 the base current that held the unit on and I_B2 the magnitude of the "
+    "reverse base current that turns it off (as storage_ib_off is entered). They are the class's typical values from memory unless the study gives "
     "transition_frequency, storage_time or output_capacitance in [parts.Qn].")
 
 

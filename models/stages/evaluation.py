@@ -1393,8 +1393,11 @@ def _pwm_coil_notes(stage, judged: set, names: set, nominal: dict) -> list[str]:
         f, duty = stage.drive.frequency, stage.drive.duty
         half = min(duty, 1.0 - duty) / f
         if tau * np.log(10.0) > half:
-            out.append(f"The nominal coil's L/R ({q(tau, 's')} at 20 degC) is "
-                       f"long against the PWM's on-time ({q(duty / f, 's')}) "
+            # (found by a review: "L/R (2.08 ms) is long against the on-time (2.4 ms)" read
+            # as a contradiction; the rise to 90 % is what is compared)
+            out.append(f"The nominal coil's current takes 2.3 L/R "
+                       f"({q(tau * np.log(10.0), 's')}; L/R {q(tau, 's')} at 20 degC) to "
+                       f"reach 90 %, longer than the PWM's on-time ({q(duty / f, 's')}) "
                        f"or off-time ({q((1.0 - duty) / f, 's')}): its current "
                        f"does not settle at each edge, and transitions_fit fails such units. "
                        f"The switching energies are those of settled edges, of which only "
