@@ -639,9 +639,14 @@ def test_tolerance_at_its_limit():
     res = run(study, samples=300)
     assert res.summary["samples"] == 300
     assert res.samples["RB"].min() < 15.0
-    with pytest.raises(StudyError, match=r"parts\.RB\.tolerance"):
+    with pytest.raises(StudyError, match=r"parts\.RB\.tolerance") as err:
         load_text("t2.toml", text=_demo('tolerance = "5%"\ntempco = "200 ppm/K"',
                                         'tolerance = "100%"\ntempco = "200 ppm/K"'))
+    # the value as written (a review's "150%" was read back as "got 1.5")
+    assert str(err.value).endswith("below 100 %, got '100%'")
+    with pytest.raises(StudyError, match=r"got 1\.5 \(a plain number is a fraction"):
+        load_text("t3.toml", text=_demo('tolerance = "5%"\ntempco = "200 ppm/K"',
+                                        'tolerance = 1.5\ntempco = "200 ppm/K"'))
 
 
 def _cli_in_process(argv, capsys) -> tuple[int, str]:

@@ -497,8 +497,11 @@ class Reader:
                 hint = (f" (a plain number is a fraction: {rel:g} is {100 * rel:g} %; write "
                         f"\"{rel:g}%\" or {rel / 100:g} for {rel:g} percent)"
                         if 1 <= rel < 100 and _is_plain_number(raw) else "")
+                # the value as written ("150%" read back as "got 1.5" in a review)
+                got = (repr(raw) if isinstance(raw, str) and not _is_plain_number(raw)
+                       else f"{rel:g}")
                 raise self.error("tolerance", f"must be at least 0 and below 100 %, got "
-                                              f"{rel:g}{hint}")
+                                              f"{got}{hint}")
             if unit == "temperature" and rel > 0:
                 # a share of an absolute temperature: 10 % of 0 degC was +-27.3 K
                 raise self.error("tolerance", f"{raw!r} would be a share of the absolute "
