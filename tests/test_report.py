@@ -575,7 +575,7 @@ def test_analysis_sections_show_the_console_tables_in_units(tmp_path):
             assert rows[0][-3] == "fails most"
             assert all(r[-3] == "-" or r[-3].split()[0] in data["criteria"] for r in rows[1:])
             # and its yield against the best's on the same units, with the McNemar p-value
-            assert rows[0][-2] == "yield vs best, paired"
+            assert rows[0][-2] == "yield vs best, paired (percentage points)"
             assert all((r[-2] == "-") == ("best" in r[-1]) for r in rows[1:])
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import re
 
 import numpy as np
 import pytest
@@ -816,6 +817,9 @@ def test_paired_sentence_says_when_the_interval_and_the_test_disagree():
     assert "borderline at 5 % significance" in text
     assert "shows no change while the interval excludes zero" in text
     assert "no change shown" not in text
+    # a change of yields is in percentage points, not a relative percent (a review)
+    assert "changes the yield by 0.4 percentage points (95 % interval " in text
+    assert re.search(r"interval [0-9.e-]+ points \.\. [0-9.e-]+ points\)", text)
     # where the two agree, the plain words stay
     clear = paired_difference(first[:1200].repeat(1), first[:1200])
     assert "no change shown at 5 % significance" in paired_sentence(clear, "x", "a", "b")

@@ -126,6 +126,13 @@ def format_rate(p) -> str:
     return f"{text} %"
 
 
+def format_points(p, word: str = "points") -> str:
+    """A difference of two probabilities in percentage points, e.g. ``"-0.4 points"`` (a
+    review read "-69.2 %" of a yield change as a relative one)."""
+    text = format_rate(p)
+    return text[:-2] + " " + word if text.endswith(" %") else text
+
+
 def format_interval(low, high) -> str:
     """An interval of probabilities, e.g. ``"0.0123 % .. 0.456 %"``."""
     return f"{format_rate(low)} .. {format_rate(high)}"
@@ -792,8 +799,9 @@ def paired_sentence(change: dict | None, what: str, first: str, second: str) -> 
                     else "shows no change while the interval excludes zero")
                  + ", so treat the change as unresolved and run more samples")
     return (f"Unit by unit (the same units in both runs) {what} changes the yield by "
-            f"{format_rate(change['difference'])} (95 % interval "
-            f"{format_interval(change.get('ci_low'), change.get('ci_high'))}): "
+            f"{format_points(change['difference'], 'percentage points')} (95 % interval "
+            f"{format_points(change.get('ci_low'))} .. {format_points(change.get('ci_high'))}"
+            f"): "
             f"{format_number(change.get('only_first'))} units pass only {first}, "
             f"{format_number(change.get('only_second'))} only {second}; exact McNemar "
             f"p {'< 1e-15' if isinstance(p, (int, float)) and p < 1e-15 else f'= {p:.2g}'}, "
@@ -931,7 +939,7 @@ def choose_table(data: dict) -> Table:
         classes.append([""] * (len(names) + 4 + len(trade)) + ["v-pass" if c == best else ""])
     return Table([*names, "yield %", "95 % interval %",
                   *(f"{m} {t.get('statistic', '')}".strip() for m, t in trade.items()),
-                  "fails most", "yield vs best, paired", ""],
+                  "fails most", "yield vs best, paired (percentage points)", ""],
                  rows, "choose-table", "Candidates (common random numbers)", classes)
 
 
@@ -941,7 +949,7 @@ def _versus_best(candidate: dict, is_best: bool) -> str:
     if is_best or not isinstance(v, dict) or "difference" not in v:
         return "-"
     p = v["p_value"]
-    return f"{format_rate(v['difference'])} (p {'< 1e-15' if p < 1e-15 else f'{p:.2g}'})"
+    return f"{format_points(v['difference'])} (p {'< 1e-15' if p < 1e-15 else f'{p:.2g}'})"
 
 
 def choose_separation(data: dict) -> str | None:
