@@ -212,6 +212,16 @@ def test_whatif_notes_a_pin_beyond_the_studys_limits(study):
     assert pinned.summary["samples"] == 50
     for inside in ("x1=max", "x1=-1 V", "x1=p10"):
         assert whatif(study, [inside], samples=50)[0]["pin_notes"] == []
+    # x2 is an uncut normal, 1 V +- 30 % at 3 sigma: its units do lie beyond 0.7 .. 1.3 V,
+    # and a pin there says how many (a review's p0.1 gain pin read "no unit of the study
+    # has that value", 5 of 3,000 units lying below it): 1.4 V is 4 sigma, 31.7 ppm above
+    # (scipy.stats.norm.sf(4))
+    (beyond,) = whatif(study, ["x2=1.4"], samples=50)[0]["pin_notes"]
+    assert "beyond the study's stated limits 700 mV .. 1.3 V: its spread is not cut" in beyond
+    from scipy.stats import norm
+
+    assert f"{100 * norm.sf(4.0):.3g} % of its units lie above that value" in beyond
+    assert "no unit" not in beyond
 
 
 def test_whatif_pin_forms(study):

@@ -140,6 +140,18 @@ def _outside_notes(study: Study, overrides: dict[str, Override]) -> list[str]:
             continue
         span = (f"{format_quantity(lo, p.unit)} .. {format_quantity(hi, p.unit)}"
                 if p.varies else format_quantity(lo, p.unit))
+        # an uncut normal or lognormal spread draws units beyond its stated limits (a
+        # review's p0.1 pin of a gain "no unit has", where 5 of 3,000 units lay below it)
+        share = 0.0
+        if p.varies:
+            below = float(p.distribution.cdf(np.asarray(value)))
+            share = below if value < lo else 1.0 - below
+        if share > 0.0:
+            out.append(f"{name} is pinned at {format_quantity(value, p.unit)}, beyond the "
+                       f"study's stated limits {span}: its spread is not cut there, and "
+                       f"{100 * share:.3g} % of its units lie "
+                       f"{'below' if value < lo else 'above'} that value.")
+            continue
         out.append(f"{name} is pinned at {format_quantity(value, p.unit)}, outside the "
                    f"study's {span}: no unit of the study has that value, so the pinned "
                    f"run describes another part or build.")
