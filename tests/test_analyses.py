@@ -1001,3 +1001,26 @@ def test_the_analyses_runs_take_jobs_without_changing_a_figure():
     one = demo.sensitivity(samples=300, seed=4, sobol_samples=64, jobs=1)
     two = demo.sensitivity(samples=300, seed=4, sobol_samples=64, jobs=2)
     assert json.dumps(one, sort_keys=True) == json.dumps(two, sort_keys=True)
+
+
+def test_choose_reads_a_window_at_both_of_its_ends(write_study):
+    # y = x1 + 2 x2 held inside 0 .. 7 V: a trade-off column read at the 0.1 % point alone
+    # called the largest x2 best while its units ran over the top (a review's LED series
+    # resistor of 100 ohm, 76 of 86 failures above 30 mA). The column is now the room left
+    # inside the window at both robust ends: min(p001 - 0 V, 7 V - p999)
+    from tolerance.choose import choose
+
+    study = load_study(write_study(LINEAR.format(x1=SPREAD)
+                                   + '[limits]\ny = {min = "0 V", max = "7 V"}\n'))
+    result = choose(study, ["x2=E6:0.47..2.2"], samples=2000, tradeoff=("y", "z:higher"))
+    assert result["tradeoff"]["y"] == {"statistic": "room in window", "unit": "V",
+                                       "better": "higher", "window": [0.0, 7.0]}
+    for c in result["candidates"]:
+        s = run(study, samples=2000, overrides={"x2": Override("scale", c["values"]["x2"])}
+                ).summary["metrics"]["y"]
+        assert c["y"] == pytest.approx(min(s["p001"] - 0.0, 7.0 - s["p999"]), rel=1e-12)
+    rooms = [c["y"] for c in result["candidates"]]
+    # the room rises and then falls along the sweep (E6: 0.47, 0.68, 1, 1.5, 2.2): the
+    # largest x2 is no longer the best of the column
+    assert rooms.index(max(rooms)) not in (0, len(rooms) - 1)
+    assert rooms[-1] < 0.0  # its 99.9 % point lies above 7 V

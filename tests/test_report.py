@@ -572,8 +572,14 @@ def test_analysis_sections_show_the_console_tables_in_units(tmp_path):
             assert [r[0] for r in rows[1:]] == ["100 Ohm", "150 Ohm", "220 Ohm"]
             assert sum("best" in r[-1] for r in rows[1:]) == 1
             # the criterion each candidate fails most, which the console did not show
-            assert rows[0][-3] == "fails most"
-            assert all(r[-3] == "-" or r[-3].split()[0] in data["criteria"] for r in rows[1:])
+            assert rows[0][-4] == "fails most"
+            assert all(r[-4] == "-" or r[-4].split()[0] in data["criteria"] for r in rows[1:])
+            # the least room to a limit (in sd) and whose, which decides among equal yields
+            # (a review saw a best value chosen by a criterion no column named)
+            assert rows[0][-3] == "least room (sd)"
+            for r, c in zip(rows[1:], data["candidates"]):
+                assert r[-3] == f"{c['robust_margin']:.3g} ({c['robust_criterion']})"
+                assert c["robust_criterion"] in data["criteria"]
             # and its yield against the best's on the same units, with the McNemar p-value
             assert rows[0][-2] == "yield vs best, paired (percentage points)"
             assert all((r[-2] == "-") == ("best" in r[-1]) for r in rows[1:])
@@ -1089,3 +1095,19 @@ def test_infinite_note_names_both_kinds_of_transition_that_never_completes():
     assert "stress above its rating's maximum temperature" in text
     assert text.endswith("storage_time 2 of 400, resistor_stress_RB 1 of 400.")
     assert report.infinite_note({"samples": 5, "metrics": {"x": {"infinite": 0}}}) is None
+
+
+def test_choose_separation_when_no_unit_of_any_candidate_fails():
+    # a review read "more samples would settle it" beside candidates that all passed every
+    # unit: the yields cannot separate them, the least room does (tolerance.choose.pick_best)
+    same = {"difference": 0.0, "p_value": 1.0, "only_first": 0, "only_second": 0}
+    data = {"units": {"RB": "ohm"}, "candidates": [
+        {"values": {"RB": 220.0}, "yield": 1.0, "vs_best": same},
+        {"values": {"RB": 470.0}, "yield": 1.0, "vs_best": same}]}
+    data["best"] = data["candidates"][1]
+    text = report.choose_separation(data)
+    assert text.startswith("Every unit of every candidate passes")
+    assert "least room column" in text and "more samples" not in text
+    # one candidate with a failing unit: the McNemar sentence as before
+    data["candidates"][0] = dict(data["candidates"][0], **{"yield": 0.999})
+    assert "more samples would settle it" in report.choose_separation(data)
