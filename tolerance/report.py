@@ -675,9 +675,19 @@ def worstcase_notes(data: dict) -> list[str]:
              and _below_every_value(m)]
     if below:
         # found by a review: the note put every case down to leakage, where most were a
-        # gain's 1/h_FE over its wide, uneven range
+        # gain's 1/h_FE over its wide, uneven range; and a second one: it said "RSS or
+        # linear band" where only the linear band, which no table shows, reached below zero
+        rss = [n for n in below if _extremes(metrics[n].get("rss_low"))
+               and min(_extremes(metrics[n].get("rss_low"))) < 0]
+        linear = [n for n in below if n not in rss]
+        which = " and ".join(
+            part for part in (
+                f"the RSS band of {', '.join(rss)}" if rss else "",
+                f"the linear band (worstcase.json's linear_low, not in the table) of "
+                f"{', '.join(linear)}" if linear else "") if part)
         notes.append(
-            f"The RSS or linear band of {', '.join(below)} reaches below zero, where no "
+            f"{which[:1].upper() + which[1:]} reach{'es' if len(below) == 1 else ''} below "
+            "zero, where no "
             "corner and no Monte Carlo unit lies: the metric is far from linear over the "
             "tolerances (a base current or stress that goes as 1/h_FE over a gain's wide, "
             "uneven range; leakage, exponential in temperature), so its band is no estimate "
