@@ -1118,3 +1118,20 @@ def test_choose_separation_when_no_unit_of_any_candidate_fails():
     # one candidate with a failing unit: the McNemar sentence as before
     data["candidates"][0] = dict(data["candidates"][0], **{"yield": 0.999})
     assert "more samples would settle it" in report.choose_separation(data)
+
+
+def test_failure_driver_tables_state_the_corrected_threshold(folder):
+    # the ranking's p-values are each input's own: a review counted listed inputs at p of
+    # 0.009 as drivers where 5 % over 12 varying inputs (Bonferroni) asks for 0.0042
+    summary = json.loads((folder / "summary.json").read_text())
+    md = (folder / "report.md").read_text(encoding="utf-8")
+    shown = 0
+    for name, info in summary["failure_drivers"].items():
+        if not info.get("ranking"):
+            continue
+        # x1 and x2 vary: 0.05 / 2
+        assert info["p_threshold"] == pytest.approx(0.05 / 2)
+        assert (f"*Failure drivers of {name} (an input counts as a driver at p below 0.025: "
+                "5 % over the varying inputs, Bonferroni)*") in md
+        shown += 1
+    assert shown

@@ -1822,8 +1822,13 @@ def _summary_blocks(summary: dict) -> list[Block]:
             info = info or {}
             doc.append(Block("p", f"{name}: {info.get('text', '-')}"))
             if info.get("ranking"):
+                # the p-values are each input's own; a review counted two listed inputs as
+                # drivers whose p-values lay above the corrected threshold
+                limit = info.get("p_threshold")
+                said = (f" (an input counts as a driver at p below {limit:.2g}: 5 % over the "
+                        "varying inputs, Bonferroni)" if _finite(limit) else "")
                 doc.append(Block("table", table=_records_table(
-                    info["ranking"], f"Failure drivers of {name}")))
+                    info["ranking"], f"Failure drivers of {name}{said}")))
         if rows:
             # a heading of its own: after the last criterion's drivers it read as theirs
             doc.append(Block("h3", "Rank measures of every metric"))

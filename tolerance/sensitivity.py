@@ -979,10 +979,14 @@ def _drivers(names, x, fail, ks, dropped, units, fmt, top) -> dict:
     test gives them)."""
     n_fail = int(fail.sum())
     n = int(fail.size)
+    varying = max(int(np.count_nonzero(np.ptp(x, axis=0) > 0)) if n else 0, 1)
     base = {
         "failures": n_fail,
         "samples": n,
         "dropped": dropped,
+        # the p-value an input's KS test must stay below to count as a driver (5 % over the
+        # varying inputs, Bonferroni); the ranking's p-values are each input's own
+        "p_threshold": DRIVER_SIGNIFICANCE / varying,
     }
     empty = {
         "ranking": [],
@@ -1038,7 +1042,6 @@ def _drivers(names, x, fail, ks, dropped, units, fmt, top) -> dict:
     # supply at its maximum failed none and the drive's low level was the cause). The best
     # input must separate them at 5 % after Bonferroni's correction over the varying inputs
     # (common practice, no source)
-    varying = max(int(np.count_nonzero(np.ptp(x, axis=0) > 0)) if n else 0, 1)
     if drivers[0]["p_value"] * varying > DRIVER_SIGNIFICANCE:
         return {
             **empty,
