@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 import pickle
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -15,6 +16,7 @@ from scipy import optimize
 from tolerance.distributions import Fixed
 from tolerance.models import loads
 from tolerance.study import Reader, StudyError, _Context
+from tolerance.units import format_quantity
 
 ROOM = 298.15  # 25 degC [K]
 
@@ -578,3 +580,26 @@ def test_voltage_guess_inverts_the_current_law(data):
     else:
         # Ohm's law, exact (rounding only)
         assert_allclose(guess, v, rtol=1e-13)
+
+
+def test_an_led_string_above_the_supply_is_noted_before_the_run(tmp_path):
+    # a review's string of three 15 V LEDs on a 12 V +- 15 % supply passed `check` without a
+    # word and failed every unit. At a tenth of the test current the diode law takes
+    # n V_T ln 10 (Shockley; V_T = 25.693 mV at 25 degC) off each LED's forward voltage. The
+    # shipped shelf study (five LEDs at about 3 V on 24 V) gets no such note; fifteen do
+    from tolerance.api import load_study
+
+    root = Path(__file__).resolve().parent.parent / "studies"
+    text = (root / "shelf_led_sziklai.toml").read_text(encoding="utf-8")
+    assert not any("LED string needs" in n for n in load_study(root / "shelf_led_sziklai.toml")
+                   .notes())
+    dark = tmp_path / "dark.toml"
+    dark.write_text(text.replace('count = 5', 'count = 15'), encoding="utf-8")
+    (note,) = [n for n in load_study(dark).notes() if "LED string needs" in n]
+    study = load_study(dark)
+    vf = next(p.nominal for p in study.parameters if p.name == "load.forward_voltage")
+    supply = next(p for p in study.parameters if p.name == "supply.voltage")
+    lit = 15 * (vf - study.stage.load.ideality * 0.025693 * math.log(10.0))
+    assert lit > supply.high
+    assert f"needs about {format_quantity(lit, 'V')}" in note
+    assert "every unit fails led_current" in note

@@ -1362,6 +1362,21 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
                                                  else "") +
                    ": the units then spread between it and the maximum.")
     top = getattr(stage.env, "supply_maximum", 0.0)
+    vf = nominal.get("load.forward_voltage")
+    if stage.load.kind == "led" and vf is not None and top > 0:
+        from tolerance.units import format_quantity as q
+
+        # the string's voltage at the lit threshold (a tenth of the test current): the diode
+        # law takes n V_T ln 10 off each LED's forward voltage (Shockley; 25 degC). A string
+        # above the highest supply passed `check` silently and failed every unit (a review)
+        load = stage.load
+        lit = load.count * (vf - load.ideality * 0.025693 * np.log(10.0))
+        if lit >= top:
+            out.append(f"The LED string needs about {q(lit, 'V')} to carry a tenth of its test "
+                       f"current ({load.count} x {q(vf, 'V')} less the diode law's "
+                       f"n V_T ln 10 each, at 25 degC), at or above the highest supply "
+                       f"({q(top, 'V')}): no unit lights, and every unit fails led_current. "
+                       "Check the LED count and forward voltage, or the supply.")
     if top > SELV_LIMIT:
         out.append(f"The supply reaches {top:.4g} V, above the {SELV_LIMIT:g} V DC of the "
                    f"safety-extra-low-voltage range: touching the circuit can be dangerous. "
