@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -614,6 +615,15 @@ def test_supply_below_turn_on_is_counted_not_crashed():
     # a supply at or below the transistor's V_CE(sat) is refused as bad input, naming the key
     with pytest.raises(StudyError, match=r"parts\.Q1\.(device|vce_sat_max).*lowest supply"):
         load_text("lower.toml", text=text.replace('voltage = "1 V"', 'voltage = "0.4 V"'))
+    # a monolithic pair's own saturation voltage: the message names the supply too (a review
+    # read only "parts.Q2.device" and looked at the part, not at its 1.5 V supply)
+    pair = (ROOT / "studies" / "engine_bay_heater_darlington.toml").read_text(encoding="utf-8")
+    low = re.sub(r'(\[supply\]\s*\nvoltage = )[^\n]*', r'\g<1>"1.5 V"', pair)
+    assert low != pair
+    with pytest.raises(StudyError, match=r"parts\.Q2\.device: the pair's saturation voltage "
+                                         r".* lowest supply 1\.5 V \(\[supply\] voltage\): "
+                                         r"the stage could never saturate"):
+        load_text("pair.toml", text=low)
 
 
 def test_temperatures_outside_a_device_range():

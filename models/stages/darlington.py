@@ -527,7 +527,9 @@ def configure(reader):
                                      else "device",
                                      f"the pair's saturation voltage "
                                      f"{pair_figures['pair_vce_sat_max']:g} V is at or above "
-                                     f"the lowest supply {env.supply_minimum:g} V")
+                                     f"the lowest supply {env.supply_minimum:g} V ([supply] "
+                                     f"voltage): the stage could never saturate; check the "
+                                     f"supply's value and unit")
             supply_floor(q2_table, pair_figures["pair_vce_sat_max"], "the pair")
             try:
                 # the part's internal resistors as the study states them (a pair with
