@@ -331,6 +331,15 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
             continue
         if part.has(key):
             figures[key] = part.quantity(key, unit)
+    # a study's own gain limits with the class's typical value outside them (a review's
+    # 1000 .. 5000 on a class of typ 60 was refused for the typ it never gave): the class's
+    # typ goes, as it does for a {min, max} table below; a typ the study gives is checked
+    typ = figures.get("hfe_typ")
+    if ((part.has("hfe_min") or part.has("hfe_max")) and not part.has("hfe_typ")
+            and typ is not None and figures.get("hfe_min") is not None
+            and figures.get("hfe_max") is not None
+            and not figures["hfe_min"] <= typ <= figures["hfe_max"]):
+        figures.pop("hfe_typ")
 
     hfe_spec = None
     screen = None
@@ -370,11 +379,16 @@ def read_transistor(parts: Reader, name: str, description: str, *, polarity: str
                         value > bound * (1 + 1e-9)
                     if outside:
                         side = "below" if key == "min" else "above"
+                        # (a review gave a monolithic pair's own gain here, where the
+                        # table is its output die's)
+                        die = (" On a monolithic pair this is the output die's gain; the "
+                               "pair's own minimum gain is pair_hfe_min (at "
+                               "pair_hfe_current)." if base_figures is not None else "")
                         raise t.error(key, f"{value:g} is {side} {source} hfe_{key} = "
                                            f"{bound:g}: this table screens the datasheet's "
                                            f"spread ({stated[0]:g} .. {stated[1]:g}); for a "
                                            f"part whose datasheet states {value:g}, give "
-                                           f"hfe_min and hfe_max (its figures) as well")
+                                           f"hfe_min and hfe_max (its figures) as well.{die}")
             else:
                 figures["hfe_min"], figures["hfe_max"] = lo, hi
                 if typ is not None:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 
@@ -55,3 +57,42 @@ def test_unknown_key_next_to_a_part_is_reported():
                                    'tolerance = "5%"}\ntempco = "100 ppm/K"',
                                    'part = "relay_coil_12v"\ninductanse = "1 H"')
         build_study(tomllib.loads(text), "demo.toml", text)
+
+
+def test_a_studys_own_gain_limits_drop_the_class_typical_value_outside_them():
+    # a review gave hfe_min = 1000 and hfe_max = 5000 on a class of typical gain 60 and was
+    # refused for "hfe_typ: 60 lies outside hfe_min..hfe_max", a figure it never gave; the
+    # class's typ now goes (as it does for an hfe = {min, max} table) and the spread is the
+    # lognormal of the given limits, median sqrt(300 x 600) = 424.3; a typ the study gives
+    # itself outside its limits is still refused
+    from tolerance.api import demo_text
+    from tolerance.study import StudyError, load_study
+
+    own = ('device = "medium_power_npn"\nhfe_min = 300\nhfe_max = 600\nhfe_high_min = 150\n'
+           'hfe_low_min = 200\n')
+    study = load_study("own.toml", text=demo_text().replace('device = "medium_power_npn"\n',
+                                                            own))
+    gain = study.parameter("Q1.hfe")
+    assert (gain.low, gain.high) == (300.0, 600.0)
+    assert gain.nominal == pytest.approx(math.sqrt(300 * 600), rel=1e-12)
+    assert study.stage.transistors()["Q1"].device.datasheet.hfe_typ is None
+    with pytest.raises(StudyError, match="hfe_typ"):
+        load_study("typ.toml", text=demo_text().replace('device = "medium_power_npn"\n',
+                                                        own + "hfe_typ = 100\n"))
+
+
+def test_a_monolithic_pairs_gain_table_says_it_is_the_output_dies():
+    # a review meant the pair's gain (1000 .. 5000) and was told to give hfe_min and hfe_max,
+    # which led to a second refusal: on a monolithic pair [parts.Q2] hfe is its output die's
+    from pathlib import Path
+
+    from tolerance.study import StudyError, load_study
+
+    root = Path(__file__).resolve().parent.parent / "studies"
+    text = (root / "engine_bay_heater_darlington.toml").read_text(encoding="utf-8")
+    text = text.replace("monolithic = true\n",
+                        "monolithic = true\nhfe = {min = 1000, max = 5000}\n")
+    with pytest.raises(StudyError, match=r"parts\.Q2\.hfe\.max: .* On a monolithic pair this "
+                                         r"is the output die's gain; the pair's own minimum "
+                                         r"gain is pair_hfe_min"):
+        load_study("pair.toml", text=text)
