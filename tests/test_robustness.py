@@ -828,6 +828,11 @@ def test_resume_with_target_ci_keeps_or_refuses_the_runs_plan(write_study, tmp_p
     assert _cli_in_process(["run", study, "--out", fits, "--resume", "--target-ci", "0.4",
                             "--quiet"], capsys)[0] in (0, 1)
     assert (fits / "samples.parquet" / "part-000000.parquet").stat().st_mtime_ns == kept
+    # a target of 0.4 is met at the first check (every half-width at n = 32,768 is below
+    # 0.006), so the resumed run stops there: 32,768 samples in 4 chunks of 8,192, the fifth
+    # deleted (a mutation round kept one stale chunk unseen)
+    assert json.loads((fits / "summary.json").read_text())["samples"] == 32_768
+    assert len(list((fits / "samples.parquet").glob("part-*.parquet"))) == 4
     # an interrupted --target-ci run of its own plan (chunks of 7,000 cut at 32,768)
     # continues with the same options: the review found it refused
     cut = tmp_path / "cut"
@@ -840,6 +845,45 @@ def test_resume_with_target_ci_keeps_or_refuses_the_runs_plan(write_study, tmp_p
     assert _cli_in_process(["run", study, "--out", cut, "--resume", "--target-ci", "1e-9",
                             "--quiet"], capsys)[0] in (0, 1)
     assert parts[0].stat().st_mtime_ns == kept and parts[-1].is_file()
+
+
+def test_a_target_ci_run_into_a_folder_stops_where_its_counts_say(write_study, tmp_path):
+    # y = x1 + 2 x2 > 0 fails nowhere among these units (x1 >= -1 and x2 would need 5 sigma).
+    # With no failure the Clopper-Pearson half-width is B(0.975; 1, n) / 2 (scipy.stats.beta):
+    # 5.63e-5 at the first check, n = 32,768, and 6.15e-5 at 30,000; a target between them
+    # stops a run at its first check, in memory and written to a folder alike (a mutation
+    # round left the round's last chunk out of the folder's stop rule unseen)
+    from scipy import stats as sps
+
+    study = load_study(write_study(LINEAR.format(samples=100000, chunk=10000)))
+    target = 0.5 * (sps.beta.ppf(0.975, 1, 32_768) + sps.beta.ppf(0.975, 1, 30_000)) / 2
+    memory = run(study, target_ci=target)
+    folder = run(study, target_ci=target, out=tmp_path / "r")
+    assert memory.summary["criteria"]["y_positive"]["failures"] == 0
+    assert memory.summary["samples"] == folder.summary["samples"] == 32_768
+
+
+def test_resume_recomputes_a_chunk_with_a_damaged_dictionary_page(write_study, tmp_path):
+    # bits flipped inside a column's dictionary page behind an intact footer decode silently
+    # as other values; only the page checksum finds them, and --resume recomputes that chunk
+    # (a mutation round read chunks without the checksum unseen: the test of flipped bits
+    # damaged a data page, which fails to decode anyway). Common practice, no source
+    import pyarrow.parquet as pq
+
+    study = load_study(write_study(LINEAR.format(samples=3000, chunk=1000)))
+    out = tmp_path / "r"
+    whole = run(study, out=out).summary
+    damaged = sorted((out / "samples.parquet").glob("part-*.parquet"))[1]
+    meta = pq.read_metadata(damaged)
+    col = meta.row_group(0).column(meta.schema.names.index("y"))
+    assert col.dictionary_page_offset is not None  # pyarrow's default dictionary encoding
+    data = bytearray(damaged.read_bytes())
+    for k in range(col.dictionary_page_offset + 100, col.dictionary_page_offset + 108):
+        data[k] ^= 0xFF
+    damaged.write_bytes(bytes(data))
+    again = run(study, out=out, resume=True).summary
+    assert again["metrics"]["y"] == whole["metrics"]["y"]
+    assert again["yield"] == whole["yield"]
 
 
 def test_report_reads_an_early_stopped_run_of_a_summary_without_its_plan(write_study,

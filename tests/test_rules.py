@@ -265,3 +265,62 @@ def test_pins_far_beyond_the_independent_distance_get_a_note(write_study):
     # beyond 3 sqrt(2) + 1 = 5.24 (definition in the docstring of whatif.pin_notes)
     (note,) = pin_notes(study, pins)
     assert "13.4 standard deviations from the centre jointly" in note
+
+
+def test_only_a_pass_exits_zero():
+    # README, exit status: 0 every limit met, 1 a limit failed or not enough samples to tell
+    # (a mutation round: an undecided run exiting 0 passed every test)
+    from tolerance.limits import FAIL, PASS, UNDECIDED, exit_status
+
+    assert exit_status(PASS) == 0
+    assert exit_status(FAIL) == 1
+    assert exit_status(UNDECIDED) == 1
+
+
+def test_a_candidate_whose_low_end_drops_below_a_gain_of_one_is_refused():
+    # the demo's Q1.hfe is 40 .. 100 .. 250 and must stay above 1: a candidate of 2.2 scales
+    # it to 0.88 .. 5.5 (hand calculation), whose low end no study file takes; 2.7 gives
+    # 1.08 .. 6.75 and is accepted (a mutation round dropped the low end's check unseen)
+    from tolerance.api import UsageError
+    from tolerance.choose import parse_vary
+
+    demo = load_study(None)
+    with pytest.raises(UsageError, match="at an end of its spread"):
+        parse_vary(demo, "Q1.hfe=E12:2.2..2.2")
+    name, values = parse_vary(demo, "Q1.hfe=E12:2.7..2.7")
+    assert name == "Q1.hfe" and list(values) == [2.7]
+
+
+def test_the_default_tradeoff_weighs_spans_relative_to_their_limits():
+    # no failures: the robust ends (p001, each metric has a minimum) span 100 over a limit of
+    # 1000 (0.1) and 0.001 over a limit of 0.001 (1.0), so amps moves most relative to its
+    # limit (hand calculation; the rule of choose.default_tradeoff's docstring). A mutation
+    # round took the limit of the other side unseen: the tie test has maximum-only criteria
+    criteria = [Criterion("sat", "margin", minimum=1.2), Criterion("gain", "hfe", minimum=1000.0),
+                Criterion("lit", "amps", minimum=0.001)]
+    study = SimpleNamespace(criteria=criteria, stage=SimpleNamespace(
+        metrics={m: MetricInfo("1", m) for m in ("margin", "hfe", "amps")}))
+
+    def summary(hfe, amps):
+        return {"criteria": {c.name: {"rate": 0.0} for c in criteria},
+                "metrics": {"margin": {"p001": 2.0}, "hfe": {"p001": hfe},
+                            "amps": {"p001": amps}}}
+
+    assert default_tradeoff(study, [summary(1100.0, 0.002), summary(1200.0, 0.003)]) == \
+        ("margin", "amps")
+
+
+def test_a_partner_pushed_beyond_three_by_two_pins_gets_a_note():
+    # pins a and b at their low tolerance ends (scores -3 and -3, independent of each other);
+    # c correlated 0.7 with each: conditional mean 0.7 (-3) + 0.7 (-3) = -4.2, sd
+    # sqrt(1 - 2 x 0.49) = 0.14 (the conditional normal, by hand). A mutation round dropped
+    # the abs() of the partner test, and only a partner pushed up was noted
+    params = [Parameter(n, "ohm", dist.Normal(100.0, 1.0)) for n in ("a", "b", "c")]
+    matrix = np.array([[1.0, 0.0, 0.7], [0.0, 1.0, 0.7], [0.7, 0.7, 1.0]])
+    by = {p.name: p for p in params}
+    study = SimpleNamespace(parameters=params, correlations=[object()],
+                            correlation_matrix=lambda: matrix, parameter=by.__getitem__)
+    low = pin_notes(study, {"a": Override("pin", 97.0), "b": Override("pin", 97.0)})
+    high = pin_notes(study, {"a": Override("pin", 103.0), "b": Override("pin", 103.0)})
+    assert len(low) == 1 and "partner c" in low[0] and "-4.2" in low[0]
+    assert len(high) == 1 and "+4.2" in high[0]

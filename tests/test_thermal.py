@@ -349,3 +349,19 @@ def test_a_scan_finds_a_stable_point_below_the_cap_that_the_first_step_jumps():
     assert res.settled.tolist() == [True, False]
     assert res.temperatures["q"][0] == pytest.approx(C0 + 25.0 + 80.0, abs=0.05)
     assert np.isnan(res.temperatures["q"][1]) and res.runaway["q"][1]
+
+
+def test_a_loop_cut_off_before_it_settles_reads_nan():
+    # one device, 1 W at any temperature, 50 K/W from 300 K: the first step goes from 300 K
+    # to 350 K, far more than the 0.05 K that settles a loop, so after one iteration it has
+    # not settled and reads NaN, a runaway (thermal.FixedPointResult); a mutation round kept
+    # the last iterate unseen. With room to settle: T_a + theta P = 350 K (by hand)
+    def power(temps, idx):
+        return {"Q1": np.ones(idx.size)}
+
+    cut = thermal.electrothermal(power, np.array([300.0]), {"Q1": np.array([50.0])},
+                                 max_iterations=1)
+    assert not cut.settled[0] and not cut.failed[0]
+    assert cut.runaway["Q1"][0] and np.isnan(cut.temperatures["Q1"][0])
+    ok = thermal.electrothermal(power, np.array([300.0]), {"Q1": np.array([50.0])})
+    assert ok.settled[0] and abs(ok.temperatures["Q1"][0] - 350.0) < 0.05

@@ -336,9 +336,10 @@ def choose(study: Study, varies: list[str], samples: int | None = None, seed: in
                                            np.unpackbits(packed, count=units).astype(bool))
     front = []
     if len(tradeoff) == 2:
+        # more room inside a window is better, whichever limit is nearer
         front = frontier(candidates, tradeoff[0], tradeoff[1],
-                         _direction(study, tradeoff[0], given),
-                         _direction(study, tradeoff[1], given))
+                         *(1 if windows[m] else _direction(study, m, given)
+                           for m in tradeoff[:2]))
     first = candidates[0]
     notes = _unjudged_drive(study, summaries[best]) + _unconverged(candidates, names, study)
     n_samples = run_samples = samples
