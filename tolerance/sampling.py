@@ -1,8 +1,10 @@
 """Sampling designs: plain random, Latin hypercube and scrambled Sobol.
 
-Every design produces uniform numbers on (0, 1), one column per parameter of the study (fixed
-ones included, so a column always belongs to the same parameter: what-if pins and value sweeps
-change values, never the random numbers of the other parameters). The uniform numbers go through
+Every design produces uniform numbers on [0, 1) (a scrambled Sobol point is a multiple of
+2^-30, so 0 comes up once in 2^30 points; the inverse CDFs clip the ends), one column per
+parameter of the study (fixed ones included, so a column always belongs to the same
+parameter: what-if pins and value sweeps change values, never the random numbers of the other
+parameters). The uniform numbers go through
 an optional Gaussian copula (correlated parameters) and then each parameter's inverse CDF.
 
 Reproducibility does not depend on how the run is cut into chunks or spread over workers: the
@@ -77,7 +79,7 @@ def uniforms(sampler: str, seed: int, total: int, start: int, stop: int, dim: in
     Returns
     -------
     ndarray, shape (stop - start, dim)
-        Values in (0, 1).
+        Values in [0, 1).
     """
     n = stop - start
     if dim == 0:
