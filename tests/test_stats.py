@@ -735,16 +735,23 @@ def test_verdict_limits_are_inclusive_as_documented():
     assert verdict(1, 1e-6, 3e-4, 0.0) == FAIL
 
 
+def _paired_runs(n, both, only_first, only_second):
+    """Pass columns of two runs over the same ``n`` units: ``both`` pass in both, then
+    ``only_first`` in the first run only, then ``only_second`` in the second only."""
+    first = np.zeros(n, bool)
+    second = np.zeros(n, bool)
+    first[:both] = second[:both] = True
+    first[both:both + only_first] = True
+    second[both + only_first:both + only_first + only_second] = True
+    return first, second
+
+
 def test_paired_difference_of_two_yields_on_the_same_units():
     from tolerance.stats import paired_difference
 
     # 5,000 units: 21 pass only in the first run, 7 only in the second. Exact McNemar test:
     # scipy.stats.binomtest(7, 28, 0.5)
-    first = np.zeros(5000, bool)
-    second = np.zeros(5000, bool)
-    first[:1200] = second[:1200] = True
-    first[1200:1221] = True
-    second[2000:2007] = True
+    first, second = _paired_runs(5000, 1200, 21, 7)
     got = paired_difference(first, second)
     assert got["only_first"] == 21 and got["only_second"] == 7
     assert got["difference"] == pytest.approx(-14 / 5000)
@@ -778,13 +785,7 @@ def test_paired_difference_interval_holds_its_level(n, probs):
     for counts in rng.multinomial(n, probs, size=800):
         key = tuple(int(c) for c in counts)
         if key not in seen:
-            both, only_first, only_second, _ = key
-            first = np.zeros(n, bool)
-            second = np.zeros(n, bool)
-            first[:both] = second[:both] = True
-            first[both:both + only_first] = True
-            second[both + only_first:both + only_first + only_second] = True
-            seen[key] = paired_difference(first, second)
+            seen[key] = paired_difference(*_paired_runs(n, *key[:3]))
         got = seen[key]
         hits += got["ci_low"] <= truth <= got["ci_high"]
         below += truth < got["ci_low"]
@@ -805,12 +806,7 @@ def test_paired_sentence_says_when_the_interval_and_the_test_disagree():
     from tolerance.report import paired_sentence
     from tolerance.stats import paired_difference
 
-    first = np.zeros(2000, bool)
-    second = np.zeros(2000, bool)
-    first[:1500] = second[:1500] = True
-    first[1500:1503] = True
-    second[1600:1611] = True
-    got = paired_difference(first, second)
+    got = paired_difference(*_paired_runs(2000, 1500, 3, 11))
     assert got["p_value"] == pytest.approx(stats.binomtest(11, 14, 0.5).pvalue, rel=1e-12)
     assert got["p_value"] > 0.05 and got["ci_low"] > 0.0
     text = paired_sentence(got, "the pin", "in the baseline", "pinned")
@@ -821,13 +817,8 @@ def test_paired_sentence_says_when_the_interval_and_the_test_disagree():
     assert "changes the yield by 0.4 percentage points (95 % interval " in text
     assert re.search(r"interval [0-9.e-]+ points \.\. [0-9.e-]+ points\)", text)
     # where the two agree, the plain words stay
-    clear = paired_difference(first[:1200].repeat(1), first[:1200])
+    clear = paired_difference(*_paired_runs(1200, 1100, 0, 0))
     assert "no change shown at 5 % significance" in paired_sentence(clear, "x", "a", "b")
     # 21 against 7 of 5,000 (the test above): both show the change
-    a = np.zeros(5000, bool)
-    b = np.zeros(5000, bool)
-    a[:1221] = True
-    b[:1200] = True
-    b[2000:2007] = True
-    assert "a change at 5 % significance." in paired_sentence(paired_difference(a, b), "x",
-                                                              "a", "b")
+    change = paired_difference(*_paired_runs(5000, 1200, 21, 7))
+    assert "a change at 5 % significance." in paired_sentence(change, "x", "a", "b")
