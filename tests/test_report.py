@@ -1135,3 +1135,19 @@ def test_failure_driver_tables_state_the_corrected_threshold(folder):
                 "5 % over the varying inputs, Bonferroni)*") in md
         shown += 1
     assert shown
+
+
+def test_a_yields_interval_is_rounded_outwards():
+    # a review: 0.999877 (scipy.stats.beta.ppf(0.025, 30000, 1), 123 ppm failing) read
+    # "99.99 %", which states at most 100 ppm. The lower end is rounded down and the upper
+    # up, with two significant digits of the distance to 100 % (or 0 %)
+    from scipy.stats import beta
+
+    low = float(beta.ppf(0.025, 30000, 1))
+    assert report.yield_interval(low, 1.0) == "99.9877 % .. 100 %"
+    assert report.yield_bound(0.99986634, True) == "99.9866 %"
+    assert report.yield_interval(0.2314, 0.2434, unit=False) == "23.1 .. 24.4"
+    assert report.yield_bound(0.24341, False) == "24.4 %"  # 24.341 up, not to 24.3
+    for p in (0.9999, 0.987654, 0.5, 0.0123):
+        assert float(report.yield_bound(p, True)[:-2]) <= 100 * p
+        assert float(report.yield_bound(p, False)[:-2]) >= 100 * p

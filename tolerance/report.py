@@ -133,6 +133,30 @@ def format_points(p, word: str = "points") -> str:
     return text[:-2] + " " + word if text.endswith(" %") else text
 
 
+def yield_bound(p, down: bool, unit: bool = True) -> str:
+    """One end of a yield's interval as a percentage, rounded away from the estimate: the
+    lower end down, the upper end up, with digits enough for two significant ones of its
+    distance to 0 % or 100 % (found by a review: 99.9877 %, 123 ppm failing, read "99.99 %",
+    which states at most 100 ppm)."""
+    if p is None:
+        return "-"
+    p = float(p)
+    if math.isnan(p):
+        return "nan"
+    if p <= 0.0 or p >= 1.0:
+        return format_rate(min(max(p, 0.0), 1.0)) if unit else f"{100.0 * min(max(p, 0), 1):g}"
+    miss = 100.0 * min(p, 1.0 - p)
+    k = min(max(0, 1 - math.floor(math.log10(miss))) + 1, 12)
+    scale = 10.0 ** k
+    value = (math.floor if down else math.ceil)(round(100.0 * p * scale, 6)) / scale
+    return f"{value:.{k}f}" + (" %" if unit else "")
+
+
+def yield_interval(low, high, unit: bool = True) -> str:
+    """A yield's interval, its ends rounded outwards (:func:`yield_bound`)."""
+    return f"{yield_bound(low, True, unit)} .. {yield_bound(high, False, unit)}"
+
+
 def format_interval(low, high) -> str:
     """An interval of probabilities, e.g. ``"0.0123 % .. 0.456 %"``."""
     return f"{format_rate(low)} .. {format_rate(high)}"
@@ -829,8 +853,8 @@ def whatif_tables(data: dict) -> list[Table]:
     nc = data.get("not_converged") or {}
     runs = Table(["", "baseline", "pinned"], [
         ["yield", format_rate(yb.get("estimate")), format_rate(yp.get("estimate"))],
-        ["95 % exact interval", format_interval(yb.get("ci_low"), yb.get("ci_high")),
-         format_interval(yp.get("ci_low"), yp.get("ci_high"))],
+        ["95 % exact interval", yield_interval(yb.get("ci_low"), yb.get("ci_high")),
+         yield_interval(yp.get("ci_low"), yp.get("ci_high"))],
         ["verdict", *(verdict_word(verdicts.get(k)) for k in ("baseline", "pinned"))],
         ["not converged", format_number(nc.get("baseline")), format_number(nc.get("pinned"))],
     ], "whatif-yield-table", "Baseline and pinned run")
@@ -941,7 +965,7 @@ def choose_table(data: dict) -> Table:
         worst = max(rates, key=rates.get) if rates else None
         rows.append([*(format_value(c["values"][n], units.get(n)) for n in names),
                      format_yield(c["yield"], 3),
-                     f"{format_yield(c['ci_low'], 3)} .. {format_yield(c['ci_high'], 3)}",
+                     yield_interval(c["ci_low"], c["ci_high"], unit=False),
                      *(format_value(c.get(m), t.get("unit")) for m, t in trade.items()),
                      f"{worst} {format_rate(rates[worst])}" if worst else "-",
                      _least_room(c),
@@ -1735,7 +1759,7 @@ def _summary_blocks(summary: dict) -> list[Block]:
                               f"({format_number(y.get('passes'))} of "
                               f"{format_number(summary.get('samples'))} samples pass every "
                               f"criterion; {interval_label(summary)} exact interval "
-                              f"{format_interval(y.get('ci_low'), y.get('ci_high'))})."))
+                              f"{yield_interval(y.get('ci_low'), y.get('ci_high'))})."))
     allowed = summary.get("max_failure_rate")
     rule = (" (a criterion passes only with no failure)." if not allowed else
             "; a criterion passes when its interval lies at or below it, fails when it lies "
