@@ -1102,6 +1102,12 @@ def test_infinite_note_names_both_kinds_of_transition_that_never_completes():
     assert "stress above its rating's maximum temperature" in text
     assert text.endswith("storage_time 2 of 400, resistor_stress_RB 1 of 400.")
     assert report.infinite_note({"samples": 5, "metrics": {"x": {"infinite": 0}}}) is None
+    # a lamp's inrush that never ends is no switching time (a review's beacon study, 3 of
+    # 200,000 units with a drive margin below 1 and no transient run)
+    lamp = report.infinite_note({"samples": 200000, "metrics": {
+        "inrush_energy": {"unit": "J", "infinite": 3}, "inrush_time": {"unit": "s",
+                                                                       "infinite": 3}}})
+    assert "a lamp's inrush that never ends" in lamp and "switching time" not in lamp
 
 
 def test_choose_separation_when_no_unit_of_any_candidate_fails():

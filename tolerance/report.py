@@ -276,7 +276,13 @@ def infinite_note(summary: dict) -> str | None:
     if not infinite:
         return None
     reasons = []
-    if any(m.get("unit") == "s" or name == "transition_fraction" for name, m in infinite):
+    if any(name.startswith("inrush_") for name, _ in infinite):
+        # (a review: the lamp's infinite inrush figures were explained as switching times)
+        reasons.append("a lamp's inrush that never ends: the drive holds the output's current "
+                       "below the hot lamp's, so the filament never warms to its operating "
+                       "point (inrush_energy, inrush_time)")
+    if any((m.get("unit") == "s" and not name.startswith("inrush_"))
+           or name == "transition_fraction" for name, m in infinite):
         reasons.append("a switching time where the transition never completes (the switch "
                        "current never crosses its 10 % or 90 % level: a unit that never "
                        "turns off, held on by its leakage or the drive's low level, or a "
