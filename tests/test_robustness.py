@@ -1140,6 +1140,9 @@ def test_jobs_and_out_that_cannot_be_meant_are_refused(tmp_path, capsys):
     with pytest.raises(SystemExit) as stop:
         _cli_in_process(["run", "--out", "", "--samples", "8"], capsys)
     assert stop.value.code == 2 and "argument --out: expected a folder" in capsys.readouterr().err
+    # the Python API keeps the same limit (a review's study.run(jobs=99) started them all)
+    with pytest.raises(UsageError, match=r"jobs must be at most .* per core\), got"):
+        run(load_study(None), samples=8, jobs=too_many)
 
 
 @pytest.mark.skipif(sys.platform == "win32", reason="advisory folder locks are POSIX flock")

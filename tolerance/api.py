@@ -314,6 +314,19 @@ def write_json(path: Path, data: dict) -> None:
 MAX_SAMPLES = 10**9
 
 
+#: local workers per core at most: each is a process of some 100 MB, and the results do not
+#: depend on their number (common practice, no source)
+JOBS_PER_CORE = 4
+#: workers at most on a cluster (a dask scheduler)
+CLUSTER_JOBS = 4096
+
+
+def jobs_limit(scheduler: str | None = None) -> int:
+    """The most workers a run may start: :data:`JOBS_PER_CORE` per local core, or
+    :data:`CLUSTER_JOBS` on a cluster."""
+    return CLUSTER_JOBS if scheduler else JOBS_PER_CORE * (os.cpu_count() or 1)
+
+
 def _whole(value, name: str) -> int:
     """A whole number given to the API, or a UsageError naming it (2.7 samples were cut to 2,
     "abc" raised int()'s own error)."""
@@ -432,6 +445,12 @@ def run(study: Study, samples: int | None = None, seed: int | None = None,
     jobs = _whole(jobs, "jobs")
     if jobs < 1:
         raise UsageError(f"jobs must be at least 1, got {jobs}")
+    top = jobs_limit(scheduler)
+    if jobs > top:
+        # the command line's limit (a review's study.run(jobs=99) started 99 processes)
+        raise UsageError(f"jobs must be at most {top:,} "
+                         + ("on a cluster" if scheduler else
+                            f"on this machine ({JOBS_PER_CORE} per core)") + f", got {jobs}")
     if resume and out is None:
         raise UsageError("resume continues a run in its folder: give out= as well")
     if backend not in ("loky", "dask"):

@@ -15,7 +15,7 @@ from concurrent.futures import BrokenExecutor
 from pathlib import Path
 
 from tolerance import __version__
-from tolerance.api import UsageError, load_study, run
+from tolerance.api import CLUSTER_JOBS, JOBS_PER_CORE, UsageError, load_study, run
 from tolerance.files import DamagedFile, atomic_path, os_error_text
 from tolerance.limits import exit_status
 from tolerance.runner import Terminated, UnreadableChunk
@@ -643,11 +643,6 @@ def main(argv: list[str] | None = None) -> int:
             signal.signal(signal.SIGTERM, previous)
 
 
-#: local workers per core at most: each is a process of some 100 MB, and the results do not
-#: depend on their number (common practice, no source)
-JOBS_PER_CORE = 4
-#: workers at most on a cluster (--scheduler)
-CLUSTER_JOBS = 4096
 
 
 def _check_args(parser, args) -> None:
