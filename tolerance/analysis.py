@@ -52,6 +52,12 @@ def model_for(study: Study):
     return model
 
 
+def ranked_metrics(study: Study) -> list[str]:
+    """The metrics that have ranks, sensitivities and a worst case: all but those whose
+    values name a part (``hot_spot``), whose codes are no order."""
+    return [m for m, info in study.stage.metrics.items() if not info.index]
+
+
 def bounds_for(study: Study) -> list[worstcase.Bound]:
     """Worst-case bounds of every parameter: its tolerance limits, widened by any drift.
 
@@ -134,8 +140,7 @@ def insights(study: Study, column, threads: int = 1, level: float = 0.95) -> dic
     the run's exact-interval level, which the tail estimates' count checks use too.
     """
     varying = [p for p in study.parameters if p.varies]
-    # a metric whose values name a part (hot_spot) has no ranks: its codes are not an order
-    metrics = [m for m, info in study.stage.metrics.items() if not info.index]
+    metrics = ranked_metrics(study)
     n = len(column("converged"))
     rows = slice(0, min(n, SENSITIVITY_ROWS))
     head = slice(0, min(n, INSIGHT_ROWS))
@@ -280,8 +285,7 @@ def study_sensitivity(study: Study, samples: int | None, seed: int | None, sobol
     res = run(study, samples=samples, seed=seed, sampler=sampler, chunk_size=chunk_size,
               jobs=jobs)
     df = res.samples
-    # a metric whose values name a part (hot_spot) has no ranks or variance shares
-    ranked = [m for m, info in study.stage.metrics.items() if not info.index]
+    ranked = ranked_metrics(study)
     rank = sensitivity.rank_sensitivity(df[[p.name for p in varying]], df[ranked])
     ppf = {p.name: p.distribution.ppf for p in varying}
     sob = sensitivity.sobol_analysis(model_for(study), ppf, ranked, sobol_n, seed,
@@ -348,8 +352,7 @@ def study_worst_case(study: Study, samples: int | None, seed: int | None,
             senses.get(c.metric, ()) + (("min",) if c.minimum is not None else ())
             + (("max",) if c.maximum is not None else ())))
     searched = limited + list(senses)
-    # a metric whose values name a part (hot_spot) has no worst case
-    metrics = [m for m, info in study.stage.metrics.items() if not info.index]
+    metrics = ranked_metrics(study)
     table = worstcase.worst_case_table(model_for(study), bounds, metrics,
                                        mc_extremes=mc, seed=seed, optimize_metrics=searched,
                                        optimize_senses=senses, starts=3, maxiter=60)

@@ -607,7 +607,8 @@ def leakage_notes(study: Study, column) -> list[str]:
              f"[parts.{next(iter(doubled))}]" + (" (and the others')" if len(doubled) > 1
                                                   else ""))
     names_failed = ", ".join(dict.fromkeys(c.name for c in checks))
-    return [f"{count:,} {'unit fails' if count == 1 else 'units fail'} {names_failed}. Where hot leakage holds a unit on (rather "
+    fail = "unit fails" if count == 1 else "units fail"
+    return [f"{count:,} {fail} {names_failed}. Where hot leakage holds a unit on (rather "
             f"than the drive's low level), it rises from I_CBO at 25 degC by a doubling "
             f"figure ({names}), not by a datasheet's hot I_CBO line: give {where} before "
             "signing the verdict off."]

@@ -15,7 +15,8 @@ from concurrent.futures import BrokenExecutor
 from pathlib import Path
 
 from tolerance import __version__
-from tolerance.api import CLUSTER_JOBS, JOBS_PER_CORE, UsageError, load_study, run
+from tolerance.api import (CLUSTER_JOBS, JOBS_PER_CORE, UsageError, jobs_limit, load_study,
+                           run)
 from tolerance.files import DamagedFile, atomic_path, os_error_text
 from tolerance.limits import exit_status
 from tolerance.runner import Terminated, UnreadableChunk
@@ -649,15 +650,13 @@ def _check_args(parser, args) -> None:
     """Refusals argparse cannot make alone (exit 2): a --jobs that would start more
     processes than the machine can hold, an empty --out."""
     jobs = getattr(args, "jobs", None)
-    if jobs is not None:
-        cores = os.cpu_count() or 1
-        if getattr(args, "scheduler", None):
-            if jobs > CLUSTER_JOBS:
-                parser.error(f"argument --jobs: at most {CLUSTER_JOBS} on a cluster, got {jobs}")
-        elif jobs > JOBS_PER_CORE * cores:
-            parser.error(f"argument --jobs: at most {JOBS_PER_CORE * cores} on this machine "
-                         f"({JOBS_PER_CORE} per core, {cores} cores), got {jobs}; each worker "
-                         "is a process, and the results do not depend on their number")
+    scheduler = getattr(args, "scheduler", None)
+    if jobs is not None and jobs > jobs_limit(scheduler):
+        if scheduler:
+            parser.error(f"argument --jobs: at most {CLUSTER_JOBS} on a cluster, got {jobs}")
+        parser.error(f"argument --jobs: at most {jobs_limit()} on this machine "
+                     f"({JOBS_PER_CORE} per core, {os.cpu_count() or 1} cores), got {jobs}; "
+                     "each worker is a process, and the results do not depend on their number")
     if getattr(args, "out", None) == "":
         parser.error("argument --out: expected a folder, got an empty name")
 

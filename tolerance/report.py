@@ -1681,8 +1681,9 @@ CHARGE_NOTE = (
     "tau_s = alpha_F (tau_F + alpha_R tau_R) / (1 - alpha_F alpha_R) at the typical gain, "
     "with which t_s = tau_s ln((I_B1 + I_B2) / (I_C / beta_F + I_B2)) in the charge-control "
     "model, I_B1 the base current that held the unit on and I_B2 the magnitude of the "
-    "reverse base current that turns it off (as storage_ib_off is entered). They are the class's typical values from memory unless the study gives "
-    "transition_frequency, storage_time or output_capacitance in [parts.Qn].")
+    "reverse base current that turns it off (as storage_ib_off is entered). They are the "
+    "class's typical values from memory unless the study gives transition_frequency, "
+    "storage_time or output_capacitance in [parts.Qn].")
 
 
 def load_note(load: dict) -> str:

@@ -1369,8 +1369,11 @@ def review_notes(stage, criteria, nominal: dict, corner: dict | None = None) -> 
         # the string's voltage at the lit threshold (a tenth of the test current): the diode
         # law takes n V_T ln 10 off each LED's forward voltage (Shockley; 25 degC). A string
         # above the highest supply passed `check` silently and failed every unit (a review)
+        from tolerance.models.transistor import REFERENCE_TEMPERATURE, thermal_voltage
+
         load = stage.load
-        lit = load.count * (vf - load.ideality * 0.025693 * np.log(10.0))
+        lit = load.count * (vf - load.ideality * float(thermal_voltage(REFERENCE_TEMPERATURE))
+                            * np.log(10.0))
         if lit >= top:
             out.append(f"The LED string needs about {q(lit, 'V')} to carry a tenth of its test "
                        f"current ({load.count} x {q(vf, 'V')} less the diode law's "
